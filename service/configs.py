@@ -1,0 +1,242 @@
+"""Submission requests as frozen values, and their resolution against a dataset and the catalog.
+
+The API parses a request body once into a ``SubmissionRequest``; ``resolve`` then checks it against
+the dataset (columns, task, fold plan) and the catalog, and produces the normalised configuration
+document that is stored with the submission and read by the worker. Parameter values themselves
+are checked by scikit-learn in a worker (``worker.jobs.check_config``), not here.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any, Protocol
+
+from service.errors import ConfigRejected, FieldProblem
+from service.metrics_spec import DEFAULT_METRICS, METRICS
+
+MAX_FOLDS, MAX_REPEATS, MAX_FOLD_JOBS = 20, 10, 100
+ENCODERS = frozenset({"OneHotEncoder", "OrdinalEncoder"})
+
+
+@dataclass(frozen=True)
+class DatasetRef:
+    """Which dataset, optionally pinned to the exact data by its fingerprint."""
+
+    id: str
+    fingerprint: str | None = None
+
+
+@dataclass(frozen=True)
+class PreprocessStep:
+    """One transformer applied to some columns inside every training fold."""
+
+    transformer: str
+    columns: tuple[str, ...]
+    params: Mapping[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    """The estimator, its parameters, the features it sees and their preprocessing."""
+
+    estimator: str
+    params: Mapping[str, Any] = field(default_factory=dict)
+    features: tuple[str, ...] | None = None
+    preprocess: tuple[PreprocessStep, ...] = ()
+
+
+@dataclass(frozen=True)
+class ValidationSpec:
+    """Cross-validation options; ``folds=None`` means the dataset's fold plan."""
+
+    folds: int | None = None
+    repeats: int = 1
+
+
+@dataclass(frozen=True)
+class SubmissionRequest:
+    """A parsed ``POST /v1/submissions`` body."""
+
+    dataset: DatasetRef
+    model: ModelSpec
+    validation: ValidationSpec = ValidationSpec()
+    metrics: tuple[str, ...] | None = None
+    label: str = ""
+
+
+class CatalogView(Protocol):
+    """What resolution needs from the catalog (``service.catalog``)."""
+
+    def estimator_task(self, name: str) -> str | None: ...
+
+    def is_transformer(self, name: str) -> bool: ...
+
+    def estimator_names(self, task: str) -> list[str]: ...
+
+    def transformer_names(self) -> list[str]: ...
+
+
+class _Problems:
+    """Collects field problems so one response names all of them."""
+
+    def __init__(self) -> None:
+        self.items: list[FieldProblem] = []
+
+    def add(self, pointer: str, detail: str) -> None:
+        self.items.append(FieldProblem(pointer, detail))
+
+    def raise_if_any(self) -> None:
+        if self.items:
+            summary = "; ".join(p.detail for p in self.items[:3])
+            raise ConfigRejected(summary, self.items)
+
+
+def resolve(request: SubmissionRequest, dataset: Mapping[str, Any], catalog: CatalogView) -> dict[str, Any]:
+    """Check ``request`` against ``dataset`` and the catalog; return the normalised configuration document."""
+    problems = _Problems()
+    task = str(dataset["task"])
+    kinds = {c["name"]: c["kind"] for c in dataset["columns"]}
+    reserved = {dataset["target"], dataset.get("id_column")} - {None}
+
+    model = request.model
+    est_task = catalog.estimator_task(model.estimator)
+    if est_task != task:
+        accepted = ", ".join(catalog.estimator_names(task))
+        what = "is not in the catalog" if est_task is None else f"is a {est_task} estimator"
+        problems.add("/model/estimator", f"estimator {model.estimator!r} {what}; for a {task} dataset "
+                     f"use one of: {accepted}")
+
+    features = _resolve_features(model, dataset, kinds, reserved, problems)
+    steps = _resolve_steps(model, features, problems, catalog)
+    _check_categoricals(features, kinds, steps, problems)
+    metrics = _resolve_metrics(request.metrics, task, dataset, problems)
+    plan = _resolve_plan(request.validation, dataset["fold_plan"], problems)
+    problems.raise_if_any()
+    return {
+        "model": {
+            "estimator": model.estimator,
+            "params": dict(model.params),
+            "features": features,
+            "preprocess": steps,
+        },
+        "validation": plan,
+        "metrics": metrics,
+        "label": request.label,
+        "task": task,
+        "target": dataset["target"],
+    }
+
+
+def config_fingerprint(document: Mapping[str, Any], dataset_fingerprint: str) -> str:
+    """SHA-256 of the canonical JSON of what determines the result: model, validation, metrics, data."""
+    material = {
+        "model": document["model"], "validation": document["validation"],
+        "metrics": document["metrics"], "dataset": dataset_fingerprint,
+    }
+    canonical = json.dumps(material, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
+    return hashlib.sha256(canonical.encode("ascii")).hexdigest()
+
+
+def _resolve_features(
+    model: ModelSpec, dataset: Mapping[str, Any], kinds: Mapping[str, str], reserved: set[str],
+    problems: _Problems,
+) -> list[str]:
+    if model.features is None:
+        skip = reserved | {dataset.get("group_column"), dataset.get("time_column")}
+        return [name for name, kind in kinds.items() if name not in skip and kind != "datetime"]
+    if not model.features:
+        problems.add("/model/features", "features must list at least one column, got an empty list")
+    seen: set[str] = set()
+    for i, name in enumerate(model.features):
+        pointer = f"/model/features/{i}"
+        if name not in kinds:
+            problems.add(pointer, f"feature {name!r} is not a column of the dataset; columns: "
+                         f"{', '.join(k for k in kinds if k not in reserved)}")
+        elif name in reserved:
+            problems.add(pointer, f"feature {name!r} is the dataset's target or id column and cannot be a feature")
+        elif kinds[name] == "datetime":
+            problems.add(pointer, f"feature {name!r} is a datetime column; derive numeric features from it first")
+        elif name in seen:
+            problems.add(pointer, f"feature {name!r} is listed twice")
+        seen.add(name)
+    return list(model.features)
+
+
+def _resolve_steps(
+    model: ModelSpec, features: list[str], problems: _Problems, catalog: CatalogView
+) -> list[dict[str, Any]]:
+    """Check the preprocess steps; steps on exactly the same columns chain, in the order given."""
+    steps: list[dict[str, Any]] = []
+    owner: dict[str, tuple[int, tuple[str, ...]]] = {}
+    for i, step in enumerate(model.preprocess):
+        base = f"/model/preprocess/{i}"
+        if not catalog.is_transformer(step.transformer):
+            problems.add(f"{base}/transformer", f"transformer {step.transformer!r} is not in the catalog; "
+                         f"use one of: {', '.join(catalog.transformer_names())}")
+        if not step.columns:
+            problems.add(f"{base}/columns", "columns must list at least one feature, got an empty list")
+        for j, column in enumerate(step.columns):
+            if column not in features:
+                problems.add(f"{base}/columns/{j}", f"column {column!r} is not among the features "
+                             f"({', '.join(features)})")
+                continue
+            first = owner.setdefault(column, (i, step.columns))
+            if first[1] != step.columns and first[0] != i:
+                problems.add(f"{base}/columns/{j}", f"column {column!r} is already in step {first[0]} with "
+                             "other columns; steps chain only when they name exactly the same columns")
+        steps.append({"transformer": step.transformer, "columns": list(step.columns),
+                      "params": dict(step.params)})
+    return steps
+
+
+def _check_categoricals(
+    features: list[str], kinds: Mapping[str, str], steps: list[dict[str, Any]], problems: _Problems
+) -> None:
+    encoded = {c for s in steps if s["transformer"] in ENCODERS for c in s["columns"]}
+    for i, name in enumerate(features):
+        if kinds.get(name) == "categorical" and name not in encoded:
+            problems.add(f"/model/features/{i}", f"feature {name!r} is categorical and needs an encoder: add a "
+                         f"preprocess step with OneHotEncoder or OrdinalEncoder for it")
+
+
+def _resolve_metrics(
+    requested: tuple[str, ...] | None, task: str, dataset: Mapping[str, Any], problems: _Problems
+) -> list[str]:
+    if requested is None:
+        return list(DEFAULT_METRICS[task])
+    if not requested:
+        problems.add("/metrics", "metrics must name at least one metric, got an empty list")
+    accepted = [m.name for m in METRICS.values() if m.task == task]
+    n_classes = len(dataset.get("classes") or [])
+    for i, name in enumerate(requested):
+        spec = METRICS.get(name)
+        if spec is None or spec.task != task:
+            problems.add(f"/metrics/{i}", f"metric {name!r} does not apply to {task}; use one of: "
+                         f"{', '.join(accepted)}")
+        elif name == "brier" and n_classes > 2:
+            problems.add(f"/metrics/{i}", f"metric 'brier' needs a binary target; this one has {n_classes} classes")
+    return list(dict.fromkeys(requested))
+
+
+def _resolve_plan(
+    validation: ValidationSpec, dataset_plan: Mapping[str, Any], problems: _Problems
+) -> dict[str, Any]:
+    folds = dataset_plan["folds"] if validation.folds is None else validation.folds
+    if not 2 <= folds <= MAX_FOLDS:
+        problems.add("/validation/folds", f"folds must be between 2 and {MAX_FOLDS}, got {folds}")
+    if not 1 <= validation.repeats <= MAX_REPEATS:
+        problems.add("/validation/repeats", f"repeats must be between 1 and {MAX_REPEATS}, "
+                     f"got {validation.repeats}")
+    if dataset_plan["scheme"] == "time" and validation.repeats != 1:
+        problems.add("/validation/repeats", "repeats must be 1 for a time-ordered fold plan (forward-chaining "
+                     f"folds have one order), got {validation.repeats}")
+    if folds * validation.repeats > MAX_FOLD_JOBS:
+        problems.add("/validation", f"folds x repeats must be at most {MAX_FOLD_JOBS}, "
+                     f"got {folds} x {validation.repeats}")
+    return {
+        "scheme": dataset_plan["scheme"], "folds": folds, "seed": dataset_plan["seed"],
+        "repeats": validation.repeats, "plan_overridden": folds != dataset_plan["folds"],
+    }

@@ -1,0 +1,203 @@
+"""Put submission work on the RQ queues, and put it back when Redis lost it.
+
+Jobs are enqueued by dotted name (``worker.jobs.*``), so the API process never imports the worker
+or scikit-learn. Job ids are deterministic -- ``<sub>:fold:<repeat>:<fold>``, ``<sub>:summary``,
+``<sub>:holdout`` -- which makes re-enqueueing idempotent: the reconciler can run on every worker
+at once and still produce one job per piece of work.
+
+Chain per submission::
+
+    fold jobs (one per repeat x fold) --allow_failure--> summary (fan-in) --> holdout (exactly once)
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Iterable
+from datetime import timedelta
+from typing import Any
+
+from redis import Redis
+from redis.exceptions import RedisError
+from rq import Queue, Retry
+from rq.job import Dependency, Job, JobStatus
+from rq.serializers import JSONSerializer
+from rq.worker import Worker
+from sqlalchemy import Engine
+
+from service.errors import ConfigRejected, FieldProblem, Unavailable
+from service.records import submissions
+from service.records.engine import as_utc, utcnow
+from service.settings import Settings
+
+log = logging.getLogger(__name__)
+
+JOB_MODULE = "worker.jobs"
+LIVE_JOB_STATES = frozenset(
+    {JobStatus.QUEUED, JobStatus.STARTED, JobStatus.DEFERRED, JobStatus.SCHEDULED}
+)
+RESULT_TTL = 3600  # results live in the records DB; Redis copies are for debugging only
+RETRIES = 2  # retries apply to crashed or abandoned jobs; estimator errors are recorded, not raised
+
+
+def fold_job_id(sub_id: str, repeat: int, fold: int) -> str:
+    """Return the deterministic id of one fold job."""
+    return f"{sub_id}:fold:{repeat}:{fold}"
+
+
+def summary_job_id(sub_id: str) -> str:
+    """Return the deterministic id of a submission's summary (fan-in) job."""
+    return f"{sub_id}:summary"
+
+
+def holdout_job_id(sub_id: str) -> str:
+    """Return the deterministic id of a submission's holdout job."""
+    return f"{sub_id}:holdout"
+
+
+def work_queue(redis: Redis, settings: Settings) -> Queue:
+    """Return the queue fold, summary and holdout jobs go to."""
+    return Queue(settings.queue_name, connection=redis, serializer=JSONSerializer)
+
+
+def fold_cells(validation: dict[str, Any]) -> list[tuple[int, int]]:
+    """Return every (repeat, fold) pair a validation plan runs."""
+    return [(r, f) for r in range(int(validation["repeats"])) for f in range(int(validation["folds"]))]
+
+
+def enqueue_submission(redis: Redis, settings: Settings, sub_id: str, validation: dict[str, Any]) -> None:
+    """Enqueue the whole job chain of a new submission."""
+    try:
+        queue = work_queue(redis, settings)
+        fold_ids = [_enqueue_fold(queue, settings, sub_id, r, f) for r, f in fold_cells(validation)]
+        _enqueue_summary(queue, settings, sub_id, fold_ids)
+        _enqueue_holdout(queue, settings, sub_id, [summary_job_id(sub_id)])
+    except RedisError as exc:
+        # The submission row exists and the reconciler will enqueue it once Redis is back.
+        log.warning("could not enqueue %s: %s", sub_id, exc)
+
+
+def check_config_remote(
+    redis: Redis, settings: Settings, config_doc: dict[str, Any], dataset_id: str
+) -> dict[str, Any]:
+    """Ask a worker to check a configuration with scikit-learn's own validation; wait for its answer.
+
+    Raises ConfigRejected with the worker's field problems, or Unavailable when no worker answers.
+    """
+    queue = Queue(settings.check_queue_name, connection=redis, serializer=JSONSerializer)
+    try:
+        if Worker.count(connection=redis, queue=queue) == 0:
+            raise Unavailable("no sealfold worker is running to check the configuration; start one with "
+                              "`sealfold worker`")
+        job = queue.enqueue_call(
+            f"{JOB_MODULE}.check_config", args=(config_doc, dataset_id), result_ttl=60, failure_ttl=300,
+            timeout=max(30, int(settings.check_timeout_seconds) * 3),
+        )
+        result = job.latest_result(timeout=max(1, round(settings.check_timeout_seconds)))
+    except RedisError as exc:
+        raise Unavailable(f"the job queue is not reachable: {type(exc).__name__}") from exc
+    if result is None or result.type != result.Type.SUCCESSFUL:
+        raise Unavailable(
+            f"no worker finished checking the configuration within {settings.check_timeout_seconds:g} s"
+            if result is None else "the configuration check crashed in the worker; see the worker log"
+        )
+    answer: dict[str, Any] = result.return_value or {}
+    if not answer.get("ok"):
+        problems = [FieldProblem(p["pointer"], p["detail"]) for p in answer.get("problems", [])]
+        raise ConfigRejected("; ".join(p.detail for p in problems[:3]) or "configuration rejected", problems)
+    return answer
+
+
+def cancel_jobs(redis: Redis, settings: Settings, sub_id: str, validation: dict[str, Any]) -> None:
+    """Cancel a submission's queued jobs; running ones see the canceled state and stop early."""
+    ids = [fold_job_id(sub_id, r, f) for r, f in fold_cells(validation)]
+    ids += [summary_job_id(sub_id), holdout_job_id(sub_id)]
+    try:
+        for job in Job.fetch_many(ids, connection=redis, serializer=JSONSerializer):
+            if job is not None and job.get_status(refresh=False) in (JobStatus.QUEUED, JobStatus.DEFERRED):
+                job.cancel()
+    except RedisError as exc:
+        log.warning("could not cancel jobs of %s: %s", sub_id, exc)
+
+
+def reconcile(engine: Engine, redis: Redis, settings: Settings, min_age_seconds: float = 20.0) -> int:
+    """Re-enqueue the missing jobs of every live submission; return how many jobs were enqueued.
+
+    A job is missing when Redis has no live job under its id and the records DB has no outcome for
+    its piece of work -- after a Redis flush or restart, for instance. Submissions touched in the
+    last ``min_age_seconds`` are left alone so a POST that is still enqueueing is not raced.
+    """
+    queue = work_queue(redis, settings)
+    cutoff = utcnow() - timedelta(seconds=min_age_seconds)
+    enqueued = 0
+    for sub in submissions.unfinished(engine):
+        updated = as_utc(sub["updated_at"])
+        if updated is not None and updated > cutoff:
+            continue
+        enqueued += _reconcile_one(engine, redis, queue, settings, sub)
+    return enqueued
+
+
+def _reconcile_one(engine: Engine, redis: Redis, queue: Queue, settings: Settings, sub: dict[str, Any]) -> int:
+    sub_id = sub["id"]
+    done = {(row["repeat"], row["fold"]) for row in submissions.fold_rows(engine, sub_id)}
+    enqueued = 0
+    live_folds: list[str] = []
+    for r, f in fold_cells(sub["config"]["validation"]):
+        job_id = fold_job_id(sub_id, r, f)
+        if (r, f) in done:
+            continue
+        if _is_live(redis, job_id):
+            live_folds.append(job_id)
+        elif sub["result"] is None:
+            live_folds.append(_enqueue_fold(queue, settings, sub_id, r, f))
+            enqueued += 1
+    if sub["result"] is None:
+        if not _is_live(redis, summary_job_id(sub_id)):
+            _enqueue_summary(queue, settings, sub_id, live_folds)
+            enqueued += 1
+        if not _is_live(redis, holdout_job_id(sub_id)):
+            _enqueue_holdout(queue, settings, sub_id, [summary_job_id(sub_id)])
+            enqueued += 1
+    elif not _is_live(redis, holdout_job_id(sub_id)):
+        _enqueue_holdout(queue, settings, sub_id, [])
+        enqueued += 1
+    if enqueued:
+        log.info("reconciler re-enqueued %d job(s) of %s", enqueued, sub_id)
+    return enqueued
+
+
+def _is_live(redis: Redis, job_id: str) -> bool:
+    job = Job.fetch_many([job_id], connection=redis, serializer=JSONSerializer)[0]
+    return job is not None and job.get_status(refresh=False) in LIVE_JOB_STATES
+
+
+def _enqueue_fold(queue: Queue, settings: Settings, sub_id: str, repeat: int, fold: int) -> str:
+    job = queue.enqueue_call(
+        f"{JOB_MODULE}.run_fold", args=(sub_id, repeat, fold), job_id=fold_job_id(sub_id, repeat, fold),
+        timeout=settings.fold_timeout_seconds, result_ttl=RESULT_TTL, retry=_retry(),
+        description=f"fold {fold} of repeat {repeat} of {sub_id}",
+    )
+    return str(job.id)
+
+
+def _enqueue_summary(queue: Queue, settings: Settings, sub_id: str, depends_on: Iterable[str]) -> None:
+    deps = list(depends_on)
+    queue.enqueue_call(
+        f"{JOB_MODULE}.summarize", args=(sub_id,), job_id=summary_job_id(sub_id),
+        depends_on=Dependency(jobs=deps, allow_failure=True) if deps else None,
+        timeout=600, result_ttl=RESULT_TTL, retry=_retry(), description=f"summary of {sub_id}",
+    )
+
+
+def _enqueue_holdout(queue: Queue, settings: Settings, sub_id: str, depends_on: list[str]) -> None:
+    queue.enqueue_call(
+        f"{JOB_MODULE}.score_holdout", args=(sub_id,), job_id=holdout_job_id(sub_id),
+        depends_on=Dependency(jobs=depends_on, allow_failure=True) if depends_on else None,
+        timeout=settings.fold_timeout_seconds * 2, result_ttl=RESULT_TTL, retry=_retry(),
+        description=f"holdout score of {sub_id}",
+    )
+
+
+def _retry() -> Retry:
+    return Retry(max=RETRIES, interval=[2, 10])

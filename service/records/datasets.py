@@ -1,0 +1,68 @@
+"""Dataset records. The public view never carries the sealing seed or the holdout's fingerprint."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from sqlalchemy import Engine, select
+
+from service.records import audit
+from service.records.engine import iso
+from service.records.tables import datasets
+
+_PRIVATE = ("sealing_seed", "holdout_fingerprint")
+
+
+def insert(engine: Engine, row: dict[str, Any]) -> None:
+    """Insert a dataset row and its audit event in one transaction."""
+    with engine.begin() as conn:
+        conn.execute(datasets.insert().values(**row))
+        audit.record(
+            conn, row["created_by"], row["team"], "dataset.registered", row["id"],
+            {"fingerprint": row["fingerprint"], "rows_total": row["rows_total"]},
+        )
+
+
+def get_internal(engine: Engine, ds_id: str) -> dict[str, Any] | None:
+    """Return the whole row, secrets included: for the core and the workers, never for a response."""
+    with engine.connect() as conn:
+        row = conn.execute(select(datasets).where(datasets.c.id == ds_id)).mappings().first()
+    return None if row is None else dict(row)
+
+
+def public_view(row: dict[str, Any]) -> dict[str, Any]:
+    """Shape an internal row into the document a team member may read."""
+    view = {k: v for k, v in row.items() if k not in _PRIVATE}
+    view["created_at"] = iso(row["created_at"])
+    view["rows"] = {
+        "total": row["rows_total"], "development": row["rows_development"], "holdout": row["rows_holdout"],
+    }
+    view["holdout"] = {"scheme": row["holdout_scheme"], "fraction": row["holdout_fraction"]}
+    for k in ("rows_total", "rows_development", "rows_holdout", "holdout_scheme", "holdout_fraction"):
+        view.pop(k)
+    return view
+
+
+def get(engine: Engine, ds_id: str) -> dict[str, Any] | None:
+    """Return the public view of one dataset, or None."""
+    row = get_internal(engine, ds_id)
+    return None if row is None else public_view(row)
+
+
+def list_for_team(engine: Engine, team: str) -> list[dict[str, Any]]:
+    """Return the public views of a team's datasets, newest first."""
+    with engine.connect() as conn:
+        rows = conn.execute(
+            select(datasets).where(datasets.c.team == team).order_by(datasets.c.created_at.desc())
+        ).mappings().all()
+    return [public_view(dict(r)) for r in rows]
+
+
+def find_by_name(engine: Engine, team: str, name: str) -> dict[str, Any] | None:
+    """Return the newest dataset of a team with this name (the demo reuses its dataset this way)."""
+    with engine.connect() as conn:
+        row = conn.execute(
+            select(datasets).where(datasets.c.team == team, datasets.c.name == name)
+            .order_by(datasets.c.created_at.desc())
+        ).mappings().first()
+    return None if row is None else public_view(dict(row))

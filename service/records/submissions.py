@@ -1,0 +1,193 @@
+"""Submission records, their fold results and their one holdout score.
+
+Lifecycle: ``queued`` -> ``running`` (first fold starts) -> ``succeeded`` | ``failed``; ``canceled``
+from either live state. Transitions are conditional updates, so two workers racing on one
+submission cannot move it backwards.
+"""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import Any
+
+from sqlalchemy import Engine, and_, func, select, update
+from sqlalchemy.exc import IntegrityError
+
+from service.records import audit
+from service.records.engine import utcnow
+from service.records.tables import fold_results, holdout_scores, submissions
+
+LIVE_STATES: tuple[str, ...] = ("queued", "running")
+TERMINAL_STATES: tuple[str, ...] = ("succeeded", "failed", "canceled")
+
+
+def insert(engine: Engine, row: dict[str, Any]) -> None:
+    """Insert a new submission (state ``queued``) and its audit event in one transaction."""
+    now = utcnow()
+    values = {"state": "queued", "created_at": now, "updated_at": now, **row}
+    with engine.begin() as conn:
+        conn.execute(submissions.insert().values(**values))
+        audit.record(
+            conn, values["owner_key_id"], values["team"], "submission.created", values["id"],
+            {"dataset": values["dataset_id"], "config_fingerprint": values["config_fingerprint"]},
+        )
+
+
+def get(engine: Engine, sub_id: str) -> dict[str, Any] | None:
+    """Return one submission row, or None."""
+    with engine.connect() as conn:
+        row = conn.execute(select(submissions).where(submissions.c.id == sub_id)).mappings().first()
+    return None if row is None else dict(row)
+
+
+def find_by_idempotency_key(engine: Engine, owner_key_id: str, key: str) -> dict[str, Any] | None:
+    """Return the submission a key already made under this Idempotency-Key, or None."""
+    with engine.connect() as conn:
+        row = conn.execute(
+            select(submissions).where(
+                submissions.c.owner_key_id == owner_key_id, submissions.c.idempotency_key == key
+            )
+        ).mappings().first()
+    return None if row is None else dict(row)
+
+
+def list_for_team(
+    engine: Engine, team: str, limit: int = 50, before: tuple[datetime, str] | None = None,
+    dataset_id: str | None = None,
+) -> list[dict[str, Any]]:
+    """Return a team's submissions newest first; ``before`` is the (created_at, id) cursor of a page."""
+    query = select(submissions).where(submissions.c.team == team)
+    if dataset_id is not None:
+        query = query.where(submissions.c.dataset_id == dataset_id)
+    if before is not None:
+        at, sub_id = before
+        query = query.where(
+            (submissions.c.created_at < at)
+            | and_(submissions.c.created_at == at, submissions.c.id < sub_id)
+        )
+    query = query.order_by(submissions.c.created_at.desc(), submissions.c.id.desc()).limit(limit)
+    with engine.connect() as conn:
+        return [dict(r) for r in conn.execute(query).mappings().all()]
+
+
+def transition(
+    engine: Engine, sub_id: str, state: str, from_states: tuple[str, ...], error: str | None = None
+) -> bool:
+    """Move a submission to ``state`` if it is in one of ``from_states``; return whether it moved."""
+    now = utcnow()
+    values: dict[str, Any] = {"state": state, "updated_at": now}
+    if state == "running":
+        values["started_at"] = now
+    if state in TERMINAL_STATES:
+        values["finished_at"] = now
+    if error is not None:
+        values["error"] = error
+    with engine.begin() as conn:
+        result = conn.execute(
+            update(submissions)
+            .where(submissions.c.id == sub_id, submissions.c.state.in_(from_states))
+            .values(**values)
+        )
+    return bool(result.rowcount)
+
+
+def mark_running(engine: Engine, sub_id: str) -> None:
+    """Record that work started; a no-op once the submission is running or finished."""
+    transition(engine, sub_id, "running", ("queued",))
+
+
+def store_summary(engine: Engine, sub_id: str, result: dict[str, Any]) -> None:
+    """Store the cross-validation summary document (everything but the holdout score)."""
+    with engine.begin() as conn:
+        conn.execute(
+            update(submissions).where(submissions.c.id == sub_id).values(result=result, updated_at=utcnow())
+        )
+
+
+def record_fold(engine: Engine, sub_id: str, repeat: int, fold: int, **fields: Any) -> bool:
+    """Store one fold's outcome; a retried fold job finds it stored and keeps the first.
+
+    Returns whether this call stored it.
+    """
+    values = {"submission_id": sub_id, "repeat": repeat, "fold": fold, "finished_at": utcnow(), **fields}
+    try:
+        with engine.begin() as conn:
+            conn.execute(fold_results.insert().values(**values))
+    except IntegrityError:
+        return False
+    with engine.begin() as conn:
+        conn.execute(update(submissions).where(submissions.c.id == sub_id).values(updated_at=utcnow()))
+    return True
+
+
+def fold_rows(engine: Engine, sub_id: str) -> list[dict[str, Any]]:
+    """Return the stored fold outcomes in (repeat, fold) order."""
+    with engine.connect() as conn:
+        rows = conn.execute(
+            select(fold_results).where(fold_results.c.submission_id == sub_id)
+            .order_by(fold_results.c.repeat, fold_results.c.fold)
+        ).mappings().all()
+    return [dict(r) for r in rows]
+
+
+def folds_done(engine: Engine, sub_id: str) -> int:
+    """Count the folds with a stored outcome."""
+    with engine.connect() as conn:
+        count = conn.execute(
+            select(func.count()).select_from(fold_results).where(fold_results.c.submission_id == sub_id)
+        ).scalar_one()
+    return int(count)
+
+
+def store_holdout_once(
+    engine: Engine, sub_id: str, scores: dict[str, float], holdout_fingerprint: str, fit_seconds: float
+) -> tuple[dict[str, float], bool]:
+    """Store the one holdout score of a submission; return the stored scores and whether this call won.
+
+    The primary key on ``submission_id`` makes a second insert fail, so whichever job gets there
+    first wins and every later caller reads the winner's scores.
+    """
+    try:
+        with engine.begin() as conn:
+            conn.execute(
+                holdout_scores.insert().values(
+                    submission_id=sub_id, scores=scores, holdout_fingerprint=holdout_fingerprint,
+                    fit_seconds=fit_seconds, scored_at=utcnow(),
+                )
+            )
+            sub = conn.execute(select(submissions.c.team).where(submissions.c.id == sub_id)).scalar_one()
+            audit.record(conn, "system", sub, "holdout.scored", sub_id, {"metrics": sorted(scores)})
+    except IntegrityError:
+        stored = get_holdout(engine, sub_id)
+        if stored is None:  # the insert failed for another reason: let it surface
+            raise
+        return stored["scores"], False
+    return scores, True
+
+
+def get_holdout(engine: Engine, sub_id: str) -> dict[str, Any] | None:
+    """Return the stored holdout score row of a submission, or None."""
+    with engine.connect() as conn:
+        row = conn.execute(
+            select(holdout_scores).where(holdout_scores.c.submission_id == sub_id)
+        ).mappings().first()
+    return None if row is None else dict(row)
+
+
+def unfinished(engine: Engine, limit: int = 500) -> list[dict[str, Any]]:
+    """Return live submissions, oldest first, for the reconciler."""
+    with engine.connect() as conn:
+        rows = conn.execute(
+            select(submissions).where(submissions.c.state.in_(LIVE_STATES))
+            .order_by(submissions.c.created_at).limit(limit)
+        ).mappings().all()
+    return [dict(r) for r in rows]
+
+
+def count_by_state(engine: Engine) -> dict[str, int]:
+    """Return how many submissions are in each state (for /metrics)."""
+    with engine.connect() as conn:
+        rows = conn.execute(
+            select(submissions.c.state, func.count()).group_by(submissions.c.state)
+        ).all()
+    return {state: int(n) for state, n in rows}

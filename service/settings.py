@@ -1,0 +1,102 @@
+"""Settings shared by the API process, the workers and the command line.
+
+Layered once: defaults, then the environment, then explicit overrides (tests, ``create_app``).
+Nothing here opens a connection; callers build engines and Redis clients from these values.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import os
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from service.errors import SettingsError
+
+_ENV_NAMES: dict[str, str] = {
+    "data_dir": "SEALFOLD_DATA_DIR",
+    "database_url": "DATABASE_URL",
+    "redis_url": "REDIS_URL",
+    "import_root": "SEALFOLD_IMPORT_ROOT",
+    "max_upload_bytes": "SEALFOLD_MAX_UPLOAD_BYTES",
+    "queue_name": "SEALFOLD_QUEUE",
+    "fold_timeout_seconds": "SEALFOLD_FOLD_TIMEOUT",
+    "check_timeout_seconds": "SEALFOLD_CHECK_TIMEOUT",
+    "min_rows": "SEALFOLD_MIN_ROWS",
+    "log_level": "SEALFOLD_LOG_LEVEL",
+}
+
+
+@dataclass(frozen=True)
+class Settings:
+    """Every tunable of a sealfold deployment, validated on construction."""
+
+    data_dir: Path = Path("var")
+    database_url: str = ""  # empty: SQLite file under data_dir
+    redis_url: str = "redis://127.0.0.1:6379/0"
+    import_root: Path | None = None  # None: importing by path is disabled
+    max_upload_bytes: int = 512 * 1024 * 1024
+    queue_name: str = "sealfold"
+    fold_timeout_seconds: int = 3600
+    check_timeout_seconds: float = 10.0
+    min_rows: int = 50
+    log_level: str = "INFO"
+    extra: Mapping[str, Any] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        if self.max_upload_bytes < 1024:
+            raise SettingsError(f"max_upload_bytes must be at least 1024, got {self.max_upload_bytes}")
+        if self.fold_timeout_seconds < 1:
+            raise SettingsError(f"fold_timeout_seconds must be positive, got {self.fold_timeout_seconds}")
+        if self.min_rows < 10:
+            raise SettingsError(f"min_rows must be at least 10, got {self.min_rows}")
+
+    @property
+    def effective_database_url(self) -> str:
+        """The records DB URL: ``database_url`` or a SQLite file under the data dir."""
+        if self.database_url:
+            return self.database_url
+        return f"sqlite:///{(self.data_dir / 'records.sqlite3').resolve()}"
+
+    @property
+    def check_queue_name(self) -> str:
+        """Queue for quick configuration checks, served before fold work."""
+        return f"{self.queue_name}-check"
+
+    @classmethod
+    def load(
+        cls, overrides: Mapping[str, Any] | None = None, environ: Mapping[str, str] | None = None
+    ) -> Settings:
+        """Build settings from defaults, then ``environ`` (default: os.environ), then ``overrides``."""
+        env = os.environ if environ is None else environ
+        values: dict[str, Any] = {}
+        fields = {f.name: f for f in dataclasses.fields(cls)}
+        for name, env_name in _ENV_NAMES.items():
+            raw = env.get(env_name)
+            if raw is not None and raw != "":
+                values[name] = _coerce(name, raw, fields[name].type)
+        for name, value in (overrides or {}).items():
+            if name not in fields:
+                raise SettingsError(f"unknown setting {name!r}; known: {', '.join(sorted(fields))}")
+            values[name] = _coerce(name, value, fields[name].type) if isinstance(value, str) else value
+        if "data_dir" in values:
+            values["data_dir"] = Path(values["data_dir"])
+        if values.get("import_root") is not None:
+            values["import_root"] = Path(values["import_root"])
+        return cls(**values)
+
+
+def _coerce(name: str, raw: str, annotation: Any) -> Any:
+    kind = str(annotation)
+    try:
+        if kind == "int":
+            return int(raw)
+        if kind == "float":
+            return float(raw)
+    except ValueError as exc:
+        raise SettingsError(f"{name} must be a number, got {raw!r}") from exc
+    if "Path" in kind:
+        return Path(raw)
+    return raw

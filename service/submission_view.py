@@ -1,0 +1,72 @@
+"""Compose the submission document a team member reads (``GET /v1/submissions/{id}``).
+
+One place builds it, from the records alone: the submission row, its fold rows, its stored summary
+and its holdout score. The holdout part is aggregate scores only -- never rows, ids or predictions.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from sqlalchemy import Engine
+
+from service.records import submissions
+from service.records.engine import iso
+
+
+def submission_document(engine: Engine, row: dict[str, Any]) -> dict[str, Any]:
+    """Return the document for one submission row."""
+    folds = submissions.fold_rows(engine, row["id"])
+    holdout = submissions.get_holdout(engine, row["id"])
+    config = row["config"]
+    return {
+        "id": row["id"],
+        "dataset": row["dataset_id"],
+        "label": row["label"],
+        "state": row["state"],
+        "progress": {"folds_done": len(folds), "folds_total": row["folds_total"]},
+        "created_at": iso(row["created_at"]),
+        "started_at": iso(row["started_at"]),
+        "finished_at": iso(row["finished_at"]),
+        "error": row["error"],
+        "config": {k: config[k] for k in ("model", "validation", "metrics")},
+        "config_fingerprint": row["config_fingerprint"],
+        "result": _result(row, folds, holdout),
+    }
+
+
+def _result(row: dict[str, Any], folds: list[dict[str, Any]], holdout: dict[str, Any] | None) -> dict[str, Any] | None:
+    summary = row["result"]
+    if summary is None and not folds:
+        return None
+    summary = summary or {}
+    return {
+        "cv": {
+            "folds": [_fold(f) for f in folds],
+            "summary": summary.get("summary"),
+            "failures": summary.get("failures", []),
+        },
+        "coefficients": summary.get("coefficients"),
+        "baseline": summary.get("baseline"),
+        "holdout": _holdout(holdout),
+        "verdict": None,  # the review gate decides verdicts; until then there is none
+        "provenance": summary.get("provenance"),
+    }
+
+
+def _fold(f: dict[str, Any]) -> dict[str, Any]:
+    out = {
+        "fold": f["fold"], "repeat": f["repeat"], "status": f["status"],
+        "train_rows": f["train_rows"], "test_rows": f["test_rows"],
+        "scores": f["scores"], "baseline_scores": f["baseline_scores"],
+        "fit_seconds": f["fit_seconds"], "score_seconds": f["score_seconds"],
+    }
+    if f["error"]:
+        out["error"] = f["error"]
+    return out
+
+
+def _holdout(holdout: dict[str, Any] | None) -> dict[str, Any]:
+    if holdout is None:
+        return {"released": False, "mode": "exact", "scores": None}
+    return {"released": True, "mode": "exact", "scores": holdout["scores"], "scored_at": iso(holdout["scored_at"])}
