@@ -1,0 +1,104 @@
+"""Resolution of submission requests against a dataset record and the catalog (no worker involved)."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import pytest
+
+from service.catalog import load_catalog
+from service.configs import (
+    DatasetRef,
+    ModelSpec,
+    PreprocessStep,
+    SubmissionRequest,
+    ValidationSpec,
+    config_fingerprint,
+    resolve,
+)
+from service.errors import ConfigRejected
+
+DATASET: dict[str, Any] = {
+    "id": "ds_1", "task": "regression", "target": "fuel_litres", "id_column": "route_id",
+    "group_column": None, "time_column": None, "classes": None,
+    "columns": [
+        {"name": "route_id", "kind": "categorical", "dtype": "object"},
+        {"name": "distance_km", "kind": "numeric", "dtype": "float64"},
+        {"name": "stops", "kind": "numeric", "dtype": "int64"},
+        {"name": "depot", "kind": "categorical", "dtype": "object"},
+        {"name": "fuel_litres", "kind": "numeric", "dtype": "float64"},
+    ],
+    "fold_plan": {"scheme": "kfold", "folds": 5, "seed": 42},
+}
+
+
+def _request(model: ModelSpec, **kw: Any) -> SubmissionRequest:
+    return SubmissionRequest(dataset=DatasetRef("ds_1"), model=model, **kw)
+
+
+def _pointers(exc: pytest.ExceptionInfo[ConfigRejected]) -> dict[str, str]:
+    return {p.pointer: p.detail for p in exc.value.problems}
+
+
+def test_defaults_fill_features_metrics_and_plan() -> None:
+    doc = resolve(_request(ModelSpec("Ridge", preprocess=(PreprocessStep("OneHotEncoder", ("depot",)),))),
+                  DATASET, load_catalog())
+    assert doc["model"]["features"] == ["distance_km", "stops", "depot"]
+    assert doc["metrics"] == ["rmse", "mae", "r2"]
+    assert doc["validation"] == {"scheme": "kfold", "folds": 5, "seed": 42, "repeats": 1, "plan_overridden": False}
+
+
+def test_every_problem_is_reported_at_once_with_its_pointer() -> None:
+    request = _request(
+        ModelSpec("LogisticRegression", features=("distance_km", "fuel_litres", "nowhere"),
+                  preprocess=(PreprocessStep("Wizard", ("distance_km",)),)),
+        metrics=("accuracy",), validation=ValidationSpec(folds=1, repeats=11),
+    )
+    with pytest.raises(ConfigRejected) as exc:
+        resolve(request, DATASET, load_catalog())
+    pointers = _pointers(exc)
+    assert "classification" in pointers["/model/estimator"] and "Ridge" in pointers["/model/estimator"]
+    assert "target" in pointers["/model/features/1"]
+    assert "nowhere" in pointers["/model/features/2"]
+    assert "StandardScaler" in pointers["/model/preprocess/0/transformer"]
+    assert "rmse" in pointers["/metrics/0"]
+    assert pointers["/validation/folds"] == "folds must be between 2 and 20, got 1"
+    assert "got 11" in pointers["/validation/repeats"]
+
+
+def test_categorical_feature_needs_an_encoder() -> None:
+    with pytest.raises(ConfigRejected) as exc:
+        resolve(_request(ModelSpec("Ridge")), DATASET, load_catalog())
+    assert "depot" in _pointers(exc)["/model/features/2"]
+
+
+def test_steps_on_overlapping_columns_must_name_the_same_columns() -> None:
+    steps = (PreprocessStep("SimpleImputer", ("distance_km", "stops")), PreprocessStep("StandardScaler", ("stops",)),
+             PreprocessStep("OneHotEncoder", ("depot",)))
+    with pytest.raises(ConfigRejected) as exc:
+        resolve(_request(ModelSpec("Ridge", preprocess=steps)), DATASET, load_catalog())
+    assert "/model/preprocess/1/columns/0" in _pointers(exc)
+    chained = (PreprocessStep("SimpleImputer", ("distance_km", "stops")),
+               PreprocessStep("StandardScaler", ("distance_km", "stops")), PreprocessStep("OneHotEncoder", ("depot",)))
+    doc = resolve(_request(ModelSpec("Ridge", preprocess=chained)), DATASET, load_catalog())
+    names = [s["transformer"] for s in doc["model"]["preprocess"]]
+    assert names == ["SimpleImputer", "StandardScaler", "OneHotEncoder"]
+
+
+def test_time_plans_allow_one_repeat_only() -> None:
+    dataset = {**DATASET, "fold_plan": {"scheme": "time", "folds": 5, "seed": 1}}
+    model = ModelSpec("Ridge", features=("distance_km",))
+    with pytest.raises(ConfigRejected) as exc:
+        resolve(_request(model, validation=ValidationSpec(repeats=2)), dataset, load_catalog())
+    assert "/validation/repeats" in _pointers(exc)
+
+
+def test_fingerprint_follows_what_determines_the_result() -> None:
+    model = ModelSpec("Ridge", params={"alpha": 1.0}, features=("distance_km",))
+    a = resolve(_request(model, label="first"), DATASET, load_catalog())
+    b = resolve(_request(model, label="second"), DATASET, load_catalog())
+    c = resolve(_request(ModelSpec("Ridge", params={"alpha": 2.0}, features=("distance_km",))), DATASET,
+                load_catalog())
+    assert config_fingerprint(a, "fp") == config_fingerprint(b, "fp")  # a label changes nothing computed
+    assert config_fingerprint(a, "fp") != config_fingerprint(c, "fp")
+    assert config_fingerprint(a, "fp") != config_fingerprint(a, "other-data")

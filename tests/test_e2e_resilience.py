@@ -1,0 +1,54 @@
+"""The records DB is the system of record: work survives a killed worker and a flushed Redis."""
+
+from __future__ import annotations
+
+import os
+import signal
+import time
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+from redis import Redis
+
+from tests.conftest import Stack, running_stack
+from tests.support.datasets import diabetes_frame, register
+from tests.support.servers import redis_server, start_worker
+
+
+@pytest.fixture
+def lonely_stack(tmp_path: Path) -> Iterator[Stack]:
+    """A stack of its own (own redis-server, one worker), so flushing Redis disturbs no other test."""
+    with redis_server(tmp_path) as url, running_stack(tmp_path / "data", url, "lonely", workers=1) as live:
+        yield live
+
+
+def test_work_survives_a_killed_worker_and_a_flushed_redis(lonely_stack: Stack) -> None:
+    stack = lonely_stack
+    (stack.data_dir).mkdir(exist_ok=True)
+    ds = register(stack.client("steward"), diabetes_frame(), name="resilience", target="target",
+                  task="regression")
+    reply = stack.client().post("/v1/submissions", json_body={
+        "dataset": ds["id"], "model": {"estimator": "GradientBoostingRegressor",
+                                       "params": {"n_estimators": 400, "max_depth": 4}}})
+    assert reply.status == 202, reply.text
+    sub_id = reply.json()["id"]
+    deadline = time.monotonic() + 60
+    while stack.client().get(f"/v1/submissions/{sub_id}").json()["state"] == "queued":
+        assert time.monotonic() < deadline, "no worker picked the submission up"
+        time.sleep(0.05)
+
+    # Lose the machine running the worker (parent and work horse), then lose everything Redis held.
+    victim = stack.workers[0]
+    os.killpg(victim.pid, signal.SIGKILL)
+    victim.wait(timeout=10)
+    Redis.from_url(stack.settings.redis_url).flushall()
+
+    started = time.monotonic()
+    stack.workers.append(start_worker(stack.env, "lonely-replacement", stack.log_path))
+    doc = stack.wait_for(sub_id, timeout=240)
+    recovered_in = time.monotonic() - started
+    assert doc["state"] == "succeeded", doc
+    assert doc["progress"] == {"folds_done": 5, "folds_total": 5}
+    assert doc["result"]["holdout"]["released"] is True
+    print(f"recovered after worker loss and Redis flush in {recovered_in:.1f} s")
