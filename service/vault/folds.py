@@ -1,0 +1,271 @@
+"""Fold plans: which development rows each cross-validation fold trains and tests on.
+
+A plan (scheme, folds, seed) is fixed per dataset, so every submission on it is scored on the same
+folds and two submissions can be compared fold by fold. ``fold_splits`` is a pure function of the
+plan and the split keys: the same plan on the same rows always gives the same folds.
+
+Schemes, and what each promises:
+    kfold       shuffled k-fold; index-for-index what scikit-learn's
+                ``KFold(n_splits, shuffle=True, random_state=seed)`` gives
+    stratified  every class spread evenly over the folds; index-for-index
+                ``StratifiedKFold(n_splits, shuffle=True, random_state=seed)``
+    group       no group in both the train and the test rows of a fold; fold sizes balanced
+    time        forward chaining: rows sorted by time, cut into folds + 1 contiguous chunks; fold i
+                tests chunk i + 1 and trains on every earlier chunk, never on the future (the chunk
+                sizes are scikit-learn's ``TimeSeriesSplit(n_splits)`` on the time-sorted rows)
+The scikit-learn algorithms are reproduced with numpy here because the service core must not import
+scikit-learn; tests check the equality against scikit-learn itself.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from service.errors import DatasetRejected, FieldProblem, InputError
+from service.vault.tables import describe_value, time_order_key
+
+FOLD_SCHEMES: tuple[str, ...] = ("kfold", "stratified", "group", "time", "contiguous")
+# Schemes whose folds do not depend on the seed, so a repeat would only rerun the same folds.
+SEEDLESS_SCHEMES: frozenset[str] = frozenset({"time", "contiguous"})
+MIN_FOLDS, MAX_FOLDS = 2, 20
+MAX_SEED = 2**32 - 1  # numpy's RandomState, and so scikit-learn's random_state, take seeds up to here
+
+
+@dataclass(frozen=True)
+class FoldPlan:
+    """The folds every submission on a dataset is scored on; validated on construction."""
+
+    scheme: str
+    folds: int
+    seed: int
+
+    def __post_init__(self) -> None:
+        problems = plan_problems(self.folds)
+        if self.scheme not in FOLD_SCHEMES:
+            problems.append(FieldProblem(
+                "/fold_plan/scheme", f"fold scheme must be one of {', '.join(FOLD_SCHEMES)}, got {self.scheme!r}"
+            ))
+        if isinstance(self.seed, bool) or not isinstance(self.seed, int) or not 0 <= self.seed <= MAX_SEED:
+            problems.append(FieldProblem(
+                "/fold_plan/seed", f"fold seed must be an integer from 0 to {MAX_SEED}, got {self.seed!r}"
+            ))
+        if problems:
+            raise InputError(problems[0].detail, problems)
+
+    def to_document(self) -> dict[str, Any]:
+        """Return the plan as the JSON document stored with the dataset."""
+        return {"scheme": self.scheme, "folds": self.folds, "seed": self.seed}
+
+    @classmethod
+    def from_document(cls, document: dict[str, Any]) -> FoldPlan:
+        """Rebuild a plan from its stored document."""
+        return cls(scheme=document["scheme"], folds=document["folds"], seed=document["seed"])
+
+
+@dataclass(frozen=True)
+class SplitKeys:
+    """What the schemes split on: the row count and, when declared, target, groups and time order."""
+
+    n_rows: int
+    y: np.ndarray | None = None
+    groups: np.ndarray | None = None
+    time: np.ndarray | None = None
+
+
+@dataclass(frozen=True, eq=False)
+class Split:
+    """One fold of one repeat: sorted indices into the development rows."""
+
+    repeat: int
+    fold: int
+    train: np.ndarray
+    test: np.ndarray
+
+
+def plan_problems(folds: Any) -> list[FieldProblem]:
+    """Return what is wrong with a requested number of folds (empty when it is allowed)."""
+    if isinstance(folds, bool) or not isinstance(folds, int) or not MIN_FOLDS <= folds <= MAX_FOLDS:
+        return [FieldProblem("/folds", f"folds must be between {MIN_FOLDS} and {MAX_FOLDS}, got {folds!r}")]
+    return []
+
+
+def default_plan_scheme(task: str, group_column: str | None, time_column: str | None) -> str:
+    """Return the fold scheme that follows the declared columns (time over group, as for the holdout)."""
+    if time_column:
+        return "time"
+    if group_column:
+        return "group"
+    return "stratified" if task == "classification" else "kfold"
+
+
+def split_keys_from_frame(
+    dev_df: pd.DataFrame,
+    plan: FoldPlan,
+    target: str | None,
+    group_column: str | None,
+    time_column: str | None,
+) -> SplitKeys:
+    """Collect the split keys of the development rows for ``plan``."""
+    y = dev_df[target].to_numpy() if target else None
+    groups = dev_df[group_column].to_numpy() if group_column else None
+    time = time_order_key(dev_df[time_column], "/time_column") if time_column else None
+    if plan.scheme == "group" and groups is None:
+        raise _rejected("/group_column", "fold scheme 'group' needs a group_column")
+    if plan.scheme == "time" and time is None:
+        raise _rejected("/time_column", "fold scheme 'time' needs a time_column")
+    return SplitKeys(n_rows=len(dev_df), y=y, groups=groups, time=time)
+
+
+def check_plan_feasible(plan: FoldPlan, keys: SplitKeys) -> None:
+    """Raise DatasetRejected when the rows cannot be cut into the plan's folds."""
+    folds = plan.folds
+    if keys.n_rows < folds:
+        raise _rejected("/folds", f"{folds} folds need at least {folds} development rows, got {keys.n_rows}")
+    if plan.scheme == "stratified":
+        if keys.y is None:
+            raise _rejected("/target", "fold scheme 'stratified' needs the target values")
+        labels, counts = _class_counts(keys.y)
+        short = [(label, int(count)) for label, count in zip(labels, counts, strict=True) if count < folds]
+        if short:
+            listed = ", ".join(f"{describe_value(label)} has {count}" for label, count in short[:5])
+            more = f" and {len(short) - 5} more" if len(short) > 5 else ""
+            raise _rejected(
+                "/target",
+                f"every class needs at least {folds} development rows for {folds} folds: {listed}{more}; "
+                "use fewer folds, merge rare classes, or drop their rows",
+            )
+    elif plan.scheme == "group":
+        if keys.groups is None:
+            raise _rejected("/group_column", "fold scheme 'group' needs the group values")
+        n_groups = len(pd.unique(keys.groups))
+        if n_groups < folds:
+            raise _rejected(
+                "/group_column",
+                f"{folds} group folds need at least {folds} groups in the development rows, got {n_groups}",
+            )
+    elif plan.scheme == "time":
+        if keys.time is None:
+            raise _rejected("/time_column", "fold scheme 'time' needs the time values")
+        if keys.n_rows // (folds + 1) < 1:
+            raise _rejected(
+                "/folds", f"{folds} time folds need at least {folds + 1} development rows, got {keys.n_rows}"
+            )
+
+
+def fold_splits(plan: FoldPlan, keys: SplitKeys, repeats: int = 1) -> list[Split]:
+    """Return the train/test indices of every fold of every repeat; repeat r uses seed + r."""
+    if isinstance(repeats, bool) or not isinstance(repeats, int) or repeats < 1:
+        raise _invalid("/validation/repeats", f"repeats must be a positive integer, got {repeats!r}")
+    if plan.scheme in SEEDLESS_SCHEMES and repeats != 1:
+        raise _invalid(
+            "/validation/repeats",
+            f"{plan.scheme} folds are the same on every repeat, so repeats must be 1, got {repeats}",
+        )
+    if plan.seed + repeats - 1 > MAX_SEED:
+        raise _invalid("/validation/repeats", f"seed {plan.seed} + {repeats} repeats exceeds {MAX_SEED}")
+    check_plan_feasible(plan, keys)
+    splits: list[Split] = []
+    for repeat in range(repeats):
+        seed = plan.seed + repeat
+        if plan.scheme == "time":
+            assert keys.time is not None
+            pairs = _forward_chaining(keys.time, plan.folds)
+        else:
+            fold_of_row = _test_fold_of_rows(plan.scheme, plan.folds, seed, keys)
+            pairs = [(np.flatnonzero(fold_of_row != k), np.flatnonzero(fold_of_row == k)) for k in range(plan.folds)]
+        for fold, (train, test) in enumerate(pairs):
+            splits.append(Split(repeat, fold, train.astype(np.int64), test.astype(np.int64)))
+    return splits
+
+
+def _test_fold_of_rows(scheme: str, folds: int, seed: int, keys: SplitKeys) -> np.ndarray:
+    if scheme == "kfold":
+        return _kfold(keys.n_rows, folds, seed)
+    if scheme == "contiguous":
+        return _contiguous(keys.n_rows, folds)
+    if scheme == "stratified":
+        assert keys.y is not None
+        return _stratified(keys.y, folds, seed)
+    assert keys.groups is not None
+    return _grouped(keys.groups, folds, seed)
+
+
+def _contiguous(n_rows: int, folds: int) -> np.ndarray:
+    # scikit-learn KFold(shuffle=False), what cv=<int> means for a regressor: rows in their stored order
+    # cut into contiguous chunks, the first n % k one row larger. For data whose order carries no signal.
+    sizes = np.full(folds, n_rows // folds, dtype=np.int64)
+    sizes[: n_rows % folds] += 1
+    return np.repeat(np.arange(folds), sizes)
+
+
+def _kfold(n_rows: int, folds: int, seed: int) -> np.ndarray:
+    # scikit-learn KFold(shuffle=True): shuffle the positions with RandomState(seed), then cut them
+    # into contiguous chunks, the first n % k one row larger.
+    indices = np.arange(n_rows)
+    np.random.RandomState(seed).shuffle(indices)
+    sizes = np.full(folds, n_rows // folds, dtype=np.int64)
+    sizes[: n_rows % folds] += 1
+    fold_of_row = np.empty(n_rows, dtype=np.int64)
+    fold_of_row[indices] = np.repeat(np.arange(folds), sizes)
+    return fold_of_row
+
+
+def _stratified(y: np.ndarray, folds: int, seed: int) -> np.ndarray:
+    # scikit-learn StratifiedKFold(shuffle=True): classes numbered by first appearance, per-class fold
+    # sizes dealt round-robin over the class-sorted rows, then each class's fold labels shuffled.
+    rng = np.random.RandomState(seed)
+    codes, _ = pd.factorize(y)  # first-appearance order, as StratifiedKFold's class_perm
+    n_classes = int(codes.max()) + 1
+    ordered = np.sort(codes)
+    allocation = np.asarray([np.bincount(ordered[i::folds], minlength=n_classes) for i in range(folds)])
+    fold_of_row = np.empty(len(codes), dtype=np.int64)
+    for k in range(n_classes):
+        labels = np.arange(folds).repeat(allocation[:, k])
+        rng.shuffle(labels)
+        fold_of_row[codes == k] = labels
+    return fold_of_row
+
+
+def _grouped(groups: np.ndarray, folds: int, seed: int) -> np.ndarray:
+    # Largest group first onto the fold with the fewest rows so far (as scikit-learn's unshuffled
+    # GroupKFold does); the groups are shuffled by the seed first, so equal-sized groups land on
+    # different folds for different seeds and repeats. Greedy filling keeps the largest and the
+    # smallest fold within one group's size of each other.
+    codes, labels = pd.factorize(groups)
+    sizes = np.bincount(codes, minlength=len(labels))
+    shuffled = np.random.RandomState(seed).permutation(len(labels))
+    order = shuffled[np.argsort(-sizes[shuffled], kind="stable")]
+    load = np.zeros(folds, dtype=np.int64)
+    fold_of_group = np.empty(len(labels), dtype=np.int64)
+    for group in order:
+        lightest = int(np.argmin(load))
+        fold_of_group[group] = lightest
+        load[lightest] += sizes[group]
+    return fold_of_group[codes]
+
+
+def _forward_chaining(time: np.ndarray, folds: int) -> list[tuple[np.ndarray, np.ndarray]]:
+    order = np.argsort(time, kind="stable")  # equal times keep their row order
+    n_rows = len(order)
+    chunk = n_rows // (folds + 1)
+    pairs = []
+    for start in range(n_rows - folds * chunk, n_rows, chunk):
+        pairs.append((np.sort(order[:start]), np.sort(order[start : start + chunk])))
+    return pairs
+
+
+def _class_counts(y: np.ndarray) -> tuple[list[Any], np.ndarray]:
+    codes, labels = pd.factorize(y)
+    return list(labels), np.bincount(codes[codes >= 0], minlength=len(labels))
+
+
+def _rejected(pointer: str, detail: str) -> DatasetRejected:
+    return DatasetRejected(detail, [FieldProblem(pointer, detail)])
+
+
+def _invalid(pointer: str, detail: str) -> InputError:
+    return InputError(detail, [FieldProblem(pointer, detail)])

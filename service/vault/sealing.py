@@ -1,0 +1,199 @@
+"""Choose the holdout rows of a dataset: the partition that is sealed away at registration.
+
+The mask is a pure function of the table, the scheme, the fraction and the sealing seed. The seed
+is drawn by the server (``secrets``) and never leaves it, so nobody outside can recompute which
+rows were sealed; keeping the function deterministic lets the service itself re-derive and check
+a seal if it ever has to.
+
+Schemes:
+    random      a uniformly random subset of rows
+    stratified  within each class of the target, the same fraction (class proportions kept)
+    group       whole groups: every group lies entirely on one side
+    time        the latest rows by the time column (no seed involved)
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+
+from service.errors import DatasetRejected, FieldProblem
+from service.vault.tables import time_order_key
+
+HOLDOUT_SCHEMES: tuple[str, ...] = ("random", "stratified", "group", "time")
+MAX_FRACTION = 0.5
+
+
+def default_fraction(n_rows: int) -> float:
+    """Return the holdout fraction for a table of ``n_rows`` rows.
+
+    20 % under 100k rows, 10 % under 1M, 1 % from 1M: common practice, no published source. Large
+    tables need a smaller share for the same precision of a holdout score.
+    """
+    if n_rows < 100_000:
+        return 0.2
+    if n_rows < 1_000_000:
+        return 0.1
+    return 0.01
+
+
+def default_scheme(task: str, group_column: str | None, time_column: str | None) -> str:
+    """Return the holdout scheme that follows the declared columns.
+
+    A time column wins over a group column: when both are declared, holding out the future is the
+    promise that matters for a forecast, and it is the one a random or grouped cut would break.
+    """
+    if time_column:
+        return "time"
+    if group_column:
+        return "group"
+    return "stratified" if task == "classification" else "random"
+
+
+def holdout_problems(
+    scheme: str, fraction: float | None, *, task: str | None, group_column: str | None, time_column: str | None
+) -> list[FieldProblem]:
+    """Return what is wrong with a holdout request (empty when it can be honoured).
+
+    ``task`` or ``fraction`` None skips the checks that need them (the mask does not know the task,
+    and a default fraction is only known once the rows are counted).
+    """
+    problems = []
+    if scheme not in HOLDOUT_SCHEMES:
+        problems.append(FieldProblem(
+            "/holdout_scheme", f"holdout_scheme must be one of {', '.join(HOLDOUT_SCHEMES)}, got {scheme!r}"
+        ))
+    elif scheme == "group" and not group_column:
+        problems.append(FieldProblem(
+            "/holdout_scheme", "holdout_scheme 'group' needs a group_column; declare which column holds the groups"
+        ))
+    elif scheme == "time" and not time_column:
+        problems.append(FieldProblem(
+            "/holdout_scheme", "holdout_scheme 'time' needs a time_column; declare which column holds the times"
+        ))
+    elif scheme == "stratified" and task is not None and task != "classification":
+        problems.append(FieldProblem(
+            "/holdout_scheme", f"holdout_scheme 'stratified' needs task 'classification', got task {task!r}"
+        ))
+    if fraction is not None and (
+        isinstance(fraction, bool) or not isinstance(fraction, int | float) or not 0 < fraction <= MAX_FRACTION
+    ):
+        problems.append(FieldProblem(
+            "/holdout_fraction", f"holdout_fraction must be greater than 0 and at most {MAX_FRACTION}, got {fraction!r}"
+        ))
+    return problems
+
+
+def holdout_count(n_rows: int, fraction: float) -> int:
+    """Return how many rows a fraction holds out: rounded up, as scikit-learn's train_test_split does.
+
+    At least one row is held out and at least one is kept.
+    """
+    return min(max(math.ceil(fraction * n_rows), 1), n_rows - 1)
+
+
+def holdout_mask(
+    df: pd.DataFrame,
+    scheme: str,
+    fraction: float,
+    seed: int,
+    *,
+    target: str | None,
+    group_column: str | None,
+    time_column: str | None,
+) -> np.ndarray:
+    """Return a boolean array over the rows of ``df``: True for the rows to seal away."""
+    problems = holdout_problems(scheme, fraction, task=None, group_column=group_column, time_column=time_column)
+    if problems:
+        raise DatasetRejected(problems[0].detail, problems)
+    n_rows = len(df)
+    if n_rows < 2:
+        raise _rejected("/file", f"a holdout needs at least 2 rows, got {n_rows}")
+    n_holdout = holdout_count(n_rows, fraction)
+    rng = np.random.default_rng(seed)
+    if scheme == "random":
+        chosen = rng.permutation(n_rows)[:n_holdout]
+    elif scheme == "stratified":
+        if target is None:
+            raise _rejected("/target", "holdout_scheme 'stratified' needs a target")
+        chosen = _stratified(df[target].to_numpy(), n_holdout, rng)
+    elif scheme == "group":
+        assert group_column is not None  # holdout_problems checked it
+        chosen = _grouped(df[group_column], n_holdout, rng)
+    else:
+        assert time_column is not None
+        chosen = _latest(df[time_column], n_holdout)
+    mask = np.zeros(n_rows, dtype=bool)
+    mask[chosen] = True
+    return mask
+
+
+def stratified_counts(class_sizes: np.ndarray, n_holdout: int) -> np.ndarray:
+    """Return how many rows of each class the stratified scheme holds out.
+
+    Each class gets its exact share rounded down, and the rows still missing go to the classes
+    with the largest remainders (largest-remainder apportionment, ties to the earlier class). The
+    counts depend on the class sizes alone, not on the seed, so a caller can check before sealing
+    what each class keeps.
+    """
+    n_rows = int(class_sizes.sum())
+    shares = n_holdout * class_sizes / n_rows
+    counts = np.floor(shares).astype(np.int64)
+    left = n_holdout - int(counts.sum())
+    if left:
+        order = np.argsort(-(shares - counts), kind="stable")
+        counts[order[:left]] += 1
+    return counts
+
+
+def class_codes(y: np.ndarray | pd.Series) -> tuple[np.ndarray, np.ndarray, list[object]]:
+    """Number the classes of ``y`` by first appearance; return codes, class sizes and labels."""
+    codes, labels = pd.factorize(np.asarray(y))
+    if (codes < 0).any():
+        raise _rejected("/target", "every row needs a target value; some are missing")
+    return codes, np.bincount(codes, minlength=len(labels)), list(labels)
+
+
+def _stratified(y: np.ndarray, n_holdout: int, rng: np.random.Generator) -> np.ndarray:
+    codes, sizes, _ = class_codes(y)
+    counts = stratified_counts(sizes, n_holdout)
+    chosen = [rng.permutation(np.flatnonzero(codes == k))[:count] for k, count in enumerate(counts)]
+    return np.concatenate(chosen) if chosen else np.empty(0, dtype=np.int64)
+
+
+def _grouped(groups: pd.Series, n_holdout: int, rng: np.random.Generator) -> np.ndarray:
+    codes, labels = pd.factorize(groups)
+    if (codes < 0).any():
+        raise _rejected("/group_column", f"group column {groups.name!r} has missing values; every row needs a group")
+    if len(labels) < 2:
+        raise _rejected(
+            "/group_column",
+            f"group column {groups.name!r} has a single group; a group holdout needs at least 2 groups",
+        )
+    sizes = np.bincount(codes)
+    order = rng.permutation(len(labels))
+    held_rows = np.cumsum(sizes[order])[:-1]  # holding out the first 1 .. n_groups-1 shuffled groups
+    n_groups_held = int(np.argmin(np.abs(held_rows - n_holdout))) + 1
+    return np.flatnonzero(np.isin(codes, order[:n_groups_held]))
+
+
+def _latest(times: pd.Series, n_holdout: int) -> np.ndarray:
+    key = time_order_key(times, "/time_column")
+    order = np.argsort(key, kind="stable")
+    ordered = key[order]
+    # Cut only where the time strictly increases, so no timestamp lies on both sides.
+    cuts = np.flatnonzero(ordered[1:] > ordered[:-1]) + 1
+    if len(cuts) == 0:
+        raise _rejected(
+            "/time_column",
+            f"time column {times.name!r} has a single value; a time holdout needs at least 2 distinct times",
+        )
+    wanted = len(key) - n_holdout
+    cut = int(cuts[np.argmin(np.abs(cuts - wanted))])
+    return order[cut:]
+
+
+def _rejected(pointer: str, detail: str) -> DatasetRejected:
+    return DatasetRejected(detail, [FieldProblem(pointer, detail)])
