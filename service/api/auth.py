@@ -1,0 +1,62 @@
+"""Who is calling, what their role allows, and which records their team may see.
+
+Records of another team answer 404 exactly like ids that do not exist, so a key can never learn
+whether some other team's dataset or submission id is real.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from flask import g, request
+
+from service.api import service_context
+from service.api.problems import InvalidToken
+from service.errors import Forbidden, NotFound, Unauthenticated
+from service.records import datasets, keys, submissions
+from service.records.keys import KeyInfo
+
+_SCHEME = "bearer"
+
+
+def current_key() -> KeyInfo:
+    """Authenticate the request's bearer token once per request."""
+    cached: KeyInfo | None = g.get("sealfold_key")
+    if cached is not None:
+        return cached
+    header = request.headers.get("Authorization", "")
+    if not header.strip():
+        raise Unauthenticated("send an API key as 'Authorization: Bearer <key>'")
+    scheme, _, token = header.strip().partition(" ")
+    if scheme.lower() != _SCHEME:
+        raise Unauthenticated(f"the Authorization header must use the Bearer scheme, got {scheme[:20]!r}")
+    token = token.strip()
+    info = keys.authenticate(service_context().engine, token) if token else None
+    if info is None:
+        raise InvalidToken("the bearer key is not valid or has been revoked")
+    g.sealfold_key = info
+    return info
+
+
+def require(role: str) -> KeyInfo:
+    """Return the calling key if its role includes ``role``; 401 without a key, 403 with a weaker one."""
+    caller = current_key()
+    if not caller.can(role):
+        raise Forbidden(f"this needs a {role} key; key {caller.id} is a {caller.role} key")
+    return caller
+
+
+def team_dataset(caller: KeyInfo, ds_id: str) -> dict[str, Any]:
+    """Return the public record of one of the caller's team's datasets, else 404."""
+    record = datasets.get(service_context().engine, ds_id)
+    if record is None or record["team"] != caller.team:
+        raise NotFound(f"no dataset {ds_id!r} in team {caller.team!r}")
+    return record
+
+
+def team_submission(caller: KeyInfo, sub_id: str) -> dict[str, Any]:
+    """Return the row of one of the caller's team's submissions, else 404."""
+    row = submissions.get(service_context().engine, sub_id)
+    if row is None or row["team"] != caller.team:
+        raise NotFound(f"no submission {sub_id!r} in team {caller.team!r}")
+    return row

@@ -1,0 +1,176 @@
+"""Dataset endpoints: register and seal (steward), read metadata, download the development partition.
+
+Registration takes a multipart upload or, as JSON, a path under the configured import root. An
+upload is spooled to a temporary file under the data dir (not held in memory twice) and removed
+afterwards whatever happens; ``service.registration`` removes its own partial files on failure.
+"""
+
+from __future__ import annotations
+
+import tempfile
+from pathlib import Path, PurePosixPath
+from typing import Any
+
+from flask import Response, request, stream_with_context
+from flask.views import MethodView
+from marshmallow import ValidationError
+from werkzeug.datastructures import FileStorage
+from werkzeug.exceptions import BadRequest
+
+from service.api import SealfoldBlueprint, json_response, service_context
+from service.api.auth import current_key, team_dataset
+from service.api.schemas import (
+    DatasetDeclarationSchema,
+    DatasetImportSchema,
+    DatasetListSchema,
+    DatasetSchema,
+    DatasetUploadSchema,
+)
+from service.errors import InputError, UnsupportedFormat, field_error
+from service.records import datasets
+from service.registration import DatasetDeclaration, register_dataset
+from service.settings import Settings
+from service.vault.store import iter_development_csv
+
+blp = SealfoldBlueprint("datasets", __name__, url_prefix="/v1/datasets",
+                        description="Register, seal and read datasets.")
+
+_BY_SUFFIX = {".csv": "csv", ".parquet": "parquet", ".pq": "parquet"}
+_BY_MIMETYPE = {
+    "text/csv": "csv", "application/csv": "csv",
+    "application/vnd.apache.parquet": "parquet", "application/x-parquet": "parquet",
+}
+_REGISTER_BODY = {
+    "required": True,
+    "content": {
+        "multipart/form-data": {"schema": DatasetUploadSchema},
+        "application/json": {"schema": DatasetImportSchema},
+    },
+}
+
+
+def detect_format(filename: str, mimetype: str) -> str:
+    """Return "csv" or "parquet" from the file name, else from the content type; 415 otherwise."""
+    fmt = _BY_SUFFIX.get(PurePosixPath(filename).suffix.lower()) or _BY_MIMETYPE.get(mimetype.lower())
+    if fmt is None:
+        raise UnsupportedFormat(
+            f"the file must be CSV (.csv or text/csv) or Parquet (.parquet or application/vnd.apache.parquet), "
+            f"got file name {filename!r} with content type {mimetype or 'none'!r}"
+        )
+    return fmt
+
+
+def import_path(settings: Settings, raw: str) -> Path:
+    """Resolve a client-given path inside the import root; anything escaping it is refused."""
+    root = settings.import_root
+    if root is None:
+        raise field_error(InputError, "/path", "importing by path is disabled on this server; upload the "
+                          "file as multipart/form-data instead")
+    relative = PurePosixPath(raw)
+    candidate = (root / relative).resolve()
+    if relative.is_absolute() or ".." in relative.parts or not candidate.is_relative_to(root.resolve()):
+        raise field_error(InputError, "/path", f"path must be relative to the import root and stay inside "
+                          f"it, got {raw!r}")
+    if not candidate.is_file():
+        raise field_error(InputError, "/path", f"no file {raw!r} under the import root")
+    return candidate
+
+
+def _declaration(loaded: dict[str, Any]) -> DatasetDeclaration:
+    fields = {k: v for k, v in loaded.items() if k not in ("file", "path")}
+    return DatasetDeclaration(**fields)
+
+
+def _register_upload(settings: Settings) -> dict[str, Any]:
+    caller = current_key()
+    messages: dict[str, Any] = {}
+    try:
+        loaded = DatasetDeclarationSchema().load(request.form.to_dict())
+    except ValidationError as exc:
+        messages.update(exc.messages_dict)
+    upload: FileStorage | None = request.files.get("file")
+    if upload is None or not upload.filename:
+        messages["file"] = ["send the dataset as the multipart file field 'file'"]
+    if messages:
+        raise ValidationError(messages)
+    assert upload is not None
+    fmt = detect_format(upload.filename or "", upload.mimetype or "")
+    spool_dir = settings.data_dir / "uploads"
+    spool_dir.mkdir(parents=True, exist_ok=True)
+    with tempfile.TemporaryDirectory(dir=spool_dir) as tmp:
+        spooled = Path(tmp) / f"upload.{fmt}"
+        upload.save(spooled)
+        return register_dataset(settings, service_context().engine, caller, spooled, fmt,
+                                _declaration(loaded))
+
+
+def _register_import(settings: Settings) -> dict[str, Any]:
+    caller = current_key()
+    body = request.get_json(silent=True)
+    if body is None:
+        raise BadRequest("the request body is not valid JSON")
+    loaded = DatasetImportSchema().load(body)
+    source = import_path(settings, loaded["path"])
+    fmt = detect_format(source.name, "")
+    return register_dataset(settings, service_context().engine, caller, source, fmt, _declaration(loaded))
+
+
+@blp.route("")
+class DatasetCollection(MethodView):
+    @blp.requires("steward")
+    @blp.doc(requestBody=_REGISTER_BODY)
+    @blp.response(201, DatasetSchema, headers={"Location": {"schema": {"type": "string"}}})
+    @blp.problem(413, "The upload exceeds the server's size limit")
+    @blp.problem(415, "Neither CSV nor Parquet, or neither multipart nor JSON")
+    @blp.problem(422, "The dataset or its declaration is rejected")
+    def post(self) -> Response:
+        """Register a dataset and seal its holdout (steward)."""
+        settings = service_context().settings
+        if request.mimetype == "multipart/form-data":
+            record = _register_upload(settings)
+        elif request.is_json:
+            record = _register_import(settings)
+        else:
+            raise UnsupportedFormat(f"send multipart/form-data with a file, or application/json with a path; "
+                                    f"got {request.mimetype or 'no content type'}")
+        return json_response(record, 201, {"Location": f"/v1/datasets/{record['id']}"})
+
+    @blp.requires("submitter")
+    @blp.response(200, DatasetListSchema)
+    def get(self) -> Response:
+        """List the team's datasets, newest first."""
+        team = current_key().team
+        return json_response({"datasets": datasets.list_for_team(service_context().engine, team)})
+
+
+@blp.route("/<ds_id>")
+class DatasetItem(MethodView):
+    @blp.requires("submitter")
+    @blp.response(200, DatasetSchema)
+    @blp.problem(404, "No such dataset in the caller's team")
+    def get(self, ds_id: str) -> Response:
+        """Read one dataset's metadata: columns, rows per partition, fold plan, fingerprints."""
+        return json_response(team_dataset(current_key(), ds_id))
+
+
+@blp.route("/<ds_id>/development")
+class DevelopmentPartition(MethodView):
+    @blp.requires("submitter")
+    @blp.problem(404, "No such dataset in the caller's team")
+    @blp.doc(responses={"200": {"description": "The development rows as CSV, row_id first",
+                                "content": {"text/csv": {"schema": {"type": "string"}}}}})
+    def get(self, ds_id: str) -> Response:
+        """Download the development partition as CSV, with its stable row_id column first."""
+        record = team_dataset(current_key(), ds_id)
+        chunks = iter_development_csv(service_context().settings, record["id"])
+        # Read the first chunk now, so a missing or broken partition is a problem response and not a
+        # truncated 200.
+        first = next(chunks, "")
+
+        def body() -> Any:
+            yield first
+            yield from chunks
+
+        response = Response(stream_with_context(body()), mimetype="text/csv")
+        response.headers["Content-Disposition"] = f'attachment; filename="{record["id"]}-development.csv"'
+        return response

@@ -1,0 +1,415 @@
+"""Marshmallow schemas of the v1 surface: requests are loaded with them, responses documented by them.
+
+Request schemas check shape and types and turn bodies into the core's frozen values (the submission
+body becomes a ``configs.SubmissionRequest``); what a value means -- a column of the dataset, an
+estimator in the catalog, a fold count in range -- is the core's to judge, so each rule lives once.
+Response schemas only describe documents for the OpenAPI spec: views send the core's documents
+unfiltered, so a field the core adds is never silently dropped.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from marshmallow import EXCLUDE, Schema, ValidationError, fields, post_load, pre_load, validate
+
+from service.configs import (
+    MAX_FOLDS,
+    MAX_REPEATS,
+    DatasetRef,
+    ModelSpec,
+    PreprocessStep,
+    SubmissionRequest,
+    ValidationSpec,
+)
+from service.records.keys import ROLES
+from service.vault import folds as fold_plans
+
+TASKS = ("regression", "classification")
+HOLDOUT_SCHEMES = ("random", "stratified", "group", "time")
+STATES = ("queued", "running", "succeeded", "failed", "canceled")
+_DATETIME = {"format": "date-time"}
+
+
+# -- errors ---------------------------------------------------------------------------------------
+
+class FieldProblemSchema(Schema):
+    pointer = fields.String(metadata={"description": "JSON pointer (RFC 6901) into the request body"})
+    detail = fields.String()
+
+
+class ProblemSchema(Schema):
+    """RFC 9457 problem details; ``errors`` lists field problems when there are any."""
+
+    type = fields.String(metadata={"example": "urn:sealfold:problem:invalid-input"})
+    title = fields.String()
+    status = fields.Integer()
+    detail = fields.String()
+    errors = fields.List(fields.Nested(FieldProblemSchema))
+
+
+# -- datasets -------------------------------------------------------------------------------------
+
+class DatasetDeclarationSchema(Schema):
+    """What a steward declares about a dataset; omitted options take the server's defaults.
+
+    Only types are checked here; ``service.registration`` judges the values (names a column, in range).
+    """
+
+    name = fields.String(required=True, metadata={"maxLength": 200})
+    target = fields.String(required=True, metadata={"description": "the column to predict"})
+    task = fields.String(required=True, metadata={"enum": list(TASKS)})
+    id_column = fields.String(load_default=None, allow_none=True, metadata={
+        "description": "unique row ids; the development download's row_id is taken from it"})
+    group_column = fields.String(load_default=None, allow_none=True, metadata={
+        "description": "rows of one group never straddle holdout and development, nor a fold"})
+    time_column = fields.String(load_default=None, allow_none=True, metadata={
+        "description": "the latest rows are held out; folds chain forward in time"})
+    holdout_fraction = fields.Float(load_default=None, allow_none=True, metadata={
+        "description": "default by size: 0.2 under 100k rows, 0.1 from 100k, 0.01 from 1M"})
+    holdout_scheme = fields.String(load_default=None, allow_none=True, metadata={
+        "enum": list(HOLDOUT_SCHEMES),
+        "description": "default: time, group, stratified or random from the declared columns and task"})
+    folds = fields.Integer(load_default=5, metadata={"minimum": fold_plans.MIN_FOLDS,
+                                                     "maximum": fold_plans.MAX_FOLDS})
+    fold_scheme = fields.String(load_default=None, allow_none=True, metadata={
+        "enum": list(fold_plans.FOLD_SCHEMES),
+        "description": "default: time, group, stratified or kfold (shuffled) from the declared columns and "
+                       "task; contiguous = unshuffled k-fold in the stored row order"})
+
+    @pre_load
+    def _blank_is_omitted(self, data: Any, **_: Any) -> Any:
+        # HTML forms and curl -F send "" for a field left empty; that means "not declared".
+        if isinstance(data, dict):
+            return {k: v for k, v in data.items() if v != ""}
+        return data
+
+
+class DatasetUploadSchema(DatasetDeclarationSchema):
+    """multipart/form-data registration: the declaration as form fields plus the file."""
+
+    file = fields.Raw(required=True, metadata={"type": "string", "format": "binary",
+                                               "description": "CSV or Parquet, by file name or type"})
+
+
+class DatasetImportSchema(DatasetDeclarationSchema):
+    """JSON registration of a file already on the server, under the configured import root."""
+
+    path = fields.String(required=True, validate=validate.Length(min=1),
+                         metadata={"description": "relative to SEALFOLD_IMPORT_ROOT"})
+
+
+class ColumnSchema(Schema):
+    name = fields.String()
+    kind = fields.String(validate=validate.OneOf(("numeric", "categorical", "datetime")))
+    dtype = fields.String()
+
+
+class FoldPlanSchema(Schema):
+    scheme = fields.String(validate=validate.OneOf(fold_plans.FOLD_SCHEMES))
+    folds = fields.Integer()
+    seed = fields.Integer()
+
+
+class PartitionRowsSchema(Schema):
+    total = fields.Integer()
+    development = fields.Integer()
+    holdout = fields.Integer()
+
+
+class HoldoutPlanSchema(Schema):
+    scheme = fields.String(validate=validate.OneOf(HOLDOUT_SCHEMES))
+    fraction = fields.Float()
+
+
+class DatasetSchema(Schema):
+    """A dataset's public record: never the sealing seed, holdout rows or the holdout's fingerprint."""
+
+    id = fields.String()
+    team = fields.String()
+    name = fields.String()
+    task = fields.String(validate=validate.OneOf(TASKS))
+    target = fields.String()
+    id_column = fields.String(allow_none=True)
+    group_column = fields.String(allow_none=True)
+    time_column = fields.String(allow_none=True)
+    columns = fields.List(fields.Nested(ColumnSchema))
+    classes = fields.List(fields.String(), allow_none=True)
+    rows = fields.Nested(PartitionRowsSchema)
+    holdout = fields.Nested(HoldoutPlanSchema)
+    fold_plan = fields.Nested(FoldPlanSchema)
+    fingerprint = fields.String(metadata={"description": "SHA-256 of the whole registered table"})
+    development_fingerprint = fields.String()
+    created_by = fields.String()
+    created_at = fields.String(metadata=_DATETIME)
+
+
+class DatasetListSchema(Schema):
+    datasets = fields.List(fields.Nested(DatasetSchema))
+
+
+# -- submissions: request -------------------------------------------------------------------------
+
+class DatasetPinSchema(Schema):
+    id = fields.String(required=True)
+    fingerprint = fields.String(required=True)
+
+
+class DatasetRefField(fields.Field[DatasetRef]):
+    """``"ds_..."`` or ``{"id": "ds_...", "fingerprint": "..."}`` (pins the exact data)."""
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> DatasetRef:
+        if isinstance(value, str) and value:
+            return DatasetRef(value)
+        if isinstance(value, dict):
+            pin = DatasetPinSchema().load(value)
+            return DatasetRef(pin["id"], pin["fingerprint"])
+        raise ValidationError(f"dataset must be an id such as 'ds_...' or an object with id and "
+                              f"fingerprint, got {value!r}")
+
+
+class PreprocessStepSchema(Schema):
+    transformer = fields.String(required=True, metadata={"example": "StandardScaler"})
+    columns = fields.List(fields.String(), required=True)
+    params = fields.Dict(keys=fields.String(), load_default=dict)
+
+
+class ModelSchema(Schema):
+    estimator = fields.String(required=True, metadata={"example": "Ridge"})
+    params = fields.Dict(keys=fields.String(), load_default=dict, metadata={"example": {"alpha": 1.0}})
+    features = fields.List(fields.String(), load_default=None, allow_none=True, metadata={
+        "description": "default: every column except target, id, group and time columns"})
+    preprocess = fields.List(fields.Nested(PreprocessStepSchema), load_default=list)
+
+
+class ValidationOptionsSchema(Schema):
+    folds = fields.Integer(strict=True, load_default=None, allow_none=True, metadata={
+        "minimum": 2, "maximum": MAX_FOLDS, "description": "default: the dataset's fold plan"})
+    repeats = fields.Integer(strict=True, load_default=1, metadata={"minimum": 1, "maximum": MAX_REPEATS})
+
+
+class SubmissionRequestSchema(Schema):
+    """A model configuration to review: declarative, never code."""
+
+    dataset = DatasetRefField(required=True, metadata={"oneOf": [
+        {"type": "string", "example": "ds_0123456789abcdef0123"},
+        {"type": "object", "required": ["id", "fingerprint"],
+         "properties": {"id": {"type": "string"}, "fingerprint": {"type": "string"}}},
+    ]})
+    model = fields.Nested(ModelSchema, required=True)
+    validation = fields.Nested(ValidationOptionsSchema, load_default=lambda: {"folds": None, "repeats": 1})
+    metrics = fields.List(fields.String(), load_default=None, allow_none=True, metadata={
+        "description": "default: the task's default metrics; see GET /v1/catalog"})
+    label = fields.String(load_default="", validate=validate.Length(max=200))
+
+    @post_load
+    def _to_request(self, data: dict[str, Any], **_: Any) -> SubmissionRequest:
+        model = data["model"]
+        return SubmissionRequest(
+            dataset=data["dataset"],
+            model=ModelSpec(
+                estimator=model["estimator"],
+                params=model["params"],
+                features=None if model["features"] is None else tuple(model["features"]),
+                preprocess=tuple(
+                    PreprocessStep(s["transformer"], tuple(s["columns"]), s["params"])
+                    for s in model["preprocess"]
+                ),
+            ),
+            validation=ValidationSpec(data["validation"]["folds"], data["validation"]["repeats"]),
+            metrics=None if data["metrics"] is None else tuple(data["metrics"]),
+            label=data["label"],
+        )
+
+
+class SubmissionListQuerySchema(Schema):
+    class Meta:
+        unknown = EXCLUDE
+
+    limit = fields.Integer(load_default=50, validate=validate.Range(1, 200))
+    cursor = fields.String(load_default=None, metadata={"description": "next_cursor of the previous page"})
+    dataset = fields.String(load_default=None, metadata={"description": "only submissions on this dataset"})
+
+
+# -- submissions: response ------------------------------------------------------------------------
+
+class ProgressSchema(Schema):
+    folds_done = fields.Integer()
+    folds_total = fields.Integer()
+
+
+class MetricSummarySchema(Schema):
+    mean = fields.Float()
+    std = fields.Float()
+    min = fields.Float()
+    max = fields.Float()
+    naive_interval_95 = fields.List(fields.Float(), metadata={
+        "description": "treats folds as independent, which they are not: read it as too narrow"})
+
+
+class FoldScoreSchema(Schema):
+    fold = fields.Integer()
+    repeat = fields.Integer()
+    status = fields.String(validate=validate.OneOf(("ok", "failed")))
+    train_rows = fields.Integer()
+    test_rows = fields.Integer()
+    scores = fields.Dict(keys=fields.String(), values=fields.Float(), allow_none=True)
+    baseline_scores = fields.Dict(keys=fields.String(), values=fields.Float(), allow_none=True)
+    fit_seconds = fields.Float(allow_none=True)
+    score_seconds = fields.Float(allow_none=True)
+    error = fields.String(metadata={"description": "failed folds only: the estimator's message"})
+
+
+class CrossValidationSchema(Schema):
+    folds = fields.List(fields.Nested(FoldScoreSchema))
+    summary = fields.Dict(keys=fields.String(), values=fields.Nested(MetricSummarySchema), allow_none=True)
+    failures = fields.List(fields.Dict())
+
+
+class BaselineSchema(Schema):
+    estimator = fields.String()
+    summary = fields.Dict(keys=fields.String(), values=fields.Nested(MetricSummarySchema))
+
+
+class HoldoutResultSchema(Schema):
+    """Aggregate holdout scores only, once, as the release policy allows: never rows or predictions."""
+
+    released = fields.Boolean()
+    mode = fields.String()
+    scores = fields.Dict(keys=fields.String(), values=fields.Float(), allow_none=True)
+    scored_at = fields.String(metadata=_DATETIME)
+
+
+class VerdictSchema(Schema):
+    decision = fields.String()
+    reasons = fields.List(fields.String())
+
+
+class ProvenanceSchema(Schema):
+    dataset_fingerprint = fields.String()
+    config_fingerprint = fields.String()
+    fold_plan = fields.Dict()
+    versions = fields.Dict(keys=fields.String(), values=fields.String())
+
+
+class SubmissionResultSchema(Schema):
+    cv = fields.Nested(CrossValidationSchema)
+    coefficients = fields.Dict(allow_none=True, metadata={
+        "description": "linear models: per-fold coefficients with their mean and spread"})
+    baseline = fields.Nested(BaselineSchema, allow_none=True)
+    holdout = fields.Nested(HoldoutResultSchema, allow_none=True)
+    verdict = fields.Nested(VerdictSchema, allow_none=True)
+    provenance = fields.Nested(ProvenanceSchema, allow_none=True)
+
+
+class ResolvedValidationSchema(Schema):
+    scheme = fields.String(validate=validate.OneOf(fold_plans.FOLD_SCHEMES))
+    folds = fields.Integer()
+    seed = fields.Integer()
+    repeats = fields.Integer()
+    plan_overridden = fields.Boolean(metadata={"description": "folds differ from the dataset's fold plan"})
+
+
+class ResolvedConfigSchema(Schema):
+    """The configuration as the service resolved it: defaults filled in, the fold plan fixed."""
+
+    model = fields.Nested(ModelSchema)
+    validation = fields.Nested(ResolvedValidationSchema)
+    metrics = fields.List(fields.String())
+
+
+class SubmissionSchema(Schema):
+    """A submission: its state, progress and, once computed, its result."""
+
+    id = fields.String()
+    dataset = fields.String()
+    state = fields.String(validate=validate.OneOf(STATES))
+    label = fields.String()
+    progress = fields.Nested(ProgressSchema)
+    created_at = fields.String(metadata=_DATETIME)
+    started_at = fields.String(allow_none=True, metadata=_DATETIME)
+    finished_at = fields.String(allow_none=True, metadata=_DATETIME)
+    error = fields.String(allow_none=True)
+    config = fields.Nested(ResolvedConfigSchema)
+    config_fingerprint = fields.String()
+    result = fields.Nested(SubmissionResultSchema, allow_none=True)
+
+
+class SubmissionListSchema(Schema):
+    submissions = fields.List(fields.Nested(SubmissionSchema))
+    next_cursor = fields.String(allow_none=True, metadata={"description": "absent or null on the last page"})
+
+
+class FoldTestRowsSchema(Schema):
+    fold = fields.Integer()
+    repeat = fields.Integer()
+    test_row_ids = fields.List(fields.String(), metadata={"description": "development row_id values"})
+
+
+class FoldRowsSchema(Schema):
+    folds = fields.List(fields.Nested(FoldTestRowsSchema))
+
+
+# -- catalog, keys, operations --------------------------------------------------------------------
+
+class CatalogParamSchema(Schema):
+    default = fields.Raw(allow_none=True, metadata={"description": "scikit-learn's default"})
+    type = fields.String(metadata={"description": "what scikit-learn accepts, in words"})
+
+
+class CatalogEntrySchema(Schema):
+    name = fields.String(metadata={"description": "scikit-learn class name"})
+    kind = fields.String(validate=validate.OneOf(("estimator", "transformer")))
+    task = fields.String(validate=validate.OneOf(TASKS), metadata={"description": "estimators only"})
+    module = fields.String()
+    params = fields.Dict(keys=fields.String(), values=fields.Nested(CatalogParamSchema))
+    forced = fields.Dict(metadata={"description": "values the service fixes; a different value is rejected"})
+    service_defaults = fields.Dict(metadata={"description": "defaults used instead of scikit-learn's"})
+    caps = fields.Dict(keys=fields.String(), values=fields.Dict(), metadata={"description": "upper bounds"})
+    linear = fields.Boolean(metadata={"description": "coefficients are recorded per fold"})
+    has_predict_proba_by_default = fields.Boolean()
+
+
+class MetricSchema(Schema):
+    name = fields.String()
+    task = fields.String(validate=validate.OneOf(TASKS))
+    greater_is_better = fields.Boolean()
+    needs_proba = fields.Boolean()
+    description = fields.String()
+    default = fields.Boolean(metadata={"description": "used when a submission names no metrics"})
+
+
+class CatalogSchema(Schema):
+    """What a submission may name: estimators, transformers and metrics."""
+
+    sklearn_version = fields.String()
+    estimators = fields.List(fields.Nested(CatalogEntrySchema))
+    transformers = fields.List(fields.Nested(CatalogEntrySchema))
+    metrics = fields.List(fields.Nested(MetricSchema))
+    caps_note = fields.Dict(keys=fields.String(), values=fields.String())
+
+
+class KeyCreateSchema(Schema):
+    team = fields.String(load_default=None, metadata={"description": "default: the caller's team"})
+    role = fields.String(required=True, validate=validate.OneOf(ROLES))
+    name = fields.String(load_default="", validate=validate.Length(max=200))
+
+
+class KeySchema(Schema):
+    id = fields.String()
+    team = fields.String()
+    role = fields.String(validate=validate.OneOf(ROLES))
+    name = fields.String()
+
+
+class KeyCreatedSchema(KeySchema):
+    token = fields.String(metadata={"description": "shown once; only its hash is stored"})
+
+
+class HealthSchema(Schema):
+    status = fields.String(metadata={"example": "ok"})
+
+
+class ReadinessSchema(Schema):
+    status = fields.String(metadata={"example": "ready"})
+    checks = fields.Dict(keys=fields.String(), values=fields.String())
