@@ -230,9 +230,9 @@ def _resolve_plan(
     if not 1 <= validation.repeats <= MAX_REPEATS:
         problems.add("/validation/repeats", f"repeats must be between 1 and {MAX_REPEATS}, "
                      f"got {validation.repeats}")
-    if dataset_plan["scheme"] == "time" and validation.repeats != 1:
-        problems.add("/validation/repeats", "repeats must be 1 for a time-ordered fold plan (forward-chaining "
-                     f"folds have one order), got {validation.repeats}")
+    if dataset_plan["scheme"] in ("time", "contiguous") and validation.repeats != 1:
+        problems.add("/validation/repeats", f"repeats must be 1 for a {dataset_plan['scheme']} fold plan (its "
+                     f"folds do not depend on a seed), got {validation.repeats}")
     if folds * validation.repeats > MAX_FOLD_JOBS:
         problems.add("/validation", f"folds x repeats must be at most {MAX_FOLD_JOBS}, "
                      f"got {folds} x {validation.repeats}")

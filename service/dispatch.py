@@ -1,9 +1,10 @@
 """Put submission work on the RQ queues, and put it back when Redis lost it.
 
 Jobs are enqueued by dotted name (``worker.jobs.*``), so the API process never imports the worker
-or scikit-learn. Job ids are deterministic -- ``<sub>:fold:<repeat>:<fold>``, ``<sub>:summary``,
-``<sub>:holdout`` -- which makes re-enqueueing idempotent: the reconciler can run on every worker
-at once and still produce one job per piece of work.
+or scikit-learn. Job ids are deterministic -- ``<sub>-fold-<repeat>-<fold>``, ``<sub>-summary``,
+``<sub>-holdout`` (rq 3 accepts only letters, digits, ``_`` and ``-`` in a job id) -- which makes
+re-enqueueing idempotent: the reconciler can run on every worker at once and still produce one job
+per piece of work.
 
 Chain per submission::
 
@@ -42,17 +43,17 @@ RETRIES = 2  # retries apply to crashed or abandoned jobs; estimator errors are 
 
 def fold_job_id(sub_id: str, repeat: int, fold: int) -> str:
     """Return the deterministic id of one fold job."""
-    return f"{sub_id}:fold:{repeat}:{fold}"
+    return f"{sub_id}-fold-{repeat}-{fold}"
 
 
 def summary_job_id(sub_id: str) -> str:
     """Return the deterministic id of a submission's summary (fan-in) job."""
-    return f"{sub_id}:summary"
+    return f"{sub_id}-summary"
 
 
 def holdout_job_id(sub_id: str) -> str:
     """Return the deterministic id of a submission's holdout job."""
-    return f"{sub_id}:holdout"
+    return f"{sub_id}-holdout"
 
 
 def work_queue(redis: Redis, settings: Settings) -> Queue:

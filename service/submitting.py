@@ -110,7 +110,7 @@ def _replay(earlier: dict[str, Any], fingerprint: str) -> dict[str, Any]:
     if earlier["request_fingerprint"] != fingerprint:
         raise InputError(
             "this Idempotency-Key was already used with a different request body; use a new key",
-            [FieldProblem("/", "body differs from the first request made with this Idempotency-Key")],
+            [FieldProblem("", "body differs from the first request made with this Idempotency-Key")],
         )
     return earlier
 

@@ -143,7 +143,7 @@ def test_holdout_job_run_twice_scores_once(stack: Stack, cancer_with_ids: tuple[
     # Run the holdout job again through the real queue, as a retry or a duplicate would.
     queue = Queue(stack.settings.queue_name, connection=Redis.from_url(stack.settings.redis_url),
                   serializer=JSONSerializer)
-    job = queue.enqueue_call("worker.jobs.score_holdout", args=(sub["id"],), job_id=f"{sub['id']}:holdout-again")
+    job = queue.enqueue_call("worker.jobs.score_holdout", args=(sub["id"],), job_id=f"{sub['id']}-holdout-again")
     result = job.latest_result(timeout=60)
     assert result is not None and result.type == result.Type.SUCCESSFUL, stack.log_path.read_text()[-2000:]
     again = submissions.get_holdout(stack.engine, sub["id"])

@@ -136,7 +136,7 @@ class ServedApp:
         from waitress.server import create_server
 
         self.port = free_port()
-        self.server = create_server(app, host="127.0.0.1", port=self.port, threads=4, _quiet=True)
+        self.server = create_server(app, host="127.0.0.1", port=self.port, threads=4)
         self.thread = threading.Thread(target=self.server.run, daemon=True)
 
     @property
