@@ -78,7 +78,7 @@ def running_stack(data_dir: Path, redis_url: str, queue: str, workers: int = 2) 
     from service.settings import Settings
 
     import_root = data_dir / "imports"
-    import_root.mkdir(exist_ok=True)
+    import_root.mkdir(parents=True, exist_ok=True)
     overrides = {"data_dir": data_dir, "redis_url": redis_url, "import_root": import_root,
                  "queue_name": queue, "database_url": ""}
     settings = Settings.load(overrides, environ={})

@@ -8,6 +8,8 @@ import time
 from collections.abc import Iterator
 from pathlib import Path
 
+import numpy as np
+import pandas as pd
 import pytest
 from redis import Redis
 
@@ -25,7 +27,6 @@ def lonely_stack(tmp_path: Path) -> Iterator[Stack]:
 
 def test_work_survives_a_killed_worker_and_a_flushed_redis(lonely_stack: Stack) -> None:
     stack = lonely_stack
-    (stack.data_dir).mkdir(exist_ok=True)
     ds = register(stack.client("steward"), diabetes_frame(), name="resilience", target="target",
                   task="regression")
     reply = stack.client().post("/v1/submissions", json_body={
@@ -52,3 +53,41 @@ def test_work_survives_a_killed_worker_and_a_flushed_redis(lonely_stack: Stack) 
     assert doc["progress"] == {"folds_done": 5, "folds_total": 5}
     assert doc["result"]["holdout"]["released"] is True
     print(f"recovered after worker loss and Redis flush in {recovered_in:.1f} s")
+
+
+def test_the_job_of_a_killed_worker_is_retried_within_two_minutes(lonely_stack: Stack) -> None:
+    # Without a Redis flush the job stays "started" in Redis; RQ's registry clean-up declares it
+    # abandoned once its heartbeat lapses and retries it (retries are set on every sealfold job).
+    from rq import Queue
+    from rq.registry import StartedJobRegistry
+
+    stack = lonely_stack
+    rng = np.random.default_rng(5)
+    x = rng.normal(size=(4000, 8))
+    frame = pd.DataFrame(x, columns=[f"x{i}" for i in range(8)])
+    frame["y"] = x @ rng.normal(size=8) + rng.normal(size=4000)
+    ds = register(stack.client("steward"), frame, name="abandoned", target="y", task="regression")
+    reply = stack.client().post("/v1/submissions", json_body={
+        "dataset": ds["id"], "model": {"estimator": "GradientBoostingRegressor",
+                                       "params": {"n_estimators": 500, "max_depth": 5}}})
+    assert reply.status == 202, reply.text
+    sub_id = reply.json()["id"]
+    redis = Redis.from_url(stack.settings.redis_url)
+    started_registry = StartedJobRegistry(queue=Queue(stack.settings.queue_name, connection=redis))
+    deadline = time.monotonic() + 60
+    while not (in_flight := started_registry.get_job_ids()):
+        assert time.monotonic() < deadline, "no fold job started"
+        time.sleep(0.02)
+    victim = stack.workers[0]
+    os.killpg(victim.pid, signal.SIGKILL)  # the worker and its work horse, mid-fold
+    victim.wait(timeout=10)
+    killed_job = in_flight[0]
+    assert stack.client().get(f"/v1/submissions/{sub_id}").json()["progress"]["folds_done"] < 5
+
+    started = time.monotonic()
+    stack.workers.append(start_worker(stack.env, "abandoned-replacement", stack.log_path))
+    doc = stack.wait_for(sub_id, timeout=150)  # "retried within about two minutes", plus the folds themselves
+    recovered_in = time.monotonic() - started
+    assert doc["state"] == "succeeded", doc
+    assert doc["progress"]["folds_done"] == 5
+    print(f"{killed_job} was abandoned by a killed worker; the submission finished {recovered_in:.1f} s later")

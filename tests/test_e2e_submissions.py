@@ -184,7 +184,7 @@ def test_categorical_feature_without_encoder_is_refused(stack: Stack) -> None:
     assert ok.status == 202, ok.text
     doc = stack.wait_for(ok.json()["id"])
     assert doc["state"] == "succeeded"
-    names = doc["result"]["coefficients"]["names"]
+    names = [t["name"] for t in doc["result"]["coefficients"]["terms"]]
     assert any("region" in n for n in names)
 
 
@@ -210,15 +210,17 @@ def test_linear_coefficients_per_fold_with_stability(stack: Stack, diabetes: dic
                                                              "model": {"estimator": "LinearRegression"}})
     doc = stack.wait_for(reply.json()["id"])
     coefs = doc["result"]["coefficients"]
-    assert len(coefs["names"]) == 10 and len(coefs["folds"]) == 5
-    values = np.array(coefs["folds"])
-    np.testing.assert_allclose(coefs["mean"], values.mean(axis=0), rtol=1e-9)
-    stable = [bool(np.all(np.sign(values[:, j]) == np.sign(values[0, j]))) for j in range(values.shape[1])]
-    assert coefs["sign_stable"] == stable
+    assert coefs["folds"] == 5 and len(coefs["terms"]) == 10
+    for term in coefs["terms"]:
+        values = np.array(term["values"])
+        assert term["mean"] == pytest.approx(values.mean(), rel=1e-9)
+        assert term["std"] == pytest.approx(values.std(ddof=1), rel=1e-9)
+        assert term["sign_stable"] == bool(np.all(np.sign(values) == np.sign(values[0])))
     # Each fold's coefficients are those of scikit-learn's LinearRegression fitted on that fold's training rows.
     dev = development(stack.client(), diabetes["id"])
     features = [c for c in dev.columns if c not in ("row_id", "target")]
-    assert coefs["names"] == features
-    for (train, _), fold_coefs in zip(fold_indices(stack.client(), doc["id"], dev), coefs["folds"], strict=True):
+    assert [t["name"] for t in coefs["terms"]] == features
+    per_fold = np.array([t["values"] for t in coefs["terms"]]).T
+    for (train, _), fold_coefs in zip(fold_indices(stack.client(), doc["id"], dev), per_fold, strict=True):
         reference = LinearRegression().fit(dev.iloc[train][features], dev.iloc[train]["target"])
         np.testing.assert_allclose(fold_coefs, reference.coef_, rtol=1e-7)

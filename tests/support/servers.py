@@ -103,7 +103,7 @@ def stack_environment(
     env = dict(os.environ)
     env.update({
         "SEALFOLD_DATA_DIR": str(data_dir), "REDIS_URL": redis_url, "DATABASE_URL": database_url,
-        "SEALFOLD_QUEUE": queue, "SEALFOLD_LOG_LEVEL": "WARNING",
+        "SEALFOLD_QUEUE": queue, "SEALFOLD_LOG_LEVEL": os.environ.get("SEALFOLD_TEST_WORKER_LOG", "WARNING"),
     })
     return env
 

@@ -1,0 +1,118 @@
+"""Pipelines from configuration documents: chains, pass-through, forced values, feature names."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from sklearn.compose import ColumnTransformer
+from sklearn.datasets import load_diabetes
+from sklearn.impute import SimpleImputer
+from sklearn.linear_model import Ridge
+from sklearn.model_selection import cross_val_score
+from sklearn.pipeline import Pipeline, make_pipeline
+from sklearn.preprocessing import StandardScaler
+
+from service.errors import ConfigRejected
+from worker import runtime
+from worker.pipeline import build_pipeline, output_feature_names
+
+NUMERIC = {"a": "numeric", "b": "numeric", "c": "numeric"}
+
+
+def test_steps_on_the_same_columns_chain_in_order() -> None:
+    model = {"estimator": "Ridge", "features": ["a", "b", "c"], "params": {}, "preprocess": [
+        {"transformer": "SimpleImputer", "columns": ["c", "a"]},
+        {"transformer": "StandardScaler", "columns": ["c", "a"]},
+    ]}
+    pipeline = build_pipeline(model, NUMERIC)
+    ct: ColumnTransformer = pipeline.named_steps["preprocess"]
+    ((_name, chain, columns),) = ct.transformers
+    assert isinstance(chain, Pipeline) and columns == [2, 0]  # numpy input: by position
+    assert [type(s).__name__ for _, s in chain.steps] == ["SimpleImputer", "StandardScaler"]
+    X = np.array([[1.0, 5.0, np.nan], [2.0, 6.0, 4.0], [3.0, 7.0, 8.0], [4.0, 9.0, 6.0]])
+    pipeline.fit(X, [1.0, 2.0, 3.0, 4.0])
+    # Reference: the same steps composed by hand with scikit-learn.
+    expected = make_pipeline(SimpleImputer(), StandardScaler()).fit_transform(X[:, [2, 0]])
+    np.testing.assert_allclose(ct.transform(X), np.column_stack([expected, X[:, 1]]))
+    assert output_feature_names(pipeline, ["a", "b", "c"]) == ["c", "a", "b"]  # b passes through
+
+
+def test_frames_select_columns_by_name() -> None:
+    model = {"estimator": "Ridge", "features": ["depot", "a"], "params": {},
+             "preprocess": [{"transformer": "OneHotEncoder", "columns": ["depot"]}]}
+    pipeline = build_pipeline(model, {"depot": "categorical", "a": "numeric"})
+    ((_n, _t, columns),) = pipeline.named_steps["preprocess"].transformers
+    assert columns == ["depot"]
+    frame = pd.DataFrame({"depot": ["n", "s", "n", "e"], "a": [1.0, 2.0, 3.0, 4.0]})
+    pipeline.fit(frame, [1.0, 2.0, 3.0, 4.0])
+    assert output_feature_names(pipeline, ["depot", "a"]) == ["depot_e", "depot_n", "depot_s", "a"]
+
+
+def test_forced_and_service_defaults() -> None:
+    forest = build_pipeline({"estimator": "RandomForestRegressor", "features": ["a"], "params": {"n_jobs": 8}},
+                            {"a": "numeric"}).named_steps["model"]
+    assert forest.n_jobs == 1 and forest.verbose == 0  # forced whatever the document says
+    assert forest.random_state == 0  # service default: reproducible folds and refits
+    seeded = build_pipeline({"estimator": "RandomForestRegressor", "features": ["a"],
+                             "params": {"random_state": 9}}, {"a": "numeric"}).named_steps["model"]
+    assert seeded.random_state == 9
+
+
+def test_unknown_column_in_a_step() -> None:
+    model = {"estimator": "Ridge", "features": ["a"], "preprocess": [{"transformer": "StandardScaler",
+                                                                       "columns": ["zz"]}]}
+    with pytest.raises(ConfigRejected) as caught:
+        build_pipeline(model, {"a": "numeric"})
+    assert caught.value.problems[0].pointer == "/model/preprocess/0/columns/0"
+
+
+def test_lasso_reference_value_from_the_documentation() -> None:
+    # scikit-learn documentation of cross_val_score: Lasso() on diabetes X[:150], cv=3 ->
+    # [0.3315057, 0.08022103, 0.03531816]. The catalog pipeline (no preprocessing) must agree.
+    X, y = load_diabetes(return_X_y=True)
+    pipeline = build_pipeline({"estimator": "Lasso", "features": [f"x{i}" for i in range(10)]},
+                              {f"x{i}": "numeric" for i in range(10)})
+    np.testing.assert_allclose(cross_val_score(pipeline, X[:150], y[:150], cv=3),
+                               [0.3315057, 0.08022103, 0.03531816], atol=1e-7)
+    np.testing.assert_allclose(cross_val_score(Ridge(), X[:150], y[:150], cv=3),
+                               cross_val_score(build_pipeline({"estimator": "Ridge",
+                                                               "features": [f"x{i}" for i in range(10)]},
+                                                              {f"x{i}": "numeric" for i in range(10)}),
+                                               X[:150], y[:150], cv=3))
+
+
+def test_runtime_context_must_be_installed() -> None:
+    runtime.uninstall()
+    with pytest.raises(RuntimeError, match="no worker context installed"):
+        runtime.current()
+
+
+def test_json_lists_become_tuples_where_sklearn_wants_them() -> None:
+    model = {"estimator": "Ridge", "features": ["a", "b"], "preprocess": [
+        {"transformer": "MinMaxScaler", "columns": ["a"], "params": {"feature_range": [-1, 1]}},
+        {"transformer": "PolynomialFeatures", "columns": ["b"], "params": {"degree": [2, 3]}},
+    ]}
+    pipeline = build_pipeline(model, {"a": "numeric", "b": "numeric"})
+    X = np.array([[0.0, 1.0], [5.0, 2.0], [10.0, 3.0]])
+    pipeline.fit(X, [1.0, 2.0, 3.0])
+    scaled = pipeline.named_steps["preprocess"].transform(X)
+    np.testing.assert_allclose(scaled[:, 0], [-1.0, 0.0, 1.0])
+    assert output_feature_names(pipeline, ["a", "b"]) == ["a", "1", "b^2", "b^3"]  # bias column included
+    # OneHotEncoder's categories is a list of lists, and stays one.
+    encoder = build_pipeline({"estimator": "Ridge", "features": ["d"], "preprocess": [
+        {"transformer": "OneHotEncoder", "columns": ["d"], "params": {"categories": [["x", "y"]]}}]},
+        {"d": "categorical"}).named_steps["preprocess"].transformers[0][1]
+    assert encoder.categories == [["x", "y"]]
+
+
+def test_iris_linear_svc_reference_value() -> None:
+    # scikit-learn user guide, "Cross-validation: evaluating estimator performance": iris,
+    # SVC(kernel="linear", C=1), cross_val_score(cv=5) -> "0.98 accuracy with a standard deviation of 0.02".
+    from sklearn.datasets import load_iris
+
+    X, y = load_iris(return_X_y=True)
+    pipeline = build_pipeline({"estimator": "SVC", "features": [f"x{i}" for i in range(4)],
+                               "params": {"kernel": "linear", "C": 1}}, {f"x{i}": "numeric" for i in range(4)})
+    scores = cross_val_score(pipeline, X, y, cv=5)
+    assert round(scores.mean(), 2) == 0.98 and round(scores.std(), 2) == 0.02
