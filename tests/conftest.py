@@ -73,7 +73,6 @@ def _make_tokens(engine: Any) -> dict[str, str]:
 def running_stack(data_dir: Path, redis_url: str, queue: str, workers: int = 2) -> Iterator[Stack]:
     """Run the API (waitress, real HTTP) and ``workers`` real forking workers on one data dir."""
     from service.app import create_app
-
     from service.records.engine import make_engine
     from service.settings import Settings
 

@@ -140,8 +140,8 @@ def folds_done(engine: Engine, sub_id: str) -> int:
 
 
 def store_holdout_once(
-    engine: Engine, sub_id: str, scores: dict[str, float], holdout_fingerprint: str, fit_seconds: float
-) -> tuple[dict[str, float], bool]:
+    engine: Engine, sub_id: str, scores: dict[str, float | None], holdout_fingerprint: str, fit_seconds: float
+) -> tuple[dict[str, float | None], bool]:
     """Store the one holdout score of a submission; return the stored scores and whether this call won.
 
     The primary key on ``submission_id`` makes a second insert fail, so whichever job gets there

@@ -1,0 +1,26 @@
+"""``python -m worker``: start one sealfold worker with settings from the environment."""
+
+from __future__ import annotations
+
+import argparse
+import os
+
+# One thread per BLAS/OpenMP pool, set before numpy loads them; limit_threads() covers the rest.
+for _name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_name, "1")
+
+from service.settings import Settings  # noqa: E402
+from worker.main import run_worker  # noqa: E402
+
+
+def main(argv: list[str] | None = None) -> None:
+    """Parse the command line and run the worker."""
+    parser = argparse.ArgumentParser(prog="python -m worker", description="Run a sealfold RQ worker.")
+    parser.add_argument("--burst", action="store_true", help="exit once the queues are empty")
+    parser.add_argument("--name", default=None, help="worker name shown in RQ (default: random)")
+    args = parser.parse_args(argv)
+    run_worker(Settings.load(), burst=args.burst, name=args.name)
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,108 @@
+"""Fit and score one fold: the candidate pipeline and the task's baseline, on the same rows.
+
+An estimator that raises is a result, not a crash: the fold is recorded as failed with the
+estimator's own message, so RQ retries are left for real crashes (a killed or lost work horse).
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+from sklearn.pipeline import Pipeline
+
+from service.records import datasets, submissions
+from service.vault.folds import Split
+from worker.development import DevelopmentData, all_splits, column_kinds, find_split, load_development
+from worker.pipeline import MODEL_STEP, baseline_estimator, build_pipeline, output_feature_names
+from worker.runtime import WorkerContext
+from worker.scoring import score_model
+
+
+def run_fold(ctx: WorkerContext, submission_id: str, repeat: int, fold: int) -> dict[str, Any]:
+    """Score one (repeat, fold) of a submission and record it; a canceled or finished one is skipped."""
+    sub = submissions.get(ctx.engine, submission_id)
+    if sub is None:
+        raise LookupError(f"no submission {submission_id!r} in the records DB")
+    if sub["state"] not in submissions.LIVE_STATES:
+        return {"submission_id": submission_id, "repeat": repeat, "fold": fold, "skipped": sub["state"]}
+    submissions.mark_running(ctx.engine, submission_id)
+    dataset = datasets.get_internal(ctx.engine, sub["dataset_id"])
+    if dataset is None:
+        raise LookupError(f"submission {submission_id} refers to dataset {sub['dataset_id']!r}, which is gone")
+    config = sub["config"]
+    model_doc = config["model"]
+    data, keys = load_development(ctx.settings, dataset, model_doc["features"])
+    split = find_split(all_splits(dataset, config["validation"], keys), repeat, fold)
+    pipeline = build_pipeline(model_doc, column_kinds(dataset))
+    outcome = evaluate_fold(
+        pipeline, data, split, str(dataset["task"]), config["metrics"],
+        linear=bool(config.get("linear")), target=str(dataset["target"]),
+    )
+    stored = submissions.record_fold(ctx.engine, submission_id, repeat, fold, **outcome)
+    return {"submission_id": submission_id, "repeat": repeat, "fold": fold, "status": outcome["status"],
+            "stored": stored}
+
+
+def evaluate_fold(
+    pipeline: Pipeline, data: DevelopmentData, split: Split, task: str, metrics: Sequence[str], *,
+    linear: bool, target: str,
+) -> dict[str, Any]:
+    """Fit on the split's train rows, score on its test rows; return the fold record's fields."""
+    X_train, y_train = data.features_of(split.train), data.target_of(split.train)
+    X_test, y_test = data.features_of(split.test), data.target_of(split.test)
+    fields: dict[str, Any] = {
+        "train_rows": len(split.train), "test_rows": len(split.test),
+        "baseline_scores": baseline_scores(task, y_train, y_test, metrics),
+        "scores": None, "coefficients": None, "fit_seconds": None, "score_seconds": None, "error": None,
+    }
+    try:
+        started = time.perf_counter()
+        pipeline.fit(X_train, y_train)
+        fields["fit_seconds"] = time.perf_counter() - started
+        started = time.perf_counter()
+        scores, undefined = score_model(pipeline, X_test, y_test, metrics)
+        fields["score_seconds"] = time.perf_counter() - started
+        if linear:
+            fields["coefficients"] = coefficients(pipeline, data.features, target)
+    except MemoryError:
+        raise  # a crash of the worker, not an answer about the model
+    except Exception as exc:  # the estimator's own error is the fold's result
+        fields.update(status="failed", error=f"{type(exc).__name__}: {exc}")
+        return fields
+    fields.update(status="ok", scores=scores)
+    if undefined:
+        fields["error"] = "; ".join(f"{name} undefined on this fold: {why}" for name, why in undefined.items())
+    return fields
+
+
+def baseline_scores(
+    task: str, y_train: np.ndarray, y_test: np.ndarray, metrics: Sequence[str]
+) -> dict[str, float | None]:
+    """Score the task's Dummy baseline; it ignores the features, so it sees a zero column."""
+    baseline = baseline_estimator(task).fit(np.zeros((len(y_train), 1)), y_train)
+    scores, _ = score_model(baseline, np.zeros((len(y_test), 1)), y_test, metrics)
+    return scores
+
+
+def coefficients(pipeline: Pipeline, features: Sequence[str], target: str) -> dict[str, Any]:
+    """Return the fitted linear model's coefficients, one row per output, named after its inputs."""
+    model = pipeline.named_steps[MODEL_STEP]
+    coef = np.atleast_2d(np.asarray(model.coef_, dtype=np.float64))
+    intercept = np.atleast_1d(np.asarray(model.intercept_, dtype=np.float64))
+    classes = getattr(model, "classes_", None)
+    if classes is None:
+        outputs = [target]
+    elif len(classes) == 2:
+        outputs = [str(classes[1])]  # binary models have one row: the log-odds of classes_[1]
+    else:
+        outputs = [str(c) for c in classes]
+    return {
+        "names": output_feature_names(pipeline, features),
+        "outputs": outputs,
+        "values": [[float(v) for v in row] for row in coef],
+        "intercept": [float(v) for v in intercept],
+    }
+

@@ -1,0 +1,89 @@
+"""Score a submission on its dataset's sealed holdout, exactly once.
+
+The model is refitted on every development row, then the sealed partition is opened (its
+fingerprint checked) and scored. The holdout score row's primary key makes the first stored score
+final: a retried or duplicated job finds it and never scores again. Nothing here logs, returns or
+stores holdout rows, ids or predictions; errors raised while the holdout is in use are replaced by
+their class name, because an estimator's message can quote the values it choked on.
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+from typing import Any
+
+from service.errors import SealBroken
+from service.records import datasets, submissions
+from service.vault import store
+from worker.development import column_kinds, load_development, model_frame, model_matrix, target_values
+from worker.pipeline import build_pipeline, uses_frame
+from worker.runtime import WorkerContext
+from worker.scoring import score_model
+
+
+def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
+    """Score the holdout once and finish the submission; a failed or canceled one is left alone."""
+    engine = ctx.engine
+    sub = submissions.get(engine, submission_id)
+    if sub is None:
+        raise LookupError(f"no submission {submission_id!r} in the records DB")
+    if sub["state"] in ("failed", "canceled"):
+        return {"submission_id": submission_id, "skipped": sub["state"]}
+    if submissions.get_holdout(engine, submission_id) is not None:
+        # Scored by an earlier run that may have died before finishing the submission.
+        submissions.transition(engine, submission_id, "succeeded", submissions.LIVE_STATES)
+        return {"submission_id": submission_id, "holdout": "already scored"}
+    if sub["result"] is None:
+        raise RuntimeError(f"submission {submission_id} has no cross-validation summary yet; "
+                           "the holdout is scored after the summary job")
+    dataset = datasets.get_internal(engine, sub["dataset_id"])
+    if dataset is None:
+        raise LookupError(f"submission {submission_id} refers to dataset {sub['dataset_id']!r}, which is gone")
+    config = sub["config"]
+    model_doc, metrics = config["model"], config["metrics"]
+    kinds = column_kinds(dataset)
+    features = list(model_doc["features"])
+
+    data, _ = load_development(ctx.settings, dataset, features)
+    pipeline = build_pipeline(model_doc, kinds)
+    try:
+        started = time.perf_counter()
+        pipeline.fit(data.features_of(), data.target_of())
+        fit_seconds = time.perf_counter() - started
+    except MemoryError:
+        raise
+    except Exception as exc:  # development rows only: the estimator's message may be shown
+        error = f"refitting on all development rows failed: {type(exc).__name__}: {exc}"
+        submissions.transition(engine, submission_id, "failed", submissions.LIVE_STATES, error=error)
+        return {"submission_id": submission_id, "holdout": "not scored", "reason": "refit failed"}
+
+    try:
+        holdout = store.open_sealed_holdout(ctx.settings, dataset["id"], dataset["holdout_fingerprint"])
+    except SealBroken as exc:
+        submissions.transition(engine, submission_id, "failed", submissions.LIVE_STATES, error=exc.detail)
+        raise
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # warning texts can quote holdout values
+            X = model_frame(holdout, features, kinds) if uses_frame(features, kinds) \
+                else model_matrix(holdout, features)
+            y = target_values(holdout[dataset["target"]], str(dataset["task"]))
+            scores, _undefined = score_model(pipeline, X, y, metrics)
+    except MemoryError:
+        raise
+    except Exception as exc:
+        error = (f"scoring on the holdout failed with {type(exc).__name__}; its message is withheld because "
+                 "it may describe holdout rows (e.g. an unseen category: try handle_unknown='ignore')")
+        submissions.transition(engine, submission_id, "failed", submissions.LIVE_STATES, error=error)
+        return {"submission_id": submission_id, "holdout": "not scored", "reason": type(exc).__name__}
+    finally:
+        del holdout
+
+    # A metric undefined on the holdout (e.g. roc_auc with one class present) is stored as None.
+    _stored, created = submissions.store_holdout_once(
+        engine, submission_id, scores, dataset["holdout_fingerprint"], fit_seconds
+    )
+    submissions.transition(engine, submission_id, "succeeded", submissions.LIVE_STATES)
+    return {"submission_id": submission_id, "holdout": "scored" if created else "already scored",
+            "metrics": sorted(scores)}

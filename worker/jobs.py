@@ -1,0 +1,39 @@
+"""The job functions RQ runs, enqueued by dotted name (``worker.jobs.run_fold`` ...).
+
+Arguments and return values are plain JSON; engine and settings come from ``worker.runtime``.
+``ALLOWED_JOBS`` is the whole list a sealfold worker agrees to run.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from worker import checks, holdout, summary
+from worker.fold import run_fold as _run_fold
+from worker.runtime import current
+
+
+def check_config(config_doc: dict[str, Any], dataset_id: str) -> dict[str, Any]:
+    """Validate a configuration document against scikit-learn and the service caps."""
+    return checks.check_config(current(), config_doc, dataset_id)
+
+
+def run_fold(submission_id: str, repeat: int, fold: int) -> dict[str, Any]:
+    """Fit and score one fold of a submission, with its baseline, and record it."""
+    return _run_fold(current(), submission_id, repeat, fold)
+
+
+def summarize(submission_id: str) -> dict[str, Any]:
+    """Summarise a submission's folds (fan-in) and store the summary."""
+    return summary.summarize(current(), submission_id)
+
+
+def score_holdout(submission_id: str) -> dict[str, Any]:
+    """Score a submission on the sealed holdout, exactly once."""
+    return holdout.score_holdout(current(), submission_id)
+
+
+# The dotted names a sealfold worker agrees to run; nothing else in Redis is ever imported.
+ALLOWED_JOBS: frozenset[str] = frozenset(
+    f"{__name__}.{job.__name__}" for job in (check_config, run_fold, summarize, score_holdout)
+)

@@ -1,0 +1,147 @@
+"""Build the scikit-learn Pipeline a submission describes: preprocessing, then the estimator.
+
+Preprocessing is a ColumnTransformer fitted inside each training fold, never on the whole data.
+Steps naming exactly the same columns chain in the order given; columns no step names pass through
+unchanged. Numeric-only inputs are numpy arrays (columns by position); inputs with a categorical
+feature are pandas frames (columns by name).
+"""
+
+from __future__ import annotations
+
+import importlib
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+from sklearn.base import BaseEstimator
+from sklearn.compose import ColumnTransformer
+from sklearn.dummy import DummyClassifier, DummyRegressor
+from sklearn.pipeline import Pipeline
+
+from service.catalog import Catalog, CatalogEntry, load_catalog
+from service.errors import ConfigRejected, field_error
+
+PREPROCESS_STEP = "preprocess"
+MODEL_STEP = "model"
+BASELINES: dict[str, tuple[str, dict[str, str]]] = {
+    "regression": ("DummyRegressor", {"strategy": "mean"}),
+    "classification": ("DummyClassifier", {"strategy": "prior"}),
+}
+
+
+def uses_frame(features: Sequence[str], column_kinds: Mapping[str, str]) -> bool:
+    """Tell whether the features need a pandas frame (any is not numeric) rather than a numpy array."""
+    return any(column_kinds[name] != "numeric" for name in features)
+
+
+def entry_for(catalog: Catalog, name: str, kind: str, pointer: str) -> CatalogEntry:
+    """Look up an allow-listed class, or reject the configuration at ``pointer``."""
+    entry = catalog.estimator(name) if kind == "estimator" else catalog.transformer(name)
+    if entry is None:
+        accepted = [e.name for e in catalog.entries.values() if e.kind == kind]
+        raise field_error(ConfigRejected, pointer, f"{kind} {name!r} is not in the catalog; use one of: "
+                          f"{', '.join(sorted(accepted))}")
+    return entry
+
+
+def effective_params(entry: CatalogEntry, params: Mapping[str, Any]) -> dict[str, Any]:
+    """Merge service defaults, the submission's parameters and the forced values, in that order."""
+    return {**entry.service_defaults, **params, **entry.forced}
+
+
+def make_instance(entry: CatalogEntry, params: Mapping[str, Any]) -> BaseEstimator:
+    """Instantiate an allow-listed class with its effective parameters (validated later, by fit)."""
+    cls = getattr(importlib.import_module(entry.module), entry.name)
+    instance: BaseEstimator = cls()
+    instance.set_params(**{k: from_json(cls, k, v) for k, v in effective_params(entry, params).items()})
+    return instance
+
+
+def from_json(cls: type[BaseEstimator], name: str, value: Any) -> Any:
+    """Turn a JSON list into the tuple scikit-learn wants, unless the parameter takes lists as such.
+
+    JSON has no tuples, yet e.g. ``MinMaxScaler(feature_range=(0, 1))`` and a
+    ``PolynomialFeatures(degree=(1, 3))`` range accept only tuples; array-likes take either.
+    """
+    if not isinstance(value, list):
+        return value
+    constraints = getattr(cls, "_parameter_constraints", {}).get(name, [])
+    if constraints == "no_validation" or list in constraints:
+        return value
+    return tuple(value)
+
+
+def build_pipeline(
+    model_doc: Mapping[str, Any], column_kinds: Mapping[str, str], catalog: Catalog | None = None
+) -> Pipeline:
+    """Return the unfitted pipeline for the ``model`` part of a configuration document."""
+    catalog = catalog or load_catalog()
+    features = list(model_doc["features"])
+    estimator = make_instance(
+        entry_for(catalog, model_doc["estimator"], "estimator", "/model/estimator"), model_doc.get("params") or {}
+    )
+    preprocess = build_preprocessing(
+        catalog, model_doc.get("preprocess") or [], features, uses_frame(features, column_kinds)
+    )
+    return Pipeline([(PREPROCESS_STEP, preprocess), (MODEL_STEP, estimator)])
+
+
+def build_preprocessing(
+    catalog: Catalog, steps: Sequence[Mapping[str, Any]], features: Sequence[str], by_name: bool
+) -> ColumnTransformer:
+    """Return the ColumnTransformer for the preprocess steps; unnamed columns pass through."""
+    chains: dict[tuple[str, ...], list[int]] = {}
+    owner: dict[str, tuple[str, ...]] = {}
+    for i, step in enumerate(steps):
+        columns = tuple(step["columns"])
+        for j, column in enumerate(columns):
+            if column not in features:
+                raise field_error(ConfigRejected, f"/model/preprocess/{i}/columns/{j}",
+                                  f"column {column!r} is not among the features ({', '.join(features)})")
+            if owner.setdefault(column, columns) != columns:
+                raise field_error(ConfigRejected, f"/model/preprocess/{i}/columns/{j}",
+                                  f"column {column!r} is already in a step with other columns; steps chain "
+                                  "only when they name exactly the same columns")
+        chains.setdefault(columns, []).append(i)
+
+    position = {name: k for k, name in enumerate(features)}
+    transformers: list[tuple[str, Any, list[Any]]] = []
+    for columns, indices in chains.items():
+        parts = [
+            (f"{steps[i]['transformer'].lower()}{i}",
+             make_instance(entry_for(catalog, steps[i]["transformer"], "transformer",
+                                     f"/model/preprocess/{i}/transformer"), steps[i].get("params") or {}))
+            for i in indices
+        ]
+        selector: list[Any] = list(columns) if by_name else [position[c] for c in columns]
+        if len(parts) == 1:
+            transformers.append((parts[0][0], parts[0][1], selector))
+        else:
+            name = "chain" + "_".join(str(i) for i in indices)
+            transformers.append((name, Pipeline(parts), selector))
+    return ColumnTransformer(transformers, remainder="passthrough", verbose_feature_names_out=False)
+
+
+def output_feature_names(pipeline: Pipeline, features: Sequence[str]) -> list[str]:
+    """Name the columns the fitted preprocessing hands to the estimator, from the input feature names.
+
+    Names carry no step prefix unless two outputs would collide.
+    """
+    preprocess: ColumnTransformer = pipeline.named_steps[PREPROCESS_STEP]
+    try:
+        names = preprocess.get_feature_names_out(list(features))
+    except ValueError:  # duplicate short names: fall back to scikit-learn's prefixed names
+        preprocess.verbose_feature_names_out = True
+        names = preprocess.get_feature_names_out(list(features))
+    return [str(n) for n in names]
+
+
+def baseline_estimator(task: str) -> BaseEstimator:
+    """Return the trivial model every candidate is compared with on the same rows."""
+    name, params = BASELINES[task]
+    return DummyRegressor(**params) if name == "DummyRegressor" else DummyClassifier(**params)
+
+
+def baseline_description(task: str) -> dict[str, Any]:
+    """Describe the baseline for the summary document."""
+    name, params = BASELINES[task]
+    return {"estimator": name, "params": dict(params)}

@@ -1,0 +1,55 @@
+"""The worker's process context: settings and records engine, installed once at start-up.
+
+RQ calls job functions with JSON arguments only, so the functions find their engine and settings
+here. ``run_worker`` installs the context before the first fork; tests install their own.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from sqlalchemy import Engine
+
+from service.settings import Settings
+
+
+@dataclass(frozen=True)
+class WorkerContext:
+    """What every job needs besides its arguments."""
+
+    settings: Settings
+    engine: Engine
+
+
+class _Slot:
+    """Holds the installed context; a class attribute, so there is no import-time connection."""
+
+    context: WorkerContext | None = None
+
+
+def install(ctx: WorkerContext) -> None:
+    """Make ``ctx`` the context of this process (and of the work horses it forks)."""
+    _Slot.context = ctx
+
+
+def uninstall() -> None:
+    """Forget the installed context (tests)."""
+    _Slot.context = None
+
+
+def current() -> WorkerContext:
+    """Return the installed context; a job run outside a started worker is a programming error."""
+    if _Slot.context is None:
+        raise RuntimeError("no worker context installed; start the worker with worker.main.run_worker "
+                           "or call worker.runtime.install() first")
+    return _Slot.context
+
+
+def after_fork() -> None:
+    """Drop the pooled DB connections inherited from the parent without closing them under it.
+
+    A forked work horse must not reuse the parent's sockets (two processes on one connection
+    corrupt it); ``dispose(close=False)`` gives the child a fresh pool and leaves the parent's alone.
+    """
+    if _Slot.context is not None:
+        _Slot.context.engine.dispose(close=False)
