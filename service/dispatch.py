@@ -22,7 +22,9 @@ from redis import Redis
 from redis.exceptions import RedisError
 from rq import Queue, Retry
 from rq.job import Dependency, Job, JobStatus
+from rq.registry import DeferredJobRegistry, ScheduledJobRegistry, StartedJobRegistry
 from rq.serializers import JSONSerializer
+from rq.utils import current_timestamp
 from rq.worker import Worker
 from sqlalchemy import Engine
 
@@ -34,9 +36,6 @@ from service.settings import Settings
 log = logging.getLogger(__name__)
 
 JOB_MODULE = "worker.jobs"
-LIVE_JOB_STATES = frozenset(
-    {JobStatus.QUEUED, JobStatus.STARTED, JobStatus.DEFERRED, JobStatus.SCHEDULED}
-)
 RESULT_TTL = 3600  # results live in the records DB; Redis copies are for debugging only
 RETRIES = 2  # retries apply to crashed or abandoned jobs; estimator errors are recorded, not raised
 
@@ -130,16 +129,33 @@ def reconcile(engine: Engine, redis: Redis, settings: Settings, min_age_seconds:
     """
     queue = work_queue(redis, settings)
     cutoff = utcnow() - timedelta(seconds=min_age_seconds)
-    enqueued = 0
-    for sub in submissions.unfinished(engine):
-        updated = as_utc(sub["updated_at"])
-        if updated is not None and updated > cutoff:
-            continue
-        enqueued += _reconcile_one(engine, redis, queue, settings, sub)
-    return enqueued
+    stale = [s for s in submissions.unfinished(engine) if (as_utc(s["updated_at"]) or cutoff) <= cutoff]
+    if not stale:
+        return 0
+    live = live_job_ids(queue)
+    return sum(_reconcile_one(engine, live, queue, settings, sub) for sub in stale)
 
 
-def _reconcile_one(engine: Engine, redis: Redis, queue: Queue, settings: Settings, sub: dict[str, Any]) -> int:
+def live_job_ids(queue: Queue) -> set[str]:
+    """Return the ids of the jobs that will still run or are running: queued, in flight, deferred.
+
+    A job's status alone is not enough: a worker killed between taking a job and starting it leaves
+    the job "queued" in no queue, and RQ's clean-up drops a "started" entry whose job never started.
+    So liveness is membership: the queue, RQ's intermediate list, an unexpired started entry, or the
+    deferred and scheduled registries.
+    """
+    redis = queue.connection
+    live = set(queue.get_job_ids())
+    live.update(queue.intermediate_queue.get_job_ids())
+    started = StartedJobRegistry(queue=queue)
+    for entry in redis.zrangebyscore(started.key, current_timestamp(), "+inf"):
+        live.add(started.parse_job_id(entry.decode() if isinstance(entry, bytes) else str(entry)))
+    live.update(DeferredJobRegistry(queue=queue).get_job_ids(cleanup=False))
+    live.update(ScheduledJobRegistry(queue=queue).get_job_ids(cleanup=False))
+    return live
+
+
+def _reconcile_one(engine: Engine, live: set[str], queue: Queue, settings: Settings, sub: dict[str, Any]) -> int:
     sub_id = sub["id"]
     done = {(row["repeat"], row["fold"]) for row in submissions.fold_rows(engine, sub_id)}
     enqueued = 0
@@ -148,29 +164,24 @@ def _reconcile_one(engine: Engine, redis: Redis, queue: Queue, settings: Setting
         job_id = fold_job_id(sub_id, r, f)
         if (r, f) in done:
             continue
-        if _is_live(redis, job_id):
+        if job_id in live:
             live_folds.append(job_id)
         elif sub["result"] is None:
             live_folds.append(_enqueue_fold(queue, settings, sub_id, r, f))
             enqueued += 1
     if sub["result"] is None:
-        if not _is_live(redis, summary_job_id(sub_id)):
+        if summary_job_id(sub_id) not in live:
             _enqueue_summary(queue, settings, sub_id, live_folds)
             enqueued += 1
-        if not _is_live(redis, holdout_job_id(sub_id)):
+        if holdout_job_id(sub_id) not in live:
             _enqueue_holdout(queue, settings, sub_id, [summary_job_id(sub_id)])
             enqueued += 1
-    elif not _is_live(redis, holdout_job_id(sub_id)):
+    elif holdout_job_id(sub_id) not in live:
         _enqueue_holdout(queue, settings, sub_id, [])
         enqueued += 1
     if enqueued:
         log.info("reconciler re-enqueued %d job(s) of %s", enqueued, sub_id)
     return enqueued
-
-
-def _is_live(redis: Redis, job_id: str) -> bool:
-    job = Job.fetch_many([job_id], connection=redis, serializer=JSONSerializer)[0]
-    return job is not None and job.get_status(refresh=False) in LIVE_JOB_STATES
 
 
 def _enqueue_fold(queue: Queue, settings: Settings, sub_id: str, repeat: int, fold: int) -> str:
@@ -201,4 +212,6 @@ def _enqueue_holdout(queue: Queue, settings: Settings, sub_id: str, depends_on: 
 
 
 def _retry() -> Retry:
-    return Retry(max=RETRIES, interval=[2, 10])
+    # No interval: a delayed retry would need RQ's scheduler, whose lock a killed worker may still
+    # hold for minutes; an immediate retry only needs a live worker.
+    return Retry(max=RETRIES)

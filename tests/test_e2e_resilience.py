@@ -63,13 +63,13 @@ def test_the_job_of_a_killed_worker_is_retried_within_two_minutes(lonely_stack: 
 
     stack = lonely_stack
     rng = np.random.default_rng(5)
-    x = rng.normal(size=(4000, 8))
+    x = rng.normal(size=(2000, 8))
     frame = pd.DataFrame(x, columns=[f"x{i}" for i in range(8)])
-    frame["y"] = x @ rng.normal(size=8) + rng.normal(size=4000)
+    frame["y"] = x @ rng.normal(size=8) + rng.normal(size=2000)
     ds = register(stack.client("steward"), frame, name="abandoned", target="y", task="regression")
     reply = stack.client().post("/v1/submissions", json_body={
         "dataset": ds["id"], "model": {"estimator": "GradientBoostingRegressor",
-                                       "params": {"n_estimators": 500, "max_depth": 5}}})
+                                       "params": {"n_estimators": 200, "max_depth": 4}}})
     assert reply.status == 202, reply.text
     sub_id = reply.json()["id"]
     redis = Redis.from_url(stack.settings.redis_url)

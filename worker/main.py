@@ -158,6 +158,6 @@ def run_worker(settings: Settings, *, burst: bool = False, name: str | None = No
     redis = Redis.from_url(settings.redis_url)
     worker = build_worker(settings, redis, name)
     try:
-        worker.work(burst=burst, logging_level=settings.log_level, with_scheduler=True)
+        worker.work(burst=burst, logging_level=settings.log_level, with_scheduler=False)
     finally:
         engine.dispose()
