@@ -1,0 +1,322 @@
+"""Benchmark: sealfold end to end against scikit-learn's ``cross_validate`` on the same rows and folds.
+
+One embedded stack (redis-server, API, 2 forking workers, SQLite) runs in a temporary directory for
+the whole benchmark. For each size (default 1,000 x 20 and 1,000,000 x 20 float features, synthetic
+and seeded) it
+
+1. writes the table as Parquet and registers it by path (timed and printed, not compared);
+2. POSTs a 5-fold Ridge configuration and times POST -> ``succeeded`` (median of several runs);
+3. rebuilds the development rows and the fold plan from ``GET /v1/submissions/{id}/folds``
+   (the union of the folds' test row ids is the development partition, in its original order) and
+   times ``cross_validate(Ridge(), X_dev, y_dev, cv=<the same folds>)`` with n_jobs=1 and n_jobs=2,
+   checking that every fold score matches the service's;
+4. records the peak resident memory (VmHWM from /proc/<pid>/status) of the worker processes and of
+   the processes they fork (a work horse per job, RQ's scheduler), sampled every 20 ms. A forked
+   process's VmHWM counts the pages it shares with its parent, so it is an upper bound of what
+   the job added; a horse's growth in its last few milliseconds can escape the sampling.
+
+The service's time includes what ``cross_validate`` does not do: the configuration check before the
+POST answers, the baseline scored on every fold, the refit on all development rows and the
+one-time holdout score. That is the honest comparison: what a team waits for either way.
+
+Run with ``make bench`` (``make bench ARGS="--rows 1000 --runs 5"`` for a quick one).
+"""
+
+from __future__ import annotations
+
+import argparse
+import statistics
+import sys
+import tempfile
+import threading
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from sklearn.linear_model import Ridge
+from sklearn.model_selection import cross_validate
+
+from service import embedded
+from service.records.engine import make_engine
+from service.records.keys import create_key
+from service.settings import Settings
+
+N_FEATURES = 20
+FOLDS = 5
+SEED = 7
+FEATURES = [f"x{i:02d}" for i in range(N_FEATURES)]
+# sealfold's metric names and the scikit-learn scorers that compute the same numbers.
+SCORERS = {"rmse": "neg_root_mean_squared_error", "mae": "neg_mean_absolute_error", "r2": "r2"}
+SIGN = {"rmse": -1.0, "mae": -1.0, "r2": 1.0}
+
+
+def make_table(n_rows: int, seed: int = SEED) -> pd.DataFrame:
+    """Draw ``n_rows`` rows: 20 standard-normal features, a linear target plus noise, an integer id."""
+    rng = np.random.default_rng(seed)
+    x = rng.standard_normal((n_rows, N_FEATURES))
+    beta = rng.uniform(-2.0, 2.0, N_FEATURES)
+    y = x @ beta + rng.normal(0.0, 1.0, n_rows)
+    frame = pd.DataFrame(x, columns=FEATURES)
+    frame.insert(0, "rid", np.arange(n_rows, dtype=np.int64))
+    frame["y"] = y
+    return frame
+
+
+def configuration(dataset_id: str, label: str) -> dict[str, Any]:
+    return {
+        "dataset": dataset_id,
+        "model": {"estimator": "Ridge", "params": {"alpha": 1.0}, "features": FEATURES},
+        "validation": {"folds": FOLDS, "repeats": 1},
+        "metrics": list(SCORERS),
+        "label": label,
+    }
+
+
+# --- peak memory of the workers ----------------------------------------------------------------------
+
+
+def _status_kib(pid: int, field_name: str) -> int | None:
+    try:
+        for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+            if line.startswith(field_name + ":"):
+                return int(line.split()[1])
+    except (OSError, ValueError):
+        return None
+    return None
+
+
+def _children(pid: int) -> list[int]:
+    try:
+        return [int(p) for p in Path(f"/proc/{pid}/task/{pid}/children").read_text().split()]
+    except OSError:
+        return []
+
+
+@dataclass
+class PeakMemory:
+    """Highest VmHWM seen among worker processes and, separately, among their forked children."""
+
+    worker_pids: list[int]
+    interval: float = 0.02
+    worker_kib: int = 0
+    horse_kib: int = 0
+    horses_seen: set[int] = field(default_factory=set)
+    _stop: threading.Event = field(default_factory=threading.Event)
+
+    def _sample(self) -> None:
+        for pid in self.worker_pids:
+            self.worker_kib = max(self.worker_kib, _status_kib(pid, "VmHWM") or 0)
+            for child in _children(pid):
+                self.horses_seen.add(child)
+                self.horse_kib = max(self.horse_kib, _status_kib(child, "VmHWM") or 0)
+
+    def _loop(self) -> None:
+        while not self._stop.is_set():
+            self._sample()
+            time.sleep(self.interval)
+
+    @contextmanager
+    def watching(self) -> Iterator[PeakMemory]:
+        thread = threading.Thread(target=self._loop, daemon=True)
+        thread.start()
+        try:
+            yield self
+        finally:
+            self._stop.set()
+            thread.join()
+            self._stop.clear()
+
+
+# --- talking to the service --------------------------------------------------------------------------
+
+
+@dataclass
+class Service:
+    base_url: str
+    steward: str
+    submitter: str
+
+    def register(self, path: Path, name: str) -> tuple[dict[str, Any], float]:
+        started = time.perf_counter()
+        status, doc = embedded.request_json(
+            f"{self.base_url}/v1/datasets", "POST", token=self.steward, timeout=1800,
+            document={"path": path.name, "name": name, "task": "regression", "target": "y",
+                      "id_column": "rid", "folds": FOLDS},
+        )
+        elapsed = time.perf_counter() - started
+        if status != 201:
+            raise SystemExit(f"registering {path.name} answered {status}: {doc}")
+        return doc, elapsed
+
+    def run_submission(self, dataset_id: str, label: str, timeout: float = 1800) -> tuple[dict[str, Any], float]:
+        """POST a configuration and poll until it finishes; return the document and POST->finished seconds."""
+        started = time.perf_counter()
+        status, doc = embedded.request_json(f"{self.base_url}/v1/submissions", "POST", token=self.submitter,
+                                            document=configuration(dataset_id, label))
+        if status != 202:
+            raise SystemExit(f"submitting answered {status}: {doc}")
+        url = f"{self.base_url}/v1/submissions/{doc['id']}"
+        pause = 0.005
+        while True:
+            _status, doc = embedded.request_json(url, token=self.submitter)
+            if doc["state"] in ("succeeded", "failed", "canceled"):
+                elapsed = time.perf_counter() - started
+                break
+            if time.perf_counter() - started > timeout:
+                raise SystemExit(f"submission {doc['id']} still {doc['state']} after {timeout} s")
+            time.sleep(pause)
+            # Poll every 5 ms for the first two seconds (the timing's resolution), then back off.
+            if time.perf_counter() - started > 2.0:
+                pause = min(pause * 1.5, 0.25)
+        if doc["state"] != "succeeded":
+            raise SystemExit(f"submission {doc['id']} ended {doc['state']}: {doc.get('error')}")
+        return doc, elapsed
+
+    def folds(self, submission_id: str) -> list[dict[str, Any]]:
+        status, doc = embedded.request_json(f"{self.base_url}/v1/submissions/{submission_id}/folds",
+                                            token=self.submitter, timeout=600)
+        if status != 200:
+            raise SystemExit(f"reading folds answered {status}: {doc}")
+        folds: list[dict[str, Any]] = doc["folds"]
+        return folds
+
+
+Splits = list[tuple[np.ndarray, np.ndarray]]
+
+
+def same_plan(frame: pd.DataFrame, folds: list[dict[str, Any]]) -> tuple[np.ndarray, np.ndarray, Splits]:
+    """Rebuild X_dev, y_dev and the (train, test) index pairs of the service's folds."""
+    test_ids = [np.asarray(f["test_row_ids"], dtype=np.int64) for f in sorted(folds, key=lambda f: f["fold"])]
+    dev_ids = np.sort(np.concatenate(test_ids))  # development rows keep their original relative order
+    position = np.searchsorted(dev_ids, np.arange(len(frame)))
+    dev = frame.iloc[dev_ids]
+    splits = []
+    for ids in test_ids:
+        test = np.sort(position[ids])
+        mask = np.ones(len(dev_ids), dtype=bool)
+        mask[test] = False
+        splits.append((np.flatnonzero(mask), test))
+    return dev[FEATURES].to_numpy(), dev["y"].to_numpy(), splits
+
+
+@dataclass
+class SizeResult:
+    rows: int
+    dev_rows: int
+    register_seconds: float
+    service_seconds: list[float]
+    cv_seconds: dict[int, list[float]]
+    max_score_gap: float
+    peak: PeakMemory | None
+
+
+def bench_size(service: Service, frame: pd.DataFrame, import_root: Path, runs: int,
+               worker_pids: list[int], watch_memory: bool) -> SizeResult:
+    n = len(frame)
+    path = import_root / f"bench-{n}.parquet"
+    frame.to_parquet(path, index=False)
+    dataset, register_seconds = service.register(path, f"bench {n} x {N_FEATURES}")
+    peak = PeakMemory(worker_pids) if watch_memory else None
+    service_seconds: list[float] = []
+    docs = []
+    for run in range(runs):
+        if peak is not None:
+            with peak.watching():
+                doc, seconds = service.run_submission(dataset["id"], f"bench run {run}")
+        else:
+            doc, seconds = service.run_submission(dataset["id"], f"bench run {run}")
+        service_seconds.append(seconds)
+        docs.append(doc)
+        print(f"  {n:>9,} rows  run {run + 1}/{runs}: POST -> succeeded {seconds:7.3f} s", flush=True)
+
+    x_dev, y_dev, splits = same_plan(frame, service.folds(docs[0]["id"]))
+    cv_seconds: dict[int, list[float]] = {1: [], 2: []}
+    reference: dict[str, Any] = {}
+    for n_jobs in (1, 2):
+        for _ in range(runs):
+            started = time.perf_counter()
+            reference = cross_validate(Ridge(alpha=1.0), x_dev, y_dev, cv=splits, scoring=SCORERS, n_jobs=n_jobs)
+            cv_seconds[n_jobs].append(time.perf_counter() - started)
+
+    # The same folds must give the same scores, or the comparison is not like for like.
+    by_fold = {f["fold"]: f["scores"] for f in docs[0]["result"]["cv"]["folds"]}
+    gap = max(abs(by_fold[i][m] - SIGN[m] * reference[f"test_{m}"][i]) for i in range(FOLDS) for m in SCORERS)
+    return SizeResult(n, len(y_dev), register_seconds, service_seconds, cv_seconds, gap, peak)
+
+
+def _mib(kib: int) -> str:
+    return f"{kib / 1024:,.0f} MiB"
+
+
+def report(results: list[SizeResult]) -> None:
+    print()
+    print(f"5-fold Ridge(alpha=1.0), {N_FEATURES} float features, one embedded stack with 2 workers")
+    header = (f"{'rows':>10} {'dev rows':>10} {'register':>9} {'service':>9} {'cv n_jobs=1':>12} "
+              f"{'cv n_jobs=2':>12} {'service/cv1':>12} {'service/cv2':>12} {'service/best':>13}")
+    print(header)
+    print("-" * len(header))
+    for r in results:
+        svc = statistics.median(r.service_seconds)
+        cv1, cv2 = statistics.median(r.cv_seconds[1]), statistics.median(r.cv_seconds[2])
+        print(f"{r.rows:>10,} {r.dev_rows:>10,} {r.register_seconds:>8.2f}s {svc:>8.3f}s {cv1:>11.3f}s "
+              f"{cv2:>11.3f}s {svc / cv1:>11.2f}x {svc / cv2:>11.2f}x {svc / min(cv1, cv2):>12.2f}x")
+    print("(times are medians over the runs; register = POST /v1/datasets by path, not compared)")
+    for r in results:
+        runs = ", ".join(f"{s:.3f}" for s in r.service_seconds)
+        print(f"{r.rows:>10,} rows: service POST->succeeded runs [{runs}] s; "
+              f"largest fold-score difference from cross_validate {r.max_score_gap:.2e}")
+        if r.rows <= 1_000:
+            verdict = "meets" if statistics.median(r.service_seconds) < 0.3 else "MISSES"
+            print(f"{'':>16}median {statistics.median(r.service_seconds):.3f} s {verdict} the < 0.3 s target")
+        if r.rows >= 1_000_000:
+            best = min(statistics.median(r.cv_seconds[1]), statistics.median(r.cv_seconds[2]))
+            ratio = statistics.median(r.service_seconds) / best
+            verdict = "meets" if ratio <= 1.0 else "MISSES"
+            print(f"{'':>16}{ratio:.2f}x the faster cross_validate: {verdict} the <= 1.0x target")
+        if r.peak is not None:
+            print(f"{'':>16}peak RSS (VmHWM, sampled every {r.peak.interval * 1000:.0f} ms): worker main "
+                  f"{_mib(r.peak.worker_kib)}, forked children (work horses) {_mib(r.peak.horse_kib)} "
+                  f"({len(r.peak.horses_seen)} seen; shared pages included)")
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--rows", default="1000,1000000", help="comma-separated sizes (default 1000,1000000)")
+    parser.add_argument("--runs", type=int, default=7, help="POST->succeeded runs for sizes under 100k rows")
+    parser.add_argument("--big-runs", type=int, default=3, help="runs for sizes from 100k rows")
+    parser.add_argument("--workers", type=int, default=2)
+    args = parser.parse_args(argv)
+    sizes = [int(s.replace("_", "")) for s in args.rows.split(",")]
+
+    with tempfile.TemporaryDirectory(prefix="sealfold-bench-") as tmp:
+        data_dir, import_root = Path(tmp) / "data", Path(tmp) / "imports"
+        import_root.mkdir()
+        env = {"SEALFOLD_IMPORT_ROOT": str(import_root), "SEALFOLD_LOG_LEVEL": "WARNING",
+               "SEALFOLD_QUEUE": "bench"}
+        options = embedded.StackOptions(data_dir=data_dir, port=0, workers=args.workers, extra_env=env)
+        with embedded.Supervisor() as sup:
+            print(f"starting an embedded stack with {args.workers} workers in {tmp}", flush=True)
+            stack = embedded.start_stack(sup, options)
+            engine = make_engine(Settings.load(environ=stack.env))
+            service = Service(stack.base_url, create_key(engine, "bench", "steward", "bench")[1],
+                              create_key(engine, "bench", "submitter", "bench")[1])
+            engine.dispose()
+            worker_pids = [w.pid for w in stack.workers]
+            results = []
+            for n in sizes:
+                frame = make_table(n)
+                runs = args.runs if n < 100_000 else args.big_runs
+                results.append(bench_size(service, frame, import_root, runs, worker_pids,
+                                          watch_memory=n >= 100_000))
+                del frame
+    report(results)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
