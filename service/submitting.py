@@ -53,7 +53,8 @@ def submit(
     """Create a submission and enqueue its jobs; return the row and whether it was created now.
 
     With an ``idempotency_key``, a replay of the same body returns the first submission; a
-    different body under the same key is a 422.
+    different body under the same key is a 422. A configuration the team already submitted on the
+    same data (same configuration fingerprint) returns that submission instead of a new one.
     """
     fingerprint = request_fingerprint(request)
     if idempotency_key is not None:
@@ -63,6 +64,12 @@ def submit(
 
     dataset = find_dataset(engine, key, request.dataset)
     document = configs.resolve(request, dataset, load_catalog())
+    config_fingerprint = configs.config_fingerprint(document, dataset["fingerprint"])
+    same = submissions.find_by_config(engine, key.team, dataset["id"], config_fingerprint)
+    if same is not None:
+        # The same model, validation and data were already judged: answer with that submission, so a
+        # resubmission recomputes nothing and spends no holdout budget.
+        return same, False
     check = dispatch.check_config_remote(redis, settings, document, dataset["id"])
     _check_probability_metrics(document, check)
     document["linear"] = bool(check.get("linear"))
@@ -72,7 +79,7 @@ def submit(
     row = {
         "id": sub_id, "team": key.team, "dataset_id": dataset["id"], "owner_key_id": key.id,
         "label": request.label, "config": document,
-        "config_fingerprint": configs.config_fingerprint(document, dataset["fingerprint"]),
+        "config_fingerprint": config_fingerprint,
         "folds_total": len(dispatch.fold_cells(validation)),
         "idempotency_key": idempotency_key, "request_fingerprint": fingerprint,
     }

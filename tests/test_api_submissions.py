@@ -122,8 +122,10 @@ def test_idempotency_key_replays_the_first_submission(
     assert again.headers["Location"] == first.headers["Location"]
     other = api.post("submitter", "/v1/submissions", json=_body(dataset, label="changed"), headers=headers)
     assert "Idempotency-Key" in api.problem(other, 422)["detail"]
-    # Keys are per API key: another submitter may use the same Idempotency-Key for its own submission.
-    theirs = api.post("submitter2", "/v1/submissions", json=_body(dataset), headers=headers)
+    # Keys are per API key: another submitter may use the same Idempotency-Key for its own submission
+    # (a different model here, since the same model on the same data would be the team's existing one).
+    other_model = _body(dataset, metrics=["rmse"])
+    theirs = api.post("submitter2", "/v1/submissions", json=other_model, headers=headers)
     assert theirs.status_code == 202 and theirs.get_json()["id"] != first.get_json()["id"]
     assert _count(api) == 2
     too_long = api.post("submitter", "/v1/submissions", json=_body(dataset), headers={"Idempotency-Key": "k" * 201})
@@ -145,8 +147,9 @@ def test_etag_and_if_none_match(api: Api, submitted: dict[str, Any]) -> None:
 
 def test_list_is_newest_first_in_pages(api: Api, dataset: dict[str, Any],
                                        worker_says_ok: list[dict[str, Any]]) -> None:
-    made = [api.post("submitter", "/v1/submissions", json=_body(dataset, label=f"n{i}")).get_json()["id"]
-            for i in range(5)]
+    # Five different models (alpha varies): identical ones would be one submission.
+    made = [api.post("submitter", "/v1/submissions", json=_body(dataset, model={
+        **_body(dataset)["model"], "params": {"alpha": 1.0 + i}})).get_json()["id"] for i in range(5)]
     api.post("other_steward", "/v1/submissions", json=_body(dataset))  # 404: not their dataset
     seen: list[str] = []
     cursor = None
@@ -240,3 +243,17 @@ def test_a_finished_submission_has_the_documented_shape(api: Api, submitted: dic
     listed = api.get("submitter", "/v1/submissions").get_json()["submissions"]
     assert listed == [doc]
     api.problem(api.delete("submitter", path), 409)
+
+
+def test_identical_configuration_returns_the_existing_submission(
+    api: Api, dataset: dict[str, Any], worker_says_ok: list[dict[str, Any]]
+) -> None:
+    first = api.post("submitter", "/v1/submissions", json=_body(dataset))
+    # Another member of the team, another label, same model + validation + metrics on the same data.
+    again = api.post("submitter2", "/v1/submissions", json=_body(dataset, label="same thing, new name"))
+    assert first.status_code == 202 and again.status_code == 200
+    assert again.get_json()["id"] == first.get_json()["id"]
+    assert _count(api) == 1
+    assert len(worker_says_ok) == 1, "the worker was asked to check the configuration again"
+    changed = api.post("submitter", "/v1/submissions", json=_body(dataset, metrics=["r2"]))
+    assert changed.status_code == 202 and _count(api) == 2

@@ -51,6 +51,18 @@ def find_by_idempotency_key(engine: Engine, owner_key_id: str, key: str) -> dict
     return None if row is None else dict(row)
 
 
+def find_by_config(engine: Engine, team: str, dataset_id: str, config_fingerprint: str) -> dict[str, Any] | None:
+    """Return the oldest live or finished submission of a team with this configuration, ignoring canceled ones."""
+    with engine.connect() as conn:
+        row = conn.execute(
+            select(submissions).where(
+                submissions.c.team == team, submissions.c.dataset_id == dataset_id,
+                submissions.c.config_fingerprint == config_fingerprint, submissions.c.state != "canceled",
+            ).order_by(submissions.c.created_at).limit(1)
+        ).mappings().first()
+    return None if row is None else dict(row)
+
+
 def list_for_team(
     engine: Engine, team: str, limit: int = 50, before: tuple[datetime, str] | None = None,
     dataset_id: str | None = None,

@@ -74,6 +74,9 @@ submissions = Table(
     Column("request_fingerprint", String(64)),
     Column("error", Text),
     Column("result", JSON),  # the summary document once computed (without holdout scores)
+    Column("verdict", JSON),  # the review gate's decision, reasons and rule figures
+    Column("policy_version", Integer),  # the policy version the verdict was judged under
+    Column("champion_id", String(40)),  # the champion in force when judged (None: there was none)
     Column("created_at", DateTime(timezone=True), nullable=False),
     Column("started_at", DateTime(timezone=True)),
     Column("finished_at", DateTime(timezone=True)),
@@ -81,6 +84,7 @@ submissions = Table(
     UniqueConstraint("owner_key_id", "idempotency_key", name="uq_submission_idempotency"),
     Index("ix_submissions_team_created", "team", "created_at"),
     Index("ix_submissions_state", "state"),
+    Index("ix_submissions_config", "dataset_id", "config_fingerprint"),
 )
 
 fold_results = Table(
@@ -110,6 +114,44 @@ holdout_scores = Table(
     Column("holdout_fingerprint", String(64), nullable=False),
     Column("fit_seconds", Float),
     Column("scored_at", DateTime(timezone=True), nullable=False),
+)
+
+policies = Table(
+    "policies",
+    metadata,
+    # Versioned: a PUT adds a row; a verdict records the version it was judged under.
+    Column("dataset_id", ForeignKey("datasets.id"), primary_key=True),
+    Column("version", Integer, primary_key=True),
+    Column("document", JSON, nullable=False),
+    Column("set_by", String(40), nullable=False),
+    Column("set_at", DateTime(timezone=True), nullable=False),
+)
+
+champions = Table(
+    "champions",
+    metadata,
+    # History of promotions; the champion in force is the newest row of a dataset.
+    Column("id", Integer, primary_key=True, autoincrement=True),
+    Column("dataset_id", ForeignKey("datasets.id"), nullable=False, index=True),
+    Column("submission_id", ForeignKey("submissions.id"), nullable=False),
+    Column("promoted_by", String(40), nullable=False),
+    Column("promoted_at", DateTime(timezone=True), nullable=False),
+)
+
+holdout_releases = Table(
+    "holdout_releases",
+    metadata,
+    # What a submitter was shown of the holdout; the raw score stays in holdout_scores.
+    Column("submission_id", ForeignKey("submissions.id"), primary_key=True),
+    Column("dataset_id", ForeignKey("datasets.id"), nullable=False),
+    Column("owner_key_id", String(40), nullable=False),
+    Column("mode", String(20), nullable=False),
+    Column("released", JSON),  # {metric: value} as released, or null when withheld
+    Column("spent", Integer, nullable=False),  # units of the submitter's budget this release used
+    Column("state", JSON, nullable=False),  # mechanism state after this release (ladder best, budget left)
+    Column("withheld_until", DateTime(timezone=True)),
+    Column("released_at", DateTime(timezone=True), nullable=False),
+    Index("ix_releases_owner", "dataset_id", "owner_key_id", "released_at"),
 )
 
 audit_events = Table(
