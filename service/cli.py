@@ -1,4 +1,7 @@
-"""The ``sealfold`` command: ``up`` (the embedded stack), ``worker`` and ``keys create``.
+"""The ``sealfold`` command: ``up`` (the embedded stack), ``worker``, ``keys create``, and the client.
+
+The client commands (``submit``, ``status``, ``board``, ``datasets``) talk HTTP to a service
+anywhere (``service.client_commands``); the others run or administer a local deployment.
 
 Nothing heavy is imported at module level: ``sealfold keys create`` must answer quickly, and the
 service package never imports Flask or scikit-learn outside ``service.api``/``service.app``. The
@@ -67,7 +70,61 @@ def build_parser() -> argparse.ArgumentParser:
     create.add_argument("--team", required=True)
     create.add_argument("--role", required=True, choices=ROLES)
     create.add_argument("--name", default="", help="a label for the key")
+    add_client_commands(commands)
     return parser
+
+
+def _seconds(raw: str) -> float:
+    value = float(raw)
+    if not 0 < value <= 7 * 24 * 3600:
+        raise argparse.ArgumentTypeError(f"must be between 0 and 604800 seconds, got {raw}")
+    return value
+
+
+def _poll_seconds(raw: str) -> float:
+    value = float(raw)
+    if not 0.05 <= value <= 600:
+        raise argparse.ArgumentTypeError(f"must be between 0.05 and 600 seconds, got {raw}")
+    return value
+
+
+def _entries(raw: str) -> int:
+    value = int(raw)
+    if not 1 <= value <= 10_000:
+        raise argparse.ArgumentTypeError(f"must be between 1 and 10000, got {value}")
+    return value
+
+
+CLIENT_EPILOG = ("exit codes: 0 passed (reading commands: answered); 1 failed, inconclusive, failed to run or "
+                 "canceled; 2 usage or a request the service refused (4xx); 3 the service unreachable or failing "
+                 "(connection refused, timeout, 5xx)")
+
+
+def add_client_commands(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    """Add submit, status, board and datasets, which talk HTTP to SEALFOLD_URL with SEALFOLD_KEY."""
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--url", help="service base URL (default: $SEALFOLD_URL)")
+    common.add_argument("--key", help="API key (default: $SEALFOLD_KEY; prefer the variable, flags show in ps)")
+    common.add_argument("--json", action="store_true", help="print the JSON document instead of a summary")
+    submit = commands.add_parser(
+        "submit", parents=[common], help="submit a model configuration for review", epilog=CLIENT_EPILOG,
+        description="POST CONFIG.json (- for stdin) as a submission. The Idempotency-Key is derived from the "
+        "file and the dataset, so rerunning the same job returns the first submission. Without --wait, print "
+        "its id; with --wait, show fold progress on stderr and exit by the verdict.",
+    )
+    submit.add_argument("config", metavar="CONFIG.json")
+    submit.add_argument("--dataset", help="dataset id, replacing the one in the file")
+    submit.add_argument("--wait", action="store_true", help="wait for the verdict; the exit code follows it")
+    submit.add_argument("--timeout", type=_seconds, default=3600.0,
+                        help="seconds to wait with --wait before giving up with exit 3 (default 3600)")
+    submit.add_argument("--poll", type=_poll_seconds, default=1.0, help="seconds between polls (default 1)")
+    submit.add_argument("--idempotency-key", help="use this key instead of the derived one")
+    status = commands.add_parser("status", parents=[common], help="show one submission", epilog=CLIENT_EPILOG)
+    status.add_argument("id", metavar="ID")
+    board = commands.add_parser("board", parents=[common], help="show a dataset's board", epilog=CLIENT_EPILOG)
+    board.add_argument("dataset", metavar="DATASET")
+    board.add_argument("--limit", type=_entries, default=20, help="entries to show (default 20)")
+    commands.add_parser("datasets", parents=[common], help="list the team's datasets", epilog=CLIENT_EPILOG)
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -77,6 +134,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         return cmd_up(args)
     if args.command == "worker":
         return cmd_worker(args)
+    if args.command in ("submit", "status", "board", "datasets"):
+        from service import client_commands
+
+        return client_commands.run(args)
     return cmd_keys_create(args)
 
 

@@ -2,13 +2,14 @@
 
 Jobs are enqueued by dotted name (``worker.jobs.*``), so the API process never imports the worker
 or scikit-learn. Job ids are deterministic -- ``<sub>-fold-<repeat>-<fold>``, ``<sub>-summary``,
-``<sub>-holdout`` (rq 3 accepts only letters, digits, ``_`` and ``-`` in a job id) -- which makes
+``<sub>-holdout``, ``<sub>-verdict`` (rq 3 accepts only letters, digits, ``_`` and ``-`` in a job id) -- which makes
 re-enqueueing idempotent: the reconciler can run on every worker at once and still produce one job
 per piece of work.
 
 Chain per submission::
 
     fold jobs (one per repeat x fold) --allow_failure--> summary (fan-in) --> holdout (exactly once)
+        --> verdict (release the holdout figure, judge, mark succeeded)
 """
 
 from __future__ import annotations
@@ -55,6 +56,11 @@ def holdout_job_id(sub_id: str) -> str:
     return f"{sub_id}-holdout"
 
 
+def verdict_job_id(sub_id: str) -> str:
+    """Return the deterministic id of a submission's verdict job."""
+    return f"{sub_id}-verdict"
+
+
 def work_queue(redis: Redis, settings: Settings) -> Queue:
     """Return the queue fold, summary and holdout jobs go to."""
     return Queue(settings.queue_name, connection=redis, serializer=JSONSerializer)
@@ -72,6 +78,7 @@ def enqueue_submission(redis: Redis, settings: Settings, sub_id: str, validation
         fold_ids = [_enqueue_fold(queue, settings, sub_id, r, f) for r, f in fold_cells(validation)]
         _enqueue_summary(queue, settings, sub_id, fold_ids)
         _enqueue_holdout(queue, settings, sub_id, [summary_job_id(sub_id)])
+        _enqueue_verdict(queue, sub_id, [holdout_job_id(sub_id)])
     except RedisError as exc:
         # The submission row exists and the reconciler will enqueue it once Redis is back.
         log.warning("could not enqueue %s: %s", sub_id, exc)
@@ -111,7 +118,7 @@ def check_config_remote(
 def cancel_jobs(redis: Redis, settings: Settings, sub_id: str, validation: dict[str, Any]) -> None:
     """Cancel a submission's queued jobs; running ones see the canceled state and stop early."""
     ids = [fold_job_id(sub_id, r, f) for r, f in fold_cells(validation)]
-    ids += [summary_job_id(sub_id), holdout_job_id(sub_id)]
+    ids += [summary_job_id(sub_id), holdout_job_id(sub_id), verdict_job_id(sub_id)]
     try:
         for job in Job.fetch_many(ids, connection=redis, serializer=JSONSerializer):
             if job is not None and job.get_status(refresh=False) in (JobStatus.QUEUED, JobStatus.DEFERRED):
@@ -169,6 +176,7 @@ def _reconcile_one(engine: Engine, live: set[str], queue: Queue, settings: Setti
         elif sub["result"] is None:
             live_folds.append(_enqueue_fold(queue, settings, sub_id, r, f))
             enqueued += 1
+    scored = submissions.get_holdout(engine, sub_id) is not None
     if sub["result"] is None:
         if summary_job_id(sub_id) not in live:
             _enqueue_summary(queue, settings, sub_id, live_folds)
@@ -176,8 +184,11 @@ def _reconcile_one(engine: Engine, live: set[str], queue: Queue, settings: Setti
         if holdout_job_id(sub_id) not in live:
             _enqueue_holdout(queue, settings, sub_id, [summary_job_id(sub_id)])
             enqueued += 1
-    elif holdout_job_id(sub_id) not in live:
+    elif not scored and holdout_job_id(sub_id) not in live:
         _enqueue_holdout(queue, settings, sub_id, [])
+        enqueued += 1
+    if verdict_job_id(sub_id) not in live:  # a live submission always ends with its verdict job
+        _enqueue_verdict(queue, sub_id, [] if scored else [holdout_job_id(sub_id)])
         enqueued += 1
     if enqueued:
         log.info("reconciler re-enqueued %d job(s) of %s", enqueued, sub_id)
@@ -208,6 +219,14 @@ def _enqueue_holdout(queue: Queue, settings: Settings, sub_id: str, depends_on: 
         depends_on=Dependency(jobs=depends_on, allow_failure=True) if depends_on else None,
         timeout=settings.fold_timeout_seconds * 2, result_ttl=RESULT_TTL, retry=_retry(),
         description=f"holdout score of {sub_id}",
+    )
+
+
+def _enqueue_verdict(queue: Queue, sub_id: str, depends_on: list[str]) -> None:
+    queue.enqueue_call(
+        f"{JOB_MODULE}.judge", args=(sub_id,), job_id=verdict_job_id(sub_id),
+        depends_on=Dependency(jobs=depends_on, allow_failure=True) if depends_on else None,
+        timeout=600, result_ttl=RESULT_TTL, retry=_retry(), description=f"verdict of {sub_id}",
     )
 
 

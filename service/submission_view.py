@@ -1,7 +1,8 @@
 """Compose the submission document a team member reads (``GET /v1/submissions/{id}``).
 
-One place builds it, from the records alone: the submission row, its fold rows, its stored summary
-and its holdout score. The holdout part is aggregate scores only -- never rows, ids or predictions.
+One place builds it, from the records alone: the submission row, its fold rows, its stored summary,
+its holdout release and its verdict. The holdout part is what the release policy let out -- never
+the raw score, rows, ids or predictions.
 """
 
 from __future__ import annotations
@@ -10,14 +11,15 @@ from typing import Any
 
 from sqlalchemy import Engine
 
-from service.records import submissions
+from service.records import reviews, submissions
 from service.records.engine import iso
+from service.review_state import holdout_part
 
 
 def submission_document(engine: Engine, row: dict[str, Any]) -> dict[str, Any]:
     """Return the document for one submission row."""
     folds = submissions.fold_rows(engine, row["id"])
-    holdout = submissions.get_holdout(engine, row["id"])
+    release = reviews.get_release(engine, row["id"])
     config = row["config"]
     return {
         "id": row["id"],
@@ -31,11 +33,11 @@ def submission_document(engine: Engine, row: dict[str, Any]) -> dict[str, Any]:
         "error": row["error"],
         "config": {k: config[k] for k in ("model", "validation", "metrics")},
         "config_fingerprint": row["config_fingerprint"],
-        "result": _result(row, folds, holdout),
+        "result": _result(row, folds, release),
     }
 
 
-def _result(row: dict[str, Any], folds: list[dict[str, Any]], holdout: dict[str, Any] | None) -> dict[str, Any] | None:
+def _result(row: dict[str, Any], folds: list[dict[str, Any]], release: dict[str, Any] | None) -> dict[str, Any] | None:
     summary = row["result"]
     if summary is None and not folds:
         return None
@@ -48,8 +50,8 @@ def _result(row: dict[str, Any], folds: list[dict[str, Any]], holdout: dict[str,
         },
         "coefficients": summary.get("coefficients"),
         "baseline": summary.get("baseline"),
-        "holdout": _holdout(holdout),
-        "verdict": None,  # the review gate decides verdicts; until then there is none
+        "holdout": holdout_part(release, row["state"]),  # only what the release policy lets out, never the raw score
+        "verdict": row["verdict"],
         "provenance": summary.get("provenance"),
     }
 
@@ -64,9 +66,3 @@ def _fold(f: dict[str, Any]) -> dict[str, Any]:
     if f["error"]:
         out["error"] = f["error"]
     return out
-
-
-def _holdout(holdout: dict[str, Any] | None) -> dict[str, Any]:
-    if holdout is None:
-        return {"released": False, "mode": "exact", "scores": None}
-    return {"released": True, "mode": "exact", "scores": holdout["scores"], "scored_at": iso(holdout["scored_at"])}

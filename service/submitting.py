@@ -23,6 +23,7 @@ from service.ids import new_id
 from service.metrics_spec import METRICS
 from service.records import audit, datasets, submissions
 from service.records.keys import KeyInfo
+from service.review_state import policy_in_force
 from service.settings import Settings
 
 
@@ -64,6 +65,10 @@ def submit(
 
     dataset = find_dataset(engine, key, request.dataset)
     document = configs.resolve(request, dataset, load_catalog())
+    primary = policy_in_force(engine, dataset)["primary_metric"]
+    if primary not in document["metrics"]:
+        # The verdict is decided on the policy's primary metric, so every submission computes it.
+        document["metrics"].append(primary)
     config_fingerprint = configs.config_fingerprint(document, dataset["fingerprint"])
     same = submissions.find_by_config(engine, key.team, dataset["id"], config_fingerprint)
     if same is not None:

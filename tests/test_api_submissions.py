@@ -14,7 +14,7 @@ from sqlalchemy import func, select
 
 from service import dispatch
 from service.api.schemas import SubmissionSchema
-from service.records import submissions
+from service.records import reviews, submissions
 from service.records.tables import submissions as submissions_table
 from service.vault.store import load_development_frame
 
@@ -225,7 +225,12 @@ def test_a_finished_submission_has_the_documented_shape(api: Api, submitted: dic
         "coefficients": None, "provenance": {"dataset_fingerprint": "f" * 64, "config_fingerprint": "c" * 64,
                                              "fold_plan": {"scheme": "kfold"}, "versions": {"sklearn": "1"}},
     })
-    submissions.store_holdout_once(api.engine, sub_id, {"rmse": 56.5, "r2": 0.47}, "h" * 64, 0.02)
+    submissions.store_holdout_once(api.engine, sub_id, {"rmse": 56.5123, "r2": 0.4711}, "h" * 64, 0.02)
+    # What the verdict job releases (exact mode, rounded): the document shows this, never the raw score.
+    reviews.record_release(api.engine, {
+        "submission_id": sub_id, "dataset_id": submitted["dataset"], "owner_key_id": row_owner(api, sub_id),
+        "mode": "exact", "released": {"rmse": 56.5, "r2": 0.471}, "spent": 1, "state": {"secret": 0.123},
+        "withheld_until": None})
     submissions.transition(api.engine, sub_id, "succeeded", submissions.LIVE_STATES)
     reply = api.get("submitter", path, headers={"If-None-Match": etag})
     assert reply.status_code == 200 and reply.headers["ETag"] != etag
@@ -238,11 +243,18 @@ def test_a_finished_submission_has_the_documented_shape(api: Api, submitted: dic
     assert {"cv", "coefficients", "baseline", "holdout", "verdict", "provenance"} <= set(doc["result"])
     assert doc["result"]["cv"]["folds"][0]["scores"] == {"rmse": 55.0, "r2": 0.45}
     holdout = doc["result"]["holdout"]
-    assert holdout["released"] is True and holdout["scores"] == {"rmse": 56.5, "r2": 0.47}
-    assert "h" * 64 not in reply.get_data(as_text=True)
+    assert holdout["released"] is True and holdout["scores"] == {"rmse": 56.5, "r2": 0.471}
+    text = reply.get_data(as_text=True)
+    assert "h" * 64 not in text and "56.5123" not in text and "0.4711" not in text and "secret" not in text
     listed = api.get("submitter", "/v1/submissions").get_json()["submissions"]
     assert listed == [doc]
     api.problem(api.delete("submitter", path), 409)
+
+
+def row_owner(api: Api, sub_id: str) -> str:
+    row = submissions.get(api.engine, sub_id)
+    assert row is not None
+    return str(row["owner_key_id"])
 
 
 def test_identical_configuration_returns_the_existing_submission(

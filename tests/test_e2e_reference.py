@@ -31,8 +31,13 @@ def _submit(stack: Stack, body: dict[str, Any]) -> dict[str, Any]:
 
 @pytest.fixture(scope="module")
 def diabetes(stack: Stack) -> dict[str, Any]:
-    return register(stack.client("steward"), diabetes_frame(), name="diabetes", target="target",
-                    task="regression", folds=5)
+    ds = register(stack.client("steward"), diabetes_frame(), name="diabetes", target="target",
+                  task="regression", folds=5)
+    # Release every holdout metric exactly (rounded), so the test can see them all.
+    put = stack.client("steward").request("PUT", f"/v1/datasets/{ds['id']}/policy",
+                                          json_body={"primary_metric": "rmse", "release": {"mode": "exact"}})
+    assert put.status == 200, put.text
+    return ds
 
 
 @pytest.fixture(scope="module")

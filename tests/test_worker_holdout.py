@@ -65,7 +65,26 @@ def test_holdout_scores_equal_sklearn_refit_on_development_rows(ctx: WorkerConte
     assert stored["scores"]["mae"] == pytest.approx(skm.mean_absolute_error(y[400:], pred), rel=1e-10)
     assert stored["scores"]["r2"] == pytest.approx(skm.r2_score(y[400:], pred), rel=1e-10)
     sub = submissions.get(ctx.engine, sub_id)
-    assert sub is not None and sub["state"] == "succeeded" and sub["finished_at"] is not None
+    # The verdict job, not the holdout job, finishes a submission (so "succeeded" always has a verdict).
+    assert sub is not None and sub["state"] == "running" and sub["finished_at"] is None
+
+
+@pytest.mark.parametrize("features", [
+    ["age", "sex", "bmi", "bp", "s1", "s2", "s3", "s4", "s5", "s6"], ["bp", "age", "s6"],
+], ids=["stored-order", "reordered-subset"])
+def test_holdout_without_steps_equals_the_bare_estimator(
+    ctx: WorkerContext, features: list[str]  # noqa: F811
+) -> None:
+    sub_id, _ = prepared(ctx, {"features": features, "preprocess": []})
+    assert jobs.score_holdout(sub_id)["holdout"] == "scored"
+    stored = submissions.get_holdout(ctx.engine, sub_id)
+    assert stored is not None
+    # Reference: Ridge alone fitted by scikit-learn on the 400 development rows, scored on the 42 others.
+    frame = load_diabetes(as_frame=True).frame
+    X, y = frame[features].to_numpy(), frame["target"].to_numpy()
+    pred = Ridge(alpha=0.7).fit(X[:400], y[:400]).predict(X[400:])
+    assert stored["scores"]["rmse"] == pytest.approx(skm.root_mean_squared_error(y[400:], pred), rel=1e-10)
+    assert stored["scores"]["r2"] == pytest.approx(skm.r2_score(y[400:], pred), rel=1e-10)
 
 
 def test_holdout_is_scored_once_when_the_job_runs_twice(
@@ -73,13 +92,13 @@ def test_holdout_is_scored_once_when_the_job_runs_twice(
 ) -> None:
     sub_id, _ = prepared(ctx)
     calls: list[int] = []
-    real = holdout.score_model
+    real = holdout.predictions  # the one place the holdout job predicts on sealed rows
 
     def counting(*args: Any, **kwargs: Any) -> Any:
         calls.append(1)
         return real(*args, **kwargs)
 
-    monkeypatch.setattr(holdout, "score_model", counting)
+    monkeypatch.setattr(holdout, "predictions", counting)
     opened: list[str] = []
     real_open = store.open_sealed_holdout
     monkeypatch.setattr(store, "open_sealed_holdout",

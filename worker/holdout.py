@@ -17,9 +17,10 @@ from service.errors import SealBroken
 from service.records import datasets, submissions
 from service.vault import store
 from worker.development import column_kinds, load_development, model_frame, model_matrix, target_values
+from worker.losses import save_per_example
 from worker.pipeline import build_pipeline, uses_frame
 from worker.runtime import WorkerContext
-from worker.scoring import score_model
+from worker.scoring import per_example, predictions, score_predictions
 
 
 def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
@@ -31,8 +32,7 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     if sub["state"] in ("failed", "canceled"):
         return {"submission_id": submission_id, "skipped": sub["state"]}
     if submissions.get_holdout(engine, submission_id) is not None:
-        # Scored by an earlier run that may have died before finishing the submission.
-        submissions.transition(engine, submission_id, "succeeded", submissions.LIVE_STATES)
+        # Scored by an earlier run; the verdict job finishes the submission.
         return {"submission_id": submission_id, "holdout": "already scored"}
     if sub["result"] is None:
         raise RuntimeError(f"submission {submission_id} has no cross-validation summary yet; "
@@ -69,7 +69,9 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
             X = model_frame(holdout, features, kinds) if uses_frame(features, kinds) \
                 else model_matrix(holdout, features)
             y = target_values(holdout[dataset["target"]], str(dataset["task"]))
-            scores, _undefined = score_model(pipeline, X, y, metrics)
+            pred, proba, classes = predictions(pipeline, X, metrics)
+            scores, _undefined = score_predictions(y, pred, proba, classes, metrics)
+            kept = {m: v for m in metrics if (v := per_example(m, y, pred, proba, classes)) is not None}
     except MemoryError:
         raise
     except Exception as exc:
@@ -81,9 +83,12 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
         del holdout
 
     # A metric undefined on the holdout (e.g. roc_auc with one class present) is stored as None.
+    if submissions.get_holdout(engine, submission_id) is None:
+        # Kept for the parameter-free ladder, inside the sealed directory; written before the score so
+        # that a stored score always has them.
+        save_per_example(ctx.settings, dataset["id"], submission_id, kept)
     _stored, created = submissions.store_holdout_once(
         engine, submission_id, scores, dataset["holdout_fingerprint"], fit_seconds
     )
-    submissions.transition(engine, submission_id, "succeeded", submissions.LIVE_STATES)
     return {"submission_id": submission_id, "holdout": "scored" if created else "already scored",
             "metrics": sorted(scores)}

@@ -8,8 +8,11 @@ from __future__ import annotations
 
 from typing import Any
 
+from rq import get_current_job
+
 from worker import checks, holdout, summary
 from worker.fold import run_fold as _run_fold
+from worker.judge import judge_submission
 from worker.runtime import current
 
 
@@ -33,7 +36,15 @@ def score_holdout(submission_id: str) -> dict[str, Any]:
     return holdout.score_holdout(current(), submission_id)
 
 
+def judge(submission_id: str) -> dict[str, Any]:
+    """Release the holdout figure under the dataset's policy and store the verdict."""
+    job = get_current_job()
+    if job is None:
+        raise RuntimeError("worker.jobs.judge runs inside an RQ job; it needs the job's Redis connection")
+    return judge_submission(current(), job.connection, submission_id)
+
+
 # The dotted names a sealfold worker agrees to run; nothing else in Redis is ever imported.
 ALLOWED_JOBS: frozenset[str] = frozenset(
-    f"{__name__}.{job.__name__}" for job in (check_config, run_fold, summarize, score_holdout)
+    f"{__name__}.{job.__name__}" for job in (check_config, run_fold, summarize, score_holdout, judge)
 )

@@ -70,19 +70,19 @@ def compute(
     return value if math.isfinite(value) else None
 
 
-def score_model(
-    model: Any, X: Any, y: Any, metric_names: Sequence[str]
-) -> tuple[dict[str, float | None], dict[str, str]]:
-    """Predict once (labels and/or probabilities as the metrics need) and compute every metric.
-
-    Returns the scores and, per metric scikit-learn could not compute on these rows (e.g. ``roc_auc``
-    on a fold with one class), its message; such a metric scores None.
-    """
+def predictions(model: Any, X: Any, metric_names: Sequence[str]) -> tuple[Any, Any, Any]:
+    """Predict once: labels and/or probabilities as the metrics need, and the fitted classes."""
     needs_proba = any(METRICS[m].needs_proba for m in metric_names)
-    needs_pred = any(not METRICS[m].needs_proba for m in metric_names)
+    needs_pred = any(not METRICS[m].needs_proba or m in PER_EXAMPLE_FROM_LABELS for m in metric_names)
     pred = model.predict(X) if needs_pred else None
     proba = model.predict_proba(X) if needs_proba else None
-    classes = getattr(model, "classes_", None)
+    return pred, proba, getattr(model, "classes_", None)
+
+
+def score_predictions(
+    y: Any, pred: Any, proba: Any, classes: Any, metric_names: Sequence[str]
+) -> tuple[dict[str, float | None], dict[str, str]]:
+    """Compute every metric from one set of predictions; see ``score_model`` for undefined metrics."""
     scores: dict[str, float | None] = {}
     undefined: dict[str, str] = {}
     for name in metric_names:
@@ -91,3 +91,42 @@ def score_model(
         except ValueError as exc:
             scores[name], undefined[name] = None, str(exc)
     return scores, undefined
+
+
+def score_model(
+    model: Any, X: Any, y: Any, metric_names: Sequence[str]
+) -> tuple[dict[str, float | None], dict[str, str]]:
+    """Predict once (labels and/or probabilities as the metrics need) and compute every metric.
+
+    Returns the scores and, per metric scikit-learn could not compute on these rows (e.g. ``roc_auc``
+    on a fold with one class), its message; such a metric scores None.
+    """
+    pred, proba, classes = predictions(model, X, metric_names)
+    return score_predictions(y, pred, proba, classes, metric_names)
+
+
+PER_EXAMPLE_FROM_LABELS = frozenset({"rmse", "mse", "mae", "accuracy"})
+
+
+def per_example(name: str, y_true: Any, pred: Any, proba: Any, classes: Any) -> np.ndarray | None:
+    """Return per-row values whose mean is the metric (rmse: squared errors), or None if it has none.
+
+    For the parameter-free ladder only; these values stay inside the service.
+    """
+    y = np.asarray(y_true)
+    if name in ("rmse", "mse"):
+        return np.square(y.astype(float) - np.asarray(pred, dtype=float))
+    if name == "mae":
+        return np.abs(y.astype(float) - np.asarray(pred, dtype=float))
+    if name == "accuracy":
+        return (y == np.asarray(pred)).astype(float)
+    if name in ("log_loss", "brier") and proba is not None and classes is not None:
+        p = np.asarray(proba, dtype=float)
+        column = np.searchsorted(np.asarray(classes), y)
+        if name == "log_loss":
+            # scikit-learn's log_loss clips probabilities to [eps, 1 - eps] with eps of the dtype.
+            eps = np.finfo(p.dtype).eps
+            return -np.log(np.clip(p[np.arange(len(y)), column], eps, 1 - eps))
+        if p.shape[1] == 2:
+            return np.square(p[:, 1] - (column == 1))
+    return None

@@ -56,7 +56,7 @@ def json_response(document: Any, status: int = 200, headers: Mapping[str, str] |
 
 def register_blueprints(api: SealfoldApi) -> None:
     """Register every blueprint of the v1 surface and the open operational endpoints."""
-    from service.api import catalog, datasets, keys, ops, submissions
+    from service.api import catalog, datasets, keys, ops, report, reviews, submissions
 
-    for module in (datasets, submissions, catalog, keys, ops):
+    for module in (datasets, reviews, submissions, report, catalog, keys, ops):
         api.register_blueprint(module.blp)

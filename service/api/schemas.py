@@ -272,17 +272,32 @@ class BaselineSchema(Schema):
 
 
 class HoldoutResultSchema(Schema):
-    """Aggregate holdout scores only, once, as the release policy allows: never rows or predictions."""
+    """Only what the release policy released, once: never the raw score, rows or predictions."""
 
     released = fields.Boolean()
-    mode = fields.String()
+    mode = fields.String(allow_none=True, validate=validate.OneOf(("exact", "ladder", "thresholdout")),
+                         metadata={"description": "null until the holdout job ran"})
     scores = fields.Dict(keys=fields.String(), values=fields.Float(), allow_none=True)
-    scored_at = fields.String(metadata=_DATETIME)
+    withheld_until = fields.String(allow_none=True, metadata={
+        **_DATETIME, "description": "when withheld: when the submitter's release budget returns"})
+    note = fields.String(allow_none=True)
+
+
+class VerdictRuleSchema(Schema):
+    rule = fields.String(validate=validate.OneOf(("baseline", "bar", "champion", "holdout_gap", "fold_stability")))
+    outcome = fields.String(validate=validate.OneOf(("pass", "fail", "inconclusive", "skipped")))
+    sentence = fields.String()
+    figures = fields.Dict()
 
 
 class VerdictSchema(Schema):
-    decision = fields.String()
-    reasons = fields.List(fields.String())
+    decision = fields.String(validate=validate.OneOf(("pass", "fail", "inconclusive")))
+    reasons = fields.List(fields.String(), metadata={"description": "one sentence per rule, failures first"})
+    rules = fields.List(fields.Nested(VerdictRuleSchema))
+    primary_metric = fields.String()
+    test = fields.String(validate=validate.OneOf(("corrected_resampled_t", "five_by_two_cv")))
+    policy_version = fields.Integer(metadata={"description": "the policy version it was judged under"})
+    champion = fields.String(allow_none=True, metadata={"description": "the champion compared with"})
 
 
 class ProvenanceSchema(Schema):

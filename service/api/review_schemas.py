@@ -1,0 +1,136 @@
+"""Schemas of the review-gate surface: policy, champion, board (documentation; bodies per contract).
+
+The policy body is judged by ``service.policy.parse_policy`` (one place for its rules, with JSON
+pointers in its errors); these schemas describe it for the OpenAPI document and check nothing.
+"""
+
+from __future__ import annotations
+
+from marshmallow import EXCLUDE, Schema, fields, validate
+
+_DATETIME = {"format": "date-time"}
+DECISIONS = ("pass", "fail", "inconclusive")
+RELEASE_MODES = ("exact", "ladder", "thresholdout")
+
+
+class HoldoutGapSchema(Schema):
+    k_std = fields.Float(metadata={"description": "allowed gap in fold standard deviations"})
+    floor = fields.Float(metadata={"minimum": 0, "description": "added to the gap, in the metric's units"})
+
+
+class ThresholdoutSchema(Schema):
+    threshold = fields.Float(metadata={"exclusiveMinimum": 0})
+    sigma = fields.Float(metadata={"exclusiveMinimum": 0})
+    budget = fields.Integer(metadata={"minimum": 1})
+
+
+class ReleaseSchema(Schema):
+    mode = fields.String(metadata={"enum": list(RELEASE_MODES)})
+    digits = fields.Integer(metadata={"description": "exact mode: digits the score is rounded to"})
+    budget = fields.Integer(metadata={"description": "holdout releases per submitter per dataset per window"})
+    window_hours = fields.Float()
+    ladder_step = fields.Float(allow_none=True, metadata={"description": "null: the parameter-free ladder"})
+    thresholdout = fields.Nested(ThresholdoutSchema)
+
+
+class PolicyBodySchema(Schema):
+    """A dataset's review policy as a steward sends it (the server assigns the version)."""
+
+    primary_metric = fields.String(metadata={"example": "rmse", "description": "see GET /v1/catalog"})
+    greater_is_better = fields.Boolean(metadata={"description": "must match the metric's direction"})
+    bar = fields.Float(allow_none=True, metadata={"description": "absolute bar on the CV mean; null: none"})
+    baseline_alpha = fields.Float(metadata={"exclusiveMinimum": 0, "exclusiveMaximum": 0.5,
+                                            "description": "level of the one-sided test against the baseline"})
+    champion_margin = fields.Float(metadata={"minimum": 0, "description": "non-inferiority margin, in the "
+                                                                          "metric's units"})
+    champion_alpha = fields.Float(metadata={"exclusiveMinimum": 0, "exclusiveMaximum": 0.5})
+    holdout_gap = fields.Nested(HoldoutGapSchema, metadata={
+        "description": "|holdout - CV mean| <= k_std * fold std + floor"})
+    max_fold_std = fields.Float(allow_none=True, metadata={"description": "limit on the fold spread; null: none"})
+    release = fields.Nested(ReleaseSchema)
+
+
+class PolicySchema(PolicyBodySchema):
+    """The policy in force; version 0 is the task's default, never stored."""
+
+    version = fields.Integer(metadata={"minimum": 0})
+
+
+class ChampionRequestSchema(Schema):
+    submission = fields.String(required=True, validate=validate.Length(min=1, max=40),
+                               metadata={"example": "sub_0123456789abcdef0123"})
+
+
+class PromotionSchema(Schema):
+    submission = fields.String()
+    promoted_by = fields.String(metadata={"description": "key id of the steward"})
+    promoted_at = fields.String(metadata=_DATETIME)
+
+
+class ChampionSchema(PromotionSchema):
+    label = fields.String()
+    verdict = fields.String(allow_none=True, validate=validate.OneOf(DECISIONS))
+
+
+class ChampionStateSchema(Schema):
+    """The champion in force (null: none yet) and every promotion, newest first."""
+
+    dataset = fields.String()
+    champion = fields.Nested(ChampionSchema, allow_none=True)
+    history = fields.List(fields.Nested(PromotionSchema))
+
+
+class BoardQuerySchema(Schema):
+    class Meta:
+        unknown = EXCLUDE
+
+    limit = fields.Integer(load_default=50, validate=validate.Range(1, 200))
+    cursor = fields.String(load_default=None, metadata={"description": "next_cursor of the previous page"})
+
+
+class BoardCvSchema(Schema):
+    mean = fields.Float()
+    std = fields.Float(allow_none=True)
+    n = fields.Integer(allow_none=True, metadata={"description": "folds with a score"})
+    naive_interval_95 = fields.List(fields.Float(), allow_none=True, metadata={
+        "description": "treats folds as independent, which they are not: read it as too narrow"})
+
+
+class BoardHoldoutSchema(Schema):
+    """Only what the release policy released; never the raw holdout score."""
+
+    released = fields.Boolean()
+    mode = fields.String(allow_none=True)
+    score = fields.Float(allow_none=True, metadata={"description": "the primary metric, as released"})
+    withheld_until = fields.String(allow_none=True, metadata=_DATETIME)
+
+
+class SubmitterSchema(Schema):
+    key = fields.String()
+    name = fields.String(allow_none=True)
+
+
+class BoardEntrySchema(Schema):
+    rank = fields.Integer(metadata={"description": "1 = best CV mean of the primary metric"})
+    submission = fields.String()
+    label = fields.String()
+    state = fields.String()
+    cv = fields.Nested(BoardCvSchema)
+    holdout = fields.Nested(BoardHoldoutSchema)
+    verdict = fields.String(allow_none=True, validate=validate.OneOf(DECISIONS))
+    policy_version = fields.Integer(allow_none=True, metadata={"description": "the policy it was judged under"})
+    submitter = fields.Nested(SubmitterSchema)
+    created_at = fields.String(metadata=_DATETIME)
+    champion = fields.Boolean()
+
+
+class BoardSchema(Schema):
+    """A dataset's submissions ranked by the CV mean of the policy's primary metric."""
+
+    dataset = fields.String()
+    primary_metric = fields.String()
+    greater_is_better = fields.Boolean()
+    policy_version = fields.Integer()
+    champion = fields.String(allow_none=True)
+    entries = fields.List(fields.Nested(BoardEntrySchema))
+    next_cursor = fields.String(allow_none=True, metadata={"description": "null on the last page"})

@@ -1,0 +1,132 @@
+"""Rank a dataset's submissions by the primary cross-validation metric of the policy in force.
+
+The ranking runs in SQL on the stored summaries (a JSON path the SQLite and PostgreSQL dialects
+both translate), one page at a time with a keyset cursor, so a long board never loads every
+result. The holdout figure shown is the one the release mechanism released -- the raw score in
+``holdout_scores`` is never read here. Failed and canceled submissions are not on the board, nor
+those without a CV mean of the primary metric (still queued, or scored on other metrics).
+"""
+
+from __future__ import annotations
+
+import base64
+import binascii
+import json
+from dataclasses import dataclass
+from typing import Any
+
+from sqlalchemy import Engine, and_, or_, select
+from sqlalchemy.sql.elements import ColumnElement
+
+from service.errors import InputError, field_error
+from service.records.engine import iso
+from service.records.tables import api_keys, holdout_releases, submissions
+
+
+@dataclass(frozen=True)
+class BoardOrder:
+    """How a board is ranked: by ``metric``'s CV mean, best first in the metric's direction."""
+
+    metric: str
+    greater_is_better: bool
+
+
+@dataclass(frozen=True)
+class BoardCursor:
+    """Where a page ended: the last entry's CV mean and id, and how many entries came before it."""
+
+    order: BoardOrder
+    mean: float
+    submission_id: str
+    position: int
+
+
+def encode_cursor(cursor: BoardCursor) -> str:
+    """Return the opaque text a client sends back as ``?cursor=``."""
+    raw = json.dumps([cursor.order.metric, cursor.order.greater_is_better, cursor.mean,
+                      cursor.submission_id, cursor.position])
+    return base64.urlsafe_b64encode(raw.encode("utf-8")).decode("ascii").rstrip("=")
+
+
+def decode_cursor(text: str, order: BoardOrder) -> BoardCursor:
+    """Parse a cursor of ``encode_cursor``; one from a board ranked another way is a 422 on /cursor."""
+    try:
+        raw = base64.urlsafe_b64decode(text + "=" * (-len(text) % 4))
+        metric, greater, mean, sub_id, position = json.loads(raw)
+        valid = (isinstance(metric, str) and isinstance(greater, bool) and isinstance(sub_id, str)
+                 and isinstance(mean, int | float) and not isinstance(mean, bool)
+                 and isinstance(position, int) and position >= 0)
+    except (binascii.Error, ValueError, TypeError, UnicodeDecodeError):
+        valid = False
+    if not valid:
+        raise field_error(InputError, "/cursor", f"cursor must be a next_cursor from an earlier page of this "
+                          f"board, got {text[:40]!r}")
+    if (metric, greater) != (order.metric, order.greater_is_better):
+        raise field_error(InputError, "/cursor", f"this cursor belongs to a board ranked by {metric!r}; the "
+                          f"policy now ranks by {order.metric!r}, so start again from the first page")
+    return BoardCursor(order, float(mean), sub_id, position)
+
+
+def board_page(
+    engine: Engine, team: str, dataset_id: str, order: BoardOrder, limit: int, after: BoardCursor | None = None,
+    champion_id: str | None = None,
+) -> tuple[list[dict[str, Any]], BoardCursor | None]:
+    """Return one page of board entries and the cursor of the next page (None on the last page)."""
+    summary = submissions.c.result[("summary", order.metric)]
+    mean = submissions.c.result[("summary", order.metric, "mean")].as_float()
+    released = holdout_releases.c.released[order.metric].as_float()
+    query = (
+        select(
+            submissions.c.id, submissions.c.label, submissions.c.state, submissions.c.created_at,
+            submissions.c.owner_key_id, submissions.c.verdict["decision"].as_string().label("decision"),
+            submissions.c.policy_version, mean.label("mean"), summary.label("summary"),
+            holdout_releases.c.submission_id.label("release_of"), holdout_releases.c.mode,
+            released.label("released"), holdout_releases.c.withheld_until, api_keys.c.name.label("key_name"),
+        )
+        .select_from(submissions)
+        .outerjoin(holdout_releases, holdout_releases.c.submission_id == submissions.c.id)
+        .outerjoin(api_keys, api_keys.c.id == submissions.c.owner_key_id)
+        .where(submissions.c.team == team, submissions.c.dataset_id == dataset_id,
+               submissions.c.state.not_in(("failed", "canceled")), mean.is_not(None))
+    )
+    if after is not None:
+        query = query.where(_after(mean, order, after))
+    ranked = mean.desc() if order.greater_is_better else mean.asc()
+    query = query.order_by(ranked, submissions.c.id.asc()).limit(limit + 1)
+    with engine.connect() as conn:
+        rows = conn.execute(query).mappings().all()
+    start = 0 if after is None else after.position
+    entries = [_entry(dict(r), start + i + 1, champion_id) for i, r in enumerate(rows[:limit])]
+    if len(rows) <= limit:
+        return entries, None
+    last = rows[limit - 1]
+    return entries, BoardCursor(order, float(last["mean"]), str(last["id"]), start + limit)
+
+
+def _after(mean: ColumnElement[float], order: BoardOrder, cursor: BoardCursor) -> ColumnElement[bool]:
+    beyond = mean < cursor.mean if order.greater_is_better else mean > cursor.mean
+    return or_(beyond, and_(mean == cursor.mean, submissions.c.id > cursor.submission_id))
+
+
+def _entry(row: dict[str, Any], rank: int, champion_id: str | None) -> dict[str, Any]:
+    summary = row["summary"] if isinstance(row["summary"], dict) else {}
+    has_release = row["release_of"] is not None
+    return {
+        "rank": rank,
+        "submission": row["id"],
+        "label": row["label"],
+        "state": row["state"],
+        "cv": {"mean": row["mean"], "std": summary.get("std"), "n": summary.get("n"),
+               "naive_interval_95": summary.get("naive_interval_95")},
+        "holdout": {
+            "released": has_release and row["released"] is not None,
+            "mode": row["mode"],
+            "score": row["released"],
+            "withheld_until": iso(row["withheld_until"]),
+        },
+        "verdict": row["decision"],
+        "policy_version": row["policy_version"],
+        "submitter": {"key": row["owner_key_id"], "name": row["key_name"]},
+        "created_at": iso(row["created_at"]),
+        "champion": row["id"] == champion_id,
+    }
