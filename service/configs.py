@@ -54,6 +54,7 @@ class ValidationSpec:
 
     folds: int | None = None
     repeats: int = 1
+    test: str | None = None  # "5x2cv": 5 repeats of 2-fold CV, compared by Dietterich's paired t-test
 
 
 @dataclass(frozen=True)
@@ -224,6 +225,8 @@ def _resolve_metrics(
 def _resolve_plan(
     validation: ValidationSpec, dataset_plan: Mapping[str, Any], problems: _Problems
 ) -> dict[str, Any]:
+    if validation.test is not None:
+        return _five_by_two(validation, dataset_plan, problems)
     folds = dataset_plan["folds"] if validation.folds is None else validation.folds
     if not 2 <= folds <= MAX_FOLDS:
         problems.add("/validation/folds", f"folds must be between 2 and {MAX_FOLDS}, got {folds}")
@@ -240,3 +243,17 @@ def _resolve_plan(
         "scheme": dataset_plan["scheme"], "folds": folds, "seed": dataset_plan["seed"],
         "repeats": validation.repeats, "plan_overridden": folds != dataset_plan["folds"],
     }
+
+
+def _five_by_two(validation: ValidationSpec, dataset_plan: Mapping[str, Any], problems: _Problems) -> dict[str, Any]:
+    """Dietterich's (1998) 5x2cv: five repeats of 2-fold CV on the dataset's scheme and seeds."""
+    if validation.test != "5x2cv":
+        problems.add("/validation/test", f"test must be '5x2cv' or left out, got {validation.test!r}")
+    if dataset_plan["scheme"] in ("time", "contiguous"):
+        problems.add("/validation/test", f"5x2cv needs shuffled folds; this dataset's fold plan is "
+                     f"{dataset_plan['scheme']}")
+    if validation.folds not in (None, 2) or validation.repeats not in (1, 5):
+        problems.add("/validation", "5x2cv fixes folds at 2 and repeats at 5; leave folds and repeats out, "
+                     f"got folds={validation.folds}, repeats={validation.repeats}")
+    return {"scheme": dataset_plan["scheme"], "folds": 2, "seed": dataset_plan["seed"], "repeats": 5,
+            "plan_overridden": dataset_plan["folds"] != 2, "test": "5x2cv"}

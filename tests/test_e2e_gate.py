@@ -133,3 +133,18 @@ def test_client_exit_codes_follow_the_verdict(
     down = subprocess.run([str(Path(sys.prefix) / "bin" / "sealfold"), "submit", str(config), "--wait"],
                           env=env, capture_output=True, text=True, timeout=60)
     assert down.returncode == 3, down.stdout + down.stderr
+
+
+def test_five_by_two_cv_option_uses_dietterichs_test(stack: Stack, cancer_without_champion: dict[str, Any]) -> None:
+    doc = _judged(stack, {"dataset": cancer_without_champion["id"],
+                          "model": {**SOUND, "params": {"C": 0.2, "max_iter": 3000}},
+                          "validation": {"test": "5x2cv"}})
+    folds = doc["result"]["cv"]["folds"]
+    assert sorted((f["repeat"], f["fold"]) for f in folds) == [(r, f) for r in range(5) for f in range(2)]
+    assert all(f["train_rows"] + f["test_rows"] == cancer_without_champion["rows"]["development"] for f in folds)
+    verdict = doc["result"]["verdict"]
+    assert verdict["test"] == "five_by_two_cv"
+    assert _rule(doc, "baseline")["outcome"] == "pass"
+    refused = stack.client().post("/v1/submissions", json_body={
+        "dataset": cancer_without_champion["id"], "model": SOUND, "validation": {"test": "5x2cv", "folds": 4}})
+    assert refused.status == 422 and any(e["pointer"] == "/validation" for e in refused.json()["errors"])

@@ -186,6 +186,9 @@ class ValidationOptionsSchema(Schema):
     folds = fields.Integer(strict=True, load_default=None, allow_none=True, metadata={
         "minimum": 2, "maximum": MAX_FOLDS, "description": "default: the dataset's fold plan"})
     repeats = fields.Integer(strict=True, load_default=1, metadata={"minimum": 1, "maximum": MAX_REPEATS})
+    test = fields.String(load_default=None, allow_none=True, metadata={
+        "enum": ["5x2cv"], "description": "5x2cv: five repeats of 2-fold CV compared by Dietterich's (1998) "
+                                          "paired t-test, for small data; overrides folds and repeats"})
 
 
 class SubmissionRequestSchema(Schema):
@@ -197,7 +200,8 @@ class SubmissionRequestSchema(Schema):
          "properties": {"id": {"type": "string"}, "fingerprint": {"type": "string"}}},
     ]})
     model = fields.Nested(ModelSchema, required=True)
-    validation = fields.Nested(ValidationOptionsSchema, load_default=lambda: {"folds": None, "repeats": 1})
+    validation = fields.Nested(ValidationOptionsSchema,
+                               load_default=lambda: {"folds": None, "repeats": 1, "test": None})
     metrics = fields.List(fields.String(), load_default=None, allow_none=True, metadata={
         "description": "default: the task's default metrics; see GET /v1/catalog"})
     label = fields.String(load_default="", validate=validate.Length(max=200))
@@ -216,7 +220,8 @@ class SubmissionRequestSchema(Schema):
                     for s in model["preprocess"]
                 ),
             ),
-            validation=ValidationSpec(data["validation"]["folds"], data["validation"]["repeats"]),
+            validation=ValidationSpec(data["validation"]["folds"], data["validation"]["repeats"],
+                                      data["validation"].get("test")),
             metrics=None if data["metrics"] is None else tuple(data["metrics"]),
             label=data["label"],
         )
