@@ -18,6 +18,8 @@ from service.errors import ConfigRejected, FieldProblem
 from service.metrics_spec import DEFAULT_METRICS, METRICS
 
 MAX_FOLDS, MAX_REPEATS, MAX_FOLD_JOBS = 20, 10, 100
+MAX_CANDIDATES, MAX_SEARCH_FITS, MAX_INNER_FOLDS = 50, 2000, 10
+LEARNING_CURVE_DEFAULT = (0.1, 0.325, 0.55, 0.775, 1.0)  # scikit-learn learning_curve's default sizes
 ENCODERS = frozenset({"OneHotEncoder", "OrdinalEncoder"})
 
 
@@ -55,6 +57,21 @@ class ValidationSpec:
     folds: int | None = None
     repeats: int = 1
     test: str | None = None  # "5x2cv": 5 repeats of 2-fold CV, compared by Dietterich's paired t-test
+    learning_curve: tuple[float, ...] | None = None  # fractions of each training fold, e.g. (0.1, ..., 1.0)
+
+
+@dataclass(frozen=True)
+class SearchSpec:
+    """A small hyper-parameter search run inside every outer training fold (nested cross-validation).
+
+    ``grid``: parameter -> list of values (every combination); or ``distributions`` with ``n_iter``
+    draws: parameter -> list of values to sample from, or {"uniform"|"log_uniform": [low, high]}.
+    """
+
+    grid: Mapping[str, tuple[Any, ...]] | None = None
+    distributions: Mapping[str, Any] | None = None
+    n_iter: int | None = None
+    inner_folds: int = 3
 
 
 @dataclass(frozen=True)
@@ -66,6 +83,7 @@ class SubmissionRequest:
     validation: ValidationSpec = ValidationSpec()
     metrics: tuple[str, ...] | None = None
     label: str = ""
+    search: SearchSpec | None = None
 
 
 class CatalogView(Protocol):
@@ -115,6 +133,9 @@ def resolve(request: SubmissionRequest, dataset: Mapping[str, Any], catalog: Cat
     _check_categoricals(features, kinds, steps, problems)
     metrics = _resolve_metrics(request.metrics, task, dataset, problems)
     plan = _resolve_plan(request.validation, dataset["fold_plan"], problems)
+    search = _resolve_search(request.search, request.model, plan, problems)
+    if request.validation.learning_curve is not None:
+        plan["learning_curve"] = _resolve_curve(request.validation.learning_curve, problems)
     problems.raise_if_any()
     return {
         "model": {
@@ -125,6 +146,7 @@ def resolve(request: SubmissionRequest, dataset: Mapping[str, Any], catalog: Cat
         },
         "validation": plan,
         "metrics": metrics,
+        "search": search,
         "label": request.label,
         "task": task,
         "target": dataset["target"],
@@ -137,6 +159,8 @@ def config_fingerprint(document: Mapping[str, Any], dataset_fingerprint: str) ->
         "model": document["model"], "validation": document["validation"],
         "metrics": document["metrics"], "dataset": dataset_fingerprint,
     }
+    if document.get("search") is not None:  # absent from older documents: keep their fingerprints
+        material["search"] = document["search"]
     canonical = json.dumps(material, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
     return hashlib.sha256(canonical.encode("ascii")).hexdigest()
 
@@ -257,3 +281,60 @@ def _five_by_two(validation: ValidationSpec, dataset_plan: Mapping[str, Any], pr
                      f"got folds={validation.folds}, repeats={validation.repeats}")
     return {"scheme": dataset_plan["scheme"], "folds": 2, "seed": dataset_plan["seed"], "repeats": 5,
             "plan_overridden": dataset_plan["folds"] != 2, "test": "5x2cv"}
+
+
+def _resolve_curve(sizes: tuple[float, ...], problems: _Problems) -> list[float]:
+    """Check learning-curve sizes: fractions in (0, 1] of each training fold, increasing."""
+    chosen = list(sizes) or list(LEARNING_CURVE_DEFAULT)
+    if len(chosen) > 10:
+        problems.add("/validation/learning_curve", f"learning_curve takes at most 10 sizes, got {len(chosen)}")
+    for i, size in enumerate(chosen):
+        if not 0 < size <= 1:
+            problems.add(f"/validation/learning_curve/{i}", f"sizes are fractions of a training fold in (0, 1], "
+                         f"got {size}")
+    if chosen != sorted(set(chosen)):
+        problems.add("/validation/learning_curve", f"sizes must increase without repeats, got {chosen}")
+    return chosen
+
+
+def _resolve_search(
+    search: SearchSpec | None, model: ModelSpec, plan: Mapping[str, Any], problems: _Problems
+) -> dict[str, Any] | None:
+    """Check a nested search against the caps; parameter values are checked by scikit-learn in a worker."""
+    if search is None:
+        return None
+    if (search.grid is None) == (search.distributions is None):
+        problems.add("/search", "search takes exactly one of grid or distributions")
+        return None
+    if not 2 <= search.inner_folds <= MAX_INNER_FOLDS:
+        problems.add("/search/inner_folds", f"inner_folds must be between 2 and {MAX_INNER_FOLDS}, "
+                     f"got {search.inner_folds}")
+    space = search.grid if search.grid is not None else search.distributions
+    assert space is not None
+    kind = "grid" if search.grid is not None else "distributions"
+    for name in space:
+        if name in model.params:
+            problems.add(f"/search/{kind}/{name}", f"parameter {name!r} is both fixed in model.params and "
+                         "searched; keep it in one place")
+    if search.grid is not None:
+        candidates = 1
+        for name, values in search.grid.items():
+            if not values:
+                problems.add(f"/search/grid/{name}", f"grid values for {name!r} must be a non-empty list")
+            candidates *= max(1, len(values))
+    else:
+        candidates = search.n_iter or 0
+        if not 1 <= candidates <= MAX_CANDIDATES:
+            problems.add("/search/n_iter", f"n_iter must be between 1 and {MAX_CANDIDATES}, got {search.n_iter}")
+    if candidates > MAX_CANDIDATES:
+        problems.add("/search/grid", f"the grid has {candidates} combinations; at most {MAX_CANDIDATES} are allowed")
+    outer = int(plan["folds"]) * int(plan["repeats"])
+    fits = candidates * search.inner_folds * outer
+    if fits > MAX_SEARCH_FITS:
+        problems.add("/search", f"the search needs {candidates} candidates x {search.inner_folds} inner folds x "
+                     f"{outer} outer folds = {fits} fits; at most {MAX_SEARCH_FITS} are allowed")
+    return {
+        "grid": None if search.grid is None else {k: list(v) for k, v in search.grid.items()},
+        "distributions": None if search.distributions is None else dict(search.distributions),
+        "n_iter": search.n_iter, "inner_folds": search.inner_folds,
+    }

@@ -9,6 +9,13 @@ leaves no files and no row.
 Two seeds are drawn from ``secrets``: the sealing seed (63 bits, stored, never shown, so nobody
 outside can recompute which rows were sealed) and the fold seed (31 bits, shown in the fold plan so
 that anyone can reproduce the folds on the development rows).
+
+Each draw of the seal is measured against the development rows (``vault.balance``). A draw out of
+balance is redrawn with a fresh sealing seed, at most ``BalanceLimits.redraws`` times, and the best
+draw is kept: rerandomisation (Morgan K.L., Rubin D.B. 2012, "Rerandomization to improve covariate
+balance in experiments", Annals of Statistics 40:1263-1282, from memory). Every draw's summary is
+recorded, never its seed. A time holdout is the latest rows whatever the seed, so it is measured
+once and never redrawn; its balance figures then describe how the future differs from the past.
 """
 
 from __future__ import annotations
@@ -28,7 +35,7 @@ from service.records import datasets
 from service.records.engine import utcnow
 from service.records.keys import KeyInfo
 from service.settings import Settings
-from service.vault import sealing, store
+from service.vault import balance, sealing, store
 from service.vault.fingerprint import fingerprint_frame
 from service.vault.folds import (
     FOLD_SCHEMES,
@@ -68,6 +75,7 @@ class _Sealed:
     fraction: float
     seed: int
     plan: FoldPlan
+    balance: dict[str, Any]
 
 
 def register_dataset(
@@ -117,6 +125,7 @@ def register_dataset(
         "fingerprint": fingerprint_frame(frame),
         "development_fingerprint": fingerprint_frame(sealed.development),
         "holdout_fingerprint": holdout_fingerprint,
+        "balance": sealed.balance,
         "created_by": actor.id,
         "created_at": utcnow(),
     }
@@ -129,7 +138,7 @@ def register_dataset(
     except BaseException:
         store.remove_dataset(settings, ds_id)
         raise
-    record = datasets.get(engine, ds_id)
+    record = datasets.get(engine, ds_id, role=actor.role)
     if record is None:  # pragma: no cover - the row was inserted just above
         raise SealfoldError(f"dataset {ds_id!r} vanished after registration")
     return record
@@ -157,7 +166,7 @@ def _check_declaration(declaration: DatasetDeclaration) -> str:
     if scheme is None:
         scheme = sealing.default_scheme(declaration.task, declaration.group_column, declaration.time_column)
     problems += sealing.holdout_problems(
-        scheme, declaration.holdout_fraction, task=declaration.task,
+        scheme, declaration.holdout_fraction,
         group_column=declaration.group_column, time_column=declaration.time_column,
     )
     if problems:
@@ -304,11 +313,7 @@ def _check_groups(groups: pd.Series, needed: int) -> None:
 
 def _seal(frame: pd.DataFrame, declaration: DatasetDeclaration, scheme: str, fraction: float) -> _Sealed:
     task, target = declaration.task, declaration.target
-    seed = secrets.randbits(63)
-    mask = sealing.holdout_mask(
-        frame, scheme, fraction, seed, target=target,
-        group_column=declaration.group_column, time_column=declaration.time_column,
-    )
+    mask, seed, balance_document = _draw_balanced(frame, declaration, scheme, fraction)
     development = frame[~mask].reset_index(drop=True)
     holdout = frame[mask].reset_index(drop=True)
     plan = FoldPlan(
@@ -329,7 +334,35 @@ def _seal(frame: pd.DataFrame, declaration: DatasetDeclaration, scheme: str, fra
     keys = split_keys_from_frame(development, plan, target, declaration.group_column, declaration.time_column)
     check_plan_feasible(plan, keys)
     development.insert(0, store.ROW_ID, _row_ids(development, declaration.id_column))
-    return _Sealed(development, holdout, scheme, float(fraction), seed, plan)
+    return _Sealed(development, holdout, scheme, float(fraction), seed, plan, balance_document)
+
+
+def _draw_balanced(
+    frame: pd.DataFrame, declaration: DatasetDeclaration, scheme: str, fraction: float,
+    limits: balance.BalanceLimits = balance.DEFAULT_LIMITS,
+) -> tuple[np.ndarray, int, dict[str, Any]]:
+    """Draw the holdout mask, redraw while it is out of balance; return the best mask, its seed, the record."""
+    excluded = (declaration.id_column, declaration.group_column, declaration.time_column)
+    check = balance.BalanceCheck.prepare(frame, target=declaration.target, task=declaration.task,
+                                         exclude=excluded, limits=limits)
+    redrawable = scheme != "time"
+    draws: list[balance.Measurement] = []
+    best: tuple[np.ndarray, int, int] | None = None  # mask, seed, index into draws
+    for _ in range(1 + (limits.redraws if redrawable else 0)):
+        seed = secrets.randbits(63)
+        mask = sealing.holdout_mask(
+            frame, scheme, fraction, seed, target=declaration.target,
+            group_column=declaration.group_column, time_column=declaration.time_column, task=declaration.task,
+        )
+        measured = check.measure(mask)
+        draws.append(measured)
+        if best is None or measured.rank() < draws[best[2]].rank():
+            best = (mask, seed, len(draws) - 1)
+        if measured.balanced:
+            break
+    assert best is not None  # at least one draw
+    document = balance.balance_document(draws, best[2], redrawable=redrawable, limits=limits, excluded=excluded)
+    return best[0], best[1], document
 
 
 def _row_ids(development: pd.DataFrame, id_column: str | None) -> pd.Series:

@@ -41,8 +41,13 @@ def test_upload_registers_and_answers_201_with_location(api: Api, dataset: dict[
     assert dataset["rows"] == {"total": 442, "development": 353, "holdout": 89}
     assert dataset["fold_plan"]["scheme"] == "kfold" and dataset["fold_plan"]["folds"] == 5
     assert [c["name"] for c in dataset["columns"]][-1] == "target"
+    # The steward who registered it reads it back exactly; a submitter reads the same record with only
+    # the summary of the seal's balance (the per-column table is for stewards).
+    as_steward = api.get("steward", f"/v1/datasets/{dataset['id']}")
+    assert as_steward.status_code == 200 and as_steward.get_json() == dataset
     reply = api.get("submitter", f"/v1/datasets/{dataset['id']}")
-    assert reply.status_code == 200 and reply.get_json() == dataset
+    summary = {k: dataset["balance"][k] for k in ("balanced", "adversarial_auc", "draws")}
+    assert reply.status_code == 200 and reply.get_json() == {**dataset, "balance": summary}
 
 
 def test_the_record_never_carries_the_seal(api: Api, dataset: dict[str, Any]) -> None:
@@ -161,3 +166,30 @@ def test_another_teams_dataset_is_404_like_an_unknown_one(api: Api, dataset: dic
         assert theirs["detail"].replace(dataset["id"], "ds_00000000000000000000") == unknown["detail"]
     assert api.get("other_steward", "/v1/datasets").get_json() == {"datasets": []}
     assert json.dumps(api.get("steward", "/v1/datasets").get_json()).count(dataset["id"]) == 1
+
+
+def test_balance_of_the_seal_is_a_flag_for_submitters_and_a_table_for_stewards(api: Api) -> None:
+    frame = diabetes_frame().assign(patient=[f"P{i:04d}" for i in range(442)])
+    reply = api.upload("steward", csv_bytes(frame), **DECLARATION, id_column="patient")
+    assert reply.status_code == 201, reply.get_data(as_text=True)
+    ds_id = reply.get_json()["id"]
+    summary_keys = {"balanced", "adversarial_auc", "draws"}
+    for path in (f"/v1/datasets/{ds_id}", "/v1/datasets"):
+        as_submitter = api.get("submitter", path).get_json()
+        as_steward = api.get("steward", path).get_json()
+        record = as_submitter if "id" in as_submitter else as_submitter["datasets"][0]
+        full = as_steward if "id" in as_steward else as_steward["datasets"][0]
+        assert set(record["balance"]) == summary_keys and isinstance(record["balance"]["balanced"], bool)
+        assert {"columns", "attempts", "adversarial", "limits"} <= set(full["balance"])
+        assert {k: full["balance"][k] for k in summary_keys} == record["balance"]
+    names = [row["name"] for row in full["balance"]["columns"]]
+    assert "patient" not in names and full["balance"]["excluded"] == ["patient"]
+    # Nothing in the steward's document names a holdout row or carries the seal's seed.
+    internal = datasets.get_internal(api.engine, ds_id)
+    assert internal is not None
+    text = api.get("steward", f"/v1/datasets/{ds_id}").get_data(as_text=True)
+    held = pd.read_parquet(dataset_paths(api.settings, ds_id).sealed_holdout)["patient"]
+    assert len(held) == 89 and not any(patient in text for patient in held)
+    assert internal["sealing_seed"] not in text
+    # Another team still gets the plain 404 of an unknown id.
+    api.problem(api.get("other_steward", f"/v1/datasets/{ds_id}"), 404)

@@ -7,6 +7,7 @@ import math
 import numpy as np
 import pandas as pd
 import pytest
+from scipy.stats import ks_2samp
 from sklearn.model_selection import train_test_split
 
 from service.errors import DatasetRejected
@@ -16,6 +17,7 @@ from service.vault.sealing import (
     holdout_count,
     holdout_mask,
     stratified_counts,
+    target_bins,
 )
 from tests.vault_fixtures import breast_cancer_frame, diabetes_frame, iris_frame, wine_frame
 
@@ -38,7 +40,7 @@ def test_default_fraction_by_size(n_rows: int, fraction: float) -> None:
 
 
 def test_default_scheme_follows_the_declared_columns() -> None:
-    assert default_scheme("regression", None, None) == "random"
+    assert default_scheme("regression", None, None) == "stratified"  # on target quantile bins
     assert default_scheme("classification", None, None) == "stratified"
     assert default_scheme("classification", "depot", None) == "group"
     assert default_scheme("regression", "depot", "departed") == "time"
@@ -89,6 +91,45 @@ def test_stratified_holdout_depends_on_the_seed_within_classes() -> None:
     second = _mask(frame, "stratified", seed=2, target="target")
     assert not np.array_equal(first, second)
     assert np.array_equal(first, _mask(frame, "stratified", seed=1, target="target"))
+
+
+def test_stratified_regression_holdout_matches_the_target_distribution() -> None:
+    # Diabetes (Efron et al. 2004): 442 rows, 89 held out, target deciles as strata. Each decile gives up
+    # its share of rows, so F_holdout and F_development can only drift apart inside one decile: the KS
+    # statistic stays within 1/10 plus two rows' worth of rounding (*computed* bound). Random draws of the
+    # same size pass that bound only by luck; checked with scipy.stats.ks_2samp on the same partitions.
+    frame = diabetes_frame()
+    y = frame["target"].to_numpy()
+    bound = 1 / 10 + 2 / holdout_count(442, 0.2)
+    random_worst = 0.0
+    for seed in range(50):
+        mask = holdout_mask(frame, "stratified", 0.2, seed, target="target", group_column=None, time_column=None,
+                            task="regression")
+        assert mask.sum() == holdout_count(442, 0.2)
+        assert ks_2samp(y[~mask], y[mask]).statistic <= bound, seed
+        chance = _mask(frame, "random", seed=seed)
+        random_worst = max(random_worst, ks_2samp(y[~chance], y[chance]).statistic)
+    assert random_worst > bound, "the bound should be one that random draws can break"
+
+
+def test_stratified_regression_depends_on_the_seed_within_bins() -> None:
+    frame = diabetes_frame()
+    first, second, again = (holdout_mask(frame, "stratified", 0.2, seed, target="target", group_column=None,
+                                         time_column=None, task="regression") for seed in (1, 2, 1))
+    assert not np.array_equal(first, second) and np.array_equal(first, again)
+
+
+def test_target_bins_are_deciles_or_fewer() -> None:
+    y = pd.Series(np.arange(100.0)[::-1])
+    bins = target_bins(y, 20)
+    assert sorted(np.bincount(bins)) == [10] * 10  # deciles: 10 rows each
+    assert np.array_equal(bins, (9 - np.arange(100) // 10))  # the lowest targets in bin 0
+    assert len(np.unique(target_bins(y, 3))) == 3  # no more bins than holdout rows
+    tied = pd.Series(np.repeat([5.0, 1.0, 3.0], [50, 30, 20]))
+    tied_bins = target_bins(tied, 20)
+    for value in (1.0, 3.0, 5.0):  # equal targets always share a bin
+        assert len(np.unique(tied_bins[tied.to_numpy() == value])) == 1
+    assert len(np.unique(tied_bins)) == 3
 
 
 def _with_groups(n_groups: int = 40, seed: int = 3) -> pd.DataFrame:

@@ -47,8 +47,8 @@ def require(role: str) -> KeyInfo:
 
 
 def team_dataset(caller: KeyInfo, ds_id: str) -> dict[str, Any]:
-    """Return the public record of one of the caller's team's datasets, else 404."""
-    record = datasets.get(service_context().engine, ds_id)
+    """Return the record of one of the caller's team's datasets as the caller's role may read it, else 404."""
+    record = datasets.get(service_context().engine, ds_id, role=caller.role)
     if record is None or record["team"] != caller.team:
         raise NotFound(f"no dataset {ds_id!r} in team {caller.team!r}")
     return record

@@ -1,5 +1,8 @@
 """Dataset endpoints: register and seal (steward), read metadata, download the development partition.
 
+Dataset documents are shaped for the caller's role (``records.datasets.public_view``): the balance
+table of the seal reaches stewards only. Another team's dataset stays a 404 (``auth.team_dataset``).
+
 Registration takes a multipart upload or, as JSON, a path under the configured import root. An
 upload is spooled to a temporary file under the data dir (not held in memory twice) and removed
 afterwards whatever happens; ``service.registration`` removes its own partial files on failure.
@@ -139,8 +142,9 @@ class DatasetCollection(MethodView):
     @blp.response(200, DatasetListSchema)
     def get(self) -> Response:
         """List the team's datasets, newest first."""
-        team = current_key().team
-        return json_response({"datasets": datasets.list_for_team(service_context().engine, team)})
+        caller = current_key()
+        listed = datasets.list_for_team(service_context().engine, caller.team, role=caller.role)
+        return json_response({"datasets": listed})
 
 
 @blp.route("/<ds_id>")
@@ -149,7 +153,10 @@ class DatasetItem(MethodView):
     @blp.response(200, DatasetSchema)
     @blp.problem(404, "No such dataset in the caller's team")
     def get(self, ds_id: str) -> Response:
-        """Read one dataset's metadata: columns, rows per partition, fold plan, fingerprints."""
+        """Read one dataset's metadata: columns, rows per partition, fold plan, fingerprints, balance.
+
+        The balance of the seal is a summary for submitters and the per-column table for stewards.
+        """
         return json_response(team_dataset(current_key(), ds_id))
 
 

@@ -69,7 +69,9 @@ class DatasetDeclarationSchema(Schema):
         "description": "default by size: 0.2 under 100k rows, 0.1 from 100k, 0.01 from 1M"})
     holdout_scheme = fields.String(load_default=None, allow_none=True, metadata={
         "enum": list(HOLDOUT_SCHEMES),
-        "description": "default: time, group, stratified or random from the declared columns and task"})
+        "description": "default: time with a time column, group with a group column, else stratified (on the "
+                       "classes, or for regression on quantile bins of the target: deciles, fewer on small "
+                       "tables)"})
     folds = fields.Integer(load_default=5, metadata={"minimum": fold_plans.MIN_FOLDS,
                                                      "maximum": fold_plans.MAX_FOLDS})
     fold_scheme = fields.String(load_default=None, allow_none=True, metadata={
@@ -122,6 +124,80 @@ class HoldoutPlanSchema(Schema):
     fraction = fields.Float()
 
 
+class ComparedRowsSchema(Schema):
+    """Non-missing values compared on each side."""
+
+    development = fields.Integer()
+    holdout = fields.Integer()
+
+
+class BalanceColumnSchema(Schema):
+    """One column's comparison of holdout and development rows (holdout minus development)."""
+
+    name = fields.String()
+    role = fields.String(validate=validate.OneOf(("feature", "target")))
+    kind = fields.String(validate=validate.OneOf(("numeric", "categorical")), metadata={
+        "description": "datetime and bool columns are compared as numbers"})
+    rows = fields.Nested(ComparedRowsSchema)
+    smd = fields.Float(allow_none=True, metadata={
+        "description": "numeric: (mean_holdout - mean_development) / sqrt((s_dev^2 + s_holdout^2) / 2)"})
+    smd_allowed = fields.Float(allow_none=True, metadata={
+        "description": "the larger of the fixed limit and what a chance split would reach"})
+    ks = fields.Float(allow_none=True, metadata={"description": "numeric: two-sample Kolmogorov-Smirnov statistic"})
+    ks_pvalue = fields.Float(allow_none=True)
+    missing_tv = fields.Float(allow_none=True, metadata={
+        "description": "numeric with missing values: difference of the missing shares"})
+    missing_pvalue = fields.Float(allow_none=True)
+    levels = fields.Integer(metadata={"description": "categorical: levels compared (rare ones pooled)"})
+    tv = fields.Float(allow_none=True, metadata={
+        "description": "categorical: total-variation distance of the level frequencies, 1/2 sum |p - q|"})
+    pvalue = fields.Float(metadata={"description": "categorical: chi-square test of homogeneity"})
+    exceeds = fields.List(fields.String(), metadata={"description": "statistics out of balance"})
+
+
+class AdversarialSchema(Schema):
+    auc = fields.Float(metadata={"description": "cross-validated AUC of telling holdout rows from development rows"})
+    pvalue = fields.Float(metadata={"description": "one-sided, against chance (AUC 0.5)"})
+    rows = fields.Integer(metadata={"description": "rows the classifier saw (a sample on big tables)"})
+    holdout_rows = fields.Integer()
+    features = fields.Integer()
+    folds = fields.Integer()
+    exceeds = fields.Boolean()
+
+
+class BalanceExceededSchema(Schema):
+    column = fields.String(allow_none=True, metadata={"description": "null for the adversarial AUC"})
+    statistic = fields.String()
+    value = fields.Float(allow_none=True)
+
+
+class BalanceDrawSchema(Schema):
+    draw = fields.Integer()
+    balanced = fields.Boolean()
+    adversarial_auc = fields.Float(allow_none=True)
+    exceeded = fields.List(fields.Nested(BalanceExceededSchema))
+
+
+class BalanceSchema(Schema):
+    """How well the sealed holdout matches the development partition.
+
+    Everyone reads balanced, adversarial_auc and draws; the other fields are shown to stewards only.
+    Aggregate statistics only: never rows, row ids or the sealing seed.
+    """
+
+    balanced = fields.Boolean(metadata={"description": "no statistic beyond its limit in the kept draw"})
+    adversarial_auc = fields.Float(allow_none=True, metadata={
+        "description": "about 0.5: a classifier cannot tell holdout rows from development rows"})
+    draws = fields.Integer(metadata={"description": "draws of the seal; one out of balance is redrawn"})
+    chosen_draw = fields.Integer(metadata={"description": "stewards: the draw that was kept"})
+    redrawable = fields.Boolean(metadata={"description": "stewards: false for a time holdout (no seed)"})
+    columns = fields.List(fields.Nested(BalanceColumnSchema), metadata={"description": "stewards"})
+    adversarial = fields.Nested(AdversarialSchema, allow_none=True, metadata={"description": "stewards"})
+    excluded = fields.List(fields.String(), metadata={"description": "stewards: id, group and time columns"})
+    limits = fields.Dict(metadata={"description": "stewards: the limits the draws were held to"})
+    attempts = fields.List(fields.Nested(BalanceDrawSchema), metadata={"description": "stewards: every draw"})
+
+
 class DatasetSchema(Schema):
     """A dataset's public record: never the sealing seed, holdout rows or the holdout's fingerprint."""
 
@@ -138,6 +214,7 @@ class DatasetSchema(Schema):
     rows = fields.Nested(PartitionRowsSchema)
     holdout = fields.Nested(HoldoutPlanSchema)
     fold_plan = fields.Nested(FoldPlanSchema)
+    balance = fields.Nested(BalanceSchema, allow_none=True)
     fingerprint = fields.String(metadata={"description": "SHA-256 of the whole registered table"})
     development_fingerprint = fields.String()
     created_by = fields.String()

@@ -1,4 +1,10 @@
-"""Dataset records. The public view never carries the sealing seed or the holdout's fingerprint."""
+"""Dataset records. The public view never carries the sealing seed or the holdout's fingerprint.
+
+The balance of the seal is shown by role: every team member reads the summary (balanced or not,
+the adversarial AUC, how many draws it took); stewards and admins also read the per-column table
+and each draw's summary. The table holds holdout aggregates (means, distributions) that a
+submitter could use to tune towards the holdout, so it stays with the people who hold the seal.
+"""
 
 from __future__ import annotations
 
@@ -8,9 +14,12 @@ from sqlalchemy import Engine, select
 
 from service.records import audit
 from service.records.engine import iso
+from service.records.keys import ROLES
 from service.records.tables import datasets
 
 _PRIVATE = ("sealing_seed", "holdout_fingerprint")
+BALANCE_SUMMARY = ("balanced", "adversarial_auc", "draws")
+_READS_BALANCE_TABLE = "steward"
 
 
 def insert(engine: Engine, row: dict[str, Any]) -> None:
@@ -30,9 +39,10 @@ def get_internal(engine: Engine, ds_id: str) -> dict[str, Any] | None:
     return None if row is None else dict(row)
 
 
-def public_view(row: dict[str, Any]) -> dict[str, Any]:
-    """Shape an internal row into the document a team member may read."""
+def public_view(row: dict[str, Any], role: str = "submitter") -> dict[str, Any]:
+    """Shape an internal row into the document a team member with ``role`` may read."""
     view = {k: v for k, v in row.items() if k not in _PRIVATE}
+    view["balance"] = balance_view(row.get("balance"), role)
     view["created_at"] = iso(row["created_at"])
     view["rows"] = {
         "total": row["rows_total"], "development": row["rows_development"], "holdout": row["rows_holdout"],
@@ -43,19 +53,28 @@ def public_view(row: dict[str, Any]) -> dict[str, Any]:
     return view
 
 
-def get(engine: Engine, ds_id: str) -> dict[str, Any] | None:
-    """Return the public view of one dataset, or None."""
+def balance_view(document: dict[str, Any] | None, role: str) -> dict[str, Any] | None:
+    """Return the whole balance document to stewards and admins, its summary keys to submitters."""
+    if document is None:
+        return None
+    if ROLES.index(role) >= ROLES.index(_READS_BALANCE_TABLE):
+        return dict(document)
+    return {k: document.get(k) for k in BALANCE_SUMMARY}
+
+
+def get(engine: Engine, ds_id: str, role: str = "submitter") -> dict[str, Any] | None:
+    """Return the view of one dataset for a caller with ``role``, or None."""
     row = get_internal(engine, ds_id)
-    return None if row is None else public_view(row)
+    return None if row is None else public_view(row, role)
 
 
-def list_for_team(engine: Engine, team: str) -> list[dict[str, Any]]:
-    """Return the public views of a team's datasets, newest first."""
+def list_for_team(engine: Engine, team: str, role: str = "submitter") -> list[dict[str, Any]]:
+    """Return the views of a team's datasets for a caller with ``role``, newest first."""
     with engine.connect() as conn:
         rows = conn.execute(
             select(datasets).where(datasets.c.team == team).order_by(datasets.c.created_at.desc())
         ).mappings().all()
-    return [public_view(dict(r)) for r in rows]
+    return [public_view(dict(r), role) for r in rows]
 
 
 def find_by_name(engine: Engine, team: str, name: str) -> dict[str, Any] | None:

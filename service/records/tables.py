@@ -54,6 +54,9 @@ datasets = Table(
     Column("fingerprint", String(64), nullable=False),  # whole registered table
     Column("development_fingerprint", String(64), nullable=False),
     Column("holdout_fingerprint", String(64), nullable=False),  # checked at every use of the seal
+    # How well the holdout matches the development rows, and each draw of the seal: aggregate
+    # statistics only (vault.balance), never rows, ids or seeds. Null on records from before it.
+    Column("balance", JSON),
     Column("created_by", String(40), nullable=False),
     Column("created_at", DateTime(timezone=True), nullable=False),
 )

@@ -7,9 +7,16 @@ a seal if it ever has to.
 
 Schemes:
     random      a uniformly random subset of rows
-    stratified  within each class of the target, the same fraction (class proportions kept)
+    stratified  within each stratum of the target, the same fraction: the classes of a classification
+                target; for regression, quantile bins of the target (deciles, fewer on small tables)
     group       whole groups: every group lies entirely on one side
     time        the latest rows by the time column (no seed involved)
+
+Stratified is the default for regression too when no group or time column is declared: it costs
+nothing in randomness (rows are still drawn at random within each bin) and it rules out the
+unluckiest draws, those that put a narrow or shifted range of the target in the holdout, which
+would bias every holdout score. Group and time holdouts cannot be stratified this way without
+breaking their own promise, so they keep their schemes.
 """
 
 from __future__ import annotations
@@ -24,6 +31,7 @@ from service.vault.tables import time_order_key
 
 HOLDOUT_SCHEMES: tuple[str, ...] = ("random", "stratified", "group", "time")
 MAX_FRACTION = 0.5
+MAX_TARGET_BINS = 10  # deciles
 
 
 def default_fraction(n_rows: int) -> float:
@@ -44,21 +52,22 @@ def default_scheme(task: str, group_column: str | None, time_column: str | None)
 
     A time column wins over a group column: when both are declared, holding out the future is the
     promise that matters for a forecast, and it is the one a random or grouped cut would break.
+    Otherwise stratified, on the classes or (regression) on quantile bins of the target.
     """
     if time_column:
         return "time"
     if group_column:
         return "group"
-    return "stratified" if task == "classification" else "random"
+    return "stratified"
 
 
 def holdout_problems(
-    scheme: str, fraction: float | None, *, task: str | None, group_column: str | None, time_column: str | None
+    scheme: str, fraction: float | None, *, group_column: str | None, time_column: str | None
 ) -> list[FieldProblem]:
     """Return what is wrong with a holdout request (empty when it can be honoured).
 
-    ``task`` or ``fraction`` None skips the checks that need them (the mask does not know the task,
-    and a default fraction is only known once the rows are counted).
+    ``fraction`` None skips its check (a default fraction is only known once the rows are counted).
+    Every scheme serves both tasks.
     """
     problems = []
     if scheme not in HOLDOUT_SCHEMES:
@@ -72,10 +81,6 @@ def holdout_problems(
     elif scheme == "time" and not time_column:
         problems.append(FieldProblem(
             "/holdout_scheme", "holdout_scheme 'time' needs a time_column; declare which column holds the times"
-        ))
-    elif scheme == "stratified" and task is not None and task != "classification":
-        problems.append(FieldProblem(
-            "/holdout_scheme", f"holdout_scheme 'stratified' needs task 'classification', got task {task!r}"
         ))
     if fraction is not None and (
         isinstance(fraction, bool) or not isinstance(fraction, int | float) or not 0 < fraction <= MAX_FRACTION
@@ -103,9 +108,14 @@ def holdout_mask(
     target: str | None,
     group_column: str | None,
     time_column: str | None,
+    task: str | None = None,
 ) -> np.ndarray:
-    """Return a boolean array over the rows of ``df``: True for the rows to seal away."""
-    problems = holdout_problems(scheme, fraction, task=None, group_column=group_column, time_column=time_column)
+    """Return a boolean array over the rows of ``df``: True for the rows to seal away.
+
+    ``task`` matters to the stratified scheme only: "regression" stratifies on quantile bins of the
+    target, anything else on its classes.
+    """
+    problems = holdout_problems(scheme, fraction, group_column=group_column, time_column=time_column)
     if problems:
         raise DatasetRejected(problems[0].detail, problems)
     n_rows = len(df)
@@ -118,7 +128,10 @@ def holdout_mask(
     elif scheme == "stratified":
         if target is None:
             raise _rejected("/target", "holdout_scheme 'stratified' needs a target")
-        chosen = _stratified(df[target].to_numpy(), n_holdout, rng)
+        strata = df[target].to_numpy()
+        if task == "regression":
+            strata = target_bins(df[target], n_holdout)
+        chosen = _stratified(strata, n_holdout, rng)
     elif scheme == "group":
         assert group_column is not None  # holdout_problems checked it
         chosen = _grouped(df[group_column], n_holdout, rng)
@@ -146,6 +159,18 @@ def stratified_counts(class_sizes: np.ndarray, n_holdout: int) -> np.ndarray:
         order = np.argsort(-(shares - counts), kind="stable")
         counts[order[:left]] += 1
     return counts
+
+
+def target_bins(target: pd.Series, n_holdout: int) -> np.ndarray:
+    """Number each row by its quantile bin of a numeric target: deciles, or fewer bins on small tables.
+
+    No more bins than holdout rows, so each bin can give up at least one row. Bins are cut on the
+    ranks (ties get the lowest rank), so equal targets always share a bin and a heavily tied target
+    simply has fewer, larger bins.
+    """
+    bins = max(1, min(MAX_TARGET_BINS, n_holdout))
+    ranks = target.rank(method="min").to_numpy(dtype=np.float64) - 1.0
+    return np.floor(ranks * bins / len(target)).astype(np.int64)
 
 
 def class_codes(y: np.ndarray | pd.Series) -> tuple[np.ndarray, np.ndarray, list[object]]:
