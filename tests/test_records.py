@@ -121,3 +121,18 @@ def test_idempotency_key_is_unique_per_owner(engine: Engine) -> None:
             "id": "sub_dup", "team": "fleet", "dataset_id": "ds_test1", "owner_key_id": "key_1",
             "config": {}, "config_fingerprint": "f" * 64, "folds_total": 5, "idempotency_key": "abc",
         })
+
+
+def test_an_older_schema_gains_the_new_nullable_columns(tmp_path: Path) -> None:
+    # A data dir written before the verdict columns existed keeps working after an upgrade.
+    from sqlalchemy import create_engine, inspect, text
+
+    settings = Settings.load({"data_dir": tmp_path}, environ={})
+    old = create_engine(settings.effective_database_url)
+    with old.begin() as conn:
+        conn.execute(text("CREATE TABLE submissions (id VARCHAR(40) PRIMARY KEY, team VARCHAR(100) NOT NULL)"))
+    old.dispose()
+    engine = make_engine(settings)
+    columns = {c["name"] for c in inspect(engine).get_columns("submissions")}
+    assert {"verdict", "policy_version", "champion_id", "result"} <= columns
+    engine.dispose()

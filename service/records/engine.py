@@ -5,7 +5,7 @@ from __future__ import annotations
 from datetime import UTC, datetime
 from typing import Any
 
-from sqlalchemy import Engine, create_engine, event
+from sqlalchemy import Engine, create_engine, event, inspect, text
 
 from service.records.tables import metadata
 from service.settings import Settings
@@ -22,7 +22,28 @@ def make_engine(settings: Settings, create_schema: bool = True) -> Engine:
         engine = create_engine(url, pool_pre_ping=True)
     if create_schema:
         metadata.create_all(engine)
+        _add_missing_columns(engine)
     return engine
+
+
+def _add_missing_columns(engine: Engine) -> None:
+    """Add nullable columns that newer releases introduced to tables an older release created.
+
+    ``create_all`` creates missing tables but never alters existing ones; new columns are always
+    nullable, so adding them is safe and keeps an existing data dir usable without a migration tool.
+    """
+    inspector = inspect(engine)
+    present = set(inspector.get_table_names())
+    with engine.begin() as conn:
+        for table in metadata.sorted_tables:
+            if table.name not in present:
+                continue
+            have = {c["name"] for c in inspector.get_columns(table.name)}
+            for column in table.columns:
+                if column.name in have or not column.nullable:
+                    continue
+                kind = column.type.compile(dialect=engine.dialect)
+                conn.execute(text(f'ALTER TABLE {table.name} ADD COLUMN "{column.name}" {kind}'))
 
 
 def _sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:
