@@ -31,7 +31,8 @@ def submission_document(engine: Engine, row: dict[str, Any]) -> dict[str, Any]:
         "started_at": iso(row["started_at"]),
         "finished_at": iso(row["finished_at"]),
         "error": row["error"],
-        "config": {k: config[k] for k in ("model", "validation", "metrics")},
+        "config": {k: config[k] for k in ("model", "validation", "metrics")}
+        | ({"search": config["search"]} if config.get("search") else {}),
         "config_fingerprint": row["config_fingerprint"],
         "result": _result(row, folds, release),
     }
@@ -49,6 +50,9 @@ def _result(row: dict[str, Any], folds: list[dict[str, Any]], release: dict[str,
             "failures": summary.get("failures", []),
         },
         "coefficients": summary.get("coefficients"),
+        "fit_gap": summary.get("fit_gap"),
+        "learning_curve": summary.get("learning_curve"),
+        "search": summary.get("search"),
         "baseline": summary.get("baseline"),
         "holdout": holdout_part(release, row["state"]),  # only what the release policy lets out, never the raw score
         "verdict": row["verdict"],
@@ -63,6 +67,9 @@ def _fold(f: dict[str, Any]) -> dict[str, Any]:
         "scores": f["scores"], "baseline_scores": f["baseline_scores"],
         "fit_seconds": f["fit_seconds"], "score_seconds": f["score_seconds"],
     }
+    for optional in ("train_scores", "curve", "search"):
+        if f.get(optional) is not None:
+            out[optional] = f[optional]
     if f["error"]:
         out["error"] = f["error"]
     return out

@@ -137,3 +137,35 @@ def test_lasso_values_from_the_scikit_learn_documentation(stack: Stack) -> None:
     dev = development(stack.client(), ds["id"])
     reference = cross_validate(Lasso(), dev[DIABETES_FEATURES], dev["target"], cv=3, scoring="r2")
     np.testing.assert_allclose(scores, reference["test_score"], rtol=1e-9)
+
+
+def test_nested_search_and_learning_curve_through_the_queue(stack: Stack, diabetes: dict[str, Any]) -> None:
+    """Outer-fold scores of a nested search equal cross_validate(GridSearchCV(...)) on the same folds, and the
+    learning curve equals scikit-learn's learning_curve on them (both through HTTP and real workers)."""
+    from sklearn.model_selection import GridSearchCV, KFold, learning_curve
+
+    doc = _submit(stack, {
+        "dataset": diabetes["id"], "model": {"estimator": "Ridge", "features": DIABETES_FEATURES},
+        "search": {"grid": {"alpha": [0.01, 0.1, 1.0, 10.0]}, "inner_folds": 3},
+        "metrics": ["rmse"], "validation": {"learning_curve": [0.5, 1.0]},
+    })
+    assert doc["state"] == "succeeded", doc
+    dev = development(stack.client(), diabetes["id"])
+    splits = fold_indices(stack.client(), doc["id"], dev)
+    X, y = dev[DIABETES_FEATURES], dev["target"]
+    seed = diabetes["fold_plan"]["seed"]
+    search = GridSearchCV(Ridge(), {"alpha": [0.01, 0.1, 1.0, 10.0]}, scoring="neg_root_mean_squared_error",
+                          cv=KFold(3, shuffle=True, random_state=seed))
+    reference = cross_validate(search, X, y, cv=splits, scoring="neg_root_mean_squared_error")
+    ours = [f["scores"]["rmse"] for f in doc["result"]["cv"]["folds"]]
+    np.testing.assert_allclose(ours, -reference["test_score"], rtol=1e-9)
+    curve_doc = _submit(stack, {"dataset": diabetes["id"],
+                                "model": {"estimator": "Ridge", "features": DIABETES_FEATURES},
+                                "metrics": ["rmse"], "validation": {"learning_curve": [0.5, 1.0]}})
+    _, train_scores, test_scores = learning_curve(Ridge(), X, y, cv=splits, train_sizes=[0.5, 1.0],
+                                                  scoring="neg_root_mean_squared_error")
+    points = curve_doc["result"]["learning_curve"]
+    assert [p["fraction"] for p in points] == [0.5, 1.0]
+    # The folds here differ in size by at most one row, so the first-split sizes scikit-learn uses match.
+    np.testing.assert_allclose([p["validation_mean"]["rmse"] for p in points], -test_scores.mean(axis=1), rtol=1e-6)
+    np.testing.assert_allclose([p["train_mean"]["rmse"] for p in points], -train_scores.mean(axis=1), rtol=1e-6)

@@ -15,6 +15,7 @@ from service.vault.folds import (
     SplitKeys,
     check_plan_feasible,
     default_plan_scheme,
+    fold_split,
     fold_splits,
     split_keys_from_frame,
 )
@@ -154,6 +155,24 @@ def test_time_folds_never_train_on_the_future() -> None:
     for split in splits:
         assert len(np.intersect1d(split.train, split.test)) == 0
         assert keys.time[split.train].max() <= keys.time[split.test].min()
+
+
+@pytest.mark.parametrize(("scheme", "repeats"), [("kfold", 3), ("stratified", 3), ("group", 3), ("time", 1),
+                                                 ("contiguous", 1)])
+@pytest.mark.parametrize("folds", [2, 5, 7])
+def test_one_fold_alone_is_that_fold_of_the_whole_plan(scheme: str, repeats: int, folds: int) -> None:
+    # A fold job builds only its own split; it must be the very split fold_splits lists for that cell.
+    plan, keys = FoldPlan(scheme, folds, 2024), _keys()
+    every = fold_splits(plan, keys, repeats=repeats)
+    alone = [fold_split(plan, keys, s.repeat, s.fold, repeats=repeats) for s in every]
+    assert_same_splits(alone, every)
+    assert all(a.train.dtype == a.test.dtype == np.int64 for a in alone)
+
+
+@pytest.mark.parametrize(("repeat", "fold"), [(0, 5), (0, -1), (2, 0), (-1, 0)])
+def test_a_fold_outside_the_plan_is_refused(repeat: int, fold: int) -> None:
+    with pytest.raises(InputError, match=rf"no fold \(repeat {repeat}, fold {fold}\)"):
+        fold_split(FoldPlan("kfold", 5, 0), _keys(), repeat, fold, repeats=2)
 
 
 def test_repeats_may_not_run_past_the_largest_seed() -> None:

@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import dataclasses
 import os
+import signal
 import subprocess
 import sys
 import time
@@ -16,9 +18,12 @@ from redis import Redis
 from rq import Queue
 from rq.job import Job, JobStatus
 from rq.serializers import JSONSerializer
+from rq.worker import Worker
 
-from worker import jobs
+from tests.worker_fixtures import ctx  # noqa: F401
+from worker import jobs, main
 from worker.main import ALLOWED_CALLBACKS, AllowListedJob, RefusedJob, build_worker
+from worker.runtime import WorkerContext
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -95,3 +100,34 @@ def test_real_worker_refuses_a_foreign_function(tmp_path: Path, redis_url: str) 
     assert allowed.get_status() == JobStatus.FINISHED
     answer = allowed.return_value()
     assert answer["ok"] is False and answer["problems"][0]["pointer"] == "/dataset"
+
+
+def test_checks_and_summaries_run_in_the_worker_process_and_every_other_job_forks(
+    ctx: WorkerContext, redis_url: str, monkeypatch: pytest.MonkeyPatch  # noqa: F811
+) -> None:
+    settings = dataclasses.replace(ctx.settings, queue_name=f"inproc-{uuid.uuid4().hex[:8]}")
+    redis = Redis.from_url(redis_url)
+    forked: list[str | None] = []
+    # RQ's forking execute_job, which SealfoldWorker defers to for every job but a check.
+    monkeypatch.setattr(Worker, "execute_job", lambda _self, job, _queue: forked.append(job.func_name))
+    monkeypatch.setattr(main, "reconcile_once", lambda _redis: 0)  # keep the shared Redis's lock untouched
+    check = Queue(settings.check_queue_name, connection=redis, serializer=JSONSerializer).enqueue_call(
+        "worker.jobs.check_config", args=({"model": {"estimator": "Ridge", "features": []}}, "ds_nope"))
+    work = Queue(settings.queue_name, connection=redis, serializer=JSONSerializer)
+    work.enqueue_call("worker.jobs.run_fold", args=("sub_nope", 0, 0))
+    summary = work.enqueue_call("worker.jobs.summarize", args=("sub_nope",))
+    work.enqueue_call("os.system", args=("true",))
+    handlers = {s: signal.getsignal(s) for s in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        build_worker(settings, redis, name=settings.queue_name).work(burst=True, with_scheduler=False)
+    finally:
+        for number, handler in handlers.items():
+            signal.signal(number, handler)
+    assert forked == ["worker.jobs.run_fold", "os.system"]  # a refused name is never run in-process
+    done = Job.fetch(check.id, connection=redis, serializer=JSONSerializer)
+    assert done.get_status() == JobStatus.FINISHED
+    answer = done.return_value()
+    assert answer is not None and answer["ok"] is False and answer["problems"][0]["pointer"] == "/dataset"
+    failed = Job.fetch(summary.id, connection=redis, serializer=JSONSerializer)  # ran here, and failed here
+    assert failed.get_status() == JobStatus.FAILED
+    assert "no submission 'sub_nope'" in (failed.latest_result().exc_string or "")  # type: ignore[union-attr]

@@ -136,6 +136,32 @@ def test_categorical_features_go_through_a_frame(ctx: WorkerContext) -> None:  #
         assert row["coefficients"]["names"] == ["sex_f", "sex_m", *numeric, "s6"]
 
 
+@pytest.mark.parametrize("features", [
+    ["age", "sex", "bmi", "bp", "s1", "s2", "s3", "s4", "s5", "s6"],  # every feature in stored order
+    ["s5", "bmi", "bp", "age"],  # a subset out of stored order
+], ids=["stored-order", "reordered-subset"])
+def test_numeric_features_without_steps_equal_the_bare_estimator(
+    ctx: WorkerContext, features: list[str]  # noqa: F811
+) -> None:
+    dev, hold = diabetes_parts()
+    dataset = add_dataset(ctx, dev, hold, "target", "regression", scheme="kfold", folds=4, seed=9)
+    config = config_document(dataset, "Ridge", params={"alpha": 2.0}, features=features,
+                             metrics=list(REGRESSION_SCORING))
+    sub_id = add_submission(ctx, dataset, config)
+    rows = run_all_folds(sub_id, 4)
+
+    # Reference: cross_validate of Ridge alone on the same columns, KFold(4, shuffle=True, random_state=9).
+    X, y = dev[features].to_numpy(), dev["target"].to_numpy()
+    cv = list(KFold(4, shuffle=True, random_state=9).split(X))
+    reference = cross_validate(Ridge(alpha=2.0), X, y, cv=cv, scoring=REGRESSION_SCORING, return_estimator=True)
+    for k, row in enumerate(rows):
+        assert row["status"] == "ok" and row["train_rows"] == len(cv[k][0]), row["error"]
+        for name in REGRESSION_SCORING:
+            assert row["scores"][name] == pytest.approx(SIGN[name] * reference[f"test_{name}"][k], rel=1e-10)
+        assert row["coefficients"]["names"] == features
+        np.testing.assert_allclose(row["coefficients"]["values"][0], reference["estimator"][k].coef_, rtol=1e-10)
+
+
 def test_estimator_error_is_a_failed_fold_not_a_crash(ctx: WorkerContext) -> None:  # noqa: F811
     dev, hold = diabetes_parts()
     dataset = add_dataset(ctx, dev, hold, "target", "regression", folds=3)

@@ -59,6 +59,20 @@ def test_forced_and_service_defaults() -> None:
     assert seeded.random_state == 9
 
 
+def test_numeric_input_without_steps_goes_straight_to_the_estimator() -> None:
+    pipeline = build_pipeline({"estimator": "Ridge", "features": ["c", "a"], "params": {"alpha": 3.0}}, NUMERIC)
+    assert list(pipeline.named_steps) == ["model"]  # no pass-through ColumnTransformer copying the matrix
+    X = np.array([[1.0, 5.0], [2.0, 6.0], [3.0, 8.0], [4.0, 9.0]])
+    y = np.array([1.0, 2.0, 3.0, 5.0])
+    pipeline.fit(X, y)
+    # Reference: Ridge(alpha=3.0) fitted by scikit-learn on the same rows.
+    np.testing.assert_allclose(pipeline.predict(X), Ridge(alpha=3.0).fit(X, y).predict(X))
+    assert output_feature_names(pipeline, ["c", "a"]) == ["c", "a"]
+    # A frame keeps its ColumnTransformer, steps or not: the estimator still sees a numpy matrix.
+    framed = build_pipeline({"estimator": "Ridge", "features": ["d", "a"]}, {"d": "categorical", "a": "numeric"})
+    assert list(framed.named_steps) == ["preprocess", "model"]
+
+
 def test_unknown_column_in_a_step() -> None:
     model = {"estimator": "Ridge", "features": ["a"], "preprocess": [{"transformer": "StandardScaler",
                                                                        "columns": ["zz"]}]}

@@ -39,6 +39,7 @@ def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: 
         problems.append(FieldProblem("/model/estimator", f"{entry.name} is a {entry.task} estimator; dataset "
                                      f"{dataset_id} is {dataset['task']}"))
     estimator = checked_instance(entry, model.get("params") or {}, "/model/params", problems)
+    problems.extend(search_problems(entry, model.get("params") or {}, config_doc.get("search")))
     for i, step in enumerate(model.get("preprocess") or []):
         step_entry = catalog.transformer(step["transformer"])
         if step_entry is None:
@@ -95,6 +96,43 @@ def checked_instance(
     instance = make_instance(entry, valid)
     instance._validate_params()  # each alone was valid; defaults and forced values are too
     return instance
+
+
+def search_problems(
+    entry: CatalogEntry, params: Mapping[str, Any], search: Mapping[str, Any] | None
+) -> list[FieldProblem]:
+    """Validate every searched value as scikit-learn would (set on the estimator, then validated), and caps.
+
+    Each value is checked together with the submission's fixed parameters, at a pointer naming its
+    position: ``/search/grid/alpha/1``; a uniform / log_uniform range checks both bounds.
+    """
+    if not search:
+        return []
+    kind = "grid" if search.get("grid") is not None else "distributions"
+    problems: list[FieldProblem] = []
+    for name, spec in (search.get(kind) or {}).items():
+        base = f"/search/{kind}/{name}"
+        if isinstance(spec, Mapping):
+            ranges = [k for k in ("uniform", "log_uniform") if k in spec]
+            bounds = spec.get(ranges[0]) if len(ranges) == 1 and len(spec) == 1 else None
+            if not (isinstance(bounds, list) and len(bounds) == 2
+                    and all(isinstance(b, numbers.Real) and not isinstance(b, bool) for b in bounds)
+                    and bounds[0] < bounds[1] and (ranges[0] == "uniform" or bounds[0] > 0)):
+                problems.append(FieldProblem(base, f"a distribution is a list of values or {{\"uniform\": [low, "
+                                             f"high]}} / {{\"log_uniform\": [low, high]}} with low < high (and "
+                                             f"low > 0 for log_uniform), got {dict(spec)!r}"))
+                continue
+            values, pointers = list(bounds), [f"{base}/{ranges[0]}/{i}" for i in range(2)]
+        elif isinstance(spec, list):
+            values, pointers = spec, [f"{base}/{i}" for i in range(len(spec))]
+        else:
+            problems.append(FieldProblem(base, f"searched values for {name!r} must be a list, got {spec!r}"))
+            continue
+        for value, pointer in zip(values, pointers, strict=True):
+            found: list[FieldProblem] = []
+            checked_instance(entry, {**params, name: value}, "/search", found)
+            problems.extend(FieldProblem(pointer, p.detail) for p in found if p.pointer == f"/search/{name}")
+    return problems
 
 
 def cap_problem(entry: CatalogEntry, name: str, value: Any) -> str | None:

@@ -1,8 +1,11 @@
 """Load a dataset's development rows and fold splits the way a fold job needs them.
 
-All-numeric features come from the memory-mapped ``numeric.npy`` (only the rows and columns a fold
-uses are read); features with a categorical column come from ``development.parquet`` as a frame.
-The target and the fold keys (target, group, time) always come from the parquet file.
+All-numeric features come from the memory-mapped ``numeric.npy``: a fold gathers its rows once,
+and features that are a run of adjacent columns (the usual case: every feature, in stored order)
+are taken as a column slice, so all rows of them are a view of the map, never a copy. Features
+with a categorical column come from ``development.parquet`` as a frame. The fold keys (target,
+group, time) come from the parquet file too, except for a regression with no group or time
+column, whose numeric target is read from the memory map.
 """
 
 from __future__ import annotations
@@ -16,7 +19,7 @@ import pandas as pd
 
 from service.settings import Settings
 from service.vault import store
-from service.vault.folds import FoldPlan, Split, fold_splits, split_keys_from_frame
+from service.vault.folds import FoldPlan, Split, fold_split, split_keys_from_frame
 from worker.pipeline import uses_frame
 
 
@@ -66,8 +69,23 @@ class DevelopmentData:
         if self.frame is not None:
             return self.frame if rows is None else self.frame.iloc[rows]
         assert self.matrix is not None
-        index = np.arange(self.n_rows) if rows is None else rows
-        return np.asarray(self.matrix[np.ix_(index, np.asarray(self.positions, dtype=np.intp))], dtype=np.float64)
+        columns = column_selector(self.positions)
+        if rows is None:
+            return np.asarray(self.matrix[:, columns])  # a view of the map when columns is a slice
+        if isinstance(columns, slice):
+            return np.asarray(self.matrix[rows, columns])
+        return np.asarray(self.matrix[np.ix_(rows, columns)])
+
+    def split_features(self, train: np.ndarray, test: np.ndarray) -> tuple[Any, Any]:
+        """Return the feature rows of a fold's train and test indices, reading the memory map once.
+
+        One gather of train-then-test rows, cut into two C-contiguous views: the same values as two
+        ``features_of`` calls, in one pass over the map instead of two.
+        """
+        if self.frame is not None:
+            return self.frame.iloc[train], self.frame.iloc[test]
+        both = self.features_of(np.concatenate([train, test]))
+        return both[: len(train)], both[len(train):]
 
     def target_of(self, rows: np.ndarray | None = None) -> np.ndarray:
         """Return the target at ``rows`` (all when None)."""
@@ -77,26 +95,34 @@ class DevelopmentData:
 def load_development(
     settings: Settings, dataset: Mapping[str, Any], features: Sequence[str]
 ) -> tuple[DevelopmentData, pd.DataFrame]:
-    """Load the features and target of the development rows; also return the fold-key frame."""
+    """Load the features and target of the development rows; also return the fold-key frame.
+
+    A regression on numeric features with no group or time column reads nothing but the memory
+    map: its target is one of the map's columns (the same float64 values ``target_values`` makes
+    of the parquet column), so the job never builds a pandas frame from the parquet file -- in a
+    freshly forked work horse that alone cost more than a 1,000-row fit.
+    """
     kinds = column_kinds(dataset)
     target = str(dataset["target"])
     keys = [c for c in (target, dataset.get("group_column"), dataset.get("time_column")) if c]
-    by_frame = uses_frame(features, kinds)
-    wanted = list(dict.fromkeys([*keys, *(features if by_frame else [])]))
-    frame = store.load_development_frame(settings, dataset["id"], columns=wanted)
+    if uses_frame(features, kinds):
+        frame = store.load_development_frame(settings, dataset["id"], columns=list(dict.fromkeys([*keys, *features])))
+        y = target_values(frame[target], str(dataset["task"]))
+        return DevelopmentData(tuple(features), y, model_frame(frame, features, kinds), None, ()), frame.loc[:, keys]
+    matrix, names = store.load_numeric(settings, dataset["id"])
+    missing = [f for f in features if f not in names]
+    if missing:
+        raise ValueError(f"features {missing} are not numeric columns of dataset {dataset['id']}; "
+                         f"numeric columns: {', '.join(names)}")
+    positions = tuple(names.index(f) for f in features)
+    if dataset["task"] == "regression" and keys == [target] and target in names:
+        y = np.array(matrix[:, names.index(target)], dtype=np.float64)
+        return DevelopmentData(tuple(features), y, None, matrix, positions), pd.DataFrame({target: y}, copy=False)
+    frame = store.load_development_frame(settings, dataset["id"], columns=keys)
+    if len(frame) != matrix.shape[0]:
+        raise ValueError(f"numeric.npy has {matrix.shape[0]} rows but development.parquet has {len(frame)}")
     y = target_values(frame[target], str(dataset["task"]))
-    if by_frame:
-        data = DevelopmentData(tuple(features), y, model_frame(frame, features, kinds), None, ())
-    else:
-        matrix, names = store.load_numeric(settings, dataset["id"])
-        missing = [f for f in features if f not in names]
-        if missing:
-            raise ValueError(f"features {missing} are not numeric columns of dataset {dataset['id']}; "
-                             f"numeric columns: {', '.join(names)}")
-        data = DevelopmentData(tuple(features), y, None, matrix, tuple(names.index(f) for f in features))
-    if data.n_rows != len(frame):
-        raise ValueError(f"numeric.npy has {data.n_rows} rows but development.parquet has {len(frame)}")
-    return data, frame.loc[:, keys]
+    return DevelopmentData(tuple(features), y, None, matrix, positions), frame
 
 
 def fold_plan(validation: Mapping[str, Any]) -> FoldPlan:
@@ -104,21 +130,20 @@ def fold_plan(validation: Mapping[str, Any]) -> FoldPlan:
     return FoldPlan(scheme=str(validation["scheme"]), folds=int(validation["folds"]), seed=int(validation["seed"]))
 
 
-def all_splits(
-    dataset: Mapping[str, Any], validation: Mapping[str, Any], key_frame: pd.DataFrame
-) -> list[Split]:
-    """Return every (repeat, fold) split of the configuration, as the vault defines them."""
+def column_selector(positions: Sequence[int]) -> slice | np.ndarray:
+    """Select matrix columns by a slice when they are adjacent and in order, else by their positions."""
+    start = positions[0] if positions else 0
+    if list(positions) == list(range(start, start + len(positions))):
+        return slice(start, start + len(positions))
+    return np.asarray(positions, dtype=np.intp)
+
+
+def split_for(
+    dataset: Mapping[str, Any], validation: Mapping[str, Any], key_frame: pd.DataFrame, repeat: int, fold: int
+) -> Split:
+    """Return the one (repeat, fold) split of the configuration, as the vault's fold plan defines it."""
     plan = fold_plan(validation)
     keys = split_keys_from_frame(
         key_frame, plan, dataset["target"], dataset.get("group_column"), dataset.get("time_column")
     )
-    return fold_splits(plan, keys, int(validation.get("repeats", 1)))
-
-
-def find_split(splits: Sequence[Split], repeat: int, fold: int) -> Split:
-    """Pick one split, or say which exist."""
-    for split in splits:
-        if split.repeat == repeat and split.fold == fold:
-            return split
-    cells = ", ".join(f"({s.repeat}, {s.fold})" for s in splits)
-    raise ValueError(f"no fold (repeat {repeat}, fold {fold}) in this plan; it has {cells}")
+    return fold_split(plan, keys, repeat, fold, int(validation.get("repeats", 1)))

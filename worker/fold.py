@@ -7,18 +7,21 @@ estimator's own message, so RQ retries are left for real crashes (a killed or lo
 from __future__ import annotations
 
 import time
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
+from sklearn.base import BaseEstimator
 from sklearn.pipeline import Pipeline
 
 from service.records import datasets, submissions
 from service.vault.folds import Split
-from worker.development import DevelopmentData, all_splits, column_kinds, find_split, load_development
+from worker.curve import curve_points
+from worker.development import DevelopmentData, column_kinds, load_development, split_for
 from worker.pipeline import MODEL_STEP, baseline_estimator, build_pipeline, output_feature_names
 from worker.runtime import WorkerContext
 from worker.scoring import score_model
+from worker.search import build_model, search_record
 
 
 def run_fold(ctx: WorkerContext, submission_id: str, repeat: int, fold: int) -> dict[str, Any]:
@@ -28,18 +31,23 @@ def run_fold(ctx: WorkerContext, submission_id: str, repeat: int, fold: int) -> 
         raise LookupError(f"no submission {submission_id!r} in the records DB")
     if sub["state"] not in submissions.LIVE_STATES:
         return {"submission_id": submission_id, "repeat": repeat, "fold": fold, "skipped": sub["state"]}
-    submissions.mark_running(ctx.engine, submission_id)
+    if sub["state"] == "queued":
+        submissions.mark_running(ctx.engine, submission_id)  # once: the other folds read it running
     dataset = datasets.get_internal(ctx.engine, sub["dataset_id"])
     if dataset is None:
         raise LookupError(f"submission {submission_id} refers to dataset {sub['dataset_id']!r}, which is gone")
     config = sub["config"]
     model_doc = config["model"]
     data, keys = load_development(ctx.settings, dataset, model_doc["features"])
-    split = find_split(all_splits(dataset, config["validation"], keys), repeat, fold)
-    pipeline = build_pipeline(model_doc, column_kinds(dataset))
+    split = split_for(dataset, config["validation"], keys, repeat, fold)
+    curve = config["validation"].get("learning_curve")
+    # Learning-curve sizes count from the first split's training rows, as scikit-learn's do.
+    reference = len(split_for(dataset, config["validation"], keys, repeat, 0).train) if curve else None
+    model = build_model(build_pipeline(model_doc, column_kinds(dataset)), config)
     outcome = evaluate_fold(
-        pipeline, data, split, str(dataset["task"]), config["metrics"],
+        model, data, split, str(dataset["task"]), config["metrics"],
         linear=bool(config.get("linear")), target=str(dataset["target"]),
+        curve=curve, config=config, curve_reference_rows=reference,
     )
     stored = submissions.record_fold(ctx.engine, submission_id, repeat, fold, **outcome)
     return {"submission_id": submission_id, "repeat": repeat, "fold": fold, "status": outcome["status"],
@@ -47,16 +55,23 @@ def run_fold(ctx: WorkerContext, submission_id: str, repeat: int, fold: int) -> 
 
 
 def evaluate_fold(
-    pipeline: Pipeline, data: DevelopmentData, split: Split, task: str, metrics: Sequence[str], *,
-    linear: bool, target: str,
+    pipeline: BaseEstimator, data: DevelopmentData, split: Split, task: str, metrics: Sequence[str], *,
+    linear: bool, target: str, curve: Sequence[float] | None = None, config: Mapping[str, Any] | None = None,
+    curve_reference_rows: int | None = None,
 ) -> dict[str, Any]:
-    """Fit on the split's train rows, score on its test rows; return the fold record's fields."""
-    X_train, y_train = data.features_of(split.train), data.target_of(split.train)
-    X_test, y_test = data.features_of(split.test), data.target_of(split.test)
+    """Fit on the split's train rows, score on its test rows; return the fold record's fields.
+
+    ``pipeline`` may be a search around the pipeline (``worker.search``); the training rows are
+    scored too, as ``cross_validate(return_train_score=True)`` does, and ``curve`` adds
+    learning-curve points (``worker.curve``).
+    """
+    X_train, X_test = data.split_features(split.train, split.test)
+    y_train, y_test = data.target_of(split.train), data.target_of(split.test)
     fields: dict[str, Any] = {
         "train_rows": len(split.train), "test_rows": len(split.test),
         "baseline_scores": baseline_scores(task, y_train, y_test, metrics),
         "scores": None, "coefficients": None, "fit_seconds": None, "score_seconds": None, "error": None,
+        "train_scores": None, "curve": None, "search": None,
     }
     try:
         started = time.perf_counter()
@@ -65,14 +80,21 @@ def evaluate_fold(
         started = time.perf_counter()
         scores, undefined = score_model(pipeline, X_test, y_test, metrics)
         fields["score_seconds"] = time.perf_counter() - started
+        fields["train_scores"], _ = score_model(pipeline, X_train, y_train, metrics)
+        if config is not None:
+            fields["search"] = search_record(pipeline, config)
         if linear:
-            fields["coefficients"] = coefficients(pipeline, data.features, target)
+            fields["coefficients"] = coefficients(getattr(pipeline, "best_estimator_", pipeline), data.features,
+                                                  target)
     except MemoryError:
         raise  # a crash of the worker, not an answer about the model
     except Exception as exc:  # the estimator's own error is the fold's result
         fields.update(status="failed", error=f"{type(exc).__name__}: {exc}")
         return fields
     fields.update(status="ok", scores=scores)
+    if curve:
+        fields["curve"] = curve_points(pipeline, data, split, metrics, curve, full=fields,
+                                       reference_rows=curve_reference_rows)
     if undefined:
         fields["error"] = "; ".join(f"{name} undefined on this fold: {why}" for name, why in undefined.items())
     return fields

@@ -21,6 +21,7 @@ from worker.losses import save_per_example
 from worker.pipeline import build_pipeline, uses_frame
 from worker.runtime import WorkerContext
 from worker.scoring import per_example, predictions, score_predictions
+from worker.search import build_model
 
 
 def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
@@ -46,7 +47,7 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     features = list(model_doc["features"])
 
     data, _ = load_development(ctx.settings, dataset, features)
-    pipeline = build_pipeline(model_doc, kinds)
+    pipeline = build_model(build_pipeline(model_doc, kinds), config)  # a search is refitted on every dev row
     try:
         started = time.perf_counter()
         pipeline.fit(data.features_of(), data.target_of())

@@ -15,18 +15,20 @@ from collections.abc import Callable
 from typing import Any
 
 from redis import Redis
+from rq.exceptions import DeserializationError
 from rq.job import Job
 from rq.queue import Queue
 from rq.serializers import JSONSerializer
 from rq.utils import import_attribute
-from rq.worker import Worker
+from rq.worker import Worker, WorkerStatus
 
 from service import dispatch
 from service.catalog import load_catalog
 from service.records.engine import make_engine
 from service.settings import Settings
 from worker import runtime
-from worker.jobs import ALLOWED_JOBS
+from worker.jobs import ALLOWED_JOBS, check_config, summarize
+from worker.warmup import warm_up
 
 log = logging.getLogger(__name__)
 
@@ -35,6 +37,8 @@ MAINTENANCE_INTERVAL = 30
 RECONCILE_LOCK = "sealfold:reconcile-lock"
 # Callbacks a job may name; sealfold's own jobs use none, so any name is refused.
 ALLOWED_CALLBACKS: frozenset[str] = frozenset()
+# Jobs run in the worker's own process instead of a forked work horse (see execute_job).
+IN_PROCESS_JOBS: frozenset[str] = frozenset(f"{job.__module__}.{job.__name__}" for job in (check_config, summarize))
 
 
 class RefusedJob(Exception):
@@ -92,6 +96,34 @@ class SealfoldWorker(Worker):
     def main_work_horse(self, job: Job, queue: Queue) -> None:
         runtime.after_fork()
         super().main_work_horse(job, queue)
+
+    def execute_job(self, job: Job, queue: Queue) -> None:
+        """Run configuration checks and summaries in this process; fork a work horse for every other job.
+
+        A fork, and the horse's first touch of the inherited heap (thousands of copied pages),
+        costs more than either job: a POST waits for its check, and every submission waits for its
+        summary between the last fold and the holdout. Both are safe without a horse because they
+        open no data file and fit nothing: the check is parameter validation (one dataset row
+        read, estimators instantiated from the catalog and validated by scikit-learn), the summary
+        is arithmetic on the fold scores stored in the records DB. Neither keeps anything: every
+        object they make is dropped when they return, the catalog is read-only, and their DB
+        connection goes back to this process's pool -- which the maintenance reconciler uses
+        already, and which each horse replaces on fork (``runtime.after_fork``). RQ's timeout
+        still applies, as in SimpleWorker. Fitting, and anything that opens the development or
+        sealed rows, always runs in a horse. The choice is by the allow-listed function name
+        alone, so no other job can run in-process; a job whose data does not even decode goes
+        to a horse, which fails it as before.
+        """
+        try:
+            in_process = job.func_name in IN_PROCESS_JOBS
+        except DeserializationError:
+            in_process = False
+        if not in_process:
+            super().execute_job(job, queue)
+            return
+        execution = self.prepare_execution(job)
+        self.perform_job(job, queue, execution)
+        self.set_state(WorkerStatus.IDLE)
 
     def run_maintenance_tasks(self) -> None:
         super().run_maintenance_tasks()
@@ -155,6 +187,7 @@ def run_worker(settings: Settings, *, burst: bool = False, name: str | None = No
     limit_threads()
     engine = make_engine(settings)
     runtime.install(runtime.WorkerContext(settings=settings, engine=engine))
+    warm_up(runtime.current())
     redis = Redis.from_url(settings.redis_url)
     worker = build_worker(settings, redis, name)
     try:

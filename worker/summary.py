@@ -24,6 +24,7 @@ import service
 from service.catalog import load_catalog
 from service.dispatch import fold_cells
 from service.records import datasets, submissions
+from worker.diagnosis import curve_summary, fit_gap, search_summary
 from worker.pipeline import baseline_description
 from worker.runtime import WorkerContext
 
@@ -74,6 +75,9 @@ def summary_document(
         "folds_ok": len(ok),
         "failures": failures,
         "coefficients": coefficient_summary([r["coefficients"] for r in ok if r.get("coefficients")]),
+        "fit_gap": fit_gap(ok, metrics),
+        "learning_curve": curve_summary(ok, metrics),
+        "search": search_summary(ok, metrics),
         "baseline": {
             **baseline_description(task),
             "folds": "the folds where the candidate succeeded",

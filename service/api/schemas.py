@@ -11,14 +11,18 @@ from __future__ import annotations
 
 from typing import Any
 
-from marshmallow import EXCLUDE, Schema, ValidationError, fields, post_load, pre_load, validate
+from marshmallow import EXCLUDE, Schema, ValidationError, fields, post_load, pre_load, validate, validates_schema
 
 from service.configs import (
+    LEARNING_CURVE_DEFAULT,
+    MAX_CANDIDATES,
     MAX_FOLDS,
+    MAX_INNER_FOLDS,
     MAX_REPEATS,
     DatasetRef,
     ModelSpec,
     PreprocessStep,
+    SearchSpec,
     SubmissionRequest,
     ValidationSpec,
 )
@@ -266,6 +270,33 @@ class ValidationOptionsSchema(Schema):
     test = fields.String(load_default=None, allow_none=True, metadata={
         "enum": ["5x2cv"], "description": "5x2cv: five repeats of 2-fold CV compared by Dietterich's (1998) "
                                           "paired t-test, for small data; overrides folds and repeats"})
+    learning_curve = fields.List(fields.Float(allow_nan=False), load_default=None, allow_none=True, metadata={
+        "description": "fractions in (0, 1] of each training fold, increasing: CV scores at each training size "
+                       f"(the first n training rows, as scikit-learn's learning_curve); an empty list means "
+                       f"{list(LEARNING_CURVE_DEFAULT)}", "example": [0.1, 0.5, 1.0]})
+
+
+class SearchOptionsSchema(Schema):
+    """A small hyper-parameter search run inside every outer training fold (nested cross-validation)."""
+
+    grid = fields.Dict(keys=fields.String(), values=fields.Raw(), load_default=None,
+                       allow_none=True, metadata={"description": "estimator parameter -> values; every "
+                                                  "combination is tried (GridSearchCV)",
+                                                  "example": {"alpha": [0.1, 1, 10]}})
+    distributions = fields.Dict(keys=fields.String(), values=fields.Raw(), load_default=None, allow_none=True,
+                                metadata={"description": "estimator parameter -> a list of values, or "
+                                          "{\"uniform\": [low, high]} / {\"log_uniform\": [low, high]}; n_iter "
+                                          "draws (RandomizedSearchCV with a fixed seed)"})
+    n_iter = fields.Integer(strict=True, load_default=None, allow_none=True, metadata={
+        "minimum": 1, "maximum": MAX_CANDIDATES})
+    inner_folds = fields.Integer(strict=True, load_default=3, metadata={"minimum": 2, "maximum": MAX_INNER_FOLDS})
+
+    @validates_schema
+    def _grid_values_are_lists(self, data: dict[str, Any], **_: Any) -> None:
+        wrong = {name: [f"grid values must be a list, got {values!r}"]
+                 for name, values in (data.get("grid") or {}).items() if not isinstance(values, list)}
+        if wrong:
+            raise ValidationError({"grid": wrong})
 
 
 class SubmissionRequestSchema(Schema):
@@ -282,6 +313,9 @@ class SubmissionRequestSchema(Schema):
     metrics = fields.List(fields.String(), load_default=None, allow_none=True, metadata={
         "description": "default: the task's default metrics; see GET /v1/catalog"})
     label = fields.String(load_default="", validate=validate.Length(max=200))
+    search = fields.Nested(SearchOptionsSchema, load_default=None, allow_none=True, metadata={
+        "description": "nested search: each outer fold tunes on its training rows only, scored by the first "
+                       "metric; the holdout job refits the search on every development row"})
 
     @post_load
     def _to_request(self, data: dict[str, Any], **_: Any) -> SubmissionRequest:
@@ -298,10 +332,26 @@ class SubmissionRequestSchema(Schema):
                 ),
             ),
             validation=ValidationSpec(data["validation"]["folds"], data["validation"]["repeats"],
-                                      data["validation"].get("test")),
+                                      data["validation"].get("test"), _curve(data["validation"])),
             metrics=None if data["metrics"] is None else tuple(data["metrics"]),
             label=data["label"],
+            search=_search(data.get("search")),
         )
+
+
+def _curve(validation: dict[str, Any]) -> tuple[float, ...] | None:
+    sizes = validation.get("learning_curve")
+    return None if sizes is None else tuple(float(v) for v in sizes)
+
+
+def _search(search: dict[str, Any] | None) -> SearchSpec | None:
+    if search is None:
+        return None
+    grid = search["grid"]
+    return SearchSpec(
+        grid=None if grid is None else {k: tuple(v) for k, v in grid.items()},
+        distributions=search["distributions"], n_iter=search["n_iter"], inner_folds=search["inner_folds"],
+    )
 
 
 class SubmissionListQuerySchema(Schema):
@@ -340,6 +390,11 @@ class FoldScoreSchema(Schema):
     fit_seconds = fields.Float(allow_none=True)
     score_seconds = fields.Float(allow_none=True)
     error = fields.String(metadata={"description": "failed folds only: the estimator's message"})
+    train_scores = fields.Dict(keys=fields.String(), values=fields.Float(allow_none=True), metadata={
+        "description": "the same metrics on the fold's training rows (cross_validate's return_train_score)"})
+    curve = fields.List(fields.Dict(), metadata={
+        "description": "learning curve: per size, fraction, train_rows, train_scores and scores"})
+    search = fields.Dict(metadata={"description": "nested search: best_params, best_inner_score, scoring"})
 
 
 class CrossValidationSchema(Schema):
@@ -393,6 +448,13 @@ class SubmissionResultSchema(Schema):
     cv = fields.Nested(CrossValidationSchema)
     coefficients = fields.Dict(allow_none=True, metadata={
         "description": "linear models: per-fold coefficients with their mean and spread"})
+    fit_gap = fields.Dict(allow_none=True, metadata={
+        "description": "per metric: train mean, validation mean, gap and a plain reading (evidence, not a rule)"})
+    learning_curve = fields.List(fields.Dict(), allow_none=True, metadata={
+        "description": "per training size: mean train and validation scores over the folds"})
+    search = fields.Dict(allow_none=True, metadata={
+        "description": "nested search: how often each value was chosen, the naive best inner score mean beside "
+                       "the nested estimate"})
     baseline = fields.Nested(BaselineSchema, allow_none=True)
     holdout = fields.Nested(HoldoutResultSchema, allow_none=True)
     verdict = fields.Nested(VerdictSchema, allow_none=True)
@@ -405,6 +467,7 @@ class ResolvedValidationSchema(Schema):
     seed = fields.Integer()
     repeats = fields.Integer()
     plan_overridden = fields.Boolean(metadata={"description": "folds differ from the dataset's fold plan"})
+    learning_curve = fields.List(fields.Float(), metadata={"description": "when asked for: the training sizes"})
 
 
 class ResolvedConfigSchema(Schema):
@@ -413,6 +476,7 @@ class ResolvedConfigSchema(Schema):
     model = fields.Nested(ModelSchema)
     validation = fields.Nested(ResolvedValidationSchema)
     metrics = fields.List(fields.String())
+    search = fields.Dict(metadata={"description": "when asked for: the nested search as resolved"})
 
 
 class SubmissionSchema(Schema):

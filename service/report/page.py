@@ -24,6 +24,7 @@ from service.report.charts import (
     fold_chart,
     interval_chart,
 )
+from service.report.diagnosis import diagnosis_section
 from service.report.facts import ReportFacts
 from service.report.markup import Markup, element
 
@@ -76,6 +77,7 @@ def render_report(facts: ReportFacts, base_url: str = "") -> str:
         _verdict_section(facts),
         _fold_section(facts),
         _interval_section(facts),
+        diagnosis_section(facts),
         _coefficient_section(facts),
         _provenance_section(facts, base_url),
     )

@@ -158,6 +158,29 @@ def check_plan_feasible(plan: FoldPlan, keys: SplitKeys) -> None:
 
 def fold_splits(plan: FoldPlan, keys: SplitKeys, repeats: int = 1) -> list[Split]:
     """Return the train/test indices of every fold of every repeat; repeat r uses seed + r."""
+    check_split_request(plan, keys, repeats)
+    splits: list[Split] = []
+    for repeat in range(repeats):
+        assignment = fold_assignment(plan, keys, repeat)
+        splits.extend(split_of(plan, assignment, repeat, fold) for fold in range(plan.folds))
+    return splits
+
+
+def fold_split(plan: FoldPlan, keys: SplitKeys, repeat: int, fold: int, repeats: int = 1) -> Split:
+    """Return one (repeat, fold) split, equal to its entry in ``fold_splits``, without building the others.
+
+    A fold job needs only its own rows; at a million rows the other folds' index arrays cost more
+    than the fold's model fit.
+    """
+    check_split_request(plan, keys, repeats)
+    if not (0 <= repeat < repeats and 0 <= fold < plan.folds):
+        raise _invalid("/validation", f"no fold (repeat {repeat}, fold {fold}) in a plan of {repeats} repeat(s) "
+                                      f"x {plan.folds} folds")
+    return split_of(plan, fold_assignment(plan, keys, repeat), repeat, fold)
+
+
+def check_split_request(plan: FoldPlan, keys: SplitKeys, repeats: int) -> None:
+    """Raise InputError/DatasetRejected unless ``repeats`` of ``plan`` can be cut from these rows."""
     if isinstance(repeats, bool) or not isinstance(repeats, int) or repeats < 1:
         raise _invalid("/validation/repeats", f"repeats must be a positive integer, got {repeats!r}")
     if plan.scheme in SEEDLESS_SCHEMES and repeats != 1:
@@ -168,18 +191,27 @@ def fold_splits(plan: FoldPlan, keys: SplitKeys, repeats: int = 1) -> list[Split
     if plan.seed + repeats - 1 > MAX_SEED:
         raise _invalid("/validation/repeats", f"seed {plan.seed} + {repeats} repeats exceeds {MAX_SEED}")
     check_plan_feasible(plan, keys)
-    splits: list[Split] = []
-    for repeat in range(repeats):
-        seed = plan.seed + repeat
-        if plan.scheme == "time":
-            assert keys.time is not None
-            pairs = _forward_chaining(keys.time, plan.folds)
-        else:
-            fold_of_row = _test_fold_of_rows(plan.scheme, plan.folds, seed, keys)
-            pairs = [(np.flatnonzero(fold_of_row != k), np.flatnonzero(fold_of_row == k)) for k in range(plan.folds)]
-        for fold, (train, test) in enumerate(pairs):
-            splits.append(Split(repeat, fold, train.astype(np.int64), test.astype(np.int64)))
-    return splits
+
+
+def fold_assignment(plan: FoldPlan, keys: SplitKeys, repeat: int = 0) -> np.ndarray:
+    """Return, per development row, its fold in repeat ``repeat`` (seed + repeat).
+
+    For time folds the number is the row's chunk of the time order: chunk 0 (the oldest rows) is
+    only ever trained on, and fold k tests chunk k + 1 and trains on chunks 0..k.
+    """
+    if plan.scheme == "time":
+        assert keys.time is not None
+        return _time_chunks(keys.time, plan.folds)
+    return _test_fold_of_rows(plan.scheme, plan.folds, plan.seed + repeat, keys)
+
+
+def split_of(plan: FoldPlan, assignment: np.ndarray, repeat: int, fold: int) -> Split:
+    """Cut one fold's sorted train and test indices from a ``fold_assignment``."""
+    if plan.scheme == "time":
+        train, test = np.flatnonzero(assignment <= fold), np.flatnonzero(assignment == fold + 1)
+    else:
+        train, test = np.flatnonzero(assignment != fold), np.flatnonzero(assignment == fold)
+    return Split(repeat, fold, train.astype(np.int64), test.astype(np.int64))
 
 
 def _test_fold_of_rows(scheme: str, folds: int, seed: int, keys: SplitKeys) -> np.ndarray:
@@ -248,14 +280,19 @@ def _grouped(groups: np.ndarray, folds: int, seed: int) -> np.ndarray:
     return fold_of_group[codes]
 
 
-def _forward_chaining(time: np.ndarray, folds: int) -> list[tuple[np.ndarray, np.ndarray]]:
-    order = np.argsort(time, kind="stable")  # equal times keep their row order
+def _time_chunks(time: np.ndarray, folds: int) -> np.ndarray:
+    # Forward chaining: rows sorted by time (equal times keep their row order) and cut as
+    # TimeSeriesSplit(folds) cuts them: a first chunk of n - folds * (n // (folds + 1)) rows, then
+    # ``folds`` chunks of n // (folds + 1) rows each.
+    order = np.argsort(time, kind="stable")
     n_rows = len(order)
     chunk = n_rows // (folds + 1)
-    pairs = []
-    for start in range(n_rows - folds * chunk, n_rows, chunk):
-        pairs.append((np.sort(order[:start]), np.sort(order[start : start + chunk])))
-    return pairs
+    first = n_rows - folds * chunk
+    chunk_of_position = np.concatenate([np.zeros(first, dtype=np.int64),
+                                        np.repeat(np.arange(1, folds + 1, dtype=np.int64), chunk)])
+    chunk_of_row = np.empty(n_rows, dtype=np.int64)
+    chunk_of_row[order] = chunk_of_position
+    return chunk_of_row
 
 
 def _class_counts(y: np.ndarray) -> tuple[list[Any], np.ndarray]:

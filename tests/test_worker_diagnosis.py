@@ -1,0 +1,149 @@
+"""Train-fold scores and learning curves: equal to scikit-learn's cross_validate and learning_curve."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from sklearn.linear_model import LogisticRegression, Ridge
+from sklearn.model_selection import KFold, cross_validate, learning_curve
+from sklearn.pipeline import make_pipeline
+from sklearn.preprocessing import StandardScaler
+from sklearn.tree import DecisionTreeRegressor
+
+from service.records import submissions
+from service.submission_view import submission_document
+from service.vault.folds import FoldPlan, fold_splits, split_keys_from_frame
+from tests.test_worker_folds import REGRESSION_SCORING, SIGN, diabetes_parts, run_all_folds
+from tests.worker_fixtures import add_dataset, add_submission, config_document, ctx  # noqa: F401
+from worker import jobs
+from worker.diagnosis import BIAS, NEITHER, VARIANCE
+from worker.runtime import WorkerContext
+
+
+def test_train_scores_equal_cross_validate_return_train_score(ctx: WorkerContext) -> None:  # noqa: F811
+    dev, hold = diabetes_parts()
+    dataset = add_dataset(ctx, dev, hold, "target", "regression", scheme="kfold", folds=5, seed=11)
+    features = [c for c in dev.columns if c != "target"]
+    config = config_document(dataset, "Ridge", params={"alpha": 0.3}, features=features,
+                             preprocess=[{"transformer": "StandardScaler", "columns": features}],
+                             metrics=list(REGRESSION_SCORING))
+    sub_id = add_submission(ctx, dataset, config)
+    rows = run_all_folds(sub_id, 5)
+
+    # Reference: scikit-learn's cross_validate(return_train_score=True) on KFold(5, shuffle=True,
+    # random_state=11), which the vault's "kfold" plan equals index for index.
+    X, y = dev[features].to_numpy(), dev["target"].to_numpy()
+    cv = list(KFold(5, shuffle=True, random_state=11).split(X))
+    reference = cross_validate(make_pipeline(StandardScaler(), Ridge(alpha=0.3)), X, y, cv=cv,
+                               scoring=REGRESSION_SCORING, return_train_score=True)
+    for k, row in enumerate(rows):
+        for name in REGRESSION_SCORING:
+            assert row["train_scores"][name] == pytest.approx(SIGN[name] * reference[f"train_{name}"][k], rel=1e-10)
+            assert row["scores"][name] == pytest.approx(SIGN[name] * reference[f"test_{name}"][k], rel=1e-10)
+
+    jobs.summarize(sub_id)
+    sub = submissions.get(ctx.engine, sub_id)
+    assert sub is not None
+    gap = sub["result"]["fit_gap"]["metrics"]
+    for name in REGRESSION_SCORING:
+        train_mean = SIGN[name] * reference[f"train_{name}"].mean()
+        valid_mean = SIGN[name] * reference[f"test_{name}"].mean()
+        assert gap[name]["train_mean"] == pytest.approx(train_mean, rel=1e-10)
+        assert gap[name]["validation_mean"] == pytest.approx(valid_mean, rel=1e-10)
+        oriented = (train_mean - valid_mean) * SIGN[name]  # positive: the training rows score better
+        assert gap[name]["gap"] == pytest.approx(oriented, rel=1e-9)
+    document = submission_document(ctx.engine, sub)
+    assert document["result"]["cv"]["folds"][0]["train_scores"] == rows[0]["train_scores"]
+    assert document["result"]["fit_gap"]["metrics"]["rmse"]["reading"] in (VARIANCE, BIAS, NEITHER)
+
+
+def test_readings_tell_a_deep_tree_from_a_stump(ctx: WorkerContext) -> None:  # noqa: F811
+    # A fully grown tree fits its training rows exactly (train rmse 0) and is far worse on the validation
+    # rows; a tree of depth 1 on a feature that carries no signal is about as bad on both as the mean.
+    dev, hold = diabetes_parts()
+    dev, hold = dev.copy(), hold.copy()
+    rng = np.random.default_rng(0)
+    dev["noise"], hold["noise"] = rng.normal(size=len(dev)), rng.normal(size=len(hold))
+    dataset = add_dataset(ctx, dev, hold, "target", "regression", scheme="kfold", folds=4, seed=2)
+    readings = {}
+    for label, params, features in (("deep", {"max_depth": None}, ["bmi", "s5", "bp"]),
+                                    ("stump", {"max_depth": 1, "min_samples_leaf": 150}, ["noise"])):
+        config = config_document(dataset, "DecisionTreeRegressor", params=params, features=features,
+                                 metrics=["rmse", "r2"])
+        sub_id = add_submission(ctx, dataset, config)
+        run_all_folds(sub_id, 4)
+        jobs.summarize(sub_id)
+        sub = submissions.get(ctx.engine, sub_id)
+        assert sub is not None
+        readings[label] = sub["result"]["fit_gap"]["metrics"]
+    assert readings["deep"]["rmse"]["train_mean"] == pytest.approx(0.0, abs=1e-9)
+    assert readings["deep"]["rmse"]["reading"] == VARIANCE
+    assert readings["stump"]["r2"]["reading"] == BIAS
+    # Cross-check the deep tree's gap against cross_validate on the same folds.
+    X, y = dev[["bmi", "s5", "bp"]].to_numpy(), dev["target"].to_numpy()
+    cv = list(KFold(4, shuffle=True, random_state=2).split(X))
+    reference = cross_validate(DecisionTreeRegressor(random_state=0), X, y, cv=cv, return_train_score=True,
+                               scoring="neg_root_mean_squared_error")
+    assert readings["deep"]["rmse"]["gap"] == pytest.approx(
+        (-reference["test_score"]).mean() - (-reference["train_score"]).mean(), rel=1e-9)
+
+
+def test_learning_curve_equals_sklearn_learning_curve(ctx: WorkerContext) -> None:  # noqa: F811
+    dev, hold = diabetes_parts()  # 400 rows, 5 folds: every training fold has 320 rows
+    dataset = add_dataset(ctx, dev, hold, "target", "regression", scheme="kfold", folds=5, seed=4)
+    features = [c for c in dev.columns if c != "target"]
+    fractions = [0.1, 0.5, 1.0]
+    config = config_document(dataset, "Ridge", params={"alpha": 0.1}, features=features, metrics=["rmse", "r2"])
+    config["validation"]["learning_curve"] = fractions
+    sub_id = add_submission(ctx, dataset, config)
+    rows = run_all_folds(sub_id, 5)
+
+    # Reference: scikit-learn's learning_curve with the same splits and shuffle=False (its default), which
+    # fits on the first n training indices of each split.
+    X, y = dev[features].to_numpy(), dev["target"].to_numpy()
+    cv = list(KFold(5, shuffle=True, random_state=4).split(X))
+    for metric, scoring in (("rmse", "neg_root_mean_squared_error"), ("r2", "r2")):
+        sizes, train, test = learning_curve(Ridge(alpha=0.1), X, y, train_sizes=fractions, cv=cv, scoring=scoring)
+        assert [p["train_rows"] for p in rows[0]["curve"]] == list(sizes) == [32, 160, 320]
+        for k, row in enumerate(rows):
+            for i, point in enumerate(row["curve"]):
+                assert point["fraction"] == fractions[i]
+                assert point["train_scores"][metric] == pytest.approx(SIGN[metric] * train[i, k], rel=1e-10)
+                assert point["scores"][metric] == pytest.approx(SIGN[metric] * test[i, k], rel=1e-10)
+        jobs.summarize(sub_id)
+        sub = submissions.get(ctx.engine, sub_id)
+        assert sub is not None
+        summary = sub["result"]["learning_curve"]
+        assert [p["fraction"] for p in summary] == fractions
+        for i, point in enumerate(summary):
+            assert point["train_mean"][metric] == pytest.approx(SIGN[metric] * train[i].mean(), rel=1e-10)
+            assert point["validation_mean"][metric] == pytest.approx(SIGN[metric] * test[i].mean(), rel=1e-10)
+
+
+def test_learning_curve_on_stratified_classification_folds(ctx: WorkerContext) -> None:  # noqa: F811
+    from sklearn.datasets import load_breast_cancer
+
+    frame = load_breast_cancer(as_frame=True).frame
+    frame.columns = [c.replace(" ", "_") for c in frame.columns]
+    dev, hold = frame.iloc[:480], frame.iloc[480:]
+    dataset = add_dataset(ctx, dev, hold, "target", "classification", scheme="stratified", folds=4, seed=3)
+    features = ["mean_radius", "mean_texture", "worst_area", "worst_smoothness"]
+    fractions = [0.2, 0.6, 1.0]
+    config = config_document(dataset, "LogisticRegression", params={"max_iter": 5000}, features=features,
+                             metrics=["accuracy"],
+                             preprocess=[{"transformer": "StandardScaler", "columns": features}])
+    config["validation"]["learning_curve"] = fractions
+    sub_id = add_submission(ctx, dataset, config)
+    rows = run_all_folds(sub_id, 4)
+
+    # Reference: learning_curve on the vault's own stratified splits (480 rows / 4 folds: 360 training rows each).
+    plan = FoldPlan("stratified", 4, 3)
+    cv = [(s.train, s.test) for s in fold_splits(plan, split_keys_from_frame(dev, plan, "target", None, None))]
+    X, y = dev[features].to_numpy(), dev["target"].to_numpy()
+    sizes, train, test = learning_curve(make_pipeline(StandardScaler(), LogisticRegression(max_iter=5000)),
+                                        X, y, train_sizes=fractions, cv=cv, scoring="accuracy")
+    assert [p["train_rows"] for p in rows[0]["curve"]] == list(sizes)
+    for k, row in enumerate(rows):
+        for i, point in enumerate(row["curve"]):
+            assert point["train_scores"]["accuracy"] == pytest.approx(train[i, k], rel=1e-12)
+            assert point["scores"]["accuracy"] == pytest.approx(test[i, k], rel=1e-12)
