@@ -133,9 +133,9 @@ def resolve(request: SubmissionRequest, dataset: Mapping[str, Any], catalog: Cat
     _check_categoricals(features, kinds, steps, problems)
     metrics = _resolve_metrics(request.metrics, task, dataset, problems)
     plan = _resolve_plan(request.validation, dataset["fold_plan"], problems)
-    search = _resolve_search(request.search, request.model, plan, problems)
     if request.validation.learning_curve is not None:
         plan["learning_curve"] = _resolve_curve(request.validation.learning_curve, problems)
+    search = _resolve_search(request.search, request.model, plan, problems)
     problems.raise_if_any()
     return {
         "model": {
@@ -329,10 +329,13 @@ def _resolve_search(
     if candidates > MAX_CANDIDATES:
         problems.add("/search/grid", f"the grid has {candidates} combinations; at most {MAX_CANDIDATES} are allowed")
     outer = int(plan["folds"]) * int(plan["repeats"])
-    fits = candidates * search.inner_folds * outer
+    # A learning curve reruns the search at every size but the last (the full fold is reused).
+    per_fold = max(1, len(plan.get("learning_curve") or []))
+    fits = candidates * search.inner_folds * outer * per_fold
     if fits > MAX_SEARCH_FITS:
+        sizes = f" x {per_fold} learning-curve sizes" if per_fold > 1 else ""
         problems.add("/search", f"the search needs {candidates} candidates x {search.inner_folds} inner folds x "
-                     f"{outer} outer folds = {fits} fits; at most {MAX_SEARCH_FITS} are allowed")
+                     f"{outer} outer folds{sizes} = {fits} fits; at most {MAX_SEARCH_FITS} are allowed")
     return {
         "grid": None if search.grid is None else {k: list(v) for k, v in search.grid.items()},
         "distributions": None if search.distributions is None else dict(search.distributions),

@@ -102,3 +102,15 @@ def test_fingerprint_follows_what_determines_the_result() -> None:
     assert config_fingerprint(a, "fp") == config_fingerprint(b, "fp")  # a label changes nothing computed
     assert config_fingerprint(a, "fp") != config_fingerprint(c, "fp")
     assert config_fingerprint(a, "fp") != config_fingerprint(a, "other-data")
+
+
+def test_search_caps_count_the_learning_curve_sizes() -> None:
+    from service.configs import SearchSpec
+
+    model = ModelSpec("Ridge", features=("distance_km",))
+    grid = SearchSpec(grid={"alpha": tuple(float(a) for a in range(40))}, inner_folds=5)  # 40 x 5 x 5 = 1000 fits
+    assert resolve(_request(model, search=grid), DATASET, load_catalog())["search"]["inner_folds"] == 5
+    with pytest.raises(ConfigRejected) as exc:
+        resolve(_request(model, search=grid, validation=ValidationSpec(learning_curve=(0.25, 0.5, 1.0))),
+                DATASET, load_catalog())
+    assert "x 3 learning-curve sizes = 3000 fits" in _pointers(exc)["/search"]
