@@ -183,17 +183,23 @@ def test_board_follows_the_policy_in_force(api: Api, dataset: dict[str, Any]) ->
     assert api.pointers(problem) == ["/cursor"] and "'r2'" in problem["detail"]
 
 
-def test_board_pages_cover_every_entry_once_across_ties(api: Api, dataset: dict[str, Any]) -> None:
-    means = [55, 50, 55, 60, 50, 55, 45]
-    made = {_sub(api, dataset, label=f"m{m}-{i}", scores=[m - 1, m + 1, m, m, m]): m for i, m in enumerate(means)}
+def _every_page(api: Api, ds_id: str, limit: int) -> list[dict[str, Any]]:
+    """Follow next_cursor from the first page to the last (at most 10 pages) and return every entry."""
     seen: list[dict[str, Any]] = []
     cursor = None
     for _ in range(10):
-        page = _board(api, dataset["id"], limit=2, **({} if cursor is None else {"cursor": cursor}))
+        page = _board(api, ds_id, limit=limit, **({} if cursor is None else {"cursor": cursor}))
         seen += page["entries"]
         cursor = page["next_cursor"]
         if cursor is None:
             break
+    return seen
+
+
+def test_board_pages_cover_every_entry_once_across_ties(api: Api, dataset: dict[str, Any]) -> None:
+    means = [55, 50, 55, 60, 50, 55, 45]
+    made = {_sub(api, dataset, label=f"m{m}-{i}", scores=[m - 1, m + 1, m, m, m]): m for i, m in enumerate(means)}
+    seen = _every_page(api, dataset["id"], limit=2)
     assert sorted(e["submission"] for e in seen) == sorted(made)
     assert [e["cv"]["mean"] for e in seen] == pytest.approx(sorted(means))
     assert [e["rank"] for e in seen] == list(range(1, len(means) + 1))
@@ -241,14 +247,7 @@ def test_board_ranks_and_pages_on_postgresql(pg_api: Api, diabetes_csv: bytes) -
     dataset = api.upload("steward", diabetes_csv, name="diabetes", target="target", task="regression").get_json()
     means = [0.1 + 0.2, 55.0, 0.3, 55.0, 12.5]  # 0.1 + 0.2 != 0.3: the cursor must keep full precision
     made = {_sub(api, dataset, label=str(i), scores=[m] * 5): m for i, m in enumerate(means)}
-    seen: list[dict[str, Any]] = []
-    cursor = None
-    for _ in range(10):
-        page = _board(api, dataset["id"], limit=1, **({} if cursor is None else {"cursor": cursor}))
-        seen += page["entries"]
-        cursor = page["next_cursor"]
-        if cursor is None:
-            break
+    seen = _every_page(api, dataset["id"], limit=1)
     assert sorted(e["submission"] for e in seen) == sorted(made)
     assert [e["cv"]["mean"] for e in seen] == pytest.approx(sorted(means))
     assert seen[0]["holdout"]["score"] == pytest.approx(0.3) and seen[0]["holdout"]["released"] is True

@@ -19,7 +19,7 @@ from service.vault import store
 from worker.development import column_kinds, load_development, model_frame, model_matrix, target_values
 from worker.losses import save_per_example
 from worker.pipeline import build_pipeline, uses_frame
-from worker.runtime import WorkerContext
+from worker.runtime import WorkerContext, submission_to_work_on
 from worker.scoring import per_example, predictions, score_predictions
 from worker.search import build_model
 
@@ -27,11 +27,9 @@ from worker.search import build_model
 def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     """Score the holdout once and finish the submission; a failed or canceled one is left alone."""
     engine = ctx.engine
-    sub = submissions.get(engine, submission_id)
+    sub, skip = submission_to_work_on(ctx, submission_id)
     if sub is None:
-        raise LookupError(f"no submission {submission_id!r} in the records DB")
-    if sub["state"] in ("failed", "canceled"):
-        return {"submission_id": submission_id, "skipped": sub["state"]}
+        return skip
     if submissions.get_holdout(engine, submission_id) is not None:
         # Scored by an earlier run; the verdict job finishes the submission.
         return {"submission_id": submission_id, "holdout": "already scored"}

@@ -23,7 +23,7 @@ from service.records.engine import as_utc, utcnow
 from service.release import HoldoutScores, release
 from service.verdict import CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV, ChampionFolds, PlanFacts, judge
 from worker.losses import load_per_example
-from worker.runtime import WorkerContext
+from worker.runtime import WorkerContext, submission_to_work_on
 
 Cell = tuple[int, int]
 _EPOCH = datetime(1970, 1, 1)
@@ -32,11 +32,9 @@ _EPOCH = datetime(1970, 1, 1)
 def judge_submission(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[str, Any]:
     """Release the holdout figure and store the verdict of one submission; idempotent."""
     engine = ctx.engine
-    sub = submissions.get(engine, submission_id)
+    sub, skip = submission_to_work_on(ctx, submission_id)
     if sub is None:
-        raise LookupError(f"no submission {submission_id!r} in the records DB")
-    if sub["state"] in ("failed", "canceled"):
-        return {"submission_id": submission_id, "skipped": sub["state"]}
+        return skip
     if sub["verdict"] is not None:
         submissions.transition(engine, submission_id, "succeeded", submissions.LIVE_STATES)
         return {"submission_id": submission_id, "verdict": "already judged"}

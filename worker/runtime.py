@@ -7,9 +7,11 @@ here. ``run_worker`` installs the context before the first fork; tests install t
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 from sqlalchemy import Engine
 
+from service.records import submissions
 from service.settings import Settings
 
 
@@ -53,3 +55,17 @@ def after_fork() -> None:
     """
     if _Slot.context is not None:
         _Slot.context.engine.dispose(close=False)
+
+
+def submission_to_work_on(ctx: WorkerContext, submission_id: str) -> tuple[dict[str, Any] | None, dict[str, Any]]:
+    """Return (row, {}) for a submission a job should work on, or (None, the job's answer) to skip it.
+
+    A missing submission is an error (the job retries; the reconciler never enqueues unknown ids); a
+    failed or canceled one is skipped, so late jobs of a finished chain do nothing.
+    """
+    sub = submissions.get(ctx.engine, submission_id)
+    if sub is None:
+        raise LookupError(f"no submission {submission_id!r} in the records DB")
+    if sub["state"] in ("failed", "canceled"):
+        return None, {"submission_id": submission_id, "skipped": sub["state"]}
+    return sub, {}
