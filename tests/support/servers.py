@@ -137,7 +137,13 @@ class ServedApp:
 
         self.port = free_port()
         self.server = create_server(app, host="127.0.0.1", port=self.port, threads=4)
-        self.thread = threading.Thread(target=self.server.run, daemon=True)
+        self._stop = threading.Event()
+        self.thread = threading.Thread(target=self._serve, daemon=True)
+
+    def _serve(self) -> None:
+        # Short loop turns instead of server.run(), so stopping never closes sockets under a select().
+        while not self._stop.is_set():
+            self.server.asyncore.loop(timeout=0.1, map=self.server._map, count=1)
 
     @property
     def url(self) -> str:
@@ -148,4 +154,6 @@ class ServedApp:
         return self
 
     def __exit__(self, *exc: object) -> None:
+        self._stop.set()
+        self.thread.join(timeout=10)
         self.server.close()
