@@ -224,15 +224,20 @@ def _check_frame(
         time_order_key(frame[declaration.time_column], "/time_column")  # raises when not times
 
 
-def _check_target(target: pd.Series, task: str) -> None:
-    name = target.name
-    missing = target.isna().to_numpy()
+def _reject_missing(column: pd.Series, role: str, each: str) -> None:
+    """Refuse a declared column with missing values, naming how many and the first data row."""
+    missing = column.isna().to_numpy()
     if missing.any():
         raise _rejected(
-            "/target",
-            f"target {name!r} has {int(missing.sum())} missing values (first in data row "
-            f"{int(np.flatnonzero(missing)[0]) + 1}); every row needs a target",
+            f"/{role}",
+            f"{role} {column.name!r} has {int(missing.sum())} missing values (first in data row "
+            f"{int(np.flatnonzero(missing)[0]) + 1}); every row needs {each}",
         )
+
+
+def _check_target(target: pd.Series, task: str) -> None:
+    name = target.name
+    _reject_missing(target, "target", "a target")
     if pd.api.types.is_datetime64_any_dtype(target.dtype):
         raise _rejected(
             "/target", f"target {name!r} holds datetimes ({target.dtype}); a target needs numbers or labels"
@@ -276,13 +281,7 @@ def _check_class_sizes(labels: list[Any], sizes: np.ndarray, kept: np.ndarray | 
 
 def _check_ids(ids: pd.Series) -> None:
     name = ids.name
-    missing = ids.isna().to_numpy()
-    if missing.any():
-        raise _rejected(
-            "/id_column",
-            f"id_column {name!r} has {int(missing.sum())} missing values (first in data row "
-            f"{int(np.flatnonzero(missing)[0]) + 1}); every row needs an id",
-        )
+    _reject_missing(ids, "id_column", "an id")
     as_text = ids.astype(str)  # row ids are the text of the ids: 7 and "7" must not both occur
     repeated = as_text.duplicated(keep=False).to_numpy()
     if repeated.any():
@@ -296,13 +295,7 @@ def _check_ids(ids: pd.Series) -> None:
 
 def _check_groups(groups: pd.Series, needed: int) -> None:
     name = groups.name
-    missing = groups.isna().to_numpy()
-    if missing.any():
-        raise _rejected(
-            "/group_column",
-            f"group_column {name!r} has {int(missing.sum())} missing values (first in data row "
-            f"{int(np.flatnonzero(missing)[0]) + 1}); every row needs a group",
-        )
+    _reject_missing(groups, "group_column", "a group")
     n_groups = groups.nunique()
     if n_groups < needed:
         raise _rejected(
