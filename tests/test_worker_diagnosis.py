@@ -13,7 +13,7 @@ from sklearn.tree import DecisionTreeRegressor
 from service.records import submissions
 from service.submission_view import submission_document
 from service.vault.folds import FoldPlan, fold_splits, split_keys_from_frame
-from tests.test_worker_folds import REGRESSION_SCORING, SIGN, diabetes_parts, run_all_folds
+from tests.test_worker_folds import REGRESSION_SCORING, SIGN, diabetes_parts, ridge_on_diabetes, run_all_folds
 from tests.worker_fixtures import add_dataset, add_submission, config_document, ctx  # noqa: F401
 from worker import jobs
 from worker.diagnosis import BIAS, NEITHER, VARIANCE
@@ -21,21 +21,8 @@ from worker.runtime import WorkerContext
 
 
 def test_train_scores_equal_cross_validate_return_train_score(ctx: WorkerContext) -> None:  # noqa: F811
-    dev, hold = diabetes_parts()
-    dataset = add_dataset(ctx, dev, hold, "target", "regression", scheme="kfold", folds=5, seed=11)
-    features = [c for c in dev.columns if c != "target"]
-    config = config_document(dataset, "Ridge", params={"alpha": 0.3}, features=features,
-                             preprocess=[{"transformer": "StandardScaler", "columns": features}],
-                             metrics=list(REGRESSION_SCORING))
-    sub_id = add_submission(ctx, dataset, config)
-    rows = run_all_folds(sub_id, 5)
-
-    # Reference: scikit-learn's cross_validate(return_train_score=True) on KFold(5, shuffle=True,
-    # random_state=11), which the vault's "kfold" plan equals index for index.
-    X, y = dev[features].to_numpy(), dev["target"].to_numpy()
-    cv = list(KFold(5, shuffle=True, random_state=11).split(X))
-    reference = cross_validate(make_pipeline(StandardScaler(), Ridge(alpha=0.3)), X, y, cv=cv,
-                               scoring=REGRESSION_SCORING, return_train_score=True)
+    # Reference: cross_validate(return_train_score=True) on the same folds (see ridge_on_diabetes).
+    sub_id, rows, reference, _, _ = ridge_on_diabetes(ctx)
     for k, row in enumerate(rows):
         for name in REGRESSION_SCORING:
             assert row["train_scores"][name] == pytest.approx(SIGN[name] * reference[f"train_{name}"][k], rel=1e-10)

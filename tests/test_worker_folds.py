@@ -40,7 +40,15 @@ def diabetes_parts() -> tuple[pd.DataFrame, pd.DataFrame]:
     return frame.iloc[:400], frame.iloc[400:]
 
 
-def test_ridge_on_diabetes_equals_cross_validate(ctx: WorkerContext) -> None:  # noqa: F811
+def ridge_on_diabetes(
+    ctx: WorkerContext,  # noqa: F811
+) -> tuple[str, list[dict[str, Any]], dict[str, Any], list[str], Any]:
+    """Run every fold of scaled Ridge(alpha=0.3) on diabetes; return (sub_id, fold rows, reference, features, cv).
+
+    Reference: scikit-learn's cross_validate with the same pipeline on KFold(5, shuffle=True,
+    random_state=11) (the vault's "kfold" plan is defined to be exactly that split), with train
+    scores and fitted estimators.
+    """
     dev, hold = diabetes_parts()
     dataset = add_dataset(ctx, dev, hold, "target", "regression", scheme="kfold", folds=5, seed=11)
     features = [c for c in dev.columns if c != "target"]
@@ -49,13 +57,15 @@ def test_ridge_on_diabetes_equals_cross_validate(ctx: WorkerContext) -> None:  #
                              metrics=list(REGRESSION_SCORING))
     sub_id = add_submission(ctx, dataset, config)
     rows = run_all_folds(sub_id, 5)
-
-    # Reference: scikit-learn's cross_validate, the same pipeline, KFold(5, shuffle=True, random_state=11)
-    # (the vault's "kfold" plan is defined to be exactly that split).
     X, y = dev[features].to_numpy(), dev["target"].to_numpy()
     cv = list(KFold(5, shuffle=True, random_state=11).split(X))
     reference = cross_validate(make_pipeline(StandardScaler(), Ridge(alpha=0.3)), X, y, cv=cv,
-                               scoring=REGRESSION_SCORING, return_estimator=True)
+                               scoring=REGRESSION_SCORING, return_estimator=True, return_train_score=True)
+    return sub_id, rows, reference, features, (X, y, cv)
+
+
+def test_ridge_on_diabetes_equals_cross_validate(ctx: WorkerContext) -> None:  # noqa: F811
+    _, rows, reference, features, (X, y, cv) = ridge_on_diabetes(ctx)
     baseline = cross_validate(DummyRegressor(strategy="mean"), X, y, cv=cv, scoring=REGRESSION_SCORING)
     assert [(r["repeat"], r["fold"], r["status"]) for r in rows] == [(0, f, "ok") for f in range(5)]
     for k, row in enumerate(rows):
