@@ -8,8 +8,15 @@ per piece of work.
 
 Chain per submission::
 
-    fold jobs (one per repeat x fold) --allow_failure--> summary (fan-in) --> holdout (exactly once)
-        --> verdict (release the holdout figure, judge, mark succeeded)
+    fold jobs (one per repeat x fold) --allow_failure--> summary (fan-in) --+
+    holdout (refit on every development row, score the seal exactly once) --+--> verdict
+        (release the holdout figure, judge, mark succeeded)
+
+The holdout job is queued behind the folds but depends on none of them, so it runs beside the last
+fold round instead of after it: the refit on every development row does not need the folds'
+results. What it computes stays in the records DB; the verdict job, which waits for both the
+summary and the holdout job, is the only one that releases a figure, so nothing about the holdout
+leaves the service before the cross-validation summary exists.
 """
 
 from __future__ import annotations
@@ -76,9 +83,9 @@ def enqueue_submission(redis: Redis, settings: Settings, sub_id: str, validation
     try:
         queue = work_queue(redis, settings)
         fold_ids = [_enqueue_fold(queue, settings, sub_id, r, f) for r, f in fold_cells(validation)]
+        _enqueue_holdout(queue, settings, sub_id)
         _enqueue_summary(queue, settings, sub_id, fold_ids)
-        _enqueue_holdout(queue, settings, sub_id, [summary_job_id(sub_id)])
-        _enqueue_verdict(queue, sub_id, [holdout_job_id(sub_id)])
+        _enqueue_verdict(queue, sub_id, [summary_job_id(sub_id), holdout_job_id(sub_id)])
     except RedisError as exc:
         # The submission row exists and the reconciler will enqueue it once Redis is back.
         log.warning("could not enqueue %s: %s", sub_id, exc)
@@ -177,18 +184,19 @@ def _reconcile_one(engine: Engine, live: set[str], queue: Queue, settings: Setti
             live_folds.append(_enqueue_fold(queue, settings, sub_id, r, f))
             enqueued += 1
     scored = submissions.get_holdout(engine, sub_id) is not None
+    waits_for: list[str] = []
     if sub["result"] is None:
         if summary_job_id(sub_id) not in live:
             _enqueue_summary(queue, settings, sub_id, live_folds)
             enqueued += 1
+        waits_for.append(summary_job_id(sub_id))
+    if not scored:
         if holdout_job_id(sub_id) not in live:
-            _enqueue_holdout(queue, settings, sub_id, [summary_job_id(sub_id)])
+            _enqueue_holdout(queue, settings, sub_id)
             enqueued += 1
-    elif not scored and holdout_job_id(sub_id) not in live:
-        _enqueue_holdout(queue, settings, sub_id, [])
-        enqueued += 1
+        waits_for.append(holdout_job_id(sub_id))
     if verdict_job_id(sub_id) not in live:  # a live submission always ends with its verdict job
-        _enqueue_verdict(queue, sub_id, [] if scored else [holdout_job_id(sub_id)])
+        _enqueue_verdict(queue, sub_id, waits_for)
         enqueued += 1
     if enqueued:
         log.info("reconciler re-enqueued %d job(s) of %s", enqueued, sub_id)
@@ -213,10 +221,9 @@ def _enqueue_summary(queue: Queue, settings: Settings, sub_id: str, depends_on: 
     )
 
 
-def _enqueue_holdout(queue: Queue, settings: Settings, sub_id: str, depends_on: list[str]) -> None:
+def _enqueue_holdout(queue: Queue, settings: Settings, sub_id: str) -> None:
     queue.enqueue_call(
         f"{JOB_MODULE}.score_holdout", args=(sub_id,), job_id=holdout_job_id(sub_id),
-        depends_on=Dependency(jobs=depends_on, allow_failure=True) if depends_on else None,
         timeout=settings.fold_timeout_seconds * 2, result_ttl=RESULT_TTL, retry=_retry(),
         description=f"holdout score of {sub_id}",
     )

@@ -7,6 +7,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pytest
+from redis import Redis
 from sklearn import metrics as skm
 from sklearn.datasets import load_diabetes
 from sklearn.linear_model import Ridge
@@ -20,6 +21,7 @@ from service.records.tables import holdout_scores
 from service.vault import store
 from tests.worker_fixtures import add_dataset, add_submission, config_document, ctx  # noqa: F401
 from worker import holdout, jobs
+from worker.judge import judge_submission
 from worker.runtime import WorkerContext
 
 METRICS = ["rmse", "mae", "r2"]
@@ -135,7 +137,7 @@ def test_a_broken_seal_fails_the_submission(ctx: WorkerContext) -> None:  # noqa
     assert submissions.get_holdout(ctx.engine, sub_id) is None
 
 
-def test_holdout_errors_do_not_quote_holdout_values(ctx: WorkerContext) -> None:  # noqa: F811
+def test_holdout_errors_do_not_quote_holdout_values(ctx: WorkerContext, redis_url: str) -> None:  # noqa: F811
     frame = load_diabetes(as_frame=True).frame
     frame["depot"] = pd.Series(np.where(frame["sex"] > 0, "north", "south"), dtype="str")
     frame = frame.drop(columns="sex")
@@ -151,11 +153,39 @@ def test_holdout_errors_do_not_quote_holdout_values(ctx: WorkerContext) -> None:
         encoder.transform(hold[["depot"]])
     answer = jobs.score_holdout(sub_id)
     assert answer["holdout"] == "not scored"
+    # The failed attempt is the submission's one holdout outcome, stored without its message ...
+    stored = submissions.get_holdout(ctx.engine, sub_id)
+    assert stored is not None and stored["scores"] == {}
+    assert "ValueError" in stored["error"] and "withheld" in stored["error"]
+    assert "secret-depot-7" not in stored["error"] and "secret-depot-7" not in repr(answer)
+    assert jobs.score_holdout(sub_id)["holdout"] == "already scored"  # ... and final: a retry never rescores
+    assert holdout_rows(ctx, sub_id) == 1
+    # The holdout job runs beside the folds and ends nothing; the verdict job fails the submission,
+    # which keeps its cross-validation result.
+    assert submissions.get(ctx.engine, sub_id)["state"] == "running"  # type: ignore[index]
+    assert judge_submission(ctx, Redis.from_url(redis_url), sub_id)["holdout"] == "not scored"
+    sub = submissions.get(ctx.engine, sub_id)
+    assert sub is not None and sub["state"] == "failed" and sub["result"] is not None
+    assert "ValueError" in sub["error"] and "withheld" in sub["error"] and "secret-depot-7" not in sub["error"]
+
+
+def test_a_refit_that_fails_before_the_folds_finish_leaves_the_folds_message(ctx: WorkerContext) -> None:  # noqa: F811
+    # The holdout job may run before any fold (it is queued beside them). A configuration that no
+    # fit accepts must still fail with the folds' own message from the summary, as before.
+    frame = load_diabetes(as_frame=True).frame
+    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression", folds=3)
+    sub_id = add_submission(ctx, dataset, config_document(dataset, "Ridge", params={"positive": True,
+                                                                                 "solver": "svd"}))
+    assert jobs.score_holdout(sub_id) == {"submission_id": sub_id, "holdout": "not scored", "reason": "refit failed"}
+    stored = submissions.get_holdout(ctx.engine, sub_id)
+    assert stored is not None and stored["error"].startswith("refitting on all development rows failed: ValueError")
+    assert submissions.get(ctx.engine, sub_id)["state"] == "queued"  # type: ignore[index]
+    for f in range(3):
+        jobs.run_fold(sub_id, 0, f)
+    assert jobs.summarize(sub_id)["folds_ok"] == 0
     sub = submissions.get(ctx.engine, sub_id)
     assert sub is not None and sub["state"] == "failed"
-    assert "ValueError" in sub["error"] and "withheld" in sub["error"]
-    assert "secret-depot-7" not in sub["error"] and "secret-depot-7" not in repr(answer)
-    assert submissions.get_holdout(ctx.engine, sub_id) is None
+    assert sub["error"].startswith("ValueError: solver='svd' does not support positive fitting")
 
 
 def test_canceled_submission_is_not_scored(ctx: WorkerContext) -> None:  # noqa: F811

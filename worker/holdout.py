@@ -1,10 +1,14 @@
 """Score a submission on its dataset's sealed holdout, exactly once.
 
 The model is refitted on every development row, then the sealed partition is opened (its
-fingerprint checked) and scored. The holdout score row's primary key makes the first stored score
-final: a retried or duplicated job finds it and never scores again. Nothing here logs, returns or
-stores holdout rows, ids or predictions; errors raised while the holdout is in use are replaced by
-their class name, because an estimator's message can quote the values it choked on.
+fingerprint checked) and scored. The job runs beside the fold jobs (it needs nothing they compute)
+and only stores its outcome; the verdict job, after the summary, releases a figure or fails the
+submission with the stored error. The holdout row's primary key makes the first stored outcome --
+a score, or the error of a refit or scoring that failed -- final: a retried or duplicated job
+finds it and never scores again. Nothing here logs, returns or stores holdout rows, ids or
+predictions; errors raised while the holdout is in use are replaced by their class name, because
+an estimator's message can quote the values it choked on. A broken seal is the one outcome that
+fails the submission at once: it is an incident with the data, not a verdict on the model.
 """
 
 from __future__ import annotations
@@ -25,17 +29,14 @@ from worker.search import build_model
 
 
 def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
-    """Score the holdout once and finish the submission; a failed or canceled one is left alone."""
+    """Score the holdout once and store the outcome; a failed or canceled submission is left alone."""
     engine = ctx.engine
     sub, skip = submission_to_work_on(ctx, submission_id)
     if sub is None:
         return skip
     if submissions.get_holdout(engine, submission_id) is not None:
-        # Scored by an earlier run; the verdict job finishes the submission.
+        # Scored (or failed) in an earlier run; the verdict job finishes the submission.
         return {"submission_id": submission_id, "holdout": "already scored"}
-    if sub["result"] is None:
-        raise RuntimeError(f"submission {submission_id} has no cross-validation summary yet; "
-                           "the holdout is scored after the summary job")
     dataset = datasets.get_internal(engine, sub["dataset_id"])
     if dataset is None:
         raise LookupError(f"submission {submission_id} refers to dataset {sub['dataset_id']!r}, which is gone")
@@ -54,8 +55,7 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
         raise
     except Exception as exc:  # development rows only: the estimator's message may be shown
         error = f"refitting on all development rows failed: {type(exc).__name__}: {exc}"
-        submissions.transition(engine, submission_id, "failed", submissions.LIVE_STATES, error=error)
-        return {"submission_id": submission_id, "holdout": "not scored", "reason": "refit failed"}
+        return _not_scored(ctx, submission_id, dataset, error, "refit failed")
 
     try:
         holdout = store.open_sealed_holdout(ctx.settings, dataset["id"], dataset["holdout_fingerprint"])
@@ -76,8 +76,7 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     except Exception as exc:
         error = (f"scoring on the holdout failed with {type(exc).__name__}; its message is withheld because "
                  "it may describe holdout rows (e.g. an unseen category: try handle_unknown='ignore')")
-        submissions.transition(engine, submission_id, "failed", submissions.LIVE_STATES, error=error)
-        return {"submission_id": submission_id, "holdout": "not scored", "reason": type(exc).__name__}
+        return _not_scored(ctx, submission_id, dataset, error, type(exc).__name__)
     finally:
         del holdout
 
@@ -91,3 +90,11 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     )
     return {"submission_id": submission_id, "holdout": "scored" if created else "already scored",
             "metrics": sorted(scores)}
+
+
+def _not_scored(
+    ctx: WorkerContext, submission_id: str, dataset: dict[str, Any], error: str, reason: str
+) -> dict[str, Any]:
+    """Store a failed attempt as the submission's one holdout outcome; the verdict job reports it."""
+    submissions.store_holdout_once(ctx.engine, submission_id, {}, dataset["holdout_fingerprint"], None, error=error)
+    return {"submission_id": submission_id, "holdout": "not scored", "reason": reason}

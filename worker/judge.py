@@ -1,7 +1,9 @@
-"""Judge a submission once its holdout is scored: release the holdout figure, then decide the verdict.
+"""Judge a submission once its summary and holdout are stored: release the holdout figure, then decide.
 
-The last job of the chain (folds -> summary -> holdout -> judge). It reads only the records: fold
-rows, the stored summary and the raw holdout score the holdout job stored once. The release is
+The last job of the chain (folds -> summary, and the holdout beside them -> judge). It reads only
+the records: fold rows, the stored summary and the raw holdout outcome the holdout job stored once.
+A holdout attempt that failed fails the submission here, after the summary, so the failed
+submission still carries its cross-validation result. The release is
 recorded once per submission (primary key) under a per-dataset lock, because the ladder and
 thresholdout carry state from one submission to the next. The submission becomes ``succeeded``
 only here, so a client that sees ``succeeded`` always finds its verdict.
@@ -38,9 +40,15 @@ def judge_submission(ctx: WorkerContext, redis: Redis, submission_id: str) -> di
     if sub["verdict"] is not None:
         submissions.transition(engine, submission_id, "succeeded", submissions.LIVE_STATES)
         return {"submission_id": submission_id, "verdict": "already judged"}
+    if sub["result"] is None:
+        raise RuntimeError(f"submission {submission_id} has no cross-validation summary yet; "
+                           "it is judged after the summary job")
     raw = submissions.get_holdout(engine, submission_id)
     if raw is None:
         raise RuntimeError(f"submission {submission_id} has no holdout score yet; it is judged after the holdout job")
+    if raw.get("error"):
+        submissions.transition(engine, submission_id, "failed", submissions.LIVE_STATES, error=str(raw["error"]))
+        return {"submission_id": submission_id, "decision": None, "holdout": "not scored"}
     dataset = datasets.get_internal(engine, sub["dataset_id"])
     if dataset is None:
         raise LookupError(f"submission {submission_id} refers to dataset {sub['dataset_id']!r}, which is gone")

@@ -27,7 +27,7 @@ from service.catalog import load_catalog
 from service.records.engine import make_engine
 from service.settings import Settings
 from worker import runtime
-from worker.jobs import ALLOWED_JOBS, check_config, summarize
+from worker.jobs import ALLOWED_JOBS, check_config, judge, summarize
 from worker.warmup import warm_up
 
 log = logging.getLogger(__name__)
@@ -38,7 +38,9 @@ RECONCILE_LOCK = "sealfold:reconcile-lock"
 # Callbacks a job may name; sealfold's own jobs use none, so any name is refused.
 ALLOWED_CALLBACKS: frozenset[str] = frozenset()
 # Jobs run in the worker's own process instead of a forked work horse (see execute_job).
-IN_PROCESS_JOBS: frozenset[str] = frozenset(f"{job.__module__}.{job.__name__}" for job in (check_config, summarize))
+IN_PROCESS_JOBS: frozenset[str] = frozenset(
+    f"{job.__module__}.{job.__name__}" for job in (check_config, summarize, judge)
+)
 
 
 class RefusedJob(Exception):
@@ -98,17 +100,19 @@ class SealfoldWorker(Worker):
         super().main_work_horse(job, queue)
 
     def execute_job(self, job: Job, queue: Queue) -> None:
-        """Run configuration checks and summaries in this process; fork a work horse for every other job.
+        """Run configuration checks, summaries and verdicts in this process; fork a horse for the rest.
 
         A fork, and the horse's first touch of the inherited heap (thousands of copied pages),
-        costs more than either job: a POST waits for its check, and every submission waits for its
-        summary between the last fold and the holdout. Both are safe without a horse because they
-        open no data file and fit nothing: the check is parameter validation (one dataset row
+        costs more than any of these jobs: a POST waits for its check, and every submission waits
+        for its summary and its verdict after the last fold. They are safe without a horse because
+        they read no rows and fit nothing: the check is parameter validation (one dataset row
         read, estimators instantiated from the catalog and validated by scikit-learn), the summary
-        is arithmetic on the fold scores stored in the records DB. Neither keeps anything: every
-        object they make is dropped when they return, the catalog is read-only, and their DB
-        connection goes back to this process's pool -- which the maintenance reconciler uses
-        already, and which each horse replaces on fork (``runtime.after_fork``). RQ's timeout
+        is arithmetic on the fold scores stored in the records DB, and the verdict is statistics
+        on stored figures (fold scores, the stored holdout score and its per-example losses).
+        None keeps anything: every object they make is dropped when they return, the catalog is
+        read-only, and their DB connection goes back to this process's pool -- which the
+        maintenance reconciler uses already, and which each horse replaces on fork
+        (``runtime.after_fork``). RQ's timeout
         still applies, as in SimpleWorker. Fitting, and anything that opens the development or
         sealed rows, always runs in a horse. The choice is by the allow-listed function name
         alone, so no other job can run in-process; a job whose data does not even decode goes

@@ -152,23 +152,27 @@ def folds_done(engine: Engine, sub_id: str) -> int:
 
 
 def store_holdout_once(
-    engine: Engine, sub_id: str, scores: dict[str, float | None], holdout_fingerprint: str, fit_seconds: float
+    engine: Engine, sub_id: str, scores: dict[str, float | None], holdout_fingerprint: str,
+    fit_seconds: float | None, *, error: str | None = None,
 ) -> tuple[dict[str, float | None], bool]:
-    """Store the one holdout score of a submission; return the stored scores and whether this call won.
+    """Store the one holdout outcome of a submission; return the stored scores and whether this call won.
 
-    The primary key on ``submission_id`` makes a second insert fail, so whichever job gets there
-    first wins and every later caller reads the winner's scores.
+    The outcome is the scores, or ``error`` (with no scores) when the one attempt failed. The
+    primary key on ``submission_id`` makes a second insert fail, so whichever job gets there first
+    wins and every later caller reads the winner's outcome.
     """
     try:
         with engine.begin() as conn:
             conn.execute(
                 holdout_scores.insert().values(
                     submission_id=sub_id, scores=scores, holdout_fingerprint=holdout_fingerprint,
-                    fit_seconds=fit_seconds, scored_at=utcnow(),
+                    fit_seconds=fit_seconds, scored_at=utcnow(), error=error,
                 )
             )
             sub = conn.execute(select(submissions.c.team).where(submissions.c.id == sub_id)).scalar_one()
-            audit.record(conn, "system", sub, "holdout.scored", sub_id, {"metrics": sorted(scores)})
+            action, detail = ("holdout.scored", {"metrics": sorted(scores)}) if error is None \
+                else ("holdout.failed", {"error": error})
+            audit.record(conn, "system", sub, action, sub_id, detail)
     except IntegrityError:
         stored = get_holdout(engine, sub_id)
         if stored is None:  # the insert failed for another reason: let it surface

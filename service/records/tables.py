@@ -120,6 +120,8 @@ holdout_scores = Table(
     Column("holdout_fingerprint", String(64), nullable=False),
     Column("fit_seconds", Float),
     Column("scored_at", DateTime(timezone=True), nullable=False),
+    # Set when the one attempt failed (refit or scoring); scores is then {}. Never holdout values.
+    Column("error", Text),
 )
 
 policies = Table(
