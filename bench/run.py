@@ -5,9 +5,11 @@ the whole benchmark. For each size (default 1,000 x 20 and 1,000,000 x 20 float 
 and seeded) it
 
 1. writes the table as Parquet and registers it by path (timed and printed, not compared);
-2. POSTs a 5-fold Ridge configuration and times POST -> ``succeeded`` (median of several runs; each
-   run registers the rows again, because a configuration already judged on a dataset is answered
-   with the earlier submission);
+2. POSTs a 5-fold Ridge configuration and times POST -> ``succeeded``: from just before the POST to
+   the ``finished_at`` the service records as it marks the submission succeeded, read by a client
+   polling every 50 ms (what that client saw is printed too). Median of several runs; each run
+   registers the rows again, because a configuration already judged on a dataset is answered
+   with the earlier submission;
 3. rebuilds the development rows and the fold plan from ``GET /v1/submissions/{id}/folds``
    (the union of the folds' test row ids is the development partition, in its original order) and
    times ``cross_validate(Ridge(), X_dev, y_dev, cv=<the same folds>)`` with n_jobs=1 and n_jobs=2,
@@ -35,6 +37,7 @@ import time
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
+from datetime import datetime
 from pathlib import Path
 from typing import Any
 
@@ -55,6 +58,7 @@ FEATURES = [f"x{i:02d}" for i in range(N_FEATURES)]
 # sealfold's metric names and the scikit-learn scorers that compute the same numbers.
 SCORERS = {"rmse": "neg_root_mean_squared_error", "mae": "neg_mean_absolute_error", "r2": "r2"}
 SIGN = {"rmse": -1.0, "mae": -1.0, "r2": 1.0}
+POLL_SECONDS = 0.05
 
 
 def make_table(n_rows: int, seed: int = SEED) -> pd.DataFrame:
@@ -155,29 +159,35 @@ class Service:
             raise SystemExit(f"registering {path.name} answered {status}: {doc}")
         return doc, elapsed
 
-    def run_submission(self, dataset_id: str, label: str, timeout: float = 1800) -> tuple[dict[str, Any], float]:
-        """POST a configuration and poll until it finishes; return the document and POST->finished seconds."""
-        started = time.perf_counter()
+    def run_submission(self, dataset_id: str, label: str, timeout: float = 1800) -> tuple[dict[str, Any], Timing]:
+        """POST a configuration and poll until it finishes; return the document and its timing.
+
+        The time that counts is from just before the POST to the ``finished_at`` the service records
+        when it marks the submission succeeded (one host, one wall clock). The client polls only
+        every 50 ms, so that polling does not take CPU from the workers on a small machine (a GET
+        costs the API a few ms); what the polling client saw is kept too.
+        """
+        posted_wall, posted = time.time(), time.perf_counter()
         status, doc = embedded.request_json(f"{self.base_url}/v1/submissions", "POST", token=self.submitter,
                                             document=configuration(dataset_id, label))
         if status != 202:
             raise SystemExit(f"submitting answered {status}: {doc}")
         url = f"{self.base_url}/v1/submissions/{doc['id']}"
-        pause = 0.005
+        pause = POLL_SECONDS
         while True:
             _status, doc = embedded.request_json(url, token=self.submitter)
             if doc["state"] in ("succeeded", "failed", "canceled"):
-                elapsed = time.perf_counter() - started
+                seen = time.perf_counter() - posted
                 break
-            if time.perf_counter() - started > timeout:
+            if time.perf_counter() - posted > timeout:
                 raise SystemExit(f"submission {doc['id']} still {doc['state']} after {timeout} s")
             time.sleep(pause)
-            # Poll every 5 ms for the first two seconds (the timing's resolution), then back off.
-            if time.perf_counter() - started > 2.0:
-                pause = min(pause * 1.5, 0.25)
+            if time.perf_counter() - posted > 5.0:
+                pause = min(pause * 1.5, 0.5)
         if doc["state"] != "succeeded":
             raise SystemExit(f"submission {doc['id']} ended {doc['state']}: {doc.get('error')}")
-        return doc, elapsed
+        finished = datetime.fromisoformat(doc["finished_at"].replace("Z", "+00:00")).timestamp()
+        return doc, Timing(finished - posted_wall, seen)
 
     def folds(self, submission_id: str) -> list[dict[str, Any]]:
         status, doc = embedded.request_json(f"{self.base_url}/v1/submissions/{submission_id}/folds",
@@ -189,6 +199,14 @@ class Service:
 
 
 Splits = list[tuple[np.ndarray, np.ndarray]]
+
+
+@dataclass(frozen=True)
+class Timing:
+    """One submission's POST -> succeeded: as the service recorded it, and as the polling client saw it."""
+
+    recorded: float
+    seen: float
 
 
 def same_plan(frame: pd.DataFrame, folds: list[dict[str, Any]]) -> tuple[np.ndarray, np.ndarray, Splits]:
@@ -212,6 +230,7 @@ class SizeResult:
     dev_rows: int
     register_seconds: float
     service_seconds: list[float]
+    seen_seconds: list[float]
     cv_seconds: dict[int, list[float]]
     max_score_gap: float
     peak: PeakMemory | None
@@ -225,6 +244,7 @@ def bench_size(service: Service, frame: pd.DataFrame, import_root: Path, runs: i
     dataset, register_seconds = service.register(path, f"bench {n} x {N_FEATURES}")
     peak = PeakMemory(worker_pids) if watch_memory else None
     service_seconds: list[float] = []
+    seen_seconds: list[float] = []
     docs = []
     for run in range(runs):
         if run:
@@ -233,12 +253,14 @@ def bench_size(service: Service, frame: pd.DataFrame, import_root: Path, runs: i
             dataset, _ = service.register(path, f"bench {n} x {N_FEATURES} run {run + 1}")
         if peak is not None:
             with peak.watching():
-                doc, seconds = service.run_submission(dataset["id"], f"bench run {run}")
+                doc, timing = service.run_submission(dataset["id"], f"bench run {run}")
         else:
-            doc, seconds = service.run_submission(dataset["id"], f"bench run {run}")
-        service_seconds.append(seconds)
+            doc, timing = service.run_submission(dataset["id"], f"bench run {run}")
+        service_seconds.append(timing.recorded)
+        seen_seconds.append(timing.seen)
         docs.append(doc)
-        print(f"  {n:>9,} rows  run {run + 1}/{runs}: POST -> succeeded {seconds:7.3f} s", flush=True)
+        print(f"  {n:>9,} rows  run {run + 1}/{runs}: POST -> succeeded {timing.recorded:7.3f} s "
+              f"(seen by the polling client after {timing.seen:.3f} s)", flush=True)
 
     x_dev, y_dev, splits = same_plan(frame, service.folds(docs[0]["id"]))
     cv_seconds: dict[int, list[float]] = {1: [], 2: []}
@@ -252,7 +274,7 @@ def bench_size(service: Service, frame: pd.DataFrame, import_root: Path, runs: i
     # The same folds must give the same scores, or the comparison is not like for like.
     by_fold = {f["fold"]: f["scores"] for f in docs[0]["result"]["cv"]["folds"]}
     gap = max(abs(by_fold[i][m] - SIGN[m] * reference[f"test_{m}"][i]) for i in range(FOLDS) for m in SCORERS)
-    return SizeResult(n, len(y_dev), register_seconds, service_seconds, cv_seconds, gap, peak)
+    return SizeResult(n, len(y_dev), register_seconds, service_seconds, seen_seconds, cv_seconds, gap, peak)
 
 
 def _mib(kib: int) -> str:
@@ -271,11 +293,14 @@ def report(results: list[SizeResult]) -> None:
         cv1, cv2 = statistics.median(r.cv_seconds[1]), statistics.median(r.cv_seconds[2])
         print(f"{r.rows:>10,} {r.dev_rows:>10,} {r.register_seconds:>8.2f}s {svc:>8.3f}s {cv1:>11.3f}s "
               f"{cv2:>11.3f}s {svc / cv1:>11.2f}x {svc / cv2:>11.2f}x {svc / min(cv1, cv2):>12.2f}x")
-    print("(times are medians over the runs; register = POST /v1/datasets by path, not compared)")
+    print("(times are medians over the runs; service = POST -> the finished_at the service recorded; "
+          "register = POST /v1/datasets by path, not compared)")
     for r in results:
         runs = ", ".join(f"{s:.3f}" for s in r.service_seconds)
-        print(f"{r.rows:>10,} rows: service POST->succeeded runs [{runs}] s; "
-              f"largest fold-score difference from cross_validate {r.max_score_gap:.2e}")
+        seen = ", ".join(f"{s:.3f}" for s in r.seen_seconds)
+        print(f"{r.rows:>10,} rows: service POST->succeeded runs [{runs}] s (seen by a client polling every "
+              f"{POLL_SECONDS * 1000:.0f} ms: [{seen}] s); largest fold-score difference from cross_validate "
+              f"{r.max_score_gap:.2e}")
         if r.rows <= 1_000:
             verdict = "meets" if statistics.median(r.service_seconds) < 0.3 else "MISSES"
             print(f"{'':>16}median {statistics.median(r.service_seconds):.3f} s {verdict} the < 0.3 s target")
