@@ -10,6 +10,7 @@ column, whose numeric target is read from the memory map.
 
 from __future__ import annotations
 
+import logging
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -19,8 +20,19 @@ import pandas as pd
 
 from service.settings import Settings
 from service.vault import store
-from service.vault.folds import FoldPlan, Split, fold_split, split_keys_from_frame
+from service.vault.folds import (
+    FoldPlan,
+    Split,
+    check_cell,
+    check_repeats,
+    check_split_request,
+    fold_assignment,
+    split_keys_from_frame,
+    split_of,
+)
 from worker.pipeline import uses_frame
+
+log = logging.getLogger(__name__)
 
 
 def column_kinds(dataset: Mapping[str, Any]) -> dict[str, str]:
@@ -139,11 +151,29 @@ def column_selector(positions: Sequence[int]) -> slice | np.ndarray:
 
 
 def split_for(
-    dataset: Mapping[str, Any], validation: Mapping[str, Any], key_frame: pd.DataFrame, repeat: int, fold: int
+    settings: Settings, dataset: Mapping[str, Any], validation: Mapping[str, Any], key_frame: pd.DataFrame,
+    repeat: int, fold: int,
 ) -> Split:
-    """Return the one (repeat, fold) split of the configuration, as the vault's fold plan defines it."""
+    """Return the one (repeat, fold) split of the configuration, as the vault's fold plan defines it.
+
+    The plan's fold of every row is computed once per dataset and repeat and cached beside the
+    development files: every fold job of every submission on the dataset cuts its split from the
+    same assignment (at a million rows, computing it costs a fold job ~30 ms; reading it ~1 ms).
+    The result equals ``fold_split`` on the same rows (a test checks).
+    """
     plan = fold_plan(validation)
-    keys = split_keys_from_frame(
-        key_frame, plan, dataset["target"], dataset.get("group_column"), dataset.get("time_column")
-    )
-    return fold_split(plan, keys, repeat, fold, int(validation.get("repeats", 1)))
+    repeats = int(validation.get("repeats", 1))
+    check_repeats(plan, repeats)
+    check_cell(plan, repeats, repeat, fold)
+    assignment = store.load_fold_assignment(settings, str(dataset["id"]), plan, repeat, len(key_frame))
+    if assignment is None:
+        keys = split_keys_from_frame(
+            key_frame, plan, dataset["target"], dataset.get("group_column"), dataset.get("time_column")
+        )
+        check_split_request(plan, keys, repeats)
+        assignment = fold_assignment(plan, keys, repeat)
+        try:
+            store.save_fold_assignment(settings, str(dataset["id"]), plan, repeat, assignment)
+        except OSError as exc:  # a read-only data volume: every job computes its own, as before
+            log.warning("could not cache the fold assignment of %s: %s", dataset["id"], exc)
+    return split_of(plan, assignment, repeat, fold)

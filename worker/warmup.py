@@ -105,7 +105,7 @@ def _warm_jobs(settings: Settings) -> None:
         rows = []
         for model_doc in models:
             data, keys = load_development(settings, dataset, model_doc["features"])
-            split = split_for(dataset, validation, keys, 0, 0)
+            split = split_for(settings, dataset, validation, keys, 0, 0)
             entry = catalog.estimator(model_doc["estimator"])
             pipeline = build_pipeline(model_doc, column_kinds(dataset), catalog)
             fields = evaluate_fold(pipeline, data, split, task, metrics, linear=bool(entry and entry.linear),

@@ -173,14 +173,18 @@ def fold_split(plan: FoldPlan, keys: SplitKeys, repeat: int, fold: int, repeats:
     than the fold's model fit.
     """
     check_split_request(plan, keys, repeats)
-    if not (0 <= repeat < repeats and 0 <= fold < plan.folds):
-        raise _invalid("/validation", f"no fold (repeat {repeat}, fold {fold}) in a plan of {repeats} repeat(s) "
-                                      f"x {plan.folds} folds")
+    check_cell(plan, repeats, repeat, fold)
     return split_of(plan, fold_assignment(plan, keys, repeat), repeat, fold)
 
 
 def check_split_request(plan: FoldPlan, keys: SplitKeys, repeats: int) -> None:
     """Raise InputError/DatasetRejected unless ``repeats`` of ``plan`` can be cut from these rows."""
+    check_repeats(plan, repeats)
+    check_plan_feasible(plan, keys)
+
+
+def check_repeats(plan: FoldPlan, repeats: int) -> None:
+    """Raise InputError unless ``plan`` can be repeated ``repeats`` times (the rows aside)."""
     if isinstance(repeats, bool) or not isinstance(repeats, int) or repeats < 1:
         raise _invalid("/validation/repeats", f"repeats must be a positive integer, got {repeats!r}")
     if plan.scheme in SEEDLESS_SCHEMES and repeats != 1:
@@ -190,7 +194,13 @@ def check_split_request(plan: FoldPlan, keys: SplitKeys, repeats: int) -> None:
         )
     if plan.seed + repeats - 1 > MAX_SEED:
         raise _invalid("/validation/repeats", f"seed {plan.seed} + {repeats} repeats exceeds {MAX_SEED}")
-    check_plan_feasible(plan, keys)
+
+
+def check_cell(plan: FoldPlan, repeats: int, repeat: int, fold: int) -> None:
+    """Raise InputError unless (repeat, fold) is one of the plan's cells."""
+    if not (0 <= repeat < repeats and 0 <= fold < plan.folds):
+        raise _invalid("/validation", f"no fold (repeat {repeat}, fold {fold}) in a plan of {repeats} repeat(s) "
+                                      f"x {plan.folds} folds")
 
 
 def fold_assignment(plan: FoldPlan, keys: SplitKeys, repeat: int = 0) -> np.ndarray:
@@ -211,7 +221,7 @@ def split_of(plan: FoldPlan, assignment: np.ndarray, repeat: int, fold: int) -> 
         train, test = np.flatnonzero(assignment <= fold), np.flatnonzero(assignment == fold + 1)
     else:
         train, test = np.flatnonzero(assignment != fold), np.flatnonzero(assignment == fold)
-    return Split(repeat, fold, train.astype(np.int64), test.astype(np.int64))
+    return Split(repeat, fold, train.astype(np.int64, copy=False), test.astype(np.int64, copy=False))
 
 
 def _test_fold_of_rows(scheme: str, folds: int, seed: int, keys: SplitKeys) -> np.ndarray:

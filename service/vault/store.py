@@ -4,6 +4,8 @@ Layout (``settings.data_dir``):
     datasets/<ds_id>/development.parquet  development rows, ``row_id`` first, then the original columns
     datasets/<ds_id>/numeric.npy          float64 C-order matrix of the numeric columns, for mmap
     datasets/<ds_id>/manifest.json        column kinds, numeric column names, target, task
+    datasets/<ds_id>/folds/<scheme>-<k>-<seed>.npy  a fold plan's fold of every row (int8), cached
+                                          by the first job that computes it
     sealed/<ds_id>/holdout.parquet        holdout rows; directories 0700, file 0600
 
 Both directories are first written under a temporary name beside their final place and then
@@ -32,6 +34,7 @@ import pyarrow.parquet as pq
 from service.errors import Conflict, FieldProblem, InputError, NotFound, SealBroken
 from service.settings import Settings
 from service.vault.fingerprint import fingerprint_frame
+from service.vault.folds import FoldPlan
 
 ROW_ID = "row_id"
 _SAFE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_-]{0,79}$")
@@ -147,6 +150,47 @@ def load_numeric(settings: Settings, ds_id: str) -> tuple[np.memmap[Any, Any], l
     manifest = json.loads(paths.manifest.read_text(encoding="utf-8"))
     matrix = np.load(paths.numeric, mmap_mode="r")
     return matrix, list(manifest["numeric_columns"])
+
+
+def fold_assignment_path(settings: Settings, ds_id: str, plan: FoldPlan, repeat: int) -> Path:
+    """Return where the fold assignment of ``plan``'s repeat ``repeat`` (seed + repeat) is cached."""
+    return dataset_paths(settings, ds_id).root / "folds" / f"{plan.scheme}-{plan.folds}-{plan.seed + repeat}.npy"
+
+
+def load_fold_assignment(
+    settings: Settings, ds_id: str, plan: FoldPlan, repeat: int, n_rows: int
+) -> np.ndarray | None:
+    """Return the cached fold of every development row, or None when there is no usable cache.
+
+    A file of the wrong type, length or fold range is ignored (and recomputed by the caller), so a
+    damaged cache can cost time but never change a fold.
+    """
+    path = fold_assignment_path(settings, ds_id, plan, repeat)
+    try:
+        assignment = np.load(path, allow_pickle=False)
+    except (OSError, ValueError):
+        return None
+    highest = plan.folds if plan.scheme == "time" else plan.folds - 1  # time chunk 0 is train-only
+    if assignment.dtype != np.int8 or assignment.shape != (n_rows,):
+        return None
+    if n_rows and not (int(assignment.min()) >= 0 and int(assignment.max()) <= highest):
+        return None
+    return np.asarray(assignment, dtype=np.int64)
+
+
+def save_fold_assignment(settings: Settings, ds_id: str, plan: FoldPlan, repeat: int, assignment: np.ndarray) -> None:
+    """Cache a fold assignment (write to a temporary name, then rename: readers see all or nothing)."""
+    path = fold_assignment_path(settings, ds_id, plan, repeat)
+    path.parent.mkdir(exist_ok=True)
+    handle, temporary = tempfile.mkstemp(prefix=".", suffix=".npy", dir=path.parent)
+    try:
+        with os.fdopen(handle, "wb") as out:
+            np.save(out, np.asarray(assignment, dtype=np.int8), allow_pickle=False)
+        os.chmod(temporary, 0o644)
+        os.replace(temporary, path)
+    except BaseException:
+        Path(temporary).unlink(missing_ok=True)
+        raise
 
 
 def iter_development_csv(settings: Settings, ds_id: str, chunk_rows: int = 50_000) -> Iterator[str]:
