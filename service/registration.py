@@ -40,8 +40,10 @@ from service.vault.fingerprint import fingerprint_frame
 from service.vault.folds import (
     FOLD_SCHEMES,
     FoldPlan,
+    SplitKeys,
     check_plan_feasible,
     default_plan_scheme,
+    fold_assignment,
     plan_problems,
     split_keys_from_frame,
 )
@@ -76,6 +78,7 @@ class _Sealed:
     seed: int
     plan: FoldPlan
     balance: dict[str, Any]
+    keys: SplitKeys
 
 
 def register_dataset(
@@ -131,6 +134,8 @@ def register_dataset(
     }
     try:
         store.write_dataset(settings, ds_id, sealed.development, sealed.holdout, manifest)
+        # The plan's folds, cached for the fold jobs (each would otherwise compute them again).
+        store.save_fold_assignment(settings, ds_id, sealed.plan, 0, fold_assignment(sealed.plan, sealed.keys, 0))
         # Open the seal once now, as the holdout job will: a file that does not read back to its
         # fingerprint must fail here, not after the first submission has been scored.
         store.open_sealed_holdout(settings, ds_id, holdout_fingerprint)
@@ -327,7 +332,7 @@ def _seal(frame: pd.DataFrame, declaration: DatasetDeclaration, scheme: str, fra
     keys = split_keys_from_frame(development, plan, target, declaration.group_column, declaration.time_column)
     check_plan_feasible(plan, keys)
     development.insert(0, store.ROW_ID, _row_ids(development, declaration.id_column))
-    return _Sealed(development, holdout, scheme, float(fraction), seed, plan, balance_document)
+    return _Sealed(development, holdout, scheme, float(fraction), seed, plan, balance_document, keys)
 
 
 def _draw_balanced(

@@ -155,8 +155,11 @@ def test_breast_cancer_parquet_is_stratified_and_its_folds_are_sklearns(
     y = development["target"].to_numpy()
     # Reference: StratifiedKFold(shuffle=True, random_state=plan seed) on the development rows.
     reference = StratifiedKFold(5, shuffle=True, random_state=plan.seed).split(np.zeros((len(y), 1)), y)
+    cached = store.load_fold_assignment(settings, record["id"], plan, 0, len(development))
+    assert cached is not None  # registration caches the plan's folds for the fold jobs
     for split, (train, test) in zip(splits, reference, strict=True):
         assert np.array_equal(split.train, train) and np.array_equal(split.test, test)
+        assert np.array_equal(np.flatnonzero(cached == split.fold), test)
 
 
 def test_the_same_table_as_csv_or_parquet_has_one_fingerprint(
