@@ -5,7 +5,7 @@ Layout (``settings.data_dir``):
     datasets/<ds_id>/numeric.npy          float64 C-order matrix of the numeric columns, for mmap
     datasets/<ds_id>/manifest.json        column kinds, numeric column names, target, task
     datasets/<ds_id>/folds/<scheme>-<k>-<seed>.npy  a fold plan's fold of every row (int8), cached
-                                          by the first job that computes it
+                                          at registration or by the first job that computes it
     sealed/<ds_id>/holdout.parquet        holdout rows; directories 0700, file 0600
 
 Both directories are first written under a temporary name beside their final place and then
@@ -175,7 +175,7 @@ def load_fold_assignment(
         return None
     if n_rows and not (int(assignment.min()) >= 0 and int(assignment.max()) <= highest):
         return None
-    return np.asarray(assignment, dtype=np.int64)
+    return assignment
 
 
 def save_fold_assignment(settings: Settings, ds_id: str, plan: FoldPlan, repeat: int, assignment: np.ndarray) -> None:
