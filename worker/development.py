@@ -24,8 +24,8 @@ from service.vault.folds import (
     FoldPlan,
     Split,
     check_cell,
+    check_plan_feasible,
     check_repeats,
-    check_split_request,
     fold_assignment,
     split_keys_from_frame,
     split_of,
@@ -170,7 +170,7 @@ def split_for(
         keys = split_keys_from_frame(
             key_frame, plan, dataset["target"], dataset.get("group_column"), dataset.get("time_column")
         )
-        check_split_request(plan, keys, repeats)
+        check_plan_feasible(plan, keys)  # repeats and cell were checked above
         assignment = fold_assignment(plan, keys, repeat)
         try:
             store.save_fold_assignment(settings, str(dataset["id"]), plan, repeat, assignment)

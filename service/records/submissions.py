@@ -182,7 +182,7 @@ def store_holdout_once(
 
 
 def get_holdout(engine: Engine, sub_id: str) -> dict[str, Any] | None:
-    """Return the stored holdout score row of a submission, or None."""
+    """Return the stored holdout outcome of a submission (scores, or the error of a failed attempt), or None."""
     with engine.connect() as conn:
         row = conn.execute(
             select(holdout_scores).where(holdout_scores.c.submission_id == sub_id)
