@@ -8,15 +8,16 @@ per piece of work.
 
 Chain per submission::
 
-    fold jobs (one per repeat x fold) --allow_failure--> summary (fan-in) --+
-    holdout (refit on every development row, score the seal exactly once) --+--> verdict
+    holdout (refit on every development row, score the seal exactly once) --+
+    fold jobs (one per repeat x fold) --allow_failure--> summary (fan-in) --+--> verdict
         (release the holdout figure, judge, mark succeeded)
 
-The holdout job is queued behind the folds but depends on none of them, so it runs beside the last
-fold round instead of after it: the refit on every development row does not need the folds'
-results. What it computes stays in the records DB; the verdict job, which waits for both the
-summary and the holdout job, is the only one that releases a figure, so nothing about the holdout
-leaves the service before the cross-validation summary exists.
+The holdout job depends on none of the folds (the refit on every development row does not need
+their results), so it is queued first: it is the longest job of the chain, and a longest-first
+order leaves the shortest jobs for the end, where they fill the workers evenly. What it computes
+stays in the records DB; the verdict job, which waits for both the summary and the holdout job, is
+the only one that releases a figure, so nothing about the holdout leaves the service before the
+cross-validation summary exists.
 """
 
 from __future__ import annotations
@@ -82,8 +83,8 @@ def enqueue_submission(redis: Redis, settings: Settings, sub_id: str, validation
     """Enqueue the whole job chain of a new submission."""
     try:
         queue = work_queue(redis, settings)
-        fold_ids = [_enqueue_fold(queue, settings, sub_id, r, f) for r, f in fold_cells(validation)]
         _enqueue_holdout(queue, settings, sub_id)
+        fold_ids = [_enqueue_fold(queue, settings, sub_id, r, f) for r, f in fold_cells(validation)]
         _enqueue_summary(queue, settings, sub_id, fold_ids)
         _enqueue_verdict(queue, sub_id, [summary_job_id(sub_id), holdout_job_id(sub_id)])
     except RedisError as exc:
@@ -173,6 +174,10 @@ def _reconcile_one(engine: Engine, live: set[str], queue: Queue, settings: Setti
     sub_id = sub["id"]
     done = {(row["repeat"], row["fold"]) for row in submissions.fold_rows(engine, sub_id)}
     enqueued = 0
+    scored = submissions.get_holdout(engine, sub_id) is not None
+    if not scored and holdout_job_id(sub_id) not in live:  # first, as enqueue_submission puts it
+        _enqueue_holdout(queue, settings, sub_id)
+        enqueued += 1
     live_folds: list[str] = []
     for r, f in fold_cells(sub["config"]["validation"]):
         job_id = fold_job_id(sub_id, r, f)
@@ -183,7 +188,6 @@ def _reconcile_one(engine: Engine, live: set[str], queue: Queue, settings: Setti
         elif sub["result"] is None:
             live_folds.append(_enqueue_fold(queue, settings, sub_id, r, f))
             enqueued += 1
-    scored = submissions.get_holdout(engine, sub_id) is not None
     waits_for: list[str] = []
     if sub["result"] is None:
         if summary_job_id(sub_id) not in live:
@@ -191,9 +195,6 @@ def _reconcile_one(engine: Engine, live: set[str], queue: Queue, settings: Setti
             enqueued += 1
         waits_for.append(summary_job_id(sub_id))
     if not scored:
-        if holdout_job_id(sub_id) not in live:
-            _enqueue_holdout(queue, settings, sub_id)
-            enqueued += 1
         waits_for.append(holdout_job_id(sub_id))
     if verdict_job_id(sub_id) not in live:  # a live submission always ends with its verdict job
         _enqueue_verdict(queue, sub_id, waits_for)

@@ -64,15 +64,15 @@ def test_submit_answers_202_with_location_and_the_document(
     assert worker_says_ok[0]["model"]["estimator"] == "Ridge" and worker_says_ok[0]["metrics"] == ["rmse", "r2"]
     queue = Queue(api.settings.queue_name, connection=api.app.extensions["sealfold"].redis,
                   serializer=JSONSerializer)
-    # The folds first, then the holdout job, which needs nothing from them and runs beside the last
-    # fold round; the summary and the verdict wait (deferred) for what they read.
-    assert queue.job_ids == [*(dispatch.fold_job_id(doc["id"], 0, f) for f in range(5)),
-                             dispatch.holdout_job_id(doc["id"])]
+    # The holdout job first (it needs nothing from the folds and is the longest job), then the
+    # folds; the summary and the verdict wait (deferred) for what they read.
+    assert queue.job_ids == [dispatch.holdout_job_id(doc["id"]),
+                             *(dispatch.fold_job_id(doc["id"], 0, f) for f in range(5))]
     jobs = {j.id: j for j in Job.fetch_many([dispatch.holdout_job_id(doc["id"]), dispatch.summary_job_id(doc["id"]),
                                              dispatch.verdict_job_id(doc["id"])], connection=queue.connection,
                                             serializer=JSONSerializer) if j is not None}
     assert jobs[dispatch.holdout_job_id(doc["id"])].dependency_ids == []
-    assert sorted(jobs[dispatch.summary_job_id(doc["id"])].dependency_ids) == sorted(queue.job_ids[:5])
+    assert sorted(jobs[dispatch.summary_job_id(doc["id"])].dependency_ids) == sorted(queue.job_ids[1:])
     assert sorted(jobs[dispatch.verdict_job_id(doc["id"])].dependency_ids) == [dispatch.holdout_job_id(doc["id"]),
                                                                                dispatch.summary_job_id(doc["id"])]
     assert api.get("submitter", reply.headers["Location"]).get_json() == doc
