@@ -108,7 +108,7 @@ def test_checks_summaries_and_verdicts_run_in_the_worker_process_and_every_other
     settings = dataclasses.replace(ctx.settings, queue_name=f"inproc-{uuid.uuid4().hex[:8]}")
     redis = Redis.from_url(redis_url)
     forked: list[str | None] = []
-    # RQ's forking execute_job, which SealfoldWorker defers to for every job but a check.
+    # RQ's forking execute_job, which SealfoldWorker defers to for every job worker.placement forks.
     monkeypatch.setattr(Worker, "execute_job", lambda _self, job, _queue: forked.append(job.func_name))
     monkeypatch.setattr(main, "reconcile_once", lambda _redis: 0)  # keep the shared Redis's lock untouched
     check = Queue(settings.check_queue_name, connection=redis, serializer=JSONSerializer).enqueue_call(
@@ -125,7 +125,8 @@ def test_checks_summaries_and_verdicts_run_in_the_worker_process_and_every_other
     finally:
         for number, handler in handlers.items():
             signal.signal(number, handler)
-    # The holdout job opens the seal and fits: always a horse. A refused name is never run in-process.
+    # The holdout job opens the seal and fits: always a horse. A fold job whose submission cannot be
+    # read goes to a horse too (which reports it). A refused name is never run in-process.
     assert forked == ["worker.jobs.run_fold", "worker.jobs.score_holdout", "os.system"]
     done = Job.fetch(check.id, connection=redis, serializer=JSONSerializer)
     assert done.get_status() == JobStatus.FINISHED

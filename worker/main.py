@@ -1,4 +1,7 @@
-"""Run a sealfold worker: preload scikit-learn, then let RQ fork one work horse per job.
+"""Run a sealfold worker: preload scikit-learn, then run each job here or in a forked work horse.
+
+Where a job runs is ``worker.placement``'s choice: short jobs in this process, fits on bigger tables
+and the holdout job in a horse RQ forks for the one job.
 
 The worker only runs the functions in ``worker.jobs.ALLOWED_JOBS`` and deserialises jobs as JSON,
 so nothing in Redis can make it import or unpickle anything else. Heartbeats every ~10 s and
@@ -11,11 +14,14 @@ from __future__ import annotations
 
 import importlib
 import logging
-from collections.abc import Callable
+import threading
+from collections.abc import Callable, Iterator
+from contextlib import AbstractContextManager, contextmanager
 from typing import Any
 
 from redis import Redis
 from rq.exceptions import DeserializationError
+from rq.executions import Execution
 from rq.job import Job
 from rq.queue import Queue
 from rq.serializers import JSONSerializer
@@ -26,8 +32,8 @@ from service import dispatch
 from service.catalog import load_catalog
 from service.records.engine import make_engine
 from service.settings import Settings
-from worker import runtime
-from worker.jobs import ALLOWED_JOBS, check_config, judge, summarize
+from worker import placement, runtime
+from worker.jobs import ALLOWED_JOBS
 from worker.warmup import warm_up
 
 log = logging.getLogger(__name__)
@@ -37,10 +43,6 @@ MAINTENANCE_INTERVAL = 30
 RECONCILE_LOCK = "sealfold:reconcile-lock"
 # Callbacks a job may name; sealfold's own jobs use none, so any name is refused.
 ALLOWED_CALLBACKS: frozenset[str] = frozenset()
-# Jobs run in the worker's own process instead of a forked work horse (see execute_job).
-IN_PROCESS_JOBS: frozenset[str] = frozenset(
-    f"{job.__module__}.{job.__name__}" for job in (check_config, summarize, judge)
-)
 
 
 class RefusedJob(Exception):
@@ -48,7 +50,19 @@ class RefusedJob(Exception):
 
 
 class AllowListedJob(Job):
-    """An RQ job that resolves only allow-listed function names, never an instance method."""
+    """An RQ job that resolves only allow-listed function names, never an instance method.
+
+    ``keepalive``, set by the worker for a job it runs in its own process, wraps the job function's
+    run (``perform``) and nothing after it.
+    """
+
+    keepalive: Callable[[], AbstractContextManager[None]] | None = None
+
+    def perform(self) -> Any:
+        if self.keepalive is None:
+            return super().perform()
+        with self.keepalive():
+            return super().perform()
 
     @property
     def func(self) -> Callable[..., Any]:
@@ -100,34 +114,51 @@ class SealfoldWorker(Worker):
         super().main_work_horse(job, queue)
 
     def execute_job(self, job: Job, queue: Queue) -> None:
-        """Run configuration checks, summaries and verdicts in this process; fork a horse for the rest.
+        """Run the job in this process when ``worker.placement`` says so; fork a horse for the rest.
 
-        A fork, and the horse's first touch of the inherited heap (thousands of copied pages),
-        costs more than any of these jobs: a POST waits for its check, and every submission waits
-        for its summary and its verdict after the last fold. They are safe without a horse because
-        they read no rows and fit nothing: the check is parameter validation (one dataset row
-        read, estimators instantiated from the catalog and validated by scikit-learn), the summary
-        is arithmetic on the fold scores stored in the records DB, and the verdict is statistics
-        on stored figures (fold scores, the stored holdout score and its per-example losses).
-        None keeps anything: every object they make is dropped when they return, the catalog is
-        read-only, and their DB connection goes back to this process's pool -- which the
-        maintenance reconciler uses already, and which each horse replaces on fork
-        (``runtime.after_fork``). RQ's timeout
-        still applies, as in SimpleWorker. Fitting, and anything that opens the development or
-        sealed rows, always runs in a horse. The choice is by the allow-listed function name
-        alone, so no other job can run in-process; a job whose data does not even decode goes
-        to a horse, which fails it as before.
+        An in-process job keeps its heartbeat going from a thread (``heartbeats_while``), as a
+        forking worker does while it waits for its horse, so a killed worker's job is declared
+        abandoned and retried the same way whichever process ran it.
         """
         try:
-            in_process = job.func_name in IN_PROCESS_JOBS
+            in_process = placement.runs_in_process(runtime.current(), job.func_name, job.args)
         except DeserializationError:
+            in_process = False
+        except Exception:  # the records DB unreadable, say: a horse runs the job and reports it
+            log.warning("could not place job %s; running it in a work horse", job.id, exc_info=True)
             in_process = False
         if not in_process:
             super().execute_job(job, queue)
             return
         execution = self.prepare_execution(job)
+        if isinstance(job, AllowListedJob):
+            job.keepalive = lambda: self.heartbeats_while(job, execution)
         self.perform_job(job, queue, execution)
         self.set_state(WorkerStatus.IDLE)
+
+    @contextmanager
+    def heartbeats_while(self, job: Job, execution: Execution) -> Iterator[None]:
+        """Send the heartbeats of a job running in this process every monitoring interval.
+
+        The thread stops before the job's outcome is written (it wraps only the job function), so
+        a late heartbeat never brings a finished job back into the started registry.
+        """
+        stop = threading.Event()
+
+        def beat() -> None:
+            while not stop.wait(self.job_monitoring_interval):
+                try:
+                    self.maintain_heartbeats(job, execution)
+                except Exception:  # a missed beat is retried at the next interval
+                    log.warning("heartbeat of job %s failed", job.id, exc_info=True)
+
+        thread = threading.Thread(target=beat, name=f"heartbeat-{job.id}", daemon=True)
+        thread.start()
+        try:
+            yield
+        finally:
+            stop.set()
+            thread.join()
 
     def run_maintenance_tasks(self) -> None:
         super().run_maintenance_tasks()
