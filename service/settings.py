@@ -25,7 +25,6 @@ _ENV_NAMES: dict[str, str] = {
     "fold_timeout_seconds": "SEALFOLD_FOLD_TIMEOUT",
     "check_timeout_seconds": "SEALFOLD_CHECK_TIMEOUT",
     "min_rows": "SEALFOLD_MIN_ROWS",
-    "inline_fold_cells": "SEALFOLD_INLINE_FOLD_CELLS",
     "log_level": "SEALFOLD_LOG_LEVEL",
 }
 
@@ -43,9 +42,6 @@ class Settings:
     fold_timeout_seconds: int = 3600
     check_timeout_seconds: float = 10.0
     min_rows: int = 50
-    # Fold jobs on at most this many development cells (rows x features) run in the worker's own
-    # process instead of a forked work horse (worker.placement); 0 forks every fold job.
-    inline_fold_cells: int = 100_000
     log_level: str = "INFO"
     extra: Mapping[str, Any] = field(default_factory=dict)
 
@@ -56,8 +52,6 @@ class Settings:
             raise SettingsError(f"fold_timeout_seconds must be positive, got {self.fold_timeout_seconds}")
         if self.min_rows < 10:
             raise SettingsError(f"min_rows must be at least 10, got {self.min_rows}")
-        if self.inline_fold_cells < 0:
-            raise SettingsError(f"inline_fold_cells must be 0 (always fork) or more, got {self.inline_fold_cells}")
 
     @property
     def effective_database_url(self) -> str:

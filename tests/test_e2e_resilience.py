@@ -19,15 +19,9 @@ from tests.support.servers import redis_server, start_worker
 
 
 @pytest.fixture
-def lonely_stack(tmp_path: Path, request: pytest.FixtureRequest) -> Iterator[Stack]:
-    """A stack of its own (own redis-server, one worker), so flushing Redis disturbs no other test.
-
-    Indirect parameter: "in-process" (the default placement, which fits these small tables' folds in
-    the worker's own process) or "forked" (every fold job in a work horse: SEALFOLD_INLINE_FOLD_CELLS=0).
-    """
-    worker_env = {"SEALFOLD_INLINE_FOLD_CELLS": "0"} if getattr(request, "param", "") == "forked" else {}
-    with redis_server(tmp_path) as url, running_stack(tmp_path / "data", url, "lonely", workers=1,
-                                                      worker_env=worker_env) as live:
+def lonely_stack(tmp_path: Path) -> Iterator[Stack]:
+    """A stack of its own (own redis-server, one worker), so flushing Redis disturbs no other test."""
+    with redis_server(tmp_path) as url, running_stack(tmp_path / "data", url, "lonely", workers=1) as live:
         yield live
 
 
@@ -61,7 +55,6 @@ def test_work_survives_a_killed_worker_and_a_flushed_redis(lonely_stack: Stack) 
     print(f"recovered after worker loss and Redis flush in {recovered_in:.1f} s")
 
 
-@pytest.mark.parametrize("lonely_stack", ["in-process", "forked"], indirect=True)
 def test_the_job_of_a_killed_worker_is_retried_within_two_minutes(lonely_stack: Stack) -> None:
     # Without a Redis flush the job stays "started" in Redis; RQ's registry clean-up declares it
     # abandoned once its heartbeat lapses and retries it (retries are set on every sealfold job).
@@ -86,7 +79,7 @@ def test_the_job_of_a_killed_worker_is_retried_within_two_minutes(lonely_stack: 
         assert time.monotonic() < deadline, "no fold job started"
         time.sleep(0.02)
     victim = stack.workers[0]
-    os.killpg(victim.pid, signal.SIGKILL)  # the worker (and its work horse, if the fold has one), mid-fold
+    os.killpg(victim.pid, signal.SIGKILL)  # the worker and its fold process, mid-fold
     victim.wait(timeout=10)
     killed_job = in_flight[0]
     assert stack.client().get(f"/v1/submissions/{sub_id}").json()["progress"]["folds_done"] < 5
@@ -98,3 +91,41 @@ def test_the_job_of_a_killed_worker_is_retried_within_two_minutes(lonely_stack: 
     assert doc["state"] == "succeeded", doc
     assert doc["progress"]["folds_done"] == 5
     print(f"{killed_job} was abandoned by a killed worker; the submission finished {recovered_in:.1f} s later")
+
+
+def _children(pid: int) -> set[int]:
+    return {int(c) for c in Path(f"/proc/{pid}/task/{pid}/children").read_text().split()}
+
+
+def test_a_crashed_fold_process_fails_only_its_job_which_is_retried_at_once(lonely_stack: Stack) -> None:
+    # The worker's fold process runs every fold; when it dies mid-fold (a segfault, the OOM killer),
+    # the worker lives on, RQ retries the job and a new fold process runs it.
+    from rq import Queue
+    from rq.registry import StartedJobRegistry
+
+    stack = lonely_stack
+    worker = stack.workers[0]
+    (fold_process,) = _children(worker.pid)  # the only child of an idle worker
+    rng = np.random.default_rng(6)
+    x = rng.normal(size=(2000, 8))
+    frame = pd.DataFrame(x, columns=[f"x{i}" for i in range(8)])
+    frame["y"] = x @ rng.normal(size=8) + rng.normal(size=2000)
+    ds = register(stack.client("steward"), frame, name="crashed", target="y", task="regression")
+    reply = stack.client().post("/v1/submissions", json_body={
+        "dataset": ds["id"], "model": {"estimator": "GradientBoostingRegressor",
+                                       "params": {"n_estimators": 200, "max_depth": 4}}})
+    assert reply.status == 202, reply.text
+    sub_id = reply.json()["id"]
+    started_registry = StartedJobRegistry(queue=Queue(stack.settings.queue_name,
+                                                      connection=Redis.from_url(stack.settings.redis_url)))
+    deadline = time.monotonic() + 60
+    while not [j for j in started_registry.get_job_ids() if "-fold-" in j]:
+        assert time.monotonic() < deadline, "no fold job started"
+        time.sleep(0.02)
+    os.kill(fold_process, signal.SIGKILL)
+    started = time.monotonic()
+    doc = stack.wait_for(sub_id, timeout=60)  # no heartbeat to lapse: the retry is immediate
+    assert doc["state"] == "succeeded", doc
+    assert doc["progress"]["folds_done"] == 5
+    assert worker.poll() is None and fold_process not in _children(worker.pid)
+    print(f"the fold process was killed mid-fold; the submission finished {time.monotonic() - started:.1f} s later")

@@ -102,7 +102,7 @@ def test_real_worker_refuses_a_foreign_function(tmp_path: Path, redis_url: str) 
     assert answer["ok"] is False and answer["problems"][0]["pointer"] == "/dataset"
 
 
-def test_checks_summaries_and_verdicts_run_in_the_worker_process_and_every_other_job_forks(
+def test_checks_summaries_verdicts_and_folds_run_in_the_worker_process_and_every_other_job_forks(
     ctx: WorkerContext, redis_url: str, monkeypatch: pytest.MonkeyPatch  # noqa: F811
 ) -> None:
     settings = dataclasses.replace(ctx.settings, queue_name=f"inproc-{uuid.uuid4().hex[:8]}")
@@ -114,7 +114,7 @@ def test_checks_summaries_and_verdicts_run_in_the_worker_process_and_every_other
     check = Queue(settings.check_queue_name, connection=redis, serializer=JSONSerializer).enqueue_call(
         "worker.jobs.check_config", args=({"model": {"estimator": "Ridge", "features": []}}, "ds_nope"))
     work = Queue(settings.queue_name, connection=redis, serializer=JSONSerializer)
-    work.enqueue_call("worker.jobs.run_fold", args=("sub_nope", 0, 0))
+    fold = work.enqueue_call("worker.jobs.run_fold", args=("sub_nope", 0, 0))
     summary = work.enqueue_call("worker.jobs.summarize", args=("sub_nope",))
     work.enqueue_call("worker.jobs.score_holdout", args=("sub_nope",))
     verdict = work.enqueue_call("worker.jobs.judge", args=("sub_nope",))
@@ -125,16 +125,13 @@ def test_checks_summaries_and_verdicts_run_in_the_worker_process_and_every_other
     finally:
         for number, handler in handlers.items():
             signal.signal(number, handler)
-    # The holdout job opens the seal and fits: always a horse. A fold job whose submission cannot be
-    # read goes to a horse too (which reports it). A refused name is never run in-process.
-    assert forked == ["worker.jobs.run_fold", "worker.jobs.score_holdout", "os.system"]
+    # The holdout job opens the seal and fits: always a horse. A refused name is never run in-process.
+    assert forked == ["worker.jobs.score_holdout", "os.system"]
     done = Job.fetch(check.id, connection=redis, serializer=JSONSerializer)
     assert done.get_status() == JobStatus.FINISHED
     answer = done.return_value()
     assert answer is not None and answer["ok"] is False and answer["problems"][0]["pointer"] == "/dataset"
-    failed = Job.fetch(summary.id, connection=redis, serializer=JSONSerializer)  # ran here, and failed here
-    assert failed.get_status() == JobStatus.FAILED
-    assert "no submission 'sub_nope'" in (failed.latest_result().exc_string or "")  # type: ignore[union-attr]
-    judged = Job.fetch(verdict.id, connection=redis, serializer=JSONSerializer)  # ran here too
-    assert judged.get_status() == JobStatus.FAILED
-    assert "no submission 'sub_nope'" in (judged.latest_result().exc_string or "")  # type: ignore[union-attr]
+    for ran_here in (fold, summary, verdict):  # ran here, and failed here
+        failed = Job.fetch(ran_here.id, connection=redis, serializer=JSONSerializer)
+        assert failed.get_status() == JobStatus.FAILED
+        assert "no submission 'sub_nope'" in (failed.latest_result().exc_string or "")  # type: ignore[union-attr]

@@ -1,4 +1,4 @@
-"""Where jobs run: small fold jobs in the worker's own process, bigger ones and the holdout in a horse."""
+"""Where jobs run: checks, summaries, verdicts and folds in the worker's own process, the holdout in a horse."""
 
 from __future__ import annotations
 
@@ -20,6 +20,7 @@ from sklearn.datasets import load_diabetes
 from service.records import submissions
 from tests.worker_fixtures import add_dataset, add_submission, config_document, ctx  # noqa: F401
 from worker import main, placement, runtime
+from worker.fold import run_fold
 from worker.main import build_worker
 from worker.runtime import WorkerContext
 
@@ -35,48 +36,11 @@ def diabetes_submission(ctx: WorkerContext) -> tuple[str, dict[str, Any]]:  # no
     return add_submission(ctx, dataset, config), config
 
 
-def with_limit(ctx: WorkerContext, cells: int) -> WorkerContext:  # noqa: F811
-    return dataclasses.replace(ctx, settings=dataclasses.replace(ctx.settings, inline_fold_cells=cells))
-
-
-def test_checks_summaries_and_verdicts_always_run_here_and_the_holdout_never(ctx: WorkerContext) -> None:  # noqa: F811
-    for name in ("worker.jobs.check_config", "worker.jobs.summarize", "worker.jobs.judge"):
-        assert placement.runs_in_process(with_limit(ctx, 0), name, ["anything"])
-    for name in ("worker.jobs.score_holdout", "os.system", None):
-        assert not placement.runs_in_process(with_limit(ctx, 10**12), name, ["sub_x"])
-
-
-def test_a_fold_job_runs_here_up_to_the_cell_limit(
-    ctx: WorkerContext, diabetes_submission: tuple[str, dict[str, Any]]  # noqa: F811
-) -> None:
-    sub_id, _config = diabetes_submission
-    cells = 400 * 10  # development rows x the ten diabetes features
-    assert placement.fold_cells(ctx, sub_id) == cells
-    assert placement.runs_in_process(with_limit(ctx, cells), FOLD, [sub_id, 0, 0])
-    assert not placement.runs_in_process(with_limit(ctx, cells - 1), FOLD, [sub_id, 0, 0])
-    assert not placement.runs_in_process(with_limit(ctx, 0), FOLD, [sub_id, 0, 0])  # 0: always fork
-    assert not placement.runs_in_process(with_limit(ctx, cells), FOLD, ["sub_nope", 0, 0])  # the horse reports it
-    assert not placement.runs_in_process(with_limit(ctx, cells), FOLD, [])
-
-
-@pytest.mark.parametrize("multiplier", ["search", "learning_curve"])
-def test_fold_jobs_that_fit_many_times_always_fork(
-    ctx: WorkerContext, diabetes_submission: tuple[str, dict[str, Any]], multiplier: str  # noqa: F811
-) -> None:
-    _sub_id, config = diabetes_submission
-    if multiplier == "search":
-        config["search"] = {"kind": "grid", "inner_folds": 3, "grid": {"alpha": [0.1, 1.0]}}
-    else:
-        config["validation"]["learning_curve"] = [0.5, 1.0]
-    many = add_submission(ctx, {"id": _dataset_of(ctx, _sub_id)}, config)
-    assert placement.fold_cells(ctx, many) is None
-    assert not placement.runs_in_process(with_limit(ctx, 10**12), FOLD, [many, 0, 0])
-
-
-def _dataset_of(ctx: WorkerContext, sub_id: str) -> str:  # noqa: F811
-    sub = submissions.get(ctx.engine, sub_id)
-    assert sub is not None
-    return str(sub["dataset_id"])
+def test_checks_summaries_verdicts_and_folds_run_here_and_the_holdout_never() -> None:
+    for name in ("worker.jobs.check_config", "worker.jobs.summarize", "worker.jobs.judge", FOLD):
+        assert placement.runs_in_process(name)
+    for name in ("worker.jobs.score_holdout", "os.system", "worker.fold.run_fold", None):
+        assert not placement.runs_in_process(name)
 
 
 @pytest.fixture
@@ -100,14 +64,27 @@ def _work(ctx: WorkerContext, queue: Queue) -> None:  # noqa: F811
             signal.signal(number, handler)
 
 
-@pytest.mark.parametrize("limit", [100_000, 0])
-def test_a_burst_worker_runs_a_small_fold_here_and_forks_when_told_to(
+class RecordingRunner:
+    """A fold runner that runs the fold here and notes that it was asked."""
+
+    def __init__(self, ctx: WorkerContext) -> None:  # noqa: F811
+        self.ctx = ctx
+        self.asked: list[tuple[str, int, int]] = []
+
+    def run_fold(self, submission_id: str, repeat: int, fold: int) -> dict[str, Any]:
+        self.asked.append((submission_id, repeat, fold))
+        return run_fold(self.ctx, submission_id, repeat, fold)
+
+
+@pytest.mark.parametrize("with_runner", [False, True])
+def test_a_burst_worker_runs_a_fold_job_in_its_own_process_or_hands_it_to_its_fold_runner(
     ctx: WorkerContext, diabetes_submission: tuple[str, dict[str, Any]], burst: tuple[Queue, list[str]],  # noqa: F811
-    limit: int, monkeypatch: pytest.MonkeyPatch,
+    with_runner: bool, monkeypatch: pytest.MonkeyPatch,
 ) -> None:
     sub_id, _config = diabetes_submission
     queue, forked = burst
-    runtime.install(with_limit(ctx, limit))
+    runner = RecordingRunner(ctx)
+    runtime.install_fold_runner(runner if with_runner else None)
     beating: list[str] = []
     heartbeats_while = main.SealfoldWorker.heartbeats_while
 
@@ -119,14 +96,15 @@ def test_a_burst_worker_runs_a_small_fold_here_and_forks_when_told_to(
 
     monkeypatch.setattr(main.SealfoldWorker, "heartbeats_while", spy)
     job = queue.enqueue_call(FOLD, args=(sub_id, 0, 2))
-    _work(ctx, queue)
+    try:
+        _work(ctx, queue)
+    finally:
+        runtime.install_fold_runner(None)
     rows = submissions.fold_rows(ctx.engine, sub_id)
-    if limit:
-        assert forked == [] and [(r["fold"], r["status"]) for r in rows] == [(2, "ok")]
-        assert beating == [job.id]  # the job function ran inside the heartbeat thread's lifetime
-        assert job.get_status(refresh=True) == "finished"
-    else:
-        assert forked == [job.id] and rows == []  # the (stubbed) horse would have run it
+    assert forked == [] and [(r["fold"], r["status"]) for r in rows] == [(2, "ok")]
+    assert job.get_status(refresh=True) == "finished"
+    assert beating == [job.id]  # the job function ran inside the heartbeat thread's lifetime
+    assert runner.asked == ([(sub_id, 0, 2)] if with_runner else [])
 
 
 def test_an_in_process_job_keeps_its_heartbeat_going_and_stops_with_it(ctx: WorkerContext, redis_url: str) -> None:  # noqa: F811

@@ -13,7 +13,7 @@ from rq import get_current_job
 from worker import checks, holdout, summary
 from worker.fold import run_fold as _run_fold
 from worker.judge import judge_submission
-from worker.runtime import current
+from worker.runtime import current, fold_runner
 
 
 def check_config(config_doc: dict[str, Any], dataset_id: str) -> dict[str, Any]:
@@ -22,7 +22,13 @@ def check_config(config_doc: dict[str, Any], dataset_id: str) -> dict[str, Any]:
 
 
 def run_fold(submission_id: str, repeat: int, fold: int) -> dict[str, Any]:
-    """Fit and score one fold of a submission, with its baseline, and record it."""
+    """Fit and score one fold of a submission, with its baseline, and record it.
+
+    In a started worker the fold process does the work (``worker.fold_process``).
+    """
+    runner = fold_runner()
+    if runner is not None:
+        return runner.run_fold(submission_id, repeat, fold)
     return _run_fold(current(), submission_id, repeat, fold)
 
 

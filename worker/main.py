@@ -33,6 +33,7 @@ from service.catalog import load_catalog
 from service.records.engine import make_engine
 from service.settings import Settings
 from worker import placement, runtime
+from worker.fold_process import FoldProcess
 from worker.jobs import ALLOWED_JOBS
 from worker.warmup import warm_up
 
@@ -121,11 +122,8 @@ class SealfoldWorker(Worker):
         abandoned and retried the same way whichever process ran it.
         """
         try:
-            in_process = placement.runs_in_process(runtime.current(), job.func_name, job.args)
+            in_process = placement.runs_in_process(job.func_name)
         except DeserializationError:
-            in_process = False
-        except Exception:  # the records DB unreadable, say: a horse runs the job and reports it
-            log.warning("could not place job %s; running it in a work horse", job.id, exc_info=True)
             in_process = False
         if not in_process:
             super().execute_job(job, queue)
@@ -223,9 +221,13 @@ def run_worker(settings: Settings, *, burst: bool = False, name: str | None = No
     engine = make_engine(settings)
     runtime.install(runtime.WorkerContext(settings=settings, engine=engine))
     warm_up(runtime.current())
+    folds = FoldProcess()
+    folds.start()  # forked now, warm and before any thread exists
+    runtime.install_fold_runner(folds)
     redis = Redis.from_url(settings.redis_url)
     worker = build_worker(settings, redis, name)
     try:
         worker.work(burst=burst, logging_level=settings.log_level, with_scheduler=False)
     finally:
+        folds.stop()
         engine.dispose()

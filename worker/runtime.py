@@ -7,7 +7,7 @@ here. ``run_worker`` installs the context before the first fork; tests install t
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Protocol
 
 from sqlalchemy import Engine
 
@@ -27,6 +27,13 @@ class _Slot:
     """Holds the installed context; a class attribute, so there is no import-time connection."""
 
     context: WorkerContext | None = None
+    fold_runner: FoldRunner | None = None
+
+
+class FoldRunner(Protocol):
+    """Runs a fold job elsewhere and returns its answer (``worker.fold_process.FoldProcess``)."""
+
+    def run_fold(self, submission_id: str, repeat: int, fold: int) -> dict[str, Any]: ...
 
 
 def install(ctx: WorkerContext) -> None:
@@ -35,8 +42,19 @@ def install(ctx: WorkerContext) -> None:
 
 
 def uninstall() -> None:
-    """Forget the installed context (tests)."""
+    """Forget the installed context and fold runner (tests)."""
     _Slot.context = None
+    _Slot.fold_runner = None
+
+
+def install_fold_runner(runner: FoldRunner | None) -> None:
+    """Make ``runner`` run this process's fold jobs (None: run them here)."""
+    _Slot.fold_runner = runner
+
+
+def fold_runner() -> FoldRunner | None:
+    """Return the installed fold runner, or None when fold jobs run in this process."""
+    return _Slot.fold_runner
 
 
 def current() -> WorkerContext:
@@ -50,11 +68,14 @@ def current() -> WorkerContext:
 def after_fork() -> None:
     """Drop the pooled DB connections inherited from the parent without closing them under it.
 
+    Also forgets the parent's fold runner: a child runs fold jobs itself.
+
     A forked work horse must not reuse the parent's sockets (two processes on one connection
     corrupt it); ``dispose(close=False)`` gives the child a fresh pool and leaves the parent's alone.
     """
     if _Slot.context is not None:
         _Slot.context.engine.dispose(close=False)
+    _Slot.fold_runner = None  # the parent's handle on its fold process is not the child's to use
 
 
 def submission_to_work_on(ctx: WorkerContext, submission_id: str) -> tuple[dict[str, Any] | None, dict[str, Any]]:

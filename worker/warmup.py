@@ -1,12 +1,13 @@
 """Warm the worker process before it forks: run every job's code path once on a tiny invented table.
 
-Each work horse is a fork of this process and dies after one job, so whatever Python, scikit-learn,
-pandas, pyarrow and SQLAlchemy set up lazily on first use (parameter validation and metric dispatch,
-narwhals' plugin lookup, ``pyarrow.dataset``, compiled SQL statements, scipy's t distribution) was
-paid again by every job: about 20 ms of a 50 ms fold on 1,000 rows. Done here once, the horses
-inherit it. ``gc.freeze()`` then moves everything alive into the permanent generation, so a
-collection in a horse never walks (and so never copies) the parent's objects. What a horse still
-pays is the copy-on-write of the pages it touches (some 3,500 for such a fold).
+The fold process (``worker.fold_process``) and every work horse are forks of this process, so
+whatever Python, scikit-learn, pandas, pyarrow and SQLAlchemy set up lazily on first use (parameter
+validation and metric dispatch, narwhals' plugin lookup, ``pyarrow.dataset``, compiled SQL
+statements, scipy's t distribution) would be paid again by each of them: about 20 ms of a 50 ms
+fold on 1,000 rows in a horse that dies after one job. Done here once, they inherit it.
+``gc.freeze()`` then moves everything alive into the permanent generation, so a collection in a
+child never walks (and so never copies) the parent's objects. What a child still pays is the
+copy-on-write of the pages it touches (some 3,500 for such a fold).
 
 What the warm-up touches, and why that is safe:
 - files: only a temporary data dir of its own, removed afterwards;
