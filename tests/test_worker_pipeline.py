@@ -15,7 +15,7 @@ from sklearn.preprocessing import StandardScaler
 
 from service.errors import ConfigRejected
 from worker import runtime
-from worker.pipeline import build_pipeline, output_feature_names
+from worker.pipeline import build_pipeline, fit_in_place, output_feature_names
 
 NUMERIC = {"a": "numeric", "b": "numeric", "c": "numeric"}
 
@@ -130,3 +130,31 @@ def test_iris_linear_svc_reference_value() -> None:
                                "params": {"kernel": "linear", "C": 1}}, {f"x{i}": "numeric" for i in range(4)})
     scores = cross_val_score(pipeline, X, y, cv=5)
     assert round(scores.mean(), 2) == 0.98 and round(scores.std(), 2) == 0.02
+
+
+@pytest.mark.parametrize("estimator", ["LinearRegression", "Ridge", "Lasso", "ElasticNet"])
+@pytest.mark.parametrize("steps", [[], [{"transformer": "StandardScaler", "columns": ["bmi", "bp", "s5"]}]],
+                         ids=["bare", "scaled"])
+def test_a_fit_in_place_gives_the_same_model_to_the_last_bit(estimator: str, steps: list[dict[str, object]]) -> None:
+    # Reference: the same pipeline with scikit-learn's default copy_X=True, on diabetes (Efron et al.
+    # 2004, bundled with scikit-learn) held in a read-only array as the memory map is.
+    frame = load_diabetes(as_frame=True).frame
+    features = ["age", "bmi", "bp", "s5"]
+    X, y = frame[features].to_numpy(), frame["target"].to_numpy()
+    X.flags.writeable = False
+    kinds = dict.fromkeys(features, "numeric")
+    doc = {"estimator": estimator, "features": features, "params": {}, "preprocess": steps}
+    copying = build_pipeline(doc, kinds).fit(X, y)
+    in_place = fit_in_place(build_pipeline(doc, kinds), doc)
+    assert in_place.named_steps["model"].get_params()["copy_X"] is False
+    in_place.fit(X, y)
+    np.testing.assert_array_equal(in_place.named_steps["model"].coef_, copying.named_steps["model"].coef_)
+    assert in_place.named_steps["model"].intercept_ == copying.named_steps["model"].intercept_
+    np.testing.assert_array_equal(X, frame[features].to_numpy())  # the input is untouched
+
+
+def test_fit_in_place_respects_a_chosen_copy_x_and_models_without_one() -> None:
+    chosen = {"estimator": "Ridge", "features": ["a"], "params": {"copy_X": True}, "preprocess": []}
+    assert fit_in_place(build_pipeline(chosen, {"a": "numeric"}), chosen).named_steps["model"].copy_X is True
+    tree = {"estimator": "DecisionTreeRegressor", "features": ["a"], "params": {}, "preprocess": []}
+    assert "copy_X" not in fit_in_place(build_pipeline(tree, {"a": "numeric"}), tree).named_steps["model"].get_params()

@@ -22,7 +22,7 @@ from service.records import datasets, submissions
 from service.vault import store
 from worker.development import column_kinds, load_development, model_frame, model_matrix, target_values
 from worker.losses import save_per_example
-from worker.pipeline import build_pipeline, uses_frame
+from worker.pipeline import build_pipeline, fit_in_place, uses_frame
 from worker.runtime import WorkerContext, submission_to_work_on
 from worker.scoring import per_example, predictions, score_predictions
 from worker.search import build_model
@@ -46,7 +46,8 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     features = list(model_doc["features"])
 
     data, _ = load_development(ctx.settings, dataset, features)
-    pipeline = build_model(build_pipeline(model_doc, kinds), config)  # a search is refitted on every dev row
+    # A search is refitted on every dev row; a plain pipeline may centre its private copy in place.
+    pipeline = fit_in_place(build_model(build_pipeline(model_doc, kinds), config), model_doc)
     try:
         started = time.perf_counter()
         pipeline.fit(data.features_of(), data.target_of())

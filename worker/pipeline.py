@@ -155,3 +155,22 @@ def baseline_description(task: str) -> dict[str, Any]:
     """Describe the baseline for the summary document."""
     name, params = BASELINES[task]
     return {"estimator": name, "params": dict(params)}
+
+
+def fit_in_place(model: BaseEstimator, model_doc: Mapping[str, Any]) -> BaseEstimator:
+    """Let the final estimator overwrite its training matrix (``copy_X=False``) unless the submission chose.
+
+    Only for a fit whose input the service never reads again and that scikit-learn hands the
+    estimator as a private array: the holdout refit, whose rows are the read-only memory map
+    (copied by scikit-learn's validation into a writeable array before the estimator sees them)
+    or the fresh output of the preprocessing. Linear models then centre that array in place instead
+    of copying it once more -- some 25 ms and 160 MB at a million rows of 20 features -- and their
+    coefficients are the same to the last bit (a test checks). A nested search is left alone: it
+    refits on one matrix many times.
+    """
+    if not isinstance(model, Pipeline) or "copy_X" in (model_doc.get("params") or {}):
+        return model
+    estimator = model.named_steps[MODEL_STEP]
+    if "copy_X" in estimator.get_params(deep=False):
+        estimator.set_params(copy_X=False)
+    return model
