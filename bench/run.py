@@ -23,9 +23,9 @@ and seeded) it
    the warm-up the service's first fold round, which follows the idle seconds of a registration,
    pays that alone, while ``cross_validate`` (timed right after the service) never does;
 5. records the peak resident memory (VmHWM from /proc/<pid>/status) of the worker processes and of
-   the processes they fork (a work horse per job, RQ's scheduler), sampled every 20 ms. A forked
-   process's VmHWM counts the pages it shares with its parent, so it is an upper bound of what
-   the job added; a horse's growth in its last few milliseconds can escape the sampling.
+   the processes they fork (each worker's fold process, a work horse per holdout job), sampled every
+   20 ms. A forked process's VmHWM counts the pages it shares with its parent, so it is an upper
+   bound of what its jobs added; a horse's growth in its last few milliseconds can escape the sampling.
 
 The service's time includes what ``cross_validate`` does not do: the configuration check before the
 POST answers, the baseline scored on every fold, the refit on all development rows and the
@@ -348,7 +348,8 @@ def report(results: list[SizeResult]) -> None:
                   f"{statistics.median(r.service_seconds) / same:.2f}x that")
         if r.peak is not None:
             print(f"{'':>16}peak RSS (VmHWM, sampled every {r.peak.interval * 1000:.0f} ms): worker main "
-                  f"{_mib(r.peak.worker_kib)}, forked children (work horses) {_mib(r.peak.horse_kib)} "
+                  f"{_mib(r.peak.worker_kib)}, forked children (fold processes, holdout horses) "
+                  f"{_mib(r.peak.horse_kib)} "
                   f"({len(r.peak.horses_seen)} seen; shared pages included)")
 
 
