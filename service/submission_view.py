@@ -67,7 +67,7 @@ def _fold(f: dict[str, Any]) -> dict[str, Any]:
         "scores": f["scores"], "baseline_scores": f["baseline_scores"],
         "fit_seconds": f["fit_seconds"], "score_seconds": f["score_seconds"],
     }
-    for optional in ("train_scores", "curve", "search"):
+    for optional in ("train_scores", "train_scored_rows", "curve", "search"):
         if f.get(optional) is not None:
             out[optional] = f[optional]
     if f["error"]:

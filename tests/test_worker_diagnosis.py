@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from sklearn import metrics as skm
 from sklearn.linear_model import LogisticRegression, Ridge
 from sklearn.model_selection import KFold, cross_validate, learning_curve
 from sklearn.pipeline import make_pipeline
@@ -16,8 +17,10 @@ from service.vault.folds import FoldPlan, fold_splits, split_keys_from_frame
 from tests.test_worker_folds import REGRESSION_SCORING, SIGN, diabetes_parts, ridge_on_diabetes, run_all_folds
 from tests.worker_fixtures import add_dataset, add_submission, config_document, ctx  # noqa: F401
 from worker import jobs
+from worker import scoring as worker_scoring
 from worker.diagnosis import BIAS, NEITHER, VARIANCE
 from worker.runtime import WorkerContext
+from worker.scoring import training_sample
 
 
 def test_train_scores_equal_cross_validate_return_train_score(ctx: WorkerContext) -> None:  # noqa: F811
@@ -134,3 +137,71 @@ def test_learning_curve_on_stratified_classification_folds(ctx: WorkerContext) -
         for i, point in enumerate(row["curve"]):
             assert point["train_scores"]["accuracy"] == pytest.approx(train[i, k], rel=1e-12)
             assert point["scores"]["accuracy"] == pytest.approx(test[i, k], rel=1e-12)
+
+
+def test_training_sample_scores_every_row_up_to_the_limit_and_a_fixed_sample_above() -> None:
+    assert training_sample(100_000, 0, 0) is None and training_sample(10, 0, 0, limit=10) is None
+    sample = training_sample(800_000, 0, 3)
+    assert sample is not None
+    assert np.all(np.diff(sample) > 0) and sample[0] >= 0 and sample[-1] < 800_000  # rows in their order
+    # A Bernoulli draw of p = 1/8 per row: the count is binomial(800,000, 1/8), sd ~296 (computed).
+    assert abs(len(sample) - 100_000) < 6 * 296
+    assert np.array_equal(sample, training_sample(800_000, 0, 3))  # the same rows for every submission
+    assert not np.array_equal(sample[:1000], training_sample(800_000, 0, 4)[:1000])  # another fold, other rows
+
+
+def test_above_the_limit_train_scores_are_scikit_learns_on_the_sampled_rows(
+    ctx: WorkerContext, monkeypatch: pytest.MonkeyPatch  # noqa: F811
+) -> None:
+    # With the limit lowered to 100 rows, each fold's 320 training rows are sampled. Reference: Ridge
+    # fitted by scikit-learn on the fold's training rows (KFold(5, shuffle=True, random_state=11), the
+    # plan's definition), its predictions on the sampled rows scored with sklearn.metrics; the test
+    # scores stay cross_validate's (the fit that may overwrite its rows gives the same model).
+    monkeypatch.setattr(worker_scoring, "TRAIN_SCORE_ROWS", 100)
+    sub_id, rows, reference, _features, (X, y, cv) = ridge_on_diabetes(ctx)
+    for k, row in enumerate(rows):
+        train, _test = cv[k]
+        sample = training_sample(len(train), 0, k)
+        assert sample is not None and row["train_scored_rows"] == len(sample) < row["train_rows"] == len(train)
+        model = reference["estimator"][k]
+        predicted = model.predict(X[train][sample])
+        assert row["train_scores"]["rmse"] == pytest.approx(
+            skm.root_mean_squared_error(y[train][sample], predicted), rel=1e-10)
+        assert row["train_scores"]["r2"] == pytest.approx(skm.r2_score(y[train][sample], predicted), rel=1e-10)
+        assert row["scores"]["rmse"] == pytest.approx(-reference["test_rmse"][k], rel=1e-10)
+        np.testing.assert_allclose(row["coefficients"]["values"][0], model[-1].coef_, rtol=1e-10)
+    jobs.summarize(sub_id)
+    sub = submissions.get(ctx.engine, sub_id)
+    assert sub is not None
+    least = min(r["train_scored_rows"] for r in rows)
+    assert sub["result"]["fit_gap"]["note"].endswith(f"training scores of 5 of 5 folds come from a seeded random "
+                                                     f"sample of their training rows (at least {least} rows)")
+
+
+def test_above_the_limit_learning_curve_points_score_a_sample_of_their_training_rows(
+    ctx: WorkerContext, monkeypatch: pytest.MonkeyPatch  # noqa: F811
+) -> None:
+    # Limit 100: the points on 160 and 320 training rows are scored on samples. Reference: Ridge fitted
+    # by scikit-learn on the first n training rows of the fold (learning_curve's rule), its predictions
+    # on the sampled rows of those n scored with sklearn.metrics.
+    monkeypatch.setattr(worker_scoring, "TRAIN_SCORE_ROWS", 100)
+    dev, hold = diabetes_parts()
+    dataset = add_dataset(ctx, dev, hold, "target", "regression", scheme="kfold", folds=5, seed=4)
+    features = [c for c in dev.columns if c != "target"]
+    config = config_document(dataset, "Ridge", params={"alpha": 0.1}, features=features, metrics=["rmse"])
+    config["validation"]["learning_curve"] = [0.1, 0.5, 1.0]
+    sub_id = add_submission(ctx, dataset, config)
+    rows = run_all_folds(sub_id, 5)
+    X, y = dev[features].to_numpy(), dev["target"].to_numpy()
+    cv = list(KFold(5, shuffle=True, random_state=4).split(X))
+    for k, row in enumerate(rows):
+        for point in row["curve"]:
+            n = point["train_rows"]
+            part = cv[k][0][:n]
+            sample = training_sample(n, 0, k)
+            rows_scored = part if sample is None else part[sample]
+            assert point["train_scored_rows"] == len(rows_scored)
+            predicted = Ridge(alpha=0.1).fit(X[part], y[part]).predict(X[rows_scored])
+            assert point["train_scores"]["rmse"] == pytest.approx(
+                skm.root_mean_squared_error(y[rows_scored], predicted), rel=1e-9), (k, n)
+        assert [p["train_scored_rows"] < p["train_rows"] for p in row["curve"]] == [False, True, True]

@@ -2,8 +2,9 @@
 
 This is what ``sklearn.model_selection.learning_curve`` does with ``shuffle=False``: for a size given
 as a fraction, n = int(fraction * training rows) clipped to [1, training rows], and the model is fitted
-on the first n indices of the fold's training part, then scored on those n rows and on the fold's
-validation rows. Like scikit-learn, the sizes count from the training rows of the first split of
+on the first n indices of the fold's training part, then scored on those n rows (above
+``TRAIN_SCORE_ROWS``, on the seeded sample ``training_sample`` draws, as the fold itself does) and on
+the fold's validation rows. Like scikit-learn, the sizes count from the training rows of the first split of
 the repeat (``reference_rows``), the same n for every fold; without it, each fold's own count.
 """
 
@@ -17,7 +18,7 @@ from sklearn.base import BaseEstimator, clone
 
 from service.vault.folds import Split
 from worker.development import DevelopmentData
-from worker.scoring import score_model
+from worker.scoring import score_model, take_rows, training_sample
 
 
 def curve_sizes(fractions: Sequence[float], n_train: int) -> list[int]:
@@ -41,13 +42,18 @@ def curve_points(
     for fraction, n in zip(fractions, curve_sizes(fractions, counted), strict=True):
         point: dict[str, Any] = {"fraction": float(fraction), "train_rows": n}
         if full is not None and n == len(split.train):
-            point.update(train_scores=full["train_scores"], scores=full["scores"])
+            point.update(train_scores=full["train_scores"], train_scored_rows=full["train_scored_rows"],
+                         scores=full["scores"])
             points.append(point)
             continue
         rows = split.train[:n]
         X_part, y_part = data.features_of(rows), data.target_of(rows)
+        scored = training_sample(n, split.repeat, split.fold)
+        point["train_scored_rows"] = n if scored is None else len(scored)
         try:
             fitted = clone(model).fit(X_part, y_part)
+            if scored is not None:
+                X_part, y_part = take_rows(X_part, scored), y_part[scored]
             point["train_scores"], _ = score_model(fitted, X_part, y_part, metrics)
             point["scores"], _ = score_model(fitted, X_test, y_test, metrics)
         except MemoryError:

@@ -47,7 +47,13 @@ def fit_gap(rows: Sequence[Mapping[str, Any]], metrics: Sequence[str]) -> dict[s
             gap = train - valid if better else valid - train
             reading = _reading(gap, train, valid, base, better)
         out[m] = {"train_mean": train, "validation_mean": valid, "gap": gap, "reading": reading}
-    return {"metrics": out, "note": READING_NOTE}
+    sampled = [r for r in with_train if (r.get("train_scored_rows") or r["train_rows"]) < r["train_rows"]]
+    note = READING_NOTE
+    if sampled:
+        least = min(int(r["train_scored_rows"]) for r in sampled)
+        note += (f"; training scores of {len(sampled)} of {len(with_train)} folds come from a seeded random "
+                 f"sample of their training rows (at least {least:,} rows)")
+    return {"metrics": out, "note": note}
 
 
 def _reading(gap: float, train: float, valid: float, base: float | None, better: bool) -> str:

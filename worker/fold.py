@@ -12,16 +12,16 @@ from typing import Any
 
 import numpy as np
 import sklearn
-from sklearn.base import BaseEstimator
+from sklearn.base import BaseEstimator, clone
 from sklearn.pipeline import Pipeline
 
 from service.records import datasets, submissions
 from service.vault.folds import Split
 from worker.curve import curve_points
 from worker.development import DevelopmentData, column_kinds, load_development, split_for
-from worker.pipeline import MODEL_STEP, baseline_estimator, build_pipeline, output_feature_names
+from worker.pipeline import MODEL_STEP, baseline_estimator, build_pipeline, fit_in_place, output_feature_names
 from worker.runtime import WorkerContext
-from worker.scoring import score_model
+from worker.scoring import score_model, take_rows, training_sample
 from worker.search import build_model, search_record
 
 
@@ -63,16 +63,23 @@ def evaluate_fold(
     """Fit on the split's train rows, score on its test rows; return the fold record's fields.
 
     ``pipeline`` may be a search around the pipeline (``worker.search``); the training rows are
-    scored too, as ``cross_validate(return_train_score=True)`` does, and ``curve`` adds
-    learning-curve points (``worker.curve``).
+    scored too, as ``cross_validate(return_train_score=True)`` does -- above ``TRAIN_SCORE_ROWS``
+    rows, a seeded sample of them (``worker.scoring.training_sample``), copied before the fit, which
+    then may overwrite the fold's own copy of its training rows (``fit_in_place``) -- and ``curve``
+    adds learning-curve points (``worker.curve``).
     """
     X_train, X_test = data.split_features(split.train, split.test)
     y_train, y_test = data.target_of(split.train), data.target_of(split.test)
+    scored = training_sample(len(split.train), split.repeat, split.fold)
+    X_scored, y_scored = (X_train, y_train) if scored is None else (take_rows(X_train, scored), y_train[scored])
+    unfitted = clone(pipeline) if curve else pipeline  # the curve's fits score their own input: never in place
+    if scored is not None and config is not None:
+        fit_in_place(pipeline, config["model"])  # X_train is this fold's private copy, never read again
     fields: dict[str, Any] = {
         "train_rows": len(split.train), "test_rows": len(split.test),
         "baseline_scores": baseline_scores(task, y_train, y_test, metrics),
         "scores": None, "coefficients": None, "fit_seconds": None, "score_seconds": None, "error": None,
-        "train_scores": None, "curve": None, "search": None,
+        "train_scores": None, "train_scored_rows": len(y_scored), "curve": None, "search": None,
     }
     try:
         started = time.perf_counter()
@@ -85,7 +92,7 @@ def evaluate_fold(
         # again costs ~10 ms per fold at a million rows and cannot change a score (a non-finite
         # prediction still scores None: see worker.scoring).
         with sklearn.config_context(assume_finite=True):
-            fields["train_scores"], _ = score_model(pipeline, X_train, y_train, metrics)
+            fields["train_scores"], _ = score_model(pipeline, X_scored, y_scored, metrics)
         if config is not None:
             fields["search"] = search_record(pipeline, config)
         if linear:
@@ -98,7 +105,7 @@ def evaluate_fold(
         return fields
     fields.update(status="ok", scores=scores)
     if curve:
-        fields["curve"] = curve_points(pipeline, data, split, metrics, curve, full=fields,
+        fields["curve"] = curve_points(unfitted, data, split, metrics, curve, full=fields,
                                        reference_rows=curve_reference_rows)
     if undefined:
         fields["error"] = "; ".join(f"{name} undefined on this fold: {why}" for name, why in undefined.items())

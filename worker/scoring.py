@@ -107,6 +107,34 @@ def score_model(
 
 PER_EXAMPLE_FROM_LABELS = frozenset({"rmse", "mse", "mae", "accuracy"})
 
+# Training rows scored at most per fit; above this, a seeded random sample of about this many.
+TRAIN_SCORE_ROWS = 100_000
+_TRAIN_SAMPLE_SEED = 0x5EA1F01D
+
+
+def training_sample(n_train: int, repeat: int, fold: int, limit: int | None = None) -> np.ndarray | None:
+    """Return the positions among a fit's ``n_train`` training rows whose scores stand for all of them.
+
+    None (score every row) up to ``limit`` rows (default ``TRAIN_SCORE_ROWS``). Above it, each row
+    is kept with probability limit / n_train, so about ``limit`` rows, in their order; the seed is
+    fixed per (repeat, fold), so every submission on a fold plan scores the same rows and their
+    training scores stay paired. A training score is a mean over rows: on 100,000 rows its sampling
+    error is far below anything a fit gap is read from, while scoring every row of a million-row
+    fold costs a full prediction pass -- for an ensemble, more than the fold's test rows (sampling
+    the training rows for a training score is common practice: scikit-learn's histogram gradient
+    boosting scores early stopping on a 10,000-row subsample of the training data, from memory).
+    """
+    limit = TRAIN_SCORE_ROWS if limit is None else limit
+    if n_train <= limit:
+        return None
+    draws = np.random.default_rng([_TRAIN_SAMPLE_SEED, repeat, fold]).random(n_train)
+    return np.flatnonzero(draws < limit / n_train)
+
+
+def take_rows(X: Any, rows: np.ndarray) -> Any:
+    """Copy the rows at positions ``rows`` of a numpy matrix or a pandas frame."""
+    return X.iloc[rows] if hasattr(X, "iloc") else X[rows]
+
 
 def per_example(name: str, y_true: Any, pred: Any, proba: Any, classes: Any) -> np.ndarray | None:
     """Return per-row values whose mean is the metric (rmse: squared errors), or None if it has none.

@@ -391,9 +391,13 @@ class FoldScoreSchema(Schema):
     score_seconds = fields.Float(allow_none=True)
     error = fields.String(metadata={"description": "failed folds only: the estimator's message"})
     train_scores = fields.Dict(keys=fields.String(), values=fields.Float(allow_none=True), metadata={
-        "description": "the same metrics on the fold's training rows (cross_validate's return_train_score)"})
+        "description": "the same metrics on the fold's training rows (cross_validate's return_train_score); "
+                       "above 100,000 training rows, on a seeded random sample of about 100,000 of them"})
+    train_scored_rows = fields.Integer(metadata={
+        "description": "how many training rows train_scores were computed on (train_rows, or the sample's size)"})
     curve = fields.List(fields.Dict(), metadata={
-        "description": "learning curve: per size, fraction, train_rows, train_scores and scores"})
+        "description": "learning curve: per size, fraction, train_rows, train_scores (on train_scored_rows of "
+                       "them) and scores"})
     search = fields.Dict(metadata={"description": "nested search: best_params, best_inner_score, scoring"})
 
 

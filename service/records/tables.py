@@ -103,6 +103,7 @@ fold_results = Table(
     Column("baseline_scores", JSON),
     Column("coefficients", JSON),  # {"names": [...], "values": [[...] per output]} or null
     Column("train_scores", JSON),  # the same metrics on the fold's own training rows, or null
+    Column("train_scored_rows", Integer),  # how many of them: all, or a seeded sample above 100,000
     Column("curve", JSON),  # learning-curve points [{"fraction", "train_rows", "train_scores", "scores"}] or null
     Column("search", JSON),  # nested search: {"best_params", "best_inner_score", "scoring"} or null
     Column("fit_seconds", Float),
