@@ -15,7 +15,8 @@ and seeded) it
    times ``cross_validate(Ridge(), X_dev, y_dev, cv=<the same folds>)`` with n_jobs=1 and n_jobs=2,
    checking that every fold score matches the service's; then, for the record beside the target, the
    same work the service does by hand: ``cross_validate(return_train_score=True)``, the Dummy
-   baseline on the same folds and a refit on every development row;
+   baseline on the same folds and a refit on every development row (cross_validate scores every
+   training row; the service, above 100,000 training rows, a seeded sample of about 100,000);
 4. before every timed run (the service's and each ``cross_validate``), writes and frees 1.5 GiB in
    this process, so that both start with memory the VM has already backed. This VM hands memory
    that stayed free for a few seconds back to its host and faults it in again slowly: in a fresh
@@ -290,8 +291,9 @@ def bench_size(service: Service, frame: pd.DataFrame, import_root: Path, runs: i
             reference = cross_validate(Ridge(alpha=1.0), x_dev, y_dev, cv=splits, scoring=SCORERS, n_jobs=n_jobs)
             cv_seconds[n_jobs].append(time.perf_counter() - started)
     # Beside the target's comparison, the same work the service does, done by hand: the folds with
-    # their training-row scores, the baseline on every fold, and the refit on every development row
-    # (the holdout itself, 1 % of the rows, is left out: it is sealed).
+    # their training-row scores (all of them here; a 100,000-row sample in the service), the baseline
+    # on every fold, and the refit on every development row (the holdout itself, 1 % of the rows, is
+    # left out: it is sealed).
     same_work: list[float] = []
     for _ in range(runs):
         warm_memory()
