@@ -8,10 +8,12 @@ import time
 from collections.abc import Iterator
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
 import pytest
 from redis import Redis
+from rq import Queue
+from rq.registry import StartedJobRegistry
+from sklearn.datasets import make_regression
 
 from tests.conftest import Stack, running_stack
 from tests.support.datasets import diabetes_frame, register
@@ -58,26 +60,8 @@ def test_work_survives_a_killed_worker_and_a_flushed_redis(lonely_stack: Stack) 
 def test_the_job_of_a_killed_worker_is_retried_within_two_minutes(lonely_stack: Stack) -> None:
     # Without a Redis flush the job stays "started" in Redis; RQ's registry clean-up declares it
     # abandoned once its heartbeat lapses and retries it (retries are set on every sealfold job).
-    from rq import Queue
-    from rq.registry import StartedJobRegistry
-
     stack = lonely_stack
-    rng = np.random.default_rng(5)
-    x = rng.normal(size=(2000, 8))
-    frame = pd.DataFrame(x, columns=[f"x{i}" for i in range(8)])
-    frame["y"] = x @ rng.normal(size=8) + rng.normal(size=2000)
-    ds = register(stack.client("steward"), frame, name="abandoned", target="y", task="regression")
-    reply = stack.client().post("/v1/submissions", json_body={
-        "dataset": ds["id"], "model": {"estimator": "GradientBoostingRegressor",
-                                       "params": {"n_estimators": 200, "max_depth": 4}}})
-    assert reply.status == 202, reply.text
-    sub_id = reply.json()["id"]
-    redis = Redis.from_url(stack.settings.redis_url)
-    started_registry = StartedJobRegistry(queue=Queue(stack.settings.queue_name, connection=redis))
-    deadline = time.monotonic() + 60
-    while not (in_flight := [j for j in started_registry.get_job_ids() if "-fold-" in j]):
-        assert time.monotonic() < deadline, "no fold job started"
-        time.sleep(0.02)
+    sub_id, in_flight = _slow_folds_under_way(stack, "abandoned")
     victim = stack.workers[0]
     os.killpg(victim.pid, signal.SIGKILL)  # the worker and its fold process, mid-fold
     victim.wait(timeout=10)
@@ -93,6 +77,27 @@ def test_the_job_of_a_killed_worker_is_retried_within_two_minutes(lonely_stack: 
     print(f"{killed_job} was abandoned by a killed worker; the submission finished {recovered_in:.1f} s later")
 
 
+def _slow_folds_under_way(stack: Stack, name: str) -> tuple[str, list[str]]:
+    """Submit a slow model (about a second per fold) and return once a fold job has started.
+
+    Data: scikit-learn's make_regression, 2,000 rows of 8 features.
+    """
+    X, y = make_regression(n_samples=2000, n_features=8, noise=1.0, random_state=5)
+    frame = pd.DataFrame(X, columns=[f"x{i}" for i in range(8)]).assign(y=y)
+    ds = register(stack.client("steward"), frame, name=name, target="y", task="regression")
+    reply = stack.client().post("/v1/submissions", json_body={
+        "dataset": ds["id"], "model": {"estimator": "GradientBoostingRegressor",
+                                       "params": {"n_estimators": 200, "max_depth": 4}}})
+    assert reply.status == 202, reply.text
+    started = StartedJobRegistry(queue=Queue(stack.settings.queue_name,
+                                             connection=Redis.from_url(stack.settings.redis_url)))
+    deadline = time.monotonic() + 60
+    while not (in_flight := [j for j in started.get_job_ids() if "-fold-" in j]):
+        assert time.monotonic() < deadline, "no fold job started"
+        time.sleep(0.02)
+    return str(reply.json()["id"]), in_flight
+
+
 def _children(pid: int) -> set[int]:
     return {int(c) for c in Path(f"/proc/{pid}/task/{pid}/children").read_text().split()}
 
@@ -100,28 +105,10 @@ def _children(pid: int) -> set[int]:
 def test_a_crashed_fold_process_fails_only_its_job_which_is_retried_at_once(lonely_stack: Stack) -> None:
     # The worker's fold process runs every fold; when it dies mid-fold (a segfault, the OOM killer),
     # the worker lives on, RQ retries the job and a new fold process runs it.
-    from rq import Queue
-    from rq.registry import StartedJobRegistry
-
     stack = lonely_stack
     worker = stack.workers[0]
     (fold_process,) = _children(worker.pid)  # the only child of an idle worker
-    rng = np.random.default_rng(6)
-    x = rng.normal(size=(2000, 8))
-    frame = pd.DataFrame(x, columns=[f"x{i}" for i in range(8)])
-    frame["y"] = x @ rng.normal(size=8) + rng.normal(size=2000)
-    ds = register(stack.client("steward"), frame, name="crashed", target="y", task="regression")
-    reply = stack.client().post("/v1/submissions", json_body={
-        "dataset": ds["id"], "model": {"estimator": "GradientBoostingRegressor",
-                                       "params": {"n_estimators": 200, "max_depth": 4}}})
-    assert reply.status == 202, reply.text
-    sub_id = reply.json()["id"]
-    started_registry = StartedJobRegistry(queue=Queue(stack.settings.queue_name,
-                                                      connection=Redis.from_url(stack.settings.redis_url)))
-    deadline = time.monotonic() + 60
-    while not [j for j in started_registry.get_job_ids() if "-fold-" in j]:
-        assert time.monotonic() < deadline, "no fold job started"
-        time.sleep(0.02)
+    sub_id, _in_flight = _slow_folds_under_way(stack, "crashed")
     os.kill(fold_process, signal.SIGKILL)
     started = time.monotonic()
     doc = stack.wait_for(sub_id, timeout=60)  # no heartbeat to lapse: the retry is immediate
