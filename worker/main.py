@@ -1,7 +1,8 @@
 """Run a sealfold worker: preload scikit-learn, then run each job here or in a forked work horse.
 
-Where a job runs is ``worker.placement``'s choice: short jobs in this process, fits on bigger tables
-and the holdout job in a horse RQ forks for the one job.
+Where a job runs is ``worker.placement``'s choice: checks, summaries, verdicts and fold jobs in this
+process (a fold's fitting in the worker's long-lived fold process, ``worker.fold_process``), the
+holdout job in a horse RQ forks for the one job.
 
 The worker only runs the functions in ``worker.jobs.ALLOWED_JOBS`` and deserialises jobs as JSON,
 so nothing in Redis can make it import or unpickle anything else. Heartbeats every ~10 s and
