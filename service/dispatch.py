@@ -157,7 +157,7 @@ def live_job_ids(queue: Queue) -> set[str]:
     A job's status alone is not enough: a worker killed between taking a job and starting it leaves
     the job "queued" in no queue, and RQ's clean-up drops a "started" entry whose job never started.
     So liveness is membership: the queue, RQ's intermediate list, an unexpired started entry, or the
-    deferred and scheduled registries.
+    deferred, ready (dependencies met, not yet on the queue) and scheduled registries.
     """
     redis = queue.connection
     live = set(queue.get_job_ids())
@@ -166,6 +166,7 @@ def live_job_ids(queue: Queue) -> set[str]:
     for entry in redis.zrangebyscore(started.key, current_timestamp(), "+inf"):
         live.add(started.parse_job_id(entry.decode() if isinstance(entry, bytes) else str(entry)))
     live.update(DeferredJobRegistry(queue=queue).get_job_ids(cleanup=False))
+    live.update(queue.ready_job_registry.get_job_ids(cleanup=False))
     live.update(ScheduledJobRegistry(queue=queue).get_job_ids(cleanup=False))
     return live
 

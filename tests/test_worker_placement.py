@@ -17,6 +17,7 @@ from rq.serializers import JSONSerializer
 from rq.worker import Worker
 from sklearn.datasets import load_diabetes
 
+from service import dispatch
 from service.records import submissions
 from tests.worker_fixtures import add_dataset, add_submission, config_document, ctx  # noqa: F401
 from worker import main, placement, runtime
@@ -129,3 +130,26 @@ def test_an_in_process_job_keeps_its_heartbeat_going_and_stops_with_it(ctx: Work
         assert last_beat() == during  # no beat after the job function returned
     finally:
         worker.register_death()
+
+
+def test_a_job_left_ready_by_contending_dependencies_is_enqueued_after_the_next_job(
+    ctx: WorkerContext, redis_url: str  # noqa: F811
+) -> None:
+    # RQ 3 moves a job whose dependencies are met into its ready registry and enqueues it under WATCH;
+    # two dependencies finishing at once on two workers can each spoil the other's enqueue. Put a job
+    # in that state with RQ's own register_jobs, as the losing pair leaves it.
+    redis = Redis.from_url(redis_url)
+    queue = Queue(f"ready-{uuid.uuid4().hex[:8]}", connection=redis, serializer=JSONSerializer)
+    blocker = queue.enqueue_call("worker.jobs.summarize", args=("sub_x",))
+    waiting = queue.enqueue_call("worker.jobs.judge", args=("sub_x",), depends_on=blocker)
+    queue.remove(blocker)
+    with redis.pipeline() as pipe:
+        pipe.multi()
+        queue.ready_job_registry.register_jobs([waiting], pipeline=pipe)
+        pipe.execute()
+    assert waiting.get_status(refresh=True) == "ready_to_enqueue" and waiting.id not in queue.job_ids
+    assert waiting.id in dispatch.live_job_ids(queue)  # the reconciler counts it as live, not lost
+    worker = build_worker(dataclasses.replace(ctx.settings, queue_name=queue.name), redis, name=queue.name)
+    worker.enqueue_ready_dependents()
+    assert queue.job_ids == [waiting.id] and waiting.get_status(refresh=True) == "queued"
+    assert redis.zcard(queue.ready_job_registry.key) == 0
