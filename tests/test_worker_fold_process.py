@@ -43,6 +43,13 @@ def diabetes(ctx: WorkerContext) -> tuple[str, Any]:  # noqa: F811
     return add_submission(ctx, dataset, config_document(dataset, "Ridge")), frame.iloc[:400]
 
 
+def _start(process: FoldProcess) -> int:
+    """Start the fold process and return its pid."""
+    process.start()
+    assert process.pid is not None
+    return process.pid
+
+
 def _slow_fold(*_args: Any) -> dict[str, Any]:
     time.sleep(60)
     return {}
@@ -60,9 +67,8 @@ def test_folds_run_in_one_child_and_score_as_scikit_learn_does(
     ctx: WorkerContext, process: FoldProcess, diabetes: tuple[str, Any]  # noqa: F811
 ) -> None:
     sub_id, dev = diabetes
-    process.start()
-    child = process.pid
-    assert child is not None and child != os.getpid()
+    child = _start(process)
+    assert child != os.getpid()
     answers = [process.run_fold(sub_id, 0, f) for f in (0, 1)]
     assert [a["status"] for a in answers] == ["ok", "ok"] and process.pid == child  # one child, reused
     # Reference: scikit-learn's Ridge() fitted on the first split of KFold(5, shuffle=True,
@@ -79,8 +85,7 @@ def test_an_error_in_a_fold_comes_back_with_its_traceback_and_the_child_stays(
     process: FoldProcess, diabetes: tuple[str, Any]
 ) -> None:
     sub_id, _dev = diabetes
-    process.start()
-    child = process.pid
+    child = _start(process)
     with pytest.raises(FoldFailed, match="LookupError: no submission 'sub_nope'") as failure:
         process.run_fold("sub_nope", 0, 0)
     assert "Traceback" in str(failure.value) and "in the fold process" in str(failure.value)
@@ -92,9 +97,7 @@ def test_a_child_killed_mid_fold_fails_that_job_and_the_next_job_gets_a_new_chil
 ) -> None:
     sub_id, _dev = diabetes
     monkeypatch.setattr(fold_process, "run_fold", _slow_fold)  # what the child will run
-    process.start()
-    child = process.pid
-    assert child is not None
+    child = _start(process)
     threading.Timer(0.3, os.kill, (child, signal.SIGKILL)).start()
     with pytest.raises(FoldProcessDied, match="killed by SIGKILL"):
         process.run_fold(sub_id, 0, 0)
@@ -108,9 +111,7 @@ def test_a_child_that_died_while_idle_is_replaced_before_the_next_job(
     process: FoldProcess, diabetes: tuple[str, Any]
 ) -> None:
     sub_id, _dev = diabetes
-    process.start()
-    child = process.pid
-    assert child is not None
+    child = _start(process)
     os.kill(child, signal.SIGKILL)
     time.sleep(0.2)
     assert process.run_fold(sub_id, 0, 0)["status"] == "ok" and process.pid != child
@@ -125,9 +126,7 @@ def test_a_timeout_while_waiting_kills_the_fold(
 ) -> None:
     sub_id, _dev = diabetes
     monkeypatch.setattr(fold_process, "run_fold", _slow_fold)
-    process.start()
-    child = process.pid
-    assert child is not None
+    child = _start(process)
 
     def time_is_up(_signum: int, _frame: Any) -> None:
         raise Timeout
@@ -158,8 +157,7 @@ def test_a_child_that_grew_is_replaced_after_its_job(
 
     monkeypatch.setattr(fold_process, "run_fold", hoarding_fold)
     monkeypatch.setattr(fold_process, "REPLACE_AFTER_GROWTH_BYTES", 32 << 20)
-    process.start()
-    child = process.pid
+    child = _start(process)
     process.run_fold(sub_id, 0, 0)  # the first job settles the child's size
     assert process.pid == child
     process.run_fold(sub_id, 0, 1)  # 64 MiB more: over the allowance, so replaced after the job
@@ -174,13 +172,11 @@ def test_the_child_keeps_what_a_fold_freed_for_the_next_one(
         return {"sum": float(copy[:10].sum())}
 
     monkeypatch.setattr(fold_process, "run_fold", fold_with_a_big_copy)
-    process.start()
-    assert process.pid is not None
-    before = _private_dirty(process.pid)
+    before = _private_dirty(_start(process))
     assert process.run_fold("sub_x", 0, 0) == {"sum": 10.0}
     # By default glibc unmaps a freed 96 MiB array at once; kept, the pages stay the child's own
     # (written, so private to it) for the next fold to reuse.
-    assert _private_dirty(process.pid) - before > 90 << 20
+    assert process.pid is not None and _private_dirty(process.pid) - before > 90 << 20
 
 
 def _private_dirty(pid: int) -> int:
