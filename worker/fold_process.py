@@ -68,7 +68,12 @@ class FoldProcess:
         self._settled_rss: int | None = None
 
     def start(self) -> None:
-        """Fork the child unless a live one is there; call it while the worker has no other threads."""
+        """Fork the child unless a live one is there.
+
+        The worker starts it before any thread of its own exists. A replacement forked inside a
+        job runs beside the heartbeat thread, which holds nothing the child uses: the child never
+        touches Redis, gets a fresh DB pool, and Python re-creates the logging locks in a child.
+        """
         if self.pid is not None:
             if _alive(self.pid):
                 return
