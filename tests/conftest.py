@@ -70,13 +70,8 @@ def _make_tokens(engine: Any) -> dict[str, str]:
 
 
 @contextlib.contextmanager
-def running_stack(
-    data_dir: Path, redis_url: str, queue: str, workers: int = 2, worker_env: dict[str, str] | None = None
-) -> Iterator[Stack]:
-    """Run the API (waitress, real HTTP) and ``workers`` real forking workers on one data dir.
-
-    ``worker_env`` adds to the workers' environment (e.g. ``SEALFOLD_INLINE_FOLD_CELLS``).
-    """
+def running_stack(data_dir: Path, redis_url: str, queue: str, workers: int = 2) -> Iterator[Stack]:
+    """Run the API (waitress, real HTTP) and ``workers`` real forking workers on one data dir."""
     from service.app import create_app
     from service.records.engine import make_engine
     from service.settings import Settings
@@ -88,7 +83,7 @@ def running_stack(
     settings = Settings.load(overrides, environ={})
     engine = make_engine(settings)
     tokens = _make_tokens(engine)
-    env = {**stack_environment(data_dir, redis_url, queue=queue), **(worker_env or {})}
+    env = stack_environment(data_dir, redis_url, queue=queue)
     log_path = data_dir / "workers.log"
     procs = [start_worker(env, f"{queue}-{i}", log_path) for i in range(workers)]
     app = create_app(overrides)

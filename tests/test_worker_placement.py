@@ -29,12 +29,11 @@ FOLD = "worker.jobs.run_fold"
 
 
 @pytest.fixture
-def diabetes_submission(ctx: WorkerContext) -> tuple[str, dict[str, Any]]:  # noqa: F811
+def diabetes_submission(ctx: WorkerContext) -> str:  # noqa: F811
     """A Ridge submission on diabetes (Efron et al. 2004, bundled with scikit-learn), 400 development rows."""
     frame = load_diabetes(as_frame=True).frame
     dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression")
-    config = config_document(dataset, "Ridge")
-    return add_submission(ctx, dataset, config), config
+    return add_submission(ctx, dataset, config_document(dataset, "Ridge"))
 
 
 def test_checks_summaries_verdicts_and_folds_run_here_and_the_holdout_never() -> None:
@@ -79,10 +78,10 @@ class RecordingRunner:
 
 @pytest.mark.parametrize("with_runner", [False, True])
 def test_a_burst_worker_runs_a_fold_job_in_its_own_process_or_hands_it_to_its_fold_runner(
-    ctx: WorkerContext, diabetes_submission: tuple[str, dict[str, Any]], burst: tuple[Queue, list[str]],  # noqa: F811
+    ctx: WorkerContext, diabetes_submission: str, burst: tuple[Queue, list[str]],  # noqa: F811
     with_runner: bool, monkeypatch: pytest.MonkeyPatch,
 ) -> None:
-    sub_id, _config = diabetes_submission
+    sub_id = diabetes_submission
     queue, forked = burst
     runner = RecordingRunner(ctx)
     runtime.install_fold_runner(runner if with_runner else None)

@@ -18,7 +18,7 @@ from sklearn.base import BaseEstimator, clone
 
 from service.vault.folds import Split
 from worker.development import DevelopmentData
-from worker.scoring import score_model, take_rows, training_sample
+from worker.scoring import rows_to_score, score_model, training_sample
 
 
 def curve_sizes(fractions: Sequence[float], n_train: int) -> list[int]:
@@ -52,9 +52,7 @@ def curve_points(
         point["train_scored_rows"] = n if scored is None else len(scored)
         try:
             fitted = clone(model).fit(X_part, y_part)
-            if scored is not None:
-                X_part, y_part = take_rows(X_part, scored), y_part[scored]
-            point["train_scores"], _ = score_model(fitted, X_part, y_part, metrics)
+            point["train_scores"], _ = score_model(fitted, *rows_to_score(X_part, y_part, scored), metrics)
             point["scores"], _ = score_model(fitted, X_test, y_test, metrics)
         except MemoryError:
             raise

@@ -159,7 +159,7 @@ def gather_rows(matrix: np.ndarray, rows: np.ndarray, columns: slice) -> np.ndar
     million rows of 20 columns, and the same bytes.
     """
     start, stop, step = columns.indices(matrix.shape[1])
-    if step != 1 or stop <= start or matrix.ndim != 2 or not matrix.flags.c_contiguous:
+    if step != 1 or stop <= start or not matrix.flags.c_contiguous:
         return np.asarray(matrix[rows, columns])
     width = (stop - start) * matrix.itemsize
     records = np.ndarray((matrix.shape[0],), dtype=np.dtype((np.void, width)), buffer=matrix,

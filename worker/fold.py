@@ -12,7 +12,7 @@ from typing import Any
 
 import numpy as np
 import sklearn
-from sklearn.base import BaseEstimator, clone
+from sklearn.base import BaseEstimator
 from sklearn.pipeline import Pipeline
 
 from service.records import datasets, submissions
@@ -21,7 +21,7 @@ from worker.curve import curve_points
 from worker.development import DevelopmentData, column_kinds, load_development, split_for
 from worker.pipeline import MODEL_STEP, baseline_estimator, build_pipeline, fit_in_place, output_feature_names
 from worker.runtime import WorkerContext
-from worker.scoring import score_model, take_rows, training_sample
+from worker.scoring import rows_to_score, score_model, training_sample
 from worker.search import build_model, search_record
 
 
@@ -71,10 +71,10 @@ def evaluate_fold(
     X_train, X_test = data.split_features(split.train, split.test)
     y_train, y_test = data.target_of(split.train), data.target_of(split.test)
     scored = training_sample(len(split.train), split.repeat, split.fold)
-    X_scored, y_scored = (X_train, y_train) if scored is None else (take_rows(X_train, scored), y_train[scored])
-    unfitted = clone(pipeline) if curve else pipeline  # the curve's fits score their own input: never in place
+    X_scored, y_scored = rows_to_score(X_train, y_train, scored)
+    model = pipeline
     if scored is not None and config is not None:
-        fit_in_place(pipeline, config["model"])  # X_train is this fold's private copy, never read again
+        model = fit_in_place(pipeline, config["model"])  # X_train is this fold's own copy, never read again
     fields: dict[str, Any] = {
         "train_rows": len(split.train), "test_rows": len(split.test),
         "baseline_scores": baseline_scores(task, y_train, y_test, metrics),
@@ -83,20 +83,20 @@ def evaluate_fold(
     }
     try:
         started = time.perf_counter()
-        pipeline.fit(X_train, y_train)
+        model.fit(X_train, y_train)
         fields["fit_seconds"] = time.perf_counter() - started
         started = time.perf_counter()
-        scores, undefined = score_model(pipeline, X_test, y_test, metrics)
+        scores, undefined = score_model(model, X_test, y_test, metrics)
         fields["score_seconds"] = time.perf_counter() - started
         # The training rows passed scikit-learn's finite checks in fit a moment ago; checking them
         # again costs ~10 ms per fold at a million rows and cannot change a score (a non-finite
         # prediction still scores None: see worker.scoring).
         with sklearn.config_context(assume_finite=True):
-            fields["train_scores"], _ = score_model(pipeline, X_scored, y_scored, metrics)
+            fields["train_scores"], _ = score_model(model, X_scored, y_scored, metrics)
         if config is not None:
-            fields["search"] = search_record(pipeline, config)
+            fields["search"] = search_record(model, config)
         if linear:
-            fields["coefficients"] = coefficients(getattr(pipeline, "best_estimator_", pipeline), data.features,
+            fields["coefficients"] = coefficients(getattr(model, "best_estimator_", model), data.features,
                                                   target)
     except MemoryError:
         raise  # a crash of the worker, not an answer about the model
@@ -105,7 +105,7 @@ def evaluate_fold(
         return fields
     fields.update(status="ok", scores=scores)
     if curve:
-        fields["curve"] = curve_points(unfitted, data, split, metrics, curve, full=fields,
+        fields["curve"] = curve_points(pipeline, data, split, metrics, curve, full=fields,
                                        reference_rows=curve_reference_rows)
     if undefined:
         fields["error"] = "; ".join(f"{name} undefined on this fold: {why}" for name, why in undefined.items())

@@ -15,7 +15,7 @@ import importlib
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-from sklearn.base import BaseEstimator
+from sklearn.base import BaseEstimator, clone
 from sklearn.compose import ColumnTransformer
 from sklearn.dummy import DummyClassifier, DummyRegressor
 from sklearn.pipeline import Pipeline
@@ -158,19 +158,20 @@ def baseline_description(task: str) -> dict[str, Any]:
 
 
 def fit_in_place(model: BaseEstimator, model_doc: Mapping[str, Any]) -> BaseEstimator:
-    """Let the final estimator overwrite its training matrix (``copy_X=False``) unless the submission chose.
+    """Return a copy of ``model`` whose final estimator may overwrite its training matrix (``copy_X=False``).
 
     Only for a fit whose input the service never reads again and that scikit-learn hands the
     estimator as a private array: the holdout refit, whose rows are the read-only memory map
     (copied by scikit-learn's validation into a writeable array before the estimator sees them)
-    or the fresh output of the preprocessing. Linear models then centre that array in place instead
-    of copying it once more -- some 25 ms and 160 MB at a million rows of 20 features -- and their
-    coefficients are the same to the last bit (a test checks). A nested search is left alone: it
-    refits on one matrix many times.
+    or the fresh output of the preprocessing, and a fold whose training scores come from a copied
+    sample. Linear models then centre that array in place instead of copying it once more -- some
+    25 ms and 160 MB at a million rows of 20 features -- and their coefficients are the same to the
+    last bit (a test checks). ``model`` itself is left as it is (a learning curve clones it and
+    scores its own input). A nested search, an estimator without ``copy_X`` and a submission that
+    set ``copy_X`` get ``model`` back unchanged.
     """
     if not isinstance(model, Pipeline) or "copy_X" in (model_doc.get("params") or {}):
         return model
-    estimator = model.named_steps[MODEL_STEP]
-    if "copy_X" in estimator.get_params(deep=False):
-        estimator.set_params(copy_X=False)
-    return model
+    if "copy_X" not in model.named_steps[MODEL_STEP].get_params(deep=False):
+        return model
+    return clone(model).set_params(**{f"{MODEL_STEP}__copy_X": False})

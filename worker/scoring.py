@@ -131,9 +131,11 @@ def training_sample(n_train: int, repeat: int, fold: int, limit: int | None = No
     return np.flatnonzero(draws < limit / n_train)
 
 
-def take_rows(X: Any, rows: np.ndarray) -> Any:
-    """Copy the rows at positions ``rows`` of a numpy matrix or a pandas frame."""
-    return X.iloc[rows] if hasattr(X, "iloc") else X[rows]
+def rows_to_score(X: Any, y: np.ndarray, sample: np.ndarray | None) -> tuple[Any, np.ndarray]:
+    """Return the training rows to score: all of them, or copies of the ``training_sample`` positions."""
+    if sample is None:
+        return X, y
+    return (X.iloc[sample] if hasattr(X, "iloc") else X[sample]), y[sample]
 
 
 def per_example(name: str, y_true: Any, pred: Any, proba: Any, classes: Any) -> np.ndarray | None:
