@@ -56,7 +56,7 @@ from sklearn.dummy import DummyRegressor
 from sklearn.linear_model import Ridge
 from sklearn.model_selection import cross_validate
 
-from service import embedded
+from service.cli import embedded
 from service.records.engine import make_engine
 from service.records.keys import create_key
 from service.settings import Settings

@@ -130,7 +130,7 @@ def dataset(api: Api, diabetes_csv: bytes) -> dict[str, Any]:
 @pytest.fixture
 def worker_says_ok(monkeypatch: pytest.MonkeyPatch) -> list[dict[str, Any]]:
     """Answer the worker's configuration check with "ok" and keep the documents it was sent."""
-    from service import dispatch
+    from service.submission import dispatch
 
     asked: list[dict[str, Any]] = []
 

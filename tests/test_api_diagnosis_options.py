@@ -6,7 +6,7 @@ from typing import TYPE_CHECKING, Any
 
 import pytest
 
-from service.configs import MAX_CANDIDATES
+from service.submission.config import MAX_CANDIDATES
 from tests.test_api_submissions import _body, _count
 
 if TYPE_CHECKING:

@@ -8,7 +8,7 @@ from typing import TYPE_CHECKING, Any
 
 import pytest
 
-from service.policy import default_policy
+from service.gate.policy import default_policy
 from service.records import audit, reviews
 from tests.support.reviews import RAW_HOLDOUT, make_submission, verdict
 

@@ -13,10 +13,10 @@ from rq.serializers import JSONSerializer
 from sklearn.model_selection import KFold
 from sqlalchemy import func, select
 
-from service import dispatch
 from service.api.schemas import SubmissionSchema
 from service.records import reviews, submissions
 from service.records.tables import submissions as submissions_table
+from service.submission import dispatch
 from service.vault.store import load_development_frame
 
 if TYPE_CHECKING:

@@ -15,7 +15,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from service import cli, demo, embedded
+from service.cli import demo, embedded, main
 from tests.support.http import Client
 from tests.support.servers import free_port
 
@@ -31,14 +31,14 @@ def _sealfold_argv() -> list[str]:
 
 
 def test_up_defaults() -> None:
-    args = cli.build_parser().parse_args(["up"])
+    args = main.build_parser().parse_args(["up"])
     assert (args.host, args.port, args.workers, args.data_dir, args.no_demo) == (
         "127.0.0.1", 8080, 2, "./var", False,
     )
 
 
 def test_up_flags() -> None:
-    args = cli.build_parser().parse_args(
+    args = main.build_parser().parse_args(
         ["up", "--host", "0.0.0.0", "--port", "0", "--workers", "3", "--data-dir", "/tmp/x", "--no-demo"]
     )
     assert (args.host, args.port, args.workers, args.data_dir, args.no_demo) == ("0.0.0.0", 0, 3, "/tmp/x", True)
@@ -50,7 +50,7 @@ def test_up_flags() -> None:
 ])
 def test_bad_arguments_exit_2(argv: list[str], capsys: pytest.CaptureFixture[str]) -> None:
     with pytest.raises(SystemExit) as exited:
-        cli.build_parser().parse_args(argv)
+        main.build_parser().parse_args(argv)
     assert exited.value.code == 2
     assert capsys.readouterr().err  # argparse said why
 
@@ -58,14 +58,14 @@ def test_bad_arguments_exit_2(argv: list[str], capsys: pytest.CaptureFixture[str
 def test_worker_execs_python_m_worker(monkeypatch: pytest.MonkeyPatch) -> None:
     seen: list[list[str]] = []
     monkeypatch.setattr(os, "execv", lambda path, argv: seen.append([path, *argv]))
-    assert cli.main(["worker", "--burst", "--name", "w7"]) == 0
+    assert main.main(["worker", "--burst", "--name", "w7"]) == 0
     assert seen == [[sys.executable, sys.executable, "-m", "worker", "--burst", "--name", "w7"]]
-    assert cli.worker_argv(argparse.Namespace(burst=False, name=None)) == [sys.executable, "-m", "worker"]
+    assert main.worker_argv(argparse.Namespace(burst=False, name=None)) == [sys.executable, "-m", "worker"]
 
 
 def test_cli_module_imports_nothing_heavy() -> None:
     """The command line stays light: no Flask, scikit-learn, pandas or worker at import time."""
-    code = ("import sys, service.cli\n"
+    code = ("import sys, service.cli.main\n"
             "print(sorted(m for m in ('flask', 'sklearn', 'pandas', 'worker') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "[]", out.stdout + out.stderr

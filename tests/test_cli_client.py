@@ -22,7 +22,7 @@ from typing import TYPE_CHECKING, Any
 
 import pytest
 
-from service import cli, client_commands
+from service.cli import main, remote
 from tests.support.reviews import RAW_HOLDOUT, make_submission
 from tests.support.servers import ServedApp, free_port
 
@@ -282,7 +282,7 @@ def test_progress_is_a_bar_on_a_terminal(stub: Stub, config_file: Path) -> None:
 
 def test_the_client_stays_light() -> None:
     """The client needs no server-side library: it must work from a bare CI runner."""
-    code = ("import sys\nfrom service import cli, client_commands\n"
+    code = ("import sys\nfrom service.cli import main, remote\n"
             "print(sorted({m.split('.')[0] for m in sys.modules} & {'flask', 'sqlalchemy', 'redis', 'numpy', "
             "'pandas', 'sklearn', 'rq', 'marshmallow'}))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
@@ -292,7 +292,7 @@ def test_the_client_stays_light() -> None:
 def test_text_from_the_service_cannot_drive_the_terminal() -> None:
     doc = document("succeeded", 5, "fail")
     doc["label"] = "evil\x1b[2J\x1b]0;owned\x07"
-    text = client_commands.summary_text(doc, "http://x")
+    text = remote.summary_text(doc, "http://x")
     assert "\x1b" not in text and "\x07" not in text and "evil" in text
 
 
@@ -353,7 +353,7 @@ def test_status_board_and_datasets_against_the_real_api(api: Api, dataset: dict[
 
 
 def test_cli_parses_the_client_commands() -> None:
-    args = cli.build_parser().parse_args(["submit", "c.json", "--wait", "--timeout", "90", "--dataset", "ds_1"])
+    args = main.build_parser().parse_args(["submit", "c.json", "--wait", "--timeout", "90", "--dataset", "ds_1"])
     assert (args.command, args.config, args.wait, args.timeout, args.dataset, args.json) == (
         "submit", "c.json", True, 90.0, "ds_1", False)
-    assert cli.build_parser().parse_args(["board", "ds_1"]).limit == 20
+    assert main.build_parser().parse_args(["board", "ds_1"]).limit == 20

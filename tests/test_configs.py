@@ -7,7 +7,8 @@ from typing import Any
 import pytest
 
 from service.catalog import load_catalog
-from service.configs import (
+from service.errors import ConfigRejected
+from service.submission.config import (
     DatasetRef,
     ModelSpec,
     PreprocessStep,
@@ -16,7 +17,6 @@ from service.configs import (
     config_fingerprint,
     resolve,
 )
-from service.errors import ConfigRejected
 
 DATASET: dict[str, Any] = {
     "id": "ds_1", "task": "regression", "target": "fuel_litres", "id_column": "route_id",
@@ -105,7 +105,7 @@ def test_fingerprint_follows_what_determines_the_result() -> None:
 
 
 def test_search_caps_count_the_learning_curve_sizes() -> None:
-    from service.configs import SearchSpec
+    from service.submission.config import SearchSpec
 
     model = ModelSpec("Ridge", features=("distance_km",))
     grid = SearchSpec(grid={"alpha": tuple(float(a) for a in range(40))}, inner_folds=5)  # 40 x 5 x 5 = 1000 fits

@@ -8,7 +8,7 @@ from typing import Any
 import pytest
 
 from service.errors import InputError
-from service.policy import Policy, ThresholdoutParams, default_policy, parse_policy
+from service.gate.policy import Policy, ThresholdoutParams, default_policy, parse_policy
 
 
 def _problems(doc: dict[str, Any], task: str = "regression", allowed: list[str] | None = None) -> dict[str, str]:

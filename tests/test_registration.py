@@ -18,18 +18,17 @@ from scipy import stats
 from sklearn.model_selection import StratifiedKFold, train_test_split
 from sqlalchemy import Engine, func, select
 
-from service import registration
 from service.errors import DatasetRejected, Forbidden, PayloadTooLarge, SealBroken, SealfoldError, UnsupportedFormat
 from service.records import datasets
 from service.records.engine import make_engine
 from service.records.keys import KeyInfo, create_key
 from service.records.tables import audit_events
 from service.records.tables import datasets as datasets_table
-from service.registration import DatasetDeclaration, register_dataset
 from service.settings import Settings
-from service.vault import balance, sealing, store
+from service.vault import balance, registration, sealing, store
 from service.vault.fingerprint import fingerprint_frame
 from service.vault.folds import FoldPlan, fold_splits, split_keys_from_frame
+from service.vault.registration import DatasetDeclaration, register_dataset
 from tests.vault_fixtures import assert_disjoint_and_covering, breast_cancer_frame, diabetes_frame, iris_frame
 
 

@@ -11,8 +11,8 @@ from typing import Any
 import numpy as np
 import pytest
 
-from service.policy import Policy, ReleaseParams, ThresholdoutParams, default_policy
-from service.release import HoldoutScores, Release, budget_status, release
+from service.gate.policy import Policy, ReleaseParams, ThresholdoutParams, default_policy
+from service.gate.release import HoldoutScores, Release, budget_status, release
 
 NOW = datetime(2026, 3, 1, 12, 0, tzinfo=UTC)
 RMSE = default_policy("regression")

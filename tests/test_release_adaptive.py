@@ -22,8 +22,8 @@ from datetime import UTC, datetime
 import numpy as np
 import pytest
 
-from service.policy import ReleaseParams, ThresholdoutParams, default_policy
-from service.release import HoldoutScores, release
+from service.gate.policy import ReleaseParams, ThresholdoutParams, default_policy
+from service.gate.release import HoldoutScores, release
 
 N_DEV, N_HOLDOUT, N_FRESH = 400, 200, 20_000
 N_REAL, N_NOISE, ROUNDS, ADD_PER_ROUND, FOLDS = 3, 100, 200, 3, 5

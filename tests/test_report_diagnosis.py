@@ -8,8 +8,8 @@ from typing import Any, cast
 
 import pytest
 
-from service.report.diagnosis import curve_chart, diagnosis_section
 from service.report.facts import ReportFacts
+from service.report.fitting import curve_chart, diagnosis_section
 
 
 def facts(summary: dict[str, Any]) -> ReportFacts:

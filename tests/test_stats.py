@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy import stats as sps
 
-from service.stats import (
+from service.gate.statistics import (
     CORRECTED_RESAMPLED_T,
     FIVE_BY_TWO_CV,
     PAIRED_T,

@@ -10,9 +10,9 @@ import numpy as np
 import pytest
 from scipy import stats as sps
 
-from service.policy import HoldoutGap, Policy, default_policy
-from service.stats import FIVE_BY_TWO_CV
-from service.verdict import Cell, ChampionFolds, PlanFacts, judge
+from service.gate.policy import HoldoutGap, Policy, default_policy
+from service.gate.statistics import FIVE_BY_TWO_CV
+from service.gate.verdict import Cell, ChampionFolds, PlanFacts, judge
 
 KEY = ("kfold", 10, 42)
 CELLS = [(0, f) for f in range(10)]

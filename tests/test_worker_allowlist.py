@@ -21,9 +21,10 @@ from rq.serializers import JSONSerializer
 from rq.worker import Worker
 
 from tests.worker_fixtures import ctx  # noqa: F401
-from worker import jobs, main
-from worker.main import ALLOWED_CALLBACKS, AllowListedJob, RefusedJob, build_worker
-from worker.runtime import WorkerContext
+from worker import jobs
+from worker.jobs.runtime import WorkerContext
+from worker.process import main
+from worker.process.main import ALLOWED_CALLBACKS, AllowListedJob, RefusedJob, build_worker
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -41,7 +42,7 @@ def test_allowed_names_resolve_to_the_job_functions() -> None:
 
 
 @pytest.mark.parametrize("name", ["os.system", "subprocess.check_output", "worker.jobs.current",
-                                  "worker.holdout.score_holdout", "builtins.eval"])
+                                  "worker.jobs.holdout.score_holdout", "builtins.eval"])
 def test_other_names_are_refused_without_retries(name: str) -> None:
     job = _job(fakeredis.FakeRedis(), name)
     with pytest.raises(RefusedJob, match="does not run"):
@@ -108,7 +109,7 @@ def test_checks_summaries_verdicts_and_folds_run_in_the_worker_process_and_every
     settings = dataclasses.replace(ctx.settings, queue_name=f"inproc-{uuid.uuid4().hex[:8]}")
     redis = Redis.from_url(redis_url)
     forked: list[str | None] = []
-    # RQ's forking execute_job, which SealfoldWorker defers to for every job worker.placement forks.
+    # RQ's forking execute_job, which SealfoldWorker defers to for every job worker.process.placement forks.
     monkeypatch.setattr(Worker, "execute_job", lambda _self, job, _queue: forked.append(job.func_name))
     monkeypatch.setattr(main, "reconcile_once", lambda _redis: 0)  # keep the shared Redis's lock untouched
     check = Queue(settings.check_queue_name, connection=redis, serializer=JSONSerializer).enqueue_call(

@@ -12,7 +12,7 @@ import pytest
 from sklearn.base import clone
 
 from service.catalog import CATALOG_FILE, load_catalog, parse_catalog
-from worker.catalog_gen import ESTIMATORS, TRANSFORMERS, build_catalog, catalog_drift, estimator_class, render
+from worker.learning.catalog_gen import ESTIMATORS, TRANSFORMERS, build_catalog, catalog_drift, estimator_class, render
 
 # The allow-list as the issue states it.
 ISSUE_ESTIMATORS = {
@@ -28,7 +28,7 @@ ISSUE_TRANSFORMERS = {"StandardScaler", "MinMaxScaler", "RobustScaler", "OneHotE
 
 def test_committed_catalog_matches_installed_sklearn() -> None:
     drift = catalog_drift()
-    assert drift == [], "regenerate with `python -m worker.catalog_gen`:\n" + "\n".join(drift)
+    assert drift == [], "regenerate with `python -m worker.learning.catalog_gen`:\n" + "\n".join(drift)
 
 
 def test_drift_is_reported_when_a_default_changes(tmp_path: Path) -> None:
@@ -47,7 +47,7 @@ def test_generation_is_deterministic_across_hash_seeds() -> None:
     # StrOptions keeps its options in a set, whose order changes with PYTHONHASHSEED.
     outputs = {
         subprocess.run(
-            [sys.executable, "-c", "import sys; from worker.catalog_gen import build_catalog, render; "
+            [sys.executable, "-c", "import sys; from worker.learning.catalog_gen import build_catalog, render; "
              "sys.stdout.write(render(build_catalog()))"],
             env={"PYTHONHASHSEED": seed, "PATH": ""}, capture_output=True, text=True, check=True,
             cwd=Path(__file__).resolve().parent.parent,

@@ -13,7 +13,7 @@ from sklearn.utils._param_validation import InvalidParameterError
 
 from tests.worker_fixtures import add_dataset, config_document, ctx  # noqa: F401
 from worker import jobs
-from worker.runtime import WorkerContext
+from worker.jobs.runtime import WorkerContext
 
 
 @pytest.fixture

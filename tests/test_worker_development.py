@@ -9,8 +9,8 @@ import pytest
 from sklearn.datasets import load_diabetes
 
 from tests.worker_fixtures import add_dataset, ctx  # noqa: F401
-from worker.development import column_selector, gather_rows, load_development
-from worker.runtime import WorkerContext
+from worker.jobs.runtime import WorkerContext
+from worker.learning.development import column_selector, gather_rows, load_development
 
 
 @pytest.mark.parametrize("columns", [slice(0, 11), slice(2, 7), slice(10, 11), slice(0, 10), slice(3, 3)])

@@ -12,15 +12,15 @@ from sklearn.preprocessing import StandardScaler
 from sklearn.tree import DecisionTreeRegressor
 
 from service.records import submissions
-from service.submission_view import submission_document
+from service.submission.document import submission_document
 from service.vault.folds import FoldPlan, fold_splits, split_keys_from_frame
 from tests.test_worker_folds import REGRESSION_SCORING, SIGN, diabetes_parts, ridge_on_diabetes, run_all_folds
 from tests.worker_fixtures import add_dataset, add_submission, config_document, ctx  # noqa: F401
 from worker import jobs
-from worker import scoring as worker_scoring
-from worker.diagnosis import BIAS, NEITHER, VARIANCE
-from worker.runtime import WorkerContext
-from worker.scoring import training_sample
+from worker.jobs.runtime import WorkerContext
+from worker.learning import scoring as worker_scoring
+from worker.learning.fit_readings import BIAS, NEITHER, VARIANCE
+from worker.learning.scoring import training_sample
 
 
 def test_train_scores_equal_cross_validate_return_train_score(ctx: WorkerContext) -> None:  # noqa: F811

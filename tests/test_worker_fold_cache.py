@@ -15,8 +15,8 @@ from sklearn.model_selection import KFold, StratifiedKFold
 from service.vault import store
 from service.vault.folds import FoldPlan
 from tests.worker_fixtures import add_dataset, ctx  # noqa: F401
-from worker.development import fold_plan, load_development, split_for
-from worker.runtime import WorkerContext
+from worker.jobs.runtime import WorkerContext
+from worker.learning.development import fold_plan, load_development, split_for
 
 
 def _splits(ctx: WorkerContext, dataset: dict[str, object], validation: dict[str, object],  # noqa: F811

@@ -21,9 +21,9 @@ from sklearn.model_selection import KFold
 
 from service.records import submissions
 from tests.worker_fixtures import add_dataset, add_submission, config_document, ctx  # noqa: F401
-from worker import fold_process
-from worker.fold_process import FoldFailed, FoldProcess, FoldProcessDied
-from worker.runtime import WorkerContext
+from worker.jobs.runtime import WorkerContext
+from worker.process import fold_process
+from worker.process.fold_process import FoldFailed, FoldProcess, FoldProcessDied
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -190,7 +190,7 @@ def _private_dirty(pid: int) -> int:
 def test_the_child_dies_with_its_parent(tmp_path: Path) -> None:
     script = (
         "import os, sys\n"
-        "from worker.fold_process import FoldProcess\n"
+        "from worker.process.fold_process import FoldProcess\n"
         "p = FoldProcess(); p.start(); print(p.pid, flush=True)\n"
         "os._exit(0)\n"  # the worker vanishes without stopping its child
     )

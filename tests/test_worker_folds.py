@@ -18,8 +18,9 @@ from sklearn.preprocessing import OneHotEncoder, StandardScaler
 from service.records import submissions
 from service.vault.folds import FoldPlan, fold_splits, split_keys_from_frame
 from tests.worker_fixtures import add_dataset, add_submission, config_document, ctx  # noqa: F401
-from worker import jobs, runtime
-from worker.runtime import WorkerContext
+from worker import jobs
+from worker.jobs import runtime
+from worker.jobs.runtime import WorkerContext
 
 REGRESSION_SCORING = {"rmse": "neg_root_mean_squared_error", "mse": "neg_mean_squared_error",
                       "mae": "neg_mean_absolute_error", "r2": "r2"}

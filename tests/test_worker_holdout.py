@@ -20,9 +20,10 @@ from service.records import submissions
 from service.records.tables import holdout_scores
 from service.vault import store
 from tests.worker_fixtures import add_dataset, add_submission, config_document, ctx  # noqa: F401
-from worker import holdout, jobs
-from worker.judge import judge_submission
-from worker.runtime import WorkerContext
+from worker import jobs
+from worker.jobs import holdout
+from worker.jobs.runtime import WorkerContext
+from worker.jobs.verdict import judge_submission
 
 METRICS = ["rmse", "mae", "r2"]
 

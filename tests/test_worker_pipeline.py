@@ -14,8 +14,8 @@ from sklearn.pipeline import Pipeline, make_pipeline
 from sklearn.preprocessing import StandardScaler
 
 from service.errors import ConfigRejected
-from worker import runtime
-from worker.pipeline import build_pipeline, fit_in_place, output_feature_names
+from worker.jobs import runtime
+from worker.learning.pipeline import build_pipeline, fit_in_place, output_feature_names
 
 NUMERIC = {"a": "numeric", "b": "numeric", "c": "numeric"}
 

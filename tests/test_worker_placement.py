@@ -17,13 +17,14 @@ from rq.serializers import JSONSerializer
 from rq.worker import Worker
 from sklearn.datasets import load_diabetes
 
-from service import dispatch
 from service.records import submissions
+from service.submission import dispatch
 from tests.worker_fixtures import add_dataset, add_submission, config_document, ctx  # noqa: F401
-from worker import main, placement, runtime
-from worker.fold import run_fold
-from worker.main import build_worker
-from worker.runtime import WorkerContext
+from worker.jobs import runtime
+from worker.jobs.fold import run_fold
+from worker.jobs.runtime import WorkerContext
+from worker.process import main, placement
+from worker.process.main import build_worker
 
 FOLD = "worker.jobs.run_fold"
 
@@ -39,7 +40,7 @@ def diabetes_submission(ctx: WorkerContext) -> str:  # noqa: F811
 def test_checks_summaries_verdicts_and_folds_run_here_and_the_holdout_never() -> None:
     for name in ("worker.jobs.check_config", "worker.jobs.summarize", "worker.jobs.judge", FOLD):
         assert placement.runs_in_process(name)
-    for name in ("worker.jobs.score_holdout", "os.system", "worker.fold.run_fold", None):
+    for name in ("worker.jobs.score_holdout", "os.system", "worker.jobs.fold.run_fold", None):
         assert not placement.runs_in_process(name)
 
 

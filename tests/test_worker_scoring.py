@@ -11,8 +11,8 @@ from sklearn.linear_model import LinearRegression, LogisticRegression
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 
-from service.metrics_spec import METRICS
-from worker.scoring import METRIC_FUNCTIONS, compute, score_model
+from service.catalog.metrics import METRICS
+from worker.learning.scoring import METRIC_FUNCTIONS, compute, score_model
 
 Y_TRUE = [3, -0.5, 2, 7]
 Y_PRED = [2.5, 0.0, 2, 8]

@@ -24,7 +24,7 @@ from service.vault.folds import FoldPlan, fold_splits, split_keys_from_frame
 from tests.test_worker_folds import diabetes_parts, run_all_folds
 from tests.worker_fixtures import add_dataset, add_submission, config_document, ctx  # noqa: F401
 from worker import jobs
-from worker.runtime import WorkerContext
+from worker.jobs.runtime import WorkerContext
 
 ALPHAS = [0.01, 0.1, 1.0, 10.0, 100.0]
 

@@ -12,8 +12,8 @@ from sklearn.datasets import load_diabetes
 from service.records import submissions
 from tests.worker_fixtures import add_dataset, add_submission, config_document, ctx  # noqa: F401
 from worker import jobs
-from worker.runtime import WorkerContext
-from worker.summary import coefficient_summary, describe, summary_document
+from worker.jobs.runtime import WorkerContext
+from worker.jobs.summary import coefficient_summary, describe, summary_document
 
 
 def test_describe_uses_sample_std_and_a_t_interval() -> None:

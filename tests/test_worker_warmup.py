@@ -15,8 +15,8 @@ from sqlalchemy import QueuePool, func, select
 from service.records import submissions
 from service.records.tables import metadata
 from tests.worker_fixtures import add_dataset, add_submission, config_document, ctx  # noqa: F401
-from worker import warmup
-from worker.runtime import WorkerContext
+from worker.jobs.runtime import WorkerContext
+from worker.process import warmup
 
 
 @pytest.fixture(autouse=True)
@@ -61,6 +61,6 @@ def test_a_failing_warm_up_is_logged_not_raised(
         raise RuntimeError("no luck")
 
     monkeypatch.setattr(warmup, "evaluate_fold", broken)
-    with caplog.at_level(logging.WARNING, logger="worker.warmup"):
+    with caplog.at_level(logging.WARNING, logger="worker.process.warmup"):
         warmup.warm_up(ctx)
     assert "warm-up failed" in caplog.text

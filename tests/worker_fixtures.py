@@ -18,7 +18,7 @@ from service.settings import Settings
 from service.vault import store
 from service.vault.fingerprint import fingerprint_frame
 from service.vault.tables import column_kinds
-from worker import runtime
+from worker.jobs import runtime
 
 
 @pytest.fixture
@@ -65,7 +65,7 @@ def config_document(
     features: Sequence[str] | None = None, preprocess: Sequence[dict[str, Any]] = (),
     metrics: Sequence[str] = ("rmse",), repeats: int = 1,
 ) -> dict[str, Any]:
-    """A normalised configuration document in the shape service.configs.resolve produces."""
+    """A normalised configuration document in the shape service.submission.config.resolve produces."""
     if features is None:
         features = [c["name"] for c in dataset["columns"] if c["name"] != dataset["target"]]
     plan = dataset["fold_plan"]

@@ -10,7 +10,7 @@ for _name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_name, "1")
 
 from service.settings import Settings  # noqa: E402
-from worker.main import run_worker  # noqa: E402
+from worker.process.main import run_worker  # noqa: E402
 
 
 def main(argv: list[str] | None = None) -> None:

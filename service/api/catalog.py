@@ -9,7 +9,7 @@ from flask import Response
 from service.api import SealfoldBlueprint, json_response
 from service.api.schemas import CatalogSchema
 from service.catalog import load_catalog
-from service.metrics_spec import DEFAULT_METRICS, METRICS
+from service.catalog.metrics import DEFAULT_METRICS, METRICS
 
 blp = SealfoldBlueprint("catalog", __name__, url_prefix="/v1/catalog",
                         description="Allowed estimators, transformers and metrics.")

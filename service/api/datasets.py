@@ -5,7 +5,7 @@ table of the seal reaches stewards only. Another team's dataset stays a 404 (``a
 
 Registration takes a multipart upload or, as JSON, a path under the configured import root. An
 upload is spooled to a temporary file under the data dir (not held in memory twice) and removed
-afterwards whatever happens; ``service.registration`` removes its own partial files on failure.
+afterwards whatever happens; ``service.vault.registration`` removes its own partial files on failure.
 """
 
 from __future__ import annotations
@@ -31,8 +31,8 @@ from service.api.schemas import (
 )
 from service.errors import InputError, UnsupportedFormat, field_error
 from service.records import datasets
-from service.registration import DatasetDeclaration, register_dataset
 from service.settings import Settings
+from service.vault.registration import DatasetDeclaration, register_dataset
 from service.vault.store import iter_development_csv
 
 blp = SealfoldBlueprint("datasets", __name__, url_prefix="/v1/datasets",

@@ -2,7 +2,7 @@
 
 Every route is team-scoped through ``auth.team_dataset`` (another team's dataset is a 404 like an
 unknown id). Setting the policy and promoting a champion need a steward; the records functions
-audit both. The policy's rules are ``service.policy``'s; this module only moves documents.
+audit both. The policy's rules are ``service.gate.policy``'s; this module only moves documents.
 """
 
 from __future__ import annotations
@@ -13,7 +13,6 @@ from flask import Response, request
 from flask.views import MethodView
 from werkzeug.exceptions import BadRequest
 
-from service import board
 from service.api import SealfoldBlueprint, json_response, service_context
 from service.api.auth import current_key, team_dataset
 from service.api.review_schemas import (
@@ -25,9 +24,10 @@ from service.api.review_schemas import (
     PolicySchema,
 )
 from service.errors import Conflict, FieldProblem, InputError, NotFound, UnsupportedFormat, field_error
-from service.policy import parse_policy
+from service.gate import board
+from service.gate.policy import parse_policy
+from service.gate.review_state import policy_in_force
 from service.records import reviews, submissions
-from service.review_state import policy_in_force
 
 blp = SealfoldBlueprint("reviews", __name__, url_prefix="/v1/datasets",
                         description="A dataset's review policy, champion and board.")

@@ -13,7 +13,8 @@ from typing import Any
 
 from marshmallow import EXCLUDE, Schema, ValidationError, fields, post_load, pre_load, validate, validates_schema
 
-from service.configs import (
+from service.records.keys import ROLES
+from service.submission.config import (
     LEARNING_CURVE_DEFAULT,
     MAX_CANDIDATES,
     MAX_FOLDS,
@@ -26,7 +27,6 @@ from service.configs import (
     SubmissionRequest,
     ValidationSpec,
 )
-from service.records.keys import ROLES
 from service.vault import folds as fold_plans
 
 TASKS = ("regression", "classification")
@@ -57,7 +57,7 @@ class ProblemSchema(Schema):
 class DatasetDeclarationSchema(Schema):
     """What a steward declares about a dataset; omitted options take the server's defaults.
 
-    Only types are checked here; ``service.registration`` judges the values (names a column, in range).
+    Only types are checked here; ``service.vault.registration`` judges the values (names a column, in range).
     """
 
     name = fields.String(required=True, metadata={"maxLength": 200})

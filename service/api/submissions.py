@@ -1,7 +1,7 @@
 """Submission endpoints: submit (202), list, read with ETag, fold membership, cancel.
 
 Accepting a submission -- dataset scoping, fingerprint pin, configuration checks, the insert and
-the enqueue -- is ``service.submitting``'s; the document is ``service.submission_view``'s. This
+the enqueue -- is ``service.submission.intake``'s; the document is ``service.submission.document``'s. This
 module only parses, authorizes, and shapes HTTP around them.
 """
 
@@ -18,7 +18,6 @@ from flask import Response, request
 from flask.views import MethodView
 from marshmallow import EXCLUDE, Schema, fields, validate
 
-from service import submitting
 from service.api import SealfoldBlueprint, json_response, service_context
 from service.api.auth import current_key, team_dataset, team_submission
 from service.api.schemas import (
@@ -28,11 +27,12 @@ from service.api.schemas import (
     SubmissionRequestSchema,
     SubmissionSchema,
 )
-from service.configs import SubmissionRequest
 from service.errors import InputError, field_error
 from service.records import submissions
 from service.records.engine import as_utc, iso
-from service.submission_view import submission_document
+from service.submission import intake
+from service.submission.config import SubmissionRequest
+from service.submission.document import submission_document
 from service.vault.folds import FoldPlan, fold_splits, split_keys_from_frame
 from service.vault.store import load_development_frame
 
@@ -97,7 +97,7 @@ class SubmissionCollection(MethodView):
     def post(self, headers: dict[str, Any], submission: SubmissionRequest) -> Response:
         """Submit a model configuration for review."""
         ctx = service_context()
-        row, created = submitting.submit(
+        row, created = intake.submit(
             ctx.engine, ctx.redis, ctx.settings, current_key(), submission, headers["idempotency_key"]
         )
         document = submission_document(ctx.engine, row)
@@ -145,7 +145,7 @@ class SubmissionItem(MethodView):
     def delete(self, sub_id: str) -> Response:
         """Cancel a queued or running submission (its owner, or a steward of the team)."""
         ctx = service_context()
-        row = submitting.cancel(ctx.engine, ctx.redis, ctx.settings, current_key(), sub_id)
+        row = intake.cancel(ctx.engine, ctx.redis, ctx.settings, current_key(), sub_id)
         return json_response(submission_document(ctx.engine, row))
 
 

@@ -12,9 +12,9 @@ from typing import Any
 
 from sqlalchemy import Engine
 
-from service.metrics_spec import METRICS
+from service.catalog.metrics import METRICS
+from service.gate.review_state import holdout_part, policy_in_force
 from service.records import datasets, keys, reviews, submissions
-from service.review_state import holdout_part, policy_in_force
 
 _PLAN_KEYS = ("scheme", "folds", "seed", "repeats")
 

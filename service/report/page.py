@@ -24,8 +24,8 @@ from service.report.charts import (
     fold_chart,
     interval_chart,
 )
-from service.report.diagnosis import diagnosis_section
 from service.report.facts import ReportFacts
+from service.report.fitting import diagnosis_section
 from service.report.markup import Markup, element
 
 TESTS = {

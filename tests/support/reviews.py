@@ -14,7 +14,7 @@ from sqlalchemy import Engine
 
 from service.ids import new_id
 from service.records import reviews, submissions
-from worker.summary import summary_document
+from worker.jobs.summary import summary_document
 
 RAW_HOLDOUT = 987.654321  # stored as the raw holdout score; must never appear in any answer
 

@@ -1,0 +1,5 @@
+"""``python -m service.cli``: the ``sealfold`` command without the installed script."""
+
+from service.cli.main import main
+
+raise SystemExit(main())

@@ -1,0 +1,312 @@
+"""The ``sealfold`` command: ``up`` (the embedded stack), ``worker``, ``keys create``, and the client.
+
+The client commands (``submit``, ``status``, ``board``, ``datasets``) talk HTTP to a service
+anywhere (``service.cli.remote``); the others run or administer a local deployment.
+
+Nothing heavy is imported at module level: ``sealfold keys create`` must answer quickly, and the
+service package never imports Flask or scikit-learn outside ``service.api``/``service.app``. The
+worker command execs ``python -m worker`` rather than importing it, keeping the dependency
+direction one way (``worker`` imports ``service``, never the reverse).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+from collections.abc import Sequence
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from sqlalchemy import Engine
+
+    from service.cli.embedded import Stack, Supervisor
+
+ROLES = ("submitter", "steward", "admin")
+
+
+def _port(raw: str) -> int:
+    value = int(raw)
+    if not 0 <= value <= 65535:
+        raise argparse.ArgumentTypeError(f"port must be between 0 and 65535 (0: any free port), got {value}")
+    return value
+
+
+def _workers(raw: str) -> int:
+    value = int(raw)
+    if not 1 <= value <= 64:
+        raise argparse.ArgumentTypeError(f"workers must be between 1 and 64, got {value}")
+    return value
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """Build the argument parser of every sub-command."""
+    parser = argparse.ArgumentParser(prog="sealfold", description="Review ML model submissions.")
+    commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    up = commands.add_parser(
+        "up", help="run the embedded stack (redis, API, workers) with a demo dataset",
+        description="Run redis-server, the API and workers as child processes until Ctrl-C. "
+        "REDIS_URL and DATABASE_URL, when set, replace the embedded Redis and SQLite.",
+    )
+    up.add_argument("--host", default="127.0.0.1", help="address the API listens on (default 127.0.0.1)")
+    up.add_argument("--port", type=_port, default=8080, help="API port (default 8080; 0 picks a free one)")
+    up.add_argument("--workers", type=_workers, default=2, help="number of workers (default 2)")
+    up.add_argument("--data-dir", default="./var", help="datasets, SQLite records, logs (default ./var)")
+    up.add_argument("--no-demo", action="store_true", help="do not register the demo dataset")
+
+    worker = commands.add_parser("worker", help="run one worker (python -m worker)")
+    worker.add_argument("--burst", action="store_true", help="exit once the queues are empty")
+    worker.add_argument("--name", help="worker name shown in RQ (default: generated)")
+
+    keys = commands.add_parser("keys", help="manage API keys")
+    key_commands = keys.add_subparsers(dest="keys_command", required=True, metavar="ACTION")
+    create = key_commands.add_parser(
+        "create", help="create a key and print only its token",
+        description="Create an API key in the records DB named by SEALFOLD_DATA_DIR / DATABASE_URL "
+        "and print only the token (it is shown once; only its hash is stored).",
+    )
+    create.add_argument("--team", required=True)
+    create.add_argument("--role", required=True, choices=ROLES)
+    create.add_argument("--name", default="", help="a label for the key")
+    add_client_commands(commands)
+    return parser
+
+
+def _seconds(raw: str) -> float:
+    value = float(raw)
+    if not 0 < value <= 7 * 24 * 3600:
+        raise argparse.ArgumentTypeError(f"must be between 0 and 604800 seconds, got {raw}")
+    return value
+
+
+def _poll_seconds(raw: str) -> float:
+    value = float(raw)
+    if not 0.05 <= value <= 600:
+        raise argparse.ArgumentTypeError(f"must be between 0.05 and 600 seconds, got {raw}")
+    return value
+
+
+def _entries(raw: str) -> int:
+    value = int(raw)
+    if not 1 <= value <= 10_000:
+        raise argparse.ArgumentTypeError(f"must be between 1 and 10000, got {value}")
+    return value
+
+
+CLIENT_EPILOG = ("exit codes: 0 passed (reading commands: answered); 1 failed, inconclusive, failed to run or "
+                 "canceled; 2 usage or a request the service refused (4xx); 3 the service unreachable or failing "
+                 "(connection refused, timeout, 5xx)")
+
+
+def add_client_commands(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    """Add submit, status, board and datasets, which talk HTTP to SEALFOLD_URL with SEALFOLD_KEY."""
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--url", help="service base URL (default: $SEALFOLD_URL)")
+    common.add_argument("--key", help="API key (default: $SEALFOLD_KEY; prefer the variable, flags show in ps)")
+    common.add_argument("--json", action="store_true", help="print the JSON document instead of a summary")
+    submit = commands.add_parser(
+        "submit", parents=[common], help="submit a model configuration for review", epilog=CLIENT_EPILOG,
+        description="POST CONFIG.json (- for stdin) as a submission. The Idempotency-Key is derived from the "
+        "file and the dataset, so rerunning the same job returns the first submission. Without --wait, print "
+        "its id; with --wait, show fold progress on stderr and exit by the verdict.",
+    )
+    submit.add_argument("config", metavar="CONFIG.json")
+    submit.add_argument("--dataset", help="dataset id, replacing the one in the file")
+    submit.add_argument("--wait", action="store_true", help="wait for the verdict; the exit code follows it")
+    submit.add_argument("--timeout", type=_seconds, default=3600.0,
+                        help="seconds to wait with --wait before giving up with exit 3 (default 3600)")
+    submit.add_argument("--poll", type=_poll_seconds, default=1.0, help="seconds between polls (default 1)")
+    submit.add_argument("--idempotency-key", help="use this key instead of the derived one")
+    status = commands.add_parser("status", parents=[common], help="show one submission", epilog=CLIENT_EPILOG)
+    status.add_argument("id", metavar="ID")
+    board = commands.add_parser("board", parents=[common], help="show a dataset's board", epilog=CLIENT_EPILOG)
+    board.add_argument("dataset", metavar="DATASET")
+    board.add_argument("--limit", type=_entries, default=20, help="entries to show (default 20)")
+    commands.add_parser("datasets", parents=[common], help="list the team's datasets", epilog=CLIENT_EPILOG)
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line; return the process exit code."""
+    args = build_parser().parse_args(argv)
+    if args.command == "up":
+        return cmd_up(args)
+    if args.command == "worker":
+        return cmd_worker(args)
+    if args.command in ("submit", "status", "board", "datasets"):
+        from service.cli import remote
+
+        return remote.run(args)
+    return cmd_keys_create(args)
+
+
+def worker_argv(args: argparse.Namespace) -> list[str]:
+    """The argv ``sealfold worker`` execs into."""
+    argv = [sys.executable, "-m", "worker"]
+    if args.burst:
+        argv.append("--burst")
+    if args.name:
+        argv += ["--name", args.name]
+    return argv
+
+
+def cmd_worker(args: argparse.Namespace) -> int:
+    """Replace this process with ``python -m worker`` (same interpreter, same environment)."""
+    argv = worker_argv(args)
+    os.execv(argv[0], argv)
+    return 0  # not reached: execv does not return
+
+
+def cmd_keys_create(args: argparse.Namespace) -> int:
+    """Create a key and print only its token, so scripts can capture it."""
+    from service.errors import SealfoldError
+    from service.records.engine import make_engine
+    from service.records.keys import create_key
+    from service.settings import Settings
+
+    try:
+        engine = make_engine(Settings.load())
+        try:
+            _info, token = create_key(engine, args.team, args.role, args.name)
+        finally:
+            engine.dispose()
+    except SealfoldError as exc:
+        print(f"sealfold keys create: {exc.detail}", file=sys.stderr)
+        return 2
+    print(token)
+    return 0
+
+
+def cmd_up(args: argparse.Namespace) -> int:
+    """Run the embedded stack until Ctrl-C/SIGTERM (exit 0) or until a child dies (exit 1)."""
+    from pathlib import Path
+
+    from service.cli import embedded
+
+    options = embedded.StackOptions(
+        data_dir=Path(args.data_dir), host=args.host, port=args.port, workers=args.workers,
+        redis_url=os.environ.get("REDIS_URL", ""), database_url=os.environ.get("DATABASE_URL", ""),
+    )
+    sup = embedded.Supervisor()
+    sup.install_signal_handlers()
+    with sup:
+        try:
+            stack = embedded.start_stack(sup, options)
+            engine = _engine_for(stack)
+            try:
+                tokens = _create_demo_keys(engine)
+                dataset = None if args.no_demo else _ensure_demo_dataset(sup, stack, engine, tokens["steward"])
+            finally:
+                engine.dispose()
+            print(banner(stack, tokens, dataset), flush=True)
+            sup.run_until_stopped()
+            print("sealfold: stopping", file=sys.stderr, flush=True)
+            return 0
+        except embedded.StopRequested:
+            print("sealfold: stopping", file=sys.stderr, flush=True)
+            return 0
+        except embedded.ChildExited as exc:
+            tail = embedded.log_tail(exc.child.log_path)
+            print(f"sealfold: {exc}; stopping the stack. Last lines of {exc.child.log_path}:\n{tail}",
+                  file=sys.stderr, flush=True)
+            return 1
+        except embedded.StackError as exc:
+            print(f"sealfold up: {exc}", file=sys.stderr, flush=True)
+            return 1
+
+
+def _engine_for(stack: Stack) -> Engine:
+    from service.records.engine import make_engine
+    from service.settings import Settings
+
+    return make_engine(Settings.load(environ=stack.env))
+
+
+def _create_demo_keys(engine: Engine) -> dict[str, str]:
+    """Create a steward and a submitter key for the demo team; tokens are shown once, never stored."""
+    from service.cli.demo import DEMO_TEAM
+    from service.records.keys import create_key
+
+    return {
+        role: create_key(engine, DEMO_TEAM, role, f"demo {role} (sealfold up)")[1]
+        for role in ("steward", "submitter")
+    }
+
+
+def _ensure_demo_dataset(sup: Supervisor, stack: Stack, engine: Engine, steward_token: str) -> dict[str, Any]:
+    """Reuse the demo dataset of this data dir, or write the demo CSV and register it over HTTP."""
+    from service.cli import demo
+    from service.records import datasets
+    from service.settings import Settings
+    from service.vault.store import dataset_paths
+
+    existing = datasets.find_by_name(engine, demo.DEMO_TEAM, demo.DEMO_NAME)
+    if existing is not None:
+        # With a shared DATABASE_URL the record may belong to another data dir: reuse only our own.
+        paths = dataset_paths(Settings.load(environ=stack.env), existing["id"])
+        if paths.development.exists() and paths.sealed_holdout.exists():
+            return existing
+    csv_path = demo.write_demo_csv(stack.options.data_dir)
+    sup.check()
+    from service.cli.embedded import register_dataset
+
+    return register_dataset(stack.base_url, steward_token, demo.demo_declaration(), csv_path)
+
+
+def banner(stack: Stack, tokens: dict[str, str], dataset: dict[str, Any] | None) -> str:
+    """The text ``sealfold up`` prints once the stack is ready."""
+    from service.cli.demo import demo_submission
+
+    lines = [
+        f"sealfold is up at {stack.base_url}",
+        f"  data dir:  {stack.options.data_dir}",
+        f"  records:   {_hide_password(stack.database_url)}",
+        f"  redis:     {_hide_password(stack.redis_url)}",
+        f"  workers:   {len(stack.workers)}",
+        f"  logs:      {stack.log_dir}/",
+        "",
+        "Demo keys for team 'demo' (shown once; only their hashes are stored):",
+        f"  steward:   {tokens['steward']}",
+        f"  submitter: {tokens['submitter']}",
+        "",
+    ]
+    if dataset is None:
+        lines += [
+            "No demo dataset (--no-demo). List what a configuration may use:",
+            f"  curl -sS {stack.base_url}/v1/catalog -H 'Authorization: Bearer {tokens['submitter']}'",
+        ]
+    else:
+        rows = dataset.get("rows", {})
+        lines += [
+            f"Demo dataset {dataset['id']} ({dataset.get('name')}: {rows.get('development')} development rows, "
+            f"{rows.get('holdout')} sealed). Submit a Ridge configuration:",
+            "",
+            f"curl -sS -i -X POST {stack.base_url}/v1/submissions \\",
+            f"  -H 'Authorization: Bearer {tokens['submitter']}' -H 'Content-Type: application/json' \\",
+            f"  -d '{json.dumps(demo_submission(dataset['id']), separators=(',', ':'))}'",
+            "",
+            "then poll the Location it answers with the same Authorization header.",
+        ]
+    lines += ["", "Press Ctrl-C to stop."]
+    return "\n".join(lines)
+
+
+def _hide_password(url: str) -> str:
+    from sqlalchemy.engine import make_url
+    from sqlalchemy.exc import ArgumentError
+
+    if url.startswith(("redis://", "rediss://", "unix://")):
+        head, sep, tail = url.partition("@")
+        if sep and ":" in head.split("//", 1)[-1]:
+            scheme, _, creds = head.partition("//")
+            return f"{scheme}//{creds.split(':', 1)[0]}:***@{tail}"
+        return url
+    try:
+        return make_url(url).render_as_string(hide_password=True)
+    except ArgumentError:
+        return url
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,282 @@
+"""Parse, default and serialise a dataset's review policy (the rules a verdict is judged by).
+
+A steward PUTs a policy document; ``parse_policy`` turns it into a frozen ``Policy`` once, at the
+edge, and reports every bad field at once as an ``InputError`` with one ``FieldProblem`` per field.
+Fields left out take the task's defaults, so a steward may send only what they change.
+
+Defaults and where they come from:
+- primary metric: the first of the dataset's default metrics (rmse for regression, accuracy for
+  classification, ``service.catalog.metrics.DEFAULT_METRICS``).
+- baseline_alpha = champion_alpha = 0.05: the conventional level (*common practice*).
+- champion_margin and holdout_gap.floor: 0.01 for unit-free metrics (accuracy, balanced_accuracy,
+  f1, roc_auc, r2, log_loss, brier), 0 for metrics in the target's units (rmse, mae, mse), whose scale
+  no default can know (*common practice*; a steward should set them for regression).
+- holdout_gap.k_std = 3.0 (*common practice*: three standard deviations of (holdout - CV mean), whose
+  spread is estimated from the fold spread scaled to the holdout's size; two would fail about one sound
+  model in twenty on chance alone).
+- release: mode "ladder" with ladder_step null (the parameter-free ladder, Blum & Hardt 2015), chosen
+  by the measurement in tests/test_release_adaptive.py; 3 significant digits; 10 releases per
+  submitter per 24 hours (*common practice*).
+- thresholdout: threshold 0.04 and sigma 0.01 for unit-free metrics (the values of Dwork et al. 2015's
+  illustration, *from memory*), budget 100 (*common practice*); null for metrics in the target's
+  units: a steward must give them before choosing the thresholdout mode.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, replace
+from typing import Any
+
+from service.catalog.metrics import DEFAULT_METRICS, METRICS
+from service.errors import FieldProblem, InputError
+
+RELEASE_MODES = ("exact", "ladder", "thresholdout")
+UNIT_METRICS = frozenset({"rmse", "mae", "mse"})  # in the target's units (mse: squared)
+MAX_DIGITS, MAX_BUDGET, MAX_WINDOW_HOURS = 12, 10_000, 24.0 * 366
+
+
+@dataclass(frozen=True)
+class HoldoutGap:
+    """The holdout must fall within cv_mean +/- (k_std * fold_std + floor)."""
+
+    k_std: float = 3.0
+    floor: float = 0.0
+
+
+@dataclass(frozen=True)
+class ThresholdoutParams:
+    """Thresholdout's threshold T and noise scale sigma (metric units) and its budget B per dataset."""
+
+    threshold: float
+    sigma: float
+    budget: int
+
+
+@dataclass(frozen=True)
+class ReleaseParams:
+    """How much of the holdout score a submitter sees, and how often."""
+
+    mode: str = "ladder"
+    digits: int = 3  # significant digits of a released figure
+    budget: int = 10  # releases per submitter per dataset per rolling window
+    window_hours: float = 24.0
+    ladder_step: float | None = None  # None: the parameter-free ladder
+    thresholdout: ThresholdoutParams | None = None
+
+
+@dataclass(frozen=True)
+class Policy:
+    """A dataset's review policy; see the module docstring for the defaults."""
+
+    primary_metric: str
+    greater_is_better: bool
+    bar: float | None = None
+    baseline_alpha: float = 0.05
+    champion_margin: float = 0.0
+    champion_alpha: float = 0.05
+    holdout_gap: HoldoutGap = HoldoutGap()
+    max_fold_std: float | None = None
+    release: ReleaseParams = ReleaseParams()
+
+    def to_document(self, version: int) -> dict[str, Any]:
+        """Return the policy document of contracts3 (``version`` 0 = the task default)."""
+        r = self.release
+        return {
+            "version": version, "primary_metric": self.primary_metric, "greater_is_better": self.greater_is_better,
+            "bar": self.bar, "baseline_alpha": self.baseline_alpha, "champion_margin": self.champion_margin,
+            "champion_alpha": self.champion_alpha,
+            "holdout_gap": {"k_std": self.holdout_gap.k_std, "floor": self.holdout_gap.floor},
+            "max_fold_std": self.max_fold_std,
+            "release": {
+                "mode": r.mode, "digits": r.digits, "budget": r.budget, "window_hours": r.window_hours,
+                "ladder_step": r.ladder_step,
+                "thresholdout": None if r.thresholdout is None else {
+                    "threshold": r.thresholdout.threshold, "sigma": r.thresholdout.sigma,
+                    "budget": r.thresholdout.budget},
+            },
+        }
+
+
+def default_policy(task: str, metrics: Sequence[str] | None = None) -> Policy:
+    """Return the default policy for a task; the primary metric is the first of ``metrics`` if given."""
+    if task not in DEFAULT_METRICS:
+        raise ValueError(f"task must be one of {', '.join(DEFAULT_METRICS)}, got {task!r}")
+    primary = metrics[0] if metrics else DEFAULT_METRICS[task][0]
+    return _defaults_for(primary)
+
+
+def parse_policy(doc: Mapping[str, Any], task: str, allowed_metrics: Sequence[str] | None = None) -> Policy:
+    """Parse a policy document for a dataset of ``task``; missing fields take the defaults.
+
+    ``allowed_metrics`` are the metric names the dataset accepts (default: every metric of the task).
+    Raises InputError listing every bad field.
+    """
+    allowed = list(allowed_metrics) if allowed_metrics is not None else [
+        m.name for m in METRICS.values() if m.task == task]
+    problems: list[FieldProblem] = []
+    if not isinstance(doc, Mapping):
+        raise InputError(f"a policy must be a JSON object, got {type(doc).__name__}",
+                         [FieldProblem("", f"a policy must be a JSON object, got {type(doc).__name__}")])
+    _unknown(doc, {f for f in _TOP_FIELDS} | {"version"}, "", problems)
+
+    primary = doc.get("primary_metric", allowed[0] if allowed else DEFAULT_METRICS.get(task, ("",))[0])
+    if not isinstance(primary, str) or primary not in allowed:
+        problems.append(FieldProblem("/primary_metric", f"primary_metric must be one of {', '.join(allowed)} "
+                                     f"for a {task} dataset, got {primary!r}"))
+        base = default_policy(task) if task in DEFAULT_METRICS else _defaults_for("rmse")
+    else:
+        base = _defaults_for(primary)
+    metric = base.primary_metric
+    if "greater_is_better" in doc and doc["greater_is_better"] is not base.greater_is_better:
+        problems.append(FieldProblem("/greater_is_better", f"greater_is_better is fixed by the metric: {metric} "
+                                     f"is {'greater' if base.greater_is_better else 'lower'}-is-better "
+                                     f"({str(base.greater_is_better).lower()}), got {doc['greater_is_better']!r}"))
+
+    p = _Reader(doc, "", problems)
+    bar = p.number("bar", base.bar, nullable=True)
+    baseline_alpha = p.level("baseline_alpha", base.baseline_alpha)
+    margin = p.number("champion_margin", base.champion_margin, minimum=0.0,
+                      hint=f" (a non-inferiority margin in {metric} units; a negative margin has the wrong sign)")
+    champion_alpha = p.level("champion_alpha", base.champion_alpha)
+    max_fold_std = p.number("max_fold_std", base.max_fold_std, nullable=True, positive=True)
+
+    gap = base.holdout_gap
+    g = p.child("holdout_gap", {"k_std", "floor"})
+    if g is not None:
+        gap = HoldoutGap(k_std=_req(g.number("k_std", gap.k_std, positive=True), gap.k_std),
+                         floor=_req(g.number("floor", gap.floor, minimum=0.0), gap.floor))
+
+    release = _parse_release(p, base.release, metric)
+    policy = Policy(metric, base.greater_is_better, bar, _req(baseline_alpha, 0.05), _req(margin, 0.0),
+                    _req(champion_alpha, 0.05), gap, max_fold_std, release)
+    if problems:
+        raise InputError("; ".join(pr.detail for pr in problems), problems)
+    return policy
+
+
+_TOP_FIELDS = ("primary_metric", "greater_is_better", "bar", "baseline_alpha", "champion_margin",
+               "champion_alpha", "holdout_gap", "max_fold_std", "release")
+_RELEASE_FIELDS = {"mode", "digits", "budget", "window_hours", "ladder_step", "thresholdout"}
+
+
+def _defaults_for(metric: str) -> Policy:
+    spec = METRICS[metric]
+    unit_free = metric not in UNIT_METRICS
+    small = 0.01 if unit_free else 0.0
+    thresholdout = ThresholdoutParams(0.04, 0.01, 100) if unit_free else None
+    return Policy(primary_metric=metric, greater_is_better=spec.greater_is_better, champion_margin=small,
+                  holdout_gap=HoldoutGap(3.0, small), release=ReleaseParams(thresholdout=thresholdout))
+
+
+def _parse_release(p: _Reader, base: ReleaseParams, metric: str) -> ReleaseParams:
+    r = p.child("release", _RELEASE_FIELDS)
+    if r is None:
+        return base
+    mode = r.doc.get("mode", base.mode)
+    if mode not in RELEASE_MODES:
+        r.problem("mode", f"release mode must be one of {', '.join(RELEASE_MODES)}, got {mode!r}")
+        mode = base.mode
+    digits = r.integer("digits", base.digits, 1, MAX_DIGITS)
+    budget = r.integer("budget", base.budget, 1, MAX_BUDGET)
+    window = r.number("window_hours", base.window_hours, positive=True, maximum=MAX_WINDOW_HOURS)
+    step = r.number("ladder_step", base.ladder_step, nullable=True, positive=True)
+    thresholdout = base.thresholdout
+    if "thresholdout" in r.doc and r.doc["thresholdout"] is None:
+        thresholdout = None
+    else:
+        t = r.child("thresholdout", {"threshold", "sigma", "budget"})
+        if t is not None:
+            old = thresholdout
+            missing = [f for f in ("threshold", "sigma", "budget") if old is None and f not in t.doc]
+            for f in missing:
+                t.problem(f, f"thresholdout.{f} is required for {metric} (no default exists in its units)")
+            threshold = t.number("threshold", old.threshold if old else None, positive=True)
+            sigma = t.number("sigma", old.sigma if old else None, positive=True)
+            t_budget = t.integer("budget", old.budget if old else None, 1, MAX_BUDGET)
+            if not missing and threshold is not None and sigma is not None and t_budget is not None:
+                thresholdout = ThresholdoutParams(threshold, sigma, t_budget)
+    if mode == "thresholdout" and thresholdout is None and not r.has_problem_under("/release/thresholdout"):
+        r.problem("thresholdout", f"release mode thresholdout needs thresholdout parameters (threshold, sigma, "
+                                  f"budget) in {metric} units; got none")
+    return replace(base, mode=mode, digits=_req(digits, base.digits), budget=_req(budget, base.budget),
+                   window_hours=_req(window, base.window_hours), ladder_step=step, thresholdout=thresholdout)
+
+
+def _req(value: Any, fallback: Any) -> Any:
+    """Use the fallback where a bad field was reported (the error is raised once all are collected)."""
+    return fallback if value is None else value
+
+
+def _unknown(doc: Mapping[str, Any], known: set[str], base: str, problems: list[FieldProblem]) -> None:
+    for key in doc:
+        if key not in known:
+            problems.append(FieldProblem(f"{base}/{key}", f"unknown policy field {key!r}; accepted: "
+                                         f"{', '.join(sorted(known - {'version'}))}"))
+
+
+class _Reader:
+    """Read typed fields of one JSON object, collecting problems instead of raising."""
+
+    def __init__(self, doc: Mapping[str, Any], base: str, problems: list[FieldProblem]) -> None:
+        self.doc, self.base, self.problems = doc, base, problems
+
+    def problem(self, name: str, detail: str) -> None:
+        self.problems.append(FieldProblem(f"{self.base}/{name}", detail))
+
+    def has_problem_under(self, pointer: str) -> bool:
+        return any(p.pointer.startswith(pointer) for p in self.problems)
+
+    def child(self, name: str, known: set[str]) -> _Reader | None:
+        if name not in self.doc:
+            return None
+        value = self.doc[name]
+        if not isinstance(value, Mapping):
+            self.problem(name, f"{self._label(name)} must be an object, got {value!r}")
+            return None
+        _unknown(value, known, f"{self.base}/{name}", self.problems)
+        return _Reader(value, f"{self.base}/{name}", self.problems)
+
+    def number(self, name: str, default: float | None, *, nullable: bool = False, positive: bool = False,
+               minimum: float | None = None, maximum: float | None = None, hint: str = "") -> float | None:
+        if name not in self.doc:
+            return default
+        value = self.doc[name]
+        label = self._label(name)
+        if value is None and nullable:
+            return None
+        if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
+            self.problem(name, f"{label} must be a finite number{' or null' if nullable else ''}, got {value!r}")
+            return None
+        if positive and not value > 0:
+            self.problem(name, f"{label} must be > 0{hint}, got {value!r}")
+            return None
+        if minimum is not None and value < minimum:
+            self.problem(name, f"{label} must be >= {minimum:g}{hint}, got {value!r}")
+            return None
+        if maximum is not None and value > maximum:
+            self.problem(name, f"{label} must be at most {maximum:g}, got {value!r}")
+            return None
+        return float(value)
+
+    def level(self, name: str, default: float) -> float | None:
+        value = self.number(name, default)
+        if value is not None and not 0.0 < value < 0.5:
+            self.problem(name, f"{self._label(name)} must be a significance level in (0, 0.5), "
+                               f"got {self.doc[name]!r}")
+            return None
+        return value
+
+    def integer(self, name: str, default: int | None, low: int, high: int) -> int | None:
+        if name not in self.doc:
+            return default
+        value = self.doc[name]
+        integral = isinstance(value, int) or (isinstance(value, float) and value.is_integer())
+        if isinstance(value, bool) or not integral or not low <= value <= high:
+            self.problem(name, f"{self._label(name)} must be an integer between {low} and {high}, got {value!r}")
+            return None
+        return int(value)
+
+    def _label(self, name: str) -> str:
+        return f"{self.base}/{name}".strip("/").replace("/", ".")

@@ -1,0 +1,277 @@
+"""Judge a submission against its dataset's policy: the verdict document of contracts3.
+
+Rules, each with figures and one plain sentence:
+- baseline: the candidate beats the baseline (corrected resampled t, one-sided, paired on the same
+  folds; with the 5x2cv option Dietterich's test, whose one-sided p is t.sf(t, 5): half the two-sided
+  p when t > 0, one minus half of it otherwise).
+- bar: the CV mean meets the policy's absolute bar (skipped when none is set).
+- champion: non-inferiority, the same test on d + margin over the (repeat, fold) cells both have;
+  only when both ran the same fold plan (scheme, folds, seed). Otherwise inconclusive, never a pass.
+- holdout_gap: |holdout - cv_mean| <= k_std * fold_std + floor (skipped without a holdout score).
+  Its figures never contain the holdout score or the gap: what a submitter sees of the holdout is
+  decided by service.gate.release alone. (The outcome itself is one bit about the holdout.)
+- fold_stability: fold std <= max_fold_std (skipped when not set).
+
+The burden of proof is on the candidate: a test that does not reach its level fails the rule. A
+degenerate test (fewer than two paired cells, or all differences equal) is inconclusive, except that
+all-equal differences that show no advantage at all (<= 0) fail: no fold favours the candidate.
+Decision: fail if any rule fails, else inconclusive if any is, else pass.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from service.gate.policy import Policy
+from service.gate.statistics import (
+    CORRECTED_RESAMPLED_T,
+    FIVE_BY_TWO_CV,
+    PairedTest,
+    corrected_resampled_t,
+    five_by_two_cv_t,
+)
+
+Cell = tuple[int, int]  # (repeat, fold)
+FIVE_BY_TWO_CELLS = frozenset((r, f) for r in range(5) for f in range(2))
+_ORDER = {"fail": 0, "inconclusive": 1, "pass": 2, "skipped": 3}
+# Scores equal to this relative tolerance are the same score (e.g. a candidate identical to the baseline).
+_SAME_SCORE_RTOL = 1e-12
+
+
+@dataclass(frozen=True)
+class PlanFacts:
+    """The fold plan a submission ran and its (train_rows, test_rows) per cell."""
+
+    key: tuple[str, int, int]  # (scheme, folds, seed); equal keys mean identical splits per repeat
+    sizes: Mapping[Cell, tuple[int, int]]
+    overridden: bool = False  # the submission's folds differ from the dataset's plan
+    holdout_rows: int | None = None  # size of the sealed partition; scales the holdout-gap allowance
+    test: str = CORRECTED_RESAMPLED_T  # or FIVE_BY_TWO_CV (the "5x2cv" validation option)
+
+
+@dataclass(frozen=True)
+class ChampionFolds:
+    """The champion in force: its id, primary-metric fold scores and the fold plan they came from."""
+
+    submission_id: str
+    scores: Mapping[Cell, float]
+    plan_key: tuple[str, int, int]
+
+
+def judge(
+    policy: Policy, candidate: Mapping[Cell, float], baseline: Mapping[Cell, float],
+    champion: ChampionFolds | None, holdout: float | None, plan: PlanFacts, *, policy_version: int,
+) -> dict[str, Any]:
+    """Return the verdict document for a candidate's primary-metric fold scores."""
+    if plan.test not in (CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV):
+        raise ValueError(f"test must be {CORRECTED_RESAMPLED_T} or {FIVE_BY_TWO_CV}, got {plan.test!r}")
+    j = _Judge(policy, candidate, plan)
+    rules = [j.baseline(baseline), j.bar(), j.champion(champion), j.holdout_gap(holdout), j.fold_stability()]
+    outcomes = {r["outcome"] for r in rules}
+    decision = "fail" if "fail" in outcomes else "inconclusive" if "inconclusive" in outcomes else "pass"
+    ordered = sorted(rules, key=lambda r: _ORDER[r["outcome"]])
+    return {"decision": decision, "reasons": [r["sentence"] for r in ordered], "rules": rules,
+            "primary_metric": policy.primary_metric, "test": plan.test, "policy_version": policy_version,
+            "champion": None if champion is None else champion.submission_id}
+
+
+def _rule(rule: str, outcome: str, sentence: str, figures: dict[str, Any]) -> dict[str, Any]:
+    return {"rule": rule, "outcome": outcome, "sentence": sentence, "figures": figures}
+
+
+def _g(x: float | None) -> str:
+    return "n/a" if x is None else f"{x:.4g}"
+
+
+class _Judge:
+    """The rules over one candidate; each method returns one rule entry."""
+
+    def __init__(self, policy: Policy, candidate: Mapping[Cell, float], plan: PlanFacts) -> None:
+        self.policy, self.plan = policy, plan
+        self.metric = policy.primary_metric
+        self.sign = 1.0 if policy.greater_is_better else -1.0
+        self.cells = sorted(candidate)
+        self.scores = np.array([candidate[c] for c in self.cells], dtype=float)
+        self.candidate = candidate
+        self.largest = -np.inf  # the largest oriented (and shifted) difference of the last paired test
+
+    # -- paired tests -------------------------------------------------------------------------------
+    def _paired(self, other: Mapping[Cell, float], shift: float) -> tuple[PairedTest | None, str, list[Cell]]:
+        """Run the plan's paired test on candidate - other (oriented: positive = candidate better) + shift."""
+        cells = sorted(set(self.candidate) & set(other))
+        self.largest = -np.inf
+        if len(cells) < 2:
+            return None, f"they share {len(cells)} scored fold(s); a paired test needs at least 2", cells
+        mine = np.array([self.candidate[c] for c in cells], dtype=float)
+        theirs = np.array([other[c] for c in cells], dtype=float)
+        d = self.sign * (mine - theirs)
+        scale = max(1.0, float(np.abs(mine).max()), float(np.abs(theirs).max()))
+        if float(np.abs(d).max()) <= _SAME_SCORE_RTOL * scale:
+            d = np.zeros_like(d)  # the same scores: make the zero exact, not rounding noise
+        d = d + shift
+        self.largest = float(d.max())
+        if self.plan.test == FIVE_BY_TWO_CV:
+            if set(cells) != FIVE_BY_TWO_CELLS:
+                return None, f"5x2cv needs all 10 cells (5 repeats x 2 folds), they share {len(cells)}", cells
+            grid = np.zeros((5, 2))
+            for (r, f), value in zip(cells, d, strict=True):
+                grid[r, f] = value
+            return five_by_two_cv_t(grid), "", cells
+        n_train = float(np.mean([self.plan.sizes[c][0] for c in cells]))
+        n_test = float(np.mean([self.plan.sizes[c][1] for c in cells]))
+        return corrected_resampled_t(d, n_train, n_test), "", cells
+
+    def _test_outcome(self, test: PairedTest, alpha: float) -> str:
+        if test.decidable:
+            assert test.p_greater is not None
+            return "pass" if test.p_greater < alpha else "fail"
+        if test.n_differences >= 2 and self.largest <= 0:
+            return "fail"  # zero spread and no cell favours the candidate
+        return "inconclusive"
+
+    def _test_text(self, test: PairedTest, alpha: float) -> str:
+        name = "5x2cv t" if test.test == FIVE_BY_TWO_CV else "corrected resampled t"
+        if not test.decidable:
+            return f"the test is undecidable: {test.undecidable}"
+        assert test.p_greater is not None
+        cmp = "<" if test.p_greater < alpha else ">="
+        return f"{name} = {test.statistic:.3f}, df {test.df}, one-sided p = {test.p_greater:.3g} {cmp} {alpha:g}"
+
+    def _test_figures(self, test: PairedTest | None, alpha: float, cells: list[Cell]) -> dict[str, Any]:
+        figures: dict[str, Any] = {"cells": len(cells), "alpha": alpha}
+        if test is not None:
+            figures.update(test.figures())
+            figures["lower_bound"] = test.lower_bound(alpha)
+        if self.plan.test == CORRECTED_RESAMPLED_T and cells:
+            figures["n_train"] = float(np.mean([self.plan.sizes[c][0] for c in cells]))
+            figures["n_test"] = float(np.mean([self.plan.sizes[c][1] for c in cells]))
+        return figures
+
+    # -- rules --------------------------------------------------------------------------------------
+    def baseline(self, baseline: Mapping[Cell, float]) -> dict[str, Any]:
+        alpha = self.policy.baseline_alpha
+        test, why, cells = self._paired(baseline, 0.0)
+        figures = self._test_figures(test, alpha, cells)
+        if test is None:
+            return _rule("baseline", "inconclusive", f"Cannot compare with the baseline: {why}.", figures)
+        figures["candidate_mean"] = float(np.mean([self.candidate[c] for c in cells]))
+        figures["baseline_mean"] = float(np.mean([baseline[c] for c in cells]))
+        outcome = self._test_outcome(test, alpha)
+        head = {"pass": "Beats the baseline", "fail": "Does not beat the baseline",
+                "inconclusive": "Cannot tell whether it beats the baseline"}[outcome]
+        return _rule("baseline", outcome, (
+            f"{head}: mean {self.metric} {_g(figures['candidate_mean'])} against {_g(figures['baseline_mean'])} "
+            f"over {len(cells)} folds, {_diff(test.mean_difference)} ({self._test_text(test, alpha)})."), figures)
+
+    def bar(self) -> dict[str, Any]:
+        bar = self.policy.bar
+        if bar is None:
+            return _rule("bar", "skipped", "No bar is set.", {"bar": None})
+        if not self.cells:
+            return _rule("bar", "inconclusive", "Cannot check the bar: no fold was scored.", {"bar": bar})
+        mean = float(self.scores.mean())
+        met = mean >= bar if self.policy.greater_is_better else mean <= bar
+        relation = "at least" if self.policy.greater_is_better else "at most"
+        return _rule("bar", "pass" if met else "fail",
+                     f"{'Meets' if met else 'Misses'} the bar: CV mean {self.metric} {_g(mean)}, "
+                     f"the bar asks for {relation} {_g(bar)}.", {"bar": bar, "cv_mean": mean})
+
+    def champion(self, champion: ChampionFolds | None) -> dict[str, Any]:
+        if champion is None:
+            return _rule("champion", "skipped", "No champion is in force on this dataset.", {"champion": None})
+        margin, alpha, name = self.policy.champion_margin, self.policy.champion_alpha, champion.submission_id
+        base = {"champion": name, "margin": margin, "alpha": alpha}
+        if self.plan.key != champion.plan_key:
+            why = "overrode the dataset's fold plan" if self.plan.overridden else "ran a different fold plan"
+            return _rule("champion", "inconclusive", (
+                f"Cannot compare with champion {name}: the submission {why} ({_plan(self.plan.key)}; the "
+                f"champion: {_plan(champion.plan_key)}), so no paired test exists."),
+                {**base, "plan": list(self.plan.key), "champion_plan": list(champion.plan_key)})
+        test, why, cells = self._paired(champion.scores, margin)
+        figures = {**base, **self._test_figures(test, alpha, cells)}
+        if test is None:
+            return _rule("champion", "inconclusive", f"Cannot compare with champion {name}: {why}.", figures)
+        figures["candidate_mean"] = float(np.mean([self.candidate[c] for c in cells]))
+        figures["champion_mean"] = float(np.mean([champion.scores[c] for c in cells]))
+        # The test ran on d + margin; show the difference itself (positive = candidate better) and its bound.
+        figures["estimate_plus_margin"] = figures.pop("estimate")
+        figures["mean_difference"] = test.mean_difference - margin
+        if figures["lower_bound"] is not None:
+            figures["lower_bound"] -= margin
+        outcome = self._test_outcome(test, alpha)
+        if outcome == "fail" and test.decidable and test.p_greater is not None and 1.0 - test.p_greater >= alpha:
+            # Neither shown within the margin nor shown worse beyond it: the folds cannot tell (a model
+            # about as good as the champion often lands here). Not a pass, and not a proven shortfall.
+            outcome = "inconclusive"
+        head = {"pass": f"Not worse than champion {name} by more than the margin {margin:g}",
+                "fail": f"Worse than champion {name} by more than the margin {margin:g}",
+                "inconclusive": f"Cannot tell whether it is within the margin {margin:g} of champion {name}"}[outcome]
+        return _rule("champion", outcome, (
+            f"{head}: mean {self.metric} {_g(figures['candidate_mean'])} against {_g(figures['champion_mean'])} "
+            f"over {len(cells)} shared folds, {_diff(figures['mean_difference'])}; on the difference plus the "
+            f"margin, {self._test_text(test, alpha)}."), figures)
+
+    def holdout_gap(self, holdout: float | None) -> dict[str, Any]:
+        gap = self.policy.holdout_gap
+        figures: dict[str, Any] = {"k_std": gap.k_std, "floor": gap.floor}
+        if holdout is None:
+            return _rule("holdout_gap", "skipped", "No holdout score to compare with.", figures)
+        if len(self.cells) < 2:
+            return _rule("holdout_gap", "inconclusive",
+                         f"Cannot check the holdout against CV: the fold spread needs 2 folds, got {len(self.cells)}.",
+                         figures)
+        mean, std = float(self.scores.mean()), float(self.scores.std(ddof=1))
+        spread = std * self._gap_scale()
+        allowed = gap.k_std * spread + gap.floor
+        figures.update({"cv_mean": mean, "fold_std": std, "expected_spread": spread, "allowed_gap": allowed})
+        inside = abs(holdout - mean) <= allowed
+        band = (f"CV mean {_g(mean)} +/- {_g(allowed)} ({gap.k_std:g} x expected spread {_g(spread)} + floor "
+                f"{gap.floor:g})")
+        if inside:
+            return _rule("holdout_gap", "pass", f"The holdout score is consistent with CV: it lies within {band}.",
+                         figures)
+        return _rule("holdout_gap", "fail", f"The holdout score is not consistent with CV: it lies outside {band} "
+                     "(a leak, a shift between partitions or an unstable model can cause this).", figures)
+
+    def _gap_scale(self) -> float:
+        """Scale the fold spread to the spread of (holdout score - CV mean).
+
+        A fold's score varies with its n_test rows; the holdout score, computed on n_holdout rows,
+        varies about sqrt(n_test / n_holdout) times as much, and the CV mean of J folds adds about
+        1/J of a fold's variance. Without the holdout size the fold spread is used as it is.
+        """
+        if not self.plan.holdout_rows:
+            return 1.0
+        sizes = [float(self.plan.sizes[c][1]) for c in self.cells if c in self.plan.sizes]
+        n_test = float(np.mean(sizes)) if sizes else 0.0
+        if n_test <= 0:
+            return 1.0
+        return float(np.sqrt(n_test / self.plan.holdout_rows + 1.0 / len(self.cells)))
+
+    def fold_stability(self) -> dict[str, Any]:
+        limit = self.policy.max_fold_std
+        if limit is None:
+            return _rule("fold_stability", "skipped", "No limit on the fold spread is set.", {"max_fold_std": None})
+        if len(self.cells) < 2:
+            return _rule("fold_stability", "inconclusive",
+                         f"Cannot measure the fold spread: it needs 2 folds, got {len(self.cells)}.",
+                         {"max_fold_std": limit})
+        std = float(self.scores.std(ddof=1))
+        ok = std <= limit
+        return _rule("fold_stability", "pass" if ok else "fail",
+                     f"Folds are {'stable' if ok else 'unstable'}: fold std of {self.metric} {_g(std)} "
+                     f"{'within' if ok else 'above'} the limit {limit:g}.", {"max_fold_std": limit, "fold_std": std})
+
+
+def _diff(d: float) -> str:
+    if d == 0:
+        return "no difference"
+    return f"{'an improvement' if d > 0 else 'a shortfall'} of {_g(abs(d))}"
+
+
+def _plan(key: tuple[str, int, int]) -> str:
+    return f"{key[0]}, {key[1]} folds, seed {key[2]}"

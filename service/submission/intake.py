@@ -1,0 +1,139 @@
+"""Accept a submission: resolve its dataset, check its configuration, store it, enqueue its work.
+
+Order matters for "nothing half-written": every check (dataset, fingerprint pin, configuration,
+scikit-learn's parameter validation in a worker) runs before the row is inserted, and the jobs are
+enqueued only after the row is committed.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import asdict
+from typing import Any
+
+from redis import Redis
+from sqlalchemy import Engine
+from sqlalchemy.exc import IntegrityError
+
+from service.catalog import load_catalog
+from service.catalog.metrics import METRICS
+from service.errors import ConfigRejected, Conflict, FieldProblem, Forbidden, InputError, NotFound, field_error
+from service.gate.review_state import policy_in_force
+from service.ids import new_id
+from service.records import audit, datasets, submissions
+from service.records.keys import KeyInfo
+from service.settings import Settings
+from service.submission import config, dispatch
+
+
+def find_dataset(engine: Engine, key: KeyInfo, ref: config.DatasetRef) -> dict[str, Any]:
+    """Return the internal dataset row a reference names, scoped to the caller's team."""
+    row = datasets.get_internal(engine, ref.id)
+    if row is None or row["team"] != key.team:
+        # Another team's dataset is reported as absent so ids reveal nothing across teams.
+        raise field_error(NotFound, "/dataset", f"no dataset {ref.id!r} in team {key.team!r}")
+    if ref.fingerprint is not None and ref.fingerprint != row["fingerprint"]:
+        raise Conflict(
+            f"dataset {ref.id} has fingerprint {row['fingerprint']}, not the pinned {ref.fingerprint}",
+            [FieldProblem("/dataset/fingerprint", "the pinned fingerprint does not match the dataset")],
+        )
+    return row
+
+
+def request_fingerprint(request: config.SubmissionRequest) -> str:
+    """Hash a parsed request, to tell an idempotent replay from a different body under the same key."""
+    canonical = json.dumps(asdict(request), sort_keys=True, separators=(",", ":"), default=list)
+    return hashlib.sha256(canonical.encode("utf-8")).hexdigest()
+
+
+def submit(
+    engine: Engine, redis: Redis, settings: Settings, key: KeyInfo, request: config.SubmissionRequest,
+    idempotency_key: str | None = None,
+) -> tuple[dict[str, Any], bool]:
+    """Create a submission and enqueue its jobs; return the row and whether it was created now.
+
+    With an ``idempotency_key``, a replay of the same body returns the first submission; a
+    different body under the same key is a 422. A configuration the team already submitted on the
+    same data (same configuration fingerprint) returns that submission instead of a new one.
+    """
+    fingerprint = request_fingerprint(request)
+    if idempotency_key is not None:
+        earlier = submissions.find_by_idempotency_key(engine, key.id, idempotency_key)
+        if earlier is not None:
+            return _replay(earlier, fingerprint), False
+
+    dataset = find_dataset(engine, key, request.dataset)
+    document = config.resolve(request, dataset, load_catalog())
+    primary = policy_in_force(engine, dataset)["primary_metric"]
+    if primary not in document["metrics"]:
+        # The verdict is decided on the policy's primary metric, so every submission computes it.
+        document["metrics"].append(primary)
+    config_fingerprint = config.config_fingerprint(document, dataset["fingerprint"])
+    same = submissions.find_by_config(engine, key.team, dataset["id"], config_fingerprint)
+    if same is not None:
+        # The same model, validation and data were already judged: answer with that submission, so a
+        # resubmission recomputes nothing and spends no holdout budget.
+        return same, False
+    check = dispatch.check_config_remote(redis, settings, document, dataset["id"])
+    _check_probability_metrics(document, check)
+    document["linear"] = bool(check.get("linear"))
+
+    sub_id = new_id("sub")
+    validation = document["validation"]
+    row = {
+        "id": sub_id, "team": key.team, "dataset_id": dataset["id"], "owner_key_id": key.id,
+        "label": request.label, "config": document,
+        "config_fingerprint": config_fingerprint,
+        "folds_total": len(dispatch.fold_cells(validation)),
+        "idempotency_key": idempotency_key, "request_fingerprint": fingerprint,
+    }
+    try:
+        submissions.insert(engine, row)
+    except IntegrityError:
+        # Two requests raced under one Idempotency-Key; the first one's row stands.
+        earlier = submissions.find_by_idempotency_key(engine, key.id, idempotency_key or "")
+        if earlier is None:
+            raise
+        return _replay(earlier, fingerprint), False
+    dispatch.enqueue_submission(redis, settings, sub_id, validation)
+    stored = submissions.get(engine, sub_id)
+    assert stored is not None
+    return stored, True
+
+
+def cancel(engine: Engine, redis: Redis, settings: Settings, key: KeyInfo, sub_id: str) -> dict[str, Any]:
+    """Cancel a live submission for its owner or a steward of its team."""
+    row = submissions.get(engine, sub_id)
+    if row is None or row["team"] != key.team:
+        raise NotFound(f"no submission {sub_id!r} in team {key.team!r}")
+    if row["owner_key_id"] != key.id and not key.can("steward"):
+        raise Forbidden("only the submission's owner or a steward of its team may cancel it")
+    if not submissions.transition(engine, sub_id, "canceled", submissions.LIVE_STATES):
+        raise Conflict(f"submission {sub_id} is already {row['state']}; only queued or running ones can be canceled")
+    audit.record(engine, key.id, key.team, "submission.canceled", sub_id, {})
+    dispatch.cancel_jobs(redis, settings, sub_id, row["config"]["validation"])
+    stored = submissions.get(engine, sub_id)
+    assert stored is not None
+    return stored
+
+
+def _replay(earlier: dict[str, Any], fingerprint: str) -> dict[str, Any]:
+    if earlier["request_fingerprint"] != fingerprint:
+        raise InputError(
+            "this Idempotency-Key was already used with a different request body; use a new key",
+            [FieldProblem("", "body differs from the first request made with this Idempotency-Key")],
+        )
+    return earlier
+
+
+def _check_probability_metrics(document: dict[str, Any], check: dict[str, Any]) -> None:
+    if check.get("has_proba", True):
+        return
+    problems = [
+        FieldProblem(f"/metrics/{i}", f"metric {name!r} needs predicted probabilities, which "
+                     f"{document['model']['estimator']} with these parameters does not give")
+        for i, name in enumerate(document["metrics"]) if METRICS[name].needs_proba
+    ]
+    if problems:
+        raise ConfigRejected(problems[0].detail, problems)

@@ -1,0 +1,172 @@
+"""Check a configuration with scikit-learn's own parameter validation, plus the service's caps.
+
+Each submitted parameter is validated on its own (``set_params`` then ``_validate_params``), so one
+answer names every bad parameter at its JSON pointer, in scikit-learn's words.
+"""
+
+from __future__ import annotations
+
+import math
+import numbers
+from collections.abc import Mapping
+from typing import Any
+
+from sklearn.base import BaseEstimator
+from sklearn.utils._param_validation import InvalidParameterError
+
+from service.catalog import CatalogEntry, load_catalog
+from service.errors import ConfigRejected, FieldProblem
+from service.records import datasets
+from worker.jobs.runtime import WorkerContext
+from worker.learning.development import column_kinds
+from worker.learning.pipeline import build_pipeline, make_instance
+
+
+def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: str) -> dict[str, Any]:
+    """Answer ``{"ok": true, "has_proba", "linear"}`` or ``{"ok": false, "problems": [...]}``."""
+    dataset = datasets.get_internal(ctx.engine, dataset_id)
+    if dataset is None:
+        return _rejected([FieldProblem("/dataset", f"no dataset {dataset_id!r}")])
+    catalog = load_catalog()
+    model = config_doc["model"]
+    problems: list[FieldProblem] = []
+    entry = catalog.estimator(model["estimator"])
+    if entry is None:
+        names = ", ".join(catalog.estimator_names(str(dataset["task"])))
+        return _rejected([FieldProblem("/model/estimator", f"estimator {model['estimator']!r} is not in the "
+                                       f"catalog; for a {dataset['task']} dataset use one of: {names}")])
+    if entry.task != dataset["task"]:
+        problems.append(FieldProblem("/model/estimator", f"{entry.name} is a {entry.task} estimator; dataset "
+                                     f"{dataset_id} is {dataset['task']}"))
+    estimator = checked_instance(entry, model.get("params") or {}, "/model/params", problems)
+    problems.extend(search_problems(entry, model.get("params") or {}, config_doc.get("search")))
+    for i, step in enumerate(model.get("preprocess") or []):
+        step_entry = catalog.transformer(step["transformer"])
+        if step_entry is None:
+            problems.append(FieldProblem(f"/model/preprocess/{i}/transformer", f"transformer "
+                            f"{step['transformer']!r} is not in the catalog; use one of: "
+                            f"{', '.join(catalog.transformer_names())}"))
+            continue
+        transformer = checked_instance(step_entry, step.get("params") or {}, f"/model/preprocess/{i}/params",
+                                       problems)
+        width = output_width_problem(step_entry, transformer, len(step.get("columns") or []))
+        if width is not None:
+            problems.append(FieldProblem(f"/model/preprocess/{i}/columns", width))
+    if problems:
+        return _rejected(problems)
+    kinds = column_kinds(dataset)
+    unknown = [(i, f) for i, f in enumerate(model["features"]) if f not in kinds]
+    if unknown:
+        return _rejected([FieldProblem(f"/model/features/{i}", f"feature {f!r} is not a column of dataset "
+                                       f"{dataset_id}") for i, f in unknown])
+    try:
+        build_pipeline(model, kinds, catalog)
+    except ConfigRejected as exc:
+        return _rejected(exc.problems)
+    return {"ok": True, "has_proba": hasattr(estimator, "predict_proba"), "linear": entry.linear,
+            "estimator": entry.name}
+
+
+def checked_instance(
+    entry: CatalogEntry, params: Mapping[str, Any], base: str, problems: list[FieldProblem]
+) -> BaseEstimator:
+    """Validate each parameter alone; append problems; return the instance with the valid ones set."""
+    valid: dict[str, Any] = {}
+    for name, value in params.items():
+        pointer = f"{base}/{name}"
+        if name not in entry.params:
+            problems.append(FieldProblem(pointer, f"{entry.name} has no parameter {name!r}; accepted: "
+                                         f"{', '.join(entry.param_names)}"))
+            continue
+        if name in entry.forced and value != entry.forced[name]:
+            problems.append(FieldProblem(pointer, f"{name} is fixed to {entry.forced[name]!r} by the service "
+                                         f"(one core per fold job; scale out with more workers), got {value!r}"))
+            continue
+        probe = make_instance(entry, {name: value})
+        try:
+            probe._validate_params()
+        except InvalidParameterError as exc:
+            problems.append(FieldProblem(pointer, str(exc)))
+            continue
+        over = cap_problem(entry, name, value)
+        if over is not None:
+            problems.append(FieldProblem(pointer, over))
+            continue
+        valid[name] = value
+    instance = make_instance(entry, valid)
+    instance._validate_params()  # each alone was valid; defaults and forced values are too
+    return instance
+
+
+def search_problems(
+    entry: CatalogEntry, params: Mapping[str, Any], search: Mapping[str, Any] | None
+) -> list[FieldProblem]:
+    """Validate every searched value as scikit-learn would (set on the estimator, then validated), and caps.
+
+    Each value is checked together with the submission's fixed parameters, at a pointer naming its
+    position: ``/search/grid/alpha/1``; a uniform / log_uniform range checks both bounds.
+    """
+    if not search:
+        return []
+    kind = "grid" if search.get("grid") is not None else "distributions"
+    problems: list[FieldProblem] = []
+    for name, spec in (search.get(kind) or {}).items():
+        base = f"/search/{kind}/{name}"
+        if isinstance(spec, Mapping):
+            ranges = [k for k in ("uniform", "log_uniform") if k in spec]
+            bounds = spec.get(ranges[0]) if len(ranges) == 1 and len(spec) == 1 else None
+            if not (isinstance(bounds, list) and len(bounds) == 2
+                    and all(isinstance(b, numbers.Real) and not isinstance(b, bool) for b in bounds)
+                    and bounds[0] < bounds[1] and (ranges[0] == "uniform" or bounds[0] > 0)):
+                problems.append(FieldProblem(base, f"a distribution is a list of values or {{\"uniform\": [low, "
+                                             f"high]}} / {{\"log_uniform\": [low, high]}} with low < high (and "
+                                             f"low > 0 for log_uniform), got {dict(spec)!r}"))
+                continue
+            values, pointers = list(bounds), [f"{base}/{ranges[0]}/{i}" for i in range(2)]
+        elif isinstance(spec, list):
+            values, pointers = spec, [f"{base}/{i}" for i in range(len(spec))]
+        else:
+            problems.append(FieldProblem(base, f"searched values for {name!r} must be a list, got {spec!r}"))
+            continue
+        for value, pointer in zip(values, pointers, strict=True):
+            found: list[FieldProblem] = []
+            checked_instance(entry, {**params, name: value}, "/search", found)
+            problems.extend(FieldProblem(pointer, p.detail) for p in found if p.pointer == f"/search/{name}")
+    return problems
+
+
+def cap_problem(entry: CatalogEntry, name: str, value: Any) -> str | None:
+    """Return why ``value`` exceeds the service cap on parameter ``name``, or None."""
+    cap = entry.caps.get(name)
+    if cap is None or value is None or isinstance(value, bool):
+        return None
+    if name == "hidden_layer_sizes":
+        sizes = [int(value)] if isinstance(value, numbers.Integral) else [int(v) for v in value]
+        if len(sizes) > cap["max_layers"]:
+            return f"hidden_layer_sizes may have at most {cap['max_layers']} layers (a service cap), got {value!r}"
+        if sum(sizes) > cap["max_total_units"]:
+            return (f"hidden_layer_sizes may total at most {cap['max_total_units']} units (a service cap), got "
+                    f"{sum(sizes)} in {value!r}")
+        return None
+    largest = max(value) if isinstance(value, list | tuple) and value else value
+    if isinstance(largest, numbers.Real) and float(largest) > cap["max"]:
+        return f"{name} must be at most {cap['max']} (a service cap), got {value!r}"
+    return None
+
+
+def output_width_problem(entry: CatalogEntry, transformer: BaseEstimator, n_columns: int) -> str | None:
+    """Return why a PolynomialFeatures step would produce too many columns, or None."""
+    cap = entry.caps.get("output_features")
+    if cap is None:
+        return None
+    degree = transformer.get_params()["degree"]
+    highest = int(max(degree) if isinstance(degree, list | tuple) else degree)
+    width = math.comb(n_columns + highest, highest)  # the full expansion, bias included: an upper bound
+    if width > cap["max"]:
+        return (f"{entry.name} of degree {highest} on {n_columns} columns makes up to {width} features; at most "
+                f"{cap['max']} are allowed (a service cap): use fewer columns or a lower degree")
+    return None
+
+
+def _rejected(problems: list[FieldProblem]) -> dict[str, Any]:
+    return {"ok": False, "problems": [{"pointer": p.pointer, "detail": p.detail} for p in problems]}

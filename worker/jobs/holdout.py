@@ -1,0 +1,101 @@
+"""Score a submission on its dataset's sealed holdout, exactly once.
+
+The model is refitted on every development row, then the sealed partition is opened (its
+fingerprint checked) and scored. The job runs beside the fold jobs (it needs nothing they compute)
+and only stores its outcome; the verdict job, after the summary, releases a figure or fails the
+submission with the stored error. The holdout row's primary key makes the first stored outcome --
+a score, or the error of a refit or scoring that failed -- final: a retried or duplicated job
+finds it and never scores again. Nothing here logs, returns or stores holdout rows, ids or
+predictions; errors raised while the holdout is in use are replaced by their class name, because
+an estimator's message can quote the values it choked on. A broken seal is the one outcome that
+fails the submission at once: it is an incident with the data, not a verdict on the model.
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+from typing import Any
+
+from service.errors import SealBroken
+from service.records import datasets, submissions
+from service.vault import store
+from worker.jobs.losses import save_per_example
+from worker.jobs.runtime import WorkerContext, submission_to_work_on
+from worker.learning.development import column_kinds, load_development, model_frame, model_matrix, target_values
+from worker.learning.pipeline import build_pipeline, fit_in_place, uses_frame
+from worker.learning.scoring import per_example, predictions, score_predictions
+from worker.learning.search import build_model
+
+
+def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
+    """Score the holdout once and store the outcome; a failed or canceled submission is left alone."""
+    engine = ctx.engine
+    sub, skip = submission_to_work_on(ctx, submission_id)
+    if sub is None:
+        return skip
+    if submissions.get_holdout(engine, submission_id) is not None:
+        # Scored (or failed) in an earlier run; the verdict job finishes the submission.
+        return {"submission_id": submission_id, "holdout": "already scored"}
+    dataset = datasets.get_internal(engine, sub["dataset_id"])
+    if dataset is None:
+        raise LookupError(f"submission {submission_id} refers to dataset {sub['dataset_id']!r}, which is gone")
+    config = sub["config"]
+    model_doc, metrics = config["model"], config["metrics"]
+    kinds = column_kinds(dataset)
+    features = list(model_doc["features"])
+
+    data, _ = load_development(ctx.settings, dataset, features)
+    # A search is refitted on every dev row; a plain pipeline may centre its private copy in place.
+    pipeline = fit_in_place(build_model(build_pipeline(model_doc, kinds), config), model_doc)
+    try:
+        started = time.perf_counter()
+        pipeline.fit(data.features_of(), data.target_of())
+        fit_seconds = time.perf_counter() - started
+    except MemoryError:
+        raise
+    except Exception as exc:  # development rows only: the estimator's message may be shown
+        error = f"refitting on all development rows failed: {type(exc).__name__}: {exc}"
+        return _not_scored(ctx, submission_id, dataset, error, "refit failed")
+
+    try:
+        holdout = store.open_sealed_holdout(ctx.settings, dataset["id"], dataset["holdout_fingerprint"])
+    except SealBroken as exc:
+        submissions.transition(engine, submission_id, "failed", submissions.LIVE_STATES, error=exc.detail)
+        raise
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # warning texts can quote holdout values
+            X = model_frame(holdout, features, kinds) if uses_frame(features, kinds) \
+                else model_matrix(holdout, features)
+            y = target_values(holdout[dataset["target"]], str(dataset["task"]))
+            pred, proba, classes = predictions(pipeline, X, metrics)
+            scores, _undefined = score_predictions(y, pred, proba, classes, metrics)
+            kept = {m: v for m in metrics if (v := per_example(m, y, pred, proba, classes)) is not None}
+    except MemoryError:
+        raise
+    except Exception as exc:
+        error = (f"scoring on the holdout failed with {type(exc).__name__}; its message is withheld because "
+                 "it may describe holdout rows (e.g. an unseen category: try handle_unknown='ignore')")
+        return _not_scored(ctx, submission_id, dataset, error, type(exc).__name__)
+    finally:
+        del holdout
+
+    # A metric undefined on the holdout (e.g. roc_auc with one class present) is stored as None.
+    if submissions.get_holdout(engine, submission_id) is None:
+        # Kept for the parameter-free ladder, inside the sealed directory; written before the score so
+        # that a stored score always has them.
+        save_per_example(ctx.settings, dataset["id"], submission_id, kept)
+    _stored, created = submissions.store_holdout_once(
+        engine, submission_id, scores, dataset["holdout_fingerprint"], fit_seconds
+    )
+    return {"submission_id": submission_id, "holdout": "scored" if created else "already scored",
+            "metrics": sorted(scores)}
+
+
+def _not_scored(
+    ctx: WorkerContext, submission_id: str, dataset: dict[str, Any], error: str, reason: str
+) -> dict[str, Any]:
+    """Store a failed attempt as the submission's one holdout outcome; the verdict job reports it."""
+    submissions.store_holdout_once(ctx.engine, submission_id, {}, dataset["holdout_fingerprint"], None, error=error)
+    return {"submission_id": submission_id, "holdout": "not scored", "reason": reason}

@@ -1,0 +1,92 @@
+"""The worker's process context: settings and records engine, installed once at start-up.
+
+RQ calls job functions with JSON arguments only, so the functions find their engine and settings
+here. ``run_worker`` installs the context before the first fork; tests install their own.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Protocol
+
+from sqlalchemy import Engine
+
+from service.records import submissions
+from service.settings import Settings
+
+
+@dataclass(frozen=True)
+class WorkerContext:
+    """What every job needs besides its arguments."""
+
+    settings: Settings
+    engine: Engine
+
+
+class _Slot:
+    """Holds the installed context; a class attribute, so there is no import-time connection."""
+
+    context: WorkerContext | None = None
+    fold_runner: FoldRunner | None = None
+
+
+class FoldRunner(Protocol):
+    """Runs a fold job elsewhere and returns its answer (``worker.process.fold_process.FoldProcess``)."""
+
+    def run_fold(self, submission_id: str, repeat: int, fold: int) -> dict[str, Any]: ...
+
+
+def install(ctx: WorkerContext) -> None:
+    """Make ``ctx`` the context of this process (and of the work horses it forks)."""
+    _Slot.context = ctx
+
+
+def uninstall() -> None:
+    """Forget the installed context and fold runner (tests)."""
+    _Slot.context = None
+    _Slot.fold_runner = None
+
+
+def install_fold_runner(runner: FoldRunner | None) -> None:
+    """Make ``runner`` run this process's fold jobs (None: run them here)."""
+    _Slot.fold_runner = runner
+
+
+def fold_runner() -> FoldRunner | None:
+    """Return the installed fold runner, or None when fold jobs run in this process."""
+    return _Slot.fold_runner
+
+
+def current() -> WorkerContext:
+    """Return the installed context; a job run outside a started worker is a programming error."""
+    if _Slot.context is None:
+        raise RuntimeError("no worker context installed; start the worker with worker.process.main.run_worker "
+                           "or call worker.jobs.runtime.install() first")
+    return _Slot.context
+
+
+def after_fork() -> None:
+    """Drop the pooled DB connections inherited from the parent without closing them under it.
+
+    Also forgets the parent's fold runner: a child runs fold jobs itself.
+
+    A forked work horse must not reuse the parent's sockets (two processes on one connection
+    corrupt it); ``dispose(close=False)`` gives the child a fresh pool and leaves the parent's alone.
+    """
+    if _Slot.context is not None:
+        _Slot.context.engine.dispose(close=False)
+    _Slot.fold_runner = None  # the parent's handle on its fold process is not the child's to use
+
+
+def submission_to_work_on(ctx: WorkerContext, submission_id: str) -> tuple[dict[str, Any] | None, dict[str, Any]]:
+    """Return (row, {}) for a submission a job should work on, or (None, the job's answer) to skip it.
+
+    A missing submission is an error (the job retries; the reconciler never enqueues unknown ids); a
+    failed or canceled one is skipped, so late jobs of a finished chain do nothing.
+    """
+    sub = submissions.get(ctx.engine, submission_id)
+    if sub is None:
+        raise LookupError(f"no submission {submission_id!r} in the records DB")
+    if sub["state"] in ("failed", "canceled"):
+        return None, {"submission_id": submission_id, "skipped": sub["state"]}
+    return sub, {}

@@ -1,0 +1,161 @@
+"""Fan-in: turn a submission's fold records into its cross-validation summary.
+
+Per metric: mean, sample standard deviation (ddof=1), min, max and a naive 95 % t-interval over
+the J fold scores, mean +/- t(0.975, J-1) * s / sqrt(J). It is labelled naive because it treats
+folds as independent samples, and cross-validation folds are not: Bates, Hastie and Tibshirani
+(2024, JASA 119:1434-1445) show such intervals undercover. The baseline is summarised over the
+same folds as the candidate, so the two stay paired.
+"""
+
+from __future__ import annotations
+
+import math
+import platform
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import scipy
+import sklearn
+from scipy import stats
+
+import service
+from service.catalog import load_catalog
+from service.records import datasets, submissions
+from service.submission.dispatch import fold_cells
+from worker.jobs.runtime import WorkerContext
+from worker.learning.fit_readings import curve_summary, fit_gap, search_summary
+from worker.learning.pipeline import baseline_description
+
+STATISTICS_NOTE = {
+    "std": "sample standard deviation (ddof=1) of the fold scores",
+    "naive_interval_95": "mean +/- t(0.975, J-1) * std / sqrt(J) over the J fold scores; naive: it treats "
+                         "folds as independent and undercovers (Bates, Hastie, Tibshirani 2024)",
+    "sign_stable": "the coefficient has the same strict sign in every fold",
+}
+
+
+def summarize(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
+    """Summarise the folds, store the summary; when every fold failed, fail the submission."""
+    sub = submissions.get(ctx.engine, submission_id)
+    if sub is None:
+        raise LookupError(f"no submission {submission_id!r} in the records DB")
+    if sub["state"] not in submissions.LIVE_STATES:
+        return {"submission_id": submission_id, "skipped": sub["state"]}
+    dataset = datasets.get_internal(ctx.engine, sub["dataset_id"])
+    if dataset is None:
+        raise LookupError(f"submission {submission_id} refers to dataset {sub['dataset_id']!r}, which is gone")
+    config = sub["config"]
+    rows = submissions.fold_rows(ctx.engine, submission_id)
+    document = summary_document(rows, fold_cells(config["validation"]), config["metrics"], str(dataset["task"]))
+    document["provenance"] = provenance(sub, dataset)
+    submissions.store_summary(ctx.engine, submission_id, document)
+    ok = sum(1 for r in rows if r["status"] == "ok")
+    if ok == 0:
+        first = document["failures"][0]["error"] if document["failures"] else "no fold produced a result"
+        submissions.transition(ctx.engine, submission_id, "failed", submissions.LIVE_STATES, error=first)
+    return {"submission_id": submission_id, "folds_ok": ok, "folds_failed": len(document["failures"])}
+
+
+def summary_document(
+    rows: Sequence[Mapping[str, Any]], cells: Sequence[tuple[int, int]], metrics: Sequence[str], task: str
+) -> dict[str, Any]:
+    """Build the summary from fold records; a planned fold with no record counts as failed."""
+    recorded = {(r["repeat"], r["fold"]) for r in rows}
+    ok = [r for r in rows if r["status"] == "ok"]
+    failures = [{"repeat": r["repeat"], "fold": r["fold"], "error": r["error"]} for r in rows
+                if r["status"] != "ok"]
+    failures += [{"repeat": r, "fold": f, "error": "no result was recorded: the fold job crashed or was lost"}
+                 for r, f in cells if (r, f) not in recorded]
+    failures.sort(key=lambda x: (x["repeat"], x["fold"]))
+    return {
+        "summary": {m: describe([r["scores"].get(m) for r in ok]) for m in metrics},
+        "statistics": STATISTICS_NOTE,
+        "folds_ok": len(ok),
+        "failures": failures,
+        "coefficients": coefficient_summary([r["coefficients"] for r in ok if r.get("coefficients")]),
+        "fit_gap": fit_gap(ok, metrics),
+        "learning_curve": curve_summary(ok, metrics),
+        "search": search_summary(ok, metrics),
+        "baseline": {
+            **baseline_description(task),
+            "folds": "the folds where the candidate succeeded",
+            "summary": {m: describe([(r["baseline_scores"] or {}).get(m) for r in ok]) for m in metrics},
+        },
+    }
+
+
+def describe(values: Sequence[float | None]) -> dict[str, Any]:
+    """Return n, mean, std (ddof=1), min, max and the naive 95 % interval of the defined values."""
+    x = np.asarray([v for v in values if v is not None], dtype=np.float64)
+    n = int(x.size)
+    if n == 0:
+        return {"n": 0, "mean": None, "std": None, "min": None, "max": None, "naive_interval_95": None}
+    mean = float(x.mean())
+    std = float(x.std(ddof=1)) if n > 1 else None
+    interval = None
+    if std is not None:
+        half = float(stats.t.ppf(0.975, n - 1)) * std / math.sqrt(n)
+        interval = [mean - half, mean + half]
+    return {"n": n, "mean": mean, "std": std, "min": float(x.min()), "max": float(x.max()),
+            "naive_interval_95": interval}
+
+
+def coefficient_summary(per_fold: Sequence[Mapping[str, Any]]) -> dict[str, Any] | None:
+    """Align the folds' coefficients by (output, name) and describe each term's spread and sign."""
+    if not per_fold:
+        return None
+    order: dict[tuple[str, str], None] = {}
+    tables: list[dict[tuple[str, str], float]] = []
+    intercepts: dict[str, list[float | None]] = {}
+    for k, fold in enumerate(per_fold):
+        table = {}
+        for output, row in zip(fold["outputs"], fold["values"], strict=True):
+            for name, value in zip(fold["names"], row, strict=True):
+                table[(output, name)] = value
+                order.setdefault((output, name), None)
+        tables.append(table)
+        for output, value in zip(fold["outputs"], fold["intercept"], strict=False):
+            intercepts.setdefault(output, [None] * len(per_fold))[k] = value
+    terms = []
+    for key in order:
+        values = [t.get(key) for t in tables]
+        terms.append({"output": key[0], "name": key[1], "values": values, **_spread(values),
+                      "sign_stable": _sign_stable(values)})
+    return {
+        "folds": len(per_fold),
+        "outputs": list(dict.fromkeys(o for o, _ in order)),
+        "terms": terms,
+        "intercept": [{"output": o, "values": v, **_spread(v)} for o, v in intercepts.items()],
+    }
+
+
+def _spread(values: Sequence[float | None]) -> dict[str, Any]:
+    described = describe(values)
+    return {k: described[k] for k in ("mean", "std", "min", "max")}
+
+
+def _sign_stable(values: Sequence[float | None]) -> bool | None:
+    if len(values) < 2:
+        return None  # one fold says nothing about stability
+    if any(v is None for v in values):
+        return False  # absent in a fold (e.g. a category unseen in its training rows)
+    signs = {math.copysign(1.0, v) if v != 0 else 0.0 for v in values if v is not None}
+    return len(signs) == 1 and 0.0 not in signs
+
+
+def provenance(sub: Mapping[str, Any], dataset: Mapping[str, Any]) -> dict[str, Any]:
+    """Say what produced the result: data and configuration fingerprints, the fold plan, versions."""
+    validation = sub["config"]["validation"]
+    return {
+        "dataset_fingerprint": dataset["fingerprint"],
+        "development_fingerprint": dataset["development_fingerprint"],
+        "config_fingerprint": sub["config_fingerprint"],
+        "fold_plan": {k: validation.get(k) for k in ("scheme", "folds", "seed", "repeats")},
+        "versions": {
+            "sealfold": service.__version__, "python": platform.python_version(),
+            "scikit-learn": sklearn.__version__, "numpy": np.__version__, "pandas": pd.__version__,
+            "scipy": scipy.__version__, "catalog_scikit-learn": load_catalog().sklearn_version,
+        },
+    }

@@ -1,0 +1,130 @@
+"""Judge a submission once its summary and holdout are stored: release the holdout figure, then decide.
+
+The last job of the chain (folds -> summary, and the holdout beside them -> judge). It reads only
+the records: fold rows, the stored summary and the raw holdout outcome the holdout job stored once.
+A holdout attempt that failed fails the submission here, after the summary, so the failed
+submission still carries its cross-validation result. The release is
+recorded once per submission (primary key) under a per-dataset lock, because the ladder and
+thresholdout carry state from one submission to the next. The submission becomes ``succeeded``
+only here, so a client that sees ``succeeded`` always finds its verdict.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from datetime import datetime
+from typing import Any
+
+import numpy as np
+from redis import Redis
+
+from service.gate import review_state
+from service.gate.policy import Policy, parse_policy
+from service.gate.release import HoldoutScores, release
+from service.gate.verdict import CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV, ChampionFolds, PlanFacts, judge
+from service.records import datasets, reviews, submissions
+from service.records.engine import as_utc, utcnow
+from worker.jobs.losses import load_per_example
+from worker.jobs.runtime import WorkerContext, submission_to_work_on
+
+Cell = tuple[int, int]
+_EPOCH = datetime(1970, 1, 1)
+
+
+def judge_submission(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[str, Any]:
+    """Release the holdout figure and store the verdict of one submission; idempotent."""
+    engine = ctx.engine
+    sub, skip = submission_to_work_on(ctx, submission_id)
+    if sub is None:
+        return skip
+    if sub["verdict"] is not None:
+        submissions.transition(engine, submission_id, "succeeded", submissions.LIVE_STATES)
+        return {"submission_id": submission_id, "verdict": "already judged"}
+    if sub["result"] is None:
+        raise RuntimeError(f"submission {submission_id} has no cross-validation summary yet; "
+                           "it is judged after the summary job")
+    raw = submissions.get_holdout(engine, submission_id)
+    if raw is None:
+        raise RuntimeError(f"submission {submission_id} has no holdout score yet; it is judged after the holdout job")
+    if raw.get("error"):
+        submissions.transition(engine, submission_id, "failed", submissions.LIVE_STATES, error=str(raw["error"]))
+        return {"submission_id": submission_id, "decision": None, "holdout": "not scored"}
+    dataset = datasets.get_internal(engine, sub["dataset_id"])
+    if dataset is None:
+        raise LookupError(f"submission {submission_id} refers to dataset {sub['dataset_id']!r}, which is gone")
+
+    stated = review_state.policy_in_force(engine, dataset)
+    version = int(stated["version"])
+    policy = parse_policy(stated, str(dataset["task"]))
+    metric = policy.primary_metric
+    folds = [row for row in submissions.fold_rows(engine, submission_id) if row["status"] == "ok"]
+    candidate = _cells(folds, "scores", metric)
+    baseline = _cells(folds, "baseline_scores", metric)
+
+    with redis.lock(f"sealfold:release:{dataset['id']}", timeout=120, blocking_timeout=60):
+        if reviews.get_release(engine, submission_id) is None:
+            _release(ctx, sub, dataset, policy, raw["scores"], candidate, folds)
+
+    champion_id = reviews.current_champion(engine, dataset["id"])
+    champion = None if champion_id in (None, submission_id) else _champion(ctx, str(champion_id), metric)
+    validation = sub["config"]["validation"]
+    plan = PlanFacts(
+        key=(validation["scheme"], int(validation["folds"]), int(validation["seed"])),
+        sizes={(r["repeat"], r["fold"]): (r["train_rows"], r["test_rows"]) for r in folds},
+        overridden=bool(validation.get("plan_overridden")),
+        test=FIVE_BY_TWO_CV if validation.get("test") == "5x2cv" else CORRECTED_RESAMPLED_T,
+        holdout_rows=int(dataset["rows_holdout"]),
+    )
+    holdout_value = raw["scores"].get(metric)
+    verdict = judge(policy, candidate, baseline, champion, holdout_value, plan, policy_version=version)
+    reviews.store_verdict(engine, submission_id, verdict, version, None if champion is None else champion_id)
+    submissions.transition(engine, submission_id, "succeeded", submissions.LIVE_STATES)
+    return {"submission_id": submission_id, "decision": verdict["decision"]}
+
+
+def _cells(folds: list[dict[str, Any]], column: str, metric: str) -> dict[Cell, float]:
+    values = ((row["repeat"], row["fold"], (row[column] or {}).get(metric)) for row in folds)
+    return {(r, f): float(v) for r, f, v in values if v is not None}
+
+
+def _champion(ctx: WorkerContext, champion_id: str, metric: str) -> ChampionFolds | None:
+    champ = submissions.get(ctx.engine, champion_id)
+    if champ is None:
+        return None
+    validation = champ["config"]["validation"]
+    rows = [r for r in submissions.fold_rows(ctx.engine, champion_id) if r["status"] == "ok"]
+    return ChampionFolds(
+        submission_id=champion_id, scores=_cells(rows, "scores", metric),
+        plan_key=(validation["scheme"], int(validation["folds"]), int(validation["seed"])),
+    )
+
+
+def _release(
+    ctx: WorkerContext, sub: Mapping[str, Any], dataset: Mapping[str, Any], policy: Policy,
+    raw_scores: Mapping[str, float | None], candidate: Mapping[Cell, float], folds: list[dict[str, Any]],
+) -> None:
+    engine = ctx.engine
+    values = np.array(list(candidate.values()), dtype=float)
+    last = reviews.last_release(engine, dataset["id"])
+    state: dict[str, Any] = dict(last["state"]) if last else {}
+    mine = reviews.releases_since(engine, dataset["id"], _EPOCH, owner_key_id=sub["owner_key_id"])
+    spent_at = [as_utc(r["released_at"]) or utcnow() for r in mine if r["spent"] > 0]
+    holdout = HoldoutScores(
+        submission_id=sub["id"],
+        scores={m: float(v) for m, v in raw_scores.items() if v is not None},
+        cv_mean=float(values.mean()) if values.size else float("nan"),
+        cv_std=float(values.std(ddof=1)) if values.size > 1 else 0.0,
+        fold_test_rows=float(np.mean([r["test_rows"] for r in folds])) if folds else 0.0,
+        holdout_rows=int(dataset["rows_holdout"]),
+        per_example=load_per_example(ctx.settings, dataset["id"], sub["id"], policy.primary_metric),
+    )
+    best_id = (state.get("ladder") or {}).get("best_submission")
+    best = load_per_example(ctx.settings, dataset["id"], str(best_id), policy.primary_metric) if best_id else None
+    # Fresh OS entropy for the noise of thresholdout: a seed anyone could know would undo the noise.
+    outcome = release(policy, holdout, state=state, spent_at=spent_at, now=utcnow(),
+                      rng=np.random.default_rng(), best_per_example=best)
+    reviews.record_release(engine, {
+        "submission_id": sub["id"], "dataset_id": dataset["id"], "owner_key_id": sub["owner_key_id"],
+        "mode": outcome.mode, "released": outcome.released, "spent": outcome.spent, "state": outcome.state,
+        "withheld_until": outcome.withheld_until,
+    })

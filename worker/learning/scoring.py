@@ -1,0 +1,162 @@
+"""Compute the metrics a submission asked for, with scikit-learn's own metric functions.
+
+Classification conventions (the catalog and API describe the same):
+- binary: the positive class is ``classes_[1]``, the larger label in scikit-learn's sorted order; ``f1``
+  uses it as ``pos_label``, ``roc_auc`` and ``brier`` use the probability of it;
+- multiclass: ``f1`` is the macro average, ``roc_auc`` one-vs-rest macro; ``brier`` is binary only.
+Non-finite values (e.g. ``r2`` on a constant test fold) are reported as None.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Sequence
+from typing import Any
+
+import numpy as np
+from sklearn import metrics as skm
+
+from service.catalog.metrics import METRICS
+
+Metric = Callable[[np.ndarray, np.ndarray | None, np.ndarray | None, np.ndarray], float]
+
+
+def _binary(classes: np.ndarray, name: str) -> None:
+    if len(classes) != 2:
+        raise ValueError(f"{name} needs a binary target, got {len(classes)} classes")
+
+
+def _f1(y: np.ndarray, pred: Any, _proba: Any, classes: np.ndarray) -> float:
+    if len(classes) == 2:
+        return float(skm.f1_score(y, pred, pos_label=classes[1], average="binary"))
+    return float(skm.f1_score(y, pred, labels=classes, average="macro"))
+
+
+def _roc_auc(y: np.ndarray, _pred: Any, proba: Any, classes: np.ndarray) -> float:
+    if len(classes) == 2:
+        return float(skm.roc_auc_score(y == classes[1], proba[:, 1]))
+    return float(skm.roc_auc_score(y, proba, multi_class="ovr", average="macro", labels=classes))
+
+
+def _brier(y: np.ndarray, _pred: Any, proba: Any, classes: np.ndarray) -> float:
+    _binary(classes, "brier")
+    return float(skm.brier_score_loss(y, proba[:, 1], pos_label=classes[1]))
+
+
+METRIC_FUNCTIONS: dict[str, Metric] = {
+    "rmse": lambda y, pred, _p, _c: float(skm.root_mean_squared_error(y, pred)),
+    "mse": lambda y, pred, _p, _c: float(skm.mean_squared_error(y, pred)),
+    "mae": lambda y, pred, _p, _c: float(skm.mean_absolute_error(y, pred)),
+    "r2": lambda y, pred, _p, _c: float(skm.r2_score(y, pred)),
+    "accuracy": lambda y, pred, _p, _c: float(skm.accuracy_score(y, pred)),
+    "balanced_accuracy": lambda y, pred, _p, _c: float(skm.balanced_accuracy_score(y, pred)),
+    "f1": _f1,
+    "roc_auc": _roc_auc,
+    "log_loss": lambda y, _pred, proba, classes: float(skm.log_loss(y, proba, labels=classes)),
+    "brier": _brier,
+}
+
+
+def compute(
+    name: str, y_true: Any, y_pred: Any = None, proba: Any = None, classes: Any = None
+) -> float | None:
+    """Return one metric from labels or values, predictions and (for some) class probabilities."""
+    y = np.asarray(y_true)
+    labels = np.asarray(classes) if classes is not None else np.array([])
+    if METRICS[name].task == "classification" and classes is None:
+        labels = np.unique(y)
+    value = METRIC_FUNCTIONS[name](y, None if y_pred is None else np.asarray(y_pred),
+                                   None if proba is None else np.asarray(proba), labels)
+    return value if math.isfinite(value) else None
+
+
+def predictions(model: Any, X: Any, metric_names: Sequence[str]) -> tuple[Any, Any, Any]:
+    """Predict once: labels and/or probabilities as the metrics need, and the fitted classes."""
+    needs_proba = any(METRICS[m].needs_proba for m in metric_names)
+    needs_pred = any(not METRICS[m].needs_proba or m in PER_EXAMPLE_FROM_LABELS for m in metric_names)
+    pred = model.predict(X) if needs_pred else None
+    proba = model.predict_proba(X) if needs_proba else None
+    return pred, proba, getattr(model, "classes_", None)
+
+
+def score_predictions(
+    y: Any, pred: Any, proba: Any, classes: Any, metric_names: Sequence[str]
+) -> tuple[dict[str, float | None], dict[str, str]]:
+    """Compute every metric from one set of predictions; see ``score_model`` for undefined metrics."""
+    scores: dict[str, float | None] = {}
+    undefined: dict[str, str] = {}
+    for name in metric_names:
+        try:
+            scores[name] = compute(name, y, pred, proba, classes)
+        except ValueError as exc:
+            scores[name], undefined[name] = None, str(exc)
+    return scores, undefined
+
+
+def score_model(
+    model: Any, X: Any, y: Any, metric_names: Sequence[str]
+) -> tuple[dict[str, float | None], dict[str, str]]:
+    """Predict once (labels and/or probabilities as the metrics need) and compute every metric.
+
+    Returns the scores and, per metric scikit-learn could not compute on these rows (e.g. ``roc_auc``
+    on a fold with one class), its message; such a metric scores None.
+    """
+    pred, proba, classes = predictions(model, X, metric_names)
+    return score_predictions(y, pred, proba, classes, metric_names)
+
+
+PER_EXAMPLE_FROM_LABELS = frozenset({"rmse", "mse", "mae", "accuracy"})
+
+# Training rows scored at most per fit; above this, a seeded random sample of about this many.
+TRAIN_SCORE_ROWS = 100_000
+_TRAIN_SAMPLE_SEED = 0x5EA1F01D
+
+
+def training_sample(n_train: int, repeat: int, fold: int, limit: int | None = None) -> np.ndarray | None:
+    """Return the positions among a fit's ``n_train`` training rows whose scores stand for all of them.
+
+    None (score every row) up to ``limit`` rows (default ``TRAIN_SCORE_ROWS``). Above it, each row
+    is kept with probability limit / n_train, so about ``limit`` rows, in their order; the seed is
+    fixed per (repeat, fold), so every submission on a fold plan scores the same rows and their
+    training scores stay paired. A training score is a mean over rows: on 100,000 rows its sampling
+    error is far below anything a fit gap is read from, while scoring every row of a million-row
+    fold costs a full prediction pass -- for an ensemble, more than the fold's test rows (sampling
+    the training rows for a training score is common practice: scikit-learn's histogram gradient
+    boosting scores early stopping on a 10,000-row subsample of the training data, from memory).
+    """
+    limit = TRAIN_SCORE_ROWS if limit is None else limit
+    if n_train <= limit:
+        return None
+    draws = np.random.default_rng([_TRAIN_SAMPLE_SEED, repeat, fold]).random(n_train)
+    return np.flatnonzero(draws < limit / n_train)
+
+
+def rows_to_score(X: Any, y: np.ndarray, sample: np.ndarray | None) -> tuple[Any, np.ndarray]:
+    """Return the training rows to score: all of them, or copies of the ``training_sample`` positions."""
+    if sample is None:
+        return X, y
+    return (X.iloc[sample] if hasattr(X, "iloc") else X[sample]), y[sample]
+
+
+def per_example(name: str, y_true: Any, pred: Any, proba: Any, classes: Any) -> np.ndarray | None:
+    """Return per-row values whose mean is the metric (rmse: squared errors), or None if it has none.
+
+    For the parameter-free ladder only; these values stay inside the service.
+    """
+    y = np.asarray(y_true)
+    if name in ("rmse", "mse"):
+        return np.square(y.astype(float) - np.asarray(pred, dtype=float))
+    if name == "mae":
+        return np.abs(y.astype(float) - np.asarray(pred, dtype=float))
+    if name == "accuracy":
+        return (y == np.asarray(pred)).astype(float)
+    if name in ("log_loss", "brier") and proba is not None and classes is not None:
+        p = np.asarray(proba, dtype=float)
+        column = np.searchsorted(np.asarray(classes), y)
+        if name == "log_loss":
+            # scikit-learn's log_loss clips probabilities to [eps, 1 - eps] with eps of the dtype.
+            eps = np.finfo(p.dtype).eps
+            return -np.log(np.clip(p[np.arange(len(y)), column], eps, 1 - eps))
+        if p.shape[1] == 2:
+            return np.square(p[:, 1] - (column == 1))
+    return None

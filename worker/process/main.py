@@ -1,0 +1,257 @@
+"""Run a sealfold worker: preload scikit-learn, then run each job here or in a forked work horse.
+
+Where a job runs is ``worker.process.placement``'s choice: checks, summaries, verdicts and fold jobs in this
+process (a fold's fitting in the worker's long-lived fold process, ``worker.process.fold_process``), the
+holdout job in a horse RQ forks for the one job.
+
+The worker only runs the functions in ``worker.jobs.ALLOWED_JOBS`` and deserialises jobs as JSON,
+so nothing in Redis can make it import or unpickle anything else. Heartbeats every ~10 s and
+registry maintenance every ~30 s (by any idle worker) mean the job of a SIGKILLed worker is declared
+abandoned and retried within about two minutes (heartbeat TTL = monitoring interval + 60 s, plus
+one maintenance tick). Maintenance also runs the reconciler, which re-enqueues work Redis lost.
+"""
+
+from __future__ import annotations
+
+import importlib
+import logging
+import random
+import threading
+import time
+from collections.abc import Callable, Iterator
+from contextlib import AbstractContextManager, contextmanager
+from typing import Any
+
+from redis import Redis
+from rq.exceptions import DeserializationError
+from rq.executions import Execution
+from rq.job import Job
+from rq.queue import Queue
+from rq.serializers import JSONSerializer
+from rq.utils import import_attribute
+from rq.worker import Worker, WorkerStatus
+
+from service.catalog import load_catalog
+from service.records.engine import make_engine
+from service.settings import Settings
+from service.submission import dispatch
+from worker.jobs import ALLOWED_JOBS, runtime
+from worker.process import placement
+from worker.process.fold_process import FoldProcess
+from worker.process.warmup import warm_up
+
+log = logging.getLogger(__name__)
+
+JOB_MONITORING_INTERVAL = 10
+MAINTENANCE_INTERVAL = 30
+RECONCILE_LOCK = "sealfold:reconcile-lock"
+# Callbacks a job may name; sealfold's own jobs use none, so any name is refused.
+ALLOWED_CALLBACKS: frozenset[str] = frozenset()
+
+
+class RefusedJob(Exception):
+    """A job named a function or callback this worker does not run."""
+
+
+class AllowListedJob(Job):
+    """An RQ job that resolves only allow-listed function names, never an instance method.
+
+    ``keepalive``, set by the worker for a job it runs in its own process, wraps the job function's
+    run (``perform``) and nothing after it.
+    """
+
+    keepalive: Callable[[], AbstractContextManager[None]] | None = None
+
+    def perform(self) -> Any:
+        if self.keepalive is None:
+            return super().perform()
+        with self.keepalive():
+            return super().perform()
+
+    @property
+    def func(self) -> Callable[..., Any]:
+        name = self.func_name
+        refused = self.instance is not None or name not in ALLOWED_JOBS
+        callbacks = [n for n in (self._success_callback_name, self._failure_callback_name,
+                                 self._stopped_callback_name) if n and n not in ALLOWED_CALLBACKS]
+        if refused or callbacks:
+            self.retries_left = 0  # a retry would be refused the same way
+            what = f"callback(s) {callbacks!r}" if not refused else f"function {name!r}"
+            raise RefusedJob(f"job {self.id} names {what}, which this worker does not run; it runs only "
+                             f"{', '.join(sorted(ALLOWED_JOBS))}")
+        assert name is not None
+        function: Callable[..., Any] = import_attribute(name)
+        return function
+
+    @property
+    def success_callback(self) -> Any:
+        return self._allowed_callback(self._success_callback_name, lambda: super(AllowListedJob, self)
+                                      .success_callback)
+
+    @property
+    def failure_callback(self) -> Any:
+        return self._allowed_callback(self._failure_callback_name, lambda: super(AllowListedJob, self)
+                                      .failure_callback)
+
+    @property
+    def stopped_callback(self) -> Any:
+        return self._allowed_callback(self._stopped_callback_name, lambda: super(AllowListedJob, self)
+                                      .stopped_callback)
+
+    @staticmethod
+    def _allowed_callback(name: str | None, resolve: Callable[[], Any]) -> Any:
+        if not name:
+            return None
+        if name not in ALLOWED_CALLBACKS:
+            log.warning("ignoring callback %r: not on the worker's allow-list", name)
+            return None
+        return resolve()
+
+
+class SealfoldWorker(Worker):
+    """RQ's forking worker, plus a fresh DB pool in each work horse and the reconciler in maintenance."""
+
+    job_class = AllowListedJob
+
+    def main_work_horse(self, job: Job, queue: Queue) -> None:
+        runtime.after_fork()
+        super().main_work_horse(job, queue)
+
+    def execute_job(self, job: Job, queue: Queue) -> None:
+        """Run the job in this process when ``worker.process.placement`` says so; fork a horse for the rest.
+
+        An in-process job keeps its heartbeat going from a thread (``heartbeats_while``), as a
+        forking worker does while it waits for its horse, so a killed worker's job is declared
+        abandoned and retried the same way whichever process ran it.
+        """
+        try:
+            in_process = placement.runs_in_process(job.func_name)
+        except DeserializationError:
+            in_process = False
+        if not in_process:
+            super().execute_job(job, queue)
+        else:
+            execution = self.prepare_execution(job)
+            if isinstance(job, AllowListedJob):
+                job.keepalive = lambda: self.heartbeats_while(job, execution)
+            self.perform_job(job, queue, execution)
+            self.set_state(WorkerStatus.IDLE)
+        self.enqueue_ready_dependents()
+
+    def enqueue_ready_dependents(self, attempts: int = 4) -> None:
+        """Enqueue the jobs RQ left in the ready registries of this worker's queues.
+
+        When a job's last dependency finishes, RQ 3 moves it to a ready registry and enqueues it
+        at once -- under WATCH, so when two of its dependencies finish at the same moment on two
+        workers, each enqueue attempt can be invalidated by the other and the job waits for the
+        next registry clean-up, up to ``MAINTENANCE_INTERVAL`` later. Fold jobs of a small table
+        finish within milliseconds of each other, which made that wait common (1 submission in 30
+        on breast cancer, two workers), so every worker drains these registries after each job,
+        retrying a contended one a few times.
+        """
+        for queue in self.queues:
+            registry = queue.ready_job_registry
+            for attempt in range(attempts):
+                if not self.connection.zcard(registry.key):
+                    break
+                if attempt:
+                    time.sleep(random.uniform(0.001, 0.005) * attempt)  # step out of the other's way
+                registry.cleanup()
+
+    @contextmanager
+    def heartbeats_while(self, job: Job, execution: Execution) -> Iterator[None]:
+        """Send the heartbeats of a job running in this process every monitoring interval.
+
+        The thread stops before the job's outcome is written (it wraps only the job function), so
+        a late heartbeat never brings a finished job back into the started registry.
+        """
+        stop = threading.Event()
+
+        def beat() -> None:
+            while not stop.wait(self.job_monitoring_interval):
+                try:
+                    self.maintain_heartbeats(job, execution)
+                except Exception:  # a missed beat is retried at the next interval
+                    log.warning("heartbeat of job %s failed", job.id, exc_info=True)
+
+        thread = threading.Thread(target=beat, name=f"heartbeat-{job.id}", daemon=True)
+        thread.start()
+        try:
+            yield
+        finally:
+            stop.set()
+            thread.join()
+
+    def run_maintenance_tasks(self) -> None:
+        super().run_maintenance_tasks()
+        try:
+            reconcile_once(self.connection)
+        except Exception:  # the reconciler must never take the worker down; the next tick retries
+            log.exception("reconciler failed; retrying at the next maintenance tick")
+
+
+def reconcile_once(redis: Redis[Any]) -> int:
+    """Re-enqueue lost work, unless another worker did so within the last maintenance interval.
+
+    The reconciler is idempotent (deterministic job ids); the lock only saves N workers doing the
+    same scan at every tick.
+    """
+    if not redis.set(RECONCILE_LOCK, "1", nx=True, ex=MAINTENANCE_INTERVAL - 5):
+        return 0
+    ctx = runtime.current()
+    return dispatch.reconcile(ctx.engine, redis, ctx.settings)
+
+
+def preload() -> None:
+    """Import numpy, pandas, scikit-learn and every catalog module before forking.
+
+    Each work horse is a fork of this process, so what is imported here is shared copy-on-write
+    and no job pays the import cost.
+    """
+    for module in ("numpy", "pandas", "scipy.stats", "sklearn", "sklearn.pipeline", "sklearn.compose",
+                   "sklearn.metrics", "worker.jobs"):
+        importlib.import_module(module)
+    for entry in load_catalog().entries.values():
+        importlib.import_module(entry.module)
+
+
+def limit_threads() -> None:
+    """Give each fold job one core: BLAS and OpenMP pools of one thread (scale out with workers)."""
+    from threadpoolctl import threadpool_limits
+
+    threadpool_limits(limits=1)
+
+
+def build_worker(settings: Settings, redis: Redis[Any], name: str | None = None) -> SealfoldWorker:
+    """Return a worker on the check queue (served first) and the work queue."""
+    return SealfoldWorker(
+        [settings.check_queue_name, settings.queue_name],
+        connection=redis,
+        name=name,
+        serializer=JSONSerializer,
+        job_class=AllowListedJob,
+        job_monitoring_interval=JOB_MONITORING_INTERVAL,
+        maintenance_interval=MAINTENANCE_INTERVAL,
+        # An idle worker blocks on the queues for worker_ttl - 15 s; keep that at the maintenance
+        # interval so the reconciler and registry clean-up also run on an idle worker.
+        worker_ttl=MAINTENANCE_INTERVAL + 15,
+    )
+
+
+def run_worker(settings: Settings, *, burst: bool = False, name: str | None = None) -> None:
+    """Install the worker context, preload, and work until stopped (or until the queues are empty)."""
+    preload()
+    limit_threads()
+    engine = make_engine(settings)
+    runtime.install(runtime.WorkerContext(settings=settings, engine=engine))
+    warm_up(runtime.current())
+    folds = FoldProcess()
+    folds.start()  # forked now, warm and before any thread exists
+    runtime.install_fold_runner(folds)
+    redis = Redis.from_url(settings.redis_url)
+    worker = build_worker(settings, redis, name)
+    try:
+        worker.work(burst=burst, logging_level=settings.log_level, with_scheduler=False)
+    finally:
+        folds.stop()
+        engine.dispose()
