@@ -1,24 +1,12 @@
-"""Shared fixtures: a private redis-server, a live stack with real forking workers, keys."""
+"""Fixtures every test folder may use: a private redis-server for the session."""
 
 from __future__ import annotations
 
-import contextlib
-import time
 from collections.abc import Iterator
-from dataclasses import dataclass, field
-from pathlib import Path
-from typing import Any
 
 import pytest
 
-from tests.support.http import Client
-from tests.support.servers import (
-    ServedApp,
-    redis_server,
-    stack_environment,
-    start_worker,
-    stop_processes,
-)
+from tests.support.servers import redis_server
 
 
 @pytest.fixture(scope="session")
@@ -26,98 +14,3 @@ def redis_url(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
     """A private redis-server for the whole session (never the machine's own on 6379)."""
     with redis_server(tmp_path_factory.mktemp("redis")) as url:
         yield url
-
-
-@dataclass
-class Stack:
-    """A running sealfold: API over real HTTP, real Redis, two real forking workers, SQLite records."""
-
-    url: str
-    settings: Any
-    engine: Any
-    tokens: dict[str, str]
-    data_dir: Path
-    log_path: Path
-    workers: list[Any] = field(default_factory=list)
-    env: dict[str, str] = field(default_factory=dict)
-
-    def client(self, who: str = "submitter") -> Client:
-        return Client(self.url, self.tokens.get(who, who))
-
-    def wait_for(self, sub_id: str, who: str = "submitter", timeout: float = 120.0) -> dict[str, Any]:
-        """Poll a submission until it is finished; fail with the worker log when it takes too long."""
-        client = self.client(who)
-        deadline = time.monotonic() + timeout
-        while time.monotonic() < deadline:
-            doc = client.get(f"/v1/submissions/{sub_id}").json()
-            if doc["state"] in ("succeeded", "failed", "canceled"):
-                return doc
-            time.sleep(0.05)
-        log_tail = self.log_path.read_text(errors="replace")[-4000:]
-        pytest.fail(f"submission {sub_id} still {doc['state']} after {timeout} s; worker log:\n{log_tail}")
-
-
-def _make_tokens(engine: Any) -> dict[str, str]:
-    from service.records.keys import create_key
-
-    tokens = {}
-    for who, team, role in (
-        ("submitter", "fleet", "submitter"), ("steward", "fleet", "steward"), ("admin", "fleet", "admin"),
-        ("other_submitter", "rivals", "submitter"), ("other_steward", "rivals", "steward"),
-    ):
-        tokens[who] = create_key(engine, team, role, who)[1]
-    return tokens
-
-
-@contextlib.contextmanager
-def running_stack(data_dir: Path, redis_url: str, queue: str, workers: int = 2) -> Iterator[Stack]:
-    """Run the API (waitress, real HTTP) and ``workers`` real forking workers on one data dir."""
-    from service.app import create_app
-    from service.records.engine import make_engine
-    from service.settings import Settings
-
-    import_root = data_dir / "imports"
-    import_root.mkdir(parents=True, exist_ok=True)
-    overrides = {"data_dir": data_dir, "redis_url": redis_url, "import_root": import_root,
-                 "queue_name": queue, "database_url": ""}
-    settings = Settings.load(overrides, environ={})
-    engine = make_engine(settings)
-    tokens = _make_tokens(engine)
-    env = stack_environment(data_dir, redis_url, queue=queue)
-    log_path = data_dir / "workers.log"
-    procs = [start_worker(env, f"{queue}-{i}", log_path) for i in range(workers)]
-    app = create_app(overrides)
-    try:
-        with ServedApp(app) as served:
-            _wait_ready(Client(served.url), redis_url, procs, log_path)
-            stack = Stack(served.url, settings, engine, tokens, data_dir, log_path)
-            stack.workers = procs
-            stack.env = env
-            yield stack
-    finally:
-        stop_processes(procs)
-        engine.dispose()
-
-
-@pytest.fixture(scope="session")
-def stack(tmp_path_factory: pytest.TempPathFactory, redis_url: str) -> Iterator[Stack]:
-    """One live stack for the session's end-to-end tests."""
-    with running_stack(tmp_path_factory.mktemp("stack"), redis_url, "e2e") as live:
-        yield live
-
-
-def _wait_ready(client: Client, redis_url: str, workers: list[Any], log_path: Path, timeout: float = 90.0) -> None:
-    """Wait until the API is ready and every worker has registered itself in Redis."""
-    from redis import Redis
-    from rq.worker import Worker
-
-    redis = Redis.from_url(redis_url)
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        dead = [w for w in workers if w.poll() is not None]
-        if dead:
-            pytest.fail(f"a worker exited with {dead[0].returncode}:\n{log_path.read_text(errors='replace')[-3000:]}")
-        if client.get("/readyz").status == 200 and Worker.count(connection=redis) >= len(workers):
-            return
-        time.sleep(0.1)
-    pytest.fail(f"stack not ready within {timeout} s:\n{log_path.read_text(errors='replace')[-3000:]}")

@@ -9,12 +9,10 @@ import numpy as np
 import pandas as pd
 from sklearn import datasets as skd
 
+from tests.support.frames import diabetes_frame
 from tests.support.http import Client
 
-
-def diabetes_frame() -> pd.DataFrame:
-    """Diabetes (Efron et al. 2004, bundled with scikit-learn): 442 rows, 10 features, target 'target'."""
-    return skd.load_diabetes(as_frame=True).frame
+__all__ = ["breast_cancer_frame", "csv_bytes", "development", "diabetes_frame", "fold_indices", "register"]
 
 
 def breast_cancer_frame() -> pd.DataFrame:

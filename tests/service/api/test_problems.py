@@ -1,0 +1,94 @@
+"""Every error is RFC 9457 problem+json; field problems are located by JSON pointers."""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING
+
+import pytest
+from marshmallow import ValidationError
+from redis import Redis
+from sqlalchemy.exc import OperationalError
+
+from service.api.problems import escape_pointer, flatten_messages
+from service.api.schemas import SubmissionRequestSchema
+from service.errors import FieldProblem
+
+if TYPE_CHECKING:
+    from tests.support.api import Api
+
+
+
+def test_nested_marshmallow_messages_become_json_pointers() -> None:
+    with pytest.raises(ValidationError) as caught:
+        SubmissionRequestSchema().load({
+            "dataset": "ds_x",
+            "model": {"estimator": "Ridge", "params": "alpha=1",
+                      "preprocess": [{"transformer": "StandardScaler", "columns": ["a"]},
+                                     {"transformer": 3, "columns": ["b"]}]},
+            "validation": {"folds": "five"},
+            "colour": "blue",
+        })
+    found = {p.pointer for p in flatten_messages(caught.value.messages)}
+    assert found == {"/model/params", "/model/preprocess/1/transformer", "/validation/folds", "/colour"}
+
+
+def test_pointer_segments_are_escaped_and_schema_errors_point_at_their_parent() -> None:
+    # RFC 6901 section 3: "~" is written "~0" and "/" is written "~1".
+    assert escape_pointer("a/b~c") == "a~1b~0c"
+    messages = {"_schema": ["bad object"], "model": {"params": {"a/b": ["bad"]}}}
+    assert list(flatten_messages(messages)) == [
+        FieldProblem("", "bad object"), FieldProblem("/model/params/a~1b", "bad"),
+    ]
+
+
+def test_unknown_route_and_wrong_method_are_problems(api: Api) -> None:
+    api.problem(api.get("submitter", "/v1/nothing-here"), 404)
+    wrong = api.call("submitter", "PATCH", "/v1/catalog")
+    problem = api.problem(wrong, 405)
+    assert "GET" in wrong.headers["Allow"]
+    assert problem["type"] == "about:blank"
+
+
+def test_request_body_type_errors_carry_pointers(api: Api) -> None:
+    reply = api.post("submitter", "/v1/submissions", json={
+        "dataset": "ds_00", "model": {"estimator": "Ridge", "params": {"alpha": 1.0}, "features": "age"},
+        "validation": {"folds": 2.5},
+    })
+    problem = api.problem(reply, 422)
+    assert sorted(api.pointers(problem)) == ["/model/features", "/validation/folds"]
+    assert problem["type"].endswith(":invalid-input")
+    assert "/model/features" in problem["detail"]
+
+
+def test_a_body_that_is_not_json_is_415_and_broken_json_is_400(api: Api) -> None:
+    api.problem(api.post("submitter", "/v1/submissions", data="dataset=ds_1",
+                            content_type="application/x-www-form-urlencoded"), 415)
+    api.problem(api.post("submitter", "/v1/submissions", data="{not json",
+                            content_type="application/json"), 400)
+
+
+def test_unexpected_errors_leak_nothing(api: Api) -> None:
+    @api.app.get("/boom")
+    def boom() -> None:
+        raise RuntimeError("secret detail /srv/sealed/ds_1/holdout.parquet")
+
+    reply = api.get(None, "/boom")
+    problem = api.problem(reply, 500)
+    assert "secret" not in reply.get_data(as_text=True) and "holdout" not in reply.get_data(as_text=True)
+    assert problem["title"] == "Internal error"
+
+
+def test_records_db_and_queue_outages_are_503(api: Api) -> None:
+    @api.app.get("/db-down")
+    def db_down() -> None:
+        raise OperationalError("SELECT secret FROM datasets", {}, Exception("unable to open database file"))
+
+    @api.app.get("/redis-down")
+    def redis_down() -> None:
+        Redis.from_url("redis://127.0.0.1:1/0", socket_connect_timeout=0.5).ping()
+
+    for path, words in (("/db-down", "records database"), ("/redis-down", "job queue")):
+        reply = api.get(None, path)
+        problem = api.problem(reply, 503)
+        assert words in problem["detail"]
+        assert "SELECT" not in reply.get_data(as_text=True) and "127.0.0.1" not in reply.get_data(as_text=True)

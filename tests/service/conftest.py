@@ -1,0 +1,70 @@
+"""Fixtures of the service tests: an app on tmp_path with a real SQLite records DB and keys.
+
+Redis is fakeredis here: these tests exercise the HTTP layer only. The configuration check that a
+worker answers is replaced by ``worker_says_ok``; the queue path itself, with real Redis and real
+workers, is covered by the end-to-end tests.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import fakeredis
+import pytest
+
+from service.records.keys import create_key
+from tests.support.api import WHO, Api
+from tests.support.datasets import csv_bytes, diabetes_frame
+
+
+@pytest.fixture
+def api(tmp_path: Path) -> Iterator[Api]:
+    """A fresh app: SQLite records DB and data dir under tmp_path, fakeredis, small upload limit."""
+    from service.app import create_app
+
+    import_root = tmp_path / "imports"
+    import_root.mkdir()
+    app = create_app({
+        "data_dir": tmp_path / "data", "import_root": import_root, "database_url": "",
+        "redis_url": "redis://127.0.0.1:1/0", "max_upload_bytes": 512 * 1024, "min_rows": 50,
+    })
+    ctx = app.extensions["sealfold"]
+    app.extensions["sealfold"] = dataclasses.replace(ctx, redis=fakeredis.FakeRedis())
+    tokens, key_ids = {}, {}
+    for who, (team, role) in WHO.items():
+        info, token = create_key(ctx.engine, team, role, who)
+        tokens[who], key_ids[who] = token, info.id
+    yield Api(app, app.test_client(), tokens, key_ids)
+    ctx.engine.dispose()
+
+
+@pytest.fixture
+def diabetes_csv() -> bytes:
+    """Diabetes (Efron et al. 2004, bundled with scikit-learn) as a CSV upload: 442 rows."""
+    return csv_bytes(diabetes_frame())
+
+
+@pytest.fixture
+def dataset(api: Api, diabetes_csv: bytes) -> dict[str, Any]:
+    """The diabetes data registered by the fleet steward (regression on 'target', 5 folds)."""
+    reply = api.upload("steward", diabetes_csv, name="diabetes", target="target", task="regression")
+    assert reply.status_code == 201, reply.get_data(as_text=True)
+    return dict(reply.get_json())
+
+
+@pytest.fixture
+def worker_says_ok(monkeypatch: pytest.MonkeyPatch) -> list[dict[str, Any]]:
+    """Answer the worker's configuration check with "ok" and keep the documents it was sent."""
+    from service.submission import dispatch
+
+    asked: list[dict[str, Any]] = []
+
+    def check(redis: Any, settings: Any, config_doc: dict[str, Any], dataset_id: str) -> dict[str, Any]:
+        asked.append(config_doc)
+        return {"ok": True, "has_proba": False, "linear": True}
+
+    monkeypatch.setattr(dispatch, "check_config_remote", check)
+    return asked

@@ -1,0 +1,186 @@
+"""check_config: scikit-learn's own parameter validation at JSON pointers, plus the service caps."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pytest
+from sklearn.datasets import load_breast_cancer, load_diabetes
+from sklearn.linear_model import Ridge
+from sklearn.utils._param_validation import InvalidParameterError
+
+from tests.support.worker_records import add_dataset, config_document
+from worker import jobs
+from worker.jobs.runtime import WorkerContext
+
+
+@pytest.fixture
+def diabetes(ctx: WorkerContext) -> dict[str, Any]:
+    frame = load_diabetes(as_frame=True).frame
+    return add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression")
+
+
+@pytest.fixture
+def cancer(ctx: WorkerContext) -> dict[str, Any]:
+    frame = load_breast_cancer(as_frame=True).frame
+    frame.columns = [c.replace(" ", "_") for c in frame.columns]
+    return add_dataset(ctx, frame.iloc[:500], frame.iloc[500:], "target", "classification", scheme="stratified")
+
+
+def check(dataset: dict[str, Any], estimator: str, **kwargs: Any) -> dict[str, Any]:
+    return jobs.check_config(config_document(dataset, estimator, **kwargs), dataset["id"])
+
+
+def pointers(answer: dict[str, Any]) -> dict[str, str]:
+    assert answer["ok"] is False, answer
+    return {p["pointer"]: p["detail"] for p in answer["problems"]}
+
+
+def test_valid_configuration(diabetes: dict[str, Any]) -> None:
+    answer = check(diabetes, "Ridge", params={"alpha": 0.5})
+    assert answer == {"ok": True, "has_proba": False, "linear": True, "estimator": "Ridge"}
+
+
+def test_bad_value_is_rejected_in_sklearns_words(diabetes: dict[str, Any]) -> None:
+    # What scikit-learn itself says about Ridge(alpha=-1):
+    with pytest.raises(InvalidParameterError) as sklearn_says:
+        Ridge(alpha=-1.0).fit([[0.0], [1.0]], [0.0, 1.0])
+    found = pointers(check(diabetes, "Ridge", params={"alpha": -1.0}))
+    assert list(found) == ["/model/params/alpha"]
+    assert found["/model/params/alpha"] == str(sklearn_says.value)
+    assert "'alpha' parameter of Ridge" in found["/model/params/alpha"] and "Got -1.0" in found["/model/params/alpha"]
+
+
+def test_every_bad_parameter_is_named(diabetes: dict[str, Any]) -> None:
+    found = pointers(check(diabetes, "Ridge", params={"alpha": -1.0, "solver": "magic", "alpah": 1.0,
+                                                      "fit_intercept": True}))
+    assert set(found) == {"/model/params/alpha", "/model/params/solver", "/model/params/alpah"}
+    assert "'solver' parameter of Ridge" in found["/model/params/solver"]
+    # Unknown names list what is accepted.
+    assert "no parameter 'alpah'" in found["/model/params/alpah"]
+    assert "accepted: alpha, copy_X, fit_intercept" in found["/model/params/alpah"]
+
+
+def test_forced_n_jobs_cannot_be_changed(diabetes: dict[str, Any]) -> None:
+    found = pointers(check(diabetes, "RandomForestRegressor", params={"n_jobs": 4}))
+    assert "fixed to 1" in found["/model/params/n_jobs"] and "got 4" in found["/model/params/n_jobs"]
+    assert check(diabetes, "RandomForestRegressor", params={"n_jobs": 1})["ok"] is True
+
+
+@pytest.mark.parametrize(("estimator", "params", "pointer", "words"), [
+    ("RandomForestRegressor", {"n_estimators": 501}, "/model/params/n_estimators", "at most 500"),
+    ("GradientBoostingRegressor", {"n_estimators": 10_000}, "/model/params/n_estimators", "at most 500"),
+    ("Lasso", {"max_iter": 10_001}, "/model/params/max_iter", "at most 10000"),
+    ("HistGradientBoostingRegressor", {"max_iter": 501}, "/model/params/max_iter", "at most 500"),
+    ("DecisionTreeRegressor", {"max_depth": 65}, "/model/params/max_depth", "at most 64"),
+    ("MLPRegressor", {"hidden_layer_sizes": [600, 600]}, "/model/params/hidden_layer_sizes", "1024 units"),
+    ("MLPRegressor", {"hidden_layer_sizes": [8, 8, 8, 8, 8]}, "/model/params/hidden_layer_sizes", "4 layers"),
+    ("SVR", {"cache_size": 4096}, "/model/params/cache_size", "at most 1024"),
+])
+def test_caps(diabetes: dict[str, Any], estimator: str, params: dict[str, Any], pointer: str, words: str) -> None:
+    found = pointers(check(diabetes, estimator, params=params))
+    assert list(found) == [pointer]
+    assert words in found[pointer] and "service cap" in found[pointer]
+
+
+@pytest.mark.parametrize(("estimator", "params"), [
+    ("RandomForestRegressor", {"n_estimators": 500}),
+    ("Lasso", {"max_iter": 10_000}),
+    ("MLPRegressor", {"hidden_layer_sizes": [256, 256, 256, 256]}),
+    ("MLPRegressor", {"hidden_layer_sizes": 1024}),
+    ("DecisionTreeRegressor", {"max_depth": None}),
+    ("SVR", {"max_iter": -1}),
+])
+def test_values_at_the_caps_pass(diabetes: dict[str, Any], estimator: str, params: dict[str, Any]) -> None:
+    assert check(diabetes, estimator, params=params)["ok"] is True
+
+
+def test_transformer_parameters(diabetes: dict[str, Any]) -> None:
+    steps = [
+        {"transformer": "StandardScaler", "columns": ["age", "bmi"], "params": {"with_mean": "yes"}},
+        {"transformer": "PolynomialFeatures", "columns": ["bp"], "params": {"degree": 4}},
+        {"transformer": "SimpleImputer", "columns": ["s1"], "params": {"strategi": "mean"}},
+    ]
+    found = pointers(check(diabetes, "Ridge", preprocess=steps))
+    assert set(found) == {"/model/preprocess/0/params/with_mean", "/model/preprocess/1/params/degree",
+                          "/model/preprocess/2/params/strategi"}
+    assert "'with_mean' parameter of StandardScaler" in found["/model/preprocess/0/params/with_mean"]
+    assert "at most 3" in found["/model/preprocess/1/params/degree"]
+    assert "accepted: add_indicator, copy" in found["/model/preprocess/2/params/strategi"]
+
+
+def test_unknown_estimator_and_transformer(diabetes: dict[str, Any]) -> None:
+    doc = config_document(diabetes, "Ridge")
+    doc["model"]["estimator"] = "os.system"
+    found = pointers(jobs.check_config(doc, diabetes["id"]))
+    assert "not in the catalog" in found["/model/estimator"] and "Ridge" in found["/model/estimator"]
+    found = pointers(check(diabetes, "Ridge", preprocess=[{"transformer": "Pickle", "columns": ["age"]}]))
+    assert "not in the catalog" in found["/model/preprocess/0/transformer"]
+
+
+def test_task_mismatch(diabetes: dict[str, Any]) -> None:
+    found = pointers(check(diabetes, "LogisticRegression"))
+    assert "classification estimator" in found["/model/estimator"]
+
+
+def test_unknown_dataset(diabetes: dict[str, Any]) -> None:
+    found = pointers(jobs.check_config(config_document(diabetes, "Ridge"), "ds_missing"))
+    assert "ds_missing" in found["/dataset"]
+
+
+def test_partially_overlapping_steps_are_rejected(diabetes: dict[str, Any]) -> None:
+    steps = [{"transformer": "SimpleImputer", "columns": ["age", "bmi"]},
+             {"transformer": "StandardScaler", "columns": ["bmi"]}]
+    found = pointers(check(diabetes, "Ridge", preprocess=steps))
+    assert "already in a step" in found["/model/preprocess/1/columns/0"]
+
+
+@pytest.mark.parametrize(("estimator", "params", "has_proba"), [
+    # scikit-learn exposes predict_proba through available_if: SVC only with probability=True,
+    # SGDClassifier only for the log_loss and modified_huber losses.
+    ("SVC", {}, False),
+    ("SVC", {"probability": True}, True),
+    ("SGDClassifier", {}, False),
+    ("SGDClassifier", {"loss": "log_loss"}, True),
+    ("LogisticRegression", {}, True),
+    ("RandomForestClassifier", {"n_estimators": 10}, True),
+])
+def test_has_proba(cancer: dict[str, Any], estimator: str, params: dict[str, Any], has_proba: bool) -> None:
+    answer = check(cancer, estimator, params=params)
+    assert answer["ok"] is True and answer["has_proba"] is has_proba
+
+
+def test_categorical_features_accepted_with_an_encoder(ctx: WorkerContext) -> None:
+    frame = load_diabetes(as_frame=True).frame
+    frame["sex"] = pd.Series(["f" if v > 0 else "m" for v in frame["sex"]], dtype="str")
+    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression")
+    steps = [{"transformer": "OneHotEncoder", "columns": ["sex"], "params": {"handle_unknown": "ignore"}}]
+    assert check(dataset, "Ridge", preprocess=steps)["ok"] is True
+
+
+def test_polynomial_within_the_output_cap(diabetes: dict[str, Any]) -> None:
+    names = [c["name"] for c in diabetes["columns"] if c["name"] != "target"]
+    # 10 columns, degree 3: comb(13, 3) = 286 outputs, well within the cap.
+    fine = [{"transformer": "PolynomialFeatures", "columns": names, "params": {"degree": 3}}]
+    assert check(diabetes, "Ridge", preprocess=fine)["ok"] is True
+
+
+def test_polynomial_output_width_rejected(ctx: WorkerContext) -> None:
+    rng = np.random.default_rng(0)
+    frame = pd.DataFrame(rng.normal(size=(60, 41)), columns=[f"x{i}" for i in range(40)] + ["y"])
+    dataset = add_dataset(ctx, frame.iloc[:50], frame.iloc[50:], "y", "regression")
+    names = [f"x{i}" for i in range(40)]
+    # comb(43, 3) = 12341 outputs > 10000 (computed with math.comb).
+    steps = [{"transformer": "PolynomialFeatures", "columns": names, "params": {"degree": 3}}]
+    found = pointers(check(dataset, "Ridge", preprocess=steps))
+    assert "12341" in found["/model/preprocess/0/columns"] and "at most 10000" in found["/model/preprocess/0/columns"]
+
+
+def test_json_lists_for_tuple_parameters_pass_validation(diabetes: dict[str, Any]) -> None:
+    steps = [{"transformer": "MinMaxScaler", "columns": ["age"], "params": {"feature_range": [-1, 1]}}]
+    assert check(diabetes, "Ridge", preprocess=steps)["ok"] is True
+    steps = [{"transformer": "MinMaxScaler", "columns": ["age"], "params": {"feature_range": "wide"}}]
+    found = pointers(check(diabetes, "Ridge", preprocess=steps))
+    assert "'feature_range' parameter of MinMaxScaler" in found["/model/preprocess/0/params/feature_range"]
