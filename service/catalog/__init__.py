@@ -78,6 +78,11 @@ class Catalog:
         entry = self.estimator(name)
         return None if entry is None else entry.task
 
+    def is_linear(self, name: str) -> bool:
+        """Tell whether estimator ``name`` is allow-listed and linear (its fitted model has ``coef_``)."""
+        entry = self.estimator(name)
+        return entry is not None and entry.linear
+
     def is_transformer(self, name: str) -> bool:
         """Tell whether ``name`` is an allow-listed transformer."""
         return self.transformer(name) is not None

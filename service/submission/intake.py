@@ -64,7 +64,8 @@ def submit(
             return _replay(earlier, fingerprint), False
 
     dataset = find_dataset(engine, key, request.dataset)
-    document = config.resolve(request, dataset, load_catalog())
+    catalog = load_catalog()
+    document = config.resolve(request, dataset, catalog)
     primary = policy_in_force(engine, dataset)["primary_metric"]
     if primary not in document["metrics"]:
         # The verdict is decided on the policy's primary metric, so every submission computes it.
@@ -77,7 +78,7 @@ def submit(
         return same, False
     check = dispatch.check_config_remote(redis, settings, document, dataset["id"])
     _check_probability_metrics(document, check)
-    document["linear"] = bool(check.get("linear"))
+    document["linear"] = catalog.is_linear(document["model"]["estimator"])
 
     sub_id = new_id("sub")
     validation = document["validation"]

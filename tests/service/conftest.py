@@ -64,7 +64,7 @@ def worker_says_ok(monkeypatch: pytest.MonkeyPatch) -> list[dict[str, Any]]:
 
     def check(redis: Any, settings: Any, config_doc: dict[str, Any], dataset_id: str) -> dict[str, Any]:
         asked.append(config_doc)
-        return {"ok": True, "has_proba": False, "linear": True}
+        return {"ok": True, "has_proba": False}
 
     monkeypatch.setattr(dispatch, "check_config_remote", check)
     return asked

@@ -1,7 +1,10 @@
 """Check a configuration with scikit-learn's own parameter validation, plus the service's caps.
 
 Each submitted parameter is validated on its own (``set_params`` then ``_validate_params``), so one
-answer names every bad parameter at its JSON pointer, in scikit-learn's words.
+answer names every bad parameter at its JSON pointer, in scikit-learn's words. Only what needs
+scikit-learn is checked here: the document was resolved by the API first
+(``service.submission.config.resolve``), which owns catalog membership, the estimator's task, the
+features and the columns of each step; facts the catalog knows (e.g. ``linear``) are read there.
 """
 
 from __future__ import annotations
@@ -15,38 +18,29 @@ from sklearn.base import BaseEstimator
 from sklearn.utils._param_validation import InvalidParameterError
 
 from service.catalog import CatalogEntry, load_catalog
-from service.errors import ConfigRejected, FieldProblem
+from service.errors import FieldProblem
 from service.records import datasets
 from worker.jobs.runtime import WorkerContext
-from worker.learning.development import column_kinds
-from worker.learning.pipeline import build_pipeline, make_instance
+from worker.learning.pipeline import entry_for, make_instance
 
 
 def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: str) -> dict[str, Any]:
-    """Answer ``{"ok": true, "has_proba", "linear"}`` or ``{"ok": false, "problems": [...]}``."""
-    dataset = datasets.get_internal(ctx.engine, dataset_id)
-    if dataset is None:
+    """Answer ``{"ok": true, "has_proba"}`` or ``{"ok": false, "problems": [...]}``.
+
+    ``has_proba`` comes from the instance: whether ``predict_proba`` exists can depend on the
+    parameters (``SVC(probability=True)``, ``SGDClassifier(loss="log_loss")``), which the catalog
+    cannot say.
+    """
+    if datasets.get_internal(ctx.engine, dataset_id) is None:
         return _rejected([FieldProblem("/dataset", f"no dataset {dataset_id!r}")])
     catalog = load_catalog()
     model = config_doc["model"]
     problems: list[FieldProblem] = []
-    entry = catalog.estimator(model["estimator"])
-    if entry is None:
-        names = ", ".join(catalog.estimator_names(str(dataset["task"])))
-        return _rejected([FieldProblem("/model/estimator", f"estimator {model['estimator']!r} is not in the "
-                                       f"catalog; for a {dataset['task']} dataset use one of: {names}")])
-    if entry.task != dataset["task"]:
-        problems.append(FieldProblem("/model/estimator", f"{entry.name} is a {entry.task} estimator; dataset "
-                                     f"{dataset_id} is {dataset['task']}"))
+    entry = entry_for(catalog, model["estimator"], "estimator")
     estimator = checked_instance(entry, model.get("params") or {}, "/model/params", problems)
     problems.extend(search_problems(entry, model.get("params") or {}, config_doc.get("search")))
     for i, step in enumerate(model.get("preprocess") or []):
-        step_entry = catalog.transformer(step["transformer"])
-        if step_entry is None:
-            problems.append(FieldProblem(f"/model/preprocess/{i}/transformer", f"transformer "
-                            f"{step['transformer']!r} is not in the catalog; use one of: "
-                            f"{', '.join(catalog.transformer_names())}"))
-            continue
+        step_entry = entry_for(catalog, step["transformer"], "transformer")
         transformer = checked_instance(step_entry, step.get("params") or {}, f"/model/preprocess/{i}/params",
                                        problems)
         width = output_width_problem(step_entry, transformer, len(step.get("columns") or []))
@@ -54,17 +48,7 @@ def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: 
             problems.append(FieldProblem(f"/model/preprocess/{i}/columns", width))
     if problems:
         return _rejected(problems)
-    kinds = column_kinds(dataset)
-    unknown = [(i, f) for i, f in enumerate(model["features"]) if f not in kinds]
-    if unknown:
-        return _rejected([FieldProblem(f"/model/features/{i}", f"feature {f!r} is not a column of dataset "
-                                       f"{dataset_id}") for i, f in unknown])
-    try:
-        build_pipeline(model, kinds, catalog)
-    except ConfigRejected as exc:
-        return _rejected(exc.problems)
-    return {"ok": True, "has_proba": hasattr(estimator, "predict_proba"), "linear": entry.linear,
-            "estimator": entry.name}
+    return {"ok": True, "has_proba": hasattr(estimator, "predict_proba")}
 
 
 def checked_instance(

@@ -15,9 +15,9 @@ import sklearn
 from sklearn.base import BaseEstimator
 from sklearn.pipeline import Pipeline
 
-from service.records import datasets, submissions
+from service.records import submissions
 from service.vault.folds import Split
-from worker.jobs.runtime import WorkerContext
+from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 from worker.learning.curve import curve_points
 from worker.learning.development import DevelopmentData, column_kinds, load_development, split_for
 from worker.learning.pipeline import MODEL_STEP, baseline_estimator, build_pipeline, fit_in_place, output_feature_names
@@ -27,16 +27,13 @@ from worker.learning.search import build_model, search_record
 
 def run_fold(ctx: WorkerContext, submission_id: str, repeat: int, fold: int) -> dict[str, Any]:
     """Score one (repeat, fold) of a submission and record it; a canceled or finished one is skipped."""
-    sub = submissions.get(ctx.engine, submission_id)
-    if sub is None:
-        raise LookupError(f"no submission {submission_id!r} in the records DB")
-    if sub["state"] not in submissions.LIVE_STATES:
-        return {"submission_id": submission_id, "repeat": repeat, "fold": fold, "skipped": sub["state"]}
+    work = submission_to_work_on(ctx, submission_id, skip=submissions.TERMINAL_STATES,
+                                 echo={"repeat": repeat, "fold": fold})
+    if isinstance(work, Skip):
+        return work.answer
+    sub, dataset = work.submission, work.dataset
     if sub["state"] == "queued":
         submissions.mark_running(ctx.engine, submission_id)  # once: the other folds read it running
-    dataset = datasets.get_internal(ctx.engine, sub["dataset_id"])
-    if dataset is None:
-        raise LookupError(f"submission {submission_id} refers to dataset {sub['dataset_id']!r}, which is gone")
     config = sub["config"]
     model_doc = config["model"]
     data, keys = load_development(ctx.settings, dataset, model_doc["features"])

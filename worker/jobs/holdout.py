@@ -18,10 +18,10 @@ import warnings
 from typing import Any
 
 from service.errors import SealBroken
-from service.records import datasets, submissions
+from service.records import submissions
 from service.vault import store
 from worker.jobs.losses import save_per_example
-from worker.jobs.runtime import WorkerContext, submission_to_work_on
+from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 from worker.learning.development import column_kinds, load_development, model_frame, model_matrix, target_values
 from worker.learning.pipeline import build_pipeline, fit_in_place, uses_frame
 from worker.learning.scoring import per_example, predictions, score_predictions
@@ -31,15 +31,13 @@ from worker.learning.search import build_model
 def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     """Score the holdout once and store the outcome; a failed or canceled submission is left alone."""
     engine = ctx.engine
-    sub, skip = submission_to_work_on(ctx, submission_id)
-    if sub is None:
-        return skip
+    work = submission_to_work_on(ctx, submission_id)
+    if isinstance(work, Skip):
+        return work.answer
+    sub, dataset = work.submission, work.dataset
     if submissions.get_holdout(engine, submission_id) is not None:
         # Scored (or failed) in an earlier run; the verdict job finishes the submission.
         return {"submission_id": submission_id, "holdout": "already scored"}
-    dataset = datasets.get_internal(engine, sub["dataset_id"])
-    if dataset is None:
-        raise LookupError(f"submission {submission_id} refers to dataset {sub['dataset_id']!r}, which is gone")
     config = sub["config"]
     model_doc, metrics = config["model"], config["metrics"]
     kinds = column_kinds(dataset)

@@ -6,13 +6,16 @@ here. ``run_worker`` installs the context before the first fork; tests install t
 
 from __future__ import annotations
 
+from collections.abc import Collection, Mapping
 from dataclasses import dataclass
 from typing import Any, Protocol
 
 from sqlalchemy import Engine
 
-from service.records import submissions
+from service.records import datasets, submissions
 from service.settings import Settings
+
+ENDED_STATES: tuple[str, ...] = ("failed", "canceled")
 
 
 @dataclass(frozen=True)
@@ -78,15 +81,39 @@ def after_fork() -> None:
     _Slot.fold_runner = None  # the parent's handle on its fold process is not the child's to use
 
 
-def submission_to_work_on(ctx: WorkerContext, submission_id: str) -> tuple[dict[str, Any] | None, dict[str, Any]]:
-    """Return (row, {}) for a submission a job should work on, or (None, the job's answer) to skip it.
+@dataclass(frozen=True)
+class Work:
+    """The submission a job works on and its dataset's internal row."""
 
-    A missing submission is an error (the job retries; the reconciler never enqueues unknown ids); a
-    failed or canceled one is skipped, so late jobs of a finished chain do nothing.
+    submission: dict[str, Any]
+    dataset: dict[str, Any]
+
+
+@dataclass(frozen=True)
+class Skip:
+    """The answer of a job that leaves its submission alone, because the submission's chain is over."""
+
+    answer: dict[str, Any]
+
+
+def submission_to_work_on(
+    ctx: WorkerContext, submission_id: str, *, skip: Collection[str] = ENDED_STATES,
+    echo: Mapping[str, Any] | None = None,
+) -> Work | Skip:
+    """Load a submission and its dataset for a job, or answer ``Skip`` when its state is in ``skip``.
+
+    A missing submission or dataset is an error (the job retries; the reconciler never enqueues
+    unknown ids and datasets are never deleted); a failed or canceled one is skipped, so late jobs of
+    a finished chain do nothing. Fold and summary jobs also skip a succeeded submission; the holdout
+    and verdict jobs answer a succeeded one themselves ("already scored", "already judged"). ``echo``
+    is repeated in the skip answer (a fold's repeat and fold).
     """
     sub = submissions.get(ctx.engine, submission_id)
     if sub is None:
         raise LookupError(f"no submission {submission_id!r} in the records DB")
-    if sub["state"] in ("failed", "canceled"):
-        return None, {"submission_id": submission_id, "skipped": sub["state"]}
-    return sub, {}
+    if sub["state"] in skip:
+        return Skip({"submission_id": submission_id, **(echo or {}), "skipped": sub["state"]})
+    dataset = datasets.get_internal(ctx.engine, sub["dataset_id"])
+    if dataset is None:
+        raise LookupError(f"submission {submission_id} refers to dataset {sub['dataset_id']!r}, which is gone")
+    return Work(sub, dataset)

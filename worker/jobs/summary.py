@@ -22,9 +22,9 @@ from scipy import stats
 
 import service
 from service.catalog import load_catalog
-from service.records import datasets, submissions
+from service.records import submissions
 from service.submission.dispatch import fold_cells
-from worker.jobs.runtime import WorkerContext
+from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 from worker.learning.fit_readings import curve_summary, fit_gap, search_summary
 from worker.learning.pipeline import baseline_description
 
@@ -38,14 +38,10 @@ STATISTICS_NOTE = {
 
 def summarize(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     """Summarise the folds, store the summary; when every fold failed, fail the submission."""
-    sub = submissions.get(ctx.engine, submission_id)
-    if sub is None:
-        raise LookupError(f"no submission {submission_id!r} in the records DB")
-    if sub["state"] not in submissions.LIVE_STATES:
-        return {"submission_id": submission_id, "skipped": sub["state"]}
-    dataset = datasets.get_internal(ctx.engine, sub["dataset_id"])
-    if dataset is None:
-        raise LookupError(f"submission {submission_id} refers to dataset {sub['dataset_id']!r}, which is gone")
+    work = submission_to_work_on(ctx, submission_id, skip=submissions.TERMINAL_STATES)
+    if isinstance(work, Skip):
+        return work.answer
+    sub, dataset = work.submission, work.dataset
     config = sub["config"]
     rows = submissions.fold_rows(ctx.engine, submission_id)
     document = summary_document(rows, fold_cells(config["validation"]), config["metrics"], str(dataset["task"]))

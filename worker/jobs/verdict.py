@@ -22,10 +22,10 @@ from service.gate import review_state
 from service.gate.policy import Policy, parse_policy
 from service.gate.release import HoldoutScores, release
 from service.gate.verdict import CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV, ChampionFolds, PlanFacts, judge
-from service.records import datasets, reviews, submissions
+from service.records import reviews, submissions
 from service.records.engine import as_utc, utcnow
 from worker.jobs.losses import load_per_example
-from worker.jobs.runtime import WorkerContext, submission_to_work_on
+from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 
 Cell = tuple[int, int]
 _EPOCH = datetime(1970, 1, 1)
@@ -34,9 +34,10 @@ _EPOCH = datetime(1970, 1, 1)
 def judge_submission(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[str, Any]:
     """Release the holdout figure and store the verdict of one submission; idempotent."""
     engine = ctx.engine
-    sub, skip = submission_to_work_on(ctx, submission_id)
-    if sub is None:
-        return skip
+    work = submission_to_work_on(ctx, submission_id)
+    if isinstance(work, Skip):
+        return work.answer
+    sub, dataset = work.submission, work.dataset
     if sub["verdict"] is not None:
         submissions.transition(engine, submission_id, "succeeded", submissions.LIVE_STATES)
         return {"submission_id": submission_id, "verdict": "already judged"}
@@ -49,9 +50,6 @@ def judge_submission(ctx: WorkerContext, redis: Redis, submission_id: str) -> di
     if raw.get("error"):
         submissions.transition(engine, submission_id, "failed", submissions.LIVE_STATES, error=str(raw["error"]))
         return {"submission_id": submission_id, "decision": None, "holdout": "not scored"}
-    dataset = datasets.get_internal(engine, sub["dataset_id"])
-    if dataset is None:
-        raise LookupError(f"submission {submission_id} refers to dataset {sub['dataset_id']!r}, which is gone")
 
     stated = review_state.policy_in_force(engine, dataset)
     version = int(stated["version"])

@@ -21,7 +21,6 @@ from sklearn.dummy import DummyClassifier, DummyRegressor
 from sklearn.pipeline import Pipeline
 
 from service.catalog import Catalog, CatalogEntry, load_catalog
-from service.errors import ConfigRejected, field_error
 
 PREPROCESS_STEP = "preprocess"
 MODEL_STEP = "model"
@@ -36,13 +35,16 @@ def uses_frame(features: Sequence[str], column_kinds: Mapping[str, str]) -> bool
     return any(column_kinds[name] != "numeric" for name in features)
 
 
-def entry_for(catalog: Catalog, name: str, kind: str, pointer: str) -> CatalogEntry:
-    """Look up an allow-listed class, or reject the configuration at ``pointer``."""
+def entry_for(catalog: Catalog, name: str, kind: str) -> CatalogEntry:
+    """Look up an allow-listed class; a name outside the catalog is a caller's error, not a user's.
+
+    The API rejects such a name at its JSON pointer before any document reaches a worker
+    (``service.submission.config.resolve``). The check stays here as the last guard in front of
+    ``importlib``, for a job called directly with a document the API never resolved.
+    """
     entry = catalog.estimator(name) if kind == "estimator" else catalog.transformer(name)
     if entry is None:
-        accepted = [e.name for e in catalog.entries.values() if e.kind == kind]
-        raise field_error(ConfigRejected, pointer, f"{kind} {name!r} is not in the catalog; use one of: "
-                          f"{', '.join(sorted(accepted))}")
+        raise LookupError(f"{kind} {name!r} is not in the catalog; documents are resolved by the API first")
     return entry
 
 
@@ -79,9 +81,7 @@ def build_pipeline(
     """Return the unfitted pipeline for the ``model`` part of a configuration document."""
     catalog = catalog or load_catalog()
     features = list(model_doc["features"])
-    estimator = make_instance(
-        entry_for(catalog, model_doc["estimator"], "estimator", "/model/estimator"), model_doc.get("params") or {}
-    )
+    estimator = make_instance(entry_for(catalog, model_doc["estimator"], "estimator"), model_doc.get("params") or {})
     steps = model_doc.get("preprocess") or []
     by_name = uses_frame(features, column_kinds)
     if not steps and not by_name:
@@ -95,28 +95,21 @@ def build_pipeline(
 def build_preprocessing(
     catalog: Catalog, steps: Sequence[Mapping[str, Any]], features: Sequence[str], by_name: bool
 ) -> ColumnTransformer:
-    """Return the ColumnTransformer for the preprocess steps; unnamed columns pass through."""
+    """Return the ColumnTransformer for the preprocess steps; unnamed columns pass through.
+
+    The steps are the resolved ones: every column is a feature and steps share a column only when
+    they name exactly the same columns (``service.submission.config.resolve`` checks both).
+    """
     chains: dict[tuple[str, ...], list[int]] = {}
-    owner: dict[str, tuple[str, ...]] = {}
     for i, step in enumerate(steps):
-        columns = tuple(step["columns"])
-        for j, column in enumerate(columns):
-            if column not in features:
-                raise field_error(ConfigRejected, f"/model/preprocess/{i}/columns/{j}",
-                                  f"column {column!r} is not among the features ({', '.join(features)})")
-            if owner.setdefault(column, columns) != columns:
-                raise field_error(ConfigRejected, f"/model/preprocess/{i}/columns/{j}",
-                                  f"column {column!r} is already in a step with other columns; steps chain "
-                                  "only when they name exactly the same columns")
-        chains.setdefault(columns, []).append(i)
+        chains.setdefault(tuple(step["columns"]), []).append(i)
 
     position = {name: k for k, name in enumerate(features)}
     transformers: list[tuple[str, Any, list[Any]]] = []
     for columns, indices in chains.items():
         parts = [
             (f"{steps[i]['transformer'].lower()}{i}",
-             make_instance(entry_for(catalog, steps[i]["transformer"], "transformer",
-                                     f"/model/preprocess/{i}/transformer"), steps[i].get("params") or {}))
+             make_instance(entry_for(catalog, steps[i]["transformer"], "transformer"), steps[i].get("params") or {}))
             for i in indices
         ]
         selector: list[Any] = list(columns) if by_name else [position[c] for c in columns]

@@ -262,3 +262,24 @@ def test_identical_configuration_returns_the_existing_submission(
     assert len(worker_says_ok) == 1, "the worker was asked to check the configuration again"
     changed = api.post("submitter", "/v1/submissions", json=submission_body(dataset, metrics=["r2"]))
     assert changed.status_code == 202 and count_submissions(api) == 2
+
+
+def test_linear_is_read_from_the_catalog(api: Api, dataset: dict[str, Any],
+                                         worker_says_ok: list[dict[str, Any]]) -> None:
+    from sklearn.ensemble import RandomForestRegressor
+    from sklearn.linear_model import Ridge
+
+    # Reference: scikit-learn's fitted Ridge has coef_ (its coefficients are recorded per fold); a fitted
+    # RandomForestRegressor has none.
+    X, y = np.arange(8.0).reshape(4, 2), np.arange(4.0)
+    assert hasattr(Ridge().fit(X, y), "coef_") and not hasattr(RandomForestRegressor(n_estimators=2).fit(X, y),
+                                                                 "coef_")
+    forest = {"estimator": "RandomForestRegressor", "features": ["age", "bmi"]}
+    stored: dict[str, bool] = {}
+    for body in (submission_body(dataset), submission_body(dataset, model=forest)):
+        reply = api.post("submitter", "/v1/submissions", json=body)
+        assert reply.status_code == 202, reply.get_data(as_text=True)
+        row = submissions.get(api.engine, reply.get_json()["id"])
+        assert row is not None
+        stored[body["model"]["estimator"]] = row["config"]["linear"]
+    assert stored == {"Ridge": True, "RandomForestRegressor": False}

@@ -78,11 +78,31 @@ def test_steps_on_overlapping_columns_must_name_the_same_columns() -> None:
     with pytest.raises(ConfigRejected) as exc:
         resolve(_request(ModelSpec("Ridge", preprocess=steps)), DATASET, load_catalog())
     assert "/model/preprocess/1/columns/0" in _pointers(exc)
+    assert "already in step 0 with other columns" in _pointers(exc)["/model/preprocess/1/columns/0"]
     chained = (PreprocessStep("SimpleImputer", ("distance_km", "stops")),
                PreprocessStep("StandardScaler", ("distance_km", "stops")), PreprocessStep("OneHotEncoder", ("depot",)))
     doc = resolve(_request(ModelSpec("Ridge", preprocess=chained)), DATASET, load_catalog())
     names = [s["transformer"] for s in doc["model"]["preprocess"]]
     assert names == ["SimpleImputer", "StandardScaler", "OneHotEncoder"]
+
+
+def test_names_outside_the_catalog_are_refused_with_the_accepted_ones() -> None:
+    model = ModelSpec("os.system", preprocess=(PreprocessStep("Pickle", ("distance_km",)),
+                                               PreprocessStep("OneHotEncoder", ("depot",))))
+    with pytest.raises(ConfigRejected) as exc:
+        resolve(_request(model), DATASET, load_catalog())
+    pointers = _pointers(exc)
+    assert "'os.system' is not in the catalog" in pointers["/model/estimator"]
+    assert "Ridge" in pointers["/model/estimator"] and "LogisticRegression" not in pointers["/model/estimator"]
+    assert "'Pickle' is not in the catalog" in pointers["/model/preprocess/0/transformer"]
+
+
+def test_a_step_column_must_be_a_feature() -> None:
+    steps = (PreprocessStep("StandardScaler", ("stops",)),)
+    with pytest.raises(ConfigRejected) as exc:
+        resolve(_request(ModelSpec("Ridge", features=("distance_km",), preprocess=steps)), DATASET, load_catalog())
+    assert _pointers(exc) == {"/model/preprocess/0/columns/0": "column 'stops' is not among the features "
+                                                               "(distance_km)"}
 
 
 def test_time_plans_allow_one_repeat_only() -> None:

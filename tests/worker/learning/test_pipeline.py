@@ -13,7 +13,6 @@ from sklearn.model_selection import cross_val_score
 from sklearn.pipeline import Pipeline, make_pipeline
 from sklearn.preprocessing import StandardScaler
 
-from service.errors import ConfigRejected
 from worker.jobs import runtime
 from worker.learning.pipeline import build_pipeline, fit_in_place, output_feature_names
 
@@ -73,12 +72,14 @@ def test_numeric_input_without_steps_goes_straight_to_the_estimator() -> None:
     assert list(framed.named_steps) == ["preprocess", "model"]
 
 
-def test_unknown_column_in_a_step() -> None:
-    model = {"estimator": "Ridge", "features": ["a"], "preprocess": [{"transformer": "StandardScaler",
-                                                                       "columns": ["zz"]}]}
-    with pytest.raises(ConfigRejected) as caught:
-        build_pipeline(model, {"a": "numeric"})
-    assert caught.value.problems[0].pointer == "/model/preprocess/0/columns/0"
+def test_a_name_outside_the_catalog_is_a_callers_error() -> None:
+    # The API rejects it at its pointer first (tests/service/submission/test_config.py).
+    with pytest.raises(LookupError, match=r"'os\.system' is not in the catalog"):
+        build_pipeline({"estimator": "os.system", "features": ["a"]}, {"a": "numeric"})
+    with pytest.raises(LookupError, match="'Pickle' is not in the catalog"):
+        build_pipeline({"estimator": "Ridge", "features": ["a"], "preprocess": [{"transformer": "Pickle",
+                                                                                  "columns": ["a"]}]},
+                       {"a": "numeric"})
 
 
 def test_lasso_reference_value_from_the_documentation() -> None:
