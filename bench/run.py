@@ -56,7 +56,8 @@ from sklearn.dummy import DummyRegressor
 from sklearn.linear_model import Ridge
 from sklearn.model_selection import cross_validate
 
-from service.cli import embedded
+from service.cli import embedded, supervisor
+from service.cli.client import ServiceClient
 from service.records.engine import make_engine
 from service.records.keys import create_key
 from service.settings import Settings
@@ -158,22 +159,27 @@ class PeakMemory:
 # --- talking to the service --------------------------------------------------------------------------
 
 
-@dataclass
+REQUEST_TIMEOUT_SECONDS = 60.0
+
+
 class Service:
-    base_url: str
-    steward: str
-    submitter: str
+    """The stack's API as the steward and the submitter see it."""
+
+    def __init__(self, base_url: str, steward_key: str, submitter_key: str) -> None:
+        self.steward = ServiceClient(base_url, steward_key, timeout=REQUEST_TIMEOUT_SECONDS)
+        self.submitter = ServiceClient(base_url, submitter_key, timeout=REQUEST_TIMEOUT_SECONDS)
 
     def register(self, path: Path, name: str) -> tuple[dict[str, Any], float]:
         started = time.perf_counter()
-        status, doc = embedded.request_json(
-            f"{self.base_url}/v1/datasets", "POST", token=self.steward, timeout=1800,
-            document={"path": path.name, "name": name, "task": "regression", "target": "y",
-                      "id_column": "rid", "folds": FOLDS},
+        reply = self.steward.post(
+            "/v1/datasets", timeout=1800,
+            json_body={"path": path.name, "name": name, "task": "regression", "target": "y",
+                       "id_column": "rid", "folds": FOLDS},
         )
+        doc = reply.json()
         elapsed = time.perf_counter() - started
-        if status != 201:
-            raise SystemExit(f"registering {path.name} answered {status}: {doc}")
+        if reply.status != 201:
+            raise SystemExit(f"registering {path.name} answered {reply.status}: {doc}")
         return doc, elapsed
 
     def run_submission(self, dataset_id: str, label: str, timeout: float = 1800) -> tuple[dict[str, Any], Timing]:
@@ -185,14 +191,14 @@ class Service:
         costs the API a few ms); what the polling client saw is kept too.
         """
         posted_wall, posted = time.time(), time.perf_counter()
-        status, doc = embedded.request_json(f"{self.base_url}/v1/submissions", "POST", token=self.submitter,
-                                            document=configuration(dataset_id, label))
-        if status != 202:
-            raise SystemExit(f"submitting answered {status}: {doc}")
-        url = f"{self.base_url}/v1/submissions/{doc['id']}"
+        reply = self.submitter.post("/v1/submissions", json_body=configuration(dataset_id, label))
+        doc = reply.json()
+        if reply.status != 202:
+            raise SystemExit(f"submitting answered {reply.status}: {doc}")
+        path = f"/v1/submissions/{doc['id']}"
         pause = POLL_SECONDS
         while True:
-            _status, doc = embedded.request_json(url, token=self.submitter)
+            doc = self.submitter.get(path).json()
             if doc["state"] in ("succeeded", "failed", "canceled"):
                 seen = time.perf_counter() - posted
                 break
@@ -207,10 +213,10 @@ class Service:
         return doc, Timing(finished - posted_wall, seen)
 
     def folds(self, submission_id: str) -> list[dict[str, Any]]:
-        status, doc = embedded.request_json(f"{self.base_url}/v1/submissions/{submission_id}/folds",
-                                            token=self.submitter, timeout=600)
-        if status != 200:
-            raise SystemExit(f"reading folds answered {status}: {doc}")
+        reply = self.submitter.get(f"/v1/submissions/{submission_id}/folds", timeout=600)
+        doc = reply.json()
+        if reply.status != 200:
+            raise SystemExit(f"reading folds answered {reply.status}: {doc}")
         folds: list[dict[str, Any]] = doc["folds"]
         return folds
 
@@ -370,7 +376,7 @@ def main(argv: list[str] | None = None) -> int:
         env = {"SEALFOLD_IMPORT_ROOT": str(import_root), "SEALFOLD_LOG_LEVEL": "WARNING",
                "SEALFOLD_QUEUE": "bench"}
         options = embedded.StackOptions(data_dir=data_dir, port=0, workers=args.workers, extra_env=env)
-        with embedded.Supervisor() as sup:
+        with supervisor.Supervisor() as sup:
             print(f"starting an embedded stack with {args.workers} workers in {tmp}", flush=True)
             stack = embedded.start_stack(sup, options)
             engine = make_engine(Settings.load(environ=stack.env))

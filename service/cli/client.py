@@ -1,7 +1,12 @@
 """Talk to a sealfold service over HTTP with the standard library only, as any other client would.
 
-Nothing here reads the server's files or settings: a CI runner on another host needs only the
-URL and a key. Failures are sorted into two exceptions whose exit codes the command line uses:
+The one HTTP client of the project: the client commands, the embedded stack's readiness checks and
+demo registration, the benchmark and the end-to-end tests all use it. Nothing here reads the
+server's files or settings: a CI runner on another host needs only the URL and a key.
+
+``ServiceClient.request`` returns every answer, whatever its status, for callers that look at the
+status themselves; ``ServiceClient.call`` insists on the statuses it expects. Failures are sorted
+into two exceptions whose exit codes the command line uses:
 
     ClientError
     +-- Refused   exit 2  the request is wrong: usage, a 4xx problem (its detail and field errors)
@@ -14,6 +19,8 @@ import http.client
 import json
 import urllib.error
 import urllib.request
+import uuid
+from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -62,24 +69,34 @@ class Reply:
             raise Trouble(f"the service answered {self.status} with a body that is not JSON: "
                           f"{self.body[:120]!r}") from exc
 
+    @property
+    def text(self) -> str:
+        """Decode the body as UTF-8, replacing what does not decode, for messages."""
+        return self.body.decode("utf-8", "replace")
+
 
 class ServiceClient:
-    """One base URL, one bearer key; every request has a timeout."""
+    """One base URL, one bearer key (none for the open endpoints); every request has a timeout."""
 
-    def __init__(self, base_url: str, key: str, timeout: float = REQUEST_TIMEOUT_SECONDS) -> None:
+    def __init__(self, base_url: str, key: str | None = None, timeout: float = REQUEST_TIMEOUT_SECONDS) -> None:
         self.base_url = base_url.rstrip("/")
         self.key = key
         self.timeout = timeout
 
-    def request(self, method: str, path: str, *, json_body: Any = None, headers: dict[str, str] | None = None,
-                timeout: float | None = None) -> Reply:
-        """Send one request and return the answer, whatever its status; unreachable -> Trouble."""
-        all_headers = {"Authorization": f"Bearer {self.key}", "Accept": "application/json",
-                       "User-Agent": f"sealfold-cli/{__version__}", **(headers or {})}
-        data = None
+    def request(self, method: str, path: str, *, json_body: Any = None, body: bytes | None = None,
+                headers: Mapping[str, str] | None = None, timeout: float | None = None) -> Reply:
+        """Send one request and return the answer, whatever its status; unreachable -> Trouble.
+
+        ``json_body`` is sent as JSON; ``body`` as raw bytes (give its Content-Type in ``headers``).
+        """
+        all_headers = {"Accept": "application/json", "User-Agent": f"sealfold-cli/{__version__}"}
+        if self.key is not None:
+            all_headers["Authorization"] = f"Bearer {self.key}"
+        data = body
         if json_body is not None:
             data = json.dumps(json_body).encode("utf-8")
             all_headers["Content-Type"] = "application/json"
+        all_headers.update(headers or {})
         url = self.base_url + path
         req = urllib.request.Request(url, data=data, method=method, headers=all_headers)
         limit = self.timeout if timeout is None else timeout
@@ -104,6 +121,40 @@ class ServiceClient:
         if reply.status in expect:
             return reply
         raise failure(reply, f"{method} {path}")
+
+    def get(self, path: str, **kwargs: Any) -> Reply:
+        """Send a GET; the answer whatever its status, as ``request`` gives it."""
+        return self.request("GET", path, **kwargs)
+
+    def post(self, path: str, **kwargs: Any) -> Reply:
+        """Send a POST; the answer whatever its status, as ``request`` gives it."""
+        return self.request("POST", path, **kwargs)
+
+    def delete(self, path: str, **kwargs: Any) -> Reply:
+        """Send a DELETE; the answer whatever its status, as ``request`` gives it."""
+        return self.request("DELETE", path, **kwargs)
+
+    def upload(self, path: str, filename: str, content: bytes, fields: Mapping[str, Any], *,
+               file_type: str = "application/octet-stream", timeout: float | None = None) -> Reply:
+        """POST form fields and one file (form field ``file``) as multipart/form-data."""
+        data, content_type = multipart_body(fields, filename, content, file_type)
+        return self.request("POST", path, body=data, headers={"Content-Type": content_type}, timeout=timeout)
+
+
+def multipart_body(fields: Mapping[str, Any], filename: str, content: bytes,
+                   file_type: str = "application/octet-stream") -> tuple[bytes, str]:
+    """Encode form fields (None ones left out) and one file as multipart/form-data; return body and type."""
+    boundary = f"sealfold-{uuid.uuid4().hex}"
+    parts: list[bytes] = []
+    for name, value in fields.items():
+        if value is not None:
+            parts.append(f'--{boundary}\r\nContent-Disposition: form-data; name="{name}"\r\n\r\n{value}\r\n'.encode())
+    parts.append(
+        f'--{boundary}\r\nContent-Disposition: form-data; name="file"; filename="{filename}"\r\n'
+        f"Content-Type: {file_type}\r\n\r\n".encode() + content + b"\r\n"
+    )
+    parts.append(f"--{boundary}--\r\n".encode())
+    return b"".join(parts), f"multipart/form-data; boundary={boundary}"
 
 
 def failure(reply: Reply, what: str) -> ClientError:

@@ -1,10 +1,8 @@
 """Run the embedded stack: redis-server, the API and workers as supervised child processes.
 
-``sealfold up`` and the benchmark both build their stack here. Each child runs in its own process
-group, so Ctrl-C reaches only the supervisor, which then stops the children in order (workers and
-API first, redis last): SIGTERM, wait, SIGKILL of the whole group after a grace period. Each child
-also gets SIGTERM from the kernel if the supervisor itself dies (PR_SET_PDEATHSIG), so a killed
-``sealfold up`` leaves no orphans. Children's output goes to log files under ``<data dir>/logs``.
+``sealfold up`` and the benchmark both build their stack here, on a ``Supervisor``
+(``service.cli.supervisor``), which stops the children in order and leaves no orphans. Children's
+output goes to log files under ``<data dir>/logs``.
 
 Settings reach the children through the environment only (SEALFOLD_DATA_DIR, REDIS_URL,
 DATABASE_URL), the same variables a deployment sets by hand.
@@ -12,186 +10,22 @@ DATABASE_URL), the same variables a deployment sets by hand.
 
 from __future__ import annotations
 
-import contextlib
-import ctypes
 import dataclasses
 import fcntl
-import json
 import os
-import signal
 import socket
-import subprocess
 import sys
 import time
-import urllib.error
-import urllib.request
 import uuid
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import IO, Any
 
-_PR_SET_PDEATHSIG = 1
+from service.cli.client import ClientError, ServiceClient
+from service.cli.supervisor import Child, StackError, Supervisor
+
 _UNIX_SOCKET_MAX = 100  # sun_path holds 108 bytes on Linux; stay clear of the edge
-
-
-class StackError(Exception):
-    """The embedded stack could not start or lost a child."""
-
-
-class StopRequested(StackError):
-    """SIGINT or SIGTERM arrived: stop everything and exit cleanly."""
-
-
-class ChildExited(StackError):
-    """A child process ended while the stack was meant to be running."""
-
-    def __init__(self, child: Child) -> None:
-        super().__init__(f"{child.name} (pid {child.pid}) {describe_exit(child.process.returncode)}")
-        self.child = child
-
-
-@dataclass
-class Child:
-    """One supervised process and where its output goes."""
-
-    name: str
-    process: subprocess.Popen[bytes]
-    log_path: Path
-    stage: int  # lower stages stop first
-
-    @property
-    def pid(self) -> int:
-        return self.process.pid
-
-
-def describe_exit(returncode: int | None) -> str:
-    """Say how a process ended, naming the signal when a signal ended it."""
-    if returncode is None:
-        return "is still running"
-    if returncode < 0:
-        try:
-            name = signal.Signals(-returncode).name
-        except ValueError:
-            name = f"signal {-returncode}"
-        return f"was killed by {name}"
-    return f"exited with code {returncode}"
-
-
-def _die_with_parent() -> None:
-    """Run in the child between fork and exec: ask for SIGTERM when the supervisor dies."""
-    libc = ctypes.CDLL(None, use_errno=True)
-    libc.prctl(_PR_SET_PDEATHSIG, signal.SIGTERM, 0, 0, 0)
-
-
-class Supervisor:
-    """Start children, notice when one dies, stop them all in order.
-
-    Use as a context manager; leaving the block stops every child. ``install_signal_handlers``
-    turns SIGINT/SIGTERM into a flag that ``check`` (called from every wait loop) raises as
-    ``StopRequested``, so a signal never interrupts a half-started child.
-    """
-
-    def __init__(self, grace_seconds: float = 10.0, err: IO[str] | None = None) -> None:
-        self.grace_seconds = grace_seconds
-        self.children: list[Child] = []
-        self.stop_signal: int | None = None
-        self._stopping = False
-        self._err = err if err is not None else sys.stderr
-        self._previous_handlers: dict[int, Any] = {}
-        self._after_stop: list[Callable[[], object]] = []
-
-    def __enter__(self) -> Supervisor:
-        return self
-
-    def __exit__(self, *_exc: object) -> None:
-        self.stop()
-        self.restore_signal_handlers()
-
-    def after_stop(self, callback: Callable[[], object]) -> None:
-        """Run ``callback`` once every child has stopped (e.g. release the data-dir lock)."""
-        self._after_stop.append(callback)
-
-    def install_signal_handlers(self) -> None:
-        """Route SIGINT and SIGTERM to a stop request."""
-        for signum in (signal.SIGINT, signal.SIGTERM):
-            self._previous_handlers[signum] = signal.signal(signum, self._on_signal)
-
-    def restore_signal_handlers(self) -> None:
-        for signum, handler in self._previous_handlers.items():
-            signal.signal(signum, handler)
-        self._previous_handlers.clear()
-
-    def _on_signal(self, signum: int, _frame: object) -> None:
-        if self._stopping:
-            self.grace_seconds = 0.0  # a signal while already stopping: stop waiting, kill now
-        self.stop_signal = signum
-
-    def start(
-        self, name: str, argv: Sequence[str], env: Mapping[str, str], log_dir: Path, stage: int = 0
-    ) -> Child:
-        """Start ``argv`` as a child in its own process group, output to ``log_dir/<name>.log``."""
-        self.check()
-        log_dir.mkdir(parents=True, exist_ok=True)
-        log_path = log_dir / f"{name}.log"
-        with open(log_path, "wb") as log:
-            process = subprocess.Popen(
-                list(argv), env=dict(env), stdin=subprocess.DEVNULL, stdout=log, stderr=subprocess.STDOUT,
-                process_group=0, preexec_fn=_die_with_parent,
-            )
-        child = Child(name, process, log_path, stage)
-        self.children.append(child)
-        return child
-
-    def check(self) -> None:
-        """Raise ``StopRequested`` after a signal, ``ChildExited`` when any child has ended."""
-        if self.stop_signal is not None:
-            raise StopRequested(f"received {signal.Signals(self.stop_signal).name}")
-        for child in self.children:
-            if child.process.poll() is not None:
-                raise ChildExited(child)
-
-    def sleep(self, seconds: float) -> None:
-        """Sleep, then ``check``: the one way the supervisor waits."""
-        time.sleep(seconds)
-        self.check()
-
-    def run_until_stopped(self, poll_seconds: float = 0.2) -> None:
-        """Block until a signal (returns) or a child's death (raises ``ChildExited``)."""
-        try:
-            while True:
-                self.sleep(poll_seconds)
-        except StopRequested:
-            return
-
-    def stop(self) -> None:
-        """Stop every child: stage by stage, SIGTERM, wait up to the grace period, then SIGKILL."""
-        self._stopping = True
-        for stage in sorted({c.stage for c in self.children}):
-            group = [c for c in self.children if c.stage == stage]
-            for child in group:
-                if child.process.poll() is None:
-                    _signal_quietly(child.process.send_signal, signal.SIGTERM)
-            started = time.monotonic()
-            for child in group:
-                # grace_seconds is read on every pass: a second signal cuts the wait short.
-                while child.process.poll() is None and time.monotonic() < started + self.grace_seconds:
-                    time.sleep(0.05)
-                if child.process.poll() is None:
-                    print(f"sealfold: {child.name} (pid {child.pid}) did not stop in time; killing it",
-                          file=self._err)
-                # The group may still hold forked helpers (an RQ work horse); they go with it.
-                _signal_quietly(os.killpg, child.pid, signal.SIGKILL)
-                child.process.wait()
-        self.children.clear()
-        self._stopping = False
-        while self._after_stop:
-            self._after_stop.pop()()
-
-
-def _signal_quietly(send: Any, *args: Any) -> None:
-    with contextlib.suppress(ProcessLookupError, PermissionError):
-        send(*args)
 
 
 @dataclass(frozen=True)
@@ -301,16 +135,17 @@ def wait_for_redis(sup: Supervisor, url: str, timeout: float = 15.0) -> None:
 
 def wait_for_ready(sup: Supervisor, base_url: str, timeout: float) -> None:
     """Wait until ``GET /readyz`` answers 200, failing early if a child dies meanwhile."""
+    client = ServiceClient(base_url, timeout=2.0)
     deadline = time.monotonic() + timeout
     last = "no answer"
     while True:
         try:
-            status, _headers, _body = request(f"{base_url}/readyz", timeout=2.0)
+            status = client.request("GET", "/readyz").status
             if status == 200:
                 return
             last = f"status {status}"
-        except OSError as exc:
-            last = str(exc)
+        except ClientError as exc:
+            last = exc.message
         if time.monotonic() > deadline:
             raise StackError(f"{base_url}/readyz was not ready within {timeout:.0f} s ({last})")
         sup.sleep(0.1)
@@ -389,76 +224,15 @@ def start_stack(sup: Supervisor, options: StackOptions) -> Stack:
     return Stack(options, base_url, redis_url, database_url, env, redis_child, api, workers)
 
 
-def log_tail(path: Path, lines: int = 20) -> str:
-    """Return the last ``lines`` lines of a log file (empty when missing)."""
-    try:
-        text = path.read_text(errors="replace")
-    except OSError:
-        return ""
-    return "\n".join(text.splitlines()[-lines:])
-
-
-def request(
-    url: str,
-    method: str = "GET",
-    *,
-    token: str | None = None,
-    body: bytes | None = None,
-    content_type: str | None = None,
-    timeout: float = 60.0,
-) -> tuple[int, Mapping[str, str], bytes]:
-    """Make one HTTP request with the standard library; 4xx/5xx are returned, not raised."""
-    headers = {"Accept": "application/json"}
-    if token:
-        headers["Authorization"] = f"Bearer {token}"
-    if content_type:
-        headers["Content-Type"] = content_type
-    req = urllib.request.Request(url, data=body, method=method, headers=headers)
-    try:
-        with urllib.request.urlopen(req, timeout=timeout) as resp:
-            return resp.status, dict(resp.headers), resp.read()
-    except urllib.error.HTTPError as exc:
-        with exc:
-            return exc.code, dict(exc.headers), exc.read()
-
-
-def request_json(
-    url: str, method: str = "GET", *, token: str | None = None, document: Any = None, timeout: float = 60.0
-) -> tuple[int, Any]:
-    """Send ``document`` as JSON (when given) and decode the JSON answer."""
-    body = None if document is None else json.dumps(document).encode()
-    status, _headers, raw = request(
-        url, method, token=token, body=body,
-        content_type=None if document is None else "application/json", timeout=timeout,
-    )
-    return status, json.loads(raw) if raw else None
-
-
-def multipart_body(fields: Mapping[str, str], file_field: str, filename: str, content: bytes,
-                   file_type: str = "text/csv") -> tuple[bytes, str]:
-    """Encode form fields and one file as multipart/form-data; return the body and its content type."""
-    boundary = f"sealfold-{uuid.uuid4().hex}"
-    parts: list[bytes] = []
-    for name, value in fields.items():
-        parts.append(
-            f'--{boundary}\r\nContent-Disposition: form-data; name="{name}"\r\n\r\n{value}\r\n'.encode()
-        )
-    parts.append(
-        f'--{boundary}\r\nContent-Disposition: form-data; name="{file_field}"; filename="{filename}"\r\n'
-        f"Content-Type: {file_type}\r\n\r\n".encode()
-    )
-    parts.append(content)
-    parts.append(f"\r\n--{boundary}--\r\n".encode())
-    return b"".join(parts), f"multipart/form-data; boundary={boundary}"
-
-
 def register_dataset(base_url: str, token: str, fields: Mapping[str, str], csv_path: Path,
                      timeout: float = 600.0) -> dict[str, Any]:
     """Register a CSV through ``POST /v1/datasets``; raise ``StackError`` with the problem on refusal."""
-    body, content_type = multipart_body(fields, "file", csv_path.name, csv_path.read_bytes())
-    status, _headers, raw = request(f"{base_url}/v1/datasets", "POST", token=token, body=body,
-                                    content_type=content_type, timeout=timeout)
-    if status != 201:
-        raise StackError(f"registering {csv_path.name} answered {status}: {raw.decode(errors='replace')}")
-    document: dict[str, Any] = json.loads(raw)
+    client = ServiceClient(base_url, token, timeout=timeout)
+    try:
+        reply = client.upload("/v1/datasets", csv_path.name, csv_path.read_bytes(), fields, file_type="text/csv")
+    except ClientError as exc:
+        raise StackError(f"registering {csv_path.name}: {exc.message}") from exc
+    if reply.status != 201:
+        raise StackError(f"registering {csv_path.name} answered {reply.status}: {reply.text}")
+    document: dict[str, Any] = reply.json()
     return document

@@ -21,7 +21,8 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:
     from sqlalchemy import Engine
 
-    from service.cli.embedded import Stack, Supervisor
+    from service.cli.embedded import Stack
+    from service.cli.supervisor import Supervisor
 
 ROLES = ("submitter", "steward", "admin")
 
@@ -182,13 +183,13 @@ def cmd_up(args: argparse.Namespace) -> int:
     """Run the embedded stack until Ctrl-C/SIGTERM (exit 0) or until a child dies (exit 1)."""
     from pathlib import Path
 
-    from service.cli import embedded
+    from service.cli import embedded, supervisor
 
     options = embedded.StackOptions(
         data_dir=Path(args.data_dir), host=args.host, port=args.port, workers=args.workers,
         redis_url=os.environ.get("REDIS_URL", ""), database_url=os.environ.get("DATABASE_URL", ""),
     )
-    sup = embedded.Supervisor()
+    sup = supervisor.Supervisor()
     sup.install_signal_handlers()
     with sup:
         try:
@@ -203,15 +204,15 @@ def cmd_up(args: argparse.Namespace) -> int:
             sup.run_until_stopped()
             print("sealfold: stopping", file=sys.stderr, flush=True)
             return 0
-        except embedded.StopRequested:
+        except supervisor.StopRequested:
             print("sealfold: stopping", file=sys.stderr, flush=True)
             return 0
-        except embedded.ChildExited as exc:
-            tail = embedded.log_tail(exc.child.log_path)
+        except supervisor.ChildExited as exc:
+            tail = supervisor.log_tail(exc.child.log_path)
             print(f"sealfold: {exc}; stopping the stack. Last lines of {exc.child.log_path}:\n{tail}",
                   file=sys.stderr, flush=True)
             return 1
-        except embedded.StackError as exc:
+        except supervisor.StackError as exc:
             print(f"sealfold up: {exc}", file=sys.stderr, flush=True)
             return 1
 

@@ -9,8 +9,8 @@ import numpy as np
 import pandas as pd
 from sklearn import datasets as skd
 
+from service.cli.client import ServiceClient
 from tests.support.frames import diabetes_frame
-from tests.support.http import Client
 
 __all__ = ["breast_cancer_frame", "csv_bytes", "development", "diabetes_frame", "fold_indices", "register"]
 
@@ -27,14 +27,14 @@ def csv_bytes(frame: pd.DataFrame) -> bytes:
     return frame.to_csv(index=False, float_format="%.17g").encode("utf-8")
 
 
-def register(steward: Client, frame: pd.DataFrame, **fields: Any) -> dict[str, Any]:
+def register(steward: ServiceClient, frame: pd.DataFrame, **fields: Any) -> dict[str, Any]:
     """Register a frame through the HTTP API; return the dataset record (asserts 201)."""
     reply = steward.upload("/v1/datasets", "data.csv", csv_bytes(frame), fields)
     assert reply.status == 201, reply.text
     return reply.json()
 
 
-def development(client: Client, ds_id: str) -> pd.DataFrame:
+def development(client: ServiceClient, ds_id: str) -> pd.DataFrame:
     """Download the development partition as the service serves it."""
     reply = client.get(f"/v1/datasets/{ds_id}/development")
     assert reply.status == 200, reply.text
@@ -42,7 +42,7 @@ def development(client: Client, ds_id: str) -> pd.DataFrame:
     return pd.read_csv(io.BytesIO(reply.body), dtype={"row_id": str})
 
 
-def fold_indices(client: Client, sub_id: str, dev: pd.DataFrame) -> list[tuple[np.ndarray, np.ndarray]]:
+def fold_indices(client: ServiceClient, sub_id: str, dev: pd.DataFrame) -> list[tuple[np.ndarray, np.ndarray]]:
     """Turn the service's per-fold test row ids into (train, test) positions in the downloaded frame.
 
     For k-fold style plans every development row not tested in a fold is trained on.

@@ -11,7 +11,7 @@ from typing import Any
 
 import pytest
 
-from tests.support.http import Client
+from service.cli.client import ServiceClient
 from tests.support.servers import (
     ServedApp,
     stack_environment,
@@ -33,8 +33,8 @@ class Stack:
     workers: list[Any] = field(default_factory=list)
     env: dict[str, str] = field(default_factory=dict)
 
-    def client(self, who: str = "submitter") -> Client:
-        return Client(self.url, self.tokens.get(who, who))
+    def client(self, who: str = "submitter") -> ServiceClient:
+        return ServiceClient(self.url, self.tokens.get(who, who), timeout=60.0)
 
     def wait_for(self, sub_id: str, who: str = "submitter", timeout: float = 120.0) -> dict[str, Any]:
         """Poll a submission until it is finished; fail with the worker log when it takes too long."""
@@ -81,7 +81,7 @@ def running_stack(data_dir: Path, redis_url: str, queue: str, workers: int = 2) 
     app = create_app(overrides)
     try:
         with ServedApp(app) as served:
-            wait_ready(Client(served.url), redis_url, procs, log_path)
+            wait_ready(ServiceClient(served.url), redis_url, procs, log_path)
             stack = Stack(served.url, settings, engine, tokens, data_dir, log_path)
             stack.workers = procs
             stack.env = env
@@ -91,7 +91,9 @@ def running_stack(data_dir: Path, redis_url: str, queue: str, workers: int = 2) 
         engine.dispose()
 
 
-def wait_ready(client: Client, redis_url: str, workers: list[Any], log_path: Path, timeout: float = 90.0) -> None:
+def wait_ready(
+    client: ServiceClient, redis_url: str, workers: list[Any], log_path: Path, timeout: float = 90.0
+) -> None:
     """Wait until the API is ready and every worker has registered itself in Redis."""
     from redis import Redis
     from rq.worker import Worker

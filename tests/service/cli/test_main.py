@@ -15,8 +15,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from service.cli import demo, embedded, main
-from tests.support.http import Client
+from service.cli import demo, embedded, main, supervisor
+from service.cli.client import ServiceClient
 from tests.support.servers import free_port
 
 SEALFOLD = Path(sys.prefix) / "bin" / "sealfold"
@@ -156,15 +156,15 @@ def _python(code: str) -> list[str]:
 
 
 def test_supervisor_reports_a_child_that_dies(tmp_path: Path) -> None:
-    with embedded.Supervisor(grace_seconds=2) as sup:
+    with supervisor.Supervisor(grace_seconds=2) as sup:
         sup.start("sleeper", _python("import time; time.sleep(60)"), os.environ, tmp_path)
         sup.start("quitter", _python("print('bye'); raise SystemExit(3)"), os.environ, tmp_path)
-        with pytest.raises(embedded.ChildExited) as exited:
+        with pytest.raises(supervisor.ChildExited) as exited:
             for _ in range(200):
                 sup.sleep(0.05)
         assert exited.value.child.name == "quitter"
         assert "exited with code 3" in str(exited.value)
-        assert embedded.log_tail(exited.value.child.log_path) == "bye"
+        assert supervisor.log_tail(exited.value.child.log_path) == "bye"
         sleeper = sup.children[0].process
     assert sleeper.returncode == -signal.SIGTERM
 
@@ -172,7 +172,7 @@ def test_supervisor_reports_a_child_that_dies(tmp_path: Path) -> None:
 def test_supervisor_kills_a_child_that_ignores_sigterm(tmp_path: Path) -> None:
     code = ("import signal, time; signal.signal(signal.SIGTERM, signal.SIG_IGN); "
             "print('ready', flush=True); time.sleep(60)")
-    sup = embedded.Supervisor(grace_seconds=0.5)
+    sup = supervisor.Supervisor(grace_seconds=0.5)
     child = sup.start("stubborn", _python(code), os.environ, tmp_path)
     while "ready" not in child.log_path.read_text():
         time.sleep(0.02)
@@ -180,13 +180,13 @@ def test_supervisor_kills_a_child_that_ignores_sigterm(tmp_path: Path) -> None:
     sup.stop()
     assert child.process.returncode == -signal.SIGKILL
     assert time.monotonic() - started < 5
-    assert embedded.describe_exit(-9) == "was killed by SIGKILL"
+    assert supervisor.describe_exit(-9) == "was killed by SIGKILL"
 
 
 def test_one_stack_per_data_dir(tmp_path: Path) -> None:
     held = embedded.lock_data_dir(tmp_path)
     try:
-        with pytest.raises(embedded.StackError, match="another sealfold stack"):
+        with pytest.raises(supervisor.StackError, match="another sealfold stack"):
             embedded.lock_data_dir(tmp_path)
     finally:
         held.close()
@@ -270,12 +270,12 @@ def test_up_no_demo_side_by_side_and_clean_sigterm(tmp_path: Path, up_processes:
     for up in (first, second):
         banner = up.wait_up()
         assert f"sealfold is up at {up.url}" in banner
-        assert Client(up.url).get("/readyz").status == 200
+        assert ServiceClient(up.url).get("/readyz").status == 200
         assert (up.data_dir / "redis.sock").exists() and (up.data_dir / "records.sqlite3").exists()
     # The printed submitter key authenticates against its own stack only.
     token = re.search(r"submitter: (\S+)", first.stdout()).group(1)  # type: ignore[union-attr]
-    assert Client(first.url, token).get("/v1/catalog").status == 200
-    assert Client(second.url, token).get("/v1/catalog").status == 401
+    assert ServiceClient(first.url, token).get("/v1/catalog").status == 200
+    assert ServiceClient(second.url, token).get("/v1/catalog").status == 401
 
     # A second stack on a data dir in use is refused at once.
     clash = UpProcess(tmp_path / "one", "--no-demo")
@@ -289,7 +289,7 @@ def test_up_no_demo_side_by_side_and_clean_sigterm(tmp_path: Path, up_processes:
     assert first.stop() == 0, first.stderr()
     assert not [pid for pid in children if Path(f"/proc/{pid}").exists()]
     assert not (first.data_dir / "redis.sock").exists()
-    assert Client(second.url).get("/readyz").status == 200  # the other stack did not notice
+    assert ServiceClient(second.url).get("/readyz").status == 200  # the other stack did not notice
 
     # A child that dies unexpectedly: reported with how it ended, the rest stopped, exit code non-zero.
     children = _children_of(second.proc.pid)
@@ -325,7 +325,7 @@ def test_up_demo_curl_works_and_the_demo_is_reused(tmp_path: Path, up_processes:
     url, headers, body = _parse_printed_curl(banner)
     assert url == f"{first.url}/v1/submissions" and body["dataset"] == dataset_id
     token = headers["Authorization"].removeprefix("Bearer ")
-    client = Client(first.url, token)
+    client = ServiceClient(first.url, token)
     answer = client.post("/v1/submissions", json_body=body)
     assert answer.status == 202, answer.text
     location = answer.headers["location"]
@@ -346,5 +346,5 @@ def test_up_demo_curl_works_and_the_demo_is_reused(tmp_path: Path, up_processes:
     # Fresh keys each start; the earlier submission is still readable by the team.
     new_token = re.search(r"submitter: (\S+)", banner).group(1)  # type: ignore[union-attr]
     assert new_token != token
-    assert Client(again.url, new_token).get(location).json()["state"] == "succeeded"
+    assert ServiceClient(again.url, new_token).get(location).json()["state"] == "succeeded"
     assert again.stop() == 0, again.stderr()
