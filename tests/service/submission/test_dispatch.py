@@ -129,11 +129,12 @@ def test_the_reconciled_chain_is_the_chain_a_new_submission_gets(
 ) -> None:
     sub = lost_submission(records, dataset, folds=4)
     dispatch.reconcile(records, redis, settings)
-    fresh = dataclasses.replace(settings, queue_name=settings.queue_name + "-fresh")
-    dispatch.enqueue_submission(redis, fresh, sub, {"folds": 4, "repeats": 1})  # overwrites the same job ids
     reconciled = queue_of(redis, settings).get_job_ids()
-    assert queue_of(redis, fresh).get_job_ids() == reconciled
-    assert len(reconciled) == 5 and waits_for(redis, f"{sub}-summary") == set(reconciled[1:])
+    chain = {i: waits_for(redis, i) for i in (f"{sub}-summary", f"{sub}-verdict")}
+    fresh = dataclasses.replace(settings, queue_name=settings.queue_name + "-fresh")
+    dispatch.enqueue_submission(redis, fresh, sub, {"folds": 4, "repeats": 1})  # rewrites the same job ids
+    assert queue_of(redis, fresh).get_job_ids() == reconciled and len(reconciled) == 5
+    assert {i: waits_for(redis, i) for i in chain} == chain
 
 
 def test_only_the_missing_folds_are_enqueued_and_the_summary_waits_for_them(
