@@ -1,6 +1,6 @@
-"""Fixtures of the service tests: an app on tmp_path with a real SQLite records DB and keys.
+"""Fixtures of the service tests: an app on tmp_path with a real SQLite records DB and keys, or that DB alone.
 
-Redis is fakeredis here: these tests exercise the HTTP layer only. The configuration check that a
+The app gets fakeredis: its tests exercise the HTTP layer only. The configuration check that a
 worker answers is replaced by ``worker_says_ok``; the queue path itself, with real Redis and real
 workers, is covered by the end-to-end tests.
 """
@@ -14,10 +14,12 @@ from typing import Any
 
 import fakeredis
 import pytest
+from sqlalchemy import Engine
 
 from service.records.keys import create_key
 from tests.support.api import WHO, Api
 from tests.support.datasets import csv_bytes, diabetes_frame
+from tests.support.records import records_engine
 
 
 @pytest.fixture
@@ -39,6 +41,14 @@ def api(tmp_path: Path) -> Iterator[Api]:
         tokens[who], key_ids[who] = token, info.id
     yield Api(app, app.test_client(), tokens, key_ids)
     ctx.engine.dispose()
+
+
+@pytest.fixture
+def records(tmp_path: Path) -> Iterator[Engine]:
+    """A records DB of its own (SQLite under tmp_path), for core tests that need no app."""
+    engine = records_engine(tmp_path / "records")
+    yield engine
+    engine.dispose()
 
 
 @pytest.fixture

@@ -1,0 +1,304 @@
+"""The verdict job: from stored fold scores, baseline, holdout outcome and policy, the verdict and the release.
+
+Records are written directly, as the fold, summary and holdout jobs leave them: the fold scores are
+scikit-learn's own fits of Ridge and DummyRegressor on the diabetes data (Efron et al. 2004, bundled
+with scikit-learn), the holdout score is scikit-learn's refit on every development row. The job runs
+in-process with the session's redis-server for its release lock.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from collections.abc import Iterator
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pytest
+from redis import Redis
+from scipy import stats
+from sklearn import metrics as skm
+from sklearn.base import RegressorMixin
+from sklearn.datasets import load_diabetes
+from sklearn.dummy import DummyRegressor
+from sklearn.linear_model import LinearRegression, Ridge
+from sklearn.model_selection import RepeatedKFold
+
+from service.records import reviews, submissions
+from tests.support.worker_records import add_dataset, add_submission, config_document
+from worker.jobs.runtime import WorkerContext
+from worker.jobs.summary import summary_document
+from worker.jobs.verdict import judge_submission
+
+METRICS = ("rmse", "r2")
+
+
+@dataclass(frozen=True)
+class Judged:
+    """A submission with its records written, and the numbers they were made from."""
+
+    sub_id: str
+    candidate: np.ndarray  # primary-metric (rmse) fold scores, by (repeat, fold)
+    baseline: np.ndarray
+    train_rows: np.ndarray
+    test_rows: np.ndarray
+    holdout: dict[str, float]
+
+
+@pytest.fixture
+def redis(redis_url: str) -> Iterator[Redis]:
+    client = Redis.from_url(redis_url)
+    yield client
+    client.close()
+
+
+def shuffled_diabetes() -> pd.DataFrame:
+    """Diabetes in a seeded random order, so its last 42 rows are a random holdout as the vault draws one."""
+    frame = load_diabetes(as_frame=True).frame
+    return frame.iloc[np.random.default_rng(0).permutation(len(frame))].reset_index(drop=True)
+
+
+@pytest.fixture
+def diabetes(ctx: WorkerContext) -> dict[str, Any]:
+    """Shuffled diabetes with its last 42 rows sealed as the holdout, 5 folds."""
+    frame = shuffled_diabetes()
+    return add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression", folds=5, seed=0)
+
+
+def scores(y: np.ndarray, pred: np.ndarray) -> dict[str, float]:
+    return {"rmse": float(skm.root_mean_squared_error(y, pred)), "r2": float(skm.r2_score(y, pred))}
+
+
+def recorded(
+    ctx: WorkerContext, dataset: dict[str, Any], model: RegressorMixin, *, folds: int = 5, repeats: int = 1,
+    failed: tuple[tuple[int, int], ...] = (), validation: dict[str, Any] | None = None,
+    frame: pd.DataFrame | None = None,
+) -> Judged:
+    """Fit ``model`` and the mean baseline on every fold with scikit-learn, and record what the jobs would.
+
+    ``frame`` is the table the dataset was made of (default: the shuffled diabetes), development rows first.
+    """
+    config = config_document(dataset, "Ridge", metrics=METRICS, repeats=repeats)
+    config["validation"].update({"folds": folds, **(validation or {})})
+    sub_id = add_submission(ctx, dataset, config)
+    submissions.mark_running(ctx.engine, sub_id)
+    frame = shuffled_diabetes() if frame is None else frame
+    n = int(dataset["rows_development"])
+    dev, hold = frame.iloc[:n], frame.iloc[n:]
+    X, y = dev.drop(columns="target").to_numpy(), dev["target"].to_numpy()
+    cells = [(r, f) for r in range(repeats) for f in range(folds)]
+    splits = RepeatedKFold(n_splits=folds, n_repeats=repeats, random_state=0).split(X)
+    for (r, f), (train, test) in zip(cells, splits, strict=True):
+        mine = scores(y[test], model.fit(X[train], y[train]).predict(X[test]))
+        base = scores(y[test], DummyRegressor().fit(X[train], y[train]).predict(X[test]))
+        bad = (r, f) in failed
+        submissions.record_fold(
+            ctx.engine, sub_id, r, f, status="failed" if bad else "ok", train_rows=len(train), test_rows=len(test),
+            scores=None if bad else mine, baseline_scores=base, coefficients=None, fit_seconds=0.01,
+            score_seconds=0.001, error="ValueError: the fit diverged" if bad else None)
+    rows = submissions.fold_rows(ctx.engine, sub_id)
+    submissions.store_summary(ctx.engine, sub_id, summary_document(rows, cells, METRICS, "regression"))
+    refit = model.fit(X, y)
+    holdout = scores(hold["target"].to_numpy(), refit.predict(hold.drop(columns="target").to_numpy()))
+    submissions.store_holdout_once(ctx.engine, sub_id, dict(holdout), dataset["holdout_fingerprint"], 0.1)
+    ok = [r for r in rows if r["status"] == "ok"]
+    return Judged(sub_id, np.array([r["scores"]["rmse"] for r in ok]),
+                  np.array([r["baseline_scores"]["rmse"] for r in ok]), np.array([r["train_rows"] for r in ok]),
+                  np.array([r["test_rows"] for r in ok]), holdout)
+
+
+def corrected_t(d: np.ndarray, n_train: float, n_test: float) -> tuple[float, float]:
+    """The corrected resampled t and its one-sided p, written out from Nadeau & Bengio (2003):
+    t = mean(d) / sqrt((1/J + n_test/n_train) * var(d, ddof=1)), df = J - 1, p = P(T > t) by scipy."""
+    t = float(np.mean(d) / math.sqrt((1 / d.size + n_test / n_train) * np.var(d, ddof=1)))
+    return t, float(stats.t.sf(t, d.size - 1))
+
+
+def rule(verdict: dict[str, Any], name: str) -> dict[str, Any]:
+    return next(r for r in verdict["rules"] if r["rule"] == name)
+
+
+def test_the_verdict_and_the_release_are_assembled_from_the_stored_records(
+    ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]
+) -> None:
+    judged = recorded(ctx, diabetes, Ridge(alpha=0.1))
+    answer = judge_submission(ctx, redis, judged.sub_id)
+    sub = submissions.get(ctx.engine, judged.sub_id)
+    assert sub is not None and sub["state"] == "succeeded"
+    verdict = sub["verdict"]
+    assert answer == {"submission_id": judged.sub_id, "decision": verdict["decision"]}
+    assert (verdict["primary_metric"], verdict["test"], verdict["policy_version"], verdict["champion"]) == (
+        "rmse", "corrected_resampled_t", 0, None)
+    assert (sub["policy_version"], sub["champion_id"]) == (0, None)
+
+    baseline = rule(verdict, "baseline")["figures"]
+    # rmse is lower-is-better, so a positive difference is the baseline's error above the candidate's.
+    t, p = corrected_t(judged.baseline - judged.candidate, judged.train_rows.mean(), judged.test_rows.mean())
+    assert (baseline["t"], baseline["p_one_sided"], baseline["df"]) == (pytest.approx(t), pytest.approx(p), 4)
+    assert baseline["candidate_mean"] == pytest.approx(float(np.mean(judged.candidate)))
+    assert baseline["baseline_mean"] == pytest.approx(float(np.mean(judged.baseline)))
+    assert (baseline["n_train"], baseline["n_test"]) == (320.0, 80.0)  # 5 folds of the 400 development rows
+    assert rule(verdict, "baseline")["outcome"] == ("pass" if p < 0.05 else "fail") == "pass"
+
+    gap = rule(verdict, "holdout_gap")["figures"]
+    # The allowance scales the fold std to the spread of (holdout - CV mean): sqrt(n_test/n_holdout + 1/J).
+    std = float(np.std(judged.candidate, ddof=1))
+    allowed = 3.0 * std * math.sqrt(80 / 42 + 1 / 5)
+    assert gap["allowed_gap"] == pytest.approx(allowed) and gap["fold_std"] == pytest.approx(std)
+    inside = abs(judged.holdout["rmse"] - float(np.mean(judged.candidate))) <= allowed
+    assert rule(verdict, "holdout_gap")["outcome"] == ("pass" if inside else "fail") == "pass"
+    assert [rule(verdict, n)["outcome"] for n in ("bar", "champion", "fold_stability")] == ["skipped"] * 3
+    assert verdict["decision"] == "pass"
+    assert f"{judged.holdout['rmse']:.6g}" not in json.dumps(verdict)  # the verdict quotes no holdout figure
+
+    release = reviews.get_release(ctx.engine, judged.sub_id)
+    assert release is not None and (release["mode"], release["spent"]) == ("ladder", 1)
+    # The first figure of the default ladder is the holdout rmse at 3 significant digits.
+    assert release["released"] == {"rmse": float(f"{judged.holdout['rmse']:.3g}")}
+    assert release["state"]["ladder"]["best_submission"] == judged.sub_id
+
+
+def test_a_holdout_out_of_line_with_the_folds_fails_the_verdict(ctx: WorkerContext, redis: Redis) -> None:
+    # Seal the 42 largest targets: a model fitted on the others misses them by far more than its folds do.
+    frame = load_diabetes(as_frame=True).frame.sort_values("target", kind="stable").reset_index(drop=True)
+    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression", folds=5)
+    judged = recorded(ctx, dataset, Ridge(alpha=0.1), frame=frame)
+    assert judge_submission(ctx, redis, judged.sub_id)["decision"] == "fail"
+    verdict = submissions.get(ctx.engine, judged.sub_id)["verdict"]  # type: ignore[index]
+    std = float(np.std(judged.candidate, ddof=1))
+    gap = abs(judged.holdout["rmse"] - float(np.mean(judged.candidate)))
+    assert gap > 3.0 * std * math.sqrt(80 / 42 + 1 / 5)
+    assert rule(verdict, "holdout_gap")["outcome"] == "fail" and rule(verdict, "baseline")["outcome"] == "pass"
+    assert verdict["reasons"][0] == rule(verdict, "holdout_gap")["sentence"]  # the failing rule is said first
+
+
+def test_failed_folds_are_left_out_of_the_paired_test(
+    ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]
+) -> None:
+    judged = recorded(ctx, diabetes, Ridge(alpha=0.1), failed=((0, 3),))
+    judge_submission(ctx, redis, judged.sub_id)
+    figures = rule(submissions.get(ctx.engine, judged.sub_id)["verdict"], "baseline")["figures"]  # type: ignore[index]
+    assert len(judged.candidate) == 4 and (figures["cells"], figures["n_differences"], figures["df"]) == (4, 4, 3)
+    t, p = corrected_t(judged.baseline - judged.candidate, judged.train_rows.mean(), judged.test_rows.mean())
+    assert (figures["t"], figures["p_one_sided"]) == (pytest.approx(t), pytest.approx(p))
+
+
+def test_the_policy_in_force_decides_the_release_and_is_recorded(
+    ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]
+) -> None:
+    version = reviews.put_policy(ctx.engine, diabetes["id"], {"release": {"mode": "exact", "digits": 4},
+                                                              "bar": 50.0, "max_fold_std": 100.0}, "key_steward")
+    judged = recorded(ctx, diabetes, Ridge(alpha=0.1))
+    judge_submission(ctx, redis, judged.sub_id)
+    sub = submissions.get(ctx.engine, judged.sub_id)
+    assert sub is not None and sub["policy_version"] == sub["verdict"]["policy_version"] == version == 1
+    release = reviews.get_release(ctx.engine, judged.sub_id)
+    assert release is not None and release["mode"] == "exact"
+    assert release["released"] == {m: float(f"{v:.4g}") for m, v in judged.holdout.items()}
+    mean = float(np.mean(judged.candidate))
+    bar = rule(sub["verdict"], "bar")
+    assert bar["figures"] == {"bar": 50.0, "cv_mean": pytest.approx(mean)}
+    assert bar["outcome"] == ("pass" if mean <= 50.0 else "fail") == "fail"  # Ridge on diabetes: rmse about 55
+    assert rule(sub["verdict"], "fold_stability")["figures"]["fold_std"] == pytest.approx(
+        float(np.std(judged.candidate, ddof=1)))
+    assert sub["verdict"]["decision"] == "fail"
+
+
+def test_the_champion_in_force_is_compared_on_the_shared_folds(
+    ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]
+) -> None:
+    reviews.put_policy(ctx.engine, diabetes["id"], {"champion_margin": 1.5}, "key_steward")
+    champion = recorded(ctx, diabetes, LinearRegression())
+    judge_submission(ctx, redis, champion.sub_id)
+    reviews.promote(ctx.engine, diabetes["id"], champion.sub_id, "key_steward")
+    judged = recorded(ctx, diabetes, Ridge(alpha=0.1))
+    judge_submission(ctx, redis, judged.sub_id)
+    sub = submissions.get(ctx.engine, judged.sub_id)
+    assert sub is not None and sub["champion_id"] == sub["verdict"]["champion"] == champion.sub_id
+    figures = rule(sub["verdict"], "champion")["figures"]
+    # Non-inferiority: the same corrected t on (champion rmse - candidate rmse) + margin.
+    d = champion.candidate - judged.candidate
+    t, p = corrected_t(d + 1.5, judged.train_rows.mean(), judged.test_rows.mean())
+    assert (figures["t"], figures["p_one_sided"]) == (pytest.approx(t), pytest.approx(p))
+    assert figures["mean_difference"] == pytest.approx(float(np.mean(d)))
+    assert figures["champion_mean"] == pytest.approx(float(np.mean(champion.candidate)))
+    assert p < 0.05 and rule(sub["verdict"], "champion")["outcome"] == "pass"
+    # The champion's own verdict was judged before it was promoted: against no champion.
+    assert submissions.get(ctx.engine, champion.sub_id)["champion_id"] is None  # type: ignore[index]
+
+
+def test_a_champion_on_another_fold_plan_cannot_be_compared(
+    ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]
+) -> None:
+    champion = recorded(ctx, diabetes, LinearRegression(), folds=4, validation={"plan_overridden": True})
+    reviews.promote(ctx.engine, diabetes["id"], champion.sub_id, "key_steward")
+    judged = recorded(ctx, diabetes, Ridge(alpha=0.1))
+    judge_submission(ctx, redis, judged.sub_id)
+    verdict = submissions.get(ctx.engine, judged.sub_id)["verdict"]  # type: ignore[index]
+    assert rule(verdict, "champion")["outcome"] == "inconclusive"
+    assert rule(verdict, "champion")["figures"]["champion_plan"] == ["kfold", 4, 0]
+    assert verdict["decision"] == "inconclusive"
+
+
+def test_five_by_two_cv_is_judged_by_dietterichs_t(
+    ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]
+) -> None:
+    judged = recorded(ctx, diabetes, Ridge(alpha=0.1), folds=2, repeats=5, validation={"test": "5x2cv"})
+    judge_submission(ctx, redis, judged.sub_id)
+    verdict = submissions.get(ctx.engine, judged.sub_id)["verdict"]  # type: ignore[index]
+    assert verdict["test"] == "five_by_two_cv"
+    # Dietterich (1998): t = p_1^(1) / sqrt(mean_i s_i^2), s_i^2 = sum_j (p_i^(j) - mean_j p_i^(j))^2, df 5.
+    p = (judged.baseline - judged.candidate).reshape(5, 2)
+    s2 = ((p - p.mean(axis=1, keepdims=True)) ** 2).sum(axis=1)
+    t = float(p[0, 0] / math.sqrt(s2.mean()))
+    figures = rule(verdict, "baseline")["figures"]
+    assert (figures["t"], figures["df"]) == (pytest.approx(t), 5)
+    assert figures["p_one_sided"] == pytest.approx(float(stats.t.sf(t, 5)))
+
+
+def test_judging_waits_for_summary_and_holdout_and_then_runs_once(
+    ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]
+) -> None:
+    config = config_document(diabetes, "Ridge", metrics=METRICS)
+    early = add_submission(ctx, diabetes, config)
+    with pytest.raises(RuntimeError, match="no cross-validation summary yet"):
+        judge_submission(ctx, redis, early)
+    submissions.store_summary(ctx.engine, early, {"summary": {}})
+    with pytest.raises(RuntimeError, match="no holdout score yet"):
+        judge_submission(ctx, redis, early)
+    assert reviews.get_release(ctx.engine, early) is None
+
+    judged = recorded(ctx, diabetes, Ridge(alpha=0.1))
+    judge_submission(ctx, redis, judged.sub_id)
+    first = submissions.get(ctx.engine, judged.sub_id)
+    release = reviews.get_release(ctx.engine, judged.sub_id)
+    assert judge_submission(ctx, redis, judged.sub_id) == {"submission_id": judged.sub_id, "verdict": "already judged"}
+    again = submissions.get(ctx.engine, judged.sub_id)
+    assert first is not None and again is not None and again["verdict"] == first["verdict"]
+    assert reviews.get_release(ctx.engine, judged.sub_id) == release
+    assert len(reviews.releases_since(ctx.engine, diabetes["id"], release["released_at"])) == 1  # type: ignore[index]
+
+
+def test_a_failed_holdout_attempt_fails_the_submission_with_its_summary_kept(
+    ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]
+) -> None:
+    config = config_document(diabetes, "Ridge", metrics=METRICS)
+    sub_id = add_submission(ctx, diabetes, config)
+    submissions.store_summary(ctx.engine, sub_id, {"summary": {"rmse": {"mean": 55.0}}})
+    submissions.store_holdout_once(ctx.engine, sub_id, {}, diabetes["holdout_fingerprint"], None,
+                                   error="refitting on all development rows failed: ValueError (message withheld)")
+    assert judge_submission(ctx, redis, sub_id) == {"submission_id": sub_id, "decision": None, "holdout": "not scored"}
+    sub = submissions.get(ctx.engine, sub_id)
+    assert sub is not None and sub["state"] == "failed" and sub["verdict"] is None
+    assert sub["error"].startswith("refitting on all development rows failed") and sub["result"] is not None
+    assert reviews.get_release(ctx.engine, sub_id) is None
+
+
+def test_a_canceled_submission_is_not_judged(ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]) -> None:
+    judged = recorded(ctx, diabetes, Ridge(alpha=0.1))
+    submissions.transition(ctx.engine, judged.sub_id, "canceled", submissions.LIVE_STATES)
+    assert judge_submission(ctx, redis, judged.sub_id) == {"submission_id": judged.sub_id, "skipped": "canceled"}
+    assert submissions.get(ctx.engine, judged.sub_id)["verdict"] is None  # type: ignore[index]
+    assert reviews.get_release(ctx.engine, judged.sub_id) is None
