@@ -45,6 +45,9 @@ from service.settings import Settings
 log = logging.getLogger(__name__)
 
 JOB_MODULE = "worker.jobs"
+RECONCILE_LOCK = "sealfold:reconciling"
+# Longer than any reconcile takes; only a reconciler killed mid-run leaves the lock to expire.
+RECONCILE_LOCK_SECONDS = 300
 RESULT_TTL = 3600  # results live in the records DB; Redis copies are for debugging only
 RETRIES = 2  # retries apply to crashed or abandoned jobs; estimator errors are recorded, not raised
 
@@ -147,8 +150,18 @@ def reconcile(engine: Engine, redis: Redis, settings: Settings, min_age_seconds:
     stale = [s for s in submissions.unfinished(engine) if (as_utc(s["updated_at"]) or cutoff) <= cutoff]
     if not stale:
         return 0
-    live = live_job_ids(queue)
-    return sum(_reconcile_one(engine, live, queue, settings, sub) for sub in stale)
+    # Reading what is live and enqueueing what is not must not interleave with another reconciler:
+    # two that both read before either writes would each push every missing job id onto the queue,
+    # and RQ runs a job once per queue entry. A second reconciler finds the lock held and leaves the
+    # work to the first.
+    lock = redis.lock(f"{RECONCILE_LOCK}:{queue.name}", timeout=RECONCILE_LOCK_SECONDS, blocking=False)
+    if not lock.acquire():
+        return 0
+    try:
+        live = live_job_ids(queue)
+        return sum(_reconcile_one(engine, live, queue, settings, sub) for sub in stale)
+    finally:
+        lock.release()
 
 
 def live_job_ids(queue: Queue) -> set[str]:

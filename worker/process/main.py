@@ -44,7 +44,7 @@ log = logging.getLogger(__name__)
 
 JOB_MONITORING_INTERVAL = 10
 MAINTENANCE_INTERVAL = 30
-RECONCILE_LOCK = "sealfold:reconcile-lock"
+RECONCILE_TICK = "sealfold:reconcile-tick"
 # Callbacks a job may name; sealfold's own jobs use none, so any name is refused.
 ALLOWED_CALLBACKS: frozenset[str] = frozenset()
 
@@ -193,10 +193,10 @@ class SealfoldWorker(Worker):
 def reconcile_once(redis: Redis[Any]) -> int:
     """Re-enqueue lost work, unless another worker did so within the last maintenance interval.
 
-    The reconciler is idempotent (deterministic job ids); the lock only saves N workers doing the
-    same scan at every tick.
+    The reconciler is idempotent (deterministic job ids) and excludes a concurrent run itself; this
+    key only saves N workers doing the same scan at every tick.
     """
-    if not redis.set(RECONCILE_LOCK, "1", nx=True, ex=MAINTENANCE_INTERVAL - 5):
+    if not redis.set(RECONCILE_TICK, "1", nx=True, ex=MAINTENANCE_INTERVAL - 5):
         return 0
     ctx = runtime.current()
     return dispatch.reconcile(ctx.engine, redis, ctx.settings)
