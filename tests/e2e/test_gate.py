@@ -79,9 +79,12 @@ def test_verdicts_baseline_champion_and_overridden_plan(stack: Stack, cancer: di
     promoted = steward.post(f"/v1/datasets/{ds}/champion", json_body={"submission": sound["id"]})
     assert promoted.status in (200, 201), promoted.text
 
-    # A one-split tree is far worse than the champion: non-inferiority fails on the shared folds.
+    # A one-split tree on one weak column is far worse than the champion: non-inferiority fails on the
+    # shared folds. (A one-split tree on every column trails the champion by only ~0.05 accuracy, which
+    # the corrected test at 5 folds shows beyond alpha on most seals but not all: the seal is random.)
     stump = _judged(stack, {"dataset": ds, "model": {"estimator": "DecisionTreeClassifier",
-                                                     "params": {"max_depth": 1}}, "label": "stump"})
+                                                     "params": {"max_depth": 1},
+                                                     "features": ["mean_fractal_dimension"]}, "label": "stump"})
     assert stump["result"]["verdict"]["champion"] == sound["id"]
     assert _rule(stump, "champion")["outcome"] == "fail"
     assert stump["result"]["verdict"]["decision"] == "fail"
