@@ -16,6 +16,7 @@ from typing import Any, Protocol
 
 from service.catalog.metrics import DEFAULT_METRICS, METRICS
 from service.errors import ConfigRejected, FieldProblem
+from service.submission.resolved import PreprocessStep, SearchSpec
 
 MAX_FOLDS, MAX_REPEATS, MAX_FOLD_JOBS = 20, 10, 100
 MAX_CANDIDATES, MAX_SEARCH_FITS, MAX_INNER_FOLDS = 50, 2000, 10
@@ -29,15 +30,6 @@ class DatasetRef:
 
     id: str
     fingerprint: str | None = None
-
-
-@dataclass(frozen=True)
-class PreprocessStep:
-    """One transformer applied to some columns inside every training fold."""
-
-    transformer: str
-    columns: tuple[str, ...]
-    params: Mapping[str, Any] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -58,20 +50,6 @@ class ValidationSpec:
     repeats: int = 1
     test: str | None = None  # "5x2cv": 5 repeats of 2-fold CV, compared by Dietterich's paired t-test
     learning_curve: tuple[float, ...] | None = None  # fractions of each training fold, e.g. (0.1, ..., 1.0)
-
-
-@dataclass(frozen=True)
-class SearchSpec:
-    """A small hyper-parameter search run inside every outer training fold (nested cross-validation).
-
-    ``grid``: parameter -> list of values (every combination); or ``distributions`` with ``n_iter``
-    draws: parameter -> list of values to sample from, or {"uniform"|"log_uniform": [low, high]}.
-    """
-
-    grid: Mapping[str, tuple[Any, ...]] | None = None
-    distributions: Mapping[str, Any] | None = None
-    n_iter: int | None = None
-    inner_folds: int = 3
 
 
 @dataclass(frozen=True)
