@@ -33,7 +33,8 @@ from service.records.engine import as_utc, iso
 from service.submission import intake
 from service.submission.config import SubmissionRequest
 from service.submission.document import submission_document
-from service.vault.folds import FoldPlan, fold_splits, split_keys_from_frame
+from service.submission.resolved import ValidationPlan
+from service.vault.folds import fold_splits, split_keys_from_frame
 from service.vault.store import load_development_frame
 
 blp = SealfoldBlueprint("submissions", __name__, url_prefix="/v1/submissions",
@@ -158,17 +159,17 @@ class SubmissionFolds(MethodView):
         """List each fold's test rows by development row_id (holdout rows are never in any fold)."""
         caller = current_key()
         row = team_submission(caller, sub_id)
-        return json_response({"folds": fold_test_rows(team_dataset(caller, row["dataset_id"]),
-                                                      row["config"]["validation"])})
+        validation = ValidationPlan.from_document(row["config"]["validation"])
+        return json_response({"folds": fold_test_rows(team_dataset(caller, row["dataset_id"]), validation)})
 
 
-def fold_test_rows(dataset: dict[str, Any], validation: dict[str, Any]) -> list[dict[str, Any]]:
+def fold_test_rows(dataset: dict[str, Any], validation: ValidationPlan) -> list[dict[str, Any]]:
     """Recompute a submission's folds from its dataset and validation plan; answer row ids per fold."""
-    plan = FoldPlan(str(validation["scheme"]), int(validation["folds"]), int(validation["seed"]))
+    plan = validation.fold_plan()
     target, group, time = dataset["target"], dataset.get("group_column"), dataset.get("time_column")
     wanted = list(dict.fromkeys(["row_id", target, *(c for c in (group, time) if c)]))
     frame = load_development_frame(service_context().settings, dataset["id"], columns=wanted)
     keys = split_keys_from_frame(frame, plan, target, group, time)
     row_ids = frame["row_id"].astype(str).to_numpy()
-    splits = sorted(fold_splits(plan, keys, int(validation.get("repeats", 1))), key=lambda s: (s.repeat, s.fold))
+    splits = sorted(fold_splits(plan, keys, validation.repeats), key=lambda s: (s.repeat, s.fold))
     return [{"fold": s.fold, "repeat": s.repeat, "test_row_ids": row_ids[s.test].tolist()} for s in splits]

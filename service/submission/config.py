@@ -1,9 +1,10 @@
 """Submission requests as frozen values, and their resolution against a dataset and the catalog.
 
 The API parses a request body once into a ``SubmissionRequest``; ``resolve`` then checks it against
-the dataset (columns, task, fold plan) and the catalog, and produces the normalised configuration
-document that is stored with the submission and read by the worker. Parameter values themselves
-are checked by scikit-learn in a worker (``worker.jobs.check_config``), not here.
+the dataset (columns, task, fold plan) and the catalog, and produces the ``ResolvedConfig``
+(``service.submission.resolved``) whose document is stored with the submission and read by the
+worker. Parameter values themselves are checked by scikit-learn in a worker
+(``worker.jobs.check_config``), not here.
 """
 
 from __future__ import annotations
@@ -11,11 +12,12 @@ from __future__ import annotations
 import hashlib
 import json
 from collections.abc import Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, Protocol
 
 from service.catalog.metrics import DEFAULT_METRICS, METRICS
 from service.errors import ConfigRejected, FieldProblem
+from service.submission.resolved import PreprocessStep, ResolvedConfig, ResolvedModel, SearchSpec, ValidationPlan
 
 MAX_FOLDS, MAX_REPEATS, MAX_FOLD_JOBS = 20, 10, 100
 MAX_CANDIDATES, MAX_SEARCH_FITS, MAX_INNER_FOLDS = 50, 2000, 10
@@ -29,15 +31,6 @@ class DatasetRef:
 
     id: str
     fingerprint: str | None = None
-
-
-@dataclass(frozen=True)
-class PreprocessStep:
-    """One transformer applied to some columns inside every training fold."""
-
-    transformer: str
-    columns: tuple[str, ...]
-    params: Mapping[str, Any] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -58,20 +51,6 @@ class ValidationSpec:
     repeats: int = 1
     test: str | None = None  # "5x2cv": 5 repeats of 2-fold CV, compared by Dietterich's paired t-test
     learning_curve: tuple[float, ...] | None = None  # fractions of each training fold, e.g. (0.1, ..., 1.0)
-
-
-@dataclass(frozen=True)
-class SearchSpec:
-    """A small hyper-parameter search run inside every outer training fold (nested cross-validation).
-
-    ``grid``: parameter -> list of values (every combination); or ``distributions`` with ``n_iter``
-    draws: parameter -> list of values to sample from, or {"uniform"|"log_uniform": [low, high]}.
-    """
-
-    grid: Mapping[str, tuple[Any, ...]] | None = None
-    distributions: Mapping[str, Any] | None = None
-    n_iter: int | None = None
-    inner_folds: int = 3
 
 
 @dataclass(frozen=True)
@@ -113,8 +92,8 @@ class _Problems:
             raise ConfigRejected(summary, self.items)
 
 
-def resolve(request: SubmissionRequest, dataset: Mapping[str, Any], catalog: CatalogView) -> dict[str, Any]:
-    """Check ``request`` against ``dataset`` and the catalog; return the normalised configuration document."""
+def resolve(request: SubmissionRequest, dataset: Mapping[str, Any], catalog: CatalogView) -> ResolvedConfig:
+    """Check ``request`` against ``dataset`` and the catalog; return the resolved configuration."""
     problems = _Problems()
     task = str(dataset["task"])
     kinds = {c["name"]: c["kind"] for c in dataset["columns"]}
@@ -134,32 +113,29 @@ def resolve(request: SubmissionRequest, dataset: Mapping[str, Any], catalog: Cat
     metrics = _resolve_metrics(request.metrics, task, dataset, problems)
     plan = _resolve_plan(request.validation, dataset["fold_plan"], problems)
     if request.validation.learning_curve is not None:
-        plan["learning_curve"] = _resolve_curve(request.validation.learning_curve, problems)
+        plan = replace(plan, learning_curve=_resolve_curve(request.validation.learning_curve, problems))
     search = _resolve_search(request.search, request.model, plan, problems)
     problems.raise_if_any()
-    return {
-        "model": {
-            "estimator": model.estimator,
-            "params": dict(model.params),
-            "features": features,
-            "preprocess": steps,
-        },
-        "validation": plan,
-        "metrics": metrics,
-        "search": search,
-        "label": request.label,
-        "task": task,
-        "target": dataset["target"],
-    }
+    return ResolvedConfig(
+        model=ResolvedModel(estimator=model.estimator, params=dict(model.params), features=tuple(features),
+                            preprocess=steps),
+        validation=plan,
+        metrics=tuple(metrics),
+        search=search,
+        label=request.label,
+        task=task,
+        target=str(dataset["target"]),
+    )
 
 
-def config_fingerprint(document: Mapping[str, Any], dataset_fingerprint: str) -> str:
+def config_fingerprint(config: ResolvedConfig, dataset_fingerprint: str) -> str:
     """SHA-256 of the canonical JSON of what determines the result: model, validation, metrics, data."""
+    document = config.to_document()
     material = {
         "model": document["model"], "validation": document["validation"],
         "metrics": document["metrics"], "dataset": dataset_fingerprint,
     }
-    if document.get("search") is not None:  # absent from older documents: keep their fingerprints
+    if config.search is not None:  # left out without a search, so fingerprints from before searches stand
         material["search"] = document["search"]
     canonical = json.dumps(material, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
     return hashlib.sha256(canonical.encode("ascii")).hexdigest()
@@ -192,9 +168,9 @@ def _resolve_features(
 
 def _resolve_steps(
     model: ModelSpec, features: list[str], problems: _Problems, catalog: CatalogView
-) -> list[dict[str, Any]]:
+) -> tuple[PreprocessStep, ...]:
     """Check the preprocess steps; steps on exactly the same columns chain, in the order given."""
-    steps: list[dict[str, Any]] = []
+    steps: list[PreprocessStep] = []
     owner: dict[str, tuple[int, tuple[str, ...]]] = {}
     for i, step in enumerate(model.preprocess):
         base = f"/model/preprocess/{i}"
@@ -212,15 +188,14 @@ def _resolve_steps(
             if first[1] != step.columns and first[0] != i:
                 problems.add(f"{base}/columns/{j}", f"column {column!r} is already in step {first[0]} with "
                              "other columns; steps chain only when they name exactly the same columns")
-        steps.append({"transformer": step.transformer, "columns": list(step.columns),
-                      "params": dict(step.params)})
-    return steps
+        steps.append(PreprocessStep(step.transformer, tuple(step.columns), dict(step.params)))
+    return tuple(steps)
 
 
 def _check_categoricals(
-    features: list[str], kinds: Mapping[str, str], steps: list[dict[str, Any]], problems: _Problems
+    features: list[str], kinds: Mapping[str, str], steps: tuple[PreprocessStep, ...], problems: _Problems
 ) -> None:
-    encoded = {c for s in steps if s["transformer"] in ENCODERS for c in s["columns"]}
+    encoded = {c for s in steps if s.transformer in ENCODERS for c in s.columns}
     for i, name in enumerate(features):
         if kinds.get(name) == "categorical" and name not in encoded:
             problems.add(f"/model/features/{i}", f"feature {name!r} is categorical and needs an encoder: add a "
@@ -248,7 +223,7 @@ def _resolve_metrics(
 
 def _resolve_plan(
     validation: ValidationSpec, dataset_plan: Mapping[str, Any], problems: _Problems
-) -> dict[str, Any]:
+) -> ValidationPlan:
     if validation.test is not None:
         return _five_by_two(validation, dataset_plan, problems)
     folds = dataset_plan["folds"] if validation.folds is None else validation.folds
@@ -263,13 +238,13 @@ def _resolve_plan(
     if folds * validation.repeats > MAX_FOLD_JOBS:
         problems.add("/validation", f"folds x repeats must be at most {MAX_FOLD_JOBS}, "
                      f"got {folds} x {validation.repeats}")
-    return {
-        "scheme": dataset_plan["scheme"], "folds": folds, "seed": dataset_plan["seed"],
-        "repeats": validation.repeats, "plan_overridden": folds != dataset_plan["folds"],
-    }
+    return ValidationPlan(
+        scheme=dataset_plan["scheme"], folds=folds, seed=dataset_plan["seed"],
+        repeats=validation.repeats, plan_overridden=folds != dataset_plan["folds"],
+    )
 
 
-def _five_by_two(validation: ValidationSpec, dataset_plan: Mapping[str, Any], problems: _Problems) -> dict[str, Any]:
+def _five_by_two(validation: ValidationSpec, dataset_plan: Mapping[str, Any], problems: _Problems) -> ValidationPlan:
     """Dietterich's (1998) 5x2cv: five repeats of 2-fold CV on the dataset's scheme and seeds."""
     if validation.test != "5x2cv":
         problems.add("/validation/test", f"test must be '5x2cv' or left out, got {validation.test!r}")
@@ -279,11 +254,11 @@ def _five_by_two(validation: ValidationSpec, dataset_plan: Mapping[str, Any], pr
     if validation.folds not in (None, 2) or validation.repeats not in (1, 5):
         problems.add("/validation", "5x2cv fixes folds at 2 and repeats at 5; leave folds and repeats out, "
                      f"got folds={validation.folds}, repeats={validation.repeats}")
-    return {"scheme": dataset_plan["scheme"], "folds": 2, "seed": dataset_plan["seed"], "repeats": 5,
-            "plan_overridden": dataset_plan["folds"] != 2, "test": "5x2cv"}
+    return ValidationPlan(scheme=dataset_plan["scheme"], folds=2, seed=dataset_plan["seed"], repeats=5,
+                          plan_overridden=dataset_plan["folds"] != 2, test="5x2cv")
 
 
-def _resolve_curve(sizes: tuple[float, ...], problems: _Problems) -> list[float]:
+def _resolve_curve(sizes: tuple[float, ...], problems: _Problems) -> tuple[float, ...]:
     """Check learning-curve sizes: fractions in (0, 1] of each training fold, increasing."""
     chosen = list(sizes) or list(LEARNING_CURVE_DEFAULT)
     if len(chosen) > 10:
@@ -294,12 +269,12 @@ def _resolve_curve(sizes: tuple[float, ...], problems: _Problems) -> list[float]
                          f"got {size}")
     if chosen != sorted(set(chosen)):
         problems.add("/validation/learning_curve", f"sizes must increase without repeats, got {chosen}")
-    return chosen
+    return tuple(chosen)
 
 
 def _resolve_search(
-    search: SearchSpec | None, model: ModelSpec, plan: Mapping[str, Any], problems: _Problems
-) -> dict[str, Any] | None:
+    search: SearchSpec | None, model: ModelSpec, plan: ValidationPlan, problems: _Problems
+) -> SearchSpec | None:
     """Check a nested search against the caps; parameter values are checked by scikit-learn in a worker."""
     if search is None:
         return None
@@ -328,16 +303,16 @@ def _resolve_search(
             problems.add("/search/n_iter", f"n_iter must be between 1 and {MAX_CANDIDATES}, got {search.n_iter}")
     if candidates > MAX_CANDIDATES:
         problems.add("/search/grid", f"the grid has {candidates} combinations; at most {MAX_CANDIDATES} are allowed")
-    outer = int(plan["folds"]) * int(plan["repeats"])
+    outer = plan.folds * plan.repeats
     # A learning curve reruns the search at every size but the last (the full fold is reused).
-    per_fold = max(1, len(plan.get("learning_curve") or []))
+    per_fold = max(1, len(plan.learning_curve or ()))
     fits = candidates * search.inner_folds * outer * per_fold
     if fits > MAX_SEARCH_FITS:
         sizes = f" x {per_fold} learning-curve sizes" if per_fold > 1 else ""
         problems.add("/search", f"the search needs {candidates} candidates x {search.inner_folds} inner folds x "
                      f"{outer} outer folds{sizes} = {fits} fits; at most {MAX_SEARCH_FITS} are allowed")
-    return {
-        "grid": None if search.grid is None else {k: list(v) for k, v in search.grid.items()},
-        "distributions": None if search.distributions is None else dict(search.distributions),
-        "n_iter": search.n_iter, "inner_folds": search.inner_folds,
-    }
+    return SearchSpec(
+        grid=None if search.grid is None else {k: tuple(v) for k, v in search.grid.items()},
+        distributions=None if search.distributions is None else dict(search.distributions),
+        n_iter=search.n_iter, inner_folds=search.inner_folds,
+    )

@@ -41,6 +41,7 @@ from service.errors import ConfigRejected, FieldProblem, Unavailable
 from service.records import submissions
 from service.records.engine import as_utc, utcnow
 from service.settings import Settings
+from service.submission.resolved import ValidationPlan
 
 log = logging.getLogger(__name__)
 
@@ -77,12 +78,12 @@ def work_queue(redis: Redis, settings: Settings) -> Queue:
     return Queue(settings.queue_name, connection=redis, serializer=JSONSerializer)
 
 
-def fold_cells(validation: dict[str, Any]) -> list[tuple[int, int]]:
+def fold_cells(validation: ValidationPlan) -> list[tuple[int, int]]:
     """Return every (repeat, fold) pair a validation plan runs."""
-    return [(r, f) for r in range(int(validation["repeats"])) for f in range(int(validation["folds"]))]
+    return [(r, f) for r in range(validation.repeats) for f in range(validation.folds)]
 
 
-def enqueue_submission(redis: Redis, settings: Settings, sub_id: str, validation: dict[str, Any]) -> None:
+def enqueue_submission(redis: Redis, settings: Settings, sub_id: str, validation: ValidationPlan) -> None:
     """Enqueue the whole job chain of a new submission."""
     try:
         queue = work_queue(redis, settings)
@@ -126,7 +127,7 @@ def check_config_remote(
     return answer
 
 
-def cancel_jobs(redis: Redis, settings: Settings, sub_id: str, validation: dict[str, Any]) -> None:
+def cancel_jobs(redis: Redis, settings: Settings, sub_id: str, validation: ValidationPlan) -> None:
     """Cancel a submission's queued jobs; running ones see the canceled state and stop early."""
     ids = [fold_job_id(sub_id, r, f) for r, f in fold_cells(validation)]
     ids += [summary_job_id(sub_id), holdout_job_id(sub_id), verdict_job_id(sub_id)]
@@ -193,7 +194,7 @@ def _reconcile_one(engine: Engine, live: set[str], queue: Queue, settings: Setti
         _enqueue_holdout(queue, settings, sub_id)
         enqueued += 1
     live_folds: list[str] = []
-    for r, f in fold_cells(sub["config"]["validation"]):
+    for r, f in fold_cells(ValidationPlan.from_document(sub["config"]["validation"])):
         job_id = fold_job_id(sub_id, r, f)
         if (r, f) in done:
             continue

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import json
-from dataclasses import asdict
+from dataclasses import asdict, replace
 from typing import Any
 
 from redis import Redis
@@ -25,6 +25,7 @@ from service.records import audit, datasets, submissions
 from service.records.keys import KeyInfo
 from service.settings import Settings
 from service.submission import config, dispatch
+from service.submission.resolved import ResolvedConfig, ValidationPlan
 
 
 def find_dataset(engine: Engine, key: KeyInfo, ref: config.DatasetRef) -> dict[str, Any]:
@@ -65,26 +66,26 @@ def submit(
 
     dataset = find_dataset(engine, key, request.dataset)
     catalog = load_catalog()
-    document = config.resolve(request, dataset, catalog)
+    resolved = config.resolve(request, dataset, catalog)
     primary = policy_in_force(engine, dataset)["primary_metric"]
-    if primary not in document["metrics"]:
+    if primary not in resolved.metrics:
         # The verdict is decided on the policy's primary metric, so every submission computes it.
-        document["metrics"].append(primary)
-    config_fingerprint = config.config_fingerprint(document, dataset["fingerprint"])
+        resolved = replace(resolved, metrics=(*resolved.metrics, primary))
+    config_fingerprint = config.config_fingerprint(resolved, dataset["fingerprint"])
     same = submissions.find_by_config(engine, key.team, dataset["id"], config_fingerprint)
     if same is not None:
         # The same model, validation and data were already judged: answer with that submission, so a
         # resubmission recomputes nothing and spends no holdout budget.
         return same, False
-    check = dispatch.check_config_remote(redis, settings, document, dataset["id"])
-    _check_probability_metrics(document, check)
-    document["linear"] = catalog.is_linear(document["model"]["estimator"])
+    check = dispatch.check_config_remote(redis, settings, resolved.to_document(), dataset["id"])
+    _check_probability_metrics(resolved, check)
+    resolved = replace(resolved, linear=catalog.is_linear(resolved.model.estimator))
 
     sub_id = new_id("sub")
-    validation = document["validation"]
+    validation = resolved.validation
     row = {
         "id": sub_id, "team": key.team, "dataset_id": dataset["id"], "owner_key_id": key.id,
-        "label": request.label, "config": document,
+        "label": request.label, "config": resolved.to_document(),
         "config_fingerprint": config_fingerprint,
         "folds_total": len(dispatch.fold_cells(validation)),
         "idempotency_key": idempotency_key, "request_fingerprint": fingerprint,
@@ -113,7 +114,7 @@ def cancel(engine: Engine, redis: Redis, settings: Settings, key: KeyInfo, sub_i
     if not submissions.transition(engine, sub_id, "canceled", submissions.LIVE_STATES):
         raise Conflict(f"submission {sub_id} is already {row['state']}; only queued or running ones can be canceled")
     audit.record(engine, key.id, key.team, "submission.canceled", sub_id, {})
-    dispatch.cancel_jobs(redis, settings, sub_id, row["config"]["validation"])
+    dispatch.cancel_jobs(redis, settings, sub_id, ValidationPlan.from_document(row["config"]["validation"]))
     stored = submissions.get(engine, sub_id)
     assert stored is not None
     return stored
@@ -128,13 +129,13 @@ def _replay(earlier: dict[str, Any], fingerprint: str) -> dict[str, Any]:
     return earlier
 
 
-def _check_probability_metrics(document: dict[str, Any], check: dict[str, Any]) -> None:
+def _check_probability_metrics(resolved: ResolvedConfig, check: dict[str, Any]) -> None:
     if check.get("has_proba", True):
         return
     problems = [
         FieldProblem(f"/metrics/{i}", f"metric {name!r} needs predicted probabilities, which "
-                     f"{document['model']['estimator']} with these parameters does not give")
-        for i, name in enumerate(document["metrics"]) if METRICS[name].needs_proba
+                     f"{resolved.model.estimator} with these parameters does not give")
+        for i, name in enumerate(resolved.metrics) if METRICS[name].needs_proba
     ]
     if problems:
         raise ConfigRejected(problems[0].detail, problems)

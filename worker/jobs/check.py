@@ -20,6 +20,7 @@ from sklearn.utils._param_validation import InvalidParameterError
 from service.catalog import CatalogEntry, load_catalog
 from service.errors import FieldProblem
 from service.records import datasets
+from service.submission.resolved import ResolvedConfig, SearchSpec
 from worker.jobs.runtime import WorkerContext
 from worker.learning.pipeline import entry_for, make_instance
 
@@ -34,16 +35,16 @@ def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: 
     if datasets.get_internal(ctx.engine, dataset_id) is None:
         return _rejected([FieldProblem("/dataset", f"no dataset {dataset_id!r}")])
     catalog = load_catalog()
-    model = config_doc["model"]
+    config = ResolvedConfig.from_document(config_doc)
+    model = config.model
     problems: list[FieldProblem] = []
-    entry = entry_for(catalog, model["estimator"], "estimator")
-    estimator = checked_instance(entry, model.get("params") or {}, "/model/params", problems)
-    problems.extend(search_problems(entry, model.get("params") or {}, config_doc.get("search")))
-    for i, step in enumerate(model.get("preprocess") or []):
-        step_entry = entry_for(catalog, step["transformer"], "transformer")
-        transformer = checked_instance(step_entry, step.get("params") or {}, f"/model/preprocess/{i}/params",
-                                       problems)
-        width = output_width_problem(step_entry, transformer, len(step.get("columns") or []))
+    entry = entry_for(catalog, model.estimator, "estimator")
+    estimator = checked_instance(entry, model.params, "/model/params", problems)
+    problems.extend(search_problems(entry, model.params, config.search))
+    for i, step in enumerate(model.preprocess):
+        step_entry = entry_for(catalog, step.transformer, "transformer")
+        transformer = checked_instance(step_entry, step.params, f"/model/preprocess/{i}/params", problems)
+        width = output_width_problem(step_entry, transformer, len(step.columns))
         if width is not None:
             problems.append(FieldProblem(f"/model/preprocess/{i}/columns", width))
     if problems:
@@ -83,18 +84,18 @@ def checked_instance(
 
 
 def search_problems(
-    entry: CatalogEntry, params: Mapping[str, Any], search: Mapping[str, Any] | None
+    entry: CatalogEntry, params: Mapping[str, Any], search: SearchSpec | None
 ) -> list[FieldProblem]:
     """Validate every searched value as scikit-learn would (set on the estimator, then validated), and caps.
 
     Each value is checked together with the submission's fixed parameters, at a pointer naming its
     position: ``/search/grid/alpha/1``; a uniform / log_uniform range checks both bounds.
     """
-    if not search:
+    if search is None:
         return []
-    kind = "grid" if search.get("grid") is not None else "distributions"
+    kind, space = ("grid", search.grid) if search.grid is not None else ("distributions", search.distributions)
     problems: list[FieldProblem] = []
-    for name, spec in (search.get(kind) or {}).items():
+    for name, spec in (space or {}).items():
         base = f"/search/{kind}/{name}"
         if isinstance(spec, Mapping):
             ranges = [k for k in ("uniform", "log_uniform") if k in spec]
@@ -107,8 +108,8 @@ def search_problems(
                                              f"low > 0 for log_uniform), got {dict(spec)!r}"))
                 continue
             values, pointers = list(bounds), [f"{base}/{ranges[0]}/{i}" for i in range(2)]
-        elif isinstance(spec, list):
-            values, pointers = spec, [f"{base}/{i}" for i in range(len(spec))]
+        elif isinstance(spec, list | tuple):  # a grid's values are a tuple, a distribution's a JSON list
+            values, pointers = list(spec), [f"{base}/{i}" for i in range(len(spec))]
         else:
             problems.append(FieldProblem(base, f"searched values for {name!r} must be a list, got {spec!r}"))
             continue

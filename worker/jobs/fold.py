@@ -7,7 +7,7 @@ estimator's own message, so RQ retries are left for real crashes (a killed or lo
 from __future__ import annotations
 
 import time
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
@@ -16,6 +16,7 @@ from sklearn.base import BaseEstimator
 from sklearn.pipeline import Pipeline
 
 from service.records import submissions
+from service.submission.resolved import ResolvedConfig
 from service.vault.folds import Split
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 from worker.learning.curve import curve_points
@@ -34,17 +35,16 @@ def run_fold(ctx: WorkerContext, submission_id: str, repeat: int, fold: int) -> 
     sub, dataset = work.submission, work.dataset
     if sub["state"] == "queued":
         submissions.mark_running(ctx.engine, submission_id)  # once: the other folds read it running
-    config = sub["config"]
-    model_doc = config["model"]
-    data, keys = load_development(ctx.settings, dataset, model_doc["features"])
-    split = split_for(ctx.settings, dataset, config["validation"], keys, repeat, fold)
-    curve = config["validation"].get("learning_curve")
+    config = ResolvedConfig.from_document(sub["config"])
+    data, keys = load_development(ctx.settings, dataset, config.model.features)
+    split = split_for(ctx.settings, dataset, config.validation, keys, repeat, fold)
+    curve = config.validation.learning_curve
     # Learning-curve sizes count from the first split's training rows, as scikit-learn's do.
-    reference = len(split_for(ctx.settings, dataset, config["validation"], keys, repeat, 0).train) if curve else None
-    model = build_model(build_pipeline(model_doc, column_kinds(dataset)), config)
+    reference = len(split_for(ctx.settings, dataset, config.validation, keys, repeat, 0).train) if curve else None
+    model = build_model(build_pipeline(config.model, column_kinds(dataset)), config)
     outcome = evaluate_fold(
-        model, data, split, str(dataset["task"]), config["metrics"],
-        linear=bool(config.get("linear")), target=str(dataset["target"]),
+        model, data, split, str(dataset["task"]), config.metrics,
+        linear=bool(config.linear), target=str(dataset["target"]),
         curve=curve, config=config, curve_reference_rows=reference,
     )
     stored = submissions.record_fold(ctx.engine, submission_id, repeat, fold, **outcome)
@@ -54,7 +54,7 @@ def run_fold(ctx: WorkerContext, submission_id: str, repeat: int, fold: int) -> 
 
 def evaluate_fold(
     pipeline: BaseEstimator, data: DevelopmentData, split: Split, task: str, metrics: Sequence[str], *,
-    linear: bool, target: str, curve: Sequence[float] | None = None, config: Mapping[str, Any] | None = None,
+    linear: bool, target: str, curve: Sequence[float] | None = None, config: ResolvedConfig | None = None,
     curve_reference_rows: int | None = None,
 ) -> dict[str, Any]:
     """Fit on the split's train rows, score on its test rows; return the fold record's fields.
@@ -71,7 +71,7 @@ def evaluate_fold(
     X_scored, y_scored = rows_to_score(X_train, y_train, scored)
     model = pipeline
     if scored is not None and config is not None:
-        model = fit_in_place(pipeline, config["model"])  # X_train is this fold's own copy, never read again
+        model = fit_in_place(pipeline, config.model)  # X_train is this fold's own copy, never read again
     fields: dict[str, Any] = {
         "train_rows": len(split.train), "test_rows": len(split.test),
         "baseline_scores": baseline_scores(task, y_train, y_test, metrics),

@@ -19,6 +19,7 @@ from typing import Any
 
 from service.errors import SealBroken
 from service.records import submissions
+from service.submission.resolved import ResolvedConfig
 from service.vault import store
 from worker.jobs.losses import save_per_example
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
@@ -38,14 +39,14 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     if submissions.get_holdout(engine, submission_id) is not None:
         # Scored (or failed) in an earlier run; the verdict job finishes the submission.
         return {"submission_id": submission_id, "holdout": "already scored"}
-    config = sub["config"]
-    model_doc, metrics = config["model"], config["metrics"]
+    config = ResolvedConfig.from_document(sub["config"])
+    metrics = config.metrics
     kinds = column_kinds(dataset)
-    features = list(model_doc["features"])
+    features = list(config.model.features)
 
     data, _ = load_development(ctx.settings, dataset, features)
     # A search is refitted on every dev row; a plain pipeline may centre its private copy in place.
-    pipeline = fit_in_place(build_model(build_pipeline(model_doc, kinds), config), model_doc)
+    pipeline = fit_in_place(build_model(build_pipeline(config.model, kinds), config), config.model)
     try:
         started = time.perf_counter()
         pipeline.fit(data.features_of(), data.target_of())

@@ -24,6 +24,7 @@ import service
 from service.catalog import load_catalog
 from service.records import submissions
 from service.submission.dispatch import fold_cells
+from service.submission.resolved import ResolvedConfig, ValidationPlan
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 from worker.learning.fit_readings import curve_summary, fit_gap, search_summary
 from worker.learning.pipeline import baseline_description
@@ -42,10 +43,10 @@ def summarize(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     if isinstance(work, Skip):
         return work.answer
     sub, dataset = work.submission, work.dataset
-    config = sub["config"]
+    config = ResolvedConfig.from_document(sub["config"])
     rows = submissions.fold_rows(ctx.engine, submission_id)
-    document = summary_document(rows, fold_cells(config["validation"]), config["metrics"], str(dataset["task"]))
-    document["provenance"] = provenance(sub, dataset)
+    document = summary_document(rows, fold_cells(config.validation), config.metrics, str(dataset["task"]))
+    document["provenance"] = provenance(config.validation, str(sub["config_fingerprint"]), dataset)
     submissions.store_summary(ctx.engine, submission_id, document)
     ok = sum(1 for r in rows if r["status"] == "ok")
     if ok == 0:
@@ -141,14 +142,14 @@ def _sign_stable(values: Sequence[float | None]) -> bool | None:
     return len(signs) == 1 and 0.0 not in signs
 
 
-def provenance(sub: Mapping[str, Any], dataset: Mapping[str, Any]) -> dict[str, Any]:
+def provenance(validation: ValidationPlan, config_fingerprint: str, dataset: Mapping[str, Any]) -> dict[str, Any]:
     """Say what produced the result: data and configuration fingerprints, the fold plan, versions."""
-    validation = sub["config"]["validation"]
     return {
         "dataset_fingerprint": dataset["fingerprint"],
         "development_fingerprint": dataset["development_fingerprint"],
-        "config_fingerprint": sub["config_fingerprint"],
-        "fold_plan": {k: validation.get(k) for k in ("scheme", "folds", "seed", "repeats")},
+        "config_fingerprint": config_fingerprint,
+        "fold_plan": {"scheme": validation.scheme, "folds": validation.folds, "seed": validation.seed,
+                      "repeats": validation.repeats},
         "versions": {
             "sealfold": service.__version__, "python": platform.python_version(),
             "scikit-learn": sklearn.__version__, "numpy": np.__version__, "pandas": pd.__version__,

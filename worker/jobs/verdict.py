@@ -24,6 +24,7 @@ from service.gate.release import HoldoutScores, release
 from service.gate.verdict import CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV, ChampionFolds, PlanFacts, judge
 from service.records import reviews, submissions
 from service.records.engine import as_utc, utcnow
+from service.submission.resolved import ValidationPlan
 from worker.jobs.losses import load_per_example
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 
@@ -65,12 +66,12 @@ def judge_submission(ctx: WorkerContext, redis: Redis, submission_id: str) -> di
 
     champion_id = reviews.current_champion(engine, dataset["id"])
     champion = None if champion_id in (None, submission_id) else _champion(ctx, str(champion_id), metric)
-    validation = sub["config"]["validation"]
+    validation = ValidationPlan.from_document(sub["config"]["validation"])
     plan = PlanFacts(
-        key=(validation["scheme"], int(validation["folds"]), int(validation["seed"])),
+        key=_plan_key(validation),
         sizes={(r["repeat"], r["fold"]): (r["train_rows"], r["test_rows"]) for r in folds},
-        overridden=bool(validation.get("plan_overridden")),
-        test=FIVE_BY_TWO_CV if validation.get("test") == "5x2cv" else CORRECTED_RESAMPLED_T,
+        overridden=validation.plan_overridden,
+        test=FIVE_BY_TWO_CV if validation.test == "5x2cv" else CORRECTED_RESAMPLED_T,
         holdout_rows=int(dataset["rows_holdout"]),
     )
     holdout_value = raw["scores"].get(metric)
@@ -78,6 +79,12 @@ def judge_submission(ctx: WorkerContext, redis: Redis, submission_id: str) -> di
     reviews.store_verdict(engine, submission_id, verdict, version, None if champion is None else champion_id)
     submissions.transition(engine, submission_id, "succeeded", submissions.LIVE_STATES)
     return {"submission_id": submission_id, "decision": verdict["decision"]}
+
+
+def _plan_key(validation: ValidationPlan) -> tuple[str, int, int]:
+    """Return the fold plan as (scheme, folds, seed): equal keys mean identical splits per repeat."""
+    plan = validation.fold_plan()
+    return plan.scheme, plan.folds, plan.seed
 
 
 def _cells(folds: list[dict[str, Any]], column: str, metric: str) -> dict[Cell, float]:
@@ -89,11 +96,10 @@ def _champion(ctx: WorkerContext, champion_id: str, metric: str) -> ChampionFold
     champ = submissions.get(ctx.engine, champion_id)
     if champ is None:
         return None
-    validation = champ["config"]["validation"]
+    validation = ValidationPlan.from_document(champ["config"]["validation"])
     rows = [r for r in submissions.fold_rows(ctx.engine, champion_id) if r["status"] == "ok"]
     return ChampionFolds(
-        submission_id=champion_id, scores=_cells(rows, "scores", metric),
-        plan_key=(validation["scheme"], int(validation["folds"]), int(validation["seed"])),
+        submission_id=champion_id, scores=_cells(rows, "scores", metric), plan_key=_plan_key(validation),
     )
 
 

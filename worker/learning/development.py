@@ -19,9 +19,9 @@ import numpy as np
 import pandas as pd
 
 from service.settings import Settings
+from service.submission.resolved import ValidationPlan
 from service.vault import store
 from service.vault.folds import (
-    FoldPlan,
     Split,
     check_cell,
     check_plan_feasible,
@@ -137,11 +137,6 @@ def load_development(
     return DevelopmentData(tuple(features), y, None, matrix, positions), frame
 
 
-def fold_plan(validation: Mapping[str, Any]) -> FoldPlan:
-    """Return the fold plan of a configuration's ``validation`` part."""
-    return FoldPlan(scheme=str(validation["scheme"]), folds=int(validation["folds"]), seed=int(validation["seed"]))
-
-
 def column_selector(positions: Sequence[int]) -> slice | np.ndarray:
     """Select matrix columns by a slice when they are adjacent and in order, else by their positions."""
     start = positions[0] if positions else 0
@@ -168,7 +163,7 @@ def gather_rows(matrix: np.ndarray, rows: np.ndarray, columns: slice) -> np.ndar
 
 
 def split_for(
-    settings: Settings, dataset: Mapping[str, Any], validation: Mapping[str, Any], key_frame: pd.DataFrame,
+    settings: Settings, dataset: Mapping[str, Any], validation: ValidationPlan, key_frame: pd.DataFrame,
     repeat: int, fold: int,
 ) -> Split:
     """Return the one (repeat, fold) split of the configuration, as the vault's fold plan defines it.
@@ -178,8 +173,8 @@ def split_for(
     same assignment (at a million rows, computing it costs a fold job ~30 ms; reading it ~1 ms).
     The result equals ``fold_split`` on the same rows (a test checks).
     """
-    plan = fold_plan(validation)
-    repeats = int(validation.get("repeats", 1))
+    plan = validation.fold_plan()
+    repeats = validation.repeats
     check_repeats(plan, repeats)
     check_cell(plan, repeats, repeat, fold)
     assignment = store.load_fold_assignment(settings, str(dataset["id"]), plan, repeat, len(key_frame))

@@ -21,6 +21,7 @@ from sklearn.dummy import DummyClassifier, DummyRegressor
 from sklearn.pipeline import Pipeline
 
 from service.catalog import Catalog, CatalogEntry, load_catalog
+from service.submission.resolved import PreprocessStep, ResolvedModel
 
 PREPROCESS_STEP = "preprocess"
 MODEL_STEP = "model"
@@ -76,13 +77,13 @@ def from_json(cls: type[BaseEstimator], name: str, value: Any) -> Any:
 
 
 def build_pipeline(
-    model_doc: Mapping[str, Any], column_kinds: Mapping[str, str], catalog: Catalog | None = None
+    model: ResolvedModel, column_kinds: Mapping[str, str], catalog: Catalog | None = None
 ) -> Pipeline:
-    """Return the unfitted pipeline for the ``model`` part of a configuration document."""
+    """Return the unfitted pipeline for the model part of a resolved configuration."""
     catalog = catalog or load_catalog()
-    features = list(model_doc["features"])
-    estimator = make_instance(entry_for(catalog, model_doc["estimator"], "estimator"), model_doc.get("params") or {})
-    steps = model_doc.get("preprocess") or []
+    features = list(model.features)
+    estimator = make_instance(entry_for(catalog, model.estimator, "estimator"), model.params)
+    steps = model.preprocess
     by_name = uses_frame(features, column_kinds)
     if not steps and not by_name:
         return Pipeline([(MODEL_STEP, estimator)])
@@ -93,7 +94,7 @@ def build_pipeline(
 
 
 def build_preprocessing(
-    catalog: Catalog, steps: Sequence[Mapping[str, Any]], features: Sequence[str], by_name: bool
+    catalog: Catalog, steps: Sequence[PreprocessStep], features: Sequence[str], by_name: bool
 ) -> ColumnTransformer:
     """Return the ColumnTransformer for the preprocess steps; unnamed columns pass through.
 
@@ -102,14 +103,14 @@ def build_preprocessing(
     """
     chains: dict[tuple[str, ...], list[int]] = {}
     for i, step in enumerate(steps):
-        chains.setdefault(tuple(step["columns"]), []).append(i)
+        chains.setdefault(tuple(step.columns), []).append(i)
 
     position = {name: k for k, name in enumerate(features)}
     transformers: list[tuple[str, Any, list[Any]]] = []
     for columns, indices in chains.items():
         parts = [
-            (f"{steps[i]['transformer'].lower()}{i}",
-             make_instance(entry_for(catalog, steps[i]["transformer"], "transformer"), steps[i].get("params") or {}))
+            (f"{steps[i].transformer.lower()}{i}",
+             make_instance(entry_for(catalog, steps[i].transformer, "transformer"), steps[i].params))
             for i in indices
         ]
         selector: list[Any] = list(columns) if by_name else [position[c] for c in columns]
@@ -150,7 +151,7 @@ def baseline_description(task: str) -> dict[str, Any]:
     return {"estimator": name, "params": dict(params)}
 
 
-def fit_in_place(model: BaseEstimator, model_doc: Mapping[str, Any]) -> BaseEstimator:
+def fit_in_place(model: BaseEstimator, spec: ResolvedModel) -> BaseEstimator:
     """Return a copy of ``model`` whose final estimator may overwrite its training matrix (``copy_X=False``).
 
     Only for a fit whose input the service never reads again and that scikit-learn hands the
@@ -163,7 +164,7 @@ def fit_in_place(model: BaseEstimator, model_doc: Mapping[str, Any]) -> BaseEsti
     scores its own input). A nested search, an estimator without ``copy_X`` and a submission that
     set ``copy_X`` get ``model`` back unchanged.
     """
-    if not isinstance(model, Pipeline) or "copy_X" in (model_doc.get("params") or {}):
+    if not isinstance(model, Pipeline) or "copy_X" in spec.params:
         return model
     if "copy_X" not in model.named_steps[MODEL_STEP].get_params(deep=False):
         return model

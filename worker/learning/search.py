@@ -21,6 +21,7 @@ from sklearn.model_selection import GridSearchCV, KFold, RandomizedSearchCV, Str
 from sklearn.pipeline import Pipeline
 
 from service.catalog.metrics import METRICS
+from service.submission.resolved import ResolvedConfig
 from worker.learning.pipeline import MODEL_STEP, from_json
 from worker.learning.scoring import score_model
 
@@ -65,28 +66,30 @@ def distribution(spec: Any, cls: type[BaseEstimator], name: str) -> Any:
     return [from_json(cls, name, v) for v in spec]
 
 
-def build_model(pipeline: Pipeline, config: Mapping[str, Any]) -> BaseEstimator:
+def build_model(pipeline: Pipeline, config: ResolvedConfig) -> BaseEstimator:
     """Return the pipeline itself, or a search over its estimator's parameters when the config has one."""
-    search = config.get("search")
-    if not search:
+    search = config.search
+    if search is None:
         return pipeline
     cls = type(pipeline.named_steps[MODEL_STEP])
-    seed = int(config["validation"]["seed"])
-    cv = inner_cv(str(config["task"]), int(search["inner_folds"]), seed)
-    scoring = MetricScorer(str(config["metrics"][0]))
-    if search.get("grid") is not None:
-        grid = {PREFIX + k: [from_json(cls, k, v) for v in values] for k, values in search["grid"].items()}
+    seed = config.validation.seed
+    cv = inner_cv(config.task, search.inner_folds, seed)
+    scoring = MetricScorer(config.metrics[0])
+    if search.grid is not None:
+        grid = {PREFIX + k: [from_json(cls, k, v) for v in values] for k, values in search.grid.items()}
         return GridSearchCV(pipeline, grid, scoring=scoring, cv=cv, refit=True, error_score="raise")
-    space = {PREFIX + k: distribution(v, cls, k) for k, v in search["distributions"].items()}
-    return RandomizedSearchCV(pipeline, space, n_iter=int(search["n_iter"]), scoring=scoring, cv=cv,
+    if search.distributions is None or search.n_iter is None:
+        raise ValueError("a search takes a grid, or distributions with n_iter")
+    space = {PREFIX + k: distribution(v, cls, k) for k, v in search.distributions.items()}
+    return RandomizedSearchCV(pipeline, space, n_iter=search.n_iter, scoring=scoring, cv=cv,
                               refit=True, random_state=seed, error_score="raise")
 
 
-def search_record(model: BaseEstimator, config: Mapping[str, Any]) -> dict[str, Any] | None:
+def search_record(model: BaseEstimator, config: ResolvedConfig) -> dict[str, Any] | None:
     """Describe a fitted search: chosen parameters (unprefixed), best inner score in the metric's units."""
     if not isinstance(model, GridSearchCV | RandomizedSearchCV):
         return None
-    metric = str(config["metrics"][0])
+    metric = config.metrics[0]
     sign = 1.0 if METRICS[metric].greater_is_better else -1.0
     best = float(model.best_score_)
     return {

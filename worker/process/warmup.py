@@ -34,6 +34,7 @@ from service.catalog import load_catalog
 from service.catalog.metrics import METRICS
 from service.records import datasets, submissions
 from service.settings import Settings
+from service.submission.resolved import ResolvedModel, ValidationPlan
 from service.vault import store
 from service.vault.fingerprint import fingerprint_frame
 from service.vault.tables import column_kinds as kinds_of_frame
@@ -101,23 +102,24 @@ def _warm_jobs(settings: Settings) -> None:
     for task, target, scheme, models in MODELS:
         dataset = {"id": WARMUP_DATASET, "target": target, "task": task, "columns": kinds,
                    "group_column": None, "time_column": None, "fingerprint": "", "development_fingerprint": ""}
-        validation = {"scheme": scheme, "folds": 2, "seed": 0, "repeats": 1}
+        validation = ValidationPlan(scheme=scheme, folds=2, seed=0)
         metrics = [name for name, spec in METRICS.items() if spec.task == task]
         rows = []
         for model_doc in models:
-            data, keys = load_development(settings, dataset, model_doc["features"])
+            model = ResolvedModel.from_document(model_doc)
+            data, keys = load_development(settings, dataset, model.features)
             split = split_for(settings, dataset, validation, keys, 0, 0)
-            entry = catalog.estimator(model_doc["estimator"])
-            pipeline = build_pipeline(model_doc, column_kinds(dataset), catalog)
+            entry = catalog.estimator(model.estimator)
+            pipeline = build_pipeline(model, column_kinds(dataset), catalog)
             fields = evaluate_fold(pipeline, data, split, task, metrics, linear=bool(entry and entry.linear),
                                    target=target)
             rows.append({"repeat": 0, "fold": 0, **fields})
-            features = model_doc["features"]
+            features = list(model.features)
             X = model_frame(sealed, features, column_kinds(dataset)) if uses_frame(features, column_kinds(dataset)) \
                 else model_matrix(sealed, features)
             score_model(pipeline, X, sealed[target].to_numpy(), metrics)
         summary_document(rows, [(0, 0), (0, 1)], metrics, task)
-        provenance({"config": {"validation": validation}, "config_fingerprint": ""}, dataset)
+        provenance(validation, "", dataset)
     # The holdout and verdict jobs keep per-example values as .npz files (zipfile under numpy).
     kept = settings.data_dir / "per_example.npz"
     np.savez(kept, rmse=np.zeros(3))

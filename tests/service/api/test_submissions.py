@@ -15,6 +15,8 @@ from sklearn.model_selection import KFold
 from service.api.schemas import SubmissionSchema
 from service.records import reviews, submissions
 from service.submission import dispatch
+from service.submission.resolved import ResolvedConfig
+from service.vault.folds import FoldPlan
 from service.vault.store import load_development_frame
 from tests.support.api import count_submissions, submission_body
 
@@ -57,6 +59,27 @@ def test_submit_answers_202_with_location_and_the_document(
     assert sorted(jobs[dispatch.verdict_job_id(doc["id"])].dependency_ids) == [dispatch.holdout_job_id(doc["id"]),
                                                                                dispatch.summary_job_id(doc["id"])]
     assert api.get("submitter", reply.headers["Location"]).get_json() == doc
+
+
+def test_the_stored_configuration_is_the_resolved_document_and_reads_back_unchanged(
+    api: Api, dataset: dict[str, Any], submitted: dict[str, Any]
+) -> None:
+    # The config column's format, key for key, as rows already in records DBs hold it.
+    stored = submissions.get(api.engine, submitted["id"])
+    assert stored is not None
+    features = ["age", "bmi", "bp", "s5"]
+    expected = {
+        "model": {"estimator": "Ridge", "params": {"alpha": 1.0}, "features": features,
+                  "preprocess": [{"transformer": "StandardScaler", "columns": features, "params": {}}]},
+        "validation": {"scheme": "kfold", "folds": 5, "seed": dataset["fold_plan"]["seed"], "repeats": 1,
+                       "plan_overridden": False},
+        "metrics": ["rmse", "r2"], "search": None, "label": "ridge on four columns", "task": "regression",
+        "target": "target", "linear": True,
+    }
+    assert stored["config"] == expected and list(stored["config"]) == list(expected)
+    config = ResolvedConfig.from_document(stored["config"])
+    assert config.to_document() == stored["config"] and config.linear is True
+    assert config.validation.fold_plan() == FoldPlan.from_document(dataset["fold_plan"])
 
 
 def test_a_pinned_fingerprint_must_match(api: Api, dataset: dict[str, Any],

@@ -42,7 +42,7 @@ def _pointers(exc: pytest.ExceptionInfo[ConfigRejected]) -> dict[str, str]:
 
 def test_defaults_fill_features_metrics_and_plan() -> None:
     doc = resolve(_request(ModelSpec("Ridge", preprocess=(PreprocessStep("OneHotEncoder", ("depot",)),))),
-                  DATASET, load_catalog())
+                  DATASET, load_catalog()).to_document()
     assert doc["model"]["features"] == ["distance_km", "stops", "depot"]
     assert doc["metrics"] == ["rmse", "mae", "r2"]
     assert doc["validation"] == {"scheme": "kfold", "folds": 5, "seed": 42, "repeats": 1, "plan_overridden": False}
@@ -81,8 +81,8 @@ def test_steps_on_overlapping_columns_must_name_the_same_columns() -> None:
     assert "already in step 0 with other columns" in _pointers(exc)["/model/preprocess/1/columns/0"]
     chained = (PreprocessStep("SimpleImputer", ("distance_km", "stops")),
                PreprocessStep("StandardScaler", ("distance_km", "stops")), PreprocessStep("OneHotEncoder", ("depot",)))
-    doc = resolve(_request(ModelSpec("Ridge", preprocess=chained)), DATASET, load_catalog())
-    names = [s["transformer"] for s in doc["model"]["preprocess"]]
+    config = resolve(_request(ModelSpec("Ridge", preprocess=chained)), DATASET, load_catalog())
+    names = [s.transformer for s in config.model.preprocess]
     assert names == ["SimpleImputer", "StandardScaler", "OneHotEncoder"]
 
 
@@ -129,7 +129,8 @@ def test_search_caps_count_the_learning_curve_sizes() -> None:
 
     model = ModelSpec("Ridge", features=("distance_km",))
     grid = SearchSpec(grid={"alpha": tuple(float(a) for a in range(40))}, inner_folds=5)  # 40 x 5 x 5 = 1000 fits
-    assert resolve(_request(model, search=grid), DATASET, load_catalog())["search"]["inner_folds"] == 5
+    resolved = resolve(_request(model, search=grid), DATASET, load_catalog()).search
+    assert resolved is not None and resolved.inner_folds == 5
     with pytest.raises(ConfigRejected) as exc:
         resolve(_request(model, search=grid, validation=ValidationSpec(learning_curve=(0.25, 0.5, 1.0))),
                 DATASET, load_catalog())

@@ -29,6 +29,7 @@ from service.records.engine import utcnow
 from service.records.tables import submissions as submissions_table
 from service.settings import Settings
 from service.submission import dispatch
+from service.submission.resolved import ValidationPlan
 from tests.support.frames import diabetes_frame
 from tests.support.records import add_dataset_row
 
@@ -131,7 +132,8 @@ def test_the_reconciled_chain_is_the_chain_a_new_submission_gets(
     reconciled = queue_of(redis, settings).get_job_ids()
     chain = {i: waits_for(redis, i) for i in (f"{sub}-summary", f"{sub}-verdict")}
     fresh = dataclasses.replace(settings, queue_name=settings.queue_name + "-fresh")
-    dispatch.enqueue_submission(redis, fresh, sub, {"folds": 4, "repeats": 1})  # rewrites the same job ids
+    # A fresh enqueue rewrites the same job ids.
+    dispatch.enqueue_submission(redis, fresh, sub, ValidationPlan("kfold", folds=4, seed=0))
     assert queue_of(redis, fresh).get_job_ids() == reconciled and len(reconciled) == 5
     assert {i: waits_for(redis, i) for i in chain} == chain
 
@@ -180,7 +182,7 @@ def test_jobs_redis_still_holds_are_left_alone(
     records: Engine, redis: Redis, settings: Settings, dataset: dict[str, Any]
 ) -> None:
     sub = lost_submission(records, dataset, folds=3)
-    dispatch.enqueue_submission(redis, settings, sub, {"folds": 3, "repeats": 1})
+    dispatch.enqueue_submission(redis, settings, sub, ValidationPlan("kfold", folds=3, seed=0))
     queue = queue_of(redis, settings)
     before = queue.get_job_ids()
     assert dispatch.reconcile(records, redis, settings) == 0
@@ -192,7 +194,7 @@ def test_a_job_taken_by_a_worker_that_died_before_starting_it_is_put_back(
     records: Engine, redis: Redis, settings: Settings, dataset: dict[str, Any]
 ) -> None:
     sub = lost_submission(records, dataset, folds=3)
-    dispatch.enqueue_submission(redis, settings, sub, {"folds": 3, "repeats": 1})
+    dispatch.enqueue_submission(redis, settings, sub, ValidationPlan("kfold", folds=3, seed=0))
     queue = queue_of(redis, settings)
     # Taken off the queue, never started: the job hash still says "queued", but no list holds it.
     redis.lrem(queue.key, 0, f"{sub}-fold-0-1")

@@ -12,19 +12,20 @@ import pytest
 from sklearn.datasets import load_breast_cancer, load_diabetes
 from sklearn.model_selection import KFold, StratifiedKFold
 
+from service.submission.resolved import ValidationPlan
 from service.vault import store
 from service.vault.folds import FoldPlan
 from tests.support.worker_records import add_dataset
 from worker.jobs.runtime import WorkerContext
-from worker.learning.development import fold_plan, load_development, split_for
+from worker.learning.development import load_development, split_for
 
 
-def _splits(ctx: WorkerContext, dataset: dict[str, object], validation: dict[str, object],
+def _splits(ctx: WorkerContext, dataset: dict[str, object], validation: ValidationPlan,
             repeat: int = 0) -> list[tuple[np.ndarray, np.ndarray]]:
     features = [str(c["name"]) for c in dataset["columns"] if c["name"] != dataset["target"]]  # type: ignore[attr-defined, index]
     _data, keys = load_development(ctx.settings, dataset, features)
     out = []
-    for fold in range(int(validation["folds"])):  # type: ignore[call-overload]
+    for fold in range(validation.folds):
         split = split_for(ctx.settings, dataset, validation, keys, repeat, fold)
         out.append((split.train, split.test))
     return out
@@ -38,11 +39,11 @@ def test_cold_and_warm_cache_give_scikit_learns_folds(ctx: WorkerContext, task: 
     dev, hold = frame.iloc[:-40], frame.iloc[-40:]
     scheme = "kfold" if task == "regression" else "stratified"
     dataset = add_dataset(ctx, dev, hold, "target", task, scheme=scheme, folds=5, seed=11)
-    validation = {"scheme": scheme, "folds": 5, "seed": 11, "repeats": 2}
+    validation = ValidationPlan(scheme=scheme, folds=5, seed=11, repeats=2)
     splitter = KFold if task == "regression" else StratifiedKFold
     for repeat in (0, 1):  # repeat r uses seed + r
         expected = list(splitter(5, shuffle=True, random_state=11 + repeat).split(dev, dev["target"]))
-        path = store.fold_assignment_path(ctx.settings, dataset["id"], fold_plan(validation), repeat)
+        path = store.fold_assignment_path(ctx.settings, dataset["id"], validation.fold_plan(), repeat)
         assert not path.exists()
         cold = _splits(ctx, dataset, validation, repeat)
         assert path.is_file()  # the first job wrote it ...
@@ -56,7 +57,7 @@ def test_a_damaged_cache_is_ignored_and_rewritten(ctx: WorkerContext) -> None:
     frame: pd.DataFrame = load_diabetes(as_frame=True).frame
     dev, hold = frame.iloc[:-40], frame.iloc[-40:]
     dataset = add_dataset(ctx, dev, hold, "target", "regression", folds=4, seed=3)
-    validation = {"scheme": "kfold", "folds": 4, "seed": 3, "repeats": 1}
+    validation = ValidationPlan(scheme="kfold", folds=4, seed=3, repeats=1)
     expected = list(KFold(4, shuffle=True, random_state=3).split(dev))
     plan = FoldPlan("kfold", 4, 3)
     path = store.fold_assignment_path(ctx.settings, dataset["id"], plan, 0)

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -13,10 +15,16 @@ from sklearn.model_selection import cross_val_score
 from sklearn.pipeline import Pipeline, make_pipeline
 from sklearn.preprocessing import StandardScaler
 
+from service.submission.resolved import ResolvedModel
 from worker.jobs import runtime
 from worker.learning.pipeline import build_pipeline, fit_in_place, output_feature_names
 
 NUMERIC = {"a": "numeric", "b": "numeric", "c": "numeric"}
+
+
+def model_of(document: dict[str, Any]) -> ResolvedModel:
+    """The model part of a configuration, from its stored document."""
+    return ResolvedModel.from_document(document)
 
 
 def test_steps_on_the_same_columns_chain_in_order() -> None:
@@ -24,7 +32,7 @@ def test_steps_on_the_same_columns_chain_in_order() -> None:
         {"transformer": "SimpleImputer", "columns": ["c", "a"]},
         {"transformer": "StandardScaler", "columns": ["c", "a"]},
     ]}
-    pipeline = build_pipeline(model, NUMERIC)
+    pipeline = build_pipeline(model_of(model), NUMERIC)
     ct: ColumnTransformer = pipeline.named_steps["preprocess"]
     ((_name, chain, columns),) = ct.transformers
     assert isinstance(chain, Pipeline) and columns == [2, 0]  # numpy input: by position
@@ -40,7 +48,7 @@ def test_steps_on_the_same_columns_chain_in_order() -> None:
 def test_frames_select_columns_by_name() -> None:
     model = {"estimator": "Ridge", "features": ["depot", "a"], "params": {},
              "preprocess": [{"transformer": "OneHotEncoder", "columns": ["depot"]}]}
-    pipeline = build_pipeline(model, {"depot": "categorical", "a": "numeric"})
+    pipeline = build_pipeline(model_of(model), {"depot": "categorical", "a": "numeric"})
     ((_n, _t, columns),) = pipeline.named_steps["preprocess"].transformers
     assert columns == ["depot"]
     frame = pd.DataFrame({"depot": ["n", "s", "n", "e"], "a": [1.0, 2.0, 3.0, 4.0]})
@@ -49,17 +57,18 @@ def test_frames_select_columns_by_name() -> None:
 
 
 def test_forced_and_service_defaults() -> None:
-    forest = build_pipeline({"estimator": "RandomForestRegressor", "features": ["a"], "params": {"n_jobs": 8}},
-                            {"a": "numeric"}).named_steps["model"]
+    forest = build_pipeline(model_of({"estimator": "RandomForestRegressor", "features": ["a"],
+                                      "params": {"n_jobs": 8}}), {"a": "numeric"}).named_steps["model"]
     assert forest.n_jobs == 1 and forest.verbose == 0  # forced whatever the document says
     assert forest.random_state == 0  # service default: reproducible folds and refits
-    seeded = build_pipeline({"estimator": "RandomForestRegressor", "features": ["a"],
-                             "params": {"random_state": 9}}, {"a": "numeric"}).named_steps["model"]
+    seeded = build_pipeline(model_of({"estimator": "RandomForestRegressor", "features": ["a"],
+                                      "params": {"random_state": 9}}), {"a": "numeric"}).named_steps["model"]
     assert seeded.random_state == 9
 
 
 def test_numeric_input_without_steps_goes_straight_to_the_estimator() -> None:
-    pipeline = build_pipeline({"estimator": "Ridge", "features": ["c", "a"], "params": {"alpha": 3.0}}, NUMERIC)
+    pipeline = build_pipeline(model_of({"estimator": "Ridge", "features": ["c", "a"], "params": {"alpha": 3.0}}),
+                              NUMERIC)
     assert list(pipeline.named_steps) == ["model"]  # no pass-through ColumnTransformer copying the matrix
     X = np.array([[1.0, 5.0], [2.0, 6.0], [3.0, 8.0], [4.0, 9.0]])
     y = np.array([1.0, 2.0, 3.0, 5.0])
@@ -68,17 +77,18 @@ def test_numeric_input_without_steps_goes_straight_to_the_estimator() -> None:
     np.testing.assert_allclose(pipeline.predict(X), Ridge(alpha=3.0).fit(X, y).predict(X))
     assert output_feature_names(pipeline, ["c", "a"]) == ["c", "a"]
     # A frame keeps its ColumnTransformer, steps or not: the estimator still sees a numpy matrix.
-    framed = build_pipeline({"estimator": "Ridge", "features": ["d", "a"]}, {"d": "categorical", "a": "numeric"})
+    framed = build_pipeline(model_of({"estimator": "Ridge", "features": ["d", "a"]}),
+                            {"d": "categorical", "a": "numeric"})
     assert list(framed.named_steps) == ["preprocess", "model"]
 
 
 def test_a_name_outside_the_catalog_is_a_callers_error() -> None:
     # The API rejects it at its pointer first (tests/service/submission/test_config.py).
     with pytest.raises(LookupError, match=r"'os\.system' is not in the catalog"):
-        build_pipeline({"estimator": "os.system", "features": ["a"]}, {"a": "numeric"})
+        build_pipeline(model_of({"estimator": "os.system", "features": ["a"]}), {"a": "numeric"})
     with pytest.raises(LookupError, match="'Pickle' is not in the catalog"):
-        build_pipeline({"estimator": "Ridge", "features": ["a"], "preprocess": [{"transformer": "Pickle",
-                                                                                  "columns": ["a"]}]},
+        build_pipeline(model_of({"estimator": "Ridge", "features": ["a"],
+                                 "preprocess": [{"transformer": "Pickle", "columns": ["a"]}]}),
                        {"a": "numeric"})
 
 
@@ -86,13 +96,13 @@ def test_lasso_reference_value_from_the_documentation() -> None:
     # scikit-learn documentation of cross_val_score: Lasso() on diabetes X[:150], cv=3 ->
     # [0.3315057, 0.08022103, 0.03531816]. The catalog pipeline (no preprocessing) must agree.
     X, y = load_diabetes(return_X_y=True)
-    pipeline = build_pipeline({"estimator": "Lasso", "features": [f"x{i}" for i in range(10)]},
+    pipeline = build_pipeline(model_of({"estimator": "Lasso", "features": [f"x{i}" for i in range(10)]}),
                               {f"x{i}": "numeric" for i in range(10)})
     np.testing.assert_allclose(cross_val_score(pipeline, X[:150], y[:150], cv=3),
                                [0.3315057, 0.08022103, 0.03531816], atol=1e-7)
     np.testing.assert_allclose(cross_val_score(Ridge(), X[:150], y[:150], cv=3),
-                               cross_val_score(build_pipeline({"estimator": "Ridge",
-                                                               "features": [f"x{i}" for i in range(10)]},
+                               cross_val_score(build_pipeline(model_of({"estimator": "Ridge",
+                                                                        "features": [f"x{i}" for i in range(10)]}),
                                                               {f"x{i}": "numeric" for i in range(10)}),
                                                X[:150], y[:150], cv=3))
 
@@ -108,15 +118,15 @@ def test_json_lists_become_tuples_where_sklearn_wants_them() -> None:
         {"transformer": "MinMaxScaler", "columns": ["a"], "params": {"feature_range": [-1, 1]}},
         {"transformer": "PolynomialFeatures", "columns": ["b"], "params": {"degree": [2, 3]}},
     ]}
-    pipeline = build_pipeline(model, {"a": "numeric", "b": "numeric"})
+    pipeline = build_pipeline(model_of(model), {"a": "numeric", "b": "numeric"})
     X = np.array([[0.0, 1.0], [5.0, 2.0], [10.0, 3.0]])
     pipeline.fit(X, [1.0, 2.0, 3.0])
     scaled = pipeline.named_steps["preprocess"].transform(X)
     np.testing.assert_allclose(scaled[:, 0], [-1.0, 0.0, 1.0])
     assert output_feature_names(pipeline, ["a", "b"]) == ["a", "1", "b^2", "b^3"]  # bias column included
     # OneHotEncoder's categories is a list of lists, and stays one.
-    encoder = build_pipeline({"estimator": "Ridge", "features": ["d"], "preprocess": [
-        {"transformer": "OneHotEncoder", "columns": ["d"], "params": {"categories": [["x", "y"]]}}]},
+    encoder = build_pipeline(model_of({"estimator": "Ridge", "features": ["d"], "preprocess": [
+        {"transformer": "OneHotEncoder", "columns": ["d"], "params": {"categories": [["x", "y"]]}}]}),
         {"d": "categorical"}).named_steps["preprocess"].transformers[0][1]
     assert encoder.categories == [["x", "y"]]
 
@@ -127,8 +137,9 @@ def test_iris_linear_svc_reference_value() -> None:
     from sklearn.datasets import load_iris
 
     X, y = load_iris(return_X_y=True)
-    pipeline = build_pipeline({"estimator": "SVC", "features": [f"x{i}" for i in range(4)],
-                               "params": {"kernel": "linear", "C": 1}}, {f"x{i}": "numeric" for i in range(4)})
+    pipeline = build_pipeline(model_of({"estimator": "SVC", "features": [f"x{i}" for i in range(4)],
+                                        "params": {"kernel": "linear", "C": 1}}),
+                              {f"x{i}": "numeric" for i in range(4)})
     scores = cross_val_score(pipeline, X, y, cv=5)
     assert round(scores.mean(), 2) == 0.98 and round(scores.std(), 2) == 0.02
 
@@ -144,7 +155,7 @@ def test_a_fit_in_place_gives_the_same_model_to_the_last_bit(estimator: str, ste
     X, y = frame[features].to_numpy(), frame["target"].to_numpy()
     X.flags.writeable = False
     kinds = dict.fromkeys(features, "numeric")
-    doc = {"estimator": estimator, "features": features, "params": {}, "preprocess": steps}
+    doc = model_of({"estimator": estimator, "features": features, "params": {}, "preprocess": steps})
     copying = build_pipeline(doc, kinds).fit(X, y)
     in_place = fit_in_place(build_pipeline(doc, kinds), doc)
     assert in_place.named_steps["model"].get_params()["copy_X"] is False
@@ -155,7 +166,7 @@ def test_a_fit_in_place_gives_the_same_model_to_the_last_bit(estimator: str, ste
 
 
 def test_fit_in_place_respects_a_chosen_copy_x_and_models_without_one() -> None:
-    chosen = {"estimator": "Ridge", "features": ["a"], "params": {"copy_X": True}, "preprocess": []}
+    chosen = model_of({"estimator": "Ridge", "features": ["a"], "params": {"copy_X": True}, "preprocess": []})
     assert fit_in_place(build_pipeline(chosen, {"a": "numeric"}), chosen).named_steps["model"].copy_X is True
-    tree = {"estimator": "DecisionTreeRegressor", "features": ["a"], "params": {}, "preprocess": []}
+    tree = model_of({"estimator": "DecisionTreeRegressor", "features": ["a"], "params": {}, "preprocess": []})
     assert "copy_X" not in fit_in_place(build_pipeline(tree, {"a": "numeric"}), tree).named_steps["model"].get_params()
