@@ -27,7 +27,7 @@ from service.errors import Conflict, FieldProblem, InputError, NotFound, Unsuppo
 from service.gate import board
 from service.gate.policy import parse_policy
 from service.gate.review_state import policy_in_force
-from service.records import reviews, submissions
+from service.records import champions, policies, submissions
 
 blp = SealfoldBlueprint("reviews", __name__, url_prefix="/v1/datasets",
                         description="A dataset's review policy, champion and board.")
@@ -67,7 +67,7 @@ class PolicyItem(MethodView):
         dataset = team_dataset(caller, ds_id)
         document = parse_policy(_json_body(), str(dataset["task"])).to_document(0)
         del document["version"]  # the records assign it
-        version = reviews.put_policy(engine, dataset["id"], document, caller.id)
+        version = policies.put(engine, dataset["id"], document, caller.id)
         return json_response({"version": version, **document})
 
 
@@ -106,15 +106,15 @@ class ChampionItem(MethodView):
             raise Conflict(f"submission {sub_id} cannot be champion: {why}; only a submission whose verdict is "
                            "'pass' can be promoted",
                            [FieldProblem("/submission", "the submission's verdict is not 'pass'")])
-        if reviews.current_champion(engine, dataset["id"]) != sub_id:
-            reviews.promote(engine, dataset["id"], sub_id, caller.id)
+        if champions.current(engine, dataset["id"]) != sub_id:
+            champions.promote(engine, dataset["id"], sub_id, caller.id)
         return json_response(champion_state(dataset["id"]))
 
 
 def champion_state(dataset_id: str) -> dict[str, Any]:
     """The champion in force with its label and verdict, and every promotion newest first."""
     engine = service_context().engine
-    history = reviews.champion_history(engine, dataset_id)
+    history = champions.history(engine, dataset_id)
     champion = None
     if history:
         row = submissions.get(engine, history[0]["submission"])
@@ -138,7 +138,7 @@ class Board(MethodView):
         metric = str(policy["primary_metric"])
         order = board.BoardOrder(metric, bool(policy["greater_is_better"]))
         after = None if query["cursor"] is None else board.decode_cursor(query["cursor"], order)
-        champion = reviews.current_champion(engine, dataset["id"])
+        champion = champions.current(engine, dataset["id"])
         entries, cursor = board.board_page(engine, caller.team, dataset["id"], order, query["limit"], after,
                                            champion)
         return json_response({

@@ -1,4 +1,4 @@
-"""Submission records, their fold results and their one holdout score.
+"""Submission records: the submission row (state, summary, verdict), its fold results and its one holdout score.
 
 Lifecycle: ``queued`` -> ``running`` (first fold starts) -> ``succeeded`` | ``failed``; ``canceled``
 from either live state. Transitions are conditional updates, so two workers racing on one
@@ -114,6 +114,15 @@ def store_summary(engine: Engine, sub_id: str, result: dict[str, Any]) -> None:
         conn.execute(
             update(submissions).where(submissions.c.id == sub_id).values(result=result, updated_at=utcnow())
         )
+
+
+def store_verdict(
+    engine: Engine, sub_id: str, verdict: dict[str, Any], policy_version: int | None, champion_id: str | None,
+) -> None:
+    """Store the verdict of a submission with the policy version and champion it was judged against."""
+    with engine.begin() as conn:
+        conn.execute(update(submissions).where(submissions.c.id == sub_id).values(
+            verdict=verdict, policy_version=policy_version, champion_id=champion_id, updated_at=utcnow()))
 
 
 def record_fold(engine: Engine, sub_id: str, repeat: int, fold: int, **fields: Any) -> bool:

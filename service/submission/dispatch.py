@@ -10,7 +10,7 @@ Chain per submission::
 
     holdout (refit on every development row, score the seal exactly once) --+
     fold jobs (one per repeat x fold) --allow_failure--> summary (fan-in) --+--> verdict
-        (release the holdout figure, judge, mark succeeded)
+        (release the holdout figure, decide, mark succeeded)
 
 The holdout job depends on none of the folds (the refit on every development row does not need
 their results), so it is queued first: it is the longest job of the chain, and a longest-first
@@ -233,7 +233,7 @@ def _enqueue_holdout(queue: Queue, settings: Settings, sub_id: str) -> None:
 
 def _enqueue_verdict(queue: Queue, sub_id: str, depends_on: list[str]) -> None:
     queue.enqueue_call(
-        f"{JOB_MODULE}.judge", args=(sub_id,), job_id=verdict_job_id(sub_id),
+        f"{JOB_MODULE}.give_verdict", args=(sub_id,), job_id=verdict_job_id(sub_id),
         depends_on=Dependency(jobs=depends_on, allow_failure=True) if depends_on else None,
         timeout=600, result_ttl=RESULT_TTL, retry=_retry(), description=f"verdict of {sub_id}",
     )

@@ -1,6 +1,6 @@
-"""Judge a submission once its summary and holdout are stored: release the holdout figure, then decide.
+"""Give a submission its verdict once its summary and holdout are stored: release the holdout figure, then decide.
 
-The last job of the chain (folds -> summary, and the holdout beside them -> judge). It reads only
+The last job of the chain (folds -> summary, and the holdout beside them -> verdict). It reads only
 the records: fold rows, the stored summary and the raw holdout outcome the holdout job stored once.
 A holdout attempt that failed fails the submission here, after the summary, so the failed
 submission still carries its cross-validation result. The release is
@@ -22,7 +22,7 @@ from service.gate import review_state
 from service.gate.policy import Policy, parse_policy
 from service.gate.release import HoldoutScores, release
 from service.gate.verdict import CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV, ChampionFolds, PlanFacts, judge
-from service.records import datasets, reviews, submissions
+from service.records import champions, datasets, holdout_releases, submissions
 from service.records.engine import as_utc, utcnow
 from worker.jobs.losses import load_per_example
 from worker.jobs.runtime import WorkerContext, submission_to_work_on
@@ -31,7 +31,7 @@ Cell = tuple[int, int]
 _EPOCH = datetime(1970, 1, 1)
 
 
-def judge_submission(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[str, Any]:
+def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[str, Any]:
     """Release the holdout figure and store the verdict of one submission; idempotent."""
     engine = ctx.engine
     sub, skip = submission_to_work_on(ctx, submission_id)
@@ -62,10 +62,10 @@ def judge_submission(ctx: WorkerContext, redis: Redis, submission_id: str) -> di
     baseline = _cells(folds, "baseline_scores", metric)
 
     with redis.lock(f"sealfold:release:{dataset['id']}", timeout=120, blocking_timeout=60):
-        if reviews.get_release(engine, submission_id) is None:
+        if holdout_releases.get(engine, submission_id) is None:
             _release(ctx, sub, dataset, policy, raw["scores"], candidate, folds)
 
-    champion_id = reviews.current_champion(engine, dataset["id"])
+    champion_id = champions.current(engine, dataset["id"])
     champion = None if champion_id in (None, submission_id) else _champion(ctx, str(champion_id), metric)
     validation = sub["config"]["validation"]
     plan = PlanFacts(
@@ -77,7 +77,7 @@ def judge_submission(ctx: WorkerContext, redis: Redis, submission_id: str) -> di
     )
     holdout_value = raw["scores"].get(metric)
     verdict = judge(policy, candidate, baseline, champion, holdout_value, plan, policy_version=version)
-    reviews.store_verdict(engine, submission_id, verdict, version, None if champion is None else champion_id)
+    submissions.store_verdict(engine, submission_id, verdict, version, None if champion is None else champion_id)
     submissions.transition(engine, submission_id, "succeeded", submissions.LIVE_STATES)
     return {"submission_id": submission_id, "decision": verdict["decision"]}
 
@@ -105,9 +105,9 @@ def _release(
 ) -> None:
     engine = ctx.engine
     values = np.array(list(candidate.values()), dtype=float)
-    last = reviews.last_release(engine, dataset["id"])
+    last = holdout_releases.latest(engine, dataset["id"])
     state: dict[str, Any] = dict(last["state"]) if last else {}
-    mine = reviews.releases_since(engine, dataset["id"], _EPOCH, owner_key_id=sub["owner_key_id"])
+    mine = holdout_releases.list_since(engine, dataset["id"], _EPOCH, owner_key_id=sub["owner_key_id"])
     spent_at = [as_utc(r["released_at"]) or utcnow() for r in mine if r["spent"] > 0]
     holdout = HoldoutScores(
         submission_id=sub["id"],
@@ -123,7 +123,7 @@ def _release(
     # Fresh OS entropy for the noise of thresholdout: a seed anyone could know would undo the noise.
     outcome = release(policy, holdout, state=state, spent_at=spent_at, now=utcnow(),
                       rng=np.random.default_rng(), best_per_example=best)
-    reviews.record_release(engine, {
+    holdout_releases.record(engine, {
         "submission_id": sub["id"], "dataset_id": dataset["id"], "owner_key_id": sub["owner_key_id"],
         "mode": outcome.mode, "released": outcome.released, "spent": outcome.spent, "state": outcome.state,
         "withheld_until": outcome.withheld_until,

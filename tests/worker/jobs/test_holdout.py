@@ -23,7 +23,7 @@ from tests.support.worker_records import add_dataset, add_submission, config_doc
 from worker import jobs
 from worker.jobs import holdout
 from worker.jobs.runtime import WorkerContext
-from worker.jobs.verdict import judge_submission
+from worker.jobs.verdict import give_verdict
 
 METRICS = ["rmse", "mae", "r2"]
 
@@ -164,7 +164,7 @@ def test_holdout_errors_do_not_quote_holdout_values(ctx: WorkerContext, redis_ur
     # The holdout job runs beside the folds and ends nothing; the verdict job fails the submission,
     # which keeps its cross-validation result.
     assert submissions.get(ctx.engine, sub_id)["state"] == "running"  # type: ignore[index]
-    assert judge_submission(ctx, Redis.from_url(redis_url), sub_id)["holdout"] == "not scored"
+    assert give_verdict(ctx, Redis.from_url(redis_url), sub_id)["holdout"] == "not scored"
     sub = submissions.get(ctx.engine, sub_id)
     assert sub is not None and sub["state"] == "failed" and sub["result"] is not None
     assert "ValueError" in sub["error"] and "withheld" in sub["error"] and "secret-depot-7" not in sub["error"]
