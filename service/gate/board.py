@@ -72,8 +72,8 @@ def board_page(
     champion_id: str | None = None,
 ) -> tuple[list[dict[str, Any]], BoardCursor | None]:
     """Return one page of board entries and the cursor of the next page (None on the last page)."""
-    summary = submissions.c.result[("summary", order.metric)]
-    mean = submissions.c.result[("summary", order.metric, "mean")].as_float()
+    summary = submissions.c.cv_summary[("summary", order.metric)]
+    mean = submissions.c.cv_summary[("summary", order.metric, "mean")].as_float()
     released = holdout_releases.c.released[order.metric].as_float()
     query = (
         select(

@@ -108,11 +108,11 @@ def mark_running(engine: Engine, sub_id: str) -> None:
     transition(engine, sub_id, "running", ("queued",))
 
 
-def store_summary(engine: Engine, sub_id: str, result: dict[str, Any]) -> None:
+def store_summary(engine: Engine, sub_id: str, cv_summary: dict[str, Any]) -> None:
     """Store the cross-validation summary document (everything but the holdout score)."""
     with engine.begin() as conn:
         conn.execute(
-            update(submissions).where(submissions.c.id == sub_id).values(result=result, updated_at=utcnow())
+            update(submissions).where(submissions.c.id == sub_id).values(cv_summary=cv_summary, updated_at=utcnow())
         )
 
 

@@ -71,7 +71,7 @@ def gather(engine: Engine, row: dict[str, Any]) -> ReportFacts:
         dataset=dataset,
         submitter=owner.name if owner is not None and owner.name else row["owner_key_id"],
         folds=submissions.fold_rows(engine, row["id"]),
-        summary=row.get("result") or {},
+        summary=row.get("cv_summary") or {},
         verdict=verdict,
         primary_metric=primary,
         greater_is_better=bool(spec.greater_is_better) if spec is not None else bool(policy["greater_is_better"]),
@@ -91,7 +91,7 @@ def _champion(engine: Engine, row: dict[str, Any], metric: str) -> ChampionFacts
     champion = submissions.get(engine, champion_id)
     if champion is None:
         return None
-    mean = ((champion.get("result") or {}).get("summary") or {}).get(metric, {}).get("mean")
+    mean = ((champion.get("cv_summary") or {}).get("summary") or {}).get(metric, {}).get("mean")
     mine = {k: row["config"]["validation"].get(k) for k in _PLAN_KEYS}
     theirs = {k: champion["config"]["validation"].get(k) for k in _PLAN_KEYS}
     if mine != theirs:

@@ -186,11 +186,11 @@ def _reconcile_one(engine: Engine, live: set[str], queue: Queue, settings: Setti
             continue
         if job_id in live:
             live_folds.append(job_id)
-        elif sub["result"] is None:
+        elif sub["cv_summary"] is None:
             live_folds.append(_enqueue_fold(queue, settings, sub_id, r, f))
             enqueued += 1
     waits_for: list[str] = []
-    if sub["result"] is None:
+    if sub["cv_summary"] is None:
         if summary_job_id(sub_id) not in live:
             _enqueue_summary(queue, settings, sub_id, live_folds)
             enqueued += 1

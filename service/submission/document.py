@@ -39,7 +39,7 @@ def submission_document(engine: Engine, row: dict[str, Any]) -> dict[str, Any]:
 
 
 def _result(row: dict[str, Any], folds: list[dict[str, Any]], release: dict[str, Any] | None) -> dict[str, Any] | None:
-    summary = row["result"]
+    summary = row["cv_summary"]
     if summary is None and not folds:
         return None
     summary = summary or {}

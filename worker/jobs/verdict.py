@@ -40,7 +40,7 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
     if sub["verdict"] is not None:
         submissions.transition(engine, submission_id, "succeeded", submissions.LIVE_STATES)
         return {"submission_id": submission_id, "verdict": "already judged"}
-    if sub["result"] is None:
+    if sub["cv_summary"] is None:
         raise RuntimeError(f"submission {submission_id} has no cross-validation summary yet; "
                            "it is judged after the summary job")
     raw = submissions.get_holdout(engine, submission_id)

@@ -166,7 +166,7 @@ def test_holdout_errors_do_not_quote_holdout_values(ctx: WorkerContext, redis_ur
     assert submissions.get(ctx.engine, sub_id)["state"] == "running"  # type: ignore[index]
     assert give_verdict(ctx, Redis.from_url(redis_url), sub_id)["holdout"] == "not scored"
     sub = submissions.get(ctx.engine, sub_id)
-    assert sub is not None and sub["state"] == "failed" and sub["result"] is not None
+    assert sub is not None and sub["state"] == "failed" and sub["cv_summary"] is not None
     assert "ValueError" in sub["error"] and "withheld" in sub["error"] and "secret-depot-7" not in sub["error"]
 
 
