@@ -8,9 +8,9 @@ from __future__ import annotations
 
 from marshmallow import EXCLUDE, Schema, fields, validate
 
+from service.vocabulary import DECISIONS, RELEASE_MODES
+
 _DATETIME = {"format": "date-time"}
-DECISIONS = ("pass", "fail", "inconclusive")
-RELEASE_MODES = ("exact", "ladder", "thresholdout")
 
 
 class HoldoutGapSchema(Schema):

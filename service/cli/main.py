@@ -18,12 +18,12 @@ import sys
 from collections.abc import Sequence
 from typing import TYPE_CHECKING, Any
 
+from service.vocabulary import ROLES
+
 if TYPE_CHECKING:
     from sqlalchemy import Engine
 
     from service.cli.embedded import Stack, Supervisor
-
-ROLES = ("submitter", "steward", "admin")
 
 
 def _port(raw: str) -> int:

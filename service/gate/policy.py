@@ -31,8 +31,8 @@ from typing import Any
 
 from service.catalog.metrics import DEFAULT_METRICS, METRICS
 from service.errors import FieldProblem, InputError
+from service.vocabulary import RELEASE_MODES
 
-RELEASE_MODES = ("exact", "ladder", "thresholdout")
 UNIT_METRICS = frozenset({"rmse", "mae", "mse"})  # in the target's units (mse: squared)
 MAX_DIGITS, MAX_BUDGET, MAX_WINDOW_HOURS = 12, 10_000, 24.0 * 366
 

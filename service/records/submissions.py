@@ -16,9 +16,7 @@ from sqlalchemy.exc import IntegrityError
 from service.records import audit
 from service.records.engine import utcnow
 from service.records.tables import fold_results, holdout_scores, submissions
-
-LIVE_STATES: tuple[str, ...] = ("queued", "running")
-TERMINAL_STATES: tuple[str, ...] = ("succeeded", "failed", "canceled")
+from service.vocabulary import LIVE_STATES, TERMINAL_STATES
 
 
 def insert(engine: Engine, row: dict[str, Any]) -> None:

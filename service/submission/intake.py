@@ -25,6 +25,7 @@ from service.records import audit, datasets, submissions
 from service.records.keys import KeyInfo
 from service.settings import Settings
 from service.submission import config, dispatch
+from service.vocabulary import LIVE_STATES
 
 
 def find_dataset(engine: Engine, key: KeyInfo, ref: config.DatasetRef) -> dict[str, Any]:
@@ -109,7 +110,7 @@ def cancel(engine: Engine, redis: Redis, settings: Settings, key: KeyInfo, sub_i
         raise NotFound(f"no submission {sub_id!r} in team {key.team!r}")
     if row["owner_key_id"] != key.id and not key.can("steward"):
         raise Forbidden("only the submission's owner or a steward of its team may cancel it")
-    if not submissions.transition(engine, sub_id, "canceled", submissions.LIVE_STATES):
+    if not submissions.transition(engine, sub_id, "canceled", LIVE_STATES):
         raise Conflict(f"submission {sub_id} is already {row['state']}; only queued or running ones can be canceled")
     audit.record(engine, key.id, key.team, "submission.canceled", sub_id, {})
     dispatch.cancel_jobs(redis, settings, sub_id, row["config"]["validation"])

@@ -14,6 +14,7 @@ from sqlalchemy import Engine
 
 from service.ids import new_id
 from service.records import holdout_releases, submissions
+from service.vocabulary import LIVE_STATES
 from worker.jobs.summary import summary_document
 
 RAW_HOLDOUT = 987.654321  # stored as the raw holdout score; must never appear in any answer
@@ -86,5 +87,5 @@ def make_submission(
         doc = verdict_doc or verdict(str(decision), metric=metric, champion=champion_id)
         submissions.store_verdict(engine, sub_id, doc, doc.get("policy_version", 0), champion_id)
     if state != "running":
-        submissions.transition(engine, sub_id, state, submissions.LIVE_STATES)
+        submissions.transition(engine, sub_id, state, LIVE_STATES)
     return sub_id

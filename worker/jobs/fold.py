@@ -17,6 +17,7 @@ from sklearn.pipeline import Pipeline
 
 from service.records import datasets, submissions
 from service.vault.folds import Split
+from service.vocabulary import LIVE_STATES
 from worker.jobs.runtime import WorkerContext
 from worker.learning.curve import curve_points
 from worker.learning.development import DevelopmentData, column_kinds, load_development, split_for
@@ -30,7 +31,7 @@ def run_fold(ctx: WorkerContext, submission_id: str, repeat: int, fold: int) -> 
     sub = submissions.get(ctx.engine, submission_id)
     if sub is None:
         raise LookupError(f"no submission {submission_id!r} in the records DB")
-    if sub["state"] not in submissions.LIVE_STATES:
+    if sub["state"] not in LIVE_STATES:
         return {"submission_id": submission_id, "repeat": repeat, "fold": fold, "skipped": sub["state"]}
     if sub["state"] == "queued":
         submissions.mark_running(ctx.engine, submission_id)  # once: the other folds read it running

@@ -24,6 +24,7 @@ import service
 from service.catalog import load_catalog
 from service.records import datasets, submissions
 from service.submission.dispatch import fold_cells
+from service.vocabulary import LIVE_STATES
 from worker.jobs.runtime import WorkerContext
 from worker.learning.fit_readings import curve_summary, fit_gap, search_summary
 from worker.learning.pipeline import baseline_description
@@ -41,7 +42,7 @@ def summarize(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     sub = submissions.get(ctx.engine, submission_id)
     if sub is None:
         raise LookupError(f"no submission {submission_id!r} in the records DB")
-    if sub["state"] not in submissions.LIVE_STATES:
+    if sub["state"] not in LIVE_STATES:
         return {"submission_id": submission_id, "skipped": sub["state"]}
     dataset = datasets.get_internal(ctx.engine, sub["dataset_id"])
     if dataset is None:
@@ -54,7 +55,7 @@ def summarize(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     ok = sum(1 for r in rows if r["status"] == "ok")
     if ok == 0:
         first = document["failures"][0]["error"] if document["failures"] else "no fold produced a result"
-        submissions.transition(ctx.engine, submission_id, "failed", submissions.LIVE_STATES, error=first)
+        submissions.transition(ctx.engine, submission_id, "failed", LIVE_STATES, error=first)
     return {"submission_id": submission_id, "folds_ok": ok, "folds_failed": len(document["failures"])}
 
 

@@ -24,6 +24,7 @@ from service.gate.release import HoldoutScores, release
 from service.gate.verdict import CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV, ChampionFolds, PlanFacts, judge
 from service.records import champions, datasets, holdout_releases, submissions
 from service.records.engine import as_utc, utcnow
+from service.vocabulary import LIVE_STATES
 from worker.jobs.losses import load_per_example
 from worker.jobs.runtime import WorkerContext, submission_to_work_on
 
@@ -38,7 +39,7 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
     if sub is None:
         return skip
     if sub["verdict"] is not None:
-        submissions.transition(engine, submission_id, "succeeded", submissions.LIVE_STATES)
+        submissions.transition(engine, submission_id, "succeeded", LIVE_STATES)
         return {"submission_id": submission_id, "verdict": "already judged"}
     if sub["cv_summary"] is None:
         raise RuntimeError(f"submission {submission_id} has no cross-validation summary yet; "
@@ -47,7 +48,7 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
     if raw is None:
         raise RuntimeError(f"submission {submission_id} has no holdout score yet; it is judged after the holdout job")
     if raw.get("error"):
-        submissions.transition(engine, submission_id, "failed", submissions.LIVE_STATES, error=str(raw["error"]))
+        submissions.transition(engine, submission_id, "failed", LIVE_STATES, error=str(raw["error"]))
         return {"submission_id": submission_id, "decision": None, "holdout": "not scored"}
     dataset = datasets.get_internal(engine, sub["dataset_id"])
     if dataset is None:
@@ -78,7 +79,7 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
     holdout_value = raw["scores"].get(metric)
     verdict = judge(policy, candidate, baseline, champion, holdout_value, plan, policy_version=version)
     submissions.store_verdict(engine, submission_id, verdict, version, None if champion is None else champion_id)
-    submissions.transition(engine, submission_id, "succeeded", submissions.LIVE_STATES)
+    submissions.transition(engine, submission_id, "succeeded", LIVE_STATES)
     return {"submission_id": submission_id, "decision": verdict["decision"]}
 
 

@@ -16,6 +16,7 @@ from service.api.schemas import SubmissionSchema
 from service.records import holdout_releases, submissions
 from service.submission import dispatch
 from service.vault.store import load_development_frame
+from service.vocabulary import LIVE_STATES
 from tests.support.api import count_submissions, submission_body
 
 if TYPE_CHECKING:
@@ -224,7 +225,7 @@ def test_a_finished_submission_has_the_documented_shape(api: Api, submitted: dic
         "submission_id": sub_id, "dataset_id": submitted["dataset"], "owner_key_id": row_owner(api, sub_id),
         "mode": "exact", "released": {"rmse": 56.5, "r2": 0.471}, "spent": 1, "state": {"secret": 0.123},
         "withheld_until": None})
-    submissions.transition(api.engine, sub_id, "succeeded", submissions.LIVE_STATES)
+    submissions.transition(api.engine, sub_id, "succeeded", LIVE_STATES)
     reply = api.get("submitter", path, headers={"If-None-Match": etag})
     assert reply.status_code == 200 and reply.headers["ETag"] != etag
     doc = reply.get_json()

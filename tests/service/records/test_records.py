@@ -11,6 +11,7 @@ from sqlalchemy import Engine
 from service.records import datasets, keys, submissions
 from service.records.engine import make_engine, utcnow
 from service.settings import Settings
+from service.vocabulary import LIVE_STATES
 from tests.support.servers import postgres_database
 
 
@@ -106,7 +107,7 @@ def test_state_transitions_never_go_backwards(engine: Engine) -> None:
     submissions.mark_running(engine, sub_id)
     assert submissions.transition(engine, sub_id, "succeeded", ("running",))
     submissions.mark_running(engine, sub_id)
-    assert not submissions.transition(engine, sub_id, "canceled", submissions.LIVE_STATES)
+    assert not submissions.transition(engine, sub_id, "canceled", LIVE_STATES)
     row = submissions.get(engine, sub_id)
     assert row is not None and row["state"] == "succeeded" and row["finished_at"] is not None
 

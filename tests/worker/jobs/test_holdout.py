@@ -19,6 +19,7 @@ from service.errors import SealBroken
 from service.records import submissions
 from service.records.tables import holdout_scores
 from service.vault import store
+from service.vocabulary import LIVE_STATES
 from tests.support.worker_records import add_dataset, add_submission, config_document
 from worker import jobs
 from worker.jobs import holdout
@@ -191,6 +192,6 @@ def test_a_refit_that_fails_before_the_folds_finish_leaves_the_folds_message(ctx
 
 def test_canceled_submission_is_not_scored(ctx: WorkerContext) -> None:
     sub_id, _ = prepared(ctx)
-    submissions.transition(ctx.engine, sub_id, "canceled", submissions.LIVE_STATES)
+    submissions.transition(ctx.engine, sub_id, "canceled", LIVE_STATES)
     assert jobs.score_holdout(sub_id) == {"submission_id": sub_id, "skipped": "canceled"}
     assert submissions.get_holdout(ctx.engine, sub_id) is None
