@@ -13,6 +13,7 @@ from flask import Response, request
 from flask.views import MethodView
 from werkzeug.exceptions import BadRequest
 
+from service import team_scope
 from service.api import SealfoldBlueprint, json_response, service_context
 from service.api.auth import current_key, team_dataset
 from service.api.review_schemas import (
@@ -23,7 +24,7 @@ from service.api.review_schemas import (
     PolicyBodySchema,
     PolicySchema,
 )
-from service.errors import Conflict, FieldProblem, InputError, NotFound, UnsupportedFormat, field_error
+from service.errors import Conflict, FieldProblem, InputError, UnsupportedFormat, field_error
 from service.gate import board
 from service.gate.policy import parse_policy
 from service.gate.review_state import policy_in_force
@@ -93,9 +94,7 @@ class ChampionItem(MethodView):
         caller, engine = current_key(), service_context().engine
         dataset = team_dataset(caller, ds_id)
         sub_id = body["submission"]
-        row = submissions.get(engine, sub_id)
-        if row is None or row["team"] != caller.team:
-            raise field_error(NotFound, "/submission", f"no submission {sub_id!r} in team {caller.team!r}")
+        row = team_scope.team_submission(engine, caller, sub_id, pointer="/submission")
         if row["dataset_id"] != dataset["id"]:
             raise field_error(InputError, "/submission", f"submission {sub_id} is on dataset {row['dataset_id']}, "
                               f"not {dataset['id']}; a champion must be a submission of this dataset")
@@ -139,8 +138,7 @@ class Board(MethodView):
         order = board.BoardOrder(metric, bool(policy["greater_is_better"]))
         after = None if query["cursor"] is None else board.decode_cursor(query["cursor"], order)
         champion = champions.current(engine, dataset["id"])
-        entries, cursor = board.board_page(engine, caller.team, dataset["id"], order, query["limit"], after,
-                                           champion)
+        entries, cursor = board.board_page(engine, dataset, order, query["limit"], after, champion)
         return json_response({
             "dataset": dataset["id"], "primary_metric": metric, "greater_is_better": order.greater_is_better,
             "policy_version": policy["version"], "champion": champion, "entries": entries,
