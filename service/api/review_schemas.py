@@ -1,4 +1,4 @@
-"""Schemas of the review-gate surface: policy, champion, board (documentation; bodies per contract).
+"""Schemas of the review-gate surface: policy, champion, board (documentation; the core checks the bodies).
 
 The policy body is judged by ``service.gate.policy.parse_policy`` (one place for its rules, with JSON
 pointers in its errors); these schemas describe it for the OpenAPI document and check nothing.

@@ -81,7 +81,7 @@ class Policy:
     release: ReleaseParams = ReleaseParams()
 
     def to_document(self, version: int) -> dict[str, Any]:
-        """Return the policy document of contracts3 (``version`` 0 = the task default)."""
+        """Return the policy document ``GET /v1/datasets/{id}/policy`` serves (``version`` 0 = the task default)."""
         r = self.release
         return {
             "version": version, "primary_metric": self.primary_metric, "greater_is_better": self.greater_is_better,

@@ -22,7 +22,7 @@ RAW_HOLDOUT = 987.654321  # stored as the raw holdout score; must never appear i
 
 def verdict(decision: str, *, metric: str = "rmse", reasons: Sequence[str] | None = None,
             champion: str | None = None, policy_version: int = 0) -> dict[str, Any]:
-    """A verdict document of contracts3 with one rule per reason."""
+    """A verdict document (``result.verdict``) with one rule per reason."""
     reasons = list(reasons or [f"the model {'beats' if decision == 'pass' else 'does not beat'} the baseline"])
     return {
         "decision": decision, "reasons": reasons,
