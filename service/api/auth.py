@@ -1,7 +1,7 @@
 """Who is calling, what their role allows, and which records their team may see.
 
-Records of another team answer 404 exactly like ids that do not exist, so a key can never learn
-whether some other team's dataset or submission id is real.
+The team check itself is ``service.team_scope``'s: records of another team answer 404 exactly like
+ids that do not exist. These helpers only bring the request's engine and shape the dataset view.
 """
 
 from __future__ import annotations
@@ -10,10 +10,11 @@ from typing import Any
 
 from flask import g, request
 
+from service import team_scope
 from service.api import service_context
 from service.api.problems import InvalidToken
-from service.errors import Forbidden, NotFound, Unauthenticated
-from service.records import datasets, keys, submissions
+from service.errors import Forbidden, Unauthenticated
+from service.records import datasets, keys
 from service.records.keys import KeyInfo
 
 _SCHEME = "bearer"
@@ -48,15 +49,9 @@ def require(role: str) -> KeyInfo:
 
 def team_dataset(caller: KeyInfo, ds_id: str) -> dict[str, Any]:
     """Return the record of one of the caller's team's datasets as the caller's role may read it, else 404."""
-    record = datasets.get(service_context().engine, ds_id, role=caller.role)
-    if record is None or record["team"] != caller.team:
-        raise NotFound(f"no dataset {ds_id!r} in team {caller.team!r}")
-    return record
+    return datasets.public_view(team_scope.team_dataset(service_context().engine, caller, ds_id), caller.role)
 
 
 def team_submission(caller: KeyInfo, sub_id: str) -> dict[str, Any]:
     """Return the row of one of the caller's team's submissions, else 404."""
-    row = submissions.get(service_context().engine, sub_id)
-    if row is None or row["team"] != caller.team:
-        raise NotFound(f"no submission {sub_id!r} in team {caller.team!r}")
-    return row
+    return team_scope.team_submission(service_context().engine, caller, sub_id)

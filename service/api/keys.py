@@ -11,10 +11,11 @@ from typing import Any
 from flask import Response
 from flask.views import MethodView
 
+from service import team_scope
 from service.api import SealfoldBlueprint, json_response, service_context
 from service.api.auth import current_key
 from service.api.schemas import KeyCreatedSchema, KeyCreateSchema
-from service.errors import Forbidden, NotFound
+from service.errors import Forbidden
 from service.records import audit, keys
 
 blp = SealfoldBlueprint("keys", __name__, url_prefix="/v1/keys", description="Manage API keys (admin).")
@@ -47,9 +48,7 @@ class KeyItem(MethodView):
     def delete(self, key_id: str) -> Response:
         """Revoke a key; requests with its token are refused from now on."""
         caller, engine = current_key(), service_context().engine
-        info = keys.get_key(engine, key_id)
-        if info is None or info.team != caller.team:
-            raise NotFound(f"no key {key_id!r} in team {caller.team!r}")
+        team_scope.team_key(engine, caller, key_id)
         keys.revoke(engine, key_id)
         audit.record(engine, caller.id, caller.team, "key.revoked", key_id, {})
         return Response(status=204)

@@ -18,6 +18,7 @@ from service.api import SealfoldBlueprint, json_response, service_context
 from service.api.schemas import HealthSchema, ReadinessSchema
 from service.errors import Unavailable
 from service.records import submissions
+from service.vocabulary import STATES
 
 blp = SealfoldBlueprint("operations", __name__, description="Liveness, readiness and metrics (no key needed).")
 _OPEN: dict[str, list[object]] = {"security": []}
@@ -93,7 +94,7 @@ def metrics() -> Response:
         "# TYPE sealfold_submissions gauge",
     ]
     by_state = submissions.count_by_state(ctx.engine)
-    for state in sorted(set(by_state) | {"queued", "running", "succeeded", "failed", "canceled"}):
+    for state in sorted(set(by_state) | set(STATES)):
         lines.append(f'sealfold_submissions{{state="{state}"}} {by_state.get(state, 0)}')
     lines += [
         "# HELP sealfold_http_requests_total Requests answered by this API process.",

@@ -1,4 +1,4 @@
-"""Schemas of the review-gate surface: policy, champion, board (documentation; bodies per contract).
+"""Schemas of the review-gate surface: policy, champion, board (documentation; the core checks the bodies).
 
 The policy body is judged by ``service.gate.policy.parse_policy`` (one place for its rules, with JSON
 pointers in its errors); these schemas describe it for the OpenAPI document and check nothing.
@@ -8,9 +8,9 @@ from __future__ import annotations
 
 from marshmallow import EXCLUDE, Schema, fields, validate
 
+from service.vocabulary import DECISIONS, RELEASE_MODES
+
 _DATETIME = {"format": "date-time"}
-DECISIONS = ("pass", "fail", "inconclusive")
-RELEASE_MODES = ("exact", "ladder", "thresholdout")
 
 
 class HoldoutGapSchema(Schema):

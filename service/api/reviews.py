@@ -13,6 +13,7 @@ from flask import Response, request
 from flask.views import MethodView
 from werkzeug.exceptions import BadRequest
 
+from service import team_scope
 from service.api import SealfoldBlueprint, json_response, service_context
 from service.api.auth import current_key, team_dataset
 from service.api.review_schemas import (
@@ -23,11 +24,11 @@ from service.api.review_schemas import (
     PolicyBodySchema,
     PolicySchema,
 )
-from service.errors import Conflict, FieldProblem, InputError, NotFound, UnsupportedFormat, field_error
+from service.errors import Conflict, FieldProblem, InputError, UnsupportedFormat, field_error
 from service.gate import board
 from service.gate.policy import parse_policy
 from service.gate.review_state import policy_in_force
-from service.records import reviews, submissions
+from service.records import champions, policies, submissions
 
 blp = SealfoldBlueprint("reviews", __name__, url_prefix="/v1/datasets",
                         description="A dataset's review policy, champion and board.")
@@ -67,7 +68,7 @@ class PolicyItem(MethodView):
         dataset = team_dataset(caller, ds_id)
         document = parse_policy(_json_body(), str(dataset["task"])).to_document(0)
         del document["version"]  # the records assign it
-        version = reviews.put_policy(engine, dataset["id"], document, caller.id)
+        version = policies.put(engine, dataset["id"], document, caller.id)
         return json_response({"version": version, **document})
 
 
@@ -93,9 +94,7 @@ class ChampionItem(MethodView):
         caller, engine = current_key(), service_context().engine
         dataset = team_dataset(caller, ds_id)
         sub_id = body["submission"]
-        row = submissions.get(engine, sub_id)
-        if row is None or row["team"] != caller.team:
-            raise field_error(NotFound, "/submission", f"no submission {sub_id!r} in team {caller.team!r}")
+        row = team_scope.team_submission(engine, caller, sub_id, pointer="/submission")
         if row["dataset_id"] != dataset["id"]:
             raise field_error(InputError, "/submission", f"submission {sub_id} is on dataset {row['dataset_id']}, "
                               f"not {dataset['id']}; a champion must be a submission of this dataset")
@@ -106,15 +105,15 @@ class ChampionItem(MethodView):
             raise Conflict(f"submission {sub_id} cannot be champion: {why}; only a submission whose verdict is "
                            "'pass' can be promoted",
                            [FieldProblem("/submission", "the submission's verdict is not 'pass'")])
-        if reviews.current_champion(engine, dataset["id"]) != sub_id:
-            reviews.promote(engine, dataset["id"], sub_id, caller.id)
+        if champions.current(engine, dataset["id"]) != sub_id:
+            champions.promote(engine, dataset["id"], sub_id, caller.id)
         return json_response(champion_state(dataset["id"]))
 
 
 def champion_state(dataset_id: str) -> dict[str, Any]:
     """The champion in force with its label and verdict, and every promotion newest first."""
     engine = service_context().engine
-    history = reviews.champion_history(engine, dataset_id)
+    history = champions.history(engine, dataset_id)
     champion = None
     if history:
         row = submissions.get(engine, history[0]["submission"])
@@ -138,9 +137,8 @@ class Board(MethodView):
         metric = str(policy["primary_metric"])
         order = board.BoardOrder(metric, bool(policy["greater_is_better"]))
         after = None if query["cursor"] is None else board.decode_cursor(query["cursor"], order)
-        champion = reviews.current_champion(engine, dataset["id"])
-        entries, cursor = board.board_page(engine, caller.team, dataset["id"], order, query["limit"], after,
-                                           champion)
+        champion = champions.current(engine, dataset["id"])
+        entries, cursor = board.board_page(engine, dataset, order, query["limit"], after, champion)
         return json_response({
             "dataset": dataset["id"], "primary_metric": metric, "greater_is_better": order.greater_is_better,
             "policy_version": policy["version"], "champion": champion, "entries": entries,

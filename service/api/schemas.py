@@ -13,7 +13,6 @@ from typing import Any
 
 from marshmallow import EXCLUDE, Schema, ValidationError, fields, post_load, pre_load, validate, validates_schema
 
-from service.records.keys import ROLES
 from service.submission.config import (
     LEARNING_CURVE_DEFAULT,
     MAX_CANDIDATES,
@@ -28,10 +27,9 @@ from service.submission.config import (
     ValidationSpec,
 )
 from service.vault import folds as fold_plans
+from service.vault.sealing import HOLDOUT_SCHEMES
+from service.vocabulary import DECISIONS, RELEASE_MODES, ROLES, RULE_OUTCOMES, STATES, TASKS
 
-TASKS = ("regression", "classification")
-HOLDOUT_SCHEMES = ("random", "stratified", "group", "time")
-STATES = ("queued", "running", "succeeded", "failed", "canceled")
 _DATETIME = {"format": "date-time"}
 
 
@@ -416,7 +414,7 @@ class HoldoutResultSchema(Schema):
     """Only what the release policy released, once: never the raw score, rows or predictions."""
 
     released = fields.Boolean()
-    mode = fields.String(allow_none=True, validate=validate.OneOf(("exact", "ladder", "thresholdout")),
+    mode = fields.String(allow_none=True, validate=validate.OneOf(RELEASE_MODES),
                          metadata={"description": "null until the holdout job ran"})
     scores = fields.Dict(keys=fields.String(), values=fields.Float(), allow_none=True)
     withheld_until = fields.String(allow_none=True, metadata={
@@ -426,13 +424,13 @@ class HoldoutResultSchema(Schema):
 
 class VerdictRuleSchema(Schema):
     rule = fields.String(validate=validate.OneOf(("baseline", "bar", "champion", "holdout_gap", "fold_stability")))
-    outcome = fields.String(validate=validate.OneOf(("pass", "fail", "inconclusive", "skipped")))
+    outcome = fields.String(validate=validate.OneOf(RULE_OUTCOMES))
     sentence = fields.String()
     figures = fields.Dict()
 
 
 class VerdictSchema(Schema):
-    decision = fields.String(validate=validate.OneOf(("pass", "fail", "inconclusive")))
+    decision = fields.String(validate=validate.OneOf(DECISIONS))
     reasons = fields.List(fields.String(), metadata={"description": "one sentence per rule, failures first"})
     rules = fields.List(fields.Nested(VerdictRuleSchema))
     primary_metric = fields.String()

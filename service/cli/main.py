@@ -18,13 +18,13 @@ import sys
 from collections.abc import Sequence
 from typing import TYPE_CHECKING, Any
 
+from service.vocabulary import ROLES
+
 if TYPE_CHECKING:
     from sqlalchemy import Engine
 
     from service.cli.embedded import Stack
     from service.cli.supervisor import Supervisor
-
-ROLES = ("submitter", "steward", "admin")
 
 
 def _port(raw: str) -> int:

@@ -27,8 +27,8 @@ from service.cli.client import (
     ServiceClient,
     Trouble,
 )
+from service.vocabulary import TERMINAL_STATES
 
-FINISHED = ("succeeded", "failed", "canceled")
 _BAR_WIDTH = 24
 _PLAIN = {c: " " for c in [*range(0x00, 0x20), *range(0x7F, 0xA0)]}  # no terminal control codes
 
@@ -111,7 +111,7 @@ def is_finished(document: dict[str, Any]) -> bool:
     state = document.get("state")
     if state == "succeeded":
         return bool((document.get("result") or {}).get("verdict"))
-    return state in FINISHED
+    return state in TERMINAL_STATES
 
 
 def outcome_code(document: dict[str, Any]) -> int:

@@ -68,12 +68,15 @@ def decode_cursor(text: str, order: BoardOrder) -> BoardCursor:
 
 
 def board_page(
-    engine: Engine, team: str, dataset_id: str, order: BoardOrder, limit: int, after: BoardCursor | None = None,
+    engine: Engine, dataset: dict[str, Any], order: BoardOrder, limit: int, after: BoardCursor | None = None,
     champion_id: str | None = None,
 ) -> tuple[list[dict[str, Any]], BoardCursor | None]:
-    """Return one page of board entries and the cursor of the next page (None on the last page)."""
-    summary = submissions.c.result[("summary", order.metric)]
-    mean = submissions.c.result[("summary", order.metric, "mean")].as_float()
+    """Return one page of board entries and the cursor of the next page (None on the last page).
+
+    ``dataset`` is the caller's team's dataset as ``service.team_scope.team_dataset`` returned it.
+    """
+    summary = submissions.c.cv_summary[("summary", order.metric)]
+    mean = submissions.c.cv_summary[("summary", order.metric, "mean")].as_float()
     released = holdout_releases.c.released[order.metric].as_float()
     query = (
         select(
@@ -86,7 +89,7 @@ def board_page(
         .select_from(submissions)
         .outerjoin(holdout_releases, holdout_releases.c.submission_id == submissions.c.id)
         .outerjoin(api_keys, api_keys.c.id == submissions.c.owner_key_id)
-        .where(submissions.c.team == team, submissions.c.dataset_id == dataset_id,
+        .where(submissions.c.team == dataset["team"], submissions.c.dataset_id == dataset["id"],
                submissions.c.state.not_in(("failed", "canceled")), mean.is_not(None))
     )
     if after is not None:

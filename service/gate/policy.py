@@ -31,8 +31,8 @@ from typing import Any
 
 from service.catalog.metrics import DEFAULT_METRICS, METRICS
 from service.errors import FieldProblem, InputError
+from service.vocabulary import RELEASE_MODES
 
-RELEASE_MODES = ("exact", "ladder", "thresholdout")
 UNIT_METRICS = frozenset({"rmse", "mae", "mse"})  # in the target's units (mse: squared)
 MAX_DIGITS, MAX_BUDGET, MAX_WINDOW_HOURS = 12, 10_000, 24.0 * 366
 
@@ -81,7 +81,7 @@ class Policy:
     release: ReleaseParams = ReleaseParams()
 
     def to_document(self, version: int) -> dict[str, Any]:
-        """Return the policy document of contracts3 (``version`` 0 = the task default)."""
+        """Return the policy document ``GET /v1/datasets/{id}/policy`` serves (``version`` 0 = the task default)."""
         r = self.release
         return {
             "version": version, "primary_metric": self.primary_metric, "greater_is_better": self.greater_is_better,

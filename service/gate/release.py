@@ -20,8 +20,8 @@ Internally every metric is a loss (greater-is-better ones negated); figures are 
 metric's own orientation. On top, a per-submitter budget of releases per dataset per rolling window:
 beyond it the figure is withheld and the document says when budget returns.
 
-Pure: state in, state out. The state is a JSON-able dict per dataset (the lead stores it in
-holdout_releases.state); it holds the ladder's level and thresholdout's secret noise, so it must never
+Pure: state in, state out. The state is a JSON-able dict per dataset (the verdict job stores it
+in holdout_releases.state); it holds the ladder's level and thresholdout's secret noise, so it must never
 leave the service. The caller keeps the per-example values of the ladder's best submission
 (``best_submission`` in the state) and passes them back as ``best_per_example``.
 """
@@ -77,7 +77,7 @@ class Release:
     new_best: bool = False  # ladder: keep this submission's per-example values as the new best's
 
     def document(self) -> dict[str, Any]:
-        """Return the holdout part of the submission document (contracts3)."""
+        """Return the holdout part of the submission document (``result.holdout``)."""
         return {"released": self.released is not None, "mode": self.mode, "scores": self.released,
                 "withheld_until": None if self.withheld_until is None else self.withheld_until.isoformat(),
                 "note": self.note}

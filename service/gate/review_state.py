@@ -11,13 +11,13 @@ from typing import Any
 from sqlalchemy import Engine
 
 from service.gate.policy import default_policy
-from service.records import reviews
+from service.records import policies
 from service.records.engine import iso
 
 
 def policy_in_force(engine: Engine, dataset: dict[str, Any]) -> dict[str, Any]:
     """Return the policy document in force on a dataset, ``version`` first (0: the task's default)."""
-    stored = reviews.current_policy(engine, dataset["id"])
+    stored = policies.current(engine, dataset["id"])
     if stored is None:
         version, document = 0, default_policy(str(dataset["task"])).to_document(0)
     else:

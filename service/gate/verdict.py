@@ -1,4 +1,4 @@
-"""Judge a submission against its dataset's policy: the verdict document of contracts3.
+"""Judge a submission against its dataset's policy and build its verdict document (``result.verdict``).
 
 Rules, each with figures and one plain sentence:
 - baseline: the candidate beats the baseline (corrected resampled t, one-sided, paired on the same

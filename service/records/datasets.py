@@ -14,8 +14,8 @@ from sqlalchemy import Engine, select
 
 from service.records import audit
 from service.records.engine import iso
-from service.records.keys import ROLES
 from service.records.tables import datasets
+from service.vocabulary import ROLES
 
 _PRIVATE = ("sealing_seed", "holdout_fingerprint")
 BALANCE_SUMMARY = ("balanced", "adversarial_auc", "draws")

@@ -7,7 +7,7 @@ from typing import Any
 
 from sqlalchemy import Engine, create_engine, event, inspect, text
 
-from service.records.tables import metadata
+from service.records.tables import RENAMED_COLUMNS, metadata
 from service.settings import Settings
 
 
@@ -23,6 +23,7 @@ def make_engine(settings: Settings, create_schema: bool = True) -> Engine:
     if create_schema:
         metadata.create_all(engine)
         _add_missing_columns(engine)
+        _carry_renamed_columns(engine)
     return engine
 
 
@@ -44,6 +45,25 @@ def _add_missing_columns(engine: Engine) -> None:
                     continue
                 kind = column.type.compile(dialect=engine.dialect)
                 conn.execute(text(f'ALTER TABLE {table.name} ADD COLUMN "{column.name}" {kind}'))
+
+
+def _carry_renamed_columns(engine: Engine) -> None:
+    """Copy each renamed column's old values into its new column where the new one is still empty.
+
+    A data dir from before a rename keeps its figures: the old column is left in place (nothing reads
+    or writes it any more) and each start copies only the rows whose new column is still NULL, so a
+    value written under the new name is never overwritten and running it at every start is harmless.
+    """
+    inspector = inspect(engine)
+    present = set(inspector.get_table_names())
+    with engine.begin() as conn:
+        for table, old, new in RENAMED_COLUMNS:
+            if table not in present:
+                continue
+            have = {c["name"] for c in inspector.get_columns(table)}
+            if old in have and new in have:
+                conn.execute(text(
+                    f'UPDATE {table} SET "{new}" = "{old}" WHERE "{new}" IS NULL AND "{old}" IS NOT NULL'))
 
 
 def _sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:

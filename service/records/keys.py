@@ -10,8 +10,7 @@ from service.errors import InputError, NotFound, field_error
 from service.ids import new_id, new_token, same_secret, token_hash
 from service.records.engine import utcnow
 from service.records.tables import api_keys
-
-ROLES: tuple[str, ...] = ("submitter", "steward", "admin")  # each role can do what the ones before it can
+from service.vocabulary import ROLES
 
 
 @dataclass(frozen=True)

@@ -1,4 +1,4 @@
-"""Submission records, their fold results and their one holdout score.
+"""Submission records: the submission row (state, summary, verdict), its fold results and its one holdout score.
 
 Lifecycle: ``queued`` -> ``running`` (first fold starts) -> ``succeeded`` | ``failed``; ``canceled``
 from either live state. Transitions are conditional updates, so two workers racing on one
@@ -16,9 +16,7 @@ from sqlalchemy.exc import IntegrityError
 from service.records import audit
 from service.records.engine import utcnow
 from service.records.tables import fold_results, holdout_scores, submissions
-
-LIVE_STATES: tuple[str, ...] = ("queued", "running")
-TERMINAL_STATES: tuple[str, ...] = ("succeeded", "failed", "canceled")
+from service.vocabulary import LIVE_STATES, TERMINAL_STATES
 
 
 def insert(engine: Engine, row: dict[str, Any]) -> None:
@@ -108,12 +106,21 @@ def mark_running(engine: Engine, sub_id: str) -> None:
     transition(engine, sub_id, "running", ("queued",))
 
 
-def store_summary(engine: Engine, sub_id: str, result: dict[str, Any]) -> None:
+def store_summary(engine: Engine, sub_id: str, cv_summary: dict[str, Any]) -> None:
     """Store the cross-validation summary document (everything but the holdout score)."""
     with engine.begin() as conn:
         conn.execute(
-            update(submissions).where(submissions.c.id == sub_id).values(result=result, updated_at=utcnow())
+            update(submissions).where(submissions.c.id == sub_id).values(cv_summary=cv_summary, updated_at=utcnow())
         )
+
+
+def store_verdict(
+    engine: Engine, sub_id: str, verdict: dict[str, Any], policy_version: int | None, champion_id: str | None,
+) -> None:
+    """Store the verdict of a submission with the policy version and champion it was judged against."""
+    with engine.begin() as conn:
+        conn.execute(update(submissions).where(submissions.c.id == sub_id).values(
+            verdict=verdict, policy_version=policy_version, champion_id=champion_id, updated_at=utcnow()))
 
 
 def record_fold(engine: Engine, sub_id: str, repeat: int, fold: int, **fields: Any) -> bool:

@@ -19,6 +19,12 @@ from sqlalchemy import (
 
 metadata = MetaData()
 
+# Columns renamed after a release had created them, as (table, old name, new name). At start-up the
+# engine adds the new column and copies the old one's values into it; the old column stays, unread.
+RENAMED_COLUMNS: tuple[tuple[str, str, str], ...] = (
+    ("submissions", "result", "cv_summary"),
+)
+
 api_keys = Table(
     "api_keys",
     metadata,
@@ -76,7 +82,7 @@ submissions = Table(
     Column("idempotency_key", String(200)),
     Column("request_fingerprint", String(64)),
     Column("error", Text),
-    Column("result", JSON),  # the summary document once computed (without holdout scores)
+    Column("cv_summary", JSON),  # the cross-validation summary once computed (without holdout scores)
     Column("verdict", JSON),  # the review gate's decision, reasons and rule figures
     Column("policy_version", Integer),  # the policy version the verdict was judged under
     Column("champion_id", String(40)),  # the champion in force when judged (None: there was none)

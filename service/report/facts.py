@@ -14,7 +14,7 @@ from sqlalchemy import Engine
 
 from service.catalog.metrics import METRICS
 from service.gate.review_state import holdout_part, policy_in_force
-from service.records import datasets, keys, reviews, submissions
+from service.records import champions, datasets, holdout_releases, keys, submissions
 
 _PLAN_KEYS = ("scheme", "folds", "seed", "repeats")
 
@@ -71,13 +71,13 @@ def gather(engine: Engine, row: dict[str, Any]) -> ReportFacts:
         dataset=dataset,
         submitter=owner.name if owner is not None and owner.name else row["owner_key_id"],
         folds=submissions.fold_rows(engine, row["id"]),
-        summary=row.get("result") or {},
+        summary=row.get("cv_summary") or {},
         verdict=verdict,
         primary_metric=primary,
         greater_is_better=bool(spec.greater_is_better) if spec is not None else bool(policy["greater_is_better"]),
         policy=policy,
         policy_matches_verdict=verdict is not None and row.get("policy_version") == policy["version"],
-        holdout=holdout_part(reviews.get_release(engine, row["id"])),
+        holdout=holdout_part(holdout_releases.get(engine, row["id"])),
         champion=_champion(engine, row, primary),
         metrics=list(row["config"].get("metrics", [])),
     )
@@ -85,13 +85,13 @@ def gather(engine: Engine, row: dict[str, Any]) -> ReportFacts:
 
 def _champion(engine: Engine, row: dict[str, Any], metric: str) -> ChampionFacts | None:
     judged = row.get("verdict") is not None
-    champion_id = row.get("champion_id") if judged else reviews.current_champion(engine, row["dataset_id"])
+    champion_id = row.get("champion_id") if judged else champions.current(engine, row["dataset_id"])
     if not champion_id or champion_id == row["id"]:
         return None
     champion = submissions.get(engine, champion_id)
     if champion is None:
         return None
-    mean = ((champion.get("result") or {}).get("summary") or {}).get(metric, {}).get("mean")
+    mean = ((champion.get("cv_summary") or {}).get("summary") or {}).get(metric, {}).get("mean")
     mine = {k: row["config"]["validation"].get(k) for k in _PLAN_KEYS}
     theirs = {k: champion["config"]["validation"].get(k) for k in _PLAN_KEYS}
     if mine != theirs:

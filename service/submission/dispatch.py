@@ -10,7 +10,7 @@ Chain per submission::
 
     holdout (refit on every development row, score the seal exactly once) --+
     fold jobs (one per repeat x fold) --allow_failure--> summary (fan-in) --+--> verdict
-        (release the holdout figure, judge, mark succeeded)
+        (release the holdout figure, decide, mark succeeded)
 
 The holdout job depends on none of the folds (the refit on every development row does not need
 their results), so it is queued first: it is the longest job of the chain, and a longest-first
@@ -200,11 +200,11 @@ def _reconcile_one(engine: Engine, live: set[str], queue: Queue, settings: Setti
             continue
         if job_id in live:
             live_folds.append(job_id)
-        elif sub["result"] is None:
+        elif sub["cv_summary"] is None:
             live_folds.append(_enqueue_fold(queue, settings, sub_id, r, f))
             enqueued += 1
     waits_for: list[str] = []
-    if sub["result"] is None:
+    if sub["cv_summary"] is None:
         if summary_job_id(sub_id) not in live:
             _enqueue_summary(queue, settings, sub_id, live_folds)
             enqueued += 1
@@ -247,7 +247,7 @@ def _enqueue_holdout(queue: Queue, settings: Settings, sub_id: str) -> None:
 
 def _enqueue_verdict(queue: Queue, sub_id: str, depends_on: list[str]) -> None:
     queue.enqueue_call(
-        f"{JOB_MODULE}.judge", args=(sub_id,), job_id=verdict_job_id(sub_id),
+        f"{JOB_MODULE}.give_verdict", args=(sub_id,), job_id=verdict_job_id(sub_id),
         depends_on=Dependency(jobs=depends_on, allow_failure=True) if depends_on else None,
         timeout=600, result_ttl=RESULT_TTL, retry=_retry(), description=f"verdict of {sub_id}",
     )

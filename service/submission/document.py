@@ -12,14 +12,14 @@ from typing import Any
 from sqlalchemy import Engine
 
 from service.gate.review_state import holdout_part
-from service.records import reviews, submissions
+from service.records import holdout_releases, submissions
 from service.records.engine import iso
 
 
 def submission_document(engine: Engine, row: dict[str, Any]) -> dict[str, Any]:
     """Return the document for one submission row."""
     folds = submissions.fold_rows(engine, row["id"])
-    release = reviews.get_release(engine, row["id"])
+    release = holdout_releases.get(engine, row["id"])
     config = row["config"]
     return {
         "id": row["id"],
@@ -39,7 +39,7 @@ def submission_document(engine: Engine, row: dict[str, Any]) -> dict[str, Any]:
 
 
 def _result(row: dict[str, Any], folds: list[dict[str, Any]], release: dict[str, Any] | None) -> dict[str, Any] | None:
-    summary = row["result"]
+    summary = row["cv_summary"]
     if summary is None and not folds:
         return None
     summary = summary or {}

@@ -16,24 +16,23 @@ from redis import Redis
 from sqlalchemy import Engine
 from sqlalchemy.exc import IntegrityError
 
+from service import team_scope
 from service.catalog import load_catalog
 from service.catalog.metrics import METRICS
-from service.errors import ConfigRejected, Conflict, FieldProblem, Forbidden, InputError, NotFound, field_error
+from service.errors import ConfigRejected, Conflict, FieldProblem, Forbidden, InputError
 from service.gate.review_state import policy_in_force
 from service.ids import new_id
-from service.records import audit, datasets, submissions
+from service.records import audit, submissions
 from service.records.keys import KeyInfo
 from service.settings import Settings
 from service.submission import config, dispatch
 from service.submission.resolved import ResolvedConfig, ValidationPlan
+from service.vocabulary import LIVE_STATES
 
 
 def find_dataset(engine: Engine, key: KeyInfo, ref: config.DatasetRef) -> dict[str, Any]:
     """Return the internal dataset row a reference names, scoped to the caller's team."""
-    row = datasets.get_internal(engine, ref.id)
-    if row is None or row["team"] != key.team:
-        # Another team's dataset is reported as absent so ids reveal nothing across teams.
-        raise field_error(NotFound, "/dataset", f"no dataset {ref.id!r} in team {key.team!r}")
+    row = team_scope.team_dataset(engine, key, ref.id, pointer="/dataset")
     if ref.fingerprint is not None and ref.fingerprint != row["fingerprint"]:
         raise Conflict(
             f"dataset {ref.id} has fingerprint {row['fingerprint']}, not the pinned {ref.fingerprint}",
@@ -106,12 +105,10 @@ def submit(
 
 def cancel(engine: Engine, redis: Redis, settings: Settings, key: KeyInfo, sub_id: str) -> dict[str, Any]:
     """Cancel a live submission for its owner or a steward of its team."""
-    row = submissions.get(engine, sub_id)
-    if row is None or row["team"] != key.team:
-        raise NotFound(f"no submission {sub_id!r} in team {key.team!r}")
+    row = team_scope.team_submission(engine, key, sub_id)
     if row["owner_key_id"] != key.id and not key.can("steward"):
         raise Forbidden("only the submission's owner or a steward of its team may cancel it")
-    if not submissions.transition(engine, sub_id, "canceled", submissions.LIVE_STATES):
+    if not submissions.transition(engine, sub_id, "canceled", LIVE_STATES):
         raise Conflict(f"submission {sub_id} is already {row['state']}; only queued or running ones can be canceled")
     audit.record(engine, key.id, key.team, "submission.canceled", sub_id, {})
     dispatch.cancel_jobs(redis, settings, sub_id, ValidationPlan.from_document(row["config"]["validation"]))

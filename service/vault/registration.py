@@ -48,8 +48,8 @@ from service.vault.folds import (
     split_keys_from_frame,
 )
 from service.vault.tables import column_kinds, describe_columns, describe_value, read_table, time_order_key
+from service.vocabulary import TASKS
 
-TASKS: tuple[str, ...] = ("regression", "classification")
 _ROLE_COLUMNS: tuple[str, ...] = ("id_column", "group_column", "time_column")
 
 

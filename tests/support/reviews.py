@@ -13,7 +13,8 @@ from typing import Any
 from sqlalchemy import Engine
 
 from service.ids import new_id
-from service.records import reviews, submissions
+from service.records import holdout_releases, submissions
+from service.vocabulary import LIVE_STATES
 from worker.jobs.summary import summary_document
 
 RAW_HOLDOUT = 987.654321  # stored as the raw holdout score; must never appear in any answer
@@ -21,7 +22,7 @@ RAW_HOLDOUT = 987.654321  # stored as the raw holdout score; must never appear i
 
 def verdict(decision: str, *, metric: str = "rmse", reasons: Sequence[str] | None = None,
             champion: str | None = None, policy_version: int = 0) -> dict[str, Any]:
-    """A verdict document of contracts3 with one rule per reason."""
+    """A verdict document (``result.verdict``) with one rule per reason."""
     reasons = list(reasons or [f"the model {'beats' if decision == 'pass' else 'does not beat'} the baseline"])
     return {
         "decision": decision, "reasons": reasons,
@@ -78,13 +79,13 @@ def make_submission(
         submissions.store_holdout_once(engine, sub_id, {metric: RAW_HOLDOUT}, "h" * 64, 0.1)
         mean = summary["summary"][metric]["mean"]
         shown = {metric: round(mean, 3)} if released == "auto" else released
-        reviews.record_release(engine, {
+        holdout_releases.record(engine, {
             "submission_id": sub_id, "dataset_id": dataset["id"], "owner_key_id": owner_key_id, "mode": "exact",
             "released": shown, "spent": 1, "state": {}, "withheld_until": None,
         })
     if decision is not None or verdict_doc is not None:
         doc = verdict_doc or verdict(str(decision), metric=metric, champion=champion_id)
-        reviews.store_verdict(engine, sub_id, doc, doc.get("policy_version", 0), champion_id)
+        submissions.store_verdict(engine, sub_id, doc, doc.get("policy_version", 0), champion_id)
     if state != "running":
-        submissions.transition(engine, sub_id, state, submissions.LIVE_STATES)
+        submissions.transition(engine, sub_id, state, LIVE_STATES)
     return sub_id

@@ -10,10 +10,9 @@ from typing import Any
 
 from rq import get_current_job
 
-from worker.jobs import check, holdout, summary
+from worker.jobs import check, holdout, summary, verdict
 from worker.jobs.fold import run_fold as _run_fold
 from worker.jobs.runtime import current, fold_runner
-from worker.jobs.verdict import judge_submission
 
 
 def check_config(config_doc: dict[str, Any], dataset_id: str) -> dict[str, Any]:
@@ -42,15 +41,15 @@ def score_holdout(submission_id: str) -> dict[str, Any]:
     return holdout.score_holdout(current(), submission_id)
 
 
-def judge(submission_id: str) -> dict[str, Any]:
+def give_verdict(submission_id: str) -> dict[str, Any]:
     """Release the holdout figure under the dataset's policy and store the verdict."""
     job = get_current_job()
     if job is None:
-        raise RuntimeError("worker.jobs.judge runs inside an RQ job; it needs the job's Redis connection")
-    return judge_submission(current(), job.connection, submission_id)
+        raise RuntimeError("worker.jobs.give_verdict runs inside an RQ job; it needs the job's Redis connection")
+    return verdict.give_verdict(current(), job.connection, submission_id)
 
 
 # The dotted names a sealfold worker agrees to run; nothing else in Redis is ever imported.
 ALLOWED_JOBS: frozenset[str] = frozenset(
-    f"{__name__}.{job.__name__}" for job in (check_config, run_fold, summarize, score_holdout, judge)
+    f"{__name__}.{job.__name__}" for job in (check_config, run_fold, summarize, score_holdout, give_verdict)
 )

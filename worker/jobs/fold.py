@@ -18,6 +18,7 @@ from sklearn.pipeline import Pipeline
 from service.records import submissions
 from service.submission.resolved import ResolvedConfig
 from service.vault.folds import Split
+from service.vocabulary import TERMINAL_STATES
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 from worker.learning.curve import curve_points
 from worker.learning.development import DevelopmentData, column_kinds, load_development, split_for
@@ -28,8 +29,7 @@ from worker.learning.search import build_model, search_record
 
 def run_fold(ctx: WorkerContext, submission_id: str, repeat: int, fold: int) -> dict[str, Any]:
     """Score one (repeat, fold) of a submission and record it; a canceled or finished one is skipped."""
-    work = submission_to_work_on(ctx, submission_id, skip=submissions.TERMINAL_STATES,
-                                 echo={"repeat": repeat, "fold": fold})
+    work = submission_to_work_on(ctx, submission_id, skip=TERMINAL_STATES, echo={"repeat": repeat, "fold": fold})
     if isinstance(work, Skip):
         return work.answer
     sub, dataset = work.submission, work.dataset

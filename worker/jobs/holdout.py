@@ -21,6 +21,7 @@ from service.errors import SealBroken
 from service.records import submissions
 from service.submission.resolved import ResolvedConfig
 from service.vault import store
+from service.vocabulary import LIVE_STATES
 from worker.jobs.losses import save_per_example
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 from worker.learning.development import column_kinds, load_development, model_frame, model_matrix, target_values
@@ -60,7 +61,7 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     try:
         holdout = store.open_sealed_holdout(ctx.settings, dataset["id"], dataset["holdout_fingerprint"])
     except SealBroken as exc:
-        submissions.transition(engine, submission_id, "failed", submissions.LIVE_STATES, error=exc.detail)
+        submissions.transition(engine, submission_id, "failed", LIVE_STATES, error=exc.detail)
         raise
     try:
         with warnings.catch_warnings():

@@ -25,6 +25,7 @@ from service.catalog import load_catalog
 from service.records import submissions
 from service.submission.dispatch import fold_cells
 from service.submission.resolved import ResolvedConfig, ValidationPlan
+from service.vocabulary import LIVE_STATES, TERMINAL_STATES
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 from worker.learning.fit_readings import curve_summary, fit_gap, search_summary
 from worker.learning.pipeline import baseline_description
@@ -39,7 +40,7 @@ STATISTICS_NOTE = {
 
 def summarize(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     """Summarise the folds, store the summary; when every fold failed, fail the submission."""
-    work = submission_to_work_on(ctx, submission_id, skip=submissions.TERMINAL_STATES)
+    work = submission_to_work_on(ctx, submission_id, skip=TERMINAL_STATES)
     if isinstance(work, Skip):
         return work.answer
     sub, dataset = work.submission, work.dataset
@@ -51,7 +52,7 @@ def summarize(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     ok = sum(1 for r in rows if r["status"] == "ok")
     if ok == 0:
         first = document["failures"][0]["error"] if document["failures"] else "no fold produced a result"
-        submissions.transition(ctx.engine, submission_id, "failed", submissions.LIVE_STATES, error=first)
+        submissions.transition(ctx.engine, submission_id, "failed", LIVE_STATES, error=first)
     return {"submission_id": submission_id, "folds_ok": ok, "folds_failed": len(document["failures"])}
 
 

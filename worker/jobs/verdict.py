@@ -1,6 +1,6 @@
-"""Judge a submission once its summary and holdout are stored: release the holdout figure, then decide.
+"""Give a submission its verdict once its summary and holdout are stored: release the holdout figure, then decide.
 
-The last job of the chain (folds -> summary, and the holdout beside them -> judge). It reads only
+The last job of the chain (folds -> summary, and the holdout beside them -> verdict). It reads only
 the records: fold rows, the stored summary and the raw holdout outcome the holdout job stored once.
 A holdout attempt that failed fails the submission here, after the summary, so the failed
 submission still carries its cross-validation result. The release is
@@ -22,9 +22,10 @@ from service.gate import review_state
 from service.gate.policy import Policy, parse_policy
 from service.gate.release import HoldoutScores, release
 from service.gate.verdict import CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV, ChampionFolds, PlanFacts, judge
-from service.records import reviews, submissions
+from service.records import champions, holdout_releases, submissions
 from service.records.engine import as_utc, utcnow
 from service.submission.resolved import ValidationPlan
+from service.vocabulary import LIVE_STATES
 from worker.jobs.losses import load_per_example
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 
@@ -32,7 +33,7 @@ Cell = tuple[int, int]
 _EPOCH = datetime(1970, 1, 1)
 
 
-def judge_submission(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[str, Any]:
+def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[str, Any]:
     """Release the holdout figure and store the verdict of one submission; idempotent."""
     engine = ctx.engine
     work = submission_to_work_on(ctx, submission_id)
@@ -40,16 +41,16 @@ def judge_submission(ctx: WorkerContext, redis: Redis, submission_id: str) -> di
         return work.answer
     sub, dataset = work.submission, work.dataset
     if sub["verdict"] is not None:
-        submissions.transition(engine, submission_id, "succeeded", submissions.LIVE_STATES)
+        submissions.transition(engine, submission_id, "succeeded", LIVE_STATES)
         return {"submission_id": submission_id, "verdict": "already judged"}
-    if sub["result"] is None:
+    if sub["cv_summary"] is None:
         raise RuntimeError(f"submission {submission_id} has no cross-validation summary yet; "
                            "it is judged after the summary job")
     raw = submissions.get_holdout(engine, submission_id)
     if raw is None:
         raise RuntimeError(f"submission {submission_id} has no holdout score yet; it is judged after the holdout job")
     if raw.get("error"):
-        submissions.transition(engine, submission_id, "failed", submissions.LIVE_STATES, error=str(raw["error"]))
+        submissions.transition(engine, submission_id, "failed", LIVE_STATES, error=str(raw["error"]))
         return {"submission_id": submission_id, "decision": None, "holdout": "not scored"}
 
     stated = review_state.policy_in_force(engine, dataset)
@@ -61,10 +62,10 @@ def judge_submission(ctx: WorkerContext, redis: Redis, submission_id: str) -> di
     baseline = _cells(folds, "baseline_scores", metric)
 
     with redis.lock(f"sealfold:release:{dataset['id']}", timeout=120, blocking_timeout=60):
-        if reviews.get_release(engine, submission_id) is None:
+        if holdout_releases.get(engine, submission_id) is None:
             _release(ctx, sub, dataset, policy, raw["scores"], candidate, folds)
 
-    champion_id = reviews.current_champion(engine, dataset["id"])
+    champion_id = champions.current(engine, dataset["id"])
     champion = None if champion_id in (None, submission_id) else _champion(ctx, str(champion_id), metric)
     validation = ValidationPlan.from_document(sub["config"]["validation"])
     plan = PlanFacts(
@@ -76,8 +77,8 @@ def judge_submission(ctx: WorkerContext, redis: Redis, submission_id: str) -> di
     )
     holdout_value = raw["scores"].get(metric)
     verdict = judge(policy, candidate, baseline, champion, holdout_value, plan, policy_version=version)
-    reviews.store_verdict(engine, submission_id, verdict, version, None if champion is None else champion_id)
-    submissions.transition(engine, submission_id, "succeeded", submissions.LIVE_STATES)
+    submissions.store_verdict(engine, submission_id, verdict, version, None if champion is None else champion_id)
+    submissions.transition(engine, submission_id, "succeeded", LIVE_STATES)
     return {"submission_id": submission_id, "decision": verdict["decision"]}
 
 
@@ -109,9 +110,9 @@ def _release(
 ) -> None:
     engine = ctx.engine
     values = np.array(list(candidate.values()), dtype=float)
-    last = reviews.last_release(engine, dataset["id"])
+    last = holdout_releases.latest(engine, dataset["id"])
     state: dict[str, Any] = dict(last["state"]) if last else {}
-    mine = reviews.releases_since(engine, dataset["id"], _EPOCH, owner_key_id=sub["owner_key_id"])
+    mine = holdout_releases.list_since(engine, dataset["id"], _EPOCH, owner_key_id=sub["owner_key_id"])
     spent_at = [as_utc(r["released_at"]) or utcnow() for r in mine if r["spent"] > 0]
     holdout = HoldoutScores(
         submission_id=sub["id"],
@@ -127,7 +128,7 @@ def _release(
     # Fresh OS entropy for the noise of thresholdout: a seed anyone could know would undo the noise.
     outcome = release(policy, holdout, state=state, spent_at=spent_at, now=utcnow(),
                       rng=np.random.default_rng(), best_per_example=best)
-    reviews.record_release(engine, {
+    holdout_releases.record(engine, {
         "submission_id": sub["id"], "dataset_id": dataset["id"], "owner_key_id": sub["owner_key_id"],
         "mode": outcome.mode, "released": outcome.released, "spent": outcome.spent, "state": outcome.state,
         "withheld_until": outcome.withheld_until,

@@ -26,14 +26,14 @@ from __future__ import annotations
 
 from typing import Any
 
-from worker.jobs import check_config, judge, run_fold, summarize
+from worker.jobs import check_config, give_verdict, run_fold, summarize
 
 
 def _dotted(job: Any) -> str:
     return f"{job.__module__}.{job.__name__}"
 
 
-IN_PROCESS_JOBS: frozenset[str] = frozenset(_dotted(job) for job in (check_config, summarize, judge, run_fold))
+IN_PROCESS_JOBS: frozenset[str] = frozenset(_dotted(job) for job in (check_config, summarize, give_verdict, run_fold))
 
 
 def runs_in_process(func_name: str | None) -> bool:

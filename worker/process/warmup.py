@@ -38,6 +38,7 @@ from service.submission.resolved import ResolvedModel, ValidationPlan
 from service.vault import store
 from service.vault.fingerprint import fingerprint_frame
 from service.vault.tables import column_kinds as kinds_of_frame
+from service.vocabulary import LIVE_STATES
 from worker.jobs.fold import evaluate_fold
 from worker.jobs.runtime import WorkerContext
 from worker.jobs.summary import provenance, summary_document
@@ -135,6 +136,6 @@ def _warm_records(ctx: WorkerContext) -> None:
     submissions.get_holdout(engine, NO_SUCH_ID)
     # Updates matching no row: the statements compile and run, and change nothing.
     submissions.mark_running(engine, NO_SUCH_ID)
-    submissions.transition(engine, NO_SUCH_ID, "succeeded", submissions.LIVE_STATES)
-    submissions.transition(engine, NO_SUCH_ID, "failed", submissions.LIVE_STATES, error="")
+    submissions.transition(engine, NO_SUCH_ID, "succeeded", LIVE_STATES)
+    submissions.transition(engine, NO_SUCH_ID, "failed", LIVE_STATES, error="")
     submissions.store_summary(engine, NO_SUCH_ID, {})

@@ -9,7 +9,7 @@ from typing import TYPE_CHECKING, Any
 import pytest
 
 from service.gate.policy import default_policy
-from service.records import audit, reviews
+from service.records import audit, champions, policies
 from tests.support.reviews import RAW_HOLDOUT, make_submission, verdict
 
 if TYPE_CHECKING:
@@ -46,7 +46,7 @@ def test_put_policy_is_steward_only_versioned_and_audited(api: Api, dataset: dic
     now = api.get("submitter2", path).get_json()
     assert now == second.get_json()
     assert now["primary_metric"] == "mae" and now["bar"] == 60.0
-    assert reviews.current_policy(api.engine, dataset["id"]) == (2, {k: v for k, v in now.items() if k != "version"})
+    assert policies.current(api.engine, dataset["id"]) == (2, {k: v for k, v in now.items() if k != "version"})
     events = [e for e in audit.events_for(api.engine, dataset["id"]) if e["action"] == "policy.set"]
     assert [e["detail"]["version"] for e in events] == [1, 2]
     assert {e["actor"] for e in events} == {api.key_ids["steward"]}
@@ -70,7 +70,7 @@ def test_a_bad_policy_is_422_with_a_pointer_and_stores_nothing(
     path = f"/v1/datasets/{dataset['id']}/policy"
     problem = api.problem(api.call("steward", "PUT", path, json=body), 422)
     assert pointer in api.pointers(problem), problem
-    assert reviews.current_policy(api.engine, dataset["id"]) is None
+    assert policies.current(api.engine, dataset["id"]) is None
     assert api.get("steward", path).get_json()["version"] == 0
 
 
@@ -79,7 +79,7 @@ def test_a_policy_body_must_be_json(api: Api, dataset: dict[str, Any]) -> None:
     api.problem(api.call("steward", "PUT", path, data="bar=3", content_type="application/x-www-form-urlencoded"),
                 415)
     api.problem(api.call("steward", "PUT", path, data="{not json", content_type="application/json"), 400)
-    assert reviews.current_policy(api.engine, dataset["id"]) is None
+    assert policies.current(api.engine, dataset["id"]) is None
 
 
 # -- champion -------------------------------------------------------------------------------------
@@ -99,7 +99,7 @@ def test_promoting_a_pass_keeps_the_previous_champion_in_the_history(api: Api, d
     assert doc["champion"]["verdict"] == "pass" and doc["champion"]["promoted_by"] == api.key_ids["steward"]
     assert [h["submission"] for h in doc["history"]] == [second, first]
     assert api.get("submitter", path).get_json() == doc
-    assert reviews.current_champion(api.engine, dataset["id"]) == second
+    assert champions.current(api.engine, dataset["id"]) == second
     events = [e for e in audit.events_for(api.engine, dataset["id"]) if e["action"] == "champion.promoted"]
     assert [(e["detail"]["submission"], e["detail"]["previous"]) for e in events] == [(first, None), (second, first)]
 
@@ -124,7 +124,7 @@ def test_only_a_pass_of_this_dataset_in_the_team_can_be_champion(
     good = _sub(api, dataset, scores=[50, 51, 52, 50, 49])
     api.problem(api.post("submitter", path, json={"submission": good}), 403)
     api.problem(api.post("other_steward", path, json={"submission": good}), 404)
-    assert reviews.champion_history(api.engine, dataset["id"]) == []
+    assert champions.history(api.engine, dataset["id"]) == []
 
 
 # -- board ----------------------------------------------------------------------------------------

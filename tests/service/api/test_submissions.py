@@ -13,11 +13,12 @@ from rq.serializers import JSONSerializer
 from sklearn.model_selection import KFold
 
 from service.api.schemas import SubmissionSchema
-from service.records import reviews, submissions
+from service.records import holdout_releases, submissions
 from service.submission import dispatch
 from service.submission.resolved import ResolvedConfig
 from service.vault.folds import FoldPlan
 from service.vault.store import load_development_frame
+from service.vocabulary import LIVE_STATES
 from tests.support.api import count_submissions, submission_body
 
 if TYPE_CHECKING:
@@ -243,11 +244,11 @@ def test_a_finished_submission_has_the_documented_shape(api: Api, submitted: dic
     })
     submissions.store_holdout_once(api.engine, sub_id, {"rmse": 56.5123, "r2": 0.4711}, "h" * 64, 0.02)
     # What the verdict job releases (exact mode, rounded): the document shows this, never the raw score.
-    reviews.record_release(api.engine, {
+    holdout_releases.record(api.engine, {
         "submission_id": sub_id, "dataset_id": submitted["dataset"], "owner_key_id": row_owner(api, sub_id),
         "mode": "exact", "released": {"rmse": 56.5, "r2": 0.471}, "spent": 1, "state": {"secret": 0.123},
         "withheld_until": None})
-    submissions.transition(api.engine, sub_id, "succeeded", submissions.LIVE_STATES)
+    submissions.transition(api.engine, sub_id, "succeeded", LIVE_STATES)
     reply = api.get("submitter", path, headers={"If-None-Match": etag})
     assert reply.status_code == 200 and reply.headers["ETag"] != etag
     doc = reply.get_json()

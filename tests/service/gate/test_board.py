@@ -18,9 +18,10 @@ from sklearn.linear_model import Ridge
 from sklearn.model_selection import KFold, cross_validate
 from sqlalchemy import Engine
 
-from service.errors import InputError
+from service.errors import InputError, NotFound
 from service.gate.board import BoardCursor, BoardOrder, board_page, decode_cursor, encode_cursor
 from service.records.keys import KeyInfo, create_key
+from service.team_scope import team_dataset
 from tests.support.frames import diabetes_frame
 from tests.support.records import add_dataset_row
 from tests.support.reviews import RAW_HOLDOUT, make_submission
@@ -69,7 +70,7 @@ def every_page(records: Engine, dataset: dict[str, Any], order: BoardOrder, limi
     pages: list[list[dict[str, Any]]] = []
     after = None
     for _ in range(50):
-        entries, cursor = board_page(records, "fleet", dataset["id"], order, limit, after, champion)
+        entries, cursor = board_page(records, dataset, order, limit, after, champion)
         pages.append(entries)
         if cursor is None:
             return pages
@@ -83,7 +84,7 @@ def test_the_board_ranks_by_the_cv_mean_in_the_metrics_direction(
     order: BoardOrder, best_first: bool,
 ) -> None:
     made = submit_all(records, dataset, owner, ridge_folds, order.metric)
-    entries, cursor = board_page(records, "fleet", dataset["id"], order, limit=50)
+    entries, cursor = board_page(records, dataset, order, limit=50)
     assert cursor is None
     # Reference: the submissions sorted by numpy's mean of their fold scores, best first.
     expected = sorted(made, key=lambda s: made[s], reverse=best_first)
@@ -148,9 +149,12 @@ def test_only_the_teams_live_or_finished_submissions_with_the_metric_are_on_the_
     make_submission(records, dataset, owner.id, scores=scores, state="canceled", decision=None)
     make_submission(records, dataset, owner.id, state="queued")  # no folds and no summary yet
     make_submission(records, dataset, owner.id, scores=ridge_folds[1.0]["r2"], metric="r2")  # no rmse
-    entries, _ = board_page(records, "fleet", dataset["id"], RMSE, 50)
+    entries, _ = board_page(records, dataset, RMSE, 50)
     assert {e["submission"] for e in entries} == shown
-    assert board_page(records, "rivals", dataset["id"], RMSE, 50) == ([], None)
+    # Another team never reaches the board: the dataset itself is not found for its keys.
+    rival = create_key(records, "rivals", "submitter", "rival")[0]
+    with pytest.raises(NotFound):
+        team_dataset(records, rival, dataset["id"])
 
 
 def test_the_holdout_column_shows_the_released_figure_never_the_raw_score(
@@ -160,7 +164,7 @@ def test_the_holdout_column_shows_the_released_figure_never_the_raw_score(
     released = make_submission(records, dataset, owner.id, label="released", scores=scores)
     withheld = make_submission(records, dataset, owner.id, label="withheld", scores=[s + 1 for s in scores],
                                released={})
-    entries, _ = board_page(records, "fleet", dataset["id"], RMSE, 50)
+    entries, _ = board_page(records, dataset, RMSE, 50)
     holdout = {e["submission"]: e["holdout"] for e in entries}
     assert holdout[released]["released"] is True and holdout[released]["mode"] == "exact"
     assert holdout[released]["score"] == round(float(np.mean(scores)), 3)  # make_submission releases the CV mean

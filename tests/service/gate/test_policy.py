@@ -1,4 +1,4 @@
-"""Review policies: task defaults, the document shape of contracts3, and one field problem per bad field."""
+"""Review policies: task defaults, the policy document's shape, and one field problem per bad field."""
 
 from __future__ import annotations
 
@@ -36,7 +36,7 @@ def test_classification_default_and_first_dataset_metric() -> None:
         default_policy("ranking")
 
 
-def test_document_has_the_contract_shape_and_round_trips() -> None:
+def test_document_has_the_served_shape_and_round_trips() -> None:
     doc = default_policy("classification").to_document(0)
     assert set(doc) == {"version", "primary_metric", "greater_is_better", "bar", "baseline_alpha",
                         "champion_margin", "champion_alpha", "holdout_gap", "max_fold_std", "release"}

@@ -33,7 +33,7 @@ def _release(policy: Policy, scores: HoldoutScores, state: dict[str, Any] | None
              spent_at: list[datetime] | None = None, seed: int = 0, best: np.ndarray | None = None) -> Release:
     out = release(policy, scores, state=state, spent_at=spent_at or [], now=NOW, rng=np.random.default_rng(seed),
                   best_per_example=best)
-    json.dumps(out.state, allow_nan=False)  # stored as JSON by the lead
+    json.dumps(out.state, allow_nan=False)  # stored as JSON in holdout_releases.state
     json.dumps(out.document(), allow_nan=False)
     return out
 

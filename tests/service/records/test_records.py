@@ -11,20 +11,24 @@ from sqlalchemy import Engine
 from service.records import datasets, keys, submissions
 from service.records.engine import make_engine, utcnow
 from service.settings import Settings
+from service.vocabulary import LIVE_STATES
 from tests.support.servers import postgres_database
 
 
 @pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)])
-def engine(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[Engine]:
+def settings(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[Settings]:
     if request.param == "sqlite":
-        eng = make_engine(Settings.load({"data_dir": tmp_path}, environ={}))
-        yield eng
-        eng.dispose()
+        yield Settings.load({"data_dir": tmp_path}, environ={})
         return
     with postgres_database() as url:
-        eng = make_engine(Settings.load({"data_dir": tmp_path, "database_url": url}, environ={}))
-        yield eng
-        eng.dispose()
+        yield Settings.load({"data_dir": tmp_path, "database_url": url}, environ={})
+
+
+@pytest.fixture
+def engine(settings: Settings) -> Iterator[Engine]:
+    eng = make_engine(settings)
+    yield eng
+    eng.dispose()
 
 
 def _dataset(engine: Engine, team: str = "fleet") -> str:
@@ -103,7 +107,7 @@ def test_state_transitions_never_go_backwards(engine: Engine) -> None:
     submissions.mark_running(engine, sub_id)
     assert submissions.transition(engine, sub_id, "succeeded", ("running",))
     submissions.mark_running(engine, sub_id)
-    assert not submissions.transition(engine, sub_id, "canceled", submissions.LIVE_STATES)
+    assert not submissions.transition(engine, sub_id, "canceled", LIVE_STATES)
     row = submissions.get(engine, sub_id)
     assert row is not None and row["state"] == "succeeded" and row["finished_at"] is not None
 
@@ -134,5 +138,40 @@ def test_an_older_schema_gains_the_new_nullable_columns(tmp_path: Path) -> None:
     old.dispose()
     engine = make_engine(settings)
     columns = {c["name"] for c in inspect(engine).get_columns("submissions")}
-    assert {"verdict", "policy_version", "champion_id", "result"} <= columns
+    assert {"verdict", "policy_version", "champion_id", "cv_summary"} <= columns
     engine.dispose()
+
+
+def test_a_summary_stored_under_the_old_column_name_is_still_served(settings: Settings) -> None:
+    # Records written when the summary column was called ``result``: start-up copies it to ``cv_summary``.
+    from sqlalchemy import text
+
+    from service.submission.document import submission_document
+
+    summary = {"summary": {"rmse": {"mean": 54.2, "std": 3.1}}, "failures": [], "baseline": {"estimator": "Dummy"}}
+    first = make_engine(settings)
+    _dataset(first)
+    sub_id = "sub_before_rename"
+    submissions.insert(first, {
+        "id": sub_id, "team": "fleet", "dataset_id": "ds_test1", "owner_key_id": "key_1", "label": "",
+        "config": {"model": {"estimator": "Ridge"}, "validation": {"folds": 5, "repeats": 1}, "metrics": ["rmse"]},
+        "config_fingerprint": "f" * 64, "folds_total": 5,
+    })
+    submissions.store_summary(first, sub_id, summary)
+    with first.begin() as conn:  # back to the schema of the release before the rename
+        conn.execute(text('ALTER TABLE submissions RENAME COLUMN "cv_summary" TO "result"'))
+    first.dispose()
+
+    upgraded = make_engine(settings)
+    row = submissions.get(upgraded, sub_id)
+    assert row is not None and row["cv_summary"] == summary
+    served = submission_document(upgraded, row)["result"]
+    assert served is not None and served["cv"]["summary"] == summary["summary"]
+    assert served["baseline"] == summary["baseline"]
+
+    newer = {**summary, "summary": {"rmse": {"mean": 50.0, "std": 2.0}}}
+    submissions.store_summary(upgraded, sub_id, newer)
+    upgraded.dispose()
+    again = make_engine(settings)  # a later start must not copy the stale old column over the new value
+    assert (submissions.get(again, sub_id) or {})["cv_summary"] == newer
+    again.dispose()

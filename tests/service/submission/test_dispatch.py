@@ -30,6 +30,7 @@ from service.records.tables import submissions as submissions_table
 from service.settings import Settings
 from service.submission import dispatch
 from service.submission.resolved import ValidationPlan
+from service.vocabulary import LIVE_STATES
 from tests.support.frames import diabetes_frame
 from tests.support.records import add_dataset_row
 
@@ -121,7 +122,7 @@ def test_a_lost_submission_is_enqueued_whole_with_the_holdout_first(
     assert [(job(redis, i).func_name, job(redis, i).args) for i in (f"{sub}-holdout", folds[4], f"{sub}-summary",
                                                                      f"{sub}-verdict")] == [
         ("worker.jobs.score_holdout", [sub]), ("worker.jobs.run_fold", [sub, 1, 1]),
-        ("worker.jobs.summarize", [sub]), ("worker.jobs.judge", [sub])]
+        ("worker.jobs.summarize", [sub]), ("worker.jobs.give_verdict", [sub])]
 
 
 def test_the_reconciled_chain_is_the_chain_a_new_submission_gets(
@@ -256,7 +257,7 @@ def test_finished_and_recently_touched_submissions_are_left_alone(
     finished = {}
     for state in ("succeeded", "failed", "canceled"):
         sub = lost_submission(records, dataset, folds=3)
-        assert submissions.transition(records, sub, state, submissions.LIVE_STATES)
+        assert submissions.transition(records, sub, state, LIVE_STATES)
         touch(records, sub, timedelta(hours=1))
         finished[state] = sub
     young = lost_submission(records, dataset, folds=3, age=timedelta(seconds=2))  # a POST still enqueueing

@@ -21,7 +21,7 @@ from sklearn.svm import SVC
 from sqlalchemy import Engine, func, select
 
 from service.errors import ConfigRejected, Conflict, FieldProblem, Forbidden, InputError, NotFound
-from service.records import reviews, submissions
+from service.records import policies, submissions
 from service.records.keys import KeyInfo, create_key
 from service.records.tables import audit_events
 from service.records.tables import submissions as submissions_table
@@ -29,6 +29,7 @@ from service.settings import Settings
 from service.submission import dispatch, intake
 from service.submission.config import DatasetRef, ModelSpec, SubmissionRequest, ValidationSpec
 from service.vault.fingerprint import fingerprint_frame
+from service.vocabulary import LIVE_STATES
 from tests.support.frames import breast_cancer_frame, diabetes_frame
 from tests.support.records import add_dataset_row
 from worker.jobs import check
@@ -152,7 +153,7 @@ def test_the_policys_primary_metric_is_always_computed(
     records: Engine, redis: Redis, settings: Settings, keys: dict[str, KeyInfo], dataset: dict[str, Any],
     asked: list[dict[str, Any]], asked_for: tuple[str, ...], expected: list[str],
 ) -> None:
-    assert reviews.put_policy(records, dataset["id"], {"primary_metric": "r2"}, keys["steward"].id) == 1
+    assert policies.put(records, dataset["id"], {"primary_metric": "r2"}, keys["steward"].id) == 1
     row, _ = intake.submit(records, redis, settings, keys["owner"], ridge(dataset, metrics=asked_for))
     assert row["config"]["metrics"] == expected
 
@@ -313,6 +314,6 @@ def test_who_may_cancel(
     assert submissions.get(records, row["id"])["state"] == "queued"  # type: ignore[index]
     assert intake.cancel(records, redis, settings, keys["steward"], row["id"])["state"] == "canceled"
     done, _ = intake.submit(records, redis, settings, keys["owner"], ridge(dataset, alpha=5.0))
-    assert submissions.transition(records, done["id"], "succeeded", submissions.LIVE_STATES)
+    assert submissions.transition(records, done["id"], "succeeded", LIVE_STATES)
     with pytest.raises(Conflict, match="already succeeded"):
         intake.cancel(records, redis, settings, keys["owner"], done["id"])

@@ -15,6 +15,7 @@ from sklearn.preprocessing import OneHotEncoder, StandardScaler
 
 from service.records import submissions
 from service.vault.folds import FoldPlan, fold_splits, split_keys_from_frame
+from service.vocabulary import LIVE_STATES
 from tests.support.folds import REGRESSION_SCORING, SIGN, diabetes_parts, ridge_on_diabetes, run_all_folds
 from tests.support.worker_records import add_dataset, add_submission, config_document
 from worker import jobs
@@ -159,7 +160,7 @@ def test_canceled_submission_is_not_worked_on(ctx: WorkerContext) -> None:
     dev, hold = diabetes_parts()
     dataset = add_dataset(ctx, dev, hold, "target", "regression", folds=3)
     sub_id = add_submission(ctx, dataset, config_document(dataset, "Ridge"))
-    assert submissions.transition(ctx.engine, sub_id, "canceled", submissions.LIVE_STATES)
+    assert submissions.transition(ctx.engine, sub_id, "canceled", LIVE_STATES)
     assert jobs.run_fold(sub_id, 0, 0)["skipped"] == "canceled"
     assert submissions.fold_rows(ctx.engine, sub_id) == []
 

@@ -19,11 +19,12 @@ from service.errors import SealBroken
 from service.records import submissions
 from service.records.tables import holdout_scores
 from service.vault import store
+from service.vocabulary import LIVE_STATES
 from tests.support.worker_records import add_dataset, add_submission, config_document
 from worker import jobs
 from worker.jobs import holdout
 from worker.jobs.runtime import WorkerContext
-from worker.jobs.verdict import judge_submission
+from worker.jobs.verdict import give_verdict
 
 METRICS = ["rmse", "mae", "r2"]
 
@@ -164,9 +165,9 @@ def test_holdout_errors_do_not_quote_holdout_values(ctx: WorkerContext, redis_ur
     # The holdout job runs beside the folds and ends nothing; the verdict job fails the submission,
     # which keeps its cross-validation result.
     assert submissions.get(ctx.engine, sub_id)["state"] == "running"  # type: ignore[index]
-    assert judge_submission(ctx, Redis.from_url(redis_url), sub_id)["holdout"] == "not scored"
+    assert give_verdict(ctx, Redis.from_url(redis_url), sub_id)["holdout"] == "not scored"
     sub = submissions.get(ctx.engine, sub_id)
-    assert sub is not None and sub["state"] == "failed" and sub["result"] is not None
+    assert sub is not None and sub["state"] == "failed" and sub["cv_summary"] is not None
     assert "ValueError" in sub["error"] and "withheld" in sub["error"] and "secret-depot-7" not in sub["error"]
 
 
@@ -191,6 +192,6 @@ def test_a_refit_that_fails_before_the_folds_finish_leaves_the_folds_message(ctx
 
 def test_canceled_submission_is_not_scored(ctx: WorkerContext) -> None:
     sub_id, _ = prepared(ctx)
-    submissions.transition(ctx.engine, sub_id, "canceled", submissions.LIVE_STATES)
+    submissions.transition(ctx.engine, sub_id, "canceled", LIVE_STATES)
     assert jobs.score_holdout(sub_id) == {"submission_id": sub_id, "skipped": "canceled"}
     assert submissions.get_holdout(ctx.engine, sub_id) is None

@@ -6,6 +6,7 @@ import pytest
 from sklearn.datasets import load_diabetes
 
 from service.records import submissions
+from service.vocabulary import LIVE_STATES, TERMINAL_STATES
 from tests.support.worker_records import add_dataset, add_submission, config_document
 from worker.jobs.runtime import Skip, Work, WorkerContext, submission_to_work_on
 
@@ -26,16 +27,16 @@ def test_a_live_submission_comes_with_its_dataset(ctx: WorkerContext) -> None:
 
 def test_an_ended_submission_is_skipped_with_the_jobs_echo(ctx: WorkerContext) -> None:
     sub_id, _ = _submission(ctx)
-    assert submissions.transition(ctx.engine, sub_id, "failed", submissions.LIVE_STATES, error="x")
+    assert submissions.transition(ctx.engine, sub_id, "failed", LIVE_STATES, error="x")
     work = submission_to_work_on(ctx, sub_id, echo={"repeat": 1, "fold": 2})
     assert work == Skip({"submission_id": sub_id, "repeat": 1, "fold": 2, "skipped": "failed"})
 
 
 def test_a_succeeded_submission_is_skipped_only_when_asked(ctx: WorkerContext) -> None:
     sub_id, _ = _submission(ctx)
-    assert submissions.transition(ctx.engine, sub_id, "succeeded", submissions.LIVE_STATES)
+    assert submissions.transition(ctx.engine, sub_id, "succeeded", LIVE_STATES)
     assert isinstance(submission_to_work_on(ctx, sub_id), Work)  # holdout and verdict answer it themselves
-    skipped = submission_to_work_on(ctx, sub_id, skip=submissions.TERMINAL_STATES)
+    skipped = submission_to_work_on(ctx, sub_id, skip=TERMINAL_STATES)
     assert skipped == Skip({"submission_id": sub_id, "skipped": "succeeded"})
 
 

@@ -85,7 +85,7 @@ def test_summarize_stores_the_summary(ctx: WorkerContext) -> None:
     assert answer == {"submission_id": sub_id, "folds_ok": 4, "folds_failed": 0}
     sub = submissions.get(ctx.engine, sub_id)
     assert sub is not None and sub["state"] == "running"
-    result = sub["result"]
+    result = sub["cv_summary"]
     rows = submissions.fold_rows(ctx.engine, sub_id)
     r2 = [r["scores"]["r2"] for r in rows]
     assert result["summary"]["r2"]["mean"] == pytest.approx(float(np.mean(r2)))
@@ -108,5 +108,5 @@ def test_all_folds_failed_fails_the_submission_with_the_estimators_message(ctx: 
     sub = submissions.get(ctx.engine, sub_id)
     assert sub is not None and sub["state"] == "failed" and sub["finished_at"] is not None
     assert sub["error"].startswith("ValueError: solver='svd' does not support positive fitting")
-    assert len(sub["result"]["failures"]) == 3
+    assert len(sub["cv_summary"]["failures"]) == 3
     assert jobs.score_holdout(sub_id) == {"submission_id": sub_id, "skipped": "failed"}

@@ -26,11 +26,12 @@ from sklearn.dummy import DummyRegressor
 from sklearn.linear_model import LinearRegression, Ridge
 from sklearn.model_selection import RepeatedKFold
 
-from service.records import reviews, submissions
+from service.records import champions, holdout_releases, policies, submissions
+from service.vocabulary import LIVE_STATES
 from tests.support.worker_records import add_dataset, add_submission, config_document
 from worker.jobs.runtime import WorkerContext
 from worker.jobs.summary import summary_document
-from worker.jobs.verdict import judge_submission
+from worker.jobs.verdict import give_verdict
 
 METRICS = ("rmse", "r2")
 
@@ -124,7 +125,7 @@ def test_the_verdict_and_the_release_are_assembled_from_the_stored_records(
     ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]
 ) -> None:
     judged = recorded(ctx, diabetes, Ridge(alpha=0.1))
-    answer = judge_submission(ctx, redis, judged.sub_id)
+    answer = give_verdict(ctx, redis, judged.sub_id)
     sub = submissions.get(ctx.engine, judged.sub_id)
     assert sub is not None and sub["state"] == "succeeded"
     verdict = sub["verdict"]
@@ -153,7 +154,7 @@ def test_the_verdict_and_the_release_are_assembled_from_the_stored_records(
     assert verdict["decision"] == "pass"
     assert f"{judged.holdout['rmse']:.6g}" not in json.dumps(verdict)  # the verdict quotes no holdout figure
 
-    release = reviews.get_release(ctx.engine, judged.sub_id)
+    release = holdout_releases.get(ctx.engine, judged.sub_id)
     assert release is not None and (release["mode"], release["spent"]) == ("ladder", 1)
     # The first figure of the default ladder is the holdout rmse at 3 significant digits.
     assert release["released"] == {"rmse": float(f"{judged.holdout['rmse']:.3g}")}
@@ -165,7 +166,7 @@ def test_a_holdout_out_of_line_with_the_folds_fails_the_verdict(ctx: WorkerConte
     frame = load_diabetes(as_frame=True).frame.sort_values("target", kind="stable").reset_index(drop=True)
     dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression", folds=5)
     judged = recorded(ctx, dataset, Ridge(alpha=0.1), frame=frame)
-    assert judge_submission(ctx, redis, judged.sub_id)["decision"] == "fail"
+    assert give_verdict(ctx, redis, judged.sub_id)["decision"] == "fail"
     verdict = submissions.get(ctx.engine, judged.sub_id)["verdict"]  # type: ignore[index]
     std = float(np.std(judged.candidate, ddof=1))
     gap = abs(judged.holdout["rmse"] - float(np.mean(judged.candidate)))
@@ -178,7 +179,7 @@ def test_failed_folds_are_left_out_of_the_paired_test(
     ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]
 ) -> None:
     judged = recorded(ctx, diabetes, Ridge(alpha=0.1), failed=((0, 3),))
-    judge_submission(ctx, redis, judged.sub_id)
+    give_verdict(ctx, redis, judged.sub_id)
     figures = rule(submissions.get(ctx.engine, judged.sub_id)["verdict"], "baseline")["figures"]  # type: ignore[index]
     assert len(judged.candidate) == 4 and (figures["cells"], figures["n_differences"], figures["df"]) == (4, 4, 3)
     t, p = corrected_t(judged.baseline - judged.candidate, judged.train_rows.mean(), judged.test_rows.mean())
@@ -188,13 +189,13 @@ def test_failed_folds_are_left_out_of_the_paired_test(
 def test_the_policy_in_force_decides_the_release_and_is_recorded(
     ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]
 ) -> None:
-    version = reviews.put_policy(ctx.engine, diabetes["id"], {"release": {"mode": "exact", "digits": 4},
+    version = policies.put(ctx.engine, diabetes["id"], {"release": {"mode": "exact", "digits": 4},
                                                               "bar": 50.0, "max_fold_std": 100.0}, "key_steward")
     judged = recorded(ctx, diabetes, Ridge(alpha=0.1))
-    judge_submission(ctx, redis, judged.sub_id)
+    give_verdict(ctx, redis, judged.sub_id)
     sub = submissions.get(ctx.engine, judged.sub_id)
     assert sub is not None and sub["policy_version"] == sub["verdict"]["policy_version"] == version == 1
-    release = reviews.get_release(ctx.engine, judged.sub_id)
+    release = holdout_releases.get(ctx.engine, judged.sub_id)
     assert release is not None and release["mode"] == "exact"
     assert release["released"] == {m: float(f"{v:.4g}") for m, v in judged.holdout.items()}
     mean = float(np.mean(judged.candidate))
@@ -209,12 +210,12 @@ def test_the_policy_in_force_decides_the_release_and_is_recorded(
 def test_the_champion_in_force_is_compared_on_the_shared_folds(
     ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]
 ) -> None:
-    reviews.put_policy(ctx.engine, diabetes["id"], {"champion_margin": 1.5}, "key_steward")
+    policies.put(ctx.engine, diabetes["id"], {"champion_margin": 1.5}, "key_steward")
     champion = recorded(ctx, diabetes, LinearRegression())
-    judge_submission(ctx, redis, champion.sub_id)
-    reviews.promote(ctx.engine, diabetes["id"], champion.sub_id, "key_steward")
+    give_verdict(ctx, redis, champion.sub_id)
+    champions.promote(ctx.engine, diabetes["id"], champion.sub_id, "key_steward")
     judged = recorded(ctx, diabetes, Ridge(alpha=0.1))
-    judge_submission(ctx, redis, judged.sub_id)
+    give_verdict(ctx, redis, judged.sub_id)
     sub = submissions.get(ctx.engine, judged.sub_id)
     assert sub is not None and sub["champion_id"] == sub["verdict"]["champion"] == champion.sub_id
     figures = rule(sub["verdict"], "champion")["figures"]
@@ -233,9 +234,9 @@ def test_a_champion_on_another_fold_plan_cannot_be_compared(
     ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]
 ) -> None:
     champion = recorded(ctx, diabetes, LinearRegression(), folds=4, validation={"plan_overridden": True})
-    reviews.promote(ctx.engine, diabetes["id"], champion.sub_id, "key_steward")
+    champions.promote(ctx.engine, diabetes["id"], champion.sub_id, "key_steward")
     judged = recorded(ctx, diabetes, Ridge(alpha=0.1))
-    judge_submission(ctx, redis, judged.sub_id)
+    give_verdict(ctx, redis, judged.sub_id)
     verdict = submissions.get(ctx.engine, judged.sub_id)["verdict"]  # type: ignore[index]
     assert rule(verdict, "champion")["outcome"] == "inconclusive"
     assert rule(verdict, "champion")["figures"]["champion_plan"] == ["kfold", 4, 0]
@@ -246,7 +247,7 @@ def test_five_by_two_cv_is_judged_by_dietterichs_t(
     ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]
 ) -> None:
     judged = recorded(ctx, diabetes, Ridge(alpha=0.1), folds=2, repeats=5, validation={"test": "5x2cv"})
-    judge_submission(ctx, redis, judged.sub_id)
+    give_verdict(ctx, redis, judged.sub_id)
     verdict = submissions.get(ctx.engine, judged.sub_id)["verdict"]  # type: ignore[index]
     assert verdict["test"] == "five_by_two_cv"
     # Dietterich (1998): t = p_1^(1) / sqrt(mean_i s_i^2), s_i^2 = sum_j (p_i^(j) - mean_j p_i^(j))^2, df 5.
@@ -264,21 +265,21 @@ def test_judging_waits_for_summary_and_holdout_and_then_runs_once(
     config = config_document(diabetes, "Ridge", metrics=METRICS)
     early = add_submission(ctx, diabetes, config)
     with pytest.raises(RuntimeError, match="no cross-validation summary yet"):
-        judge_submission(ctx, redis, early)
+        give_verdict(ctx, redis, early)
     submissions.store_summary(ctx.engine, early, {"summary": {}})
     with pytest.raises(RuntimeError, match="no holdout score yet"):
-        judge_submission(ctx, redis, early)
-    assert reviews.get_release(ctx.engine, early) is None
+        give_verdict(ctx, redis, early)
+    assert holdout_releases.get(ctx.engine, early) is None
 
     judged = recorded(ctx, diabetes, Ridge(alpha=0.1))
-    judge_submission(ctx, redis, judged.sub_id)
+    give_verdict(ctx, redis, judged.sub_id)
     first = submissions.get(ctx.engine, judged.sub_id)
-    release = reviews.get_release(ctx.engine, judged.sub_id)
-    assert judge_submission(ctx, redis, judged.sub_id) == {"submission_id": judged.sub_id, "verdict": "already judged"}
+    release = holdout_releases.get(ctx.engine, judged.sub_id)
+    assert give_verdict(ctx, redis, judged.sub_id) == {"submission_id": judged.sub_id, "verdict": "already judged"}
     again = submissions.get(ctx.engine, judged.sub_id)
     assert first is not None and again is not None and again["verdict"] == first["verdict"]
-    assert reviews.get_release(ctx.engine, judged.sub_id) == release
-    assert len(reviews.releases_since(ctx.engine, diabetes["id"], release["released_at"])) == 1  # type: ignore[index]
+    assert holdout_releases.get(ctx.engine, judged.sub_id) == release
+    assert len(holdout_releases.list_since(ctx.engine, diabetes["id"], release["released_at"])) == 1  # type: ignore[index]
 
 
 def test_a_failed_holdout_attempt_fails_the_submission_with_its_summary_kept(
@@ -289,16 +290,16 @@ def test_a_failed_holdout_attempt_fails_the_submission_with_its_summary_kept(
     submissions.store_summary(ctx.engine, sub_id, {"summary": {"rmse": {"mean": 55.0}}})
     submissions.store_holdout_once(ctx.engine, sub_id, {}, diabetes["holdout_fingerprint"], None,
                                    error="refitting on all development rows failed: ValueError (message withheld)")
-    assert judge_submission(ctx, redis, sub_id) == {"submission_id": sub_id, "decision": None, "holdout": "not scored"}
+    assert give_verdict(ctx, redis, sub_id) == {"submission_id": sub_id, "decision": None, "holdout": "not scored"}
     sub = submissions.get(ctx.engine, sub_id)
     assert sub is not None and sub["state"] == "failed" and sub["verdict"] is None
-    assert sub["error"].startswith("refitting on all development rows failed") and sub["result"] is not None
-    assert reviews.get_release(ctx.engine, sub_id) is None
+    assert sub["error"].startswith("refitting on all development rows failed") and sub["cv_summary"] is not None
+    assert holdout_releases.get(ctx.engine, sub_id) is None
 
 
 def test_a_canceled_submission_is_not_judged(ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]) -> None:
     judged = recorded(ctx, diabetes, Ridge(alpha=0.1))
-    submissions.transition(ctx.engine, judged.sub_id, "canceled", submissions.LIVE_STATES)
-    assert judge_submission(ctx, redis, judged.sub_id) == {"submission_id": judged.sub_id, "skipped": "canceled"}
+    submissions.transition(ctx.engine, judged.sub_id, "canceled", LIVE_STATES)
+    assert give_verdict(ctx, redis, judged.sub_id) == {"submission_id": judged.sub_id, "skipped": "canceled"}
     assert submissions.get(ctx.engine, judged.sub_id)["verdict"] is None  # type: ignore[index]
-    assert reviews.get_release(ctx.engine, judged.sub_id) is None
+    assert holdout_releases.get(ctx.engine, judged.sub_id) is None

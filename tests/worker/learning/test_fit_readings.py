@@ -34,7 +34,7 @@ def test_train_scores_equal_cross_validate_return_train_score(ctx: WorkerContext
     jobs.summarize(sub_id)
     sub = submissions.get(ctx.engine, sub_id)
     assert sub is not None
-    gap = sub["result"]["fit_gap"]["metrics"]
+    gap = sub["cv_summary"]["fit_gap"]["metrics"]
     for name in REGRESSION_SCORING:
         train_mean = SIGN[name] * reference[f"train_{name}"].mean()
         valid_mean = SIGN[name] * reference[f"test_{name}"].mean()
@@ -65,7 +65,7 @@ def test_readings_tell_a_deep_tree_from_a_stump(ctx: WorkerContext) -> None:
         jobs.summarize(sub_id)
         sub = submissions.get(ctx.engine, sub_id)
         assert sub is not None
-        readings[label] = sub["result"]["fit_gap"]["metrics"]
+        readings[label] = sub["cv_summary"]["fit_gap"]["metrics"]
     assert readings["deep"]["rmse"]["train_mean"] == pytest.approx(0.0, abs=1e-9)
     assert readings["deep"]["rmse"]["reading"] == VARIANCE
     assert readings["stump"]["r2"]["reading"] == BIAS
@@ -103,7 +103,7 @@ def test_learning_curve_equals_sklearn_learning_curve(ctx: WorkerContext) -> Non
         jobs.summarize(sub_id)
         sub = submissions.get(ctx.engine, sub_id)
         assert sub is not None
-        summary = sub["result"]["learning_curve"]
+        summary = sub["cv_summary"]["learning_curve"]
         assert [p["fraction"] for p in summary] == fractions
         for i, point in enumerate(summary):
             assert point["train_mean"][metric] == pytest.approx(SIGN[metric] * train[i].mean(), rel=1e-10)
@@ -174,7 +174,7 @@ def test_above_the_limit_train_scores_are_scikit_learns_on_the_sampled_rows(
     sub = submissions.get(ctx.engine, sub_id)
     assert sub is not None
     least = min(r["train_scored_rows"] for r in rows)
-    assert sub["result"]["fit_gap"]["note"].endswith(f"training scores of 5 of 5 folds come from a seeded random "
+    assert sub["cv_summary"]["fit_gap"]["note"].endswith(f"training scores of 5 of 5 folds come from a seeded random "
                                                      f"sample of their training rows (at least {least} rows)")
 
 

@@ -65,7 +65,7 @@ def test_outer_scores_equal_cross_validate_of_grid_search(ctx: WorkerContext) ->
     jobs.summarize(sub_id)
     sub = submissions.get(ctx.engine, sub_id)
     assert sub is not None
-    summary = sub["result"]["search"]
+    summary = sub["cv_summary"]["search"]
     chosen = [e.best_params_["model__alpha"] for e in reference["estimator"]]
     assert sum(c["folds"] for c in summary["chosen"]["alpha"]) == 4
     assert {c["value"]: c["folds"] for c in summary["chosen"]["alpha"]} == \
@@ -131,7 +131,7 @@ def test_naive_best_inner_score_is_more_optimistic_than_nested(ctx: WorkerContex
         jobs.summarize(sub_id)
         sub = submissions.get(ctx.engine, sub_id)
         assert sub is not None
-        summary = sub["result"]["search"]
+        summary = sub["cv_summary"]["search"]
         gaps.append(summary["naive_best_inner_mean"] - summary["nested_mean"])  # r2: greater is better
     assert np.mean(gaps) > 0, gaps
 

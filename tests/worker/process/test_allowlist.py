@@ -117,7 +117,7 @@ def test_checks_summaries_verdicts_and_folds_run_in_the_worker_process_and_every
     fold = work.enqueue_call("worker.jobs.run_fold", args=("sub_nope", 0, 0))
     summary = work.enqueue_call("worker.jobs.summarize", args=("sub_nope",))
     work.enqueue_call("worker.jobs.score_holdout", args=("sub_nope",))
-    verdict = work.enqueue_call("worker.jobs.judge", args=("sub_nope",))
+    verdict = work.enqueue_call("worker.jobs.give_verdict", args=("sub_nope",))
     work.enqueue_call("os.system", args=("true",))
     handlers = {s: signal.getsignal(s) for s in (signal.SIGINT, signal.SIGTERM)}
     try:

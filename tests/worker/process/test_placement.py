@@ -38,7 +38,7 @@ def diabetes_submission(ctx: WorkerContext) -> str:
 
 
 def test_checks_summaries_verdicts_and_folds_run_here_and_the_holdout_never() -> None:
-    for name in ("worker.jobs.check_config", "worker.jobs.summarize", "worker.jobs.judge", FOLD):
+    for name in ("worker.jobs.check_config", "worker.jobs.summarize", "worker.jobs.give_verdict", FOLD):
         assert placement.runs_in_process(name)
     for name in ("worker.jobs.score_holdout", "os.system", "worker.jobs.fold.run_fold", None):
         assert not placement.runs_in_process(name)
@@ -141,7 +141,7 @@ def test_a_job_left_ready_by_contending_dependencies_is_enqueued_after_the_next_
     redis = Redis.from_url(redis_url)
     queue = Queue(f"ready-{uuid.uuid4().hex[:8]}", connection=redis, serializer=JSONSerializer)
     blocker = queue.enqueue_call("worker.jobs.summarize", args=("sub_x",))
-    waiting = queue.enqueue_call("worker.jobs.judge", args=("sub_x",), depends_on=blocker)
+    waiting = queue.enqueue_call("worker.jobs.give_verdict", args=("sub_x",), depends_on=blocker)
     queue.remove(blocker)
     with redis.pipeline() as pipe:
         pipe.multi()

@@ -1,0 +1,23 @@
+"""The fixed words of sealfold, each list defined once: tasks, submission states, roles, release modes, decisions.
+
+Request schemas (marshmallow ``OneOf``), the records, policy parsing, the command line and the worker
+all import these lists, so a word is accepted or refused the same way everywhere.
+"""
+
+from __future__ import annotations
+
+TASKS: tuple[str, ...] = ("regression", "classification")
+
+# A submission is live until it reaches a terminal state; nothing moves it out of one.
+LIVE_STATES: tuple[str, ...] = ("queued", "running")
+TERMINAL_STATES: tuple[str, ...] = ("succeeded", "failed", "canceled")
+STATES: tuple[str, ...] = LIVE_STATES + TERMINAL_STATES
+
+ROLES: tuple[str, ...] = ("submitter", "steward", "admin")  # each role can do what the ones before it can
+
+# How a submission's holdout score is released to its submitter.
+RELEASE_MODES: tuple[str, ...] = ("exact", "ladder", "thresholdout")
+
+# A verdict's decision; each rule of a verdict has one of these outcomes, or "skipped" when it does not apply.
+DECISIONS: tuple[str, ...] = ("pass", "fail", "inconclusive")
+RULE_OUTCOMES: tuple[str, ...] = (*DECISIONS, "skipped")
