@@ -100,6 +100,7 @@ fold_results = Table(
     Column("train_rows", Integer, nullable=False),
     Column("test_rows", Integer, nullable=False),
     Column("scores", JSON),
+    Column("undefined", JSON),  # {metric: why scikit-learn could not compute it on the test rows} or null
     Column("baseline_scores", JSON),
     Column("coefficients", JSON),  # {"names": [...], "values": [[...] per output]} or null
     Column("train_scores", JSON),  # the same metrics on the fold's own training rows, or null
