@@ -491,6 +491,15 @@ class ResolvedConfigSchema(Schema):
     search = fields.Dict(metadata={"description": "when asked for: the nested search as resolved"})
 
 
+class SubmissionWarningSchema(Schema):
+    """Something the results should be read with; it does not stop the submission."""
+
+    code = fields.String(validate=validate.OneOf(("class_missing_from_training",)))
+    detail = fields.String()
+    folds = fields.List(fields.Dict(), metadata={
+        "description": "class_missing_from_training: per fold, repeat, fold and missing_classes"})
+
+
 class SubmissionSchema(Schema):
     """A submission: its state, progress and, once computed, its result."""
 
@@ -503,6 +512,8 @@ class SubmissionSchema(Schema):
     started_at = fields.String(allow_none=True, metadata=_DATETIME)
     finished_at = fields.String(allow_none=True, metadata=_DATETIME)
     error = fields.String(allow_none=True)
+    warnings = fields.List(fields.Nested(SubmissionWarningSchema), metadata={
+        "description": "what the submitter is warned of at submission (empty when nothing)"})
     config = fields.Nested(ResolvedConfigSchema)
     config_fingerprint = fields.String()
     result = fields.Nested(SubmissionResultSchema, allow_none=True)

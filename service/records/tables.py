@@ -76,6 +76,7 @@ submissions = Table(
     Column("idempotency_key", String(200)),
     Column("request_fingerprint", String(64)),
     Column("error", Text),
+    Column("warnings", JSON),  # what the submitter was warned of at submission, e.g. folds that lack a class
     Column("result", JSON),  # the summary document once computed (without holdout scores)
     Column("verdict", JSON),  # the review gate's decision, reasons and rule figures
     Column("policy_version", Integer),  # the policy version the verdict was judged under

@@ -25,6 +25,7 @@ from service.records import audit, datasets, submissions
 from service.records.keys import KeyInfo
 from service.settings import Settings
 from service.submission import config, dispatch
+from service.submission.fold_warnings import fold_plan_warnings
 
 
 def find_dataset(engine: Engine, key: KeyInfo, ref: config.DatasetRef) -> dict[str, Any]:
@@ -87,6 +88,7 @@ def submit(
         "config_fingerprint": config_fingerprint,
         "folds_total": len(dispatch.fold_cells(validation)),
         "idempotency_key": idempotency_key, "request_fingerprint": fingerprint,
+        "warnings": fold_plan_warnings(settings, dataset, validation),
     }
     try:
         submissions.insert(engine, row)
