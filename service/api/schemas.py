@@ -270,7 +270,8 @@ class ValidationOptionsSchema(Schema):
                                           "paired t-test, for small data; overrides folds and repeats"})
     learning_curve = fields.List(fields.Float(allow_nan=False), load_default=None, allow_none=True, metadata={
         "description": "fractions in (0, 1] of each training fold, increasing: CV scores at each training size "
-                       f"(the first n training rows, as scikit-learn's learning_curve); an empty list means "
+                       "(the first n of a seeded shuffle of the training rows, as scikit-learn's "
+                       "learning_curve(shuffle=True)); an empty list means "
                        f"{list(LEARNING_CURVE_DEFAULT)}", "example": [0.1, 0.5, 1.0]})
 
 
@@ -369,6 +370,9 @@ class ProgressSchema(Schema):
 
 
 class MetricSummarySchema(Schema):
+    n = fields.Integer(metadata={"description": "the folds whose score is defined: the folds summarised"})
+    undefined = fields.Integer(metadata={
+        "description": "candidate only: succeeded folds where the metric is undefined (null), left out"})
     mean = fields.Float()
     std = fields.Float()
     min = fields.Float()
@@ -384,6 +388,8 @@ class FoldScoreSchema(Schema):
     train_rows = fields.Integer()
     test_rows = fields.Integer()
     scores = fields.Dict(keys=fields.String(), values=fields.Float(), allow_none=True)
+    undefined = fields.Dict(keys=fields.String(), values=fields.String(), metadata={
+        "description": "per metric whose score is null on this fold (e.g. roc_auc on test rows of one class): why"})
     baseline_scores = fields.Dict(keys=fields.String(), values=fields.Float(), allow_none=True)
     fit_seconds = fields.Float(allow_none=True)
     score_seconds = fields.Float(allow_none=True)
@@ -454,6 +460,8 @@ class SubmissionResultSchema(Schema):
         "description": "per metric: train mean, validation mean, gap and a plain reading (evidence, not a rule)"})
     learning_curve = fields.List(fields.Dict(), allow_none=True, metadata={
         "description": "per training size: mean train and validation scores over the folds"})
+    learning_curve_note = fields.String(allow_none=True, metadata={
+        "description": "which training rows each size uses: a seeded shuffle of each training fold"})
     search = fields.Dict(allow_none=True, metadata={
         "description": "nested search: how often each value was chosen, the naive best inner score mean beside "
                        "the nested estimate"})
@@ -481,6 +489,15 @@ class ResolvedConfigSchema(Schema):
     search = fields.Dict(metadata={"description": "when asked for: the nested search as resolved"})
 
 
+class SubmissionWarningSchema(Schema):
+    """Something the results should be read with; it does not stop the submission."""
+
+    code = fields.String(validate=validate.OneOf(("class_missing_from_training",)))
+    detail = fields.String()
+    folds = fields.List(fields.Dict(), metadata={
+        "description": "class_missing_from_training: per fold, repeat, fold and missing_classes"})
+
+
 class SubmissionSchema(Schema):
     """A submission: its state, progress and, once computed, its result."""
 
@@ -493,6 +510,8 @@ class SubmissionSchema(Schema):
     started_at = fields.String(allow_none=True, metadata=_DATETIME)
     finished_at = fields.String(allow_none=True, metadata=_DATETIME)
     error = fields.String(allow_none=True)
+    warnings = fields.List(fields.Nested(SubmissionWarningSchema), metadata={
+        "description": "what the submitter is warned of at submission (empty when nothing)"})
     config = fields.Nested(ResolvedConfigSchema)
     config_fingerprint = fields.String()
     result = fields.Nested(SubmissionResultSchema, allow_none=True)

@@ -82,6 +82,7 @@ submissions = Table(
     Column("idempotency_key", String(200)),
     Column("request_fingerprint", String(64)),
     Column("error", Text),
+    Column("warnings", JSON),  # what the submitter was warned of at submission, e.g. folds that lack a class
     Column("cv_summary", JSON),  # the cross-validation summary once computed (without holdout scores)
     Column("verdict", JSON),  # the review gate's decision, reasons and rule figures
     Column("policy_version", Integer),  # the policy version the verdict was judged under
@@ -106,6 +107,7 @@ fold_results = Table(
     Column("train_rows", Integer, nullable=False),
     Column("test_rows", Integer, nullable=False),
     Column("scores", JSON),
+    Column("undefined", JSON),  # {metric: why scikit-learn could not compute it on the test rows} or null
     Column("baseline_scores", JSON),
     Column("coefficients", JSON),  # {"names": [...], "values": [[...] per output]} or null
     Column("train_scores", JSON),  # the same metrics on the fold's own training rows, or null

@@ -22,7 +22,7 @@ from service.report.charts import (
     padded_range,
 )
 from service.report.facts import ReportFacts
-from service.report.markup import Markup, element
+from service.report.markup import Markup, element, render
 
 
 def _num(value: object) -> Markup:
@@ -74,8 +74,13 @@ def _curve_part(facts: ReportFacts, curve: Sequence[dict[str, Any]] | None) -> M
     rows = [element("tr", None, _num(p.get("fraction")), _num(p.get("train_rows")),
                     _num((p.get("train_mean") or {}).get(metric)), _num((p.get("validation_mean") or {}).get(metric)),
                     _num(p.get("folds"))) for p in curve]
+    order = None
+    if facts.summary.get("learning_curve_note"):  # absent from results computed on unshuffled prefixes
+        order = element("p", {"class": "note"}, "Each size trains on the first rows of a seeded shuffle of each "
+                        "training fold, the same rows for every submission on this dataset (scikit-learn's "
+                        "learning_curve with shuffle=True), so the order of the rows in the file plays no part.")
     return Markup(element("h3", None, "Learning curve") + curve_chart(points, metric)
-                  + element("table", None, header, rows))
+                  + element("table", None, header, rows) + render(order))
 
 
 def curve_chart(points: Sequence[tuple[float, float | None, float | None]], metric: str,

@@ -31,6 +31,7 @@ def submission_document(engine: Engine, row: dict[str, Any]) -> dict[str, Any]:
         "started_at": iso(row["started_at"]),
         "finished_at": iso(row["finished_at"]),
         "error": row["error"],
+        "warnings": row.get("warnings") or [],
         "config": {k: config[k] for k in ("model", "validation", "metrics")}
         | ({"search": config["search"]} if config.get("search") else {}),
         "config_fingerprint": row["config_fingerprint"],
@@ -52,6 +53,7 @@ def _result(row: dict[str, Any], folds: list[dict[str, Any]], release: dict[str,
         "coefficients": summary.get("coefficients"),
         "fit_gap": summary.get("fit_gap"),
         "learning_curve": summary.get("learning_curve"),
+        "learning_curve_note": summary.get("learning_curve_note"),
         "search": summary.get("search"),
         "baseline": summary.get("baseline"),
         "holdout": holdout_part(release, row["state"]),  # only what the release policy lets out, never the raw score
@@ -67,7 +69,7 @@ def _fold(f: dict[str, Any]) -> dict[str, Any]:
         "scores": f["scores"], "baseline_scores": f["baseline_scores"],
         "fit_seconds": f["fit_seconds"], "score_seconds": f["score_seconds"],
     }
-    for optional in ("train_scores", "train_scored_rows", "curve", "search"):
+    for optional in ("undefined", "train_scores", "train_scored_rows", "curve", "search"):
         if f.get(optional) is not None:
             out[optional] = f[optional]
     if f["error"]:

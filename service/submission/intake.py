@@ -26,6 +26,7 @@ from service.records import audit, submissions
 from service.records.keys import KeyInfo
 from service.settings import Settings
 from service.submission import config, dispatch
+from service.submission.fold_warnings import fold_plan_warnings
 from service.submission.resolved import ResolvedConfig, ValidationPlan
 from service.vocabulary import LIVE_STATES
 
@@ -88,6 +89,7 @@ def submit(
         "config_fingerprint": config_fingerprint,
         "folds_total": len(dispatch.fold_cells(validation)),
         "idempotency_key": idempotency_key, "request_fingerprint": fingerprint,
+        "warnings": fold_plan_warnings(settings, dataset, validation),
     }
     try:
         submissions.insert(engine, row)

@@ -224,6 +224,29 @@ def split_of(plan: FoldPlan, assignment: np.ndarray, repeat: int, fold: int) -> 
     return Split(repeat, fold, train.astype(np.int64, copy=False), test.astype(np.int64, copy=False))
 
 
+def classes_missing_from_training(
+    plan: FoldPlan, y: np.ndarray, assignment: np.ndarray, repeat: int
+) -> list[dict[str, Any]]:
+    """Return the folds of one repeat whose training rows lack a class of ``y``, with the classes they lack.
+
+    A model fitted on such a fold has never seen the class; its scores still count every class (the
+    worker scores against the development rows' classes), but they judge a model that could not
+    predict it. Group, time, contiguous and shuffled k-fold plans can leave a class out of a fold's
+    training rows (a class with fewer groups, chunks or rows than folds); a stratified plan cannot:
+    every class has at least as many rows as folds, and it deals them out so each fold tests at most
+    all but one of them.
+    """
+    codes, labels = pd.factorize(y)
+    out = []
+    for fold in range(plan.folds):
+        train = assignment <= fold if plan.scheme == "time" else assignment != fold
+        present = np.bincount(codes[train & (codes >= 0)], minlength=len(labels)) > 0
+        if not present.all():
+            missing = sorted(str(label) for label, seen in zip(labels, present, strict=True) if not seen)
+            out.append({"repeat": repeat, "fold": fold, "missing_classes": missing})
+    return out
+
+
 def _test_fold_of_rows(scheme: str, folds: int, seed: int, keys: SplitKeys) -> np.ndarray:
     if scheme == "kfold":
         return _kfold(keys.n_rows, folds, seed)

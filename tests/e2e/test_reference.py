@@ -162,7 +162,12 @@ def test_nested_search_and_learning_curve_through_the_queue(stack: Stack, diabet
     curve_doc = _submit(stack, {"dataset": diabetes["id"],
                                 "model": {"estimator": "Ridge", "features": DIABETES_FEATURES},
                                 "metrics": ["rmse"], "validation": {"learning_curve": [0.5, 1.0]}})
-    _, train_scores, test_scores = learning_curve(Ridge(), X, y, cv=splits, train_sizes=[0.5, 1.0],
+    # learning_curve(shuffle=True) permutes each split's training indices and fits on their prefixes; the
+    # service's permutation is numpy's default_rng([plan seed, repeat, fold]), applied here to the splits
+    # before learning_curve (shuffle=False) takes the same prefixes.
+    shuffled = [(np.random.default_rng([seed, 0, k]).permutation(train), test)
+                for k, (train, test) in enumerate(splits)]
+    _, train_scores, test_scores = learning_curve(Ridge(), X, y, cv=shuffled, train_sizes=[0.5, 1.0],
                                                   scoring="neg_root_mean_squared_error")
     points = curve_doc["result"]["learning_curve"]
     assert [p["fraction"] for p in points] == [0.5, 1.0]

@@ -39,7 +39,8 @@ def add_dataset_row(
         "classes": sorted(str(c) for c in frame[target].unique()) if task == "classification" else None,
         "rows_total": len(frame), "rows_development": len(dev), "rows_holdout": len(hold),
         "holdout_scheme": "random", "holdout_fraction": len(hold) / len(frame), "sealing_seed": "1",
-        "fold_plan": {"scheme": "kfold", "folds": folds, "seed": seed},
+        # The plan registration gives such a dataset: stratified folds for classification.
+        "fold_plan": {"scheme": "stratified" if task == "classification" else "kfold", "folds": folds, "seed": seed},
         "fingerprint": fingerprint_frame(frame), "development_fingerprint": fingerprint_frame(dev),
         "holdout_fingerprint": fingerprint_frame(hold), "created_by": created_by, "created_at": utcnow(),
     })

@@ -23,7 +23,7 @@ from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 from worker.learning.curve import curve_points
 from worker.learning.development import DevelopmentData, column_kinds, load_development, split_for
 from worker.learning.pipeline import MODEL_STEP, baseline_estimator, build_pipeline, fit_in_place, output_feature_names
-from worker.learning.scoring import rows_to_score, score_model, training_sample
+from worker.learning.scoring import class_labels, rows_to_score, score_model, training_sample
 from worker.learning.search import build_model, search_record
 
 
@@ -41,11 +41,12 @@ def run_fold(ctx: WorkerContext, submission_id: str, repeat: int, fold: int) -> 
     curve = config.validation.learning_curve
     # Learning-curve sizes count from the first split's training rows, as scikit-learn's do.
     reference = len(split_for(ctx.settings, dataset, config.validation, keys, repeat, 0).train) if curve else None
-    model = build_model(build_pipeline(config.model, column_kinds(dataset)), config)
+    classes = class_labels(data.y) if dataset["task"] == "classification" else None
+    model = build_model(build_pipeline(config.model, column_kinds(dataset)), config, classes)
     outcome = evaluate_fold(
         model, data, split, str(dataset["task"]), config.metrics,
         linear=bool(config.linear), target=str(dataset["target"]),
-        curve=curve, config=config, curve_reference_rows=reference,
+        curve=curve, config=config, curve_reference_rows=reference, classes=classes,
     )
     stored = submissions.record_fold(ctx.engine, submission_id, repeat, fold, **outcome)
     return {"submission_id": submission_id, "repeat": repeat, "fold": fold, "status": outcome["status"],
@@ -55,7 +56,7 @@ def run_fold(ctx: WorkerContext, submission_id: str, repeat: int, fold: int) -> 
 def evaluate_fold(
     pipeline: BaseEstimator, data: DevelopmentData, split: Split, task: str, metrics: Sequence[str], *,
     linear: bool, target: str, curve: Sequence[float] | None = None, config: ResolvedConfig | None = None,
-    curve_reference_rows: int | None = None,
+    curve_reference_rows: int | None = None, classes: np.ndarray | None = None,
 ) -> dict[str, Any]:
     """Fit on the split's train rows, score on its test rows; return the fold record's fields.
 
@@ -63,8 +64,13 @@ def evaluate_fold(
     scored too, as ``cross_validate(return_train_score=True)`` does -- above ``TRAIN_SCORE_ROWS``
     rows, a seeded sample of them (``worker.learning.scoring.training_sample``), copied before the fit, which
     then may overwrite the fold's own copy of its training rows (``fit_in_place``) -- and ``curve``
-    adds learning-curve points (``worker.learning.curve``).
+    adds learning-curve points (``worker.learning.curve``). A classification is scored against
+    ``classes``, the dataset's class set (by default the development target's labels), never the
+    classes the fold's training rows happen to hold; a metric undefined on the test rows scores None
+    and its reason goes in ``undefined``.
     """
+    if classes is None and task == "classification":
+        classes = class_labels(data.y)
     X_train, X_test = data.split_features(split.train, split.test)
     y_train, y_test = data.target_of(split.train), data.target_of(split.test)
     scored = training_sample(len(split.train), split.repeat, split.fold)
@@ -74,22 +80,22 @@ def evaluate_fold(
         model = fit_in_place(pipeline, config.model)  # X_train is this fold's own copy, never read again
     fields: dict[str, Any] = {
         "train_rows": len(split.train), "test_rows": len(split.test),
-        "baseline_scores": baseline_scores(task, y_train, y_test, metrics),
+        "baseline_scores": baseline_scores(task, y_train, y_test, metrics, classes),
         "scores": None, "coefficients": None, "fit_seconds": None, "score_seconds": None, "error": None,
-        "train_scores": None, "train_scored_rows": len(y_scored), "curve": None, "search": None,
+        "train_scores": None, "train_scored_rows": len(y_scored), "curve": None, "search": None, "undefined": None,
     }
     try:
         started = time.perf_counter()
         model.fit(X_train, y_train)
         fields["fit_seconds"] = time.perf_counter() - started
         started = time.perf_counter()
-        scores, undefined = score_model(model, X_test, y_test, metrics)
+        scores, undefined = score_model(model, X_test, y_test, metrics, classes)
         fields["score_seconds"] = time.perf_counter() - started
         # The training rows passed scikit-learn's finite checks in fit a moment ago; checking them
         # again costs ~10 ms per fold at a million rows and cannot change a score (a non-finite
         # prediction still scores None: see worker.learning.scoring).
         with sklearn.config_context(assume_finite=True):
-            fields["train_scores"], _ = score_model(model, X_scored, y_scored, metrics)
+            fields["train_scores"], _ = score_model(model, X_scored, y_scored, metrics, classes)
         if config is not None:
             fields["search"] = search_record(model, config)
         if linear:
@@ -103,19 +109,26 @@ def evaluate_fold(
     fields.update(status="ok", scores=scores)
     if curve:
         fields["curve"] = curve_points(pipeline, data, split, metrics, curve, full=fields,
-                                       reference_rows=curve_reference_rows)
+                                       reference_rows=curve_reference_rows, classes=classes,
+                                       seed=curve_seed(config))
     if undefined:
+        fields["undefined"] = undefined
         fields["error"] = "; ".join(f"{name} undefined on this fold: {why}" for name, why in undefined.items())
     return fields
 
 
 def baseline_scores(
-    task: str, y_train: np.ndarray, y_test: np.ndarray, metrics: Sequence[str]
+    task: str, y_train: np.ndarray, y_test: np.ndarray, metrics: Sequence[str], classes: np.ndarray | None = None
 ) -> dict[str, float | None]:
     """Score the task's Dummy baseline; it ignores the features, so it sees a zero column."""
     baseline = baseline_estimator(task).fit(np.zeros((len(y_train), 1)), y_train)
-    scores, _ = score_model(baseline, np.zeros((len(y_test), 1)), y_test, metrics)
+    scores, _ = score_model(baseline, np.zeros((len(y_test), 1)), y_test, metrics, classes)
     return scores
+
+
+def curve_seed(config: ResolvedConfig | None) -> int:
+    """Return the seed of the learning curve's shuffles: the fold plan's, the same for every submission."""
+    return 0 if config is None else config.validation.seed
 
 
 def coefficients(pipeline: Pipeline, features: Sequence[str], target: str) -> dict[str, Any]:

@@ -26,7 +26,7 @@ from worker.jobs.losses import save_per_example
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 from worker.learning.development import column_kinds, load_development, model_frame, model_matrix, target_values
 from worker.learning.pipeline import build_pipeline, fit_in_place, uses_frame
-from worker.learning.scoring import per_example, predictions, score_predictions
+from worker.learning.scoring import class_labels, per_example, predictions, score_predictions
 from worker.learning.search import build_model
 
 
@@ -46,8 +46,10 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     features = list(config.model.features)
 
     data, _ = load_development(ctx.settings, dataset, features)
+    # Scored against the development rows' classes, as the folds are: the holdout adds none.
+    classes = class_labels(data.y) if dataset["task"] == "classification" else None
     # A search is refitted on every dev row; a plain pipeline may centre its private copy in place.
-    pipeline = fit_in_place(build_model(build_pipeline(config.model, kinds), config), config.model)
+    pipeline = fit_in_place(build_model(build_pipeline(config.model, kinds), config, classes), config.model)
     try:
         started = time.perf_counter()
         pipeline.fit(data.features_of(), data.target_of())
@@ -69,9 +71,9 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
             X = model_frame(holdout, features, kinds) if uses_frame(features, kinds) \
                 else model_matrix(holdout, features)
             y = target_values(holdout[dataset["target"]], str(dataset["task"]))
-            pred, proba, classes = predictions(pipeline, X, metrics)
-            scores, _undefined = score_predictions(y, pred, proba, classes, metrics)
-            kept = {m: v for m in metrics if (v := per_example(m, y, pred, proba, classes)) is not None}
+            pred, proba, labels = predictions(pipeline, X, metrics, classes)
+            scores, _undefined = score_predictions(y, pred, proba, labels, metrics)
+            kept = {m: v for m in metrics if (v := per_example(m, y, pred, proba, labels)) is not None}
     except MemoryError:
         raise
     except Exception as exc:

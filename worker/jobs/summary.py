@@ -1,7 +1,9 @@
 """Fan-in: turn a submission's fold records into its cross-validation summary.
 
 Per metric: mean, sample standard deviation (ddof=1), min, max and a naive 95 % t-interval over
-the J fold scores, mean +/- t(0.975, J-1) * s / sqrt(J). It is labelled naive because it treats
+the J fold scores, mean +/- t(0.975, J-1) * s / sqrt(J). A score undefined on a fold (None, its
+reason in the fold's ``undefined``) is left out: J (``n``) counts the folds used, ``undefined`` the
+succeeded folds left out. It is labelled naive because it treats
 folds as independent samples, and cross-validation folds are not: Bates, Hastie and Tibshirani
 (2024, JASA 119:1434-1445) show such intervals undercover. The baseline is summarised over the
 same folds as the candidate, so the two stay paired.
@@ -27,6 +29,7 @@ from service.submission.dispatch import fold_cells
 from service.submission.resolved import ResolvedConfig, ValidationPlan
 from service.vocabulary import LIVE_STATES, TERMINAL_STATES
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
+from worker.learning.curve import SHUFFLE_NOTE
 from worker.learning.fit_readings import curve_summary, fit_gap, search_summary
 from worker.learning.pipeline import baseline_description
 
@@ -67,14 +70,16 @@ def summary_document(
     failures += [{"repeat": r, "fold": f, "error": "no result was recorded: the fold job crashed or was lost"}
                  for r, f in cells if (r, f) not in recorded]
     failures.sort(key=lambda x: (x["repeat"], x["fold"]))
+    curve = curve_summary(ok, metrics)
     return {
-        "summary": {m: describe([r["scores"].get(m) for r in ok]) for m in metrics},
+        "summary": {m: metric_summary([r["scores"].get(m) for r in ok]) for m in metrics},
         "statistics": STATISTICS_NOTE,
         "folds_ok": len(ok),
         "failures": failures,
         "coefficients": coefficient_summary([r["coefficients"] for r in ok if r.get("coefficients")]),
         "fit_gap": fit_gap(ok, metrics),
-        "learning_curve": curve_summary(ok, metrics),
+        "learning_curve": curve,
+        "learning_curve_note": SHUFFLE_NOTE if curve else None,
         "search": search_summary(ok, metrics),
         "baseline": {
             **baseline_description(task),
@@ -82,6 +87,11 @@ def summary_document(
             "summary": {m: describe([(r["baseline_scores"] or {}).get(m) for r in ok]) for m in metrics},
         },
     }
+
+
+def metric_summary(values: Sequence[float | None]) -> dict[str, Any]:
+    """Describe one metric's fold scores; ``undefined`` counts the folds whose score is None, left out."""
+    return {**describe(values), "undefined": sum(v is None for v in values)}
 
 
 def describe(values: Sequence[float | None]) -> dict[str, Any]:

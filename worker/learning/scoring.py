@@ -1,19 +1,27 @@
 """Compute the metrics a submission asked for, with scikit-learn's own metric functions.
 
 Classification conventions (the catalog and API describe the same):
-- binary: the positive class is ``classes_[1]``, the larger label in scikit-learn's sorted order; ``f1``
+- the classes are the dataset's (the sorted labels of its development target, ``class_labels``), never
+  a fold model's ``classes_``: a model that never saw a class gets a zero probability column for it,
+  and every metric is told the full class set (``labels=``), so a fold whose training rows miss a
+  class is still scored as the task it belongs to;
+- binary: the positive class is ``classes[1]``, the larger label in scikit-learn's sorted order; ``f1``
   uses it as ``pos_label``, ``roc_auc`` and ``brier`` use the probability of it;
 - multiclass: ``f1`` is the macro average, ``roc_auc`` one-vs-rest macro; ``brier`` is binary only.
-Non-finite values (e.g. ``r2`` on a constant test fold) are reported as None.
+A metric scikit-learn cannot compute on the rows (it raises, or returns a non-finite value such as
+``roc_auc`` on a test fold with one class, or ``r2`` on a constant one) is reported as None, with the
+reason.
 """
 
 from __future__ import annotations
 
 import math
+import warnings
 from collections.abc import Callable, Sequence
 from typing import Any
 
 import numpy as np
+import pandas as pd
 from sklearn import metrics as skm
 
 from service.catalog.metrics import METRICS
@@ -70,13 +78,53 @@ def compute(
     return value if math.isfinite(value) else None
 
 
-def predictions(model: Any, X: Any, metric_names: Sequence[str]) -> tuple[Any, Any, Any]:
-    """Predict once: labels and/or probabilities as the metrics need, and the fitted classes."""
+def class_labels(y: np.ndarray) -> np.ndarray:
+    """Return the sorted distinct labels of a target: the class set every classification metric uses.
+
+    Called on the whole development target, so every fold, the baseline, the search's inner folds
+    and the holdout refit are scored against the same classes whatever rows their models saw (the
+    holdout contributes nothing). The labels are sorted as scikit-learn sorts ``classes_``
+    (``np.unique``); hashing first (``pd.unique``) keeps the sort to the few distinct values.
+    """
+    return np.unique(pd.unique(np.asarray(y)))
+
+
+def class_probabilities(proba: np.ndarray, model_classes: Any, classes: np.ndarray) -> np.ndarray:
+    """Return ``proba`` with one column per class of ``classes``, in its order; zeros for unseen classes.
+
+    A model fitted on rows that lack a class has no column for it, and its probability of that
+    class is zero; padding keeps each column the probability of the same class for every model.
+    """
+    seen = np.asarray(model_classes)
+    if len(seen) == len(classes) and np.array_equal(seen, classes):
+        return proba
+    columns = np.searchsorted(classes, seen)
+    if not (columns < len(classes)).all() or not np.array_equal(classes[columns], seen):
+        raise ValueError(f"the model's classes {seen.tolist()} are not all among the dataset's {classes.tolist()}")
+    full = np.zeros((proba.shape[0], len(classes)), dtype=np.result_type(proba.dtype, np.float64))
+    full[:, columns] = proba
+    return full
+
+
+def predictions(
+    model: Any, X: Any, metric_names: Sequence[str], classes: Any = None
+) -> tuple[Any, Any, Any]:
+    """Predict once: labels and/or probabilities as the metrics need, and the classes to score them on.
+
+    With ``classes`` (the dataset's, ``class_labels``) the probabilities get one column per class in
+    that order (``class_probabilities``) and the classes returned are those; without, the model's
+    ``classes_``.
+    """
     needs_proba = any(METRICS[m].needs_proba for m in metric_names)
     needs_pred = any(not METRICS[m].needs_proba or m in PER_EXAMPLE_FROM_LABELS for m in metric_names)
     pred = model.predict(X) if needs_pred else None
     proba = model.predict_proba(X) if needs_proba else None
-    return pred, proba, getattr(model, "classes_", None)
+    if classes is None:
+        return pred, proba, getattr(model, "classes_", None)
+    labels = np.asarray(classes)
+    if proba is not None:
+        proba = class_probabilities(np.asarray(proba), model.classes_, labels)
+    return pred, proba, labels
 
 
 def score_predictions(
@@ -86,23 +134,31 @@ def score_predictions(
     scores: dict[str, float | None] = {}
     undefined: dict[str, str] = {}
     for name in metric_names:
-        try:
-            scores[name] = compute(name, y, pred, proba, classes)
-        except ValueError as exc:
-            scores[name], undefined[name] = None, str(exc)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            try:
+                scores[name] = compute(name, y, pred, proba, classes)
+            except ValueError as exc:
+                scores[name], undefined[name] = None, str(exc)
+        if scores[name] is None and name not in undefined:
+            said = [str(w.message) for w in caught]
+            undefined[name] = "; ".join(dict.fromkeys(said)) if said else "the value is not a finite number"
+        for w in caught:  # passed on to the caller's own warning filters
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     return scores, undefined
 
 
 def score_model(
-    model: Any, X: Any, y: Any, metric_names: Sequence[str]
+    model: Any, X: Any, y: Any, metric_names: Sequence[str], classes: Any = None
 ) -> tuple[dict[str, float | None], dict[str, str]]:
     """Predict once (labels and/or probabilities as the metrics need) and compute every metric.
 
-    Returns the scores and, per metric scikit-learn could not compute on these rows (e.g. ``roc_auc``
-    on a fold with one class), its message; such a metric scores None.
+    ``classes``: the dataset's class set (``class_labels``) for a classification; without it, the
+    model's own ``classes_``. Returns the scores and, per metric scikit-learn could not compute on
+    these rows (e.g. ``roc_auc`` on a fold with one class), the reason; such a metric scores None.
     """
-    pred, proba, classes = predictions(model, X, metric_names)
-    return score_predictions(y, pred, proba, classes, metric_names)
+    pred, proba, labels = predictions(model, X, metric_names, classes)
+    return score_predictions(y, pred, proba, labels, metric_names)
 
 
 PER_EXAMPLE_FROM_LABELS = frozenset({"rmse", "mse", "mae", "accuracy"})

@@ -32,15 +32,17 @@ class MetricScorer:
     """Score a fitted model with one service metric, oriented so that greater is better.
 
     scikit-learn's searches maximise; an error metric (rmse, log_loss, ...) is negated, as its
-    ``neg_*`` scorers do. An undefined value is NaN, which the search ranks last.
+    ``neg_*`` scorers do. An undefined value is NaN, which the search ranks last. ``classes`` is the
+    dataset's class set: an inner fold's model scores against it like the outer folds do.
     """
 
-    def __init__(self, metric: str) -> None:
+    def __init__(self, metric: str, classes: np.ndarray | None = None) -> None:
         self.metric = metric
         self.sign = 1.0 if METRICS[metric].greater_is_better else -1.0
+        self.classes = classes
 
     def __call__(self, estimator: Any, X: Any, y: Any) -> float:
-        scores, _ = score_model(estimator, X, y, [self.metric])
+        scores, _ = score_model(estimator, X, y, [self.metric], self.classes)
         value = scores[self.metric]
         return math.nan if value is None else self.sign * value
 
@@ -66,15 +68,18 @@ def distribution(spec: Any, cls: type[BaseEstimator], name: str) -> Any:
     return [from_json(cls, name, v) for v in spec]
 
 
-def build_model(pipeline: Pipeline, config: ResolvedConfig) -> BaseEstimator:
-    """Return the pipeline itself, or a search over its estimator's parameters when the config has one."""
+def build_model(pipeline: Pipeline, config: ResolvedConfig, classes: np.ndarray | None = None) -> BaseEstimator:
+    """Return the pipeline itself, or a search over its estimator's parameters when the config has one.
+
+    ``classes``: the dataset's class set (classification), which the search's scorer uses.
+    """
     search = config.search
     if search is None:
         return pipeline
     cls = type(pipeline.named_steps[MODEL_STEP])
     seed = config.validation.seed
     cv = inner_cv(config.task, search.inner_folds, seed)
-    scoring = MetricScorer(config.metrics[0])
+    scoring = MetricScorer(config.metrics[0], classes)
     if search.grid is not None:
         grid = {PREFIX + k: [from_json(cls, k, v) for v in values] for k, values in search.grid.items()}
         return GridSearchCV(pipeline, grid, scoring=scoring, cv=cv, refit=True, error_score="raise")

@@ -14,7 +14,9 @@ from service.vault.folds import (
     FoldPlan,
     SplitKeys,
     check_plan_feasible,
+    classes_missing_from_training,
     default_plan_scheme,
+    fold_assignment,
     fold_split,
     fold_splits,
     split_keys_from_frame,
@@ -265,3 +267,36 @@ def _keys() -> SplitKeys:
         groups=frame["depot"].to_numpy(),
         time=frame["departed"].to_numpy().astype(np.int64),
     )
+
+
+def test_classes_missing_from_training_are_those_unshuffled_kfold_leaves_out() -> None:
+    # Iris (bundled with scikit-learn) sorted by class on a contiguous plan: scikit-learn's
+    # KFold(3, shuffle=False), whose fold k tests exactly class k, so its training rows lack it.
+    y = np.sort(iris_frame()["target"].to_numpy(), kind="stable")
+    plan = FoldPlan("contiguous", 3, 0)
+    found = classes_missing_from_training(plan, y, fold_assignment(plan, SplitKeys(len(y), y=y)), 0)
+    # Reference: the classes of the whole target absent from each KFold training part, by hand.
+    expected = [{"repeat": 0, "fold": k, "missing_classes": [str(c) for c in np.setdiff1d(np.unique(y), y[train])]}
+                for k, (train, _test) in enumerate(KFold(3, shuffle=False).split(y))]
+    assert found == [e for e in expected if e["missing_classes"]] == [
+        {"repeat": 0, "fold": k, "missing_classes": [str(k)]} for k in range(3)]
+
+
+def test_time_folds_miss_the_classes_that_only_come_later() -> None:
+    # Wine (bundled with scikit-learn) sorted by class, the row order as time: TimeSeriesSplit(3)'s
+    # training parts, by hand, lack the later classes.
+    y = np.sort(wine_frame()["target"].to_numpy(), kind="stable")
+    plan = FoldPlan("time", 3, 0)
+    keys = SplitKeys(len(y), y=y, time=np.arange(len(y)))
+    found = classes_missing_from_training(plan, y, fold_assignment(plan, keys), 0)
+    expected = [{"repeat": 0, "fold": k, "missing_classes": [str(c) for c in np.setdiff1d(np.unique(y), y[train])]}
+                for k, (train, _test) in enumerate(TimeSeriesSplit(3).split(y))]
+    assert found == [e for e in expected if e["missing_classes"]] and len(found) == 2
+
+
+@pytest.mark.parametrize("seed", SEEDS)
+def test_stratified_training_folds_hold_every_class(seed: int) -> None:
+    # Wine sorted by class: StratifiedKFold (the stratified plan's definition) trains on every class.
+    y = np.sort(wine_frame()["target"].to_numpy(), kind="stable")
+    plan = FoldPlan("stratified", 5, seed)
+    assert classes_missing_from_training(plan, y, fold_assignment(plan, SplitKeys(len(y), y=y)), 0) == []

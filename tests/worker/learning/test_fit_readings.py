@@ -78,6 +78,16 @@ def test_readings_tell_a_deep_tree_from_a_stump(ctx: WorkerContext) -> None:
         (-reference["test_score"]).mean() - (-reference["train_score"]).mean(), rel=1e-9)
 
 
+def shuffled(cv: list[tuple[np.ndarray, np.ndarray]], seed: int) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Permute each split's training indices as learning_curve(shuffle=True) does, with the plan's seeds.
+
+    scikit-learn's learning_curve with shuffle=True permutes every split's training indices once and
+    fits on their prefixes; given splits whose training indices are already permuted, its default
+    shuffle=False takes the same prefixes. The permutation is numpy's default_rng([seed, repeat, fold]).
+    """
+    return [(np.random.default_rng([seed, 0, k]).permutation(train), test) for k, (train, test) in enumerate(cv)]
+
+
 def test_learning_curve_equals_sklearn_learning_curve(ctx: WorkerContext) -> None:
     dev, hold = diabetes_parts()  # 400 rows, 5 folds: every training fold has 320 rows
     dataset = add_dataset(ctx, dev, hold, "target", "regression", scheme="kfold", folds=5, seed=4)
@@ -88,10 +98,10 @@ def test_learning_curve_equals_sklearn_learning_curve(ctx: WorkerContext) -> Non
     sub_id = add_submission(ctx, dataset, config)
     rows = run_all_folds(sub_id, 5)
 
-    # Reference: scikit-learn's learning_curve with the same splits and shuffle=False (its default), which
-    # fits on the first n training indices of each split.
+    # Reference: scikit-learn's learning_curve with the same splits, their training indices permuted as
+    # shuffle=True does (see ``shuffled``), fitting on the first n of them.
     X, y = dev[features].to_numpy(), dev["target"].to_numpy()
-    cv = list(KFold(5, shuffle=True, random_state=4).split(X))
+    cv = shuffled(list(KFold(5, shuffle=True, random_state=4).split(X)), 4)
     for metric, scoring in (("rmse", "neg_root_mean_squared_error"), ("r2", "r2")):
         sizes, train, test = learning_curve(Ridge(alpha=0.1), X, y, train_sizes=fractions, cv=cv, scoring=scoring)
         assert [p["train_rows"] for p in rows[0]["curve"]] == list(sizes) == [32, 160, 320]
@@ -126,9 +136,11 @@ def test_learning_curve_on_stratified_classification_folds(ctx: WorkerContext) -
     sub_id = add_submission(ctx, dataset, config)
     rows = run_all_folds(sub_id, 4)
 
-    # Reference: learning_curve on the vault's own stratified splits (480 rows / 4 folds: 360 training rows each).
+    # Reference: learning_curve on the vault's own stratified splits (480 rows / 4 folds: 360 training rows each),
+    # their training indices permuted as shuffle=True does (see ``shuffled``).
     plan = FoldPlan("stratified", 4, 3)
-    cv = [(s.train, s.test) for s in fold_splits(plan, split_keys_from_frame(dev, plan, "target", None, None))]
+    cv = shuffled([(s.train, s.test) for s in fold_splits(plan, split_keys_from_frame(dev, plan, "target", None,
+                                                                                       None))], 3)
     X, y = dev[features].to_numpy(), dev["target"].to_numpy()
     sizes, train, test = learning_curve(make_pipeline(StandardScaler(), LogisticRegression(max_iter=5000)),
                                         X, y, train_sizes=fractions, cv=cv, scoring="accuracy")
@@ -182,8 +194,10 @@ def test_above_the_limit_learning_curve_points_score_a_sample_of_their_training_
     ctx: WorkerContext, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     # Limit 100: the points on 160 and 320 training rows are scored on samples. Reference: Ridge fitted
-    # by scikit-learn on the first n training rows of the fold (learning_curve's rule), its predictions
-    # on the sampled rows of those n scored with sklearn.metrics.
+    # by scikit-learn on the first n rows of the fold's training indices permuted by
+    # numpy.random.default_rng([plan seed, repeat, fold]) (learning_curve's rule with shuffle=True; the
+    # last point is the fold's own fit on its training rows), its predictions on the sampled rows of
+    # those n scored with sklearn.metrics.
     monkeypatch.setattr(worker_scoring, "TRAIN_SCORE_ROWS", 100)
     dev, hold = diabetes_parts()
     dataset = add_dataset(ctx, dev, hold, "target", "regression", scheme="kfold", folds=5, seed=4)
@@ -197,7 +211,8 @@ def test_above_the_limit_learning_curve_points_score_a_sample_of_their_training_
     for k, row in enumerate(rows):
         for point in row["curve"]:
             n = point["train_rows"]
-            part = cv[k][0][:n]
+            train = cv[k][0]
+            part = train if n == len(train) else np.random.default_rng([4, 0, k]).permutation(train)[:n]
             sample = training_sample(n, 0, k)
             rows_scored = part if sample is None else part[sample]
             assert point["train_scored_rows"] == len(rows_scored)

@@ -6,12 +6,15 @@ import numpy as np
 import pytest
 from sklearn import metrics as skm
 from sklearn.datasets import load_breast_cancer, load_diabetes, load_iris
+from sklearn.dummy import DummyClassifier
 from sklearn.exceptions import UndefinedMetricWarning
 from sklearn.linear_model import LinearRegression, LogisticRegression
+from sklearn.model_selection import KFold
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 
 from service.catalog.metrics import METRICS
+from tests.support.class_sets import multiclass_reference, padded, sorted_by_class
 from worker.learning.scoring import METRIC_FUNCTIONS, compute, score_model
 
 Y_TRUE = [3, -0.5, 2, 7]
@@ -121,3 +124,55 @@ def test_non_finite_values_become_none() -> None:
     # r2 of a constant target: scikit-learn returns nan (with a warning) unless predictions are perfect.
     with pytest.warns(Warning):
         assert compute("r2", [1.0], [2.0]) is None
+
+
+@pytest.mark.parametrize("name", ["wine", "iris"])
+def test_folds_missing_a_class_score_on_the_dataset_classes_like_sklearn_with_labels(name: str) -> None:
+    # Reference: sklearn.metrics called with explicit labels= (the dataset's classes) on the fold
+    # model's probabilities padded by hand to every class, on the same KFold(3, shuffle=False) indices
+    # of wine / iris (bundled with scikit-learn) sorted by class.
+    X, y = sorted_by_class(name)
+    classes = np.unique(y)
+    metrics = ["accuracy", "f1", "roc_auc", "log_loss"]
+    missing_in_training, auc_defined_without_a_class = 0, 0
+    for train, test in KFold(3, shuffle=False).split(X):
+        model = make_pipeline(StandardScaler(), LogisticRegression(max_iter=5000)).fit(X[train], y[train])
+        scores, undefined = score_model(model, X[test], y[test], metrics, classes)
+        proba = padded(model.predict_proba(X[test]), model[-1].classes_, classes)
+        expected = multiclass_reference(y[test], model.predict(X[test]), proba, classes)
+        for metric in metrics:
+            want = expected[metric]
+            assert scores[metric] == (None if want is None else pytest.approx(want, rel=1e-12)), (name, metric)
+            # An undefined metric is None with scikit-learn's reason; a defined one has none.
+            assert (metric in undefined) == (expected[metric] is None), (name, metric, undefined)
+        lacking = len(np.unique(y[train])) < len(classes)
+        missing_in_training += lacking
+        auc_defined_without_a_class += lacking and expected["roc_auc"] is not None
+        if len(np.unique(y[test])) < len(classes):
+            assert "one class" in undefined["roc_auc"].lower()
+    assert missing_in_training >= 1  # the case this test is about occurs
+    if name == "iris":
+        assert auc_defined_without_a_class == 1  # the middle fold: scored over all three classes
+
+
+def test_a_binary_model_that_saw_one_class_is_scored_on_both() -> None:
+    # Reference: sklearn.metrics with labels=[0, 1] on the prior baseline's padded probabilities, on
+    # breast cancer (bundled with scikit-learn) sorted by class (212 malignant, 357 benign): the first
+    # 285 rows as test rows (both classes), the rest as training rows (class 1 only).
+    X, y = load_breast_cancer(return_X_y=True)
+    order = np.argsort(y, kind="stable")
+    X, y = X[order], y[order]
+    classes = np.array([0, 1])
+    train, test = np.arange(285, len(y)), np.arange(285)  # training rows: class 1 only
+    model = DummyClassifier(strategy="prior").fit(X[train], y[train])
+    assert list(model.classes_) == [1]
+    scores, undefined = score_model(model, X[test], y[test], ["accuracy", "f1", "roc_auc", "log_loss", "brier"],
+                                    classes)
+    proba = padded(model.predict_proba(X[test]), model.classes_, classes)
+    pred = model.predict(X[test])
+    assert undefined == {}
+    assert scores["accuracy"] == skm.accuracy_score(y[test], pred)
+    assert scores["f1"] == skm.f1_score(y[test], pred, labels=classes, pos_label=1)
+    assert scores["roc_auc"] == skm.roc_auc_score(y[test], proba[:, 1]) == 0.5  # one score for every row
+    assert scores["log_loss"] == skm.log_loss(y[test], proba, labels=classes)
+    assert scores["brier"] == skm.brier_score_loss(y[test], proba[:, 1], pos_label=1)

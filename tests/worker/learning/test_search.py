@@ -8,6 +8,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy import stats
+from sklearn import metrics as skm
 from sklearn.datasets import load_breast_cancer, load_diabetes
 from sklearn.linear_model import LogisticRegression, Ridge
 from sklearn.model_selection import (
@@ -21,10 +22,12 @@ from sklearn.pipeline import Pipeline
 
 from service.records import submissions
 from service.vault.folds import FoldPlan, fold_splits, split_keys_from_frame
+from tests.support.class_sets import padded, sorted_by_class
 from tests.support.folds import diabetes_parts, run_all_folds
 from tests.support.worker_records import add_dataset, add_submission, config_document
 from worker import jobs
 from worker.jobs.runtime import WorkerContext
+from worker.learning.search import MetricScorer
 
 ALPHAS = [0.01, 0.1, 1.0, 10.0, 100.0]
 
@@ -181,3 +184,18 @@ def test_check_config_validates_searched_values_in_sklearns_words(ctx: WorkerCon
     assert [p["pointer"] for p in ranged["problems"]] == ["/search/distributions/alpha"]
     unknown = check_search(dataset, "Ridge", {"grid": {"gamma": [1, 2]}})
     assert [p["pointer"] for p in unknown["problems"]] == ["/search/grid/gamma/0", "/search/grid/gamma/1"]
+
+
+def test_the_search_scorer_counts_every_class_of_the_dataset() -> None:
+    # An inner fold's model that saw two of iris's three classes (bundled with scikit-learn), scored by
+    # the search's scorer on rows of all three. Reference: sklearn.metrics.roc_auc_score with labels=
+    # the three classes on the model's probabilities padded by hand with a zero column for the unseen one.
+    X, y = sorted_by_class("iris")
+    seen = y != 1
+    model = LogisticRegression(max_iter=5000).fit(X[seen], y[seen])
+    classes = np.unique(y)
+    expected = skm.roc_auc_score(y, padded(model.predict_proba(X), model.classes_, classes), labels=classes,
+                                 multi_class="ovr")
+    assert MetricScorer("roc_auc", classes)(model, X, y) == pytest.approx(expected, rel=1e-12)
+    assert MetricScorer("log_loss", classes)(model, X, y) == pytest.approx(
+        -skm.log_loss(y, padded(model.predict_proba(X), model.classes_, classes), labels=classes), rel=1e-12)
