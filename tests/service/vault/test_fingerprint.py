@@ -6,7 +6,6 @@ from __future__ import annotations
 import hashlib
 import io
 import struct
-import time
 
 import numpy as np
 import pandas as pd
@@ -134,11 +133,3 @@ def test_names_types_order_and_text_boundaries_count() -> None:
     # A column's name cannot run into its values.
     assert fingerprint_frame(pd.DataFrame({"ab": ["c"]})) != fingerprint_frame(pd.DataFrame({"a": ["bc"]}))
 
-
-def test_a_million_rows_by_twenty_floats_takes_well_under_seconds() -> None:
-    frame = pd.DataFrame(np.random.default_rng(0).normal(size=(1_000_000, 20)))
-    started = time.perf_counter()
-    fingerprint_frame(frame)
-    elapsed = time.perf_counter() - started
-    # Budget from the task: seconds, not minutes, for the whole registration; measured ~0.15 s here.
-    assert elapsed < 5.0, f"fingerprint of 1M x 20 took {elapsed:.2f} s"

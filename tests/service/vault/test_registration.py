@@ -6,7 +6,6 @@ import io
 import json
 import math
 import statistics
-import time
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -355,7 +354,7 @@ def test_a_seal_that_does_not_read_back_is_caught_at_registration(
     _assert_no_trace(settings, engine)
 
 
-def test_a_million_rows_by_twenty_floats_registers_in_seconds(
+def test_a_million_rows_by_twenty_floats_register_with_a_one_percent_holdout(
     settings: Settings, engine: Engine, steward: KeyInfo, tmp_path: Path
 ) -> None:
     rng = np.random.default_rng(0)
@@ -363,16 +362,12 @@ def test_a_million_rows_by_twenty_floats_registers_in_seconds(
     path = tmp_path / "big.parquet"
     frame.to_parquet(path)
     big = Settings.load({"data_dir": settings.data_dir, "max_upload_bytes": 1 << 30})
-    started = time.perf_counter()
     record = _register(big, engine, steward, path, "parquet")
-    elapsed = time.perf_counter() - started
-    # 1 % held out from 1M rows (common practice, REFERENCES.md "Split sizes"). Measured ~4-5 s here, of
-    # which the balance of the seal ~1.7 s (one sort per column, then each draw ~0.2 s with a 20,000-row
-    # sample for the adversarial AUC); the bound only guards against minutes (a to_csv-based
-    # fingerprint alone takes ~25 s).
+    # 1 % held out from 1M rows (common practice, REFERENCES.md "Split sizes"). How long it takes is
+    # `make bench`'s figure (it prints the registration time), not this test's: timings here depend
+    # on whatever else the machine runs.
     assert record["rows"] == {"total": 1_000_000, "development": 990_000, "holdout": 10_000}
     assert record["balance"]["adversarial"]["rows"] == 20_000 and record["balance"]["balanced"] is True
-    assert elapsed < 20.0, f"registration of 1M x 20 took {elapsed:.1f} s"
 
 
 # -- the balance of the seal ----------------------------------------------------------------------
