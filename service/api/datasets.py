@@ -69,12 +69,21 @@ def import_path(settings: Settings, raw: str) -> Path:
     if root is None:
         raise field_error(InputError, "/path", "importing by path is disabled on this server; upload the "
                           "file as multipart/form-data instead")
+    if "\x00" in raw:
+        raise field_error(InputError, "/path", "path must not contain a NUL character (no file name has one); "
+                          "give a file name relative to the import root")
     relative = PurePosixPath(raw)
-    candidate = (root / relative).resolve()
-    if relative.is_absolute() or ".." in relative.parts or not candidate.is_relative_to(root.resolve()):
+    try:
+        candidate = (root / relative).resolve()
+        inside = candidate.is_relative_to(root.resolve())
+        found = inside and candidate.is_file()
+    except OSError as exc:  # a name the file system refuses, such as one too long
+        raise field_error(InputError, "/path", f"path is not a usable file name under the import root "
+                          f"({exc.strerror or type(exc).__name__}), got {raw!r}") from None
+    if relative.is_absolute() or ".." in relative.parts or not inside:
         raise field_error(InputError, "/path", f"path must be relative to the import root and stay inside "
                           f"it, got {raw!r}")
-    if not candidate.is_file():
+    if not found:
         raise field_error(InputError, "/path", f"no file {raw!r} under the import root")
     return candidate
 
