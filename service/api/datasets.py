@@ -18,10 +18,10 @@ from flask import Response, request, stream_with_context
 from flask.views import MethodView
 from marshmallow import ValidationError
 from werkzeug.datastructures import FileStorage
-from werkzeug.exceptions import BadRequest
 
 from service.api import SealfoldBlueprint, json_response, service_context
 from service.api.auth import current_key, team_dataset
+from service.api.bodies import request_json
 from service.api.schemas import (
     DatasetDeclarationSchema,
     DatasetImportSchema,
@@ -118,10 +118,7 @@ def _register_upload(settings: Settings) -> dict[str, Any]:
 
 def _register_import(settings: Settings) -> dict[str, Any]:
     caller = current_key()
-    body = request.get_json(silent=True)
-    if body is None:
-        raise BadRequest("the request body is not valid JSON")
-    loaded = DatasetImportSchema().load(body)
+    loaded = DatasetImportSchema().load(request_json(request))
     source = import_path(settings, loaded["path"])
     fmt = detect_format(source.name, "")
     return register_dataset(settings, service_context().engine, caller, source, fmt, _declaration(loaded))

@@ -2,19 +2,25 @@
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
+import json
+import sys
+from typing import TYPE_CHECKING, Any
 
 import pytest
 from marshmallow import ValidationError
 from redis import Redis
 from sqlalchemy.exc import OperationalError
 
+from service.api.bodies import MAX_JSON_DEPTH, nested_too_deep
 from service.api.problems import escape_pointer, flatten_messages
 from service.api.schemas import SubmissionRequestSchema
 from service.errors import FieldProblem
 
 if TYPE_CHECKING:
     from tests.support.api import Api
+
+# Python's own recursion limit: a body nested deeper than this cannot even be decoded recursively.
+BEYOND_THE_STACK = sys.getrecursionlimit() * 10
 
 
 
@@ -92,3 +98,43 @@ def test_records_db_and_queue_outages_are_503(api: Api) -> None:
         problem = api.problem(reply, 503)
         assert words in problem["detail"]
         assert "SELECT" not in reply.get_data(as_text=True) and "127.0.0.1" not in reply.get_data(as_text=True)
+
+
+_HERE = "<nested>"
+
+
+def _nested(depth: int) -> str:
+    return "[" * depth + "1" + "]" * depth
+
+
+@pytest.mark.parametrize("depth", [600, BEYOND_THE_STACK])
+def test_deeply_nested_bodies_are_422_naming_the_limit(api: Api, dataset: dict[str, Any], depth: int) -> None:
+    model = {"estimator": "Ridge", "params": {"alpha": _HERE}}
+    bodies = [
+        ("POST", "/v1/submissions", "submitter", {"dataset": dataset["id"], "model": model}),
+        ("PUT", f"/v1/datasets/{dataset['id']}/policy", "steward", {"bar": _HERE}),
+        ("POST", "/v1/datasets", "steward", {"path": _HERE}),
+        ("POST", f"/v1/datasets/{dataset['id']}/champion", "steward", {"submission": _HERE}),
+        ("POST", "/v1/keys", "admin", {"role": _HERE}),
+    ]
+    for method, path, who, shape in bodies:
+        body = json.dumps(shape).replace(json.dumps(_HERE), _nested(depth))
+        reply = api.call(who, method, path, data=body, content_type="application/json")
+        problem = api.problem(reply, 422)
+        assert f"at most {MAX_JSON_DEPTH} levels" in problem["detail"], (path, problem)
+        pointer = api.pointers(problem)[0]
+        # Where the decoder could read the body, the pointer names the field that nests too deep.
+        assert pointer == "" if depth == BEYOND_THE_STACK else pointer.split("/")[1] in shape, (path, pointer)
+        assert len(reply.get_data()) < 2000
+
+
+def test_nesting_is_measured_without_recursion() -> None:
+    # The depth of a JSON text is the number of nested arrays and objects (RFC 8259 section 9 lets a
+    # parser bound it); the top level is depth 1.
+    assert nested_too_deep(json.loads(_nested(3)), 3) is None
+    assert nested_too_deep(json.loads(_nested(4)), 3) == "/0/0/0"
+    assert nested_too_deep({"a": {"b~/c": [1, {}]}}, 3) == "/a/b~0~1c/1"
+    deep: list[Any] = []
+    for _ in range(BEYOND_THE_STACK):
+        deep = [deep]
+    assert nested_too_deep(deep, MAX_JSON_DEPTH) == "/0" * MAX_JSON_DEPTH
