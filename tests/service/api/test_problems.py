@@ -12,7 +12,7 @@ from redis import Redis
 from sqlalchemy.exc import OperationalError
 
 from service.api.bodies import MAX_JSON_DEPTH, nested_too_deep
-from service.api.problems import escape_pointer, flatten_messages
+from service.api.problems import ECHO_LIMIT, TEXT_LIMIT, cap_echoes, escape_pointer, flatten_messages
 from service.api.schemas import SubmissionRequestSchema
 from service.errors import FieldProblem
 
@@ -138,3 +138,27 @@ def test_nesting_is_measured_without_recursion() -> None:
     for _ in range(BEYOND_THE_STACK):
         deep = [deep]
     assert nested_too_deep(deep, MAX_JSON_DEPTH) == "/0" * MAX_JSON_DEPTH
+
+
+def test_a_huge_value_comes_back_capped(api: Api, dataset: dict[str, Any]) -> None:
+    huge = "x" * 200_000  # twice in the body, under the test app's 512 KiB limit
+    reply = api.call("steward", "PUT", f"/v1/datasets/{dataset['id']}/policy", json={"bar": huge, huge: 1})
+    problem = api.problem(reply, 422)
+    assert len(reply.get_data()) < 3 * 1024
+    assert f"'{'x' * (ECHO_LIMIT - 1)}…' (200000 characters)" in problem["detail"]
+    assert sorted(api.pointers(problem)) == ["/bar", f"/{'x' * (ECHO_LIMIT - 1)}… (200001 characters)"]
+    path = api.get("submitter", "/v1/submissions", query_string={"dataset": huge})
+    assert len(path.get_data()) < 1024 and "(200000 characters)" in api.problem(path, 404)["detail"]
+
+
+def test_echoes_are_capped_and_the_rest_of_the_text_kept() -> None:
+    assert cap_echoes("got 'short' and 12") == "got 'short' and 12"
+    long = "a b" * 50  # 150 characters with spaces: one quoted value
+    assert cap_echoes(f"name {long!r} is taken; it's yours") == (
+        f"name '{long[:ECHO_LIMIT - 1]}…' (150 characters) is taken; it's yours")
+    assert cap_echoes("id " + "7" * 300 + " unknown") == f"id {'7' * ECHO_LIMIT}… (300 characters) unknown"
+    many = repr(["x"] * 100_000)
+    capped = cap_echoes(f"got {many}")
+    assert len(capped) < TEXT_LIMIT + 200 and capped.endswith(f"… ({len(many) + 4} characters)")
+    ordinary = "estimator 'X' is not in the catalog; use one of: " + ", ".join(["HistGradientBoostingRegressor"] * 20)
+    assert cap_echoes(ordinary) == ordinary
