@@ -19,6 +19,7 @@ from service.api.problems import escape_pointer
 from service.errors import FieldProblem, InputError
 
 MAX_JSON_DEPTH = 32
+Trail = tuple[Any, "Trail"] | None  # (key, the parent's trail): the way from the top to a container
 
 
 def parse_json_body(raw: str | bytes) -> Any:
@@ -49,20 +50,22 @@ def nested_too_deep(document: Any, limit: int) -> str | None:
     """Return the JSON pointer of an array or object nested more than ``limit`` deep, else None.
 
     Iterative, so a document of any depth is measured without recursion; the top level is depth 1.
+    Each container keeps only its key and its parent's trail: a pointer is spelled out once, if needed.
     """
-    pending: list[tuple[Any, str, int]] = [(document, "", 1)]
+    containers = (dict, list)
+    pending: list[tuple[Any, int, Trail]] = [(document, 1, None)] if isinstance(document, containers) else []
     while pending:
-        value, pointer, depth = pending.pop()
-        if isinstance(value, dict):
-            children = [(escape_pointer(str(key)), child) for key, child in value.items()]
-        elif isinstance(value, list):
-            children = [(str(index), child) for index, child in enumerate(value)]
-        else:
-            continue
+        value, depth, trail = pending.pop()
         if depth > limit:
-            return pointer
-        pending.extend((child, f"{pointer}/{segment}", depth + 1) for segment, child in children
-                       if isinstance(child, dict | list))
+            keys: list[str] = []
+            while trail is not None:
+                key, trail = trail
+                keys.append(escape_pointer(str(key)))
+            return "".join(f"/{key}" for key in reversed(keys))
+        items = value.items() if isinstance(value, dict) else enumerate(value)
+        for key, child in items:
+            if isinstance(child, containers):
+                pending.append((child, depth + 1, (key, trail)))
     return None
 
 
