@@ -17,6 +17,7 @@ from webargs import core as webargs_core
 from webargs.flaskparser import FlaskParser, is_json_request
 
 from service.api import problems
+from service.api.bodies import parse_json_body
 from service.api.schemas import ProblemSchema
 from service.errors import UnsupportedFormat
 
@@ -57,7 +58,10 @@ else:
 
 
 class JsonOnlyParser(FlaskParser):
-    """webargs parser that answers 415 for a body that is not JSON, instead of 'missing field' 422s."""
+    """webargs parser that answers 415 for a body that is not JSON, instead of 'missing field' 422s.
+
+    The body is decoded by ``bodies.parse_json_body``, which bounds its nesting.
+    """
 
     def _raw_load_json(self, req: flask.Request) -> Any:
         if not is_json_request(req):
@@ -65,7 +69,7 @@ class JsonOnlyParser(FlaskParser):
                 return webargs_core.missing
             received = req.mimetype or "no content type"
             raise UnsupportedFormat(f"send the request body as application/json, got {received}")
-        return super()._raw_load_json(req)
+        return parse_json_body(req.get_data(cache=True).decode("utf-8"))
 
 
 class SealfoldBlueprint(_SmorestBlueprint):

@@ -18,10 +18,10 @@ from flask import Response, request, stream_with_context
 from flask.views import MethodView
 from marshmallow import ValidationError
 from werkzeug.datastructures import FileStorage
-from werkzeug.exceptions import BadRequest
 
 from service.api import SealfoldBlueprint, json_response, service_context
 from service.api.auth import current_key, team_dataset
+from service.api.bodies import request_json
 from service.api.schemas import (
     DatasetDeclarationSchema,
     DatasetImportSchema,
@@ -69,12 +69,21 @@ def import_path(settings: Settings, raw: str) -> Path:
     if root is None:
         raise field_error(InputError, "/path", "importing by path is disabled on this server; upload the "
                           "file as multipart/form-data instead")
+    if "\x00" in raw:
+        raise field_error(InputError, "/path", "path must not contain a NUL character (no file name has one); "
+                          "give a file name relative to the import root")
     relative = PurePosixPath(raw)
-    candidate = (root / relative).resolve()
-    if relative.is_absolute() or ".." in relative.parts or not candidate.is_relative_to(root.resolve()):
+    try:
+        candidate = (root / relative).resolve()
+        inside = candidate.is_relative_to(root.resolve())
+        found = inside and candidate.is_file()
+    except OSError as exc:  # a name the file system refuses, such as one too long
+        raise field_error(InputError, "/path", f"path is not a usable file name under the import root "
+                          f"({exc.strerror or type(exc).__name__}), got {raw!r}") from None
+    if relative.is_absolute() or ".." in relative.parts or not inside:
         raise field_error(InputError, "/path", f"path must be relative to the import root and stay inside "
                           f"it, got {raw!r}")
-    if not candidate.is_file():
+    if not found:
         raise field_error(InputError, "/path", f"no file {raw!r} under the import root")
     return candidate
 
@@ -109,10 +118,7 @@ def _register_upload(settings: Settings) -> dict[str, Any]:
 
 def _register_import(settings: Settings) -> dict[str, Any]:
     caller = current_key()
-    body = request.get_json(silent=True)
-    if body is None:
-        raise BadRequest("the request body is not valid JSON")
-    loaded = DatasetImportSchema().load(body)
+    loaded = DatasetImportSchema().load(request_json(request))
     source = import_path(settings, loaded["path"])
     fmt = detect_format(source.name, "")
     return register_dataset(settings, service_context().engine, caller, source, fmt, _declaration(loaded))

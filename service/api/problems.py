@@ -10,6 +10,7 @@ SQL, stack frames, anything about sealed data) ever reaches a client.
 from __future__ import annotations
 
 import logging
+import re
 from collections.abc import Iterator, Mapping
 from typing import Any
 
@@ -28,6 +29,11 @@ TYPE_PREFIX = "urn:sealfold:problem:"
 BEARER_CHALLENGE = 'Bearer realm="sealfold"'
 _INTERNAL_DETAIL = "the service hit an internal error; the operators can find it in the service log"
 _SUMMARY_PROBLEMS = 3
+ECHO_LIMIT = 100  # characters of one echoed value that a problem shows
+TEXT_LIMIT = 2000  # characters of one detail or pointer, whatever it holds (give or take the last value)
+# One token of a problem text: a quoted string (a repr; a quote after a letter is an apostrophe, not
+# an opening) or else a run of non-space characters. Possessive loops keep a long one linear.
+_TOKEN = re.compile(r"""(?<!\w)'[^'\\]*+(?:\\.[^'\\]*+)*+'|(?<!\w)"[^"\\]*+(?:\\.[^"\\]*+)*+"|\S+""")
 
 
 class InvalidToken(Unauthenticated):
@@ -47,10 +53,14 @@ def problem_response(
     problems: list[FieldProblem] | None = None,
     headers: Mapping[str, str] | None = None,
 ) -> Response:
-    """Build the problem+json response; ``errors`` is present only when there are field problems."""
-    body: dict[str, Any] = {"type": type_uri, "title": title, "status": status, "detail": detail}
+    """Build the problem+json response; ``errors`` is present only when there are field problems.
+
+    Every text goes through ``cap_echoes``: details quote the values they reject, and a value of
+    megabytes must not come back as a problem of megabytes.
+    """
+    body: dict[str, Any] = {"type": type_uri, "title": title, "status": status, "detail": cap_echoes(detail)}
     if problems:
-        body["errors"] = [{"pointer": p.pointer, "detail": p.detail} for p in problems]
+        body["errors"] = [{"pointer": cap_echoes(p.pointer), "detail": cap_echoes(p.detail)} for p in problems]
     response = current_app.response_class(
         json.dumps(body), status=status, mimetype=PROBLEM_MIMETYPE
     )
@@ -58,6 +68,41 @@ def problem_response(
         if name.lower() not in ("content-type", "content-length"):
             response.headers[name] = value
     return response
+
+
+def cap_echoes(text: str) -> str:
+    """Shorten each echoed value in a problem text to ECHO_LIMIT characters, and the text to TEXT_LIMIT.
+
+    An echoed value is a quoted string (a ``repr``) or an unbroken run of non-space characters; a
+    shortened one ends with an ellipsis and says how long it was. The whole text is cut too, for a
+    value that is neither (a long list of short strings). Reading stops at the cut, so a text of
+    megabytes costs only the length of the values that start before it.
+    """
+    if len(text) <= ECHO_LIMIT:
+        return text
+    pieces: list[str] = []
+    size = pos = 0
+    while size < TEXT_LIMIT:
+        token = _TOKEN.search(text, pos)
+        if token is None:
+            pieces.append(_shorten(text[pos:]))
+            break
+        shown = [_shorten(text[pos:token.start()]), _shorten(token.group(0))]
+        pieces += shown
+        size += sum(map(len, shown))
+        pos = token.end()
+    else:
+        if pos < len(text):
+            pieces.append(f"… ({len(text)} characters)")
+    return "".join(pieces)
+
+
+def _shorten(value: str) -> str:
+    """The first ECHO_LIMIT characters of a value, an ellipsis, its closing quote if any, and its length."""
+    if len(value) <= ECHO_LIMIT:
+        return value
+    quote = value[0] if value[0] in "'\"" and value[-1] == value[0] else ""
+    return f"{value[:ECHO_LIMIT]}…{quote} ({len(value) - 2 * len(quote)} characters)"
 
 
 def render_sealfold_error(error: SealfoldError) -> Response:

@@ -11,6 +11,9 @@ from marshmallow import EXCLUDE, Schema, fields, validate
 from service.vocabulary import DECISIONS, RELEASE_MODES
 
 _DATETIME = {"format": "date-time"}
+# OpenAPI 3.0 bounds: exclusiveMinimum/exclusiveMaximum are booleans beside minimum/maximum.
+_POSITIVE = {"minimum": 0, "exclusiveMinimum": True}
+_LEVEL = {**_POSITIVE, "maximum": 0.5, "exclusiveMaximum": True}
 
 
 class HoldoutGapSchema(Schema):
@@ -19,8 +22,8 @@ class HoldoutGapSchema(Schema):
 
 
 class ThresholdoutSchema(Schema):
-    threshold = fields.Float(metadata={"exclusiveMinimum": 0})
-    sigma = fields.Float(metadata={"exclusiveMinimum": 0})
+    threshold = fields.Float(metadata=_POSITIVE)
+    sigma = fields.Float(metadata=_POSITIVE)
     budget = fields.Integer(metadata={"minimum": 1})
 
 
@@ -30,7 +33,8 @@ class ReleaseSchema(Schema):
     budget = fields.Integer(metadata={"description": "holdout releases per submitter per dataset per window"})
     window_hours = fields.Float()
     ladder_step = fields.Float(allow_none=True, metadata={"description": "null: the parameter-free ladder"})
-    thresholdout = fields.Nested(ThresholdoutSchema)
+    thresholdout = fields.Nested(ThresholdoutSchema, allow_none=True, metadata={
+        "description": "null: none (the default for metrics in the target's units, which have no default)"})
 
 
 class PolicyBodySchema(Schema):
@@ -39,11 +43,11 @@ class PolicyBodySchema(Schema):
     primary_metric = fields.String(metadata={"example": "rmse", "description": "see GET /v1/catalog"})
     greater_is_better = fields.Boolean(metadata={"description": "must match the metric's direction"})
     bar = fields.Float(allow_none=True, metadata={"description": "absolute bar on the CV mean; null: none"})
-    baseline_alpha = fields.Float(metadata={"exclusiveMinimum": 0, "exclusiveMaximum": 0.5,
+    baseline_alpha = fields.Float(metadata={**_LEVEL,
                                             "description": "level of the one-sided test against the baseline"})
     champion_margin = fields.Float(metadata={"minimum": 0, "description": "non-inferiority margin, in the "
                                                                           "metric's units"})
-    champion_alpha = fields.Float(metadata={"exclusiveMinimum": 0, "exclusiveMaximum": 0.5})
+    champion_alpha = fields.Float(metadata=_LEVEL)
     holdout_gap = fields.Nested(HoldoutGapSchema, metadata={
         "description": "|holdout - CV mean| <= k_std * fold std + floor"})
     max_fold_std = fields.Float(allow_none=True, metadata={"description": "limit on the fold spread; null: none"})

@@ -11,11 +11,11 @@ from typing import Any
 
 from flask import Response, request
 from flask.views import MethodView
-from werkzeug.exceptions import BadRequest
 
 from service import team_scope
 from service.api import SealfoldBlueprint, json_response, service_context
 from service.api.auth import current_key, team_dataset
+from service.api.bodies import request_json
 from service.api.review_schemas import (
     BoardQuerySchema,
     BoardSchema,
@@ -41,10 +41,7 @@ def _json_body() -> Any:
     """The request body parsed as JSON: 415 when it is not JSON, 400 when it does not parse."""
     if not request.is_json:
         raise UnsupportedFormat(f"send the policy as application/json, got {request.mimetype or 'no content type'}")
-    body = request.get_json(silent=True)
-    if body is None:
-        raise BadRequest("the request body is not valid JSON")
-    return body
+    return request_json(request)
 
 
 @blp.route("/<ds_id>/policy")

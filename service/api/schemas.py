@@ -537,6 +537,8 @@ class FoldRowsSchema(Schema):
 class CatalogParamSchema(Schema):
     default = fields.Raw(allow_none=True, metadata={"description": "scikit-learn's default"})
     type = fields.String(metadata={"description": "what scikit-learn accepts, in words"})
+    deprecated = fields.Boolean(metadata={"description": "present and true when scikit-learn's docstring marks "
+                                                         "the parameter deprecated"})
 
 
 class CatalogEntrySchema(Schema):

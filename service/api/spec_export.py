@@ -1,7 +1,7 @@
 """Write the OpenAPI document of the v1 surface to ``openapi/openapi.json``.
 
 Run ``python -m service.api.spec_export`` after changing a route or a schema and commit the file;
-``tests/test_api_spec.py`` fails while the committed file and the code disagree.
+``tests/service/api/test_spec.py`` fails while the committed file and the code disagree.
 """
 
 from __future__ import annotations

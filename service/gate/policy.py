@@ -15,7 +15,7 @@ Defaults and where they come from:
   spread is estimated from the fold spread scaled to the holdout's size; two would fail about one sound
   model in twenty on chance alone).
 - release: mode "ladder" with ladder_step null (the parameter-free ladder, Blum & Hardt 2015), chosen
-  by the measurement in tests/test_release_adaptive.py; 3 significant digits; 10 releases per
+  by the measurement in tests/service/gate/test_release_adaptive.py; 3 significant digits; 10 releases per
   submitter per 24 hours (*common practice*).
 - thresholdout: threshold 0.04 and sigma 0.01 for unit-free metrics (the values of Dwork et al. 2015's
   illustration, *from memory*), budget 100 (*common practice*); null for metrics in the target's

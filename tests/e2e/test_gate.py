@@ -1,7 +1,7 @@
 """The review gate end to end on scikit-learn's breast-cancer data: verdicts, champion, the CI client.
 
 Through HTTP, real Redis and real forking workers. The statistics behind each rule are checked
-against published worked values in tests/test_stats.py; here the checks are that the gate reaches
+against published worked values in tests/service/gate/test_statistics.py; here the checks are that the gate reaches
 the decisions the rules promise on real data.
 """
 

@@ -7,17 +7,14 @@ workers, is covered by the end-to-end tests.
 
 from __future__ import annotations
 
-import dataclasses
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
-import fakeredis
 import pytest
 from sqlalchemy import Engine
 
-from service.records.keys import create_key
-from tests.support.api import WHO, Api
+from tests.support.api import Api, open_api
 from tests.support.datasets import csv_bytes, diabetes_frame
 from tests.support.records import records_engine
 
@@ -25,22 +22,8 @@ from tests.support.records import records_engine
 @pytest.fixture
 def api(tmp_path: Path) -> Iterator[Api]:
     """A fresh app: SQLite records DB and data dir under tmp_path, fakeredis, small upload limit."""
-    from service.app import create_app
-
-    import_root = tmp_path / "imports"
-    import_root.mkdir()
-    app = create_app({
-        "data_dir": tmp_path / "data", "import_root": import_root, "database_url": "",
-        "redis_url": "redis://127.0.0.1:1/0", "max_upload_bytes": 512 * 1024, "min_rows": 50,
-    })
-    ctx = app.extensions["sealfold"]
-    app.extensions["sealfold"] = dataclasses.replace(ctx, redis=fakeredis.FakeRedis())
-    tokens, key_ids = {}, {}
-    for who, (team, role) in WHO.items():
-        info, token = create_key(ctx.engine, team, role, who)
-        tokens[who], key_ids[who] = token, info.id
-    yield Api(app, app.test_client(), tokens, key_ids)
-    ctx.engine.dispose()
+    with open_api(tmp_path) as client:
+        yield client
 
 
 @pytest.fixture

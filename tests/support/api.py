@@ -2,15 +2,21 @@
 
 from __future__ import annotations
 
+import dataclasses
 import io
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any
 
+import fakeredis
 from flask import Flask
 from flask.testing import FlaskClient
 from sqlalchemy import func, select
 from werkzeug.test import TestResponse
 
+from service.records.keys import create_key
 from service.records.tables import submissions as submissions_table
 
 PROBLEM = "application/problem+json"
@@ -79,6 +85,29 @@ class Api:
     @property
     def settings(self) -> Any:
         return self.app.extensions["sealfold"].settings
+
+
+@contextmanager
+def open_api(root: Path) -> Iterator[Api]:
+    """A fresh app: SQLite records DB and data dir under ``root``, fakeredis, small upload limit, WHO's keys."""
+    from service.app import create_app
+
+    import_root = root / "imports"
+    import_root.mkdir()
+    app = create_app({
+        "data_dir": root / "data", "import_root": import_root, "database_url": "",
+        "redis_url": "redis://127.0.0.1:1/0", "max_upload_bytes": 512 * 1024, "min_rows": 50,
+    })
+    ctx = app.extensions["sealfold"]
+    app.extensions["sealfold"] = dataclasses.replace(ctx, redis=fakeredis.FakeRedis())
+    tokens, key_ids = {}, {}
+    for who, (team, role) in WHO.items():
+        info, token = create_key(ctx.engine, team, role, who)
+        tokens[who], key_ids[who] = token, info.id
+    try:
+        yield Api(app, app.test_client(), tokens, key_ids)
+    finally:
+        ctx.engine.dispose()
 
 
 def submission_body(ds: dict[str, Any], **changes: Any) -> dict[str, Any]:

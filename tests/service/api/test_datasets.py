@@ -113,6 +113,19 @@ def test_import_paths_stay_inside_the_import_root(api: Api, path: str) -> None:
     _nothing_written(api)
 
 
+@pytest.mark.parametrize(("path", "words"), [
+    ("fleet/dia\x00betes.csv", "NUL"),
+    # Linux refuses a file name over NAME_MAX = 255 bytes with ENAMETOOLONG (limits.h).
+    ("d" * 256 + ".csv", "too long"),
+])
+def test_import_paths_no_file_system_accepts_are_422_on_path(api: Api, path: str, words: str) -> None:
+    problem = api.problem(api.post("steward", "/v1/datasets", json={"path": path, **DECLARATION}), 422)
+    assert api.pointers(problem) == ["/path"]
+    assert words in problem["detail"]
+    assert str(api.settings.import_root) not in problem["detail"]
+    _nothing_written(api)
+
+
 def test_import_by_path_is_refused_when_no_root_is_configured(api: Api) -> None:
     ctx = api.app.extensions["sealfold"]
     api.app.extensions["sealfold"] = dataclasses.replace(

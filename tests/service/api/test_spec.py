@@ -3,11 +3,16 @@
 from __future__ import annotations
 
 import json
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import pytest
+from openapi_spec_validator import OpenAPIV30SpecValidator
 
 from service.api.spec_export import REGENERATE, SPEC_FILE, generate_spec
+from tests.support.openapi import schema_violations
+
+if TYPE_CHECKING:
+    from tests.support.api import Api
 
 OPEN_PATHS = {"/healthz", "/readyz", "/metrics"}
 
@@ -76,3 +81,36 @@ def test_dataset_registration_documents_both_bodies(spec: dict[str, Any]) -> Non
     upload = spec["components"]["schemas"]["DatasetUpload"]
     assert upload["properties"]["file"] == {
         "type": "string", "format": "binary", "description": "CSV or Parquet, by file name or type"}
+
+
+def test_committed_spec_is_valid_openapi_3_0() -> None:
+    # openapi-spec-validator checks the document against the OpenAPI 3.0 specification's own schema
+    # (there, exclusiveMinimum/exclusiveMaximum are booleans beside minimum/maximum).
+    committed = json.loads(SPEC_FILE.read_text(encoding="utf-8"))
+    errors = [f"{'/'.join(map(str, e.absolute_path))}: {e.message[:200]}"
+              for e in OpenAPIV30SpecValidator(committed).iter_errors()]
+    assert committed["openapi"].startswith("3.0.")
+    assert errors == []
+
+
+def test_catalog_answer_conforms_to_the_spec(api: Api) -> None:
+    reply = api.get("submitter", "/v1/catalog")
+    assert reply.status_code == 200
+    catalog = reply.get_json()
+    assert schema_violations("/v1/catalog", "get", 200, catalog) == []
+    # scikit-learn deprecates some parameters; the catalog flags them, so the spec must allow the flag.
+    flagged = [(e["name"], p) for e in catalog["estimators"] for p, spec in e["params"].items() if "deprecated" in spec]
+    assert flagged, "the catalog should flag at least one deprecated scikit-learn parameter"
+
+
+def test_policy_answers_conform_to_the_spec(api: Api, dataset: dict[str, Any]) -> None:
+    path, template = f"/v1/datasets/{dataset['id']}/policy", "/v1/datasets/{ds_id}/policy"
+    default = api.get("submitter", path).get_json()
+    # rmse is in the target's units, so the default policy has no thresholdout parameters: null.
+    assert default["release"]["thresholdout"] is None
+    assert schema_violations(template, "get", 200, default) == []
+    stored = api.call("steward", "PUT", path, json={
+        "primary_metric": "r2", "baseline_alpha": 0.01, "release": {"mode": "thresholdout"}})
+    assert stored.status_code == 200, stored.get_data(as_text=True)
+    assert schema_violations(template, "put", 200, stored.get_json()) == []
+    assert schema_violations(template, "get", 200, api.get("submitter", path).get_json()) == []
