@@ -22,7 +22,7 @@ from werkzeug.datastructures import FileStorage
 from service.api import SealfoldBlueprint, json_response, service_context
 from service.api.auth import current_key, team_dataset
 from service.api.bodies import request_json
-from service.api.schemas import (
+from service.api.dataset_schemas import (
     DatasetDeclarationSchema,
     DatasetImportSchema,
     DatasetListSchema,

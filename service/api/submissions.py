@@ -20,7 +20,7 @@ from marshmallow import EXCLUDE, Schema, fields, validate
 
 from service.api import SealfoldBlueprint, json_response, service_context
 from service.api.auth import current_key, team_dataset, team_submission
-from service.api.schemas import (
+from service.api.submission_schemas import (
     FoldRowsSchema,
     SubmissionListQuerySchema,
     SubmissionListSchema,

@@ -13,7 +13,7 @@ from sqlalchemy.exc import OperationalError
 
 from service.api.bodies import MAX_JSON_DEPTH, nested_too_deep
 from service.api.problems import ECHO_LIMIT, TEXT_LIMIT, cap_echoes, escape_pointer, flatten_messages
-from service.api.schemas import SubmissionRequestSchema
+from service.api.submission_schemas import SubmissionRequestSchema
 from service.errors import FieldProblem
 
 if TYPE_CHECKING:

@@ -12,7 +12,7 @@ from rq.job import Job
 from rq.serializers import JSONSerializer
 from sklearn.model_selection import KFold
 
-from service.api.schemas import SubmissionSchema
+from service.api.submission_schemas import SubmissionSchema
 from service.records import holdout_releases, submissions
 from service.submission import dispatch
 from service.submission.resolved import ResolvedConfig

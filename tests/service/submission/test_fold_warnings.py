@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from sklearn.model_selection import KFold
 
-from service.api.schemas import SubmissionSchema
+from service.api.submission_schemas import SubmissionSchema
 from service.vault.store import load_development_frame
 from tests.support.api import Api
 from tests.support.datasets import csv_bytes

@@ -1,7 +1,7 @@
 """The cached fold assignment: a fold job's split is the vault's own, whether the cache is cold, warm or damaged.
 
 Reference: scikit-learn's KFold / StratifiedKFold on the same rows (the vault's equality with them is
-checked in test_vault_folds.py; here the cache must not change a single index).
+checked in tests/service/vault/test_folds.py; here the cache must not change a single index).
 """
 
 from __future__ import annotations

@@ -1,0 +1,339 @@
+"""Marshmallow schemas of the submission routes: the request, its query, and the submission document.
+
+Request schemas check shape and types and turn bodies into the core's frozen values (the submission
+body becomes a ``config.SubmissionRequest``); what a value means -- a column of the dataset, an
+estimator in the catalog, a fold count in range -- is the core's to judge, so each rule lives once.
+Response schemas only describe documents for the OpenAPI spec: views send the core's documents
+unfiltered, so a field the core adds is never silently dropped.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from marshmallow import EXCLUDE, Schema, ValidationError, fields, post_load, validate, validates_schema
+
+from service.submission.config import (
+    LEARNING_CURVE_DEFAULT,
+    MAX_CANDIDATES,
+    MAX_FOLDS,
+    MAX_INNER_FOLDS,
+    MAX_REPEATS,
+    DatasetRef,
+    ModelSpec,
+    PreprocessStep,
+    SearchSpec,
+    SubmissionRequest,
+    ValidationSpec,
+)
+from service.vault import folds as fold_plans
+from service.vocabulary import DECISIONS, RELEASE_MODES, RULE_OUTCOMES, STATES
+
+_DATETIME = {"format": "date-time"}
+
+
+
+
+# -- submissions: request -------------------------------------------------------------------------
+
+class DatasetPinSchema(Schema):
+    id = fields.String(required=True)
+    fingerprint = fields.String(required=True)
+
+
+class DatasetRefField(fields.Field[DatasetRef]):
+    """``"ds_..."`` or ``{"id": "ds_...", "fingerprint": "..."}`` (pins the exact data)."""
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> DatasetRef:
+        if isinstance(value, str) and value:
+            return DatasetRef(value)
+        if isinstance(value, dict):
+            pin = DatasetPinSchema().load(value)
+            return DatasetRef(pin["id"], pin["fingerprint"])
+        raise ValidationError(f"dataset must be an id such as 'ds_...' or an object with id and "
+                              f"fingerprint, got {value!r}")
+
+
+class PreprocessStepSchema(Schema):
+    transformer = fields.String(required=True, metadata={"example": "StandardScaler"})
+    columns = fields.List(fields.String(), required=True)
+    params = fields.Dict(keys=fields.String(), load_default=dict)
+
+
+class ModelSchema(Schema):
+    estimator = fields.String(required=True, metadata={"example": "Ridge"})
+    params = fields.Dict(keys=fields.String(), load_default=dict, metadata={"example": {"alpha": 1.0}})
+    features = fields.List(fields.String(), load_default=None, allow_none=True, metadata={
+        "description": "default: every column except target, id, group and time columns"})
+    preprocess = fields.List(fields.Nested(PreprocessStepSchema), load_default=list)
+
+
+class ValidationOptionsSchema(Schema):
+    folds = fields.Integer(strict=True, load_default=None, allow_none=True, metadata={
+        "minimum": 2, "maximum": MAX_FOLDS, "description": "default: the dataset's fold plan"})
+    repeats = fields.Integer(strict=True, load_default=1, metadata={"minimum": 1, "maximum": MAX_REPEATS})
+    test = fields.String(load_default=None, allow_none=True, metadata={
+        "enum": ["5x2cv"], "description": "5x2cv: five repeats of 2-fold CV compared by Dietterich's (1998) "
+                                          "paired t-test, for small data; overrides folds and repeats"})
+    learning_curve = fields.List(fields.Float(allow_nan=False), load_default=None, allow_none=True, metadata={
+        "description": "fractions in (0, 1] of each training fold, increasing: CV scores at each training size "
+                       "(the first n of a seeded shuffle of the training rows, as scikit-learn's "
+                       "learning_curve(shuffle=True)); an empty list means "
+                       f"{list(LEARNING_CURVE_DEFAULT)}", "example": [0.1, 0.5, 1.0]})
+
+
+class SearchOptionsSchema(Schema):
+    """A small hyper-parameter search run inside every outer training fold (nested cross-validation)."""
+
+    grid = fields.Dict(keys=fields.String(), values=fields.Raw(), load_default=None,
+                       allow_none=True, metadata={"description": "estimator parameter -> values; every "
+                                                  "combination is tried (GridSearchCV)",
+                                                  "example": {"alpha": [0.1, 1, 10]}})
+    distributions = fields.Dict(keys=fields.String(), values=fields.Raw(), load_default=None, allow_none=True,
+                                metadata={"description": "estimator parameter -> a list of values, or "
+                                          "{\"uniform\": [low, high]} / {\"log_uniform\": [low, high]}; n_iter "
+                                          "draws (RandomizedSearchCV with a fixed seed)"})
+    n_iter = fields.Integer(strict=True, load_default=None, allow_none=True, metadata={
+        "minimum": 1, "maximum": MAX_CANDIDATES})
+    inner_folds = fields.Integer(strict=True, load_default=3, metadata={"minimum": 2, "maximum": MAX_INNER_FOLDS})
+
+    @validates_schema
+    def _grid_values_are_lists(self, data: dict[str, Any], **_: Any) -> None:
+        wrong = {name: [f"grid values must be a list, got {values!r}"]
+                 for name, values in (data.get("grid") or {}).items() if not isinstance(values, list)}
+        if wrong:
+            raise ValidationError({"grid": wrong})
+
+
+class SubmissionRequestSchema(Schema):
+    """A model configuration to review: declarative, never code."""
+
+    dataset = DatasetRefField(required=True, metadata={"oneOf": [
+        {"type": "string", "example": "ds_0123456789abcdef0123"},
+        {"type": "object", "required": ["id", "fingerprint"],
+         "properties": {"id": {"type": "string"}, "fingerprint": {"type": "string"}}},
+    ]})
+    model = fields.Nested(ModelSchema, required=True)
+    validation = fields.Nested(ValidationOptionsSchema,
+                               load_default=lambda: {"folds": None, "repeats": 1, "test": None})
+    metrics = fields.List(fields.String(), load_default=None, allow_none=True, metadata={
+        "description": "default: the task's default metrics; see GET /v1/catalog"})
+    label = fields.String(load_default="", validate=validate.Length(max=200))
+    search = fields.Nested(SearchOptionsSchema, load_default=None, allow_none=True, metadata={
+        "description": "nested search: each outer fold tunes on its training rows only, scored by the first "
+                       "metric; the holdout job refits the search on every development row"})
+
+    @post_load
+    def _to_request(self, data: dict[str, Any], **_: Any) -> SubmissionRequest:
+        model = data["model"]
+        return SubmissionRequest(
+            dataset=data["dataset"],
+            model=ModelSpec(
+                estimator=model["estimator"],
+                params=model["params"],
+                features=None if model["features"] is None else tuple(model["features"]),
+                preprocess=tuple(
+                    PreprocessStep(s["transformer"], tuple(s["columns"]), s["params"])
+                    for s in model["preprocess"]
+                ),
+            ),
+            validation=ValidationSpec(data["validation"]["folds"], data["validation"]["repeats"],
+                                      data["validation"].get("test"), _curve(data["validation"])),
+            metrics=None if data["metrics"] is None else tuple(data["metrics"]),
+            label=data["label"],
+            search=_search(data.get("search")),
+        )
+
+
+def _curve(validation: dict[str, Any]) -> tuple[float, ...] | None:
+    sizes = validation.get("learning_curve")
+    return None if sizes is None else tuple(float(v) for v in sizes)
+
+
+def _search(search: dict[str, Any] | None) -> SearchSpec | None:
+    if search is None:
+        return None
+    grid = search["grid"]
+    return SearchSpec(
+        grid=None if grid is None else {k: tuple(v) for k, v in grid.items()},
+        distributions=search["distributions"], n_iter=search["n_iter"], inner_folds=search["inner_folds"],
+    )
+
+
+class SubmissionListQuerySchema(Schema):
+    class Meta:
+        unknown = EXCLUDE
+
+    limit = fields.Integer(load_default=50, validate=validate.Range(1, 200))
+    cursor = fields.String(load_default=None, metadata={"description": "next_cursor of the previous page"})
+    dataset = fields.String(load_default=None, metadata={"description": "only submissions on this dataset"})
+
+
+# -- submissions: response ------------------------------------------------------------------------
+
+class ProgressSchema(Schema):
+    folds_done = fields.Integer()
+    folds_total = fields.Integer()
+
+
+class MetricSummarySchema(Schema):
+    n = fields.Integer(metadata={"description": "the folds whose score is defined: the folds summarised"})
+    undefined = fields.Integer(metadata={
+        "description": "candidate only: succeeded folds where the metric is undefined (null), left out"})
+    mean = fields.Float()
+    std = fields.Float()
+    min = fields.Float()
+    max = fields.Float()
+    naive_interval_95 = fields.List(fields.Float(), metadata={
+        "description": "treats folds as independent, which they are not: read it as too narrow"})
+
+
+class FoldScoreSchema(Schema):
+    fold = fields.Integer()
+    repeat = fields.Integer()
+    status = fields.String(validate=validate.OneOf(("ok", "failed")))
+    train_rows = fields.Integer()
+    test_rows = fields.Integer()
+    scores = fields.Dict(keys=fields.String(), values=fields.Float(), allow_none=True)
+    undefined = fields.Dict(keys=fields.String(), values=fields.String(), metadata={
+        "description": "per metric whose score is null on this fold (e.g. roc_auc on test rows of one class): why"})
+    baseline_scores = fields.Dict(keys=fields.String(), values=fields.Float(), allow_none=True)
+    fit_seconds = fields.Float(allow_none=True)
+    score_seconds = fields.Float(allow_none=True)
+    error = fields.String(metadata={"description": "failed folds only: the estimator's message"})
+    train_scores = fields.Dict(keys=fields.String(), values=fields.Float(allow_none=True), metadata={
+        "description": "the same metrics on the fold's training rows (cross_validate's return_train_score); "
+                       "above 100,000 training rows, on a seeded random sample of about 100,000 of them"})
+    train_scored_rows = fields.Integer(metadata={
+        "description": "how many training rows train_scores were computed on (train_rows, or the sample's size)"})
+    curve = fields.List(fields.Dict(), metadata={
+        "description": "learning curve: per size, fraction, train_rows, train_scores (on train_scored_rows of "
+                       "them) and scores"})
+    search = fields.Dict(metadata={"description": "nested search: best_params, best_inner_score, scoring"})
+
+
+class CrossValidationSchema(Schema):
+    folds = fields.List(fields.Nested(FoldScoreSchema))
+    summary = fields.Dict(keys=fields.String(), values=fields.Nested(MetricSummarySchema), allow_none=True)
+    failures = fields.List(fields.Dict())
+
+
+class BaselineSchema(Schema):
+    estimator = fields.String()
+    summary = fields.Dict(keys=fields.String(), values=fields.Nested(MetricSummarySchema))
+
+
+class HoldoutResultSchema(Schema):
+    """Only what the release policy released, once: never the raw score, rows or predictions."""
+
+    released = fields.Boolean()
+    mode = fields.String(allow_none=True, validate=validate.OneOf(RELEASE_MODES),
+                         metadata={"description": "null until the holdout job ran"})
+    scores = fields.Dict(keys=fields.String(), values=fields.Float(), allow_none=True)
+    withheld_until = fields.String(allow_none=True, metadata={
+        **_DATETIME, "description": "when withheld: when the submitter's release budget returns"})
+    note = fields.String(allow_none=True)
+
+
+class VerdictRuleSchema(Schema):
+    rule = fields.String(validate=validate.OneOf(("baseline", "bar", "champion", "holdout_gap", "fold_stability")))
+    outcome = fields.String(validate=validate.OneOf(RULE_OUTCOMES))
+    sentence = fields.String()
+    figures = fields.Dict()
+
+
+class VerdictSchema(Schema):
+    decision = fields.String(validate=validate.OneOf(DECISIONS))
+    reasons = fields.List(fields.String(), metadata={"description": "one sentence per rule, failures first"})
+    rules = fields.List(fields.Nested(VerdictRuleSchema))
+    primary_metric = fields.String()
+    test = fields.String(validate=validate.OneOf(("corrected_resampled_t", "five_by_two_cv")))
+    policy_version = fields.Integer(metadata={"description": "the policy version it was judged under"})
+    champion = fields.String(allow_none=True, metadata={"description": "the champion compared with"})
+
+
+class ProvenanceSchema(Schema):
+    dataset_fingerprint = fields.String()
+    config_fingerprint = fields.String()
+    fold_plan = fields.Dict()
+    versions = fields.Dict(keys=fields.String(), values=fields.String())
+
+
+class SubmissionResultSchema(Schema):
+    cv = fields.Nested(CrossValidationSchema)
+    coefficients = fields.Dict(allow_none=True, metadata={
+        "description": "linear models: per-fold coefficients with their mean and spread"})
+    fit_gap = fields.Dict(allow_none=True, metadata={
+        "description": "per metric: train mean, validation mean, gap and a plain reading (evidence, not a rule)"})
+    learning_curve = fields.List(fields.Dict(), allow_none=True, metadata={
+        "description": "per training size: mean train and validation scores over the folds"})
+    learning_curve_note = fields.String(allow_none=True, metadata={
+        "description": "which training rows each size uses: a seeded shuffle of each training fold"})
+    search = fields.Dict(allow_none=True, metadata={
+        "description": "nested search: how often each value was chosen, the naive best inner score mean beside "
+                       "the nested estimate"})
+    baseline = fields.Nested(BaselineSchema, allow_none=True)
+    holdout = fields.Nested(HoldoutResultSchema, allow_none=True)
+    verdict = fields.Nested(VerdictSchema, allow_none=True)
+    provenance = fields.Nested(ProvenanceSchema, allow_none=True)
+
+
+class ResolvedValidationSchema(Schema):
+    scheme = fields.String(validate=validate.OneOf(fold_plans.FOLD_SCHEMES))
+    folds = fields.Integer()
+    seed = fields.Integer()
+    repeats = fields.Integer()
+    plan_overridden = fields.Boolean(metadata={"description": "folds differ from the dataset's fold plan"})
+    learning_curve = fields.List(fields.Float(), metadata={"description": "when asked for: the training sizes"})
+
+
+class ResolvedConfigSchema(Schema):
+    """The configuration as the service resolved it: defaults filled in, the fold plan fixed."""
+
+    model = fields.Nested(ModelSchema)
+    validation = fields.Nested(ResolvedValidationSchema)
+    metrics = fields.List(fields.String())
+    search = fields.Dict(metadata={"description": "when asked for: the nested search as resolved"})
+
+
+class SubmissionWarningSchema(Schema):
+    """Something the results should be read with; it does not stop the submission."""
+
+    code = fields.String(validate=validate.OneOf(("class_missing_from_training",)))
+    detail = fields.String()
+    folds = fields.List(fields.Dict(), metadata={
+        "description": "class_missing_from_training: per fold, repeat, fold and missing_classes"})
+
+
+class SubmissionSchema(Schema):
+    """A submission: its state, progress and, once computed, its result."""
+
+    id = fields.String()
+    dataset = fields.String()
+    state = fields.String(validate=validate.OneOf(STATES))
+    label = fields.String()
+    progress = fields.Nested(ProgressSchema)
+    created_at = fields.String(metadata=_DATETIME)
+    started_at = fields.String(allow_none=True, metadata=_DATETIME)
+    finished_at = fields.String(allow_none=True, metadata=_DATETIME)
+    error = fields.String(allow_none=True)
+    warnings = fields.List(fields.Nested(SubmissionWarningSchema), metadata={
+        "description": "what the submitter is warned of at submission (empty when nothing)"})
+    config = fields.Nested(ResolvedConfigSchema)
+    config_fingerprint = fields.String()
+    result = fields.Nested(SubmissionResultSchema, allow_none=True)
+
+
+class SubmissionListSchema(Schema):
+    submissions = fields.List(fields.Nested(SubmissionSchema))
+    next_cursor = fields.String(allow_none=True, metadata={"description": "absent or null on the last page"})
+
+
+class FoldTestRowsSchema(Schema):
+    fold = fields.Integer()
+    repeat = fields.Integer()
+    test_row_ids = fields.List(fields.String(), metadata={"description": "development row_id values"})
+
+
+class FoldRowsSchema(Schema):
+    folds = fields.List(fields.Nested(FoldTestRowsSchema))
