@@ -1,10 +1,7 @@
 """Marshmallow schemas of the dataset routes: the registration request and the dataset document.
 
-Request schemas check shape and types and turn bodies into the core's frozen values (the submission
-body becomes a ``config.SubmissionRequest``); what a value means -- a column of the dataset, an
-estimator in the catalog, a fold count in range -- is the core's to judge, so each rule lives once.
-Response schemas only describe documents for the OpenAPI spec: views send the core's documents
-unfiltered, so a field the core adds is never silently dropped.
+
+Request and response schemas divide their work as ``service.api.schemas`` describes.
 """
 
 from __future__ import annotations
@@ -18,7 +15,6 @@ from service.vault.sealing import HOLDOUT_SCHEMES
 from service.vocabulary import TASKS
 
 _DATETIME = {"format": "date-time"}
-
 
 
 # -- datasets -------------------------------------------------------------------------------------

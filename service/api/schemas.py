@@ -16,7 +16,6 @@ from service.vocabulary import ROLES, TASKS
 _DATETIME = {"format": "date-time"}
 
 
-
 # -- errors ---------------------------------------------------------------------------------------
 
 class FieldProblemSchema(Schema):

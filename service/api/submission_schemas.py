@@ -1,10 +1,7 @@
 """Marshmallow schemas of the submission routes: the request, its query, and the submission document.
 
-Request schemas check shape and types and turn bodies into the core's frozen values (the submission
-body becomes a ``config.SubmissionRequest``); what a value means -- a column of the dataset, an
-estimator in the catalog, a fold count in range -- is the core's to judge, so each rule lives once.
-Response schemas only describe documents for the OpenAPI spec: views send the core's documents
-unfiltered, so a field the core adds is never silently dropped.
+
+Request and response schemas divide their work as ``service.api.schemas`` describes.
 """
 
 from __future__ import annotations
@@ -30,8 +27,6 @@ from service.vault import folds as fold_plans
 from service.vocabulary import DECISIONS, RELEASE_MODES, RULE_OUTCOMES, STATES
 
 _DATETIME = {"format": "date-time"}
-
-
 
 
 # -- submissions: request -------------------------------------------------------------------------

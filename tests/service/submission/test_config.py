@@ -17,19 +17,9 @@ from service.submission.config import (
     config_fingerprint,
     resolve,
 )
+from tests.support.declared import ROUTES
 
-DATASET: dict[str, Any] = {
-    "id": "ds_1", "task": "regression", "target": "fuel_litres", "id_column": "route_id",
-    "group_column": None, "time_column": None, "classes": None,
-    "columns": [
-        {"name": "route_id", "kind": "categorical", "dtype": "object"},
-        {"name": "distance_km", "kind": "numeric", "dtype": "float64"},
-        {"name": "stops", "kind": "numeric", "dtype": "int64"},
-        {"name": "depot", "kind": "categorical", "dtype": "object"},
-        {"name": "fuel_litres", "kind": "numeric", "dtype": "float64"},
-    ],
-    "fold_plan": {"scheme": "kfold", "folds": 5, "seed": 42},
-}
+DATASET = ROUTES
 
 
 def _request(model: ModelSpec, **kw: Any) -> SubmissionRequest:

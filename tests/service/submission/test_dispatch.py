@@ -8,10 +8,7 @@ its registries), and job ids are spelled out as the format ``<sub>-fold-<repeat>
 from __future__ import annotations
 
 import dataclasses
-import uuid
-from collections.abc import Iterator
 from datetime import timedelta
-from pathlib import Path
 from typing import Any
 
 import pytest
@@ -33,19 +30,6 @@ from service.submission.resolved import ValidationPlan
 from service.vocabulary import LIVE_STATES
 from tests.support.frames import diabetes_frame
 from tests.support.records import add_dataset_row
-
-
-@pytest.fixture
-def redis(redis_url: str) -> Iterator[Redis]:
-    client = Redis.from_url(redis_url)
-    yield client
-    client.close()
-
-
-@pytest.fixture
-def settings(tmp_path: Path) -> Settings:
-    """Settings with a queue no other test uses."""
-    return Settings.load({"data_dir": tmp_path, "queue_name": f"reconcile-{uuid.uuid4().hex[:10]}"}, environ={})
 
 
 @pytest.fixture

@@ -7,9 +7,6 @@ configuration check answered in-process.
 
 from __future__ import annotations
 
-import uuid
-from collections.abc import Iterator
-from pathlib import Path
 from typing import Any
 
 import pytest
@@ -34,20 +31,6 @@ from tests.support.frames import breast_cancer_frame, diabetes_frame
 from tests.support.records import add_dataset_row
 from worker.jobs import check
 from worker.jobs.runtime import WorkerContext
-
-
-@pytest.fixture
-def redis(redis_url: str) -> Iterator[Redis]:
-    client = Redis.from_url(redis_url)
-    yield client
-    client.close()
-
-
-@pytest.fixture
-def settings(tmp_path: Path) -> Settings:
-    """Settings with a queue no other test uses."""
-    return Settings.load({"data_dir": tmp_path / "records", "queue_name": f"intake-{uuid.uuid4().hex[:10]}"},
-                         environ={})
 
 
 @pytest.fixture

@@ -20,19 +20,7 @@ from service.submission.config import (
 )
 from service.submission.resolved import ResolvedConfig, ValidationPlan
 from service.vault.folds import FoldPlan
-
-ROUTES: dict[str, Any] = {
-    "id": "ds_1", "task": "regression", "target": "fuel_litres", "id_column": "route_id",
-    "group_column": None, "time_column": None, "classes": None,
-    "columns": [
-        {"name": "route_id", "kind": "categorical", "dtype": "object"},
-        {"name": "distance_km", "kind": "numeric", "dtype": "float64"},
-        {"name": "stops", "kind": "numeric", "dtype": "int64"},
-        {"name": "depot", "kind": "categorical", "dtype": "object"},
-        {"name": "fuel_litres", "kind": "numeric", "dtype": "float64"},
-    ],
-    "fold_plan": {"scheme": "kfold", "folds": 5, "seed": 42},
-}
+from tests.support.declared import ROUTES
 
 GRID_REQUEST = SubmissionRequest(
     dataset=DatasetRef("ds_1"),
