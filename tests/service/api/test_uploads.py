@@ -139,3 +139,42 @@ def test_spool_files_left_by_a_killed_upload_are_removed_at_start_up(tmp_path: P
         assert live.path_of(receiving).exists()
     assert list(directory.iterdir()) == []
     app.extensions["sealfold"].engine.dispose()
+
+
+@pytest.mark.slow
+@pytest.mark.timeout(120)
+def test_under_gunicorn_an_anonymous_upload_is_answered_before_its_body_is_sent(tmp_path: Path) -> None:
+    """Send only the headers of a 1 MB upload: the 401 comes back while the server still waits for the body."""
+    import os
+    import socket
+    import subprocess
+    import sys
+    import time
+
+    from tests.support.servers import free_port
+
+    port = free_port()
+    env = {**os.environ, "SEALFOLD_DATA_DIR": str(tmp_path), "DATABASE_URL": "", "REDIS_URL": "redis://127.0.0.1:1/0"}
+    log = (tmp_path / "gunicorn.log").open("wb")
+    server = subprocess.Popen([sys.executable, "-m", "gunicorn", "--bind", f"127.0.0.1:{port}", "--workers", "1",
+                               "service.app:create_app()"], env=env, stdout=log, stderr=log)
+    try:
+        deadline = time.monotonic() + 60
+        while True:
+            try:
+                sock = socket.create_connection(("127.0.0.1", port), timeout=1)
+                break
+            except OSError:
+                assert server.poll() is None and time.monotonic() < deadline, (tmp_path / "gunicorn.log").read_text()
+                time.sleep(0.1)
+        with sock:
+            sock.settimeout(30)
+            sock.sendall(f"POST /v1/datasets HTTP/1.1\r\nHost: 127.0.0.1\r\nContent-Length: {len(MEGABYTE)}\r\n"
+                         f"Content-Type: multipart/form-data; boundary={BOUNDARY}\r\n\r\n".encode())
+            answer = sock.recv(65536)
+        assert answer.startswith(b"HTTP/1.1 401 "), answer[:200]
+        assert b"application/problem+json" in answer
+    finally:
+        server.terminate()
+        server.wait(timeout=30)
+        log.close()
