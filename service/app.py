@@ -3,6 +3,7 @@
 Settings are layered once (defaults, environment, overrides); the records engine and the Redis
 client are built here and handed to the views through ``app.extensions["sealfold"]``. Building
 the app opens no connection: the engine connects on first use, the Redis client on first command.
+It does remove the upload spool files a killed request left behind (``service.vault.spool``).
 """
 
 from __future__ import annotations
@@ -18,6 +19,7 @@ from service.api import EXTENSION_KEY, SealfoldApi, ServiceContext, register_blu
 from service.api.ops import RequestTally, count_request
 from service.records.engine import make_engine
 from service.settings import Settings
+from service.vault.spool import sweep_spool
 
 REDIS_CONNECT_TIMEOUT_SECONDS = 5.0
 
@@ -25,6 +27,7 @@ REDIS_CONNECT_TIMEOUT_SECONDS = 5.0
 def create_app(overrides: Mapping[str, Any] | None = None) -> Flask:
     """Return a configured app; ``overrides`` are Settings fields (tests pass data_dir, redis_url...)."""
     settings = Settings.load(overrides)
+    sweep_spool(settings)
     app = Flask("service")
     app.config.update(
         MAX_CONTENT_LENGTH=settings.max_upload_bytes,

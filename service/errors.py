@@ -15,7 +15,7 @@ Foreign errors (marshmallow, SQL, RQ, Redis) are translated where they cross int
     +-- Forbidden                403
     +-- NotFound                 404
     +-- Conflict                 409  (fingerprint mismatch, state does not allow the action)
-    +-- Unavailable              503  queue or worker not reachable
+    +-- Unavailable              503  queue, worker or records DB not reachable, or the records DB busy
     +-- SealBroken               500  a sealed file no longer matches its fingerprint
 """
 

@@ -21,6 +21,8 @@ _ENV_NAMES: dict[str, str] = {
     "redis_url": "REDIS_URL",
     "import_root": "SEALFOLD_IMPORT_ROOT",
     "max_upload_bytes": "SEALFOLD_MAX_UPLOAD_BYTES",
+    "db_statement_timeout_seconds": "SEALFOLD_DB_STATEMENT_TIMEOUT",
+    "db_lock_timeout_seconds": "SEALFOLD_DB_LOCK_TIMEOUT",
     "queue_name": "SEALFOLD_QUEUE",
     "fold_timeout_seconds": "SEALFOLD_FOLD_TIMEOUT",
     "check_timeout_seconds": "SEALFOLD_CHECK_TIMEOUT",
@@ -38,6 +40,9 @@ class Settings:
     redis_url: str = "redis://127.0.0.1:6379/0"
     import_root: Path | None = None  # None: importing by path is disabled
     max_upload_bytes: int = 512 * 1024 * 1024
+    # PostgreSQL only: a statement, or a wait for a lock, that runs longer fails (0: no limit).
+    db_statement_timeout_seconds: float = 5.0
+    db_lock_timeout_seconds: float = 2.0
     queue_name: str = "sealfold"
     fold_timeout_seconds: int = 3600
     check_timeout_seconds: float = 10.0
@@ -48,6 +53,9 @@ class Settings:
     def __post_init__(self) -> None:
         if self.max_upload_bytes < 1024:
             raise SettingsError(f"max_upload_bytes must be at least 1024, got {self.max_upload_bytes}")
+        for name in ("db_statement_timeout_seconds", "db_lock_timeout_seconds"):
+            if getattr(self, name) < 0:
+                raise SettingsError(f"{name} must be 0 (no limit) or positive, got {getattr(self, name)}")
         if self.fold_timeout_seconds < 1:
             raise SettingsError(f"fold_timeout_seconds must be positive, got {self.fold_timeout_seconds}")
         if self.min_rows < 10:

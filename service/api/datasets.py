@@ -3,21 +3,21 @@
 Dataset documents are shaped for the caller's role (``records.datasets.public_view``): the balance
 table of the seal reaches stewards only. Another team's dataset stays a 404 (``auth.team_dataset``).
 
-Registration takes a multipart upload or, as JSON, a path under the configured import root. An
-upload is spooled to a temporary file under the data dir (not held in memory twice) and removed
-afterwards whatever happens; ``service.vault.registration`` removes its own partial files on failure.
+Registration takes a multipart upload or, as JSON, a path under the configured import root. The
+key, its role and a declared Content-Length are checked before a byte of the body is read; the file
+part then streams into a spool file under the data dir (``service.vault.spool``), never memory, and
+is removed afterwards whatever happens; ``service.vault.registration`` removes its own partial files.
 """
 
 from __future__ import annotations
 
-import tempfile
 from pathlib import Path, PurePosixPath
-from typing import Any
+from typing import IO, Any
 
 from flask import Response, request, stream_with_context
 from flask.views import MethodView
 from marshmallow import ValidationError
-from werkzeug.datastructures import FileStorage
+from werkzeug.datastructures import FileStorage, MultiDict
 
 from service.api import SealfoldBlueprint, json_response, service_context
 from service.api.auth import current_key, team_dataset
@@ -29,10 +29,11 @@ from service.api.dataset_schemas import (
     DatasetSchema,
     DatasetUploadSchema,
 )
-from service.errors import InputError, UnsupportedFormat, field_error
+from service.errors import InputError, PayloadTooLarge, UnsupportedFormat, field_error
 from service.records import datasets
 from service.settings import Settings
 from service.vault.registration import DatasetDeclaration, register_dataset
+from service.vault.spool import UploadSpool
 from service.vault.store import iter_development_csv
 
 blp = SealfoldBlueprint("datasets", __name__, url_prefix="/v1/datasets",
@@ -95,25 +96,52 @@ def _declaration(loaded: dict[str, Any]) -> DatasetDeclaration:
 
 def _register_upload(settings: Settings) -> dict[str, Any]:
     caller = current_key()
-    messages: dict[str, Any] = {}
-    try:
-        loaded = DatasetDeclarationSchema().load(request.form.to_dict())
-    except ValidationError as exc:
-        messages.update(exc.messages_dict)
-    upload: FileStorage | None = request.files.get("file")
-    if upload is None or not upload.filename:
-        messages["file"] = ["send the dataset as the multipart file field 'file'"]
-    if messages:
-        raise ValidationError(messages)
-    assert upload is not None
-    fmt = detect_format(upload.filename or "", upload.mimetype or "")
-    spool_dir = settings.data_dir / "uploads"
-    spool_dir.mkdir(parents=True, exist_ok=True)
-    with tempfile.TemporaryDirectory(dir=spool_dir) as tmp:
-        spooled = Path(tmp) / f"upload.{fmt}"
-        upload.save(spooled)
-        return register_dataset(settings, service_context().engine, caller, spooled, fmt,
+    refuse_declared_oversize(settings.max_upload_bytes)
+    with UploadSpool(settings) as spool:
+        form, files = _receive_multipart(spool)
+        messages: dict[str, Any] = {}
+        try:
+            loaded = DatasetDeclarationSchema().load(form.to_dict())
+        except ValidationError as exc:
+            messages.update(exc.messages_dict)
+        upload: FileStorage | None = files.get("file")
+        if upload is None or not upload.filename:
+            messages["file"] = ["send the dataset as the multipart file field 'file'"]
+        if messages:
+            raise ValidationError(messages)
+        assert upload is not None
+        fmt = detect_format(upload.filename or "", upload.mimetype or "")
+        upload.stream.flush()
+        return register_dataset(settings, service_context().engine, caller, spool.path_of(upload.stream), fmt,
                                 _declaration(loaded))
+
+
+def refuse_declared_oversize(limit: int) -> None:
+    """Answer 413 for a declared Content-Length over ``limit`` before a byte of the body is read."""
+    declared = request.content_length
+    if declared is not None and declared > limit:
+        raise PayloadTooLarge(f"the request body of {declared} bytes exceeds the limit of {limit} bytes; "
+                              f"send a smaller file")
+
+
+def _receive_multipart(spool: UploadSpool) -> tuple[MultiDict[str, str], MultiDict[str, FileStorage]]:
+    """Parse the multipart body, writing each file part straight into a spool file.
+
+    ``request.stream`` stops at the app's MAX_CONTENT_LENGTH, a body without a declared length
+    (chunked) included, with a 413.
+    """
+
+    def spool_file(total_content_length: int | None, content_type: str | None, filename: str | None,
+                   content_length: int | None = None) -> IO[bytes]:
+        return spool.new_file()
+
+    parser = request.form_data_parser_class(
+        stream_factory=spool_file, max_form_memory_size=request.max_form_memory_size,
+        max_content_length=request.max_content_length, max_form_parts=request.max_form_parts,
+        cls=request.parameter_storage_class,
+    )
+    _, form, files = parser.parse(request.stream, request.mimetype, request.content_length, request.mimetype_params)
+    return form, files
 
 
 def _register_import(settings: Settings) -> dict[str, Any]:

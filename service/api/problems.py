@@ -21,6 +21,7 @@ from sqlalchemy.exc import OperationalError
 from werkzeug.exceptions import HTTPException, RequestEntityTooLarge
 
 from service.errors import FieldProblem, PayloadTooLarge, SealfoldError, Unauthenticated, Unavailable
+from service.records.engine import is_busy
 
 log = logging.getLogger(__name__)
 
@@ -159,8 +160,10 @@ def render_validation_error(error: ValidationError) -> Response:
 
 
 def render_database_down(error: OperationalError) -> Response:
-    """The records DB is unreachable or locked beyond its timeout: a 503, not a leaked SQL error."""
+    """The records DB is unreachable, or busy (locked beyond its timeout): a 503, not a leaked SQL error."""
     log.error("records DB error on %s %s: %s", request.method, request.path, error.orig)
+    if is_busy(error):
+        return render_sealfold_error(Unavailable("the records database is busy; try again shortly"))
     return render_sealfold_error(Unavailable("the records database is not reachable; try again shortly"))
 
 

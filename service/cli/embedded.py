@@ -26,6 +26,7 @@ from service.cli.client import ClientError, ServiceClient
 from service.cli.supervisor import Child, StackError, Supervisor
 
 _UNIX_SOCKET_MAX = 100  # sun_path holds 108 bytes on Linux; stay clear of the edge
+WAITRESS_BODY_SLACK_BYTES = 1024 * 1024  # multipart boundaries and the declaration's form fields
 
 
 @dataclass(frozen=True)
@@ -182,6 +183,18 @@ def prepare_records(env: Mapping[str, str]) -> str:
     return settings.effective_database_url
 
 
+def waitress_body_cap(env: Mapping[str, str]) -> int:
+    """The most body bytes waitress may receive: the upload limit plus room for the multipart framing.
+
+    waitress receives a whole body before it calls the app (its default cap is 1 GiB), so the key
+    and the declared length can only be checked once it has; this keeps what it takes in bounded by
+    the upload limit. A body declared longer than the cap is refused by waitress itself, unread.
+    """
+    from service.settings import Settings
+
+    return Settings.load(environ=env).max_upload_bytes + WAITRESS_BODY_SLACK_BYTES
+
+
 def start_stack(sup: Supervisor, options: StackOptions) -> Stack:
     """Start redis (unless ``redis_url``), the API and the workers; return once all are ready."""
     data_dir = options.data_dir.resolve()
@@ -208,7 +221,8 @@ def start_stack(sup: Supervisor, options: StackOptions) -> Stack:
     api = sup.start(
         "api",
         [sys.executable, "-m", "waitress", f"--listen={listen}", f"--threads={options.api_threads}",
-         "--ident=sealfold", "--call", "service.app:create_app"],
+         f"--max-request-body-size={waitress_body_cap(env)}", "--ident=sealfold", "--call",
+         "service.app:create_app"],
         env, log_dir,
     )
     # Unique per start so several stacks may share one Redis without name clashes.

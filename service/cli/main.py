@@ -55,7 +55,9 @@ def build_parser() -> argparse.ArgumentParser:
     up.add_argument("--port", type=_port, default=8080, help="API port (default 8080; 0 picks a free one)")
     up.add_argument("--workers", type=_workers, default=2, help="number of workers (default 2)")
     up.add_argument("--data-dir", default="./var", help="datasets, SQLite records, logs (default ./var)")
-    up.add_argument("--no-demo", action="store_true", help="do not register the demo dataset")
+    up.add_argument("--no-demo", action="store_true",
+                    help="do not register the demo dataset; the demo keys are then created at a data dir's "
+                    "first start only")
 
     worker = commands.add_parser("worker", help="run one worker (python -m worker)")
     worker.add_argument("--burst", action="store_true", help="exit once the queues are empty")
@@ -196,8 +198,11 @@ def cmd_up(args: argparse.Namespace) -> int:
             stack = embedded.start_stack(sup, options)
             engine = _engine_for(stack)
             try:
-                tokens = _create_demo_keys(engine)
-                dataset = None if args.no_demo else _ensure_demo_dataset(sup, stack, engine, tokens["steward"])
+                if args.no_demo:
+                    tokens, dataset = demo_keys_once(engine), None
+                else:
+                    tokens = _create_demo_keys(engine)
+                    dataset = _ensure_demo_dataset(sup, stack, engine, tokens["steward"])
             finally:
                 engine.dispose()
             print(banner(stack, tokens, dataset), flush=True)
@@ -224,15 +229,33 @@ def _engine_for(stack: Stack) -> Engine:
     return make_engine(Settings.load(environ=stack.env))
 
 
+_DEMO_ROLES = ("steward", "submitter")
+
+
+def _demo_key_name(role: str) -> str:
+    return f"demo {role} (sealfold up)"
+
+
 def _create_demo_keys(engine: Engine) -> dict[str, str]:
     """Create a steward and a submitter key for the demo team; tokens are shown once, never stored."""
     from service.cli.demo import DEMO_TEAM
     from service.records.keys import create_key
 
-    return {
-        role: create_key(engine, DEMO_TEAM, role, f"demo {role} (sealfold up)")[1]
-        for role in ("steward", "submitter")
-    }
+    return {role: create_key(engine, DEMO_TEAM, role, _demo_key_name(role))[1] for role in _DEMO_ROLES}
+
+
+def demo_keys_once(engine: Engine) -> dict[str, str]:
+    """Create the demo keys on the first start of a records DB only; return their tokens, or {} later.
+
+    Without the demo dataset nothing needs a fresh key at each start, and keys minted at every start
+    would pile up. The tokens were shown once, at that first start; only their hashes are stored.
+    """
+    from service.cli.demo import DEMO_TEAM
+    from service.records.keys import live_keys_named
+
+    if any(live_keys_named(engine, DEMO_TEAM, _demo_key_name(role)) for role in _DEMO_ROLES):
+        return {}
+    return _create_demo_keys(engine)
 
 
 def _ensure_demo_dataset(sup: Supervisor, stack: Stack, engine: Engine, steward_token: str) -> dict[str, Any]:
@@ -267,15 +290,26 @@ def banner(stack: Stack, tokens: dict[str, str], dataset: dict[str, Any] | None)
         f"  workers:   {len(stack.workers)}",
         f"  logs:      {stack.log_dir}/",
         "",
-        "Demo keys for team 'demo' (shown once; only their hashes are stored):",
-        f"  steward:   {tokens['steward']}",
-        f"  submitter: {tokens['submitter']}",
-        "",
     ]
+    if tokens:
+        lines += [
+            "Demo keys for team 'demo' (shown once; only their hashes are stored):",
+            f"  steward:   {tokens['steward']}",
+            f"  submitter: {tokens['submitter']}",
+            "",
+        ]
+    else:
+        lines += [
+            "The demo keys of this data dir were shown at its first start (only their hashes are stored).",
+            "Create another key with:",
+            f"  SEALFOLD_DATA_DIR={stack.options.data_dir} sealfold keys create --team demo --role submitter",
+            "",
+        ]
     if dataset is None:
+        shown = tokens.get("submitter", "<key>")
         lines += [
             "No demo dataset (--no-demo). List what a configuration may use:",
-            f"  curl -sS {stack.base_url}/v1/catalog -H 'Authorization: Bearer {tokens['submitter']}'",
+            f"  curl -sS {stack.base_url}/v1/catalog -H 'Authorization: Bearer {shown}'",
         ]
     else:
         rows = dataset.get("rows", {})

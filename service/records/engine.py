@@ -2,17 +2,26 @@
 
 from __future__ import annotations
 
+import sqlite3
 from datetime import UTC, datetime
 from typing import Any
 
 from sqlalchemy import Engine, create_engine, event, inspect, text
+from sqlalchemy.exc import DBAPIError
 
 from service.records.tables import RENAMED_COLUMNS, metadata
 from service.settings import Settings
 
+# PostgreSQL's lock_not_available (lock_timeout) and query_canceled (statement_timeout) SQLSTATEs.
+_BUSY_SQLSTATES = frozenset({"55P03", "57014"})
+
 
 def make_engine(settings: Settings, create_schema: bool = True) -> Engine:
-    """Build the engine for ``settings``; SQLite gets WAL and a busy timeout for concurrent workers."""
+    """Build the engine for ``settings``; SQLite gets WAL and a busy timeout for concurrent workers.
+
+    PostgreSQL connections get the statement and lock timeouts of the settings, so a lock held
+    elsewhere makes a request fail in seconds instead of queueing every request behind it.
+    """
     url = settings.effective_database_url
     if url.startswith("sqlite"):
         settings.data_dir.mkdir(parents=True, exist_ok=True)
@@ -20,6 +29,8 @@ def make_engine(settings: Settings, create_schema: bool = True) -> Engine:
         event.listen(engine, "connect", _sqlite_pragmas)
     else:
         engine = create_engine(url, pool_pre_ping=True)
+        if engine.dialect.name == "postgresql":
+            event.listen(engine, "connect", _postgres_timeouts(settings))
     if create_schema:
         metadata.create_all(engine)
         _add_missing_columns(engine)
@@ -64,6 +75,29 @@ def _carry_renamed_columns(engine: Engine) -> None:
             if old in have and new in have:
                 conn.execute(text(
                     f'UPDATE {table} SET "{new}" = "{old}" WHERE "{new}" IS NULL AND "{old}" IS NOT NULL'))
+
+
+def is_busy(error: DBAPIError) -> bool:
+    """Tell a records DB that is busy (a lock or statement timed out) from one that is not reachable."""
+    orig = error.orig
+    if getattr(orig, "sqlstate", None) in _BUSY_SQLSTATES:
+        return True
+    # SQLite: "database is locked", "database table is locked", "database schema is locked".
+    return isinstance(orig, sqlite3.OperationalError) and "locked" in str(orig)
+
+
+def _postgres_timeouts(settings: Settings) -> Any:
+    statement_ms = round(settings.db_statement_timeout_seconds * 1000)
+    lock_ms = round(settings.db_lock_timeout_seconds * 1000)
+
+    def set_timeouts(dbapi_connection: Any, _record: Any) -> None:
+        cursor = dbapi_connection.cursor()
+        cursor.execute(f"SET statement_timeout = {statement_ms:d}")
+        cursor.execute(f"SET lock_timeout = {lock_ms:d}")
+        cursor.close()
+        dbapi_connection.commit()  # session settings, kept past the transaction the SETs opened
+
+    return set_timeouts
 
 
 def _sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:

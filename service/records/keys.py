@@ -72,6 +72,17 @@ def revoke(engine: Engine, key_id: str) -> None:
         raise NotFound(f"no key {key_id!r}")
 
 
+def live_keys_named(engine: Engine, team: str, name: str) -> list[KeyInfo]:
+    """Return the team's live (not revoked) keys with exactly this name, oldest first."""
+    with engine.connect() as conn:
+        rows = conn.execute(
+            select(api_keys)
+            .where(api_keys.c.team == team, api_keys.c.name == name, api_keys.c.revoked_at.is_(None))
+            .order_by(api_keys.c.created_at, api_keys.c.id)
+        ).all()
+    return [KeyInfo(id=row.id, team=row.team, role=row.role, name=row.name) for row in rows]
+
+
 def get_key(engine: Engine, key_id: str) -> KeyInfo | None:
     """Return a key by id, revoked or not."""
     with engine.connect() as conn:

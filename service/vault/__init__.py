@@ -4,7 +4,8 @@ Pure numpy, pandas and pyarrow; nothing here imports Flask or scikit-learn. Modu
 ``tables`` (read a file, describe its columns), ``fingerprint`` (canonical SHA-256 of a frame),
 ``sealing`` (which rows are held out), ``balance`` and ``adversarial`` (how well a holdout draw
 matches the development rows), ``folds`` (fold plans and their splits), ``store`` (files under the
-data dir, and the checked opening of the sealed holdout).
+data dir, and the checked opening of the sealed holdout), ``spool`` (uploads received to disk, and the
+start-up sweep of what a killed upload left).
 
 ``store.open_sealed_holdout`` is deliberately not re-exported: only the worker's holdout job opens
 the seal, and it imports it by its full name.

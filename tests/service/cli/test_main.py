@@ -97,6 +97,37 @@ def test_keys_create_prints_only_a_token_that_authenticates(tmp_path: Path) -> N
         engine.dispose()
 
 
+def test_demo_keys_without_the_demo_are_created_once_per_records_db(tmp_path: Path) -> None:
+    from service.records.engine import make_engine
+    from service.records.keys import authenticate, revoke
+    from service.settings import Settings
+
+    engine = make_engine(Settings.load({"data_dir": tmp_path, "database_url": ""}, environ={}))
+    try:
+        first = main.demo_keys_once(engine)
+        assert set(first) == {"steward", "submitter"}
+        steward = authenticate(engine, first["steward"])
+        assert steward is not None and (steward.team, steward.role) == (demo.DEMO_TEAM, "steward")
+        assert main.demo_keys_once(engine) == {} and _key_count(tmp_path) == 2
+        # Once both are revoked, the next start creates a usable pair again.
+        for token in first.values():
+            info = authenticate(engine, token)
+            assert info is not None
+            revoke(engine, info.id)
+        again = main.demo_keys_once(engine)
+        assert set(again) == {"steward", "submitter"} and _key_count(tmp_path) == 4
+    finally:
+        engine.dispose()
+
+
+def _key_count(data_dir: Path) -> int:
+    """Rows in the records DB's key table, revoked ones included (read with sqlite3, not the project)."""
+    import sqlite3
+
+    with sqlite3.connect(data_dir / "records.sqlite3") as conn:
+        return int(conn.execute("SELECT count(*) FROM api_keys").fetchone()[0])
+
+
 def test_keys_create_refuses_blank_team(tmp_path: Path) -> None:
     env = {**os.environ, "SEALFOLD_DATA_DIR": str(tmp_path)}
     env.pop("DATABASE_URL", None)
@@ -191,6 +222,15 @@ def test_one_stack_per_data_dir(tmp_path: Path) -> None:
     finally:
         held.close()
     embedded.lock_data_dir(tmp_path).close()  # free again once released
+
+
+def test_waitress_receives_at_most_the_upload_limit_and_the_multipart_framing() -> None:
+    # waitress's own default is 1 GiB (waitress.adjustments.Adjustments.max_request_body_size).
+    from waitress.adjustments import Adjustments
+
+    assert Adjustments.max_request_body_size == 1024**3
+    cap = embedded.waitress_body_cap({"SEALFOLD_MAX_UPLOAD_BYTES": "4096"})
+    assert cap == 4096 + embedded.WAITRESS_BODY_SLACK_BYTES < Adjustments.max_request_body_size
 
 
 # --- sealfold up: the real embedded stack -------------------------------------------------------------
@@ -298,6 +338,25 @@ def test_up_no_demo_side_by_side_and_clean_sigterm(tmp_path: Path, up_processes:
     assert second.proc.wait(timeout=60) == 1
     assert re.search(r"worker-1 \(pid \d+\) was killed by SIGKILL", second.stderr()), second.stderr()
     assert not [pid for pid in children if Path(f"/proc/{pid}").exists()]
+
+
+@pytest.mark.slow
+@pytest.mark.timeout(240)
+def test_up_no_demo_twice_on_one_data_dir_creates_no_more_keys(tmp_path: Path, up_processes: list[UpProcess]) -> None:
+    """The second start of a data dir without the demo prints how to make a key instead of minting two more."""
+    first = UpProcess(tmp_path / "keys", "--no-demo")
+    up_processes.append(first)
+    token = re.search(r"submitter: (\S+)", first.wait_up()).group(1)  # type: ignore[union-attr]
+    assert first.stop() == 0, first.stderr()
+    keys_after_first = _key_count(tmp_path / "keys")
+
+    again = UpProcess(tmp_path / "keys", "--no-demo")
+    up_processes.append(again)
+    banner = again.wait_up()
+    assert "submitter: " not in banner and "sealfold keys create --team demo" in banner
+    assert ServiceClient(again.url, token).get("/v1/catalog").status == 200  # the first start's key still works
+    assert again.stop() == 0, again.stderr()
+    assert _key_count(tmp_path / "keys") == keys_after_first == 2
 
 
 def _parse_printed_curl(banner: str) -> tuple[str, dict[str, str], dict[str, object]]:
