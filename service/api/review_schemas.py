@@ -97,7 +97,10 @@ class BoardCvSchema(Schema):
     std = fields.Float(allow_none=True)
     n = fields.Integer(allow_none=True, metadata={"description": "folds with a score"})
     naive_interval_95 = fields.List(fields.Float(), allow_none=True, metadata={
-        "description": "treats folds as independent, which they are not: read it as too narrow"})
+        "description": "treats folds as independent, which they are not: read it as too narrow; its ends "
+                       "are clipped to the metric's range (the catalog's bounds)"})
+    clipped = fields.Boolean(allow_none=True, metadata={
+        "description": "an end of naive_interval_95 lay outside the metric's range and was moved to its edge"})
 
 
 class BoardHoldoutSchema(Schema):

@@ -57,6 +57,9 @@ class CatalogEntrySchema(Schema):
 
 class MetricSchema(Schema):
     name = fields.String()
+    bounds = fields.List(fields.Float(allow_none=True), metadata={
+        "description": "[lowest, highest] value the metric can take, null where unbounded; intervals are "
+                       "clipped to it"})
     task = fields.String(validate=validate.OneOf(TASKS))
     greater_is_better = fields.Boolean()
     needs_proba = fields.Boolean()

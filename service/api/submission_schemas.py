@@ -180,7 +180,10 @@ class MetricSummarySchema(Schema):
     min = fields.Float()
     max = fields.Float()
     naive_interval_95 = fields.List(fields.Float(), metadata={
-        "description": "treats folds as independent, which they are not: read it as too narrow"})
+        "description": "treats folds as independent, which they are not: read it as too narrow; its ends "
+                       "are clipped to the metric's range (the catalog's bounds)"})
+    clipped = fields.Boolean(metadata={
+        "description": "an end of naive_interval_95 lay outside the metric's range and was moved to its edge"})
 
 
 class FoldScoreSchema(Schema):

@@ -11,9 +11,14 @@ from dataclasses import dataclass
 
 @dataclass(frozen=True)
 class MetricSpec:
-    """A metric's name, task, direction and whether it needs predicted probabilities."""
+    """A metric's name, the range its values can take, task, direction and whether it needs probabilities.
+
+    ``bounds`` is (lowest, highest), None where the metric is unbounded: the summary clips its
+    intervals to it, since no fold score, and so no plausible mean, lies outside.
+    """
 
     name: str
+    bounds: tuple[float | None, float | None]
     task: str
     greater_is_better: bool
     needs_proba: bool
@@ -23,18 +28,18 @@ class MetricSpec:
 METRICS: dict[str, MetricSpec] = {
     m.name: m
     for m in (
-        MetricSpec("rmse", "regression", False, False, "root mean squared error"),
-        MetricSpec("mse", "regression", False, False, "mean squared error"),
-        MetricSpec("mae", "regression", False, False, "mean absolute error"),
-        MetricSpec("r2", "regression", True, False, "coefficient of determination"),
-        MetricSpec("accuracy", "classification", True, False, "fraction of correct labels"),
-        MetricSpec("balanced_accuracy", "classification", True, False, "mean per-class recall"),
-        MetricSpec("f1", "classification", True, False, "F1; binary: positive class is the larger label; "
+        MetricSpec("rmse", (0.0, None), "regression", False, False, "root mean squared error"),
+        MetricSpec("mse", (0.0, None), "regression", False, False, "mean squared error"),
+        MetricSpec("mae", (0.0, None), "regression", False, False, "mean absolute error"),
+        MetricSpec("r2", (None, 1.0), "regression", True, False, "coefficient of determination"),
+        MetricSpec("accuracy", (0.0, 1.0), "classification", True, False, "fraction of correct labels"),
+        MetricSpec("balanced_accuracy", (0.0, 1.0), "classification", True, False, "mean per-class recall"),
+        MetricSpec("f1", (0.0, 1.0), "classification", True, False, "F1; binary: positive class is the larger label; "
                    "multiclass: macro average"),
-        MetricSpec("roc_auc", "classification", True, True, "area under the ROC curve; multiclass: "
+        MetricSpec("roc_auc", (0.0, 1.0), "classification", True, True, "area under the ROC curve; multiclass: "
                    "one-vs-rest macro average"),
-        MetricSpec("log_loss", "classification", False, True, "cross-entropy of predicted probabilities"),
-        MetricSpec("brier", "classification", False, True, "Brier score (binary tasks only)"),
+        MetricSpec("log_loss", (0.0, None), "classification", False, True, "cross-entropy of predicted probabilities"),
+        MetricSpec("brier", (0.0, 1.0), "classification", False, True, "Brier score (binary tasks only)"),
     )
 }
 

@@ -120,7 +120,7 @@ def _entry(row: dict[str, Any], rank: int, champion_id: str | None) -> dict[str,
         "label": row["label"],
         "state": row["state"],
         "cv": {"mean": row["mean"], "std": summary.get("std"), "n": summary.get("n"),
-               "naive_interval_95": summary.get("naive_interval_95")},
+               "naive_interval_95": summary.get("naive_interval_95"), "clipped": summary.get("clipped")},
         "holdout": {
             "released": has_release and row["released"] is not None,
             "mode": row["mode"],

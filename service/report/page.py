@@ -214,6 +214,8 @@ def _metrics_table(facts: ReportFacts) -> Markup:
         item = summary.get(metric) or {}
         interval = item.get("naive_interval_95")
         shown = f"{figure(interval[0])} to {figure(interval[1])}" if interval else "-"
+        if interval and item.get("clipped"):
+            shown += " (clipped to the metric's range)"
         rows.append(element("tr", None, element("td", None, metric), _num(item.get("mean")), _num(item.get("std")),
                             element("td", {"class": "num"}, shown), _num((baseline.get(metric) or {}).get("mean")),
                             _num(released.get(metric))))

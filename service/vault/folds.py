@@ -11,8 +11,11 @@ Schemes, and what each promises:
                 ``StratifiedKFold(n_splits, shuffle=True, random_state=seed)``
     group       no group in both the train and the test rows of a fold; fold sizes balanced
     time        forward chaining: rows sorted by time, cut into folds + 1 contiguous chunks; fold i
-                tests chunk i + 1 and trains on every earlier chunk, never on the future (the chunk
-                sizes are scikit-learn's ``TimeSeriesSplit(n_splits)`` on the time-sorted rows)
+                tests chunk i + 1 and trains on every earlier chunk, never on the future. The cuts
+                are scikit-learn's ``TimeSeriesSplit(n_splits)`` cuts on the time-sorted rows, each
+                moved to the nearest position where the time changes, so no timestamp lies on both
+                sides of any fold's split (as the time holdout cuts); without tied times the folds
+                are exactly ``TimeSeriesSplit``'s
 The scikit-learn algorithms are reproduced with numpy here because the service core must not import
 scikit-learn; tests check the equality against scikit-learn itself.
 """
@@ -33,6 +36,10 @@ FOLD_SCHEMES: tuple[str, ...] = ("kfold", "stratified", "group", "time", "contig
 SEEDLESS_SCHEMES: frozenset[str] = frozenset({"time", "contiguous"})
 MIN_FOLDS, MAX_FOLDS = 2, 20
 MAX_SEED = 2**32 - 1  # numpy's RandomState, and so scikit-learn's random_state, take seeds up to here
+# The version of each scheme's fold algorithm, part of its cached assignment's file name: raise it when a
+# scheme's folds change, so assignments cached by the old algorithm are never read again.
+# time 2: cuts moved off tied times.
+ASSIGNMENT_VERSIONS: dict[str, int] = {"kfold": 1, "stratified": 1, "group": 1, "time": 2, "contiguous": 1}
 
 
 @dataclass(frozen=True)
@@ -153,6 +160,13 @@ def check_plan_feasible(plan: FoldPlan, keys: SplitKeys) -> None:
         if keys.n_rows // (folds + 1) < 1:
             raise _rejected(
                 "/folds", f"{folds} time folds need at least {folds + 1} development rows, got {keys.n_rows}"
+            )
+        n_times = len(np.unique(keys.time))
+        if n_times < folds + 1:
+            raise _rejected(
+                "/folds",
+                f"{folds} time folds need at least {folds + 1} distinct times in the development rows, got "
+                f"{n_times}: rows with the same time stay on one side of every cut; use fewer folds",
             )
 
 
@@ -314,18 +328,37 @@ def _grouped(groups: np.ndarray, folds: int, seed: int) -> np.ndarray:
 
 
 def _time_chunks(time: np.ndarray, folds: int) -> np.ndarray:
-    # Forward chaining: rows sorted by time (equal times keep their row order) and cut as
-    # TimeSeriesSplit(folds) cuts them: a first chunk of n - folds * (n // (folds + 1)) rows, then
-    # ``folds`` chunks of n // (folds + 1) rows each.
+    # Forward chaining: rows sorted by time (equal times keep their row order) and cut where
+    # TimeSeriesSplit(folds) cuts them (a first chunk of n - folds * (n // (folds + 1)) rows, then
+    # ``folds`` chunks of n // (folds + 1) rows each), each cut moved to where the time changes.
     order = np.argsort(time, kind="stable")
+    ordered = time[order]
     n_rows = len(order)
     chunk = n_rows // (folds + 1)
-    first = n_rows - folds * chunk
-    chunk_of_position = np.concatenate([np.zeros(first, dtype=np.int64),
-                                        np.repeat(np.arange(1, folds + 1, dtype=np.int64), chunk)])
+    wanted = n_rows - folds * chunk + chunk * np.arange(folds)  # the first row of chunks 1..folds
+    changes = np.flatnonzero(ordered[1:] > ordered[:-1]) + 1  # positions whose time is later than the previous
+    cuts = _nearest_cuts(changes, wanted)
     chunk_of_row = np.empty(n_rows, dtype=np.int64)
-    chunk_of_row[order] = chunk_of_position
+    chunk_of_row[order] = np.searchsorted(cuts, np.arange(n_rows), side="right")
     return chunk_of_row
+
+
+def _nearest_cuts(changes: np.ndarray, wanted: np.ndarray) -> np.ndarray:
+    """Move each wanted cut to the nearest allowed position, keeping the cuts strictly increasing.
+
+    Cut k is chosen after cut k - 1 and early enough to leave a position for every later cut, so no
+    chunk is empty; at equal distance the earlier position wins, as in the time holdout. When every
+    position is allowed (no tied times) each cut stays where it was wanted.
+    """
+    cuts = np.empty(len(wanted), dtype=np.int64)
+    low = 0
+    for k, target in enumerate(wanted):
+        high = len(changes) - (len(wanted) - k)  # the last index that leaves room for the later cuts
+        window = changes[low:high + 1]
+        chosen = low + int(np.argmin(np.abs(window - target)))
+        cuts[k] = changes[chosen]
+        low = chosen + 1
+    return cuts
 
 
 def _class_counts(y: np.ndarray) -> tuple[list[Any], np.ndarray]:

@@ -5,7 +5,10 @@ Layout (``settings.data_dir``):
     datasets/<ds_id>/numeric.npy          float64 C-order matrix of the numeric columns, for mmap
     datasets/<ds_id>/manifest.json        column kinds, numeric column names, target, task
     datasets/<ds_id>/folds/<scheme>-<k>-<seed>.npy  a fold plan's fold of every row (int8), cached
-                                          at registration or by the first job that computes it
+                                          at registration or by the first job that computes it;
+                                          <scheme>.v<N>-<k>-<seed>.npy from version 2 of a scheme's
+                                          algorithm (``ASSIGNMENT_VERSIONS``), so a changed
+                                          algorithm never reads an older cache
     sealed/<ds_id>/holdout.parquet        holdout rows; directories 0700, file 0600
 
 Both directories are first written under a temporary name beside their final place and then
@@ -34,7 +37,7 @@ import pyarrow.parquet as pq
 from service.errors import Conflict, FieldProblem, InputError, NotFound, SealBroken
 from service.settings import Settings
 from service.vault.fingerprint import fingerprint_frame
-from service.vault.folds import FoldPlan
+from service.vault.folds import ASSIGNMENT_VERSIONS, FoldPlan
 
 ROW_ID = "row_id"
 _SAFE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_-]{0,79}$")
@@ -153,8 +156,14 @@ def load_numeric(settings: Settings, ds_id: str) -> tuple[np.memmap[Any, Any], l
 
 
 def fold_assignment_path(settings: Settings, ds_id: str, plan: FoldPlan, repeat: int) -> Path:
-    """Return where the fold assignment of ``plan``'s repeat ``repeat`` (seed + repeat) is cached."""
-    return dataset_paths(settings, ds_id).root / "folds" / f"{plan.scheme}-{plan.folds}-{plan.seed + repeat}.npy"
+    """Return where the fold assignment of ``plan``'s repeat ``repeat`` (seed + repeat) is cached.
+
+    The name carries the version of the scheme's algorithm from version 2 on; version 1 keeps the
+    original name, so caches that are still right stay in use.
+    """
+    version = ASSIGNMENT_VERSIONS[plan.scheme]
+    scheme = plan.scheme if version == 1 else f"{plan.scheme}.v{version}"
+    return dataset_paths(settings, ds_id).root / "folds" / f"{scheme}-{plan.folds}-{plan.seed + repeat}.npy"
 
 
 def load_fold_assignment(

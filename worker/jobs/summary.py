@@ -1,7 +1,9 @@
 """Fan-in: turn a submission's fold records into its cross-validation summary.
 
 Per metric: mean, sample standard deviation (ddof=1), min, max and a naive 95 % t-interval over
-the J fold scores, mean +/- t(0.975, J-1) * s / sqrt(J). A score undefined on a fold (None, its
+the J fold scores, mean +/- t(0.975, J-1) * s / sqrt(J), its ends clipped to the metric's range
+(``MetricSpec.bounds``: accuracy cannot exceed 1 nor log loss fall below 0) and ``clipped`` true
+when either end was moved. A score undefined on a fold (None, its
 reason in the fold's ``undefined``) is left out: J (``n``) counts the folds used, ``undefined`` the
 succeeded folds left out. It is labelled naive because it treats
 folds as independent samples, and cross-validation folds are not: Bates, Hastie and Tibshirani
@@ -24,6 +26,7 @@ from scipy import stats
 
 import service
 from service.catalog import load_catalog
+from service.catalog.metrics import METRICS
 from service.records import submissions
 from service.submission.dispatch import fold_cells
 from service.submission.resolved import ResolvedConfig, ValidationPlan
@@ -37,6 +40,8 @@ STATISTICS_NOTE = {
     "std": "sample standard deviation (ddof=1) of the fold scores",
     "naive_interval_95": "mean +/- t(0.975, J-1) * std / sqrt(J) over the J fold scores; naive: it treats "
                          "folds as independent and undercovers (Bates, Hastie, Tibshirani 2024)",
+    "clipped": "an end of naive_interval_95 lay outside the metric's range (e.g. above 1 for accuracy, below 0 "
+               "for log_loss) and was moved to its edge",
     "sign_stable": "the coefficient has the same strict sign in every fold",
 }
 
@@ -72,7 +77,7 @@ def summary_document(
     failures.sort(key=lambda x: (x["repeat"], x["fold"]))
     curve = curve_summary(ok, metrics)
     return {
-        "summary": {m: metric_summary([r["scores"].get(m) for r in ok]) for m in metrics},
+        "summary": {m: metric_summary([r["scores"].get(m) for r in ok], METRICS[m].bounds) for m in metrics},
         "statistics": STATISTICS_NOTE,
         "folds_ok": len(ok),
         "failures": failures,
@@ -84,14 +89,18 @@ def summary_document(
         "baseline": {
             **baseline_description(task),
             "folds": "the folds where the candidate succeeded",
-            "summary": {m: describe([(r["baseline_scores"] or {}).get(m) for r in ok]) for m in metrics},
+            "summary": {m: within(describe([(r["baseline_scores"] or {}).get(m) for r in ok]), METRICS[m].bounds)
+                        for m in metrics},
         },
     }
 
 
-def metric_summary(values: Sequence[float | None]) -> dict[str, Any]:
+Bounds = tuple[float | None, float | None]
+
+
+def metric_summary(values: Sequence[float | None], bounds: Bounds = (None, None)) -> dict[str, Any]:
     """Describe one metric's fold scores; ``undefined`` counts the folds whose score is None, left out."""
-    return {**describe(values), "undefined": sum(v is None for v in values)}
+    return {**within(describe(values), bounds), "undefined": sum(v is None for v in values)}
 
 
 def describe(values: Sequence[float | None]) -> dict[str, Any]:
@@ -108,6 +117,21 @@ def describe(values: Sequence[float | None]) -> dict[str, Any]:
         interval = [mean - half, mean + half]
     return {"n": n, "mean": mean, "std": std, "min": float(x.min()), "max": float(x.max()),
             "naive_interval_95": interval}
+
+
+def within(described: dict[str, Any], bounds: Bounds) -> dict[str, Any]:
+    """Clip a ``describe`` result's interval to ``bounds`` (lowest, highest; None: no limit); say if it moved.
+
+    A metric cannot leave its range (accuracy above 1, log loss below 0), so neither can a
+    plausible value of its mean; the symmetric t-interval ignores that near a bound.
+    """
+    interval = described["naive_interval_95"]
+    if interval is None:
+        return {**described, "clipped": False}
+    lowest, highest = bounds
+    low = interval[0] if lowest is None else max(interval[0], lowest)
+    high = interval[1] if highest is None else min(interval[1], highest)
+    return {**described, "naive_interval_95": [low, high], "clipped": [low, high] != interval}
 
 
 def coefficient_summary(per_fold: Sequence[Mapping[str, Any]]) -> dict[str, Any] | None:

@@ -7,8 +7,9 @@ import math
 import numpy as np
 import pytest
 from scipy import stats
-from sklearn.datasets import load_diabetes
+from sklearn.datasets import load_diabetes, load_iris
 
+from service.catalog.metrics import METRICS
 from service.records import submissions
 from tests.support.worker_records import add_dataset, add_submission, config_document
 from worker import jobs
@@ -36,6 +37,48 @@ def test_describe_edge_cases() -> None:
                             "naive_interval_95": None}
     one = describe([0.5, None])
     assert one["n"] == 1 and one["mean"] == 0.5 and one["std"] is None and one["naive_interval_95"] is None
+
+
+def test_intervals_on_real_folds_are_clipped_to_the_metric_range(ctx: WorkerContext) -> None:
+    # scikit-learn's iris with a nearest-neighbours classifier: fold accuracies of 1.0 and 0.93-0.97,
+    # fold log losses from 0.03 to 1.29, so the symmetric t-interval leaves [0, 1] and [0, inf).
+    frame = load_iris(as_frame=True).frame
+    dataset = add_dataset(ctx, frame.iloc[5:], frame.iloc[:5], "target", "classification", scheme="stratified",
+                          folds=5, seed=0)
+    sub_id = add_submission(ctx, dataset, config_document(dataset, "KNeighborsClassifier",
+                                                          metrics=["accuracy", "log_loss"]))
+    for f in range(5):
+        jobs.run_fold(sub_id, 0, f)
+    jobs.summarize(sub_id)
+    sub = submissions.get(ctx.engine, sub_id)
+    assert sub is not None
+    summary = sub["cv_summary"]["summary"]
+    scores = {m: np.asarray([r["scores"][m] for r in submissions.fold_rows(ctx.engine, sub_id)])
+              for m in ("accuracy", "log_loss")}
+    # Reference by hand (numpy, scipy.stats.t.ppf): mean +/- t(0.975, 4) * s / sqrt(5), then clipped.
+    naive = {}
+    for m, x in scores.items():
+        half = stats.t.ppf(0.975, len(x) - 1) * np.std(x, ddof=1) / math.sqrt(len(x))
+        naive[m] = (float(np.mean(x) - half), float(np.mean(x) + half))
+    assert 1.0 in scores["accuracy"] and naive["accuracy"][1] > 1.0  # the naive interval leaves the range
+    assert naive["log_loss"][0] < 0.0
+    assert summary["accuracy"]["naive_interval_95"] == pytest.approx([naive["accuracy"][0], 1.0])
+    assert summary["log_loss"]["naive_interval_95"] == pytest.approx([0.0, naive["log_loss"][1]])
+    assert summary["accuracy"]["clipped"] is True and summary["log_loss"]["clipped"] is True
+    assert summary["accuracy"]["mean"] == pytest.approx(float(np.mean(scores["accuracy"])))
+    # The majority-class baseline scores about 1/3 on every fold: its interval stays inside [0, 1].
+    baseline = sub["cv_summary"]["baseline"]["summary"]["accuracy"]
+    low, high = baseline["naive_interval_95"]
+    assert baseline["clipped"] is False and 0.0 < low <= high < 1.0
+
+
+def test_every_metric_declares_its_range() -> None:
+    # Ranges from the definitions (scikit-learn's metric docs): scores in [0, 1], losses and errors
+    # at least 0 with no ceiling, r2 at most 1 with no floor.
+    ranges = {m: spec.bounds for m, spec in METRICS.items()}
+    assert ranges == {"accuracy": (0.0, 1.0), "balanced_accuracy": (0.0, 1.0), "f1": (0.0, 1.0),
+                      "roc_auc": (0.0, 1.0), "brier": (0.0, 1.0), "log_loss": (0.0, None), "mse": (0.0, None),
+                      "rmse": (0.0, None), "mae": (0.0, None), "r2": (None, 1.0)}
 
 
 def _fold(values: list[float], names: list[str] | None = None) -> dict[str, object]:

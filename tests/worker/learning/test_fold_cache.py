@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from sklearn.datasets import load_breast_cancer, load_diabetes
-from sklearn.model_selection import KFold, StratifiedKFold
+from sklearn.model_selection import KFold, StratifiedKFold, TimeSeriesSplit
 
 from service.submission.resolved import ValidationPlan
 from service.vault import store
@@ -74,3 +74,28 @@ def test_a_damaged_cache_is_ignored_and_rewritten(ctx: WorkerContext) -> None:
         assert cached is not None  # rewritten with the right assignment
     path.write_bytes(b"not a numpy file")
     assert store.load_fold_assignment(ctx.settings, dataset["id"], plan, 0, len(dev)) is None
+
+
+def test_a_time_assignment_cached_by_the_old_cuts_is_not_read(ctx: WorkerContext) -> None:
+    # Diabetes with one of 30 departure days per row: TimeSeriesSplit's cuts on the sorted rows put
+    # some days on both sides. An assignment cached from those cuts, before time folds moved their
+    # cuts off tied times, must not be used.
+    frame: pd.DataFrame = load_diabetes(as_frame=True).frame
+    frame["day"] = np.random.default_rng(8).integers(0, 30, len(frame))
+    dev, hold = frame.iloc[:-40], frame.iloc[-40:]
+    dataset = {**add_dataset(ctx, dev, hold, "target", "regression", scheme="time", folds=5), "time_column": "day"}
+    validation = ValidationPlan(scheme="time", folds=5, seed=0, repeats=1)
+    plan = validation.fold_plan()
+    order = np.argsort(dev["day"].to_numpy(), kind="stable")
+    old = np.zeros(len(dev), dtype=np.int8)
+    for k, (_train, test) in enumerate(TimeSeriesSplit(5).split(order)):
+        old[order[test]] = k + 1
+    old_path = store.fold_assignment_path(ctx.settings, dataset["id"], plan, 0).with_name("time-5-0.npy")
+    old_path.parent.mkdir()
+    np.save(old_path, old)
+    assert store.fold_assignment_path(ctx.settings, dataset["id"], plan, 0) != old_path
+    day = dev["day"].to_numpy()
+    assert any(set(day[old <= k]) & set(day[old == k + 1]) for k in range(5))  # the stale cuts split days
+    for train, test in _splits(ctx, dataset, validation):
+        assert day[train].max() < day[test].min()
+    assert store.load_fold_assignment(ctx.settings, dataset["id"], plan, 0, len(dev)) is not None
