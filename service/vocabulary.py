@@ -17,6 +17,9 @@ ROLES: tuple[str, ...] = ("submitter", "steward", "admin")  # each role can do w
 
 # How a submission's holdout score is released to its submitter.
 RELEASE_MODES: tuple[str, ...] = ("exact", "ladder", "thresholdout")
+# What a released holdout figure is, per mode in that order: the submission's own score (rounded), the
+# dataset's best so far (which a submission that did not move the ladder does not hold), thresholdout's answer.
+HOLDOUT_FIGURES: tuple[str, ...] = ("own_score", "dataset_best_so_far", "thresholdout_answer")
 
 # A verdict's decision; each rule of a verdict has one of these outcomes, or "skipped" when it does not apply.
 DECISIONS: tuple[str, ...] = ("pass", "fail", "inconclusive")

@@ -8,7 +8,8 @@ from __future__ import annotations
 
 from marshmallow import EXCLUDE, Schema, fields, validate
 
-from service.vocabulary import DECISIONS, RELEASE_MODES
+from service.api.submission_schemas import LadderReadingSchema
+from service.vocabulary import DECISIONS, HOLDOUT_FIGURES, RELEASE_MODES
 
 _DATETIME = {"format": "date-time"}
 # OpenAPI 3.0 bounds: exclusiveMinimum/exclusiveMaximum are booleans beside minimum/maximum.
@@ -103,13 +104,25 @@ class BoardCvSchema(Schema):
         "description": "an end of naive_interval_95 lay outside the metric's range and was moved to its edge"})
 
 
+class ReleasedUnderSchema(Schema):
+    mode = fields.String(validate=validate.OneOf(RELEASE_MODES))
+    policy_version = fields.Integer(allow_none=True)
+
+
 class BoardHoldoutSchema(Schema):
     """Only what the release policy released; never the raw holdout score."""
 
     released = fields.Boolean()
     mode = fields.String(allow_none=True)
-    score = fields.Float(allow_none=True, metadata={"description": "the primary metric, as released"})
+    score = fields.Float(allow_none=True, metadata={
+        "description": "the primary metric, as released; under the ladder the dataset's best so far, not this row's"})
     withheld_until = fields.String(allow_none=True, metadata=_DATETIME)
+    policy_version = fields.Integer(allow_none=True, metadata={"description": "the policy it was released under"})
+    figure = fields.String(allow_none=True, validate=validate.OneOf(HOLDOUT_FIGURES), metadata={
+        "description": "what the score is: this row's own (exact), the dataset's best so far (ladder), or "
+                       "thresholdout's answer; null when no figure is shown"})
+    ladder = fields.Nested(LadderReadingSchema, allow_none=True)
+    summary = fields.String(metadata={"description": "one plain sentence on what the figure is"})
 
 
 class SubmitterSchema(Schema):
@@ -141,3 +154,7 @@ class BoardSchema(Schema):
     champion = fields.String(allow_none=True)
     entries = fields.List(fields.Nested(BoardEntrySchema))
     next_cursor = fields.String(allow_none=True, metadata={"description": "null on the last page"})
+    holdout_policies = fields.List(fields.Nested(ReleasedUnderSchema), metadata={
+        "description": "every release mode and policy version the board's holdout figures were released under"})
+    mixed_policies = fields.String(allow_none=True, metadata={
+        "description": "null when every holdout figure on the board was released under one policy; else says so"})

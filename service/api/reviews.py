@@ -136,8 +136,10 @@ class Board(MethodView):
         after = None if query["cursor"] is None else board.decode_cursor(query["cursor"], order)
         champion = champions.current(engine, dataset["id"])
         entries, cursor = board.board_page(engine, dataset, order, query["limit"], after, champion)
+        released_under = board.board_policies(engine, dataset, order)
         return json_response({
             "dataset": dataset["id"], "primary_metric": metric, "greater_is_better": order.greater_is_better,
             "policy_version": policy["version"], "champion": champion, "entries": entries,
             "next_cursor": None if cursor is None else board.encode_cursor(cursor),
+            "holdout_policies": released_under, "mixed_policies": board.mixed_policies_note(released_under),
         })

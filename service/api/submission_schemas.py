@@ -221,6 +221,16 @@ class BaselineSchema(Schema):
     summary = fields.Dict(keys=fields.String(), values=fields.Nested(MetricSummarySchema))
 
 
+class LadderReadingSchema(Schema):
+    """What a ladder figure is: the dataset's best holdout figure so far, and whether this submission set it."""
+
+    metric = fields.String()
+    new_best = fields.Boolean(metadata={"description": "true when this submission moved the ladder"})
+    best_so_far = fields.Float(metadata={"description": "the dataset's best holdout figure so far, as released"})
+    held_by = fields.String(allow_none=True, metadata={
+        "description": "the submission that set it (its own document says so)"})
+
+
 class HoldoutResultSchema(Schema):
     """Only what the release policy released, once: never the raw score, rows or predictions."""
 
@@ -231,6 +241,10 @@ class HoldoutResultSchema(Schema):
     withheld_until = fields.String(allow_none=True, metadata={
         **_DATETIME, "description": "when withheld: when the submitter's release budget returns"})
     note = fields.String(allow_none=True)
+    policy_version = fields.Integer(allow_none=True, metadata={"description": "the policy it was released under"})
+    ladder = fields.Nested(LadderReadingSchema, allow_none=True, metadata={
+        "description": "under the ladder: the figure is the dataset's best so far, which this submission may not hold"})
+    summary = fields.String(metadata={"description": "one plain sentence on what the holdout figure is"})
 
 
 class VerdictRuleSchema(Schema):

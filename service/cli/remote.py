@@ -255,9 +255,13 @@ def summary_text(document: dict[str, Any], base_url: str) -> str:
         shown = f" (naive 95 % interval {num(interval[0])} to {num(interval[1])})" if interval else ""
         released = (holdout.get("scores") or {}).get(metric) if holdout.get("released") else None
         held = f"  holdout {num(released)} ({holdout.get('mode')})" if released is not None else ""
+        if holdout.get("ladder"):  # the ladder's figure is the dataset's best so far: said on its own line below
+            held = ""
         lines.append(f"  {metric:<18} CV {num(item.get('mean'))}{shown}  baseline "
                      f"{num((baseline.get(metric) or {}).get('mean'))}{held}")
-    if holdout and not holdout.get("released") and holdout.get("note"):
+    if holdout.get("ladder"):
+        lines.append(f"  holdout: {plain(holdout.get('summary') or '')}")
+    elif holdout and not holdout.get("released") and holdout.get("note"):
         lines.append(f"  holdout: {plain(holdout['note'])}")
     lines.append(f"report: {base_url}/v1/submissions/{document['id']}/report")
     return "\n".join(lines)
@@ -270,14 +274,14 @@ def board_text(board: dict[str, Any]) -> str:
     lines = [f"board of {board.get('dataset')}: ranked by {metric} ({direction} is better), policy "
              f"version {board.get('policy_version')}"]
     rows: list[tuple[Any, ...]] = [("rank", "submission", "label", f"CV {metric}", "naive 95 % interval",
-                                    "holdout", "verdict", "submitter", "created")]
+                                    "holdout (as released)", "released under", "verdict", "submitter", "created")]
     for e in board["entries"]:
         interval = e["cv"].get("naive_interval_95")
         holdout = e["holdout"]
         rows.append((
             f"{e['rank']}{' *' if e.get('champion') else ''}", e["submission"], plain(e.get("label") or "")[:28],
             num(e["cv"].get("mean")), f"{num(interval[0])} to {num(interval[1])}" if interval else "-",
-            num(holdout.get("score")) if holdout.get("released") else "withheld" if holdout.get("mode") else "-",
+            _board_holdout(holdout), _released_under(holdout),
             e.get("verdict") or "-", plain((e.get("submitter") or {}).get("name") or "")[:24],
             str(e.get("created_at") or "")[:10],
         ))
@@ -286,9 +290,33 @@ def board_text(board: dict[str, Any]) -> str:
     lines += _table(rows)
     if any(e.get("champion") for e in board["entries"]):
         lines.append("* champion")
+    if any(e["holdout"].get("ladder") for e in board["entries"]):
+        lines.append("ladder figures are the dataset's best holdout so far, not the row's own: \"new best\" marks "
+                     "the rows that set one")
+    if board.get("mixed_policies"):
+        lines.append(f"note: {plain(board['mixed_policies'])}")
     if board.get("next_cursor"):
         lines.append("(more entries: raise --limit)")
     return "\n".join(lines)
+
+
+def _board_holdout(holdout: dict[str, Any]) -> str:
+    """A board row's holdout cell: a ladder figure says whether the row set the best or only shows it."""
+    if not holdout.get("released"):
+        return "withheld" if holdout.get("mode") else "-"
+    ladder = holdout.get("ladder")
+    if ladder:
+        best = num(ladder["best_so_far"])
+        return f"new best {best}" if ladder["new_best"] else f"best so far {best}, not its own"
+    return num(holdout.get("score"))
+
+
+def _released_under(holdout: dict[str, Any]) -> str:
+    """A board row's release mode and policy version, so figures of different policies are told apart."""
+    if not holdout.get("mode"):
+        return "-"
+    version = holdout.get("policy_version")
+    return f"{holdout['mode']} v{version}" if version is not None else str(holdout["mode"])
 
 
 def datasets_text(datasets: list[dict[str, Any]]) -> str:

@@ -3,8 +3,10 @@
 The ranking runs in SQL on the stored summaries (a JSON path the SQLite and PostgreSQL dialects
 both translate), one page at a time with a keyset cursor, so a long board never loads every
 result. The holdout figure shown is the one the release mechanism released -- the raw score in
-``holdout_scores`` is never read here. Failed and canceled submissions are not on the board, nor
-those without a CV mean of the primary metric (still queued, or scored on other metrics).
+``holdout_scores`` is never read here -- labelled with the policy it was released under and, under
+the ladder, as the dataset's best so far rather than the row's own score. Failed and canceled
+submissions are not on the board, nor those without a CV mean of the primary metric (still queued,
+or scored on other metrics).
 """
 
 from __future__ import annotations
@@ -15,12 +17,14 @@ import json
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import Engine, and_, or_, select
+from sqlalchemy import Engine, and_, func, or_, select
 from sqlalchemy.sql.elements import ColumnElement
 
 from service.errors import InputError, field_error
+from service.gate.review_state import holdout_summary, ladder_reading
 from service.records.engine import iso
 from service.records.tables import api_keys, holdout_releases, submissions
+from service.vocabulary import HOLDOUT_FIGURES, RELEASE_MODES
 
 
 @dataclass(frozen=True)
@@ -78,6 +82,7 @@ def board_page(
     summary = submissions.c.cv_summary[("summary", order.metric)]
     mean = submissions.c.cv_summary[("summary", order.metric, "mean")].as_float()
     released = holdout_releases.c.released[order.metric].as_float()
+    holder = holdout_releases.c.state[("ladder", "best_submission")].as_string()
     query = (
         select(
             submissions.c.id, submissions.c.label, submissions.c.state, submissions.c.created_at,
@@ -85,12 +90,12 @@ def board_page(
             submissions.c.policy_version, mean.label("mean"), summary.label("summary"),
             holdout_releases.c.submission_id.label("release_of"), holdout_releases.c.mode,
             released.label("released"), holdout_releases.c.withheld_until, api_keys.c.name.label("key_name"),
+            _release_version().label("release_version"), holder.label("holder"),
         )
         .select_from(submissions)
         .outerjoin(holdout_releases, holdout_releases.c.submission_id == submissions.c.id)
         .outerjoin(api_keys, api_keys.c.id == submissions.c.owner_key_id)
-        .where(submissions.c.team == dataset["team"], submissions.c.dataset_id == dataset["id"],
-               submissions.c.state.not_in(("failed", "canceled")), mean.is_not(None))
+        .where(*_on_board(dataset, mean))
     )
     if after is not None:
         query = query.where(_after(mean, order, after))
@@ -99,11 +104,47 @@ def board_page(
     with engine.connect() as conn:
         rows = conn.execute(query).mappings().all()
     start = 0 if after is None else after.position
-    entries = [_entry(dict(r), start + i + 1, champion_id) for i, r in enumerate(rows[:limit])]
+    entries = [_entry(dict(r), start + i + 1, champion_id, order.metric) for i, r in enumerate(rows[:limit])]
     if len(rows) <= limit:
         return entries, None
     last = rows[limit - 1]
     return entries, BoardCursor(order, float(last["mean"]), str(last["id"]), start + limit)
+
+
+def board_policies(engine: Engine, dataset: dict[str, Any], order: BoardOrder) -> list[dict[str, Any]]:
+    """Return every (release mode, policy version) the board's released holdout figures were released under."""
+    mean = submissions.c.cv_summary[("summary", order.metric, "mean")].as_float()
+    released = holdout_releases.c.released[order.metric].as_float()
+    version = _release_version()
+    query = (
+        select(holdout_releases.c.mode, version.label("version")).distinct()
+        .select_from(submissions)
+        .join(holdout_releases, holdout_releases.c.submission_id == submissions.c.id)
+        .where(*_on_board(dataset, mean), released.is_not(None))
+    )
+    with engine.connect() as conn:
+        rows = conn.execute(query).all()
+    return [{"mode": mode, "policy_version": v}
+            for mode, v in sorted(rows, key=lambda r: (-1 if r[1] is None else r[1], r[0]))]
+
+
+def mixed_policies_note(policies: list[dict[str, Any]]) -> str | None:
+    """Say, when it is so, that the board's holdout figures were released under different policies."""
+    if len(policies) < 2:
+        return None
+    said = ", ".join(f"{p['mode']} under policy version {p['policy_version']}" for p in policies)
+    return (f"The holdout figures on this board were released under different policies ({said}); each row says "
+            "which, and figures released under different policies are not comparable.")
+
+
+def _on_board(dataset: dict[str, Any], mean: ColumnElement[float]) -> list[ColumnElement[bool]]:
+    return [submissions.c.team == dataset["team"], submissions.c.dataset_id == dataset["id"],
+            submissions.c.state.not_in(("failed", "canceled")), mean.is_not(None)]
+
+
+def _release_version() -> ColumnElement[Any]:
+    """The policy version a release was made under: its own, else (older rows) its submission's verdict's."""
+    return func.coalesce(holdout_releases.c.policy_version, submissions.c.policy_version)
 
 
 def _after(mean: ColumnElement[float], order: BoardOrder, cursor: BoardCursor) -> ColumnElement[bool]:
@@ -111,9 +152,11 @@ def _after(mean: ColumnElement[float], order: BoardOrder, cursor: BoardCursor) -
     return or_(beyond, and_(mean == cursor.mean, submissions.c.id > cursor.submission_id))
 
 
-def _entry(row: dict[str, Any], rank: int, champion_id: str | None) -> dict[str, Any]:
+def _entry(row: dict[str, Any], rank: int, champion_id: str | None, metric: str) -> dict[str, Any]:
     summary = row["summary"] if isinstance(row["summary"], dict) else {}
     has_release = row["release_of"] is not None
+    shown = None if row["released"] is None else {metric: float(row["released"])}
+    ladder = ladder_reading(row["mode"], shown, row["holder"], str(row["id"]))
     return {
         "rank": rank,
         "submission": row["id"],
@@ -126,6 +169,11 @@ def _entry(row: dict[str, Any], rank: int, champion_id: str | None) -> dict[str,
             "mode": row["mode"],
             "score": row["released"],
             "withheld_until": iso(row["withheld_until"]),
+            "policy_version": row["release_version"] if has_release else None,
+            "figure": _figure_kind(row["mode"]) if shown is not None else None,
+            "ladder": ladder,
+            "summary": holdout_summary(row["mode"], shown, ladder, f"no holdout {metric} released: withheld, or "
+                                       "released under another metric") if has_release else "no holdout figure yet",
         },
         "verdict": row["decision"],
         "policy_version": row["policy_version"],
@@ -133,3 +181,8 @@ def _entry(row: dict[str, Any], rank: int, champion_id: str | None) -> dict[str,
         "created_at": iso(row["created_at"]),
         "champion": row["id"] == champion_id,
     }
+
+
+def _figure_kind(mode: str | None) -> str:
+    """Name what a released figure is: the row's own score, the dataset's best so far, or thresholdout's answer."""
+    return dict(zip(RELEASE_MODES, HOLDOUT_FIGURES, strict=True)).get(str(mode), "own_score")

@@ -26,25 +26,69 @@ def policy_in_force(engine: Engine, dataset: dict[str, Any]) -> dict[str, Any]:
     return {"version": version, **body}
 
 
-def holdout_part(release: dict[str, Any] | None, state: str | None = None) -> dict[str, Any]:
+def holdout_part(release: dict[str, Any] | None, state: str | None = None,
+                 policy_version: int | None = None) -> dict[str, Any]:
     """Shape a release row as the ``result.holdout`` part: what the submitter may see, and why.
 
-    ``state`` is the submission's state, so a failed or canceled one says it will not be scored.
+    ``state`` is the submission's state, so a failed or canceled one says it will not be scored;
+    ``policy_version`` is the submission's, for release rows from before they kept their own.
     """
     if release is None:
         waiting = "not scored on the holdout yet"
         if state in ("failed", "canceled"):
             waiting = f"not scored on the holdout: the submission {state}"
-        return {"released": False, "mode": None, "scores": None, "withheld_until": None, "note": waiting}
+        return {"released": False, "mode": None, "scores": None, "withheld_until": None, "note": waiting,
+                "policy_version": None, "ladder": None, "summary": waiting}
     released = release["released"]
     withheld_until = iso(release["withheld_until"])
     note = None
     if released is None:
         note = ("withheld: the submitter's holdout releases on this dataset are used up for now"
                 + (f"; more are available from {withheld_until}" if withheld_until else ""))
-    elif release["mode"] == "ladder":
-        best = (release["state"].get("ladder") or {}).get("best_submission")
-        note = ("ladder: this submission set the dataset's best figure so far" if best == release["submission_id"]
+    ladder = ladder_reading(release["mode"], released, (release["state"].get("ladder") or {}).get("best_submission"),
+                            release["submission_id"])
+    if ladder is not None:
+        note = ("ladder: this submission set the dataset's best figure so far" if ladder["new_best"]
                 else "ladder: the dataset's best figure so far; this submission did not beat it by more than the step")
+    version = release.get("policy_version")
     return {"released": released is not None, "mode": release["mode"], "scores": released,
-            "withheld_until": withheld_until, "note": note}
+            "withheld_until": withheld_until, "note": note,
+            "policy_version": policy_version if version is None else version, "ladder": ladder,
+            "summary": holdout_summary(release["mode"], released, ladder, note)}
+
+
+def ladder_reading(mode: str | None, released: dict[str, float] | None, holder: str | None,
+                   submission_id: str) -> dict[str, Any] | None:
+    """Say what a ladder figure is: the dataset's best so far, whether this submission set it, who holds it.
+
+    Only for a released ladder figure. ``holder`` is the ladder's best submission just after this
+    release; every release that moved the ladder says so in its own document, so naming the holder
+    tells a reader nothing the ladder had not already published to the team.
+    """
+    if mode != "ladder" or not released:
+        return None
+    metric, figure = next(iter(released.items()))  # the ladder releases the primary metric only
+    return {"metric": metric, "new_best": holder == submission_id, "best_so_far": figure, "held_by": holder}
+
+
+def holdout_summary(mode: str | None, released: dict[str, float] | None, ladder: dict[str, Any] | None,
+                    note: str | None) -> str:
+    """Return one plain sentence on what the holdout figure is, so nobody reads a best-so-far as this model's."""
+    if ladder is not None:
+        best = f"{ladder['metric']} {_figure(ladder['best_so_far'])}"
+        if ladder["new_best"]:
+            return f"new best: {best} (ladder: this submission set the dataset's best holdout figure so far)"
+        held = f", held by {ladder['held_by']}" if ladder["held_by"] else ""
+        return (f"no new best (best so far {best}{held}); this submission's own holdout figure is not released "
+                "under the ladder")
+    if not released:
+        return note or "no holdout figure released"
+    shown = ", ".join(f"{m} {_figure(v)}" for m, v in released.items())
+    if mode == "thresholdout":
+        return (f"thresholdout answer: {shown} (the CV mean when the holdout agrees with it, otherwise a noisy "
+                "holdout score)")
+    return f"this submission's holdout score: {shown} ({mode}, rounded)"
+
+
+def _figure(value: float | None) -> str:
+    return "-" if value is None else f"{value:.12g}"

@@ -168,6 +168,7 @@ holdout_releases = Table(
     Column("state", JSON, nullable=False),  # mechanism state after this release (ladder best, budget left)
     Column("withheld_until", DateTime(timezone=True)),
     Column("released_at", DateTime(timezone=True), nullable=False),
+    Column("policy_version", Integer),  # the policy released under; null on rows from before it was kept
     Index("ix_releases_owner", "dataset_id", "owner_key_id", "released_at"),
 )
 

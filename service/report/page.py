@@ -186,12 +186,19 @@ def _interval_section(facts: ReportFacts) -> Markup:
     holdout = facts.holdout
     released = (holdout.get("scores") or {}).get(metric) if holdout["released"] else None
     holdout_note = f"released ({holdout['mode']})" if released is not None else (holdout.get("note") or "withheld")
+    ladder = holdout.get("ladder")
+    holdout_name = "holdout, as released"
+    if ladder is not None and ladder["new_best"]:
+        holdout_name, holdout_note = "holdout: new best (ladder)", "this submission set the dataset's best so far"
+    elif ladder is not None:
+        holdout_name = "dataset's best holdout so far, not this model's"
+        holdout_note = f"ladder; held by {ladder['held_by']}" if ladder["held_by"] else "ladder"
     rows = [IntervalRow("CV mean, naive 95 % interval", summary.get("mean"), CANDIDATE, "circle",
                         tuple(interval) if interval else None),
             IntervalRow("baseline CV mean", baseline.get("mean"), BASELINE, "square")]
     if facts.champion is not None:
         rows.append(IntervalRow("champion CV mean", facts.champion.mean, CHAMPION, "diamond"))
-    rows.append(IntervalRow("holdout, as released", released, HOLDOUT, "diamond", note=holdout_note))
+    rows.append(IntervalRow(holdout_name, released, HOLDOUT, "diamond", note=holdout_note))
     bar = facts.policy.get("bar") if facts.policy_matches_verdict or facts.verdict is None else None
     return element("section", None,
                    element("h2", None, f"Cross-validation against the holdout: {metric}"),
@@ -199,6 +206,7 @@ def _interval_section(facts: ReportFacts) -> Markup:
                    element("p", {"class": "note"}, f"The interval is {NAIVE_NOTE}. The holdout figure is what "
                            f"the release policy shows: {RELEASE_NOTES.get(str(holdout['mode']), 'nothing yet')}. "
                            "The raw holdout score stays inside the service."),
+                   element("p", {"class": "holdout-summary"}, f"Holdout: {holdout.get('summary') or 'nothing yet'}."),
                    _metrics_table(facts))
 
 
@@ -218,8 +226,16 @@ def _metrics_table(facts: ReportFacts) -> Markup:
             shown += " (clipped to the metric's range)"
         rows.append(element("tr", None, element("td", None, metric), _num(item.get("mean")), _num(item.get("std")),
                             element("td", {"class": "num"}, shown), _num((baseline.get(metric) or {}).get("mean")),
-                            _num(released.get(metric))))
+                            _holdout_cell(facts.holdout, metric, released.get(metric))))
     return element("table", None, header, rows)
+
+
+def _holdout_cell(holdout: dict[str, Any], metric: str, value: float | None) -> Markup:
+    """Show a released figure; a ladder figure this submission did not set is labelled as the dataset's."""
+    ladder = holdout.get("ladder")
+    if value is None or ladder is None or ladder["metric"] != metric or ladder["new_best"]:
+        return _num(value)
+    return element("td", {"class": "num"}, f"best so far {figure(float(value), 4)} (not this model's)")
 
 
 def _coefficient_section(facts: ReportFacts) -> Markup:

@@ -56,7 +56,8 @@ def _result(row: dict[str, Any], folds: list[dict[str, Any]], release: dict[str,
         "learning_curve_note": summary.get("learning_curve_note"),
         "search": summary.get("search"),
         "baseline": summary.get("baseline"),
-        "holdout": holdout_part(release, row["state"]),  # only what the release policy lets out, never the raw score
+        # only what the release policy lets out, never the raw score
+        "holdout": holdout_part(release, row["state"], row.get("policy_version")),
         "verdict": row["verdict"],
         "provenance": summary.get("provenance"),
     }

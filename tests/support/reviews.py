@@ -7,11 +7,12 @@ built by the worker's own ``summary_document`` so its shape is the real one.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import Any
 
 from sqlalchemy import Engine
 
+from service.gate.release import Release
 from service.ids import new_id
 from service.records import holdout_releases, submissions
 from service.vocabulary import LIVE_STATES
@@ -39,11 +40,14 @@ def make_submission(
     decision: str | None = "pass", verdict_doc: dict[str, Any] | None = None,
     released: dict[str, float] | str | None = "auto", folds: int | None = None, repeats: int = 1,
     coefficients: dict[str, Any] | None = None, champion_id: str | None = None,
+    release_with: Callable[[str], Release] | None = None, policy_version: int = 0,
 ) -> str:
     """Insert a submission with its folds, summary, verdict and release; return its id.
 
     ``scores`` are the candidate's primary-metric fold scores (None: no folds recorded, e.g. queued);
-    ``released="auto"`` releases the CV mean rounded to 3 digits, None withholds the holdout.
+    ``released="auto"`` releases the CV mean rounded to 3 digits, None withholds the holdout;
+    ``release_with`` instead gives the release mechanism's outcome for the new submission's id, recorded
+    as the verdict job records it, under ``policy_version``.
     """
     plan = dataset["fold_plan"]
     n_folds = folds or (len(scores) // repeats if scores else plan["folds"])
@@ -79,12 +83,16 @@ def make_submission(
         submissions.store_holdout_once(engine, sub_id, {metric: RAW_HOLDOUT}, "h" * 64, 0.1)
         mean = summary["summary"][metric]["mean"]
         shown = {metric: round(mean, 3)} if released == "auto" else released
+        row: dict[str, Any] = {"mode": "exact", "released": shown, "spent": 1, "state": {}, "withheld_until": None}
+        if release_with is not None:
+            outcome = release_with(sub_id)
+            row = {"mode": outcome.mode, "released": outcome.released, "spent": outcome.spent,
+                   "state": outcome.state, "withheld_until": outcome.withheld_until, "policy_version": policy_version}
         holdout_releases.record(engine, {
-            "submission_id": sub_id, "dataset_id": dataset["id"], "owner_key_id": owner_key_id, "mode": "exact",
-            "released": shown, "spent": 1, "state": {}, "withheld_until": None,
-        })
+            "submission_id": sub_id, "dataset_id": dataset["id"], "owner_key_id": owner_key_id, **row})
     if decision is not None or verdict_doc is not None:
-        doc = verdict_doc or verdict(str(decision), metric=metric, champion=champion_id)
+        doc = verdict_doc or verdict(str(decision), metric=metric, champion=champion_id,
+                                     policy_version=policy_version)
         submissions.store_verdict(engine, sub_id, doc, doc.get("policy_version", 0), champion_id)
     if state != "running":
         submissions.transition(engine, sub_id, state, LIVE_STATES)

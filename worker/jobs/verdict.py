@@ -63,7 +63,7 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
 
     with redis.lock(f"sealfold:release:{dataset['id']}", timeout=120, blocking_timeout=60):
         if holdout_releases.get(engine, submission_id) is None:
-            _release(ctx, sub, dataset, policy, raw["scores"], candidate, folds)
+            _release(ctx, sub, dataset, policy, version, raw["scores"], candidate, folds)
 
     champion_id = champions.current(engine, dataset["id"])
     champion = None if champion_id in (None, submission_id) else _champion(ctx, str(champion_id), metric)
@@ -105,7 +105,7 @@ def _champion(ctx: WorkerContext, champion_id: str, metric: str) -> ChampionFold
 
 
 def _release(
-    ctx: WorkerContext, sub: Mapping[str, Any], dataset: Mapping[str, Any], policy: Policy,
+    ctx: WorkerContext, sub: Mapping[str, Any], dataset: Mapping[str, Any], policy: Policy, version: int,
     raw_scores: Mapping[str, float | None], candidate: Mapping[Cell, float], folds: list[dict[str, Any]],
 ) -> None:
     engine = ctx.engine
@@ -131,5 +131,5 @@ def _release(
     holdout_releases.record(engine, {
         "submission_id": sub["id"], "dataset_id": dataset["id"], "owner_key_id": sub["owner_key_id"],
         "mode": outcome.mode, "released": outcome.released, "spent": outcome.spent, "state": outcome.state,
-        "withheld_until": outcome.withheld_until,
+        "withheld_until": outcome.withheld_until, "policy_version": version,
     })

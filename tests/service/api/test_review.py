@@ -154,7 +154,10 @@ def test_board_ranks_by_the_primary_metric_and_shows_only_released_figures(
     assert top["cv"]["mean"] == pytest.approx(50.0) and top["cv"]["n"] == 5
     low, high = top["cv"]["naive_interval_95"]
     assert low < 50.0 < high
-    assert top["holdout"] == {"released": True, "mode": "exact", "score": 50.0, "withheld_until": None}
+    assert top["holdout"] == {"released": True, "mode": "exact", "score": 50.0, "withheld_until": None,
+                              "policy_version": 0, "figure": "own_score", "ladder": None,
+                              "summary": "this submission's holdout score: rmse 50 (exact, rounded)"}
+    assert doc["holdout_policies"] == [{"mode": "exact", "policy_version": 0}] and doc["mixed_policies"] is None
     assert top["verdict"] == "pass" and top["submitter"] == {"key": api.key_ids["submitter2"], "name": "submitter2"}
     assert top["created_at"].endswith("Z")
     assert doc["entries"][1]["holdout"]["released"] is False and doc["entries"][1]["holdout"]["score"] is None

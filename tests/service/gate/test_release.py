@@ -13,6 +13,7 @@ import pytest
 
 from service.gate.policy import Policy, ReleaseParams, ThresholdoutParams, default_policy
 from service.gate.release import HoldoutScores, Release, budget_status, release
+from service.gate.review_state import holdout_part
 
 NOW = datetime(2026, 3, 1, 12, 0, tzinfo=UTC)
 RMSE = default_policy("regression")
@@ -193,3 +194,28 @@ def test_thresholdout_noise_has_the_laplace_scale() -> None:
 
 def test_release_params_default_is_the_parameter_free_ladder() -> None:
     assert ReleaseParams().mode == "ladder" and ReleaseParams().ladder_step is None
+
+
+def _row(out: Release, sub: str) -> dict[str, Any]:
+    """A release as the verdict job records it (holdout_releases row), without the times."""
+    return {"submission_id": sub, "mode": out.mode, "released": out.released, "state": out.state,
+            "withheld_until": out.withheld_until, "policy_version": 3}
+
+
+def test_the_holdout_part_says_whether_a_ladder_figure_is_this_submissions_and_nothing_when_withheld() -> None:
+    policy = _policy(RMSE, ladder_step=0.5, budget=1)
+    first = _release(policy, _scores(10.2, sub="sub_a"))
+    # 10.3 is worse than the best (10.0 after rounding to the step): the ladder stays where sub_a put it.
+    second = _release(policy, _scores(10.3, sub="sub_b"), first.state)
+    a, b = holdout_part(_row(first, "sub_a")), holdout_part(_row(second, "sub_b"))
+    assert a["ladder"] == {"metric": "rmse", "new_best": True, "best_so_far": 10.0, "held_by": "sub_a"}
+    assert b["ladder"] == {"metric": "rmse", "new_best": False, "best_so_far": 10.0, "held_by": "sub_a"}
+    assert (a["policy_version"], b["summary"]) == (3, "no new best (best so far rmse 10, held by sub_a); this "
+                                                   "submission's own holdout figure is not released under the ladder")
+    # Withheld by the budget: no figure, so nothing said about the ladder either.
+    withheld = _release(policy, _scores(9.0, sub="sub_c"), second.state, spent_at=[NOW - timedelta(hours=1)])
+    c = holdout_part(_row(withheld, "sub_c"))
+    assert c["released"] is False and c["ladder"] is None and c["summary"] == c["note"]
+    assert c["summary"].startswith("withheld:") and "10" not in c["summary"]
+    exact = holdout_part(_row(_release(_policy(RMSE, mode="exact"), _scores(12.34567, sub="sub_d")), "sub_d"))
+    assert exact["ladder"] is None and exact["summary"] == "this submission's holdout score: rmse 12.3 (exact, rounded)"
