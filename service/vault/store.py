@@ -82,8 +82,9 @@ def write_dataset(
         raise Conflict(f"dataset {ds_id!r} already has files")
     if list(dev_df_with_row_id.columns[:1]) != [ROW_ID]:
         raise InputError(f"the development frame must start with {ROW_ID!r}")
+    settings.data_dir.mkdir(mode=0o700, parents=True, exist_ok=True)
     paths.root.parent.mkdir(parents=True, exist_ok=True)
-    sealed_dir.parent.mkdir(parents=True, exist_ok=True)
+    sealed_dir.parent.mkdir(mode=0o700, parents=True, exist_ok=True)
     os.chmod(sealed_dir.parent, 0o700)
     try:
         staging = Path(tempfile.mkdtemp(prefix=f".{ds_id}-", dir=paths.root.parent))
