@@ -8,7 +8,8 @@ a score, or the error of a refit or scoring that failed -- final: a retried or d
 finds it and never scores again. Before refitting, the job claims the computation in the records
 (``records.holdout_claims``): of two jobs running at once for one submission (RQ retrying a job it
 thought abandoned while the original still runs) one computes, the other waits for the stored outcome,
-and takes over only when the holder's heartbeat has stopped. Nothing here logs, returns or stores holdout rows, ids or
+and takes over only when the holder's heartbeat has stopped; a holder that finds its claim taken over
+stops before opening the seal. Nothing here logs, returns or stores holdout rows, ids or
 predictions; errors raised while the holdout is in use are replaced by their class name, because
 an estimator's message can quote the values it choked on. A broken seal is the one outcome that
 fails the submission at once: it is an incident with the data, not a verdict on the model.
@@ -38,8 +39,8 @@ from worker.learning.scoring import class_labels, per_example, predictions, scor
 from worker.learning.search import build_model
 
 # A claim without a heartbeat for this long belonged to a job that died; another job may take it over.
-CLAIM_STALE_SECONDS = 120.0
-HEARTBEAT_SECONDS = 15.0
+CLAIM_STALE_SECONDS = 60.0
+HEARTBEAT_SECONDS = 10.0
 POLL_SECONDS = 0.5  # how often a job that lost the claim looks for the stored outcome
 
 
@@ -65,11 +66,13 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
                 return late.answer
             time.sleep(POLL_SECONDS)
     with _heartbeat(ctx, submission_id, token):
-        return _score(ctx, submission_id, sub, dataset)
+        return _score(ctx, submission_id, sub, dataset, token)
 
 
-def _score(ctx: WorkerContext, submission_id: str, sub: dict[str, Any], dataset: dict[str, Any]) -> dict[str, Any]:
-    """Refit on every development row and score the seal; the caller holds the claim."""
+def _score(
+    ctx: WorkerContext, submission_id: str, sub: dict[str, Any], dataset: dict[str, Any], token: str
+) -> dict[str, Any]:
+    """Refit on every development row and score the seal; the caller holds the claim as ``token``."""
     engine = ctx.engine
     config = ResolvedConfig.from_document(sub["config"])
     metrics = config.metrics
@@ -91,6 +94,9 @@ def _score(ctx: WorkerContext, submission_id: str, sub: dict[str, Any], dataset:
         error = f"refitting on all development rows failed: {type(exc).__name__}: {exc}"
         return _not_scored(ctx, submission_id, dataset, error, "refit failed")
 
+    if not holdout_claims.beat(engine, submission_id, token):
+        # This job stalled past the stale limit and another took the claim over: that one scores.
+        return {"submission_id": submission_id, "holdout": "claim lost"}
     try:
         holdout = store.open_sealed_holdout(ctx.settings, dataset["id"], dataset["holdout_fingerprint"])
     except SealBroken as exc:
@@ -133,7 +139,10 @@ def _heartbeat(ctx: WorkerContext, submission_id: str, token: str) -> Iterator[N
 
     def beat() -> None:
         while not done.wait(HEARTBEAT_SECONDS):
-            holdout_claims.beat(ctx.engine, submission_id, token)
+            try:
+                holdout_claims.beat(ctx.engine, submission_id, token)
+            except Exception:  # a records hiccup must not end the heartbeat; the next beat retries
+                continue
 
     thread = threading.Thread(target=beat, name=f"holdout-claim-{submission_id}", daemon=True)
     thread.start()

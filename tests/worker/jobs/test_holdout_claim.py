@@ -140,6 +140,26 @@ def test_a_claim_whose_heartbeat_stopped_is_taken_over(ctx: WorkerContext, monke
     assert not holdout_claims.beat(ctx.engine, sub_id, "claim_dead")  # the dead job's claim is gone
 
 
+def test_a_job_whose_claim_was_taken_over_does_not_open_the_seal(
+    ctx: WorkerContext, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    sub_id, _ = _submission(ctx)
+    real_build = holdout.build_model
+    opened: list[str] = []
+    real_open = store.open_sealed_holdout
+
+    def stalled(*args: Any, **kwargs: Any) -> Any:
+        # While this job refits, it stalls past the stale limit and another job takes the claim over.
+        with ctx.engine.begin() as conn:
+            conn.execute(update(claims_table).values(token="claim_successor"))
+        return real_build(*args, **kwargs)
+
+    monkeypatch.setattr(holdout, "build_model", stalled)
+    monkeypatch.setattr(store, "open_sealed_holdout", lambda *a, **k: opened.append(a[1]) or real_open(*a, **k))
+    assert holdout.score_holdout(ctx, sub_id) == {"submission_id": sub_id, "holdout": "claim lost"}
+    assert opened == [] and submissions.get_holdout(ctx.engine, sub_id) is None
+
+
 def test_the_heartbeat_keeps_a_long_computation_claimed(ctx: WorkerContext, monkeypatch: pytest.MonkeyPatch) -> None:
     # The computation lasts longer than the stale limit; only the heartbeat keeps the second job waiting.
     monkeypatch.setattr(holdout, "CLAIM_STALE_SECONDS", 1.0)
