@@ -184,8 +184,11 @@ class DatasetSchema(Schema):
     holdout = fields.Nested(HoldoutPlanSchema)
     fold_plan = fields.Nested(FoldPlanSchema)
     balance = fields.Nested(BalanceSchema, allow_none=True)
-    fingerprint = fields.String(metadata={"description": "SHA-256 of the whole registered table"})
-    development_fingerprint = fields.String()
+    fingerprint = fields.String(metadata={"description": (
+        "Pins the registered data: SHA-256 of the development fingerprint and a keyed hash (HMAC, server-side "
+        "key) of the holdout's, so it changes with any holdout value but cannot be recomputed from rows")})
+    development_fingerprint = fields.String(metadata={
+        "description": "SHA-256 of the development partition (row_id first) in the canonical serialisation"})
     created_by = fields.String()
     created_at = fields.String(metadata=_DATETIME)
 

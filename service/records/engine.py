@@ -2,11 +2,14 @@
 
 from __future__ import annotations
 
+import contextlib
+import os
 import sqlite3
 from datetime import UTC, datetime
+from pathlib import Path
 from typing import Any
 
-from sqlalchemy import Engine, create_engine, event, inspect, text
+from sqlalchemy import Engine, create_engine, event, inspect, make_url, text
 from sqlalchemy.exc import DBAPIError
 
 from service.records.tables import RENAMED_COLUMNS, metadata
@@ -24,7 +27,8 @@ def make_engine(settings: Settings, create_schema: bool = True) -> Engine:
     """
     url = settings.effective_database_url
     if url.startswith("sqlite"):
-        settings.data_dir.mkdir(parents=True, exist_ok=True)
+        settings.data_dir.mkdir(mode=0o700, parents=True, exist_ok=True)
+        _create_owner_only(url)
         engine = create_engine(url, connect_args={"timeout": 30})
         event.listen(engine, "connect", _sqlite_pragmas)
     else:
@@ -36,6 +40,22 @@ def make_engine(settings: Settings, create_schema: bool = True) -> Engine:
         _add_missing_columns(engine)
         _carry_renamed_columns(engine)
     return engine
+
+
+def _create_owner_only(url: str) -> None:
+    """Create a new SQLite records file readable by its owner only (0600), before SQLite opens it.
+
+    The records hold raw holdout scores and the release mechanisms' noise. SQLite gives the ``-wal``
+    and ``-shm`` files it makes beside the database the database file's own mode, so they are 0600
+    too. An existing file is left as it is; so is an in-memory database.
+    """
+    database = make_url(url).database
+    if not database or database == ":memory:" or database.startswith("file:"):
+        return
+    path = Path(database)
+    path.parent.mkdir(mode=0o700, parents=True, exist_ok=True)
+    with contextlib.suppress(FileExistsError):
+        os.close(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600))
 
 
 def _add_missing_columns(engine: Engine) -> None:

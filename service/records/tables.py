@@ -133,6 +133,17 @@ holdout_scores = Table(
     Column("error", Text),
 )
 
+holdout_claims = Table(
+    "holdout_claims",
+    metadata,
+    # Which holdout job computes a submission's one holdout outcome. The primary key lets one job win
+    # the insert; the winner's heartbeat keeps the claim, and only a claim gone stale can be taken over
+    # (a conditional update that one caller wins), so two live jobs never both refit and score.
+    Column("submission_id", ForeignKey("submissions.id"), primary_key=True),
+    Column("token", String(40), nullable=False),
+    Column("heartbeat_at", DateTime(timezone=True), nullable=False),
+)
+
 policies = Table(
     "policies",
     metadata,

@@ -36,7 +36,7 @@ from service.records.engine import utcnow
 from service.records.keys import KeyInfo
 from service.settings import Settings
 from service.vault import balance, sealing, store
-from service.vault.fingerprint import fingerprint_frame
+from service.vault.fingerprint import fingerprint_frame, published_fingerprint
 from service.vault.folds import (
     FOLD_SCHEMES,
     FoldPlan,
@@ -107,6 +107,7 @@ def register_dataset(
         "task": declaration.task,
         **{role: getattr(declaration, role) for role in _ROLE_COLUMNS},
     }
+    development_fingerprint = fingerprint_frame(sealed.development)
     holdout_fingerprint = fingerprint_frame(sealed.holdout)
     ds_id = new_id("ds")
     row = {
@@ -125,8 +126,9 @@ def register_dataset(
         "holdout_fraction": sealed.fraction,
         "sealing_seed": str(sealed.seed),
         "fold_plan": sealed.plan.to_document(),
-        "fingerprint": fingerprint_frame(frame),
-        "development_fingerprint": fingerprint_frame(sealed.development),
+        "fingerprint": published_fingerprint(development_fingerprint, holdout_fingerprint,
+                                             store.fingerprint_key(settings)),
+        "development_fingerprint": development_fingerprint,
         "holdout_fingerprint": holdout_fingerprint,
         "balance": sealed.balance,
         "created_by": actor.id,

@@ -10,6 +10,7 @@ Layout (``settings.data_dir``):
                                           algorithm (``ASSIGNMENT_VERSIONS``), so a changed
                                           algorithm never reads an older cache
     sealed/<ds_id>/holdout.parquet        holdout rows; directories 0700, file 0600
+    secrets/fingerprint.key               the key of the published fingerprints' holdout HMAC (0700, 0600)
 
 Both directories are first written under a temporary name beside their final place and then
 renamed, so a reader sees a dataset completely or not at all. Only the worker's holdout job may
@@ -22,6 +23,7 @@ import hmac
 import json
 import os
 import re
+import secrets
 import shutil
 import tempfile
 from collections.abc import Iterator
@@ -83,8 +85,9 @@ def write_dataset(
         raise Conflict(f"dataset {ds_id!r} already has files")
     if list(dev_df_with_row_id.columns[:1]) != [ROW_ID]:
         raise InputError(f"the development frame must start with {ROW_ID!r}")
+    settings.data_dir.mkdir(mode=0o700, parents=True, exist_ok=True)
     paths.root.parent.mkdir(parents=True, exist_ok=True)
-    sealed_dir.parent.mkdir(parents=True, exist_ok=True)
+    sealed_dir.parent.mkdir(mode=0o700, parents=True, exist_ok=True)
     os.chmod(sealed_dir.parent, 0o700)
     try:
         staging = Path(tempfile.mkdtemp(prefix=f".{ds_id}-", dir=paths.root.parent))
@@ -228,6 +231,32 @@ def open_sealed_holdout(settings: Settings, ds_id: str, expected_fingerprint: st
     if not hmac.compare_digest(actual.encode("ascii"), expected_fingerprint.encode("ascii", "replace")):
         raise SealBroken(f"the sealed holdout of dataset {ds_id!r} does not match its fingerprint")
     return frame
+
+
+def fingerprint_key(settings: Settings) -> bytes:
+    """Return the server's key for published fingerprints, creating it (0600, in a 0700 directory) once.
+
+    The key is written whole under a temporary name and linked to its final name, which fails when
+    another process made it first; then that process's key is read, so every registration uses one key.
+    """
+    folder = settings.data_dir / "secrets"
+    path = folder / "fingerprint.key"
+    if not path.is_file():
+        folder.mkdir(mode=0o700, parents=True, exist_ok=True)
+        os.chmod(folder, 0o700)
+        handle, temporary = tempfile.mkstemp(prefix=".key-", dir=folder)  # mode 0600
+        try:
+            with os.fdopen(handle, "wb") as out:
+                out.write(secrets.token_bytes(32))
+            os.link(temporary, path)
+        except FileExistsError:
+            pass
+        finally:
+            Path(temporary).unlink(missing_ok=True)
+    key = path.read_bytes()
+    if len(key) != 32:
+        raise SealBroken("the server's fingerprint key is damaged")
+    return key
 
 
 def _write_parquet(frame: pd.DataFrame, path: Path) -> None:

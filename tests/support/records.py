@@ -17,8 +17,10 @@ from service.ids import new_id
 from service.records import datasets
 from service.records.engine import make_engine, utcnow
 from service.settings import Settings
-from service.vault.fingerprint import fingerprint_frame
+from service.vault.fingerprint import fingerprint_frame, published_fingerprint
 from service.vault.tables import column_kinds
+
+_KEY = bytes(range(32))  # a server's fingerprint key; any 32 bytes
 
 
 def records_engine(data_dir: Path) -> Engine:
@@ -41,7 +43,8 @@ def add_dataset_row(
         "holdout_scheme": "random", "holdout_fraction": len(hold) / len(frame), "sealing_seed": "1",
         # The plan registration gives such a dataset: stratified folds for classification.
         "fold_plan": {"scheme": "stratified" if task == "classification" else "kfold", "folds": folds, "seed": seed},
-        "fingerprint": fingerprint_frame(frame), "development_fingerprint": fingerprint_frame(dev),
+        "fingerprint": published_fingerprint(fingerprint_frame(dev), fingerprint_frame(hold), _KEY),
+        "development_fingerprint": fingerprint_frame(dev),
         "holdout_fingerprint": fingerprint_frame(hold), "created_by": created_by, "created_at": utcnow(),
     })
     row = datasets.get_internal(engine, ds_id)

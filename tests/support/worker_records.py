@@ -13,7 +13,7 @@ from service.ids import new_id
 from service.records import datasets, submissions
 from service.records.engine import utcnow
 from service.vault import store
-from service.vault.fingerprint import fingerprint_frame
+from service.vault.fingerprint import fingerprint_frame, published_fingerprint
 from service.vault.tables import column_kinds
 from worker.jobs import runtime
 
@@ -38,7 +38,9 @@ def add_dataset(
         else None, "rows_total": len(full), "rows_development": len(dev), "rows_holdout": len(hold),
         "holdout_scheme": "random", "holdout_fraction": len(hold) / len(full), "sealing_seed": "1",
         "fold_plan": {"scheme": scheme, "folds": folds, "seed": seed},
-        "fingerprint": fingerprint_frame(full), "development_fingerprint": fingerprint_frame(dev),
+        "fingerprint": published_fingerprint(fingerprint_frame(dev), fingerprint_frame(hold),
+                                             store.fingerprint_key(ctx.settings)),
+        "development_fingerprint": fingerprint_frame(dev),
         "holdout_fingerprint": fingerprint_frame(hold), "created_by": "key_test", "created_at": utcnow(),
     })
     row = datasets.get_internal(ctx.engine, ds_id)

@@ -5,7 +5,11 @@ fingerprint checked) and scored. The job runs beside the fold jobs (it needs not
 and only stores its outcome; the verdict job, after the summary, releases a figure or fails the
 submission with the stored error. The holdout row's primary key makes the first stored outcome --
 a score, or the error of a refit or scoring that failed -- final: a retried or duplicated job
-finds it and never scores again. Nothing here logs, returns or stores holdout rows, ids or
+finds it and never scores again. Before refitting, the job claims the computation in the records
+(``records.holdout_claims``): of two jobs running at once for one submission (RQ retrying a job it
+thought abandoned while the original still runs) one computes, the other waits for the stored outcome,
+and takes over only when the holder's heartbeat has stopped; a holder that finds its claim taken over
+stops before opening the seal. Nothing here logs, returns or stores holdout rows, ids or
 predictions; errors raised while the holdout is in use are replaced by their class name, because
 an estimator's message can quote the values it choked on. A broken seal is the one outcome that
 fails the submission at once: it is an incident with the data, not a verdict on the model.
@@ -13,12 +17,17 @@ fails the submission at once: it is an incident with the data, not a verdict on 
 
 from __future__ import annotations
 
+import threading
 import time
 import warnings
+from collections.abc import Iterator
+from contextlib import contextmanager
+from datetime import timedelta
 from typing import Any
 
 from service.errors import SealBroken
-from service.records import submissions
+from service.ids import new_id
+from service.records import holdout_claims, submissions
 from service.submission.resolved import ResolvedConfig
 from service.vault import store
 from service.vocabulary import LIVE_STATES
@@ -29,6 +38,11 @@ from worker.learning.pipeline import build_pipeline, fit_in_place, uses_frame
 from worker.learning.scoring import class_labels, per_example, predictions, score_predictions
 from worker.learning.search import build_model
 
+# A claim without a heartbeat for this long belonged to a job that died; another job may take it over.
+CLAIM_STALE_SECONDS = 60.0
+HEARTBEAT_SECONDS = 10.0
+POLL_SECONDS = 0.5  # how often a job that lost the claim looks for the stored outcome
+
 
 def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     """Score the holdout once and store the outcome; a failed or canceled submission is left alone."""
@@ -37,9 +51,29 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     if isinstance(work, Skip):
         return work.answer
     sub, dataset = work.submission, work.dataset
-    if submissions.get_holdout(engine, submission_id) is not None:
-        # Scored (or failed) in an earlier run; the verdict job finishes the submission.
-        return {"submission_id": submission_id, "holdout": "already scored"}
+    token = new_id("claim")
+    claimed = False
+    while True:
+        if submissions.get_holdout(engine, submission_id) is not None:
+            # Scored (or failed) in an earlier or another run; the verdict job finishes the submission.
+            return {"submission_id": submission_id, "holdout": "already scored"}
+        if claimed:
+            break
+        claimed = holdout_claims.claim(engine, submission_id, token, timedelta(seconds=CLAIM_STALE_SECONDS))
+        if not claimed:  # another job computes it: wait for its outcome, or for its heartbeat to stop
+            late = submission_to_work_on(ctx, submission_id)
+            if isinstance(late, Skip):
+                return late.answer
+            time.sleep(POLL_SECONDS)
+    with _heartbeat(ctx, submission_id, token):
+        return _score(ctx, submission_id, sub, dataset, token)
+
+
+def _score(
+    ctx: WorkerContext, submission_id: str, sub: dict[str, Any], dataset: dict[str, Any], token: str
+) -> dict[str, Any]:
+    """Refit on every development row and score the seal; the caller holds the claim as ``token``."""
+    engine = ctx.engine
     config = ResolvedConfig.from_document(sub["config"])
     metrics = config.metrics
     kinds = column_kinds(dataset)
@@ -60,6 +94,9 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
         error = f"refitting on all development rows failed: {type(exc).__name__}: {exc}"
         return _not_scored(ctx, submission_id, dataset, error, "refit failed")
 
+    if not holdout_claims.beat(engine, submission_id, token):
+        # This job stalled past the stale limit and another took the claim over: that one scores.
+        return {"submission_id": submission_id, "holdout": "claim lost"}
     try:
         holdout = store.open_sealed_holdout(ctx.settings, dataset["id"], dataset["holdout_fingerprint"])
     except SealBroken as exc:
@@ -93,6 +130,27 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     )
     return {"submission_id": submission_id, "holdout": "scored" if created else "already scored",
             "metrics": sorted(scores)}
+
+
+@contextmanager
+def _heartbeat(ctx: WorkerContext, submission_id: str, token: str) -> Iterator[None]:
+    """Renew the claim from a thread while the body runs, so a waiting job never takes over a live one."""
+    done = threading.Event()
+
+    def beat() -> None:
+        while not done.wait(HEARTBEAT_SECONDS):
+            try:
+                holdout_claims.beat(ctx.engine, submission_id, token)
+            except Exception:  # a records hiccup must not end the heartbeat; the next beat retries
+                continue
+
+    thread = threading.Thread(target=beat, name=f"holdout-claim-{submission_id}", daemon=True)
+    thread.start()
+    try:
+        yield
+    finally:
+        done.set()
+        thread.join()
 
 
 def _not_scored(

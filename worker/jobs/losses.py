@@ -4,11 +4,15 @@ The parameter-free ladder compares a new submission with the best so far by the 
 their per-example loss differences, so those values must outlive the holdout job. They are derived
 from holdout rows, so they live beside the sealed file (directory 0700, files 0600) and never leave
 the service.
+A file that cannot be read raises ``DamagedLosses``, whose message names the submission and the error
+class only, so the verdict job can fail the submission plainly instead of retrying forever.
 """
 
 from __future__ import annotations
 
 import os
+import tempfile
+import zipfile
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
@@ -19,6 +23,10 @@ from service.settings import Settings
 from service.vault.store import dataset_paths
 
 
+class DamagedLosses(Exception):
+    """A kept per-example file exists but cannot be read."""
+
+
 def _path(settings: Settings, dataset_id: str, submission_id: str) -> Path:
     return dataset_paths(settings, dataset_id).sealed_holdout.parent / "per_example" / f"{submission_id}.npz"
 
@@ -26,21 +34,40 @@ def _path(settings: Settings, dataset_id: str, submission_id: str) -> Path:
 def save_per_example(
     settings: Settings, dataset_id: str, submission_id: str, values: Mapping[str, np.ndarray]
 ) -> None:
-    """Write a submission's per-example values per metric atomically, readable by the owner only."""
+    """Write a submission's per-example values per metric atomically, readable by the owner only.
+
+    Written under a unique temporary name in the same sealed directory (mode 0600 from creation),
+    then renamed over the final name, so two writers never share a partial file and a reader sees
+    one whole file or none.
+    """
     path = _path(settings, dataset_id, submission_id)
     path.parent.mkdir(mode=0o700, exist_ok=True)
-    partial = path.with_suffix(".partial")
-    fd = os.open(partial, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+    fd, partial = tempfile.mkstemp(prefix=f".{submission_id}-", suffix=".partial", dir=path.parent)
     arrays: dict[str, Any] = {m: np.asarray(v, dtype=np.float64) for m, v in values.items()}
-    with os.fdopen(fd, "wb") as handle:
-        np.savez(handle, **arrays)
-    os.replace(partial, path)
+    try:
+        os.fchmod(fd, 0o600)
+        with os.fdopen(fd, "wb") as handle:
+            np.savez(handle, **arrays)
+        os.replace(partial, path)
+    except BaseException:
+        Path(partial).unlink(missing_ok=True)
+        raise
 
 
 def load_per_example(settings: Settings, dataset_id: str, submission_id: str, metric: str) -> np.ndarray | None:
-    """Return a submission's per-example values of ``metric``, or None when none were kept."""
+    """Return a submission's per-example values of ``metric``, or None when none were kept.
+
+    Raises ``DamagedLosses`` when the file is there but cannot be read.
+    """
     path = _path(settings, dataset_id, submission_id)
     if not path.exists():
         return None
-    with np.load(path) as stored:
-        return np.asarray(stored[metric]) if metric in stored.files else None
+    try:
+        stored = np.load(path, allow_pickle=False)
+        if not isinstance(stored, np.lib.npyio.NpzFile):
+            raise ValueError("not an archive of arrays")
+        with stored:
+            return np.asarray(stored[metric], dtype=np.float64) if metric in stored.files else None
+    except (OSError, ValueError, EOFError, KeyError, zipfile.BadZipFile) as exc:
+        raise DamagedLosses(f"the per-example holdout losses kept for submission {submission_id} cannot be read "
+                            f"({type(exc).__name__})") from exc

@@ -3,7 +3,8 @@
 The last job of the chain (folds -> summary, and the holdout beside them -> verdict). It reads only
 the records: fold rows, the stored summary and the raw holdout outcome the holdout job stored once.
 A holdout attempt that failed fails the submission here, after the summary, so the failed
-submission still carries its cross-validation result. The release is
+submission still carries its cross-validation result; so does a per-example loss file that cannot be
+read, with nothing released. The release is
 recorded once per submission (primary key) under a per-dataset lock, because the ladder and
 thresholdout carry state from one submission to the next. The submission becomes ``succeeded``
 only here, so a client that sees ``succeeded`` always finds its verdict.
@@ -26,7 +27,7 @@ from service.records import champions, holdout_releases, submissions
 from service.records.engine import as_utc, utcnow
 from service.submission.resolved import ValidationPlan
 from service.vocabulary import LIVE_STATES
-from worker.jobs.losses import load_per_example
+from worker.jobs.losses import DamagedLosses, load_per_example
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 
 Cell = tuple[int, int]
@@ -61,9 +62,15 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
     candidate = _cells(folds, "scores", metric)
     baseline = _cells(folds, "baseline_scores", metric)
 
-    with redis.lock(f"sealfold:release:{dataset['id']}", timeout=120, blocking_timeout=60):
-        if holdout_releases.get(engine, submission_id) is None:
-            _release(ctx, sub, dataset, policy, version, raw["scores"], candidate, folds)
+    try:
+        with redis.lock(f"sealfold:release:{dataset['id']}", timeout=120, blocking_timeout=60):
+            if holdout_releases.get(engine, submission_id) is None:
+                _release(ctx, sub, dataset, policy, version, raw["scores"], candidate, folds)
+    except DamagedLosses as exc:
+        # A retry would find the same file: fail now, with nothing released, rather than stay running.
+        error = f"{exc}; nothing about the holdout was released"
+        submissions.transition(engine, submission_id, "failed", LIVE_STATES, error=error)
+        return {"submission_id": submission_id, "decision": None, "holdout": "not released"}
 
     champion_id = champions.current(engine, dataset["id"])
     champion = None if champion_id in (None, submission_id) else _champion(ctx, str(champion_id), metric)

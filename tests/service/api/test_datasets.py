@@ -14,6 +14,7 @@ from sqlalchemy import func, select
 
 from service.records import datasets
 from service.records.tables import datasets as datasets_table
+from service.vault import registration
 from service.vault.store import dataset_paths
 from tests.support.datasets import csv_bytes, diabetes_frame
 
@@ -81,21 +82,29 @@ def test_development_download_is_csv_with_row_id_first_and_no_holdout_rows(
         map(tuple, original[key].round(12).to_numpy()))
 
 
-def test_parquet_upload_and_import_by_path(api: Api, dataset: dict[str, Any], diabetes_csv: bytes) -> None:
+def test_parquet_upload_and_import_by_path(
+    api: Api, dataset: dict[str, Any], diabetes_csv: bytes, monkeypatch: pytest.MonkeyPatch
+) -> None:
     buffer = io.BytesIO()
     diabetes_frame().to_parquet(buffer, index=False)
     parquet = api.upload("steward", buffer.getvalue(), filename="diabetes.parquet", **DECLARATION)
     assert parquet.status_code == 201, parquet.get_data(as_text=True)
     assert parquet.get_json()["rows"]["total"] == 442
+    # The published fingerprint covers the seal too, so the two registrations below draw the same one.
+    monkeypatch.setattr(registration.secrets, "randbits", lambda bits: 2**40 + 7)
+    uploaded = api.upload("steward", diabetes_csv, filename="diabetes.csv", **DECLARATION)
+    assert uploaded.status_code == 201, uploaded.get_data(as_text=True)
     (Path(api.settings.import_root) / "fleet").mkdir()
     (Path(api.settings.import_root) / "fleet" / "diabetes.csv").write_bytes(diabetes_csv)
     imported = api.post("steward", "/v1/datasets", json={"path": "fleet/diabetes.csv", **DECLARATION})
     assert imported.status_code == 201, imported.get_data(as_text=True)
     assert imported.headers["Location"] == f"/v1/datasets/{imported.get_json()['id']}"
-    # The same CSV file uploaded or imported is the same table: same fingerprint.
-    assert imported.get_json()["fingerprint"] == dataset["fingerprint"]
+    # The same CSV file uploaded or imported, sealed alike, is the same table: same fingerprints.
+    assert imported.get_json()["fingerprint"] == uploaded.get_json()["fingerprint"]
+    assert imported.get_json()["development_fingerprint"] == uploaded.get_json()["development_fingerprint"]
     listed = api.get("submitter", "/v1/datasets").get_json()["datasets"]
-    assert [d["id"] for d in listed] == [imported.get_json()["id"], parquet.get_json()["id"], dataset["id"]]
+    assert [d["id"] for d in listed] == [imported.get_json()["id"], uploaded.get_json()["id"],
+                                         parquet.get_json()["id"], dataset["id"]]
 
 
 @pytest.mark.parametrize("path", ["../outside.csv", "/etc/hostname", "fleet/../../outside.csv", "link.csv",

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import os
+import stat
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -175,3 +177,22 @@ def test_a_summary_stored_under_the_old_column_name_is_still_served(settings: Se
     again = make_engine(settings)  # a later start must not copy the stale old column over the new value
     assert (submissions.get(again, sub_id) or {})["cv_summary"] == newer
     again.dispose()
+
+
+def test_a_new_sqlite_records_file_and_its_wal_are_owner_only(tmp_path: Path) -> None:
+    # Raw holdout scores and mechanism noise live here: 0600 files in a 0700 data dir, whatever the umask.
+    settings = Settings.load({"data_dir": tmp_path / "data"}, environ={})
+    previous = os.umask(0)
+    try:
+        engine = make_engine(settings)
+        try:
+            keys.create_key(engine, "fleet", "steward", "steward")  # a write: SQLite opens -wal and -shm
+            records = settings.data_dir / "records.sqlite3"
+            files = [records, records.with_name("records.sqlite3-wal"), records.with_name("records.sqlite3-shm")]
+            assert all(f.is_file() for f in files), sorted(p.name for p in settings.data_dir.iterdir())
+            assert {f.name: stat.S_IMODE(f.stat().st_mode) for f in files} == {f.name: 0o600 for f in files}
+            assert stat.S_IMODE(settings.data_dir.stat().st_mode) == 0o700
+        finally:
+            engine.dispose()
+    finally:
+        os.umask(previous)

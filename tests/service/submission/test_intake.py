@@ -92,14 +92,14 @@ def test_find_dataset_answers_the_callers_team_only(
 def test_find_dataset_checks_a_pinned_fingerprint(
     records: Engine, keys: dict[str, KeyInfo], dataset: dict[str, Any]
 ) -> None:
-    # The pin is the fingerprint of the whole registered table, here all 442 diabetes rows.
-    pinned = fingerprint_frame(diabetes_frame())
+    # The pin is the published fingerprint; the unsalted hash of all 442 diabetes rows is not it.
+    pinned = dataset["fingerprint"]
     assert intake.find_dataset(records, keys["owner"], DatasetRef(dataset["id"], pinned))["id"] == dataset["id"]
-    other = fingerprint_frame(diabetes_frame().iloc[:441])
-    with pytest.raises(Conflict) as caught:
-        intake.find_dataset(records, keys["owner"], DatasetRef(dataset["id"], other))
-    assert caught.value.problems == [FieldProblem("/dataset/fingerprint",
-                                                  "the pinned fingerprint does not match the dataset")]
+    for other in (fingerprint_frame(diabetes_frame()), fingerprint_frame(diabetes_frame().iloc[:441])):
+        with pytest.raises(Conflict) as caught:
+            intake.find_dataset(records, keys["owner"], DatasetRef(dataset["id"], other))
+        assert caught.value.problems == [FieldProblem("/dataset/fingerprint",
+                                                      "the pinned fingerprint does not match the dataset")]
 
 
 # -- submit ---------------------------------------------------------------------------------------

@@ -25,7 +25,7 @@ from service.records.tables import audit_events
 from service.records.tables import datasets as datasets_table
 from service.settings import Settings
 from service.vault import balance, registration, sealing, store
-from service.vault.fingerprint import fingerprint_frame
+from service.vault.fingerprint import fingerprint_frame, published_fingerprint
 from service.vault.folds import FoldPlan, fold_splits, split_keys_from_frame
 from service.vault.registration import DatasetDeclaration, register_dataset
 from tests.support.frames import assert_disjoint_and_covering, breast_cancer_frame, diabetes_frame, iris_frame
@@ -82,7 +82,16 @@ def test_diabetes_registers_with_a_stratified_holdout(settings: Settings, engine
     assert record["classes"] is None and record["team"] == "fleet" and record["created_by"] == steward.id
     assert [c["name"] for c in record["columns"]] == list(frame.columns)
     assert {c["kind"] for c in record["columns"]} == {"numeric"}
-    assert record["fingerprint"] == fingerprint_frame(frame)  # the CSV carried the floats exactly
+    internal = datasets.get_internal(engine, record["id"])
+    assert internal is not None
+    holdout = store.open_sealed_holdout(settings, record["id"], internal["holdout_fingerprint"])
+    development = store.load_development_frame(settings, record["id"])
+    # The CSV carried the floats exactly: the partitions put back together are the frame's rows.
+    rejoined = pd.concat([development.drop(columns="row_id"), holdout]).sort_values(list(frame.columns))
+    assert fingerprint_frame(rejoined.reset_index(drop=True)) == fingerprint_frame(
+        frame.sort_values(list(frame.columns)).reset_index(drop=True))
+    assert record["fingerprint"] == published_fingerprint(
+        fingerprint_frame(development), fingerprint_frame(holdout), store.fingerprint_key(settings))
     assert "sealing_seed" not in record and "holdout_fingerprint" not in record
     # The registering steward reads the steward's view, balance table included.
     assert record == datasets.get(engine, record["id"], role="steward")
@@ -161,15 +170,51 @@ def test_breast_cancer_parquet_is_stratified_and_its_folds_are_sklearns(
 
 
 def test_the_same_table_as_csv_or_parquet_has_one_fingerprint(
-    settings: Settings, engine: Engine, steward: KeyInfo
+    settings: Settings, engine: Engine, steward: KeyInfo, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     frame = iris_frame()
     sink = io.BytesIO()
     frame.to_parquet(sink)
+    # The published fingerprint covers the seal too, so both registrations draw the same one here.
+    monkeypatch.setattr(registration.secrets, "randbits", lambda bits: 2**40 + 7)
     first = _register(settings, engine, steward, _csv(frame), task="classification")
     second = _register(settings, engine, steward, sink.getvalue(), "parquet", task="classification")
-    assert first["fingerprint"] == second["fingerprint"] == fingerprint_frame(frame)
+    assert first["fingerprint"] == second["fingerprint"]
+    assert first["development_fingerprint"] == second["development_fingerprint"]
+    internal = [datasets.get_internal(engine, r["id"]) for r in (first, second)]
+    assert internal[0]["holdout_fingerprint"] == internal[1]["holdout_fingerprint"]  # type: ignore[index]
     assert first["id"] != second["id"] and first["fold_plan"]["seed"] != second["fold_plan"]["seed"]
+
+
+def test_the_published_fingerprint_pins_the_holdout_without_confirming_a_guess(
+    settings: Settings, engine: Engine, steward: KeyInfo, tmp_path: Path
+) -> None:
+    frame = diabetes_frame()
+    record = _register(settings, engine, steward, _csv(frame))
+    internal = datasets.get_internal(engine, record["id"])
+    assert internal is not None
+    holdout = store.open_sealed_holdout(settings, record["id"], internal["holdout_fingerprint"])
+    development = store.load_development_frame(settings, record["id"])
+    assert record["development_fingerprint"] == fingerprint_frame(development)  # what a client can check
+    key = store.fingerprint_key(settings)
+    # Whoever knows every row but not the key cannot recompute it: neither the unsalted hash of the
+    # whole table, nor of the rejoined partitions, nor the scheme under another server's key matches.
+    everything = pd.concat([development.drop(columns="row_id"), holdout], ignore_index=True)
+    other_key = store.fingerprint_key(Settings.load({"data_dir": tmp_path / "elsewhere"}))
+    assert other_key != key
+    guesses = {fingerprint_frame(frame), fingerprint_frame(everything),
+               published_fingerprint(fingerprint_frame(development), fingerprint_frame(holdout), other_key)}
+    assert record["fingerprint"] not in guesses
+    # One holdout value changed changes it.
+    changed = holdout.copy()
+    changed.loc[0, "target"] += 1.0
+    assert published_fingerprint(fingerprint_frame(development), fingerprint_frame(changed), key) \
+        != record["fingerprint"]
+    # The key is the server's alone: one file, 0600, in a 0700 directory, reused by every registration.
+    path = settings.data_dir / "secrets" / "fingerprint.key"
+    assert oct(path.stat().st_mode & 0o777) == "0o600" and oct(path.parent.stat().st_mode & 0o777) == "0o700"
+    assert [p.name for p in path.parent.iterdir()] == ["fingerprint.key"]
+    assert store.fingerprint_key(settings) == key and len(key) == 32
 
 
 def _depots(frame: pd.DataFrame, n_groups: int = 30) -> pd.DataFrame:

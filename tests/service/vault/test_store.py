@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import io
 import json
+import os
 import stat
 from pathlib import Path
 from typing import Any
@@ -72,6 +73,23 @@ def test_sealed_directory_and_file_are_private(settings: Settings) -> None:
     assert stat.S_IMODE(paths.sealed_holdout.stat().st_mode) == 0o600
     assert stat.S_IMODE(paths.sealed_holdout.parent.stat().st_mode) == 0o700
     assert stat.S_IMODE((settings.data_dir / "sealed").stat().st_mode) == 0o700
+
+
+def test_sealed_parts_are_private_whatever_the_umask(settings: Settings) -> None:
+    previous = os.umask(0)
+    try:
+        paths, _, _ = _written(settings)
+        key = store.fingerprint_key(settings)
+    finally:
+        os.umask(previous)
+    assert len(key) == 32
+    secret = settings.data_dir / "secrets" / "fingerprint.key"
+    modes = {p: stat.S_IMODE(p.stat().st_mode) for p in (
+        settings.data_dir, settings.data_dir / "sealed", paths.sealed_holdout.parent, paths.sealed_holdout,
+        secret.parent, secret)}
+    assert modes == {settings.data_dir: 0o700, settings.data_dir / "sealed": 0o700,
+                     paths.sealed_holdout.parent: 0o700, paths.sealed_holdout: 0o600,
+                     secret.parent: 0o700, secret: 0o600}
 
 
 def test_nothing_but_the_final_directories_remain(settings: Settings) -> None:

@@ -28,8 +28,10 @@ from sklearn.model_selection import RepeatedKFold
 
 from service.records import champions, holdout_releases, policies, submissions
 from service.submission.document import submission_document
+from service.vault import store
 from service.vocabulary import LIVE_STATES
 from tests.support.worker_records import add_dataset, add_submission, config_document
+from worker.jobs import losses
 from worker.jobs.runtime import WorkerContext
 from worker.jobs.summary import summary_document
 from worker.jobs.verdict import give_verdict
@@ -319,6 +321,23 @@ def test_a_failed_holdout_attempt_fails_the_submission_with_its_summary_kept(
     assert sub is not None and sub["state"] == "failed" and sub["verdict"] is None
     assert sub["error"].startswith("refitting on all development rows failed") and sub["cv_summary"] is not None
     assert holdout_releases.get(ctx.engine, sub_id) is None
+
+
+def test_a_damaged_loss_file_fails_the_submission_and_releases_nothing(
+    ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]
+) -> None:
+    judged = recorded(ctx, diabetes, Ridge(alpha=0.1))
+    losses.save_per_example(ctx.settings, diabetes["id"], judged.sub_id, {"rmse": np.ones(42)})
+    kept = store.dataset_paths(ctx.settings, diabetes["id"]).sealed_holdout.parent / "per_example"
+    path = kept / f"{judged.sub_id}.npz"
+    path.write_bytes(path.read_bytes()[:40])  # cut short, as a full disk or a crash mid-copy leaves it
+    answer = give_verdict(ctx, redis, judged.sub_id)
+    assert answer == {"submission_id": judged.sub_id, "decision": None, "holdout": "not released"}
+    sub = submissions.get(ctx.engine, judged.sub_id)
+    assert sub is not None and sub["state"] == "failed" and sub["verdict"] is None
+    assert "per-example holdout losses" in sub["error"] and judged.sub_id in sub["error"]
+    assert "nothing about the holdout was released" in sub["error"]
+    assert holdout_releases.get(ctx.engine, judged.sub_id) is None
 
 
 def test_a_canceled_submission_is_not_judged(ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]) -> None:

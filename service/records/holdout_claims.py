@@ -1,0 +1,51 @@
+"""Holdout claims: which job computes a submission's one holdout outcome.
+
+Two holdout jobs can run for one submission at once (RQ retries a job it believes abandoned while the
+original still runs). Before refitting, a job claims the computation: the insert of the claim row
+succeeds for one caller only (primary key). The winner renews ``heartbeat_at`` while it works; a
+claim whose heartbeat is older than the stale limit belonged to a job that died, and a conditional
+update that only one caller can win hands it to the next job. Both hold on SQLite and PostgreSQL.
+"""
+
+from __future__ import annotations
+
+from datetime import timedelta
+
+from sqlalchemy import Engine, update
+from sqlalchemy.exc import IntegrityError
+
+from service.records.engine import utcnow
+from service.records.tables import holdout_claims
+
+
+def claim(engine: Engine, sub_id: str, token: str, stale_after: timedelta) -> bool:
+    """Claim the holdout computation of ``sub_id`` for ``token``; return whether this caller holds it now.
+
+    A fresh claim is won by inserting the row; a stale one (no heartbeat for ``stale_after``) by an
+    update whose condition the first winner makes false for everyone after it.
+    """
+    now = utcnow()
+    try:
+        with engine.begin() as conn:
+            conn.execute(holdout_claims.insert().values(submission_id=sub_id, token=token, heartbeat_at=now))
+        return True
+    except IntegrityError:
+        pass
+    with engine.begin() as conn:
+        result = conn.execute(
+            update(holdout_claims)
+            .where(holdout_claims.c.submission_id == sub_id, holdout_claims.c.heartbeat_at < now - stale_after)
+            .values(token=token, heartbeat_at=now)
+        )
+    return bool(result.rowcount)
+
+
+def beat(engine: Engine, sub_id: str, token: str) -> bool:
+    """Renew the claim held by ``token``; return False when another job has taken it over."""
+    with engine.begin() as conn:
+        result = conn.execute(
+            update(holdout_claims)
+            .where(holdout_claims.c.submission_id == sub_id, holdout_claims.c.token == token)
+            .values(heartbeat_at=utcnow())
+        )
+    return bool(result.rowcount)
