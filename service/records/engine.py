@@ -1,69 +1,28 @@
-"""Open the records DB: one engine per process, built from settings, schema created on demand."""
+"""Open the records DB: one engine per process, built from settings."""
 
 from __future__ import annotations
 
 from datetime import UTC, datetime
 from typing import Any
 
-from sqlalchemy import Engine, create_engine, event, inspect, text
+from sqlalchemy import Engine, create_engine, event
 
-from service.records.tables import RENAMED_COLUMNS, metadata
 from service.settings import Settings
 
 
-def make_engine(settings: Settings, create_schema: bool = True) -> Engine:
-    """Build the engine for ``settings``; SQLite gets WAL and a busy timeout for concurrent workers."""
+def make_engine(settings: Settings) -> Engine:
+    """Build the engine for ``settings``; SQLite gets WAL and a busy timeout for concurrent workers.
+
+    It opens no connection and changes no schema: ``service.records.schema`` upgrades and checks the
+    revision. Build it in the process that uses it (after any fork), never at import time.
+    """
     url = settings.effective_database_url
     if url.startswith("sqlite"):
         settings.data_dir.mkdir(parents=True, exist_ok=True)
         engine = create_engine(url, connect_args={"timeout": 30})
         event.listen(engine, "connect", _sqlite_pragmas)
-    else:
-        engine = create_engine(url, pool_pre_ping=True)
-    if create_schema:
-        metadata.create_all(engine)
-        _add_missing_columns(engine)
-        _carry_renamed_columns(engine)
-    return engine
-
-
-def _add_missing_columns(engine: Engine) -> None:
-    """Add nullable columns that newer releases introduced to tables an older release created.
-
-    ``create_all`` creates missing tables but never alters existing ones; new columns are always
-    nullable, so adding them is safe and keeps an existing data dir usable without a migration tool.
-    """
-    inspector = inspect(engine)
-    present = set(inspector.get_table_names())
-    with engine.begin() as conn:
-        for table in metadata.sorted_tables:
-            if table.name not in present:
-                continue
-            have = {c["name"] for c in inspector.get_columns(table.name)}
-            for column in table.columns:
-                if column.name in have or not column.nullable:
-                    continue
-                kind = column.type.compile(dialect=engine.dialect)
-                conn.execute(text(f'ALTER TABLE {table.name} ADD COLUMN "{column.name}" {kind}'))
-
-
-def _carry_renamed_columns(engine: Engine) -> None:
-    """Copy each renamed column's old values into its new column where the new one is still empty.
-
-    A data dir from before a rename keeps its figures: the old column is left in place (nothing reads
-    or writes it any more) and each start copies only the rows whose new column is still NULL, so a
-    value written under the new name is never overwritten and running it at every start is harmless.
-    """
-    inspector = inspect(engine)
-    present = set(inspector.get_table_names())
-    with engine.begin() as conn:
-        for table, old, new in RENAMED_COLUMNS:
-            if table not in present:
-                continue
-            have = {c["name"] for c in inspector.get_columns(table)}
-            if old in have and new in have:
-                conn.execute(text(
-                    f'UPDATE {table} SET "{new}" = "{old}" WHERE "{new}" IS NULL AND "{old}" IS NOT NULL'))
+        return engine
+    return create_engine(url, pool_pre_ping=True)
 
 
 def _sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:

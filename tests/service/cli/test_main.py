@@ -81,6 +81,7 @@ def test_keys_create_prints_only_a_token_that_authenticates(tmp_path: Path) -> N
 
     env = {k: v for k, v in os.environ.items() if k != "DATABASE_URL"}
     env["SEALFOLD_DATA_DIR"] = str(tmp_path)
+    subprocess.run([*_sealfold_argv(), "db", "upgrade"], capture_output=True, env=env, timeout=60, check=True)
     out = subprocess.run(
         [*_sealfold_argv(), "keys", "create", "--team", "fleet", "--role", "steward", "--name", "ci"],
         capture_output=True, text=True, env=env, timeout=60,
@@ -100,6 +101,7 @@ def test_keys_create_prints_only_a_token_that_authenticates(tmp_path: Path) -> N
 def test_keys_create_refuses_blank_team(tmp_path: Path) -> None:
     env = {**os.environ, "SEALFOLD_DATA_DIR": str(tmp_path)}
     env.pop("DATABASE_URL", None)
+    subprocess.run([*_sealfold_argv(), "db", "upgrade"], capture_output=True, env=env, timeout=60, check=True)
     out = subprocess.run([*_sealfold_argv(), "keys", "create", "--team", " ", "--role", "submitter"],
                          capture_output=True, text=True, env=env, timeout=60)
     assert out.returncode == 2 and out.stdout == ""
