@@ -1,9 +1,11 @@
 """Build the API process: ``create_app(overrides)`` is the only way to get a sealfold Flask app.
 
 Settings are layered once (defaults, environment, overrides); the records engine and the Redis
-client are built here and handed to the views through ``app.extensions["sealfold"]``. Building
-the app opens no connection: the engine connects on first use, the Redis client on first command.
-It does remove the upload spool files a killed request left behind (``service.vault.spool``).
+client are built here and handed to the views through ``app.extensions["sealfold"]``. Building the
+app checks the records schema's revision (``SchemaOutOfDate`` when it is not this code's) and then
+closes that connection, so an app built before a fork (gunicorn ``--preload``) hands no open
+connection to the forked workers: each connects on first use, the Redis client on first command.
+It also removes the upload spool files a killed request left behind (``service.vault.spool``).
 """
 
 from __future__ import annotations
@@ -18,6 +20,7 @@ from service import __version__
 from service.api import EXTENSION_KEY, SealfoldApi, ServiceContext, register_blueprints
 from service.api.ops import RequestTally, count_request
 from service.records.engine import make_engine
+from service.records.schema import require_current
 from service.settings import Settings
 from service.vault.spool import sweep_spool
 
@@ -27,6 +30,11 @@ REDIS_CONNECT_TIMEOUT_SECONDS = 5.0
 def create_app(overrides: Mapping[str, Any] | None = None) -> Flask:
     """Return a configured app; ``overrides`` are Settings fields (tests pass data_dir, redis_url...)."""
     settings = Settings.load(overrides)
+    engine = make_engine(settings)
+    try:
+        require_current(engine)
+    finally:
+        engine.dispose()  # the pool is empty again: nothing open crosses a fork
     sweep_spool(settings)
     app = Flask("service")
     app.config.update(
@@ -40,7 +48,7 @@ def create_app(overrides: Mapping[str, Any] | None = None) -> Flask:
     )
     app.extensions[EXTENSION_KEY] = ServiceContext(
         settings=settings,
-        engine=make_engine(settings),
+        engine=engine,
         redis=Redis.from_url(settings.redis_url, socket_connect_timeout=REDIS_CONNECT_TIMEOUT_SECONDS),
         tally=RequestTally(),
     )

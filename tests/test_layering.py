@@ -60,6 +60,10 @@ def test_api_process_does_not_load_sklearn() -> None:
     code = (
         "import sys\n"
         "from service.app import create_app\n"
+        "from service.records.engine import make_engine\n"
+        "from service.records.schema import upgrade\n"
+        "from service.settings import Settings\n"
+        "upgrade(make_engine(Settings.load({'data_dir': sys.argv[1]})))\n"
         "create_app({'data_dir': sys.argv[1], 'redis_url': 'redis://127.0.0.1:1/0'})\n"
         "print('sklearn' in sys.modules, 'worker' in sys.modules)\n"
     )

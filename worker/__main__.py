@@ -4,11 +4,13 @@ from __future__ import annotations
 
 import argparse
 import os
+import sys
 
 # One thread per BLAS/OpenMP pool, set before numpy loads them; limit_threads() covers the rest.
 for _name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_name, "1")
 
+from service.records.schema import SchemaOutOfDate  # noqa: E402
 from service.settings import Settings  # noqa: E402
 from worker.process.main import run_worker  # noqa: E402
 
@@ -19,7 +21,11 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--burst", action="store_true", help="exit once the queues are empty")
     parser.add_argument("--name", default=None, help="worker name shown in RQ (default: random)")
     args = parser.parse_args(argv)
-    run_worker(Settings.load(), burst=args.burst, name=args.name)
+    try:
+        run_worker(Settings.load(), burst=args.burst, name=args.name)
+    except SchemaOutOfDate as exc:
+        print(f"sealfold worker: {exc}", file=sys.stderr, flush=True)
+        sys.exit(2)
 
 
 if __name__ == "__main__":

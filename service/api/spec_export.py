@@ -17,11 +17,18 @@ REGENERATE = "python -m service.api.spec_export"
 
 
 def generate_spec() -> dict[str, Any]:
-    """Build a throwaway app (temporary data dir, no connection made) and return its spec."""
+    """Build a throwaway app (temporary data dir and SQLite records, upgraded so the app starts) and return its spec."""
     from service.app import create_app
+    from service.records.engine import make_engine
+    from service.records.schema import upgrade
+    from service.settings import Settings
 
     with tempfile.TemporaryDirectory(prefix="sealfold-spec-") as tmp:
-        app = create_app({"data_dir": tmp, "redis_url": "redis://127.0.0.1:1/0", "database_url": ""})
+        overrides = {"data_dir": tmp, "redis_url": "redis://127.0.0.1:1/0", "database_url": ""}
+        engine = make_engine(Settings.load(overrides))
+        upgrade(engine)
+        engine.dispose()
+        app = create_app(overrides)
         response = app.test_client().get("/openapi.json")
         spec: dict[str, Any] = response.get_json()
         app.extensions["sealfold"].engine.dispose()

@@ -174,12 +174,17 @@ def wait_for_workers(sup: Supervisor, redis_url: str, names: Sequence[str], time
 
 
 def prepare_records(env: Mapping[str, str]) -> str:
-    """Create the records schema once, before the API and workers race to create it; return its URL."""
+    """Upgrade the records schema once, in this process, before the API and workers start; return its URL."""
     from service.records.engine import make_engine
+    from service.records.schema import upgrade
     from service.settings import Settings
 
     settings = Settings.load(environ=env)
-    make_engine(settings, create_schema=True).dispose()
+    engine = make_engine(settings)
+    try:
+        upgrade(engine)
+    finally:
+        engine.dispose()
     return settings.effective_database_url
 
 

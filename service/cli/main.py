@@ -1,4 +1,4 @@
-"""The ``sealfold`` command: ``up`` (the embedded stack), ``worker``, ``keys create``, and the client.
+"""The ``sealfold`` command: ``up`` (the embedded stack), ``worker``, ``db``, ``keys create``, and the client.
 
 The client commands (``submit``, ``status``, ``board``, ``datasets``) talk HTTP to a service
 anywhere (``service.cli.remote``); the others run or administer a local deployment.
@@ -62,6 +62,15 @@ def build_parser() -> argparse.ArgumentParser:
     worker = commands.add_parser("worker", help="run one worker (python -m worker)")
     worker.add_argument("--burst", action="store_true", help="exit once the queues are empty")
     worker.add_argument("--name", help="worker name shown in RQ (default: generated)")
+
+    db = commands.add_parser(
+        "db", help="the records database's schema",
+        description="The records DB named by SEALFOLD_DATA_DIR / DATABASE_URL. Run `db upgrade` once per "
+        "deployment, before the API and workers start; they refuse to run on a database that is behind.",
+    )
+    db_commands = db.add_subparsers(dest="db_command", required=True, metavar="ACTION")
+    db_commands.add_parser("upgrade", help="apply the migrations the database lacks (safe to rerun)")
+    db_commands.add_parser("current", help="print the database's revision; exit 1 unless it is this code's")
 
     keys = commands.add_parser("keys", help="manage API keys")
     key_commands = keys.add_subparsers(dest="keys_command", required=True, metavar="ACTION")
@@ -137,6 +146,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         return cmd_up(args)
     if args.command == "worker":
         return cmd_worker(args)
+    if args.command == "db":
+        return cmd_db(args)
     if args.command in ("submit", "status", "board", "datasets"):
         from service.cli import remote
 
@@ -161,21 +172,51 @@ def cmd_worker(args: argparse.Namespace) -> int:
     return 0  # not reached: execv does not return
 
 
+def cmd_db(args: argparse.Namespace) -> int:
+    """Upgrade the records schema, or print its revision."""
+    from service.records import schema
+    from service.records.engine import make_engine
+    from service.settings import Settings
+
+    engine = make_engine(Settings.load())
+    try:
+        before = schema.current_revision(engine)
+        if args.db_command == "upgrade":
+            schema.upgrade(engine)
+            after = schema.current_revision(engine)
+            change = "already current" if after == before else f"upgraded from {before or 'none'}"
+            print(f"records database at revision {after} ({change})")
+            return 0
+        print(before or "none")
+        if before != schema.head_revision():
+            print(f"sealfold db current: this code needs {schema.head_revision()}: run `sealfold db upgrade`",
+                  file=sys.stderr)
+            return 1
+        return 0
+    finally:
+        engine.dispose()
+
+
 def cmd_keys_create(args: argparse.Namespace) -> int:
     """Create a key and print only its token, so scripts can capture it."""
     from service.errors import SealfoldError
     from service.records.engine import make_engine
     from service.records.keys import create_key
+    from service.records.schema import SchemaOutOfDate, require_current
     from service.settings import Settings
 
     try:
         engine = make_engine(Settings.load())
         try:
+            require_current(engine)
             _info, token = create_key(engine, args.team, args.role, args.name)
         finally:
             engine.dispose()
     except SealfoldError as exc:
         print(f"sealfold keys create: {exc.detail}", file=sys.stderr)
+        return 2
+    except SchemaOutOfDate as exc:
+        print(f"sealfold keys create: {exc}", file=sys.stderr)
         return 2
     print(token)
     return 0

@@ -1,4 +1,4 @@
-"""Open the records DB: one engine per process, built from settings, schema created on demand."""
+"""Open the records DB: one engine per process, built from settings."""
 
 from __future__ import annotations
 
@@ -9,21 +9,22 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import Engine, create_engine, event, inspect, make_url, text
+from sqlalchemy import Engine, create_engine, event, make_url
 from sqlalchemy.exc import DBAPIError
 
-from service.records.tables import RENAMED_COLUMNS, metadata
 from service.settings import Settings
 
 # PostgreSQL's lock_not_available (lock_timeout) and query_canceled (statement_timeout) SQLSTATEs.
 _BUSY_SQLSTATES = frozenset({"55P03", "57014"})
 
 
-def make_engine(settings: Settings, create_schema: bool = True) -> Engine:
+def make_engine(settings: Settings) -> Engine:
     """Build the engine for ``settings``; SQLite gets WAL and a busy timeout for concurrent workers.
 
     PostgreSQL connections get the statement and lock timeouts of the settings, so a lock held
-    elsewhere makes a request fail in seconds instead of queueing every request behind it.
+    elsewhere makes a request fail in seconds instead of queueing every request behind it. It opens
+    no connection and changes no schema: ``service.records.schema`` upgrades and checks the revision.
+    Build it in the process that uses it (after any fork), never at import time.
     """
     url = settings.effective_database_url
     if url.startswith("sqlite"):
@@ -35,10 +36,6 @@ def make_engine(settings: Settings, create_schema: bool = True) -> Engine:
         engine = create_engine(url, pool_pre_ping=True)
         if engine.dialect.name == "postgresql":
             event.listen(engine, "connect", _postgres_timeouts(settings))
-    if create_schema:
-        metadata.create_all(engine)
-        _add_missing_columns(engine)
-        _carry_renamed_columns(engine)
     return engine
 
 
@@ -56,45 +53,6 @@ def _create_owner_only(url: str) -> None:
     path.parent.mkdir(mode=0o700, parents=True, exist_ok=True)
     with contextlib.suppress(FileExistsError):
         os.close(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600))
-
-
-def _add_missing_columns(engine: Engine) -> None:
-    """Add nullable columns that newer releases introduced to tables an older release created.
-
-    ``create_all`` creates missing tables but never alters existing ones; new columns are always
-    nullable, so adding them is safe and keeps an existing data dir usable without a migration tool.
-    """
-    inspector = inspect(engine)
-    present = set(inspector.get_table_names())
-    with engine.begin() as conn:
-        for table in metadata.sorted_tables:
-            if table.name not in present:
-                continue
-            have = {c["name"] for c in inspector.get_columns(table.name)}
-            for column in table.columns:
-                if column.name in have or not column.nullable:
-                    continue
-                kind = column.type.compile(dialect=engine.dialect)
-                conn.execute(text(f'ALTER TABLE {table.name} ADD COLUMN "{column.name}" {kind}'))
-
-
-def _carry_renamed_columns(engine: Engine) -> None:
-    """Copy each renamed column's old values into its new column where the new one is still empty.
-
-    A data dir from before a rename keeps its figures: the old column is left in place (nothing reads
-    or writes it any more) and each start copies only the rows whose new column is still NULL, so a
-    value written under the new name is never overwritten and running it at every start is harmless.
-    """
-    inspector = inspect(engine)
-    present = set(inspector.get_table_names())
-    with engine.begin() as conn:
-        for table, old, new in RENAMED_COLUMNS:
-            if table not in present:
-                continue
-            have = {c["name"] for c in inspector.get_columns(table)}
-            if old in have and new in have:
-                conn.execute(text(
-                    f'UPDATE {table} SET "{new}" = "{old}" WHERE "{new}" IS NULL AND "{old}" IS NOT NULL'))
 
 
 def is_busy(error: DBAPIError) -> bool:

@@ -1,4 +1,7 @@
-"""The records schema. JSON columns hold small documents; nothing here holds holdout rows."""
+"""The records schema. JSON columns hold small documents; nothing here holds holdout rows.
+
+A change here needs a revision in ``migrations/versions`` (DEVELOPERS.md); a test compares the two.
+"""
 
 from __future__ import annotations
 
@@ -18,12 +21,6 @@ from sqlalchemy import (
 )
 
 metadata = MetaData()
-
-# Columns renamed after a release had created them, as (table, old name, new name). At start-up the
-# engine adds the new column and copies the old one's values into it; the old column stays, unread.
-RENAMED_COLUMNS: tuple[tuple[str, str, str], ...] = (
-    ("submissions", "result", "cv_summary"),
-)
 
 api_keys = Table(
     "api_keys",

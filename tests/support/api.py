@@ -89,15 +89,19 @@ class Api:
 
 @contextmanager
 def open_api(root: Path) -> Iterator[Api]:
-    """A fresh app: SQLite records DB and data dir under ``root``, fakeredis, small upload limit, WHO's keys."""
+    """A fresh app: upgraded SQLite records and data dir under ``root``, fakeredis, small upload limit, WHO's keys."""
     from service.app import create_app
+    from service.settings import Settings
+    from tests.support.records import upgraded_engine
 
     import_root = root / "imports"
     import_root.mkdir()
-    app = create_app({
+    overrides = {
         "data_dir": root / "data", "import_root": import_root, "database_url": "",
         "redis_url": "redis://127.0.0.1:1/0", "max_upload_bytes": 512 * 1024, "min_rows": 50,
-    })
+    }
+    upgraded_engine(Settings.load(overrides)).dispose()
+    app = create_app(overrides)
     ctx = app.extensions["sealfold"]
     app.extensions["sealfold"] = dataclasses.replace(ctx, redis=fakeredis.FakeRedis())
     tokens, key_ids = {}, {}

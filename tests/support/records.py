@@ -16,6 +16,7 @@ from sqlalchemy import Engine
 from service.ids import new_id
 from service.records import datasets
 from service.records.engine import make_engine, utcnow
+from service.records.schema import upgrade
 from service.settings import Settings
 from service.vault.fingerprint import fingerprint_frame, published_fingerprint
 from service.vault.tables import column_kinds
@@ -23,9 +24,16 @@ from service.vault.tables import column_kinds
 _KEY = bytes(range(32))  # a server's fingerprint key; any 32 bytes
 
 
+def upgraded_engine(settings: Settings) -> Engine:
+    """Open the records DB ``settings`` name, upgraded to this code's schema (what `sealfold db upgrade` does)."""
+    engine = make_engine(settings)
+    upgrade(engine)
+    return engine
+
+
 def records_engine(data_dir: Path) -> Engine:
     """Open a fresh SQLite records DB under ``data_dir`` with the schema created."""
-    return make_engine(Settings.load({"data_dir": data_dir, "database_url": ""}, environ={}))
+    return upgraded_engine(Settings.load({"data_dir": data_dir, "database_url": ""}, environ={}))
 
 
 def add_dataset_row(

@@ -19,6 +19,12 @@ import pytest
 REQUIRE_ALL = os.environ.get("SEALFOLD_REQUIRE_ALL") == "1"
 
 
+def sealfold_argv() -> list[str]:
+    """The installed ``sealfold`` console script when present (what users run), else the module."""
+    script = Path(sys.prefix) / "bin" / "sealfold"
+    return [str(script)] if script.exists() else [sys.executable, "-m", "service.cli"]
+
+
 def skip_or_fail(reason: str) -> None:
     """Skip with the reason printed, or fail when the CI run requires every backend."""
     if REQUIRE_ALL:

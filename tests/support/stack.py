@@ -65,15 +65,15 @@ def make_tokens(engine: Any) -> dict[str, str]:
 def running_stack(data_dir: Path, redis_url: str, queue: str, workers: int = 2) -> Iterator[Stack]:
     """Run the API (waitress, real HTTP) and ``workers`` real forking workers on one data dir."""
     from service.app import create_app
-    from service.records.engine import make_engine
     from service.settings import Settings
+    from tests.support.records import upgraded_engine
 
     import_root = data_dir / "imports"
     import_root.mkdir(parents=True, exist_ok=True)
     overrides = {"data_dir": data_dir, "redis_url": redis_url, "import_root": import_root,
                  "queue_name": queue, "database_url": ""}
     settings = Settings.load(overrides, environ={})
-    engine = make_engine(settings)
+    engine = upgraded_engine(settings)  # before any process starts, as `sealfold db upgrade` would be
     tokens = make_tokens(engine)
     env = stack_environment(data_dir, redis_url, queue=queue)
     log_path = data_dir / "workers.log"

@@ -7,8 +7,8 @@ from pathlib import Path
 
 import pytest
 
-from service.records.engine import make_engine
 from service.settings import Settings
+from tests.support.records import upgraded_engine
 from worker.jobs import runtime
 
 
@@ -16,7 +16,7 @@ from worker.jobs import runtime
 def ctx(tmp_path: Path) -> Iterator[runtime.WorkerContext]:
     """A worker context (SQLite records and a data dir under tmp_path), installed for worker.jobs."""
     settings = Settings.load({"data_dir": tmp_path, "database_url": ""}, environ={})
-    context = runtime.WorkerContext(settings=settings, engine=make_engine(settings))
+    context = runtime.WorkerContext(settings=settings, engine=upgraded_engine(settings))
     runtime.install(context)
     yield context
     runtime.uninstall()

@@ -33,6 +33,7 @@ from rq.worker import Worker, WorkerStatus
 
 from service.catalog import load_catalog
 from service.records.engine import make_engine
+from service.records.schema import require_current
 from service.settings import Settings
 from service.submission import dispatch
 from worker.jobs import ALLOWED_JOBS, runtime
@@ -239,10 +240,17 @@ def build_worker(settings: Settings, redis: Redis[Any], name: str | None = None)
 
 
 def run_worker(settings: Settings, *, burst: bool = False, name: str | None = None) -> None:
-    """Install the worker context, preload, and work until stopped (or until the queues are empty)."""
+    """Install the worker context, preload, and work until stopped (or until the queues are empty).
+
+    Raises ``SchemaOutOfDate`` before loading anything when the records database is not at this code's revision.
+    """
+    engine = make_engine(settings)
+    try:
+        require_current(engine)
+    finally:
+        engine.dispose()  # nothing open crosses the fold process's fork
     preload()
     limit_threads()
-    engine = make_engine(settings)
     runtime.install(runtime.WorkerContext(settings=settings, engine=engine))
     warm_up(runtime.current())
     folds = FoldProcess()

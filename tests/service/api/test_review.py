@@ -229,12 +229,16 @@ def pg_api(tmp_path: Any) -> Any:
 
     from service.app import create_app
     from service.records.keys import create_key
+    from service.settings import Settings
     from tests.support.api import WHO, Api
+    from tests.support.records import upgraded_engine
     from tests.support.servers import postgres_database
 
     with postgres_database() as url:
-        app = create_app({"data_dir": tmp_path / "data", "database_url": url, "redis_url": "redis://127.0.0.1:1/0",
-                          "min_rows": 50})
+        overrides = {"data_dir": tmp_path / "data", "database_url": url, "redis_url": "redis://127.0.0.1:1/0",
+                     "min_rows": 50}
+        upgraded_engine(Settings.load(overrides)).dispose()
+        app = create_app(overrides)
         ctx = app.extensions["sealfold"]
         app.extensions["sealfold"] = dataclasses.replace(ctx, redis=fakeredis.FakeRedis())
         made = {who: create_key(ctx.engine, team, role, who) for who, (team, role) in WHO.items()}

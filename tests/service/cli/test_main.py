@@ -17,15 +17,7 @@ import pytest
 
 from service.cli import demo, embedded, main, supervisor
 from service.cli.client import ServiceClient
-from tests.support.servers import free_port
-
-SEALFOLD = Path(sys.prefix) / "bin" / "sealfold"
-
-
-def _sealfold_argv() -> list[str]:
-    """The installed console script when present (what users run), else the module."""
-    return [str(SEALFOLD)] if SEALFOLD.exists() else [sys.executable, "-m", "service.cli"]
-
+from tests.support.servers import free_port, sealfold_argv
 
 # --- argument parsing -------------------------------------------------------------------------------
 
@@ -81,8 +73,9 @@ def test_keys_create_prints_only_a_token_that_authenticates(tmp_path: Path) -> N
 
     env = {k: v for k, v in os.environ.items() if k != "DATABASE_URL"}
     env["SEALFOLD_DATA_DIR"] = str(tmp_path)
+    subprocess.run([*sealfold_argv(), "db", "upgrade"], capture_output=True, env=env, timeout=60, check=True)
     out = subprocess.run(
-        [*_sealfold_argv(), "keys", "create", "--team", "fleet", "--role", "steward", "--name", "ci"],
+        [*sealfold_argv(), "keys", "create", "--team", "fleet", "--role", "steward", "--name", "ci"],
         capture_output=True, text=True, env=env, timeout=60,
     )
     assert out.returncode == 0, out.stderr
@@ -131,7 +124,8 @@ def _key_count(data_dir: Path) -> int:
 def test_keys_create_refuses_blank_team(tmp_path: Path) -> None:
     env = {**os.environ, "SEALFOLD_DATA_DIR": str(tmp_path)}
     env.pop("DATABASE_URL", None)
-    out = subprocess.run([*_sealfold_argv(), "keys", "create", "--team", " ", "--role", "submitter"],
+    subprocess.run([*sealfold_argv(), "db", "upgrade"], capture_output=True, env=env, timeout=60, check=True)
+    out = subprocess.run([*sealfold_argv(), "keys", "create", "--team", " ", "--role", "submitter"],
                          capture_output=True, text=True, env=env, timeout=60)
     assert out.returncode == 2 and out.stdout == ""
     assert "team" in out.stderr
@@ -260,7 +254,7 @@ class UpProcess:
         env["SEALFOLD_LOG_LEVEL"] = "WARNING"
         with self.out.open("wb") as out, self.err.open("wb") as err:
             self.proc = subprocess.Popen(
-                [*_sealfold_argv(), "up", "--data-dir", str(data_dir), "--port", str(self.port),
+                [*sealfold_argv(), "up", "--data-dir", str(data_dir), "--port", str(self.port),
                  "--workers", str(workers), *extra],
                 stdout=out, stderr=err, env=env,
             )

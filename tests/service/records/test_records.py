@@ -11,24 +11,15 @@ import pytest
 from sqlalchemy import Engine
 
 from service.records import datasets, keys, submissions
-from service.records.engine import make_engine, utcnow
+from service.records.engine import utcnow
 from service.settings import Settings
 from service.vocabulary import LIVE_STATES
-from tests.support.servers import postgres_database
-
-
-@pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)])
-def settings(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[Settings]:
-    if request.param == "sqlite":
-        yield Settings.load({"data_dir": tmp_path}, environ={})
-        return
-    with postgres_database() as url:
-        yield Settings.load({"data_dir": tmp_path, "database_url": url}, environ={})
+from tests.support.records import upgraded_engine
 
 
 @pytest.fixture
 def engine(settings: Settings) -> Iterator[Engine]:
-    eng = make_engine(settings)
+    eng = upgraded_engine(settings)
     yield eng
     eng.dispose()
 
@@ -129,62 +120,12 @@ def test_idempotency_key_is_unique_per_owner(engine: Engine) -> None:
         })
 
 
-def test_an_older_schema_gains_the_new_nullable_columns(tmp_path: Path) -> None:
-    # A data dir written before the verdict columns existed keeps working after an upgrade.
-    from sqlalchemy import create_engine, inspect, text
-
-    settings = Settings.load({"data_dir": tmp_path}, environ={})
-    old = create_engine(settings.effective_database_url)
-    with old.begin() as conn:
-        conn.execute(text("CREATE TABLE submissions (id VARCHAR(40) PRIMARY KEY, team VARCHAR(100) NOT NULL)"))
-    old.dispose()
-    engine = make_engine(settings)
-    columns = {c["name"] for c in inspect(engine).get_columns("submissions")}
-    assert {"verdict", "policy_version", "champion_id", "cv_summary"} <= columns
-    engine.dispose()
-
-
-def test_a_summary_stored_under_the_old_column_name_is_still_served(settings: Settings) -> None:
-    # Records written when the summary column was called ``result``: start-up copies it to ``cv_summary``.
-    from sqlalchemy import text
-
-    from service.submission.document import submission_document
-
-    summary = {"summary": {"rmse": {"mean": 54.2, "std": 3.1}}, "failures": [], "baseline": {"estimator": "Dummy"}}
-    first = make_engine(settings)
-    _dataset(first)
-    sub_id = "sub_before_rename"
-    submissions.insert(first, {
-        "id": sub_id, "team": "fleet", "dataset_id": "ds_test1", "owner_key_id": "key_1", "label": "",
-        "config": {"model": {"estimator": "Ridge"}, "validation": {"folds": 5, "repeats": 1}, "metrics": ["rmse"]},
-        "config_fingerprint": "f" * 64, "folds_total": 5,
-    })
-    submissions.store_summary(first, sub_id, summary)
-    with first.begin() as conn:  # back to the schema of the release before the rename
-        conn.execute(text('ALTER TABLE submissions RENAME COLUMN "cv_summary" TO "result"'))
-    first.dispose()
-
-    upgraded = make_engine(settings)
-    row = submissions.get(upgraded, sub_id)
-    assert row is not None and row["cv_summary"] == summary
-    served = submission_document(upgraded, row)["result"]
-    assert served is not None and served["cv"]["summary"] == summary["summary"]
-    assert served["baseline"] == summary["baseline"]
-
-    newer = {**summary, "summary": {"rmse": {"mean": 50.0, "std": 2.0}}}
-    submissions.store_summary(upgraded, sub_id, newer)
-    upgraded.dispose()
-    again = make_engine(settings)  # a later start must not copy the stale old column over the new value
-    assert (submissions.get(again, sub_id) or {})["cv_summary"] == newer
-    again.dispose()
-
-
 def test_a_new_sqlite_records_file_and_its_wal_are_owner_only(tmp_path: Path) -> None:
     # Raw holdout scores and mechanism noise live here: 0600 files in a 0700 data dir, whatever the umask.
     settings = Settings.load({"data_dir": tmp_path / "data"}, environ={})
     previous = os.umask(0)
     try:
-        engine = make_engine(settings)
+        engine = upgraded_engine(settings)  # a new file, created by the upgrade
         try:
             keys.create_key(engine, "fleet", "steward", "steward")  # a write: SQLite opens -wal and -shm
             records = settings.data_dir / "records.sqlite3"

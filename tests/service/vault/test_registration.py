@@ -19,7 +19,6 @@ from sqlalchemy import Engine, func, select
 
 from service.errors import DatasetRejected, Forbidden, PayloadTooLarge, SealBroken, SealfoldError, UnsupportedFormat
 from service.records import datasets
-from service.records.engine import make_engine
 from service.records.keys import KeyInfo, create_key
 from service.records.tables import audit_events
 from service.records.tables import datasets as datasets_table
@@ -29,6 +28,7 @@ from service.vault.fingerprint import fingerprint_frame, published_fingerprint
 from service.vault.folds import FoldPlan, fold_splits, split_keys_from_frame
 from service.vault.registration import DatasetDeclaration, register_dataset
 from tests.support.frames import assert_disjoint_and_covering, breast_cancer_frame, diabetes_frame, iris_frame
+from tests.support.records import upgraded_engine
 
 
 @pytest.fixture
@@ -38,7 +38,7 @@ def settings(tmp_path: Path) -> Settings:
 
 @pytest.fixture
 def engine(settings: Settings) -> Engine:
-    return make_engine(settings)
+    return upgraded_engine(settings)
 
 
 @pytest.fixture
@@ -361,7 +361,7 @@ def test_each_rejection_names_its_field_and_leaves_no_trace(case: str, tmp_path:
     if case in _SMALL_LIMIT:
         overrides["max_upload_bytes"] = 2048
     settings = Settings.load(overrides)
-    engine = make_engine(settings)
+    engine = upgraded_engine(settings)
     steward = create_key(engine, "fleet", "steward", "steward")[0]
     with pytest.raises(error) as caught:
         _register(settings, engine, steward, build(tmp_path), fmt, **declared)

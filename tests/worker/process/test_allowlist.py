@@ -20,6 +20,8 @@ from rq.job import Job, JobStatus
 from rq.serializers import JSONSerializer
 from rq.worker import Worker
 
+from service.settings import Settings
+from tests.support.records import upgraded_engine
 from worker import jobs
 from worker.jobs.runtime import WorkerContext
 from worker.process import main
@@ -84,6 +86,7 @@ def test_real_worker_refuses_a_foreign_function(tmp_path: Path, redis_url: str) 
                                  args=({"model": {"estimator": "Ridge", "features": []}}, "ds_nope"))
     env = {**os.environ, "SEALFOLD_DATA_DIR": str(tmp_path / "data"), "REDIS_URL": redis_url,
            "DATABASE_URL": "", "SEALFOLD_QUEUE": queue_name, "SEALFOLD_LOG_LEVEL": "WARNING"}
+    upgraded_engine(Settings.load({"data_dir": tmp_path / "data", "database_url": ""}, environ={})).dispose()
     started = time.monotonic()
     done = subprocess.run([sys.executable, "-m", "worker", "--burst", "--name", queue_name], env=env, cwd=ROOT,
                           capture_output=True, text=True, timeout=120)

@@ -1,0 +1,1 @@
+"""One module per schema revision, chained by ``down_revision``; Alembic reads them by file."""
