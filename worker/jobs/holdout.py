@@ -17,11 +17,9 @@ fails the submission at once: it is an incident with the data, not a verdict on 
 
 from __future__ import annotations
 
-import threading
 import time
 import warnings
-from collections.abc import Iterator
-from contextlib import contextmanager
+from contextlib import AbstractContextManager
 from datetime import timedelta
 from typing import Any
 
@@ -32,7 +30,7 @@ from service.submission.resolved import ResolvedConfig
 from service.vault import store
 from service.vocabulary import LIVE_STATES
 from worker.jobs.losses import save_per_example
-from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
+from worker.jobs.runtime import Skip, WorkerContext, repeating, submission_to_work_on
 from worker.learning.development import column_kinds, load_development, model_frame, model_matrix, target_values
 from worker.learning.pipeline import build_pipeline, fit_in_place, uses_frame
 from worker.learning.scoring import class_labels, per_example, predictions, score_predictions
@@ -132,25 +130,10 @@ def _score(
             "metrics": sorted(scores)}
 
 
-@contextmanager
-def _heartbeat(ctx: WorkerContext, submission_id: str, token: str) -> Iterator[None]:
+def _heartbeat(ctx: WorkerContext, submission_id: str, token: str) -> AbstractContextManager[None]:
     """Renew the claim from a thread while the body runs, so a waiting job never takes over a live one."""
-    done = threading.Event()
-
-    def beat() -> None:
-        while not done.wait(HEARTBEAT_SECONDS):
-            try:
-                holdout_claims.beat(ctx.engine, submission_id, token)
-            except Exception:  # a records hiccup must not end the heartbeat; the next beat retries
-                continue
-
-    thread = threading.Thread(target=beat, name=f"holdout-claim-{submission_id}", daemon=True)
-    thread.start()
-    try:
-        yield
-    finally:
-        done.set()
-        thread.join()
+    return repeating(HEARTBEAT_SECONDS, lambda: holdout_claims.beat(ctx.engine, submission_id, token),
+                     f"holdout-claim-{submission_id}")
 
 
 def _not_scored(

@@ -6,7 +6,9 @@ here. ``run_worker`` installs the context before the first fork; tests install t
 
 from __future__ import annotations
 
-from collections.abc import Collection, Mapping
+import threading
+from collections.abc import Callable, Collection, Iterator, Mapping
+from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 from typing import Any, Protocol
 
@@ -117,3 +119,27 @@ def submission_to_work_on(
     if dataset is None:
         raise LookupError(f"submission {submission_id} refers to dataset {sub['dataset_id']!r}, which is gone")
     return Work(sub, dataset)
+
+
+@contextmanager
+def repeating(every: float, action: Callable[[], object], name: str) -> Iterator[None]:
+    """Run ``action`` from a thread every ``every`` seconds while the body runs; stop before leaving.
+
+    A heartbeat that raised is retried at the next interval (``action`` reports its own errors):
+    one missed beat must not end the beats. The thread is joined on the way out, so no beat lands
+    after the body has finished.
+    """
+    stop = threading.Event()
+
+    def beat() -> None:
+        while not stop.wait(every):
+            with suppress(Exception):
+                action()
+
+    thread = threading.Thread(target=beat, name=name, daemon=True)
+    thread.start()
+    try:
+        yield
+    finally:
+        stop.set()
+        thread.join()

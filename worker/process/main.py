@@ -16,7 +16,6 @@ from __future__ import annotations
 import importlib
 import logging
 import random
-import threading
 import time
 from collections.abc import Callable, Iterator
 from contextlib import AbstractContextManager, contextmanager
@@ -37,6 +36,7 @@ from service.records.schema import require_current
 from service.settings import Settings
 from service.submission import dispatch
 from worker.jobs import ALLOWED_JOBS, runtime
+from worker.jobs.runtime import repeating
 from worker.process import placement
 from worker.process.fold_process import FoldProcess
 from worker.process.warmup import warm_up
@@ -166,22 +166,15 @@ class SealfoldWorker(Worker):
         The thread stops before the job's outcome is written (it wraps only the job function), so
         a late heartbeat never brings a finished job back into the started registry.
         """
-        stop = threading.Event()
-
         def beat() -> None:
-            while not stop.wait(self.job_monitoring_interval):
-                try:
-                    self.maintain_heartbeats(job, execution)
-                except Exception:  # a missed beat is retried at the next interval
-                    log.warning("heartbeat of job %s failed", job.id, exc_info=True)
+            try:
+                self.maintain_heartbeats(job, execution)
+            except Exception:  # a missed beat is retried at the next interval
+                log.warning("heartbeat of job %s failed", job.id, exc_info=True)
+                raise
 
-        thread = threading.Thread(target=beat, name=f"heartbeat-{job.id}", daemon=True)
-        thread.start()
-        try:
+        with repeating(self.job_monitoring_interval, beat, f"heartbeat-{job.id}"):
             yield
-        finally:
-            stop.set()
-            thread.join()
 
     def run_maintenance_tasks(self) -> None:
         super().run_maintenance_tasks()

@@ -20,10 +20,11 @@ from sklearn.datasets import load_diabetes
 from sqlalchemy import update
 
 from service.records import holdout_claims, submissions
-from service.records.engine import make_engine, utcnow
+from service.records.engine import utcnow
 from service.records.tables import holdout_claims as claims_table
 from service.settings import Settings
 from service.vault import store
+from tests.support.records import upgraded_engine
 from tests.support.servers import postgres_database
 from tests.support.worker_records import add_dataset, add_submission, config_document
 from worker.jobs import holdout, losses, runtime
@@ -42,7 +43,7 @@ def any_ctx(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[WorkerCo
 
 def _context(data_dir: Path, url: str) -> Iterator[WorkerContext]:
     settings = Settings.load({"data_dir": data_dir, "database_url": url}, environ={})
-    context = WorkerContext(settings=settings, engine=make_engine(settings))
+    context = WorkerContext(settings=settings, engine=upgraded_engine(settings))
     runtime.install(context)
     yield context
     runtime.uninstall()
