@@ -16,6 +16,8 @@ from sqlalchemy import create_engine
 
 from service.app import create_app
 from service.records.keys import create_key
+from service.settings import Settings
+from tests.support.records import upgraded_engine
 from tests.support.servers import postgres_database
 
 if TYPE_CHECKING:
@@ -28,8 +30,10 @@ BUSY = "the records database is busy"
 def pg_app(tmp_path: Path) -> Iterator[tuple[Flask, str, str]]:
     """An app on a throwaway PostgreSQL database with short timeouts; yields it, its URL and a steward's token."""
     with postgres_database() as url:
-        app = create_app({"data_dir": tmp_path, "database_url": url, "redis_url": "redis://127.0.0.1:1/0",
-                          "db_lock_timeout_seconds": 0.25, "db_statement_timeout_seconds": 2})
+        overrides = {"data_dir": tmp_path, "database_url": url, "redis_url": "redis://127.0.0.1:1/0",
+                     "db_lock_timeout_seconds": 0.25, "db_statement_timeout_seconds": 2}
+        upgraded_engine(Settings.load(overrides, environ={})).dispose()  # what `sealfold db upgrade` does
+        app = create_app(overrides)
         ctx = app.extensions["sealfold"]
         app.extensions["sealfold"] = dataclasses.replace(ctx, redis=fakeredis.FakeRedis())
         _info, token = create_key(ctx.engine, "fleet", "steward", "busy test")

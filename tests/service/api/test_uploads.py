@@ -13,8 +13,10 @@ import pytest
 from werkzeug.test import EnvironBuilder, run_wsgi_app
 
 from service.app import create_app
+from service.settings import Settings
 from service.vault.spool import UploadSpool, spool_dir
 from tests.support.datasets import csv_bytes, diabetes_frame
+from tests.support.records import upgraded_engine
 
 if TYPE_CHECKING:
     from tests.support.api import Api
@@ -129,6 +131,7 @@ def test_spool_files_left_by_a_killed_upload_are_removed_at_start_up(tmp_path: P
     (directory / "0123abcd.part").write_bytes(csv_bytes(diabetes_frame()))
     (directory / "tmpold").mkdir()  # what earlier releases spooled into
     (directory / "tmpold" / "upload.csv").write_bytes(b"a,b\n1,2\n")
+    upgraded_engine(Settings.load(overrides, environ={})).dispose()  # what `sealfold db upgrade` does
     app = create_app(overrides)
     with UploadSpool(app.extensions["sealfold"].settings) as live:
         receiving = live.new_file()
@@ -154,6 +157,7 @@ def test_under_gunicorn_an_anonymous_upload_is_answered_before_its_body_is_sent(
     from tests.support.servers import free_port
 
     port = free_port()
+    upgraded_engine(Settings.load({"data_dir": tmp_path, "database_url": ""}, environ={})).dispose()
     env = {**os.environ, "SEALFOLD_DATA_DIR": str(tmp_path), "DATABASE_URL": "", "REDIS_URL": "redis://127.0.0.1:1/0"}
     log = (tmp_path / "gunicorn.log").open("wb")
     server = subprocess.Popen([sys.executable, "-m", "gunicorn", "--bind", f"127.0.0.1:{port}", "--workers", "1",

@@ -91,11 +91,11 @@ def test_keys_create_prints_only_a_token_that_authenticates(tmp_path: Path) -> N
 
 
 def test_demo_keys_without_the_demo_are_created_once_per_records_db(tmp_path: Path) -> None:
-    from service.records.engine import make_engine
     from service.records.keys import authenticate, revoke
     from service.settings import Settings
+    from tests.support.records import upgraded_engine
 
-    engine = make_engine(Settings.load({"data_dir": tmp_path, "database_url": ""}, environ={}))
+    engine = upgraded_engine(Settings.load({"data_dir": tmp_path, "database_url": ""}, environ={}))
     try:
         first = main.demo_keys_once(engine)
         assert set(first) == {"steward", "submitter"}
