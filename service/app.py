@@ -5,7 +5,9 @@ client are built here and handed to the views through ``app.extensions["sealfold
 app checks the records schema's revision (``SchemaOutOfDate`` when it is not this code's) and then
 closes that connection, so an app built before a fork (gunicorn ``--preload``) hands no open
 connection to the forked workers: each connects on first use, the Redis client on first command.
-It also removes the upload spool files a killed request left behind (``service.vault.spool``).
+It also removes the upload spool files a killed request left behind (``service.vault.spool``), claims or
+checks the data dir's identity (``service.ops.data_identity``: an API on the wrong mount refuses to start)
+and sets up logging (JSON lines, or text with ``SEALFOLD_LOG_FORMAT=text``).
 """
 
 from __future__ import annotations
@@ -18,7 +20,9 @@ from redis import Redis
 
 from service import __version__
 from service.api import EXTENSION_KEY, SealfoldApi, ServiceContext, register_blueprints
-from service.api.ops import RequestTally, count_request
+from service.api.telemetry import HttpMetrics, install
+from service.logs import configure_logging
+from service.ops import data_identity
 from service.records.engine import make_engine
 from service.records.schema import require_current
 from service.settings import Settings
@@ -30,9 +34,11 @@ REDIS_CONNECT_TIMEOUT_SECONDS = 5.0
 def create_app(overrides: Mapping[str, Any] | None = None) -> Flask:
     """Return a configured app; ``overrides`` are Settings fields (tests pass data_dir, redis_url...)."""
     settings = Settings.load(overrides)
+    configure_logging(settings.log_level, settings.log_format)
     engine = make_engine(settings)
     try:
         require_current(engine)
+        data_identity.claim(engine, settings.data_dir)
     finally:
         engine.dispose()  # the pool is empty again: nothing open crosses a fork
     sweep_spool(settings)
@@ -50,11 +56,11 @@ def create_app(overrides: Mapping[str, Any] | None = None) -> Flask:
         settings=settings,
         engine=engine,
         redis=Redis.from_url(settings.redis_url, socket_connect_timeout=REDIS_CONNECT_TIMEOUT_SECONDS),
-        tally=RequestTally(),
+        http_metrics=HttpMetrics(),
     )
     api = SealfoldApi(app)
     register_blueprints(api)
-    app.after_request(count_request)
+    install(app, app.extensions[EXTENSION_KEY].http_metrics)
     return app
 
 

@@ -28,6 +28,9 @@ _ENV_NAMES: dict[str, str] = {
     "check_timeout_seconds": "SEALFOLD_CHECK_TIMEOUT",
     "min_rows": "SEALFOLD_MIN_ROWS",
     "log_level": "SEALFOLD_LOG_LEVEL",
+    "log_format": "SEALFOLD_LOG_FORMAT",
+    "metrics_token": "SEALFOLD_METRICS_TOKEN",
+    "min_free_disk_mb": "SEALFOLD_MIN_FREE_DISK_MB",
 }
 
 
@@ -48,6 +51,11 @@ class Settings:
     check_timeout_seconds: float = 10.0
     min_rows: int = 50
     log_level: str = "INFO"
+    log_format: str = "json"  # "text" for reading in a terminal
+    # When set, GET /metrics needs "Authorization: Bearer <metrics_token>" (operators only).
+    metrics_token: str = ""
+    # /readyz fails when the data dir's file system has less free space than this.
+    min_free_disk_mb: int = 512
     extra: Mapping[str, Any] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
@@ -58,6 +66,10 @@ class Settings:
                 raise SettingsError(f"{name} must be 0 (no limit) or positive, got {getattr(self, name)}")
         if self.fold_timeout_seconds < 1:
             raise SettingsError(f"fold_timeout_seconds must be positive, got {self.fold_timeout_seconds}")
+        if self.log_format not in ("json", "text"):
+            raise SettingsError(f"log_format must be json or text, got {self.log_format!r}")
+        if self.min_free_disk_mb < 0:
+            raise SettingsError(f"min_free_disk_mb must be 0 or positive, got {self.min_free_disk_mb}")
         if self.min_rows < 10:
             raise SettingsError(f"min_rows must be at least 10, got {self.min_rows}")
 

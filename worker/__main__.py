@@ -10,6 +10,8 @@ import sys
 for _name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_name, "1")
 
+from service.logs import configure_logging  # noqa: E402
+from service.ops.data_identity import DataNotShared  # noqa: E402
 from service.records.schema import SchemaOutOfDate  # noqa: E402
 from service.settings import Settings  # noqa: E402
 from worker.process.main import run_worker  # noqa: E402
@@ -21,11 +23,16 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--burst", action="store_true", help="exit once the queues are empty")
     parser.add_argument("--name", default=None, help="worker name shown in RQ (default: random)")
     args = parser.parse_args(argv)
+    settings = Settings.load()
+    configure_logging(settings.log_level, settings.log_format)
     try:
-        run_worker(Settings.load(), burst=args.burst, name=args.name)
+        run_worker(settings, burst=args.burst, name=args.name)
     except SchemaOutOfDate as exc:
         print(f"sealfold worker: {exc}", file=sys.stderr, flush=True)
         sys.exit(2)
+    except DataNotShared as exc:
+        print(f"sealfold worker: refusing work: {exc}", file=sys.stderr, flush=True)
+        sys.exit(3)
 
 
 if __name__ == "__main__":

@@ -2,7 +2,7 @@
 
 Only this package and ``service.app`` import Flask. Views parse a request once at the edge (schemas),
 call the core, and answer with the core's documents; every error leaves through ``problems``.
-The per-app state -- settings, records engine, Redis client, request tally -- is one frozen
+The per-app state -- settings, records engine, Redis client, HTTP metrics -- is one frozen
 ``ServiceContext`` on ``app.extensions["sealfold"]``, built by ``create_app``; nothing is global.
 """
 
@@ -20,7 +20,7 @@ from service.api.blueprint import SealfoldApi, SealfoldBlueprint
 from service.settings import Settings
 
 if TYPE_CHECKING:
-    from service.api.ops import RequestTally
+    from service.api.telemetry import HttpMetrics
 
 __all__ = ["EXTENSION_KEY", "SealfoldApi", "SealfoldBlueprint", "ServiceContext", "json_response",
            "register_blueprints", "service_context"]
@@ -35,7 +35,7 @@ class ServiceContext:
     settings: Settings
     engine: Engine
     redis: Redis[bytes]
-    tally: RequestTally
+    http_metrics: HttpMetrics
 
 
 def service_context(app: Flask | None = None) -> ServiceContext:

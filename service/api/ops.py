@@ -1,13 +1,14 @@
 """Operational endpoints, open to anyone: liveness, readiness, Prometheus metrics.
 
-``/openapi.json`` is served by flask-smorest itself (see ``service.app``). Request counts are per
-process: under several API processes, Prometheus sums the scraped series.
+``/openapi.json`` is served by flask-smorest itself (see ``service.app``). What ``/metrics`` shows, and how it
+stays whole under several API processes, is ``service.api.ops_metrics``'s.
 """
 
 from __future__ import annotations
 
-import threading
-from collections import Counter
+import hmac
+import shutil
+from pathlib import Path
 
 from flask import Response, request
 from redis.exceptions import RedisError
@@ -15,39 +16,15 @@ from sqlalchemy import text
 from sqlalchemy.exc import SQLAlchemyError
 
 from service.api import SealfoldBlueprint, json_response, service_context
+from service.api.ops_metrics import exposition
 from service.api.schemas import HealthSchema, ReadinessSchema
-from service.errors import Unavailable
-from service.records import submissions
-from service.vocabulary import STATES
+from service.errors import Unauthenticated, Unavailable
+from service.ops import data_identity
+from service.ops.workers import live_workers
 
 blp = SealfoldBlueprint("operations", __name__, description="Liveness, readiness and metrics (no key needed).")
 _OPEN: dict[str, list[object]] = {"security": []}
 PROMETHEUS_MIMETYPE = "text/plain; version=0.0.4; charset=utf-8"
-
-
-class RequestTally:
-    """Counts answered requests by method, route template and status (templates keep labels few)."""
-
-    def __init__(self) -> None:
-        self._lock = threading.Lock()
-        self._counts: Counter[tuple[str, str, int]] = Counter()
-
-    def count(self, method: str, route: str, status: int) -> None:
-        """Add one answered request."""
-        with self._lock:
-            self._counts[(method, route, status)] += 1
-
-    def snapshot(self) -> dict[tuple[str, str, int], int]:
-        """Return a copy of the counts."""
-        with self._lock:
-            return dict(self._counts)
-
-
-def count_request(response: Response) -> Response:
-    """after_request hook: tally the request under its route template."""
-    rule = request.url_rule.rule if request.url_rule is not None else "unmatched"
-    service_context().tally.count(request.method, rule, response.status_code)
-    return response
 
 
 @blp.route("/healthz")
@@ -61,51 +38,67 @@ def healthz() -> Response:
 @blp.route("/readyz")
 @blp.doc(**_OPEN)
 @blp.response(200, ReadinessSchema)
-@blp.problem(503, "The records DB or Redis is not reachable")
+@blp.problem(503, "A check failed: the records DB, Redis, live workers, the data dir or free disk")
 def readyz() -> Response:
-    """Answer 200 when the records DB and Redis both answer, else a 503 problem naming which failed."""
+    """Answer 200 when every check passes, else a 503 problem naming each that failed.
+
+    Checks: the records DB and Redis answer; at least one worker is registered with a live heartbeat; the
+    data dir is this deployment's (its identity marker matches the records DB); its file system has at least
+    ``SEALFOLD_MIN_FREE_DISK_MB`` free.
+    """
     ctx = service_context()
     checks: dict[str, str] = {}
+    problems: list[str] = []
     try:
         with ctx.engine.connect() as conn:
             conn.execute(text("SELECT 1"))
         checks["database"] = "ok"
+        data = data_identity.check(ctx.engine, ctx.settings.data_dir)
+        checks["data"] = "ok" if data is None else "not this deployment's"
+        if data is not None:
+            problems.append(data)
     except SQLAlchemyError:
         checks["database"] = "unreachable"
+        problems.append("the records database is not reachable")
     try:
         ctx.redis.ping()
         checks["redis"] = "ok"
+        alive = live_workers(ctx.redis)
+        checks["workers"] = f"{alive} alive" if alive else "none alive"
+        if not alive:
+            problems.append("no worker is alive")
     except RedisError:
         checks["redis"] = "unreachable"
-    failed = [name for name, state in checks.items() if state != "ok"]
-    if failed:
-        raise Unavailable(f"not ready: {' and '.join(failed)} not reachable")
+        problems.append("redis is not reachable")
+    free_mb = _free_mb(ctx.settings.data_dir)
+    checks["disk"] = f"{free_mb} MiB free"
+    if free_mb < ctx.settings.min_free_disk_mb:
+        problems.append(f"the data dir has {free_mb} MiB free, under the {ctx.settings.min_free_disk_mb} MiB minimum")
+    if problems:
+        raise Unavailable("not ready: " + "; ".join(problems))
     return json_response({"status": "ready", "checks": checks})
+
+
+def _free_mb(path: Path) -> int:
+    """Free MiB on the file system holding ``path`` (or its nearest existing parent)."""
+    while not path.exists() and path != path.parent:
+        path = path.parent
+    return shutil.disk_usage(path).free // (1024 * 1024)
 
 
 @blp.route("/metrics")
 @blp.doc(**_OPEN, responses={"200": {"description": "Prometheus text exposition format",
                                      "content": {"text/plain": {"schema": {"type": "string"}}}}})
+@blp.problem(401, "SEALFOLD_METRICS_TOKEN is set and the request did not carry it")
 def metrics() -> Response:
-    """Expose submissions by state (from the records DB) and this process's request counts."""
+    """Expose HTTP, queue, worker, job, submission, fold and holdout-query figures for Prometheus.
+
+    Open to anyone unless ``SEALFOLD_METRICS_TOKEN`` is set; then only ``Authorization: Bearer <that token>``.
+    """
     ctx = service_context()
-    lines = [
-        "# HELP sealfold_submissions Submissions in the records DB by state.",
-        "# TYPE sealfold_submissions gauge",
-    ]
-    by_state = submissions.count_by_state(ctx.engine)
-    for state in sorted(set(by_state) | set(STATES)):
-        lines.append(f'sealfold_submissions{{state="{state}"}} {by_state.get(state, 0)}')
-    lines += [
-        "# HELP sealfold_http_requests_total Requests answered by this API process.",
-        "# TYPE sealfold_http_requests_total counter",
-    ]
-    for (method, route, status), n in sorted(ctx.tally.snapshot().items()):
-        labels = f'method="{method}",route="{_label(route)}",status="{status}"'
-        lines.append(f"sealfold_http_requests_total{{{labels}}} {n}")
-    return Response("\n".join(lines) + "\n", mimetype=None, content_type=PROMETHEUS_MIMETYPE)
-
-
-def _label(value: str) -> str:
-    """Escape a Prometheus label value (backslash, double quote, newline)."""
-    return value.replace("\\", "\\\\").replace('"', '\\"').replace("\n", "\\n")
+    token = ctx.settings.metrics_token
+    if token:
+        sent = request.headers.get("Authorization", "")
+        if not hmac.compare_digest(sent.encode(), f"Bearer {token}".encode()):
+            raise Unauthenticated("/metrics needs the operators' token: Authorization: Bearer <SEALFOLD_METRICS_TOKEN>")
+    return Response(exposition(ctx), mimetype=None, content_type=PROMETHEUS_MIMETYPE)

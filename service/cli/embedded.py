@@ -174,7 +174,8 @@ def wait_for_workers(sup: Supervisor, redis_url: str, names: Sequence[str], time
 
 
 def prepare_records(env: Mapping[str, str]) -> str:
-    """Upgrade the records schema once, in this process, before the API and workers start; return its URL."""
+    """Upgrade the records schema and claim the data identity, before the API and workers start; return the URL."""
+    from service.ops.data_identity import claim
     from service.records.engine import make_engine
     from service.records.schema import upgrade
     from service.settings import Settings
@@ -183,6 +184,7 @@ def prepare_records(env: Mapping[str, str]) -> str:
     engine = make_engine(settings)
     try:
         upgrade(engine)
+        claim(engine, settings.data_dir)
     finally:
         engine.dispose()
     return settings.effective_database_url

@@ -174,11 +174,13 @@ def cmd_worker(args: argparse.Namespace) -> int:
 
 def cmd_db(args: argparse.Namespace) -> int:
     """Upgrade the records schema, or print its revision."""
+    from service.ops.data_identity import DataNotShared, claim
     from service.records import schema
     from service.records.engine import make_engine
     from service.settings import Settings
 
-    engine = make_engine(Settings.load())
+    settings = Settings.load()
+    engine = make_engine(settings)
     try:
         before = schema.current_revision(engine)
         if args.db_command == "upgrade":
@@ -186,6 +188,11 @@ def cmd_db(args: argparse.Namespace) -> int:
             after = schema.current_revision(engine)
             change = "already current" if after == before else f"upgraded from {before or 'none'}"
             print(f"records database at revision {after} ({change})")
+            try:
+                claim(engine, settings.data_dir)
+            except DataNotShared as exc:
+                print(f"sealfold db upgrade: {exc}", file=sys.stderr)
+                return 1
             return 0
         print(before or "none")
         if before != schema.head_revision():

@@ -191,3 +191,11 @@ audit_events = Table(
     Column("subject", String(80), nullable=False),
     Column("detail", JSON, nullable=False),
 )
+
+deployment = Table(
+    "deployment",
+    metadata,
+    # Facts about the deployment as a whole, e.g. the data identity (service.ops.data_identity).
+    Column("name", String(60), primary_key=True),
+    Column("value", String(200), nullable=False),
+)

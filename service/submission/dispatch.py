@@ -38,6 +38,7 @@ from rq.worker import Worker
 from sqlalchemy import Engine
 
 from service.errors import ConfigRejected, FieldProblem, Unavailable
+from service.logs import request_id_var
 from service.records import submissions
 from service.records.engine import as_utc, utcnow
 from service.settings import Settings
@@ -110,7 +111,7 @@ def check_config_remote(
                               "`sealfold worker`")
         job = queue.enqueue_call(
             f"{JOB_MODULE}.check_config", args=(config_doc, dataset_id), result_ttl=60, failure_ttl=300,
-            timeout=max(30, int(settings.check_timeout_seconds) * 3),
+            timeout=max(30, int(settings.check_timeout_seconds) * 3), meta=job_meta(),
         )
         result = job.latest_result(timeout=max(1, round(settings.check_timeout_seconds)))
     except RedisError as exc:
@@ -223,7 +224,7 @@ def _enqueue_fold(queue: Queue, settings: Settings, sub_id: str, repeat: int, fo
     job = queue.enqueue_call(
         f"{JOB_MODULE}.run_fold", args=(sub_id, repeat, fold), job_id=fold_job_id(sub_id, repeat, fold),
         timeout=settings.fold_timeout_seconds, result_ttl=RESULT_TTL, retry=_retry(),
-        description=f"fold {fold} of repeat {repeat} of {sub_id}",
+        description=f"fold {fold} of repeat {repeat} of {sub_id}", meta=job_meta(),
     )
     return str(job.id)
 
@@ -233,7 +234,7 @@ def _enqueue_summary(queue: Queue, settings: Settings, sub_id: str, depends_on: 
     queue.enqueue_call(
         f"{JOB_MODULE}.summarize", args=(sub_id,), job_id=summary_job_id(sub_id),
         depends_on=Dependency(jobs=deps, allow_failure=True) if deps else None,
-        timeout=600, result_ttl=RESULT_TTL, retry=_retry(), description=f"summary of {sub_id}",
+        timeout=600, result_ttl=RESULT_TTL, retry=_retry(), description=f"summary of {sub_id}", meta=job_meta(),
     )
 
 
@@ -241,7 +242,7 @@ def _enqueue_holdout(queue: Queue, settings: Settings, sub_id: str) -> None:
     queue.enqueue_call(
         f"{JOB_MODULE}.score_holdout", args=(sub_id,), job_id=holdout_job_id(sub_id),
         timeout=settings.fold_timeout_seconds * 2, result_ttl=RESULT_TTL, retry=_retry(),
-        description=f"holdout score of {sub_id}",
+        description=f"holdout score of {sub_id}", meta=job_meta(),
     )
 
 
@@ -249,8 +250,14 @@ def _enqueue_verdict(queue: Queue, sub_id: str, depends_on: list[str]) -> None:
     queue.enqueue_call(
         f"{JOB_MODULE}.give_verdict", args=(sub_id,), job_id=verdict_job_id(sub_id),
         depends_on=Dependency(jobs=depends_on, allow_failure=True) if depends_on else None,
-        timeout=600, result_ttl=RESULT_TTL, retry=_retry(), description=f"verdict of {sub_id}",
+        timeout=600, result_ttl=RESULT_TTL, retry=_retry(), description=f"verdict of {sub_id}", meta=job_meta(),
     )
+
+
+def job_meta() -> dict[str, str]:
+    """The meta a job carries: the id of the request that enqueued it, so worker log lines can name it."""
+    request_id = request_id_var.get()
+    return {"request_id": request_id} if request_id else {}
 
 
 def _retry() -> Retry:

@@ -14,6 +14,7 @@ import pandas as pd
 from sqlalchemy import Engine
 
 from service.ids import new_id
+from service.ops.data_identity import claim
 from service.records import datasets
 from service.records.engine import make_engine, utcnow
 from service.records.schema import upgrade
@@ -25,9 +26,11 @@ _KEY = bytes(range(32))  # a server's fingerprint key; any 32 bytes
 
 
 def upgraded_engine(settings: Settings) -> Engine:
-    """Open the records DB ``settings`` name, upgraded to this code's schema (what `sealfold db upgrade` does)."""
+    """Open the records DB ``settings`` name, upgraded to this code's schema and with the data dir claimed (what
+    `sealfold db upgrade` does)."""
     engine = make_engine(settings)
     upgrade(engine)
+    claim(engine, settings.data_dir)
     return engine
 
 

@@ -31,6 +31,8 @@ from rq.utils import import_attribute
 from rq.worker import Worker, WorkerStatus
 
 from service.catalog import load_catalog
+from service.logs import request_scope
+from service.ops import data_identity, job_tallies
 from service.records.engine import make_engine
 from service.records.schema import require_current
 from service.settings import Settings
@@ -109,14 +111,46 @@ class AllowListedJob(Job):
         return resolve()
 
 
+def _func_name(job: Job) -> str | None:
+    """The job's function name, or None when its data cannot be read (a job not written by sealfold)."""
+    try:
+        return job.func_name
+    except DeserializationError:
+        return None
+
+
+def _request_id(job: Job) -> str | None:
+    """The id of the API request that enqueued ``job``, when its meta names one and can be read."""
+    try:
+        meta = job.meta
+    except DeserializationError:
+        return None
+    value = meta.get("request_id") if isinstance(meta, dict) else None
+    return value if isinstance(value, str) else None
+
+
 class SealfoldWorker(Worker):
     """RQ's forking worker, plus a fresh DB pool in each work horse and the reconciler in maintenance."""
 
     job_class = AllowListedJob
 
+    data_problem: str | None = None  # set when this worker stopped because it lost the deployment's data
+    data_check: Callable[[], str | None] | None = None  # why the data dir is unusable now, or None
+
     def main_work_horse(self, job: Job, queue: Queue) -> None:
         runtime.after_fork()
         super().main_work_horse(job, queue)
+
+    def handle_job_success(self, job: Job, queue: Queue, started_job_registry: Any, execution: Any) -> None:
+        job_tallies.record(self.connection, _func_name(job), "finished")
+        super().handle_job_success(job, queue, started_job_registry, execution)
+
+    def handle_job_failure(self, job: Job, queue: Queue, started_job_registry: Any = None, exc_string: str = "",
+                           execution: Execution | None = None) -> None:
+        timed_out = "JobTimeoutException" in exc_string
+        outcome = "retried" if job.should_retry else "timed_out" if timed_out else "failed"
+        job_tallies.record(self.connection, _func_name(job), outcome)
+        super().handle_job_failure(job, queue, started_job_registry, exc_string, execution)
 
     def execute_job(self, job: Job, queue: Queue) -> None:
         """Run the job in this process when ``worker.process.placement`` says so; fork a horse for the rest.
@@ -125,6 +159,19 @@ class SealfoldWorker(Worker):
         forking worker does while it waits for its horse, so a killed worker's job is declared
         abandoned and retried the same way whichever process ran it.
         """
+        problem = self.data_check() if self.data_check is not None else None
+        if problem is not None:
+            # Not this job's fault: put it back for a worker that sees the data, and stop taking work.
+            log.error("refusing job %s and stopping: %s", job.id, problem)
+            queue.enqueue_job(job, at_front=True)
+            self.data_problem = problem
+            self.request_stop(0, None)
+            return
+        job_tallies.record(self.connection, _func_name(job), "started")
+        with request_scope(_request_id(job)):
+            self._execute(job, queue)
+
+    def _execute(self, job: Job, queue: Queue) -> None:
         try:
             in_process = placement.runs_in_process(job.func_name)
         except DeserializationError:
@@ -235,13 +282,19 @@ def build_worker(settings: Settings, redis: Redis[Any], name: str | None = None)
 def run_worker(settings: Settings, *, burst: bool = False, name: str | None = None) -> None:
     """Install the worker context, preload, and work until stopped (or until the queues are empty).
 
-    Raises ``SchemaOutOfDate`` before loading anything when the records database is not at this code's revision.
+    Raises ``SchemaOutOfDate`` before loading anything when the records database is not at this code's revision,
+    and ``DataNotShared`` when the data dir is not the deployment's (at start, or later before a job: the job
+    goes back to the queue for another worker and this one stops).
     """
     engine = make_engine(settings)
     try:
         require_current(engine)
+        recorded = data_identity.recorded_identity(engine)
+        problem = data_identity.mismatch(recorded, data_identity.read_marker(settings.data_dir), settings.data_dir)
     finally:
         engine.dispose()  # nothing open crosses the fold process's fork
+    if problem is not None or recorded is None:
+        raise data_identity.DataNotShared(problem or "no data identity")
     preload()
     limit_threads()
     runtime.install(runtime.WorkerContext(settings=settings, engine=engine))
@@ -251,8 +304,12 @@ def run_worker(settings: Settings, *, burst: bool = False, name: str | None = No
     runtime.install_fold_runner(folds)
     redis = Redis.from_url(settings.redis_url)
     worker = build_worker(settings, redis, name)
+    worker.data_check = lambda: data_identity.mismatch(
+        recorded, data_identity.read_marker(settings.data_dir), settings.data_dir)
     try:
         worker.work(burst=burst, logging_level=settings.log_level, with_scheduler=False)
+        if worker.data_problem is not None:
+            raise data_identity.DataNotShared(worker.data_problem)
     finally:
         folds.stop()
         engine.dispose()
