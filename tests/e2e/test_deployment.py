@@ -16,6 +16,9 @@ from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import pytest
+from prometheus_client.parser import text_string_to_metric_families
+from redis import Redis
+from rq.worker import Worker
 
 from service.cli.client import ServiceClient, Trouble
 from service.records import schema
@@ -25,6 +28,15 @@ pytestmark = [pytest.mark.postgres, pytest.mark.slow]
 
 GUNICORN = Path(sys.prefix) / "bin" / "gunicorn"
 WORKERS = 4
+
+
+def _readyz_count(text: str) -> float:
+    # prometheus-client's parser is the reference for the exposition format.
+    for family in text_string_to_metric_families(text):
+        for sample in family.samples:
+            if sample.name == "sealfold_http_requests_total" and sample.labels.get("route") == "/readyz":
+                return float(sample.value)
+    return 0.0
 
 
 def _children(pid: int) -> list[int]:
@@ -49,7 +61,8 @@ def test_a_fresh_postgresql_database_serves_200_requests_from_4_gunicorn_workers
     preload: bool, tmp_path: Path, redis_url: str,
 ) -> None:
     with postgres_database() as url:
-        env = {**os.environ, "DATABASE_URL": url, "SEALFOLD_DATA_DIR": str(tmp_path / "data"), "REDIS_URL": redis_url}
+        env = {**os.environ, "DATABASE_URL": url, "SEALFOLD_DATA_DIR": str(tmp_path / "data"), "REDIS_URL": redis_url,
+               "PROMETHEUS_MULTIPROC_DIR": str(tmp_path / "metrics")}
         started = time.perf_counter()
         upgraded = subprocess.run([*sealfold_argv(), "db", "upgrade"], env=env, capture_output=True, text=True,
                                   timeout=120)
@@ -65,7 +78,8 @@ def test_a_fresh_postgresql_database_serves_200_requests_from_4_gunicorn_workers
 
         port = free_port()
         log = tmp_path / "gunicorn.log"
-        argv = [str(GUNICORN), "--workers", str(WORKERS), "--bind", f"127.0.0.1:{port}", "--timeout", "60",
+        argv = [str(GUNICORN), "-c", "python:service.api.gunicorn_conf", "--workers", str(WORKERS),
+                "--bind", f"127.0.0.1:{port}", "--timeout", "60",
                 *(["--preload"] if preload else []), "service.app:create_app()"]
         with log.open("wb") as out:
             proc = subprocess.Popen(argv, env=env, stdout=out, stderr=subprocess.STDOUT, start_new_session=True)
@@ -76,6 +90,8 @@ def test_a_fresh_postgresql_database_serves_200_requests_from_4_gunicorn_workers
             boot_seconds = time.perf_counter() - started
             workers_at_boot = sorted(_children(proc.pid))
 
+            # /readyz needs a live worker: register one in Redis as a started `sealfold worker` does.
+            Worker(["sealfold"], connection=Redis.from_url(redis_url), name=f"w-{port}").register_birth()
             clients = {None: ServiceClient(base), **{r: ServiceClient(base, key=t) for r, t in tokens.items()}}
             calls = [(None, "/readyz"), ("steward", "/v1/datasets"), ("submitter", "/v1/catalog"),
                      ("submitter", "/v1/submissions")]
@@ -93,6 +109,11 @@ def test_a_fresh_postgresql_database_serves_200_requests_from_4_gunicorn_workers
             failures = [text for status, text in answers if status != 200]
             assert failures == [], failures[:5]
             assert proc.poll() is None and sorted(_children(proc.pid)) == workers_at_boot  # no worker died
+            # Every scrape, whichever gunicorn worker answers it, sees the requests of all four (the counter
+            # once went backwards between scrapes when each process counted its own).
+            readyz_calls = sum(1 for i in range(200) if calls[i % len(calls)][1] == "/readyz")
+            seen = [_readyz_count(clients[None].request("GET", "/metrics").body.decode()) for _ in range(8)]
+            assert seen == [readyz_calls] * 8, seen
             logged = log.read_text()
             assert "Traceback" not in logged and "Worker failed to boot" not in logged, logged
             print(f"\n[{'preload' if preload else 'per-worker app'}] db upgrade {upgrade_seconds:.2f} s, "
