@@ -212,6 +212,7 @@ def start_stack(sup: Supervisor, options: StackOptions) -> Stack:
     env = {k: v for k, v in os.environ.items() if k not in ("REDIS_URL", "DATABASE_URL")}
     env.update(options.extra_env)
     env.update({"SEALFOLD_DATA_DIR": str(data_dir), "PYTHONUNBUFFERED": "1"})
+    env.setdefault("SEALFOLD_LOG_FORMAT", "text")  # read in a terminal; deployments get JSON lines
     redis_child = None
     redis_url = options.redis_url
     if not redis_url:
@@ -230,13 +231,13 @@ def start_stack(sup: Supervisor, options: StackOptions) -> Stack:
         [sys.executable, "-m", "waitress", f"--listen={listen}", f"--threads={options.api_threads}",
          f"--max-request-body-size={waitress_body_cap(env)}", "--ident=sealfold", "--call",
          "service.app:create_app"],
-        env, log_dir,
+        env, log_dir, restartable=True,
     )
     # Unique per start so several stacks may share one Redis without name clashes.
     prefix = uuid.uuid4().hex[:6]
     names = [f"{prefix}-worker-{i}" for i in range(1, options.workers + 1)]
     workers = [
-        sup.start(f"worker-{i}", [sys.executable, "-m", "worker", "--name", name], env, log_dir)
+        sup.start(f"worker-{i}", [sys.executable, "-m", "worker", "--name", name], env, log_dir, restartable=True)
         for i, name in enumerate(names, start=1)
     ]
     base_url = f"http://{url_host(options.host)}:{port}"

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import io
 import os
 import re
 import signal
@@ -194,6 +195,47 @@ def test_supervisor_reports_a_child_that_dies(tmp_path: Path) -> None:
     assert sleeper.returncode == -signal.SIGTERM
 
 
+def test_supervisor_restarts_a_restartable_child_until_its_limit(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    monkeypatch.setattr(supervisor, "BACKOFF_FIRST_SECONDS", 0.01)
+    monkeypatch.setattr(supervisor, "RESTART_LIMIT", 3)
+    err = io.StringIO()
+    with supervisor.Supervisor(grace_seconds=2, err=err) as sup:
+        argv = _python("import sys; print('run', sys.argv[-1]); raise SystemExit(4)")
+        child = sup.start("flaky", [*argv, "--name", "w"], os.environ, tmp_path, restartable=True)
+        with pytest.raises(supervisor.ChildExited) as exited:
+            for _ in range(400):
+                time.sleep(0.02)
+                sup.check(restart=True)
+        assert exited.value.child is child and "exited with code 4" in str(exited.value)
+    # Three restarts, each with a new name; the log holds every run (appended, not truncated).
+    runs = [line for line in child.log_path.read_text().splitlines() if not line.startswith("---- ")]
+    assert runs == ["run w", "run w-r1", "run w-r2", "run w-r3"]
+    assert err.getvalue().count("restarting in") == 3
+
+
+def test_a_child_that_is_not_restartable_stops_the_stack_even_while_restarting_others(tmp_path: Path) -> None:
+    with supervisor.Supervisor(grace_seconds=2) as sup:
+        sup.start("redis-like", _python("raise SystemExit(1)"), os.environ, tmp_path)
+        with pytest.raises(supervisor.ChildExited):
+            for _ in range(200):
+                time.sleep(0.02)
+                sup.check(restart=True)
+
+
+def test_logs_past_the_limit_are_rotated_and_kept(tmp_path: Path) -> None:
+    log = tmp_path / "api.log"
+    for generation in range(5):
+        log.write_bytes(f"generation {generation}\n".encode() * 100)
+        assert supervisor.rotate_if_large(log, max_bytes=100, keep=3)
+    assert log.read_bytes() == b""
+    assert [(tmp_path / f"api.log.{n}").read_text().split("\n")[0] for n in (1, 2, 3)] == [
+        "generation 4", "generation 3", "generation 2"]
+    assert not (tmp_path / "api.log.4").exists()
+    assert not supervisor.rotate_if_large(log, max_bytes=100)  # small enough now
+
+
 def test_supervisor_kills_a_child_that_ignores_sigterm(tmp_path: Path) -> None:
     code = ("import signal, time; signal.signal(signal.SIGTERM, signal.SIG_IGN); "
             "print('ready', flush=True); time.sleep(60)")
@@ -325,12 +367,13 @@ def test_up_no_demo_side_by_side_and_clean_sigterm(tmp_path: Path, up_processes:
     assert not (first.data_dir / "redis.sock").exists()
     assert ServiceClient(second.url).get("/readyz").status == 200  # the other stack did not notice
 
-    # A child that dies unexpectedly: reported with how it ended, the rest stopped, exit code non-zero.
+    # A child that dies and is not restarted (redis; a worker or the API is restarted, see below): reported
+    # with how it ended, the rest stopped, exit code non-zero.
     children = _children_of(second.proc.pid)
-    worker_pid = next(pid for pid in children if "worker" in Path(f"/proc/{pid}/cmdline").read_text())
-    os.kill(worker_pid, signal.SIGKILL)
+    redis_pid = next(pid for pid in children if "redis" in Path(f"/proc/{pid}/cmdline").read_text())
+    os.kill(redis_pid, signal.SIGKILL)
     assert second.proc.wait(timeout=60) == 1
-    assert re.search(r"worker-1 \(pid \d+\) was killed by SIGKILL", second.stderr()), second.stderr()
+    assert re.search(r"redis \(pid \d+\) was killed by SIGKILL", second.stderr()), second.stderr()
     assert not [pid for pid in children if Path(f"/proc/{pid}").exists()]
 
 
@@ -351,6 +394,37 @@ def test_up_no_demo_twice_on_one_data_dir_creates_no_more_keys(tmp_path: Path, u
     assert ServiceClient(again.url, token).get("/v1/catalog").status == 200  # the first start's key still works
     assert again.stop() == 0, again.stderr()
     assert _key_count(tmp_path / "keys") == keys_after_first == 2
+    # Logs are kept across starts: the API's log holds both starts.
+    api_log = (tmp_path / "keys" / "logs" / "api.log").read_text()
+    assert api_log.count("---- sealfold up: started") == 2, api_log[-2000:]
+
+
+@pytest.mark.slow
+@pytest.mark.timeout(240)
+def test_up_restarts_a_worker_that_dies(tmp_path: Path, up_processes: list[UpProcess]) -> None:
+    """A worker killed with SIGKILL is started again (with a new RQ name); the stack and the API stay up."""
+    from redis import Redis
+    from rq.worker import Worker
+
+    up = UpProcess(tmp_path / "crash", "--no-demo", workers=1)
+    up_processes.append(up)
+    banner = up.wait_up()
+    redis_url = re.search(r"(unix://\S+|redis://\S+)", banner).group(1)  # type: ignore[union-attr]
+    redis = Redis.from_url(redis_url)
+    (before,) = Worker.all(connection=redis)
+    os.kill(before.pid, signal.SIGKILL)
+    deadline = time.monotonic() + 90
+    names: set[str] = set()
+    while time.monotonic() < deadline:
+        names = {w.name for w in Worker.all(connection=redis)} - {before.name}
+        if names:
+            break
+        assert up.proc.poll() is None, up.stderr()
+        time.sleep(0.2)
+    assert names == {f"{before.name}-r1"}, up.stderr()
+    assert "worker-1" in up.stderr() and "restarting in 1 s" in up.stderr()
+    assert ServiceClient(up.url).get("/healthz").status == 200
+    assert up.stop() == 0, up.stderr()
 
 
 def _parse_printed_curl(banner: str) -> tuple[str, dict[str, str], dict[str, object]]:
