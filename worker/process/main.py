@@ -28,7 +28,7 @@ from rq.job import Job
 from rq.queue import Queue
 from rq.serializers import JSONSerializer
 from rq.utils import import_attribute
-from rq.worker import Worker, WorkerStatus
+from rq.worker import WorkerStatus
 
 from service.catalog import load_catalog
 from service.logs import request_scope
@@ -41,6 +41,7 @@ from worker.jobs import ALLOWED_JOBS, runtime
 from worker.jobs.runtime import repeating
 from worker.process import placement
 from worker.process.fold_process import FoldProcess
+from worker.process.outages import OutageTolerantWorker, outage_tolerated
 from worker.process.warmup import warm_up
 
 log = logging.getLogger(__name__)
@@ -129,7 +130,7 @@ def _request_id(job: Job) -> str | None:
     return value if isinstance(value, str) else None
 
 
-class SealfoldWorker(Worker):
+class SealfoldWorker(OutageTolerantWorker):
     """RQ's forking worker, plus a fresh DB pool in each work horse and the reconciler in maintenance."""
 
     job_class = AllowListedJob
@@ -224,7 +225,8 @@ class SealfoldWorker(Worker):
             yield
 
     def run_maintenance_tasks(self) -> None:
-        super().run_maintenance_tasks()
+        with outage_tolerated(self, "maintenance"):
+            super().run_maintenance_tasks()
         try:
             reconcile_once(self.connection)
         except Exception:  # the reconciler must never take the worker down; the next tick retries
