@@ -1,7 +1,7 @@
 """A worker that rides out a Redis outage instead of exiting, and registers again when Redis forgot it.
 
 RQ retries a lost connection while it blocks waiting for a job, but a connection error anywhere else in its
-work loop (the state update before the wait, the suspension check, maintenance, the heartbeat after a job)
+work loop (a state update, as at start or before each wait, the suspension check, maintenance, the heartbeat after a job)
 ends the worker, and a supervisor-less deployment then has no worker. Here those calls skip a beat and the
 wait for the next job backs off (1 s, doubling, at most 30 s) until Redis answers. A Redis that comes back
 empty (a restart without persistence, a FLUSHALL) no longer lists the worker: the next heartbeat registers
@@ -46,6 +46,13 @@ class OutageTolerantWorker(Worker):
                                self.name, exc, wait)
                 time.sleep(wait)
                 wait = min(wait * 2, OUTAGE_BACKOFF_MAX_SECONDS)
+
+    def set_state(self, state: Any, pipeline: Any = None) -> None:
+        if pipeline is not None:
+            super().set_state(state, pipeline)
+            return
+        with outage_tolerated(self, "a state update"):
+            super().set_state(state)
 
     def check_for_suspension(self, burst: bool) -> None:
         with outage_tolerated(self, "the suspension check"):
