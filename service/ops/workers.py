@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import socket
+
 from redis import Redis
 from rq.worker import Worker
 
@@ -13,3 +15,9 @@ def live_workers(redis: Redis) -> int:
     Redis forgot (a restart, a FLUSHALL), has no key, and RQ's listing skips it.
     """
     return sum(1 for worker in Worker.all(connection=redis) if worker is not None)
+
+
+def live_on_this_host(redis: Redis, hostname: str | None = None) -> list[str]:
+    """Names of live workers registered from ``hostname`` (default: this host), for a container healthcheck."""
+    host = hostname or socket.gethostname()
+    return sorted(w.name for w in Worker.all(connection=redis) if w is not None and w.hostname == host)

