@@ -72,6 +72,14 @@ def build_parser() -> argparse.ArgumentParser:
     db_commands.add_parser("upgrade", help="apply the migrations the database lacks (safe to rerun)")
     db_commands.add_parser("current", help="print the database's revision; exit 1 unless it is this code's")
 
+    saved = commands.add_parser(
+        "backup", help="save the records DB and the data dir together into a new directory",
+        description="Copy the SQLite records DB (an online, consistent snapshot) and then the data dir's files "
+        "into DEST, which must not exist. With PostgreSQL records, run pg_dump first (see the README); this "
+        "then copies the data dir alone. Restore: copy DEST back as SEALFOLD_DATA_DIR (and pg_restore).",
+    )
+    saved.add_argument("dest", help="a directory that does not exist yet")
+
     keys = commands.add_parser("keys", help="manage API keys")
     key_commands = keys.add_subparsers(dest="keys_command", required=True, metavar="ACTION")
     create = key_commands.add_parser(
@@ -148,6 +156,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         return cmd_worker(args)
     if args.command == "db":
         return cmd_db(args)
+    if args.command == "backup":
+        from service.cli.operations import cmd_backup
+
+        return cmd_backup(args)
     if args.command in ("submit", "status", "board", "datasets"):
         from service.cli import remote
 

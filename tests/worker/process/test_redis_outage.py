@@ -38,7 +38,7 @@ def _start_redis(port: int, workdir: Path) -> subprocess.Popen[bytes]:
         try:
             if Redis(port=port, socket_connect_timeout=0.2).ping():
                 return proc
-        except Exception:  # noqa: BLE001 - not listening yet
+        except Exception:  # not listening yet
             time.sleep(0.05)
     raise AssertionError("redis-server did not start")
 
