@@ -80,6 +80,20 @@ class Settings:
             return self.database_url
         return f"sqlite:///{(self.data_dir / 'records.sqlite3').resolve()}"
 
+    def job_timeout_seconds(self, kind: str) -> int:
+        """How long a job of ``kind`` (``service.ops.job_tallies.KINDS``' values) may run before it is killed.
+
+        Read by the API when it enqueues and by the worker when it runs a job: a worker applies its own
+        settings, so one ``SEALFOLD_FOLD_TIMEOUT`` on every host is the fold timeout everywhere.
+        """
+        if kind == "fold":
+            return self.fold_timeout_seconds
+        if kind == "holdout":  # a refit on all development rows, then scoring the sealed rows
+            return self.fold_timeout_seconds * 2
+        if kind == "check":
+            return max(30, int(self.check_timeout_seconds) * 3)
+        return 600  # summary and verdict: bookkeeping, never a fit
+
     @property
     def check_queue_name(self) -> str:
         """Queue for quick configuration checks, served before fold work."""

@@ -111,7 +111,7 @@ def check_config_remote(
                               "`sealfold worker`")
         job = queue.enqueue_call(
             f"{JOB_MODULE}.check_config", args=(config_doc, dataset_id), result_ttl=60, failure_ttl=300,
-            timeout=max(30, int(settings.check_timeout_seconds) * 3), meta=job_meta(),
+            timeout=settings.job_timeout_seconds("check"), meta=job_meta(),
         )
         result = job.latest_result(timeout=max(1, round(settings.check_timeout_seconds)))
     except RedisError as exc:
@@ -223,7 +223,7 @@ def _reconcile_one(engine: Engine, live: set[str], queue: Queue, settings: Setti
 def _enqueue_fold(queue: Queue, settings: Settings, sub_id: str, repeat: int, fold: int) -> str:
     job = queue.enqueue_call(
         f"{JOB_MODULE}.run_fold", args=(sub_id, repeat, fold), job_id=fold_job_id(sub_id, repeat, fold),
-        timeout=settings.fold_timeout_seconds, result_ttl=RESULT_TTL, retry=_retry(),
+        timeout=settings.job_timeout_seconds("fold"), result_ttl=RESULT_TTL, retry=_retry(),
         description=f"fold {fold} of repeat {repeat} of {sub_id}", meta=job_meta(),
     )
     return str(job.id)
@@ -241,7 +241,7 @@ def _enqueue_summary(queue: Queue, settings: Settings, sub_id: str, depends_on: 
 def _enqueue_holdout(queue: Queue, settings: Settings, sub_id: str) -> None:
     queue.enqueue_call(
         f"{JOB_MODULE}.score_holdout", args=(sub_id,), job_id=holdout_job_id(sub_id),
-        timeout=settings.fold_timeout_seconds * 2, result_ttl=RESULT_TTL, retry=_retry(),
+        timeout=settings.job_timeout_seconds("holdout"), result_ttl=RESULT_TTL, retry=_retry(),
         description=f"holdout score of {sub_id}", meta=job_meta(),
     )
 

@@ -137,6 +137,7 @@ class SealfoldWorker(OutageTolerantWorker):
 
     data_problem: str | None = None  # set when this worker stopped because it lost the deployment's data
     data_check: Callable[[], str | None] | None = None  # why the data dir is unusable now, or None
+    settings: Settings | None = None  # set by build_worker: the job timeouts applied here
 
     def main_work_horse(self, job: Job, queue: Queue) -> None:
         runtime.after_fork()
@@ -169,6 +170,8 @@ class SealfoldWorker(OutageTolerantWorker):
             self.request_stop(0, None)
             return
         job_tallies.record(self.connection, _func_name(job), "started")
+        if self.settings is not None:  # this worker's timeout for the kind, whatever the enqueuer said
+            job.timeout = self.settings.job_timeout_seconds(job_tallies.kind_of(_func_name(job)))
         with request_scope(_request_id(job)):
             self._execute(job, queue)
 
@@ -266,8 +269,8 @@ def limit_threads() -> None:
 
 
 def build_worker(settings: Settings, redis: Redis[Any], name: str | None = None) -> SealfoldWorker:
-    """Return a worker on the check queue (served first) and the work queue."""
-    return SealfoldWorker(
+    """Return a worker on the check queue (served first) and the work queue, applying ``settings``' job timeouts."""
+    worker = SealfoldWorker(
         [settings.check_queue_name, settings.queue_name],
         connection=redis,
         name=name,
@@ -279,6 +282,8 @@ def build_worker(settings: Settings, redis: Redis[Any], name: str | None = None)
         # interval so the reconciler and registry clean-up also run on an idle worker.
         worker_ttl=MAINTENANCE_INTERVAL + 15,
     )
+    worker.settings = settings
+    return worker
 
 
 def run_worker(settings: Settings, *, burst: bool = False, name: str | None = None) -> None:
