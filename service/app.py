@@ -23,6 +23,7 @@ from service.records.engine import make_engine
 from service.records.schema import require_current
 from service.settings import Settings
 from service.vault.spool import sweep_spool
+from service.web import register_desk
 
 REDIS_CONNECT_TIMEOUT_SECONDS = 5.0
 
@@ -54,6 +55,7 @@ def create_app(overrides: Mapping[str, Any] | None = None) -> Flask:
     )
     api = SealfoldApi(app)
     register_blueprints(api)
+    register_desk(app)
     app.after_request(count_request)
     return app
 

@@ -103,7 +103,7 @@ def _legend(items: Sequence[tuple[str, str, str]], x: float, y: float) -> Markup
 
 def fold_chart(cells: Sequence[str], series: Sequence[Series], metric: str, greater_is_better: bool,
                width: int = 880, height: int = 320) -> Markup:
-    """Fold-by-fold scores of each series on a shared value axis, the candidate's mean dashed."""
+    """Each series' score per fold on a shared value axis, the first series' mean dashed; points stand alone."""
     values = [v for s in series for v in s.values if v is not None]
     if not cells or not values:
         return element("p", {"class": "note"}, "No fold scores to chart.")
@@ -120,12 +120,7 @@ def fold_chart(cells: Sequence[str], series: Sequence[Series], metric: str, grea
     for i, cell in enumerate(cells):
         if i % label_every == 0:
             parts.append(_text(left + (i + 0.5) * band, height - bottom + 18, cell, "middle", fill=MUTED))
-    for s in series:
-        points = [(left + (i + 0.5) * band, y(v)) for i, v in enumerate(s.values) if v is not None]
-        if len(points) > 1:
-            path = " ".join(f"{px:.1f},{py:.1f}" for px, py in points)
-            parts.append(element("polyline", {"points": path, "fill": "none", "stroke": s.color,
-                                              "stroke-width": 1, "stroke-opacity": 0.5}))
+    # Folds have no order, so their points are never joined by lines.
     candidate = [v for v in series[0].values if v is not None]
     if candidate:
         mean = sum(candidate) / len(candidate)

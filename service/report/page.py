@@ -27,6 +27,7 @@ from service.report.charts import (
 from service.report.facts import ReportFacts
 from service.report.fitting import diagnosis_section
 from service.report.markup import Markup, element
+from service.report.reasons import plain_reasons, rule_name
 
 TESTS = {
     "corrected_resampled_t": "corrected resampled t-test (Nadeau & Bengio 2003; repeated form Bouckaert & "
@@ -63,15 +64,19 @@ th { background: #f4f4f1; font-weight: 600; } td.num { text-align: right; font-v
 dl { display: grid; grid-template-columns: 230px 1fr; gap: 4px 12px; font-size: 0.9rem; }
 dt { color: #555; } dd { margin: 0; overflow-wrap: anywhere; } code, pre { font-size: 0.85rem; }
 pre { background: #f4f4f1; padding: 8px; overflow-x: auto; }
+nav.desk { font-size: 0.9rem; color: #555; margin: 0 0 12px; } nav.desk form.inline { display: inline; }
+.scroll { overflow-x: auto; }
+@media (max-width: 600px) { main { padding: 12px; } dl { grid-template-columns: 1fr; } }
 """)
 
 
-def render_report(facts: ReportFacts, base_url: str = "") -> str:
-    """Return the whole HTML document of a submission's report."""
+def render_report(facts: ReportFacts, base_url: str = "", nav: Markup | None = None) -> str:
+    """Return the whole HTML document of a submission's report; ``nav`` (the desk's links) goes on top."""
     row = facts.submission
     title = row["label"] or row["id"]
     body = element(
         "main", None,
+        nav,
         element("h1", None, f"Review of {title}"),
         element("p", {"class": "meta"}, _meta_line(facts)),
         _verdict_section(facts),
@@ -113,17 +118,20 @@ def _verdict_section(facts: ReportFacts) -> Markup:
         return element("section", {"class": "verdict none"}, element("div", {"class": "decision"}, "no verdict"),
                        element("p", None, text))
     decision = str(verdict.get("decision", ""))
-    rules = verdict.get("rules") or []
-    table = element("table", None,
-                    element("tr", None, element("th", None, "rule"), element("th", None, "outcome"),
-                            element("th", None, "why")),
-                    [element("tr", None, element("td", None, r.get("rule")),
-                             element("td", {"class": f"outcome {r.get('outcome', '')}"}, r.get("outcome")),
-                             element("td", None, r.get("sentence"))) for r in rules])
-    return Markup(element("section", {"class": f"verdict {decision}"},
-                          element("div", {"class": "decision"}, decision),
-                          element("ul", None, [element("li", None, reason) for reason in verdict.get("reasons", [])]))
-                  + (table if rules else ""))
+    plain = plain_reasons(verdict)
+    if not plain:  # a verdict without rules: its reasons as they are
+        items = [element("li", None, reason) for reason in verdict.get("reasons", [])]
+    else:
+        items = [element("li", None, element("span", {"class": f"outcome {r.outcome}"}, f"{rule_name(r.rule)}: "),
+                         r.sentence, element("br", None) if r.figures else None,
+                         element("span", {"class": "note"}, f"Figures: {r.figures}") if r.figures else None)
+                 for r in plain if r.outcome != "skipped"]
+    skipped = [rule_name(r.rule) for r in plain if r.outcome == "skipped"]
+    return element("section", {"class": f"verdict {decision}"},
+                   element("div", {"class": "decision"}, decision),
+                   element("ul", None, items),
+                   element("p", {"class": "note"}, f"Not checked (the policy sets no such rule, or nothing to "
+                                                   f"check yet): {', '.join(skipped)}.") if skipped else None)
 
 
 def _cell_label(repeat: int, fold: int, repeats: int) -> str:
@@ -175,7 +183,7 @@ def _fold_section(facts: ReportFacts) -> Markup:
                    fold_chart(labels, series, metric, facts.greater_is_better),
                    element("p", {"class": "note"}, notes),
                    element("details", None, element("summary", None, "the numbers"),
-                           element("table", None, header, table_rows)))
+                           element("div", {"class": "scroll"}, element("table", None, header, table_rows))))
 
 
 def _interval_section(facts: ReportFacts) -> Markup:
@@ -227,7 +235,7 @@ def _metrics_table(facts: ReportFacts) -> Markup:
         rows.append(element("tr", None, element("td", None, metric), _num(item.get("mean")), _num(item.get("std")),
                             element("td", {"class": "num"}, shown), _num((baseline.get(metric) or {}).get("mean")),
                             _holdout_cell(facts.holdout, metric, released.get(metric))))
-    return element("table", None, header, rows)
+    return element("div", {"class": "scroll"}, element("table", None, header, rows))
 
 
 def _holdout_cell(holdout: dict[str, Any], metric: str, value: float | None) -> Markup:
@@ -272,7 +280,7 @@ def _coefficient_section(facts: ReportFacts) -> Markup:
                    coefficient_chart(ranges[:60]),
                    element("p", {"class": "note"}, f"Showing {min(60, len(ranges))} of {len(ranges)} terms in the "
                            "chart; the table lists all.") if len(ranges) > 60 else None,
-                   element("table", None, header, rows, intercepts))
+                   element("div", {"class": "scroll"}, element("table", None, header, rows, intercepts)))
 
 
 def _stable(value: bool | None) -> str:
