@@ -135,16 +135,32 @@ def _balance_section(ds: dict[str, Any]) -> Markup:
     parts: list[object] = [heading, summary]
     if "columns" in balance:  # the per-column table: stewards only, as the API shapes it
         rows = [[c["name"], c.get("role", ""), _f(c.get("smd")), _f(c.get("smd_allowed")), _f(c.get("ks")),
-                 _f(c.get("ks_pvalue")), _f(c.get("tv")), ", ".join(c.get("exceeds") or []) or "none"]
+                 _f(c.get("ks_pvalue")), _f(c.get("tv")), ", ".join(_STATISTICS.get(str(x), str(x))
+                                                                for x in c.get("exceeds") or []) or "none"]
                 for c in balance["columns"]]
         parts.append(table("Per column, development against holdout (stewards only)",
                            ["column", "used as", "standardised mean difference", "allowed", "KS distance",
                             "KS p-value", "total variation", "beyond its limit"], rows))
         draws = [[a.get("draw"), "yes" if a.get("balanced") else "no", _f(a.get("adversarial_auc")),
-                  ", ".join(a.get("exceeded") or []) or "none"] for a in balance.get("attempts") or []]
+                  _exceeded(a.get("exceeded") or [])] for a in balance.get("attempts") or []]
         parts.append(table("Every draw of the holdout", ["draw", "balanced", "adversarial AUC",
                                                           "columns beyond their limit"], draws))
     return element("section", {"aria-labelledby": "balance"}, parts)
+
+
+_STATISTICS = {"smd": "mean difference", "ks": "KS distance", "tv": "total variation",
+               "adversarial_auc": "adversarial AUC"}
+
+
+def _exceeded(items: list[Any]) -> str:
+    said = []
+    for item in items:
+        if isinstance(item, dict):
+            stat = _STATISTICS.get(str(item.get("statistic")), str(item.get("statistic")))
+            said.append(f"{item['column']}: {stat}" if item.get("column") else stat)
+        else:
+            said.append(str(item))
+    return ", ".join(said) or "none"
 
 
 def _f(value: Any) -> object:
