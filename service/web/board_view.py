@@ -32,7 +32,7 @@ def board_section(session: DeskSession, ds: dict[str, Any], board: dict[str, Any
                        element("p", {"class": "note"}, "No submission on the board yet."))
     steward = session.key.can("steward")
     headers = ["rank", "submission", f"CV mean {metric} (\u00b1 fold std)", "holdout (as released)", "verdict",
-               "judged under policy", "submitted by", "compare as A", "compare as B"]
+               "judged under policy", "submitted by", "compare: A", "B"]
     if steward:
         headers.append("champion")
     rows = [_row(e, steward, ds["id"]) for e in entries]
@@ -57,11 +57,11 @@ def _row(entry: dict[str, Any], steward: bool, ds_id: str) -> Markup:
     cells: list[object] = [
         element("td", {"class": "num"}, str(entry["rank"])), element("td", None, name),
         element("td", {"class": "num"}, f"{figure(cv['mean'])}{spread}"),
-        element("td", None, entry["holdout"]["summary"]),
+        element("td", None, _holdout(entry["holdout"])),
         element("td", None, decision_tag(entry["verdict"])),
         element("td", None, "-" if entry["policy_version"] is None else f"version {entry['policy_version']}"),
-        element("td", None, f"{entry['submitter']['name'] or entry['submitter']['key']}, "
-                            f"{when(entry['created_at'])}"),
+        element("td", None, entry["submitter"]["name"] or entry["submitter"]["key"], element("br", None),
+                element("span", {"class": "note"}, when(entry["created_at"]))),
         element("td", None, _pick("a", sub, label)), element("td", None, _pick("b", sub, label)),
     ]
     if steward:
@@ -70,6 +70,25 @@ def _row(entry: dict[str, Any], steward: bool, ds_id: str) -> Markup:
                                                                         submission=sub)}, "promote\u2026")
                              if can else ("in force" if entry["champion"] else "-")))
     return element("tr", {"class": "champion" if entry["champion"] else None}, cells)
+
+
+_FIGURES = {"own_score": "this submission's score, rounded", "thresholdout_answer": "thresholdout's answer"}
+
+
+def _holdout(holdout: dict[str, Any]) -> Markup:
+    """The released figure first, then what it is; the board's own sentence when nothing is shown."""
+    if not holdout["released"] or holdout["score"] is None:
+        return element("span", {"class": "note"}, holdout["summary"])
+    ladder = holdout.get("ladder")
+    if ladder is not None:
+        what = ("new best: this submission set the dataset's best so far" if ladder["new_best"] else
+                "the dataset's best so far, not this submission's")
+    else:
+        what = _FIGURES.get(str(holdout["figure"]), str(holdout["summary"]))
+    version = holdout.get("policy_version")
+    return element("span", None, element("strong", None, figure(holdout["score"])), element("br", None),
+                   element("span", {"class": "note"}, f"{what} ({holdout['mode']}"
+                           + (f", policy version {version})" if version is not None else ")")))
 
 
 def _pick(side: str, sub: str, label: str) -> Markup:

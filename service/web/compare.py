@@ -46,7 +46,8 @@ def compare_page(session: DeskSession) -> Response:
     return page(f"{a['label'] or a['id']} against {b['label'] or b['id']}", session,
                 element("p", None, element("a", {"href": url_for("desk.dataset_page", ds_id=ds["id"]) + "#board"},
                                            f"Back to the board of {ds['name']}")),
-                sides, _folds(found), _test(found, float(policy["champion_alpha"]), a["id"]))
+                sides, _folds(found, a["label"] or a["id"], b["label"] or b["id"]),
+                _test(found, float(policy["champion_alpha"]), a["id"]))
 
 
 def _link(row: dict[str, Any]) -> Markup:
@@ -64,16 +65,17 @@ def _holdout(row: dict[str, Any]) -> str:
     return str(part["summary"])
 
 
-def _folds(found: Comparison) -> Markup:
+def _folds(found: Comparison, a_name: str, b_name: str) -> Markup:
     heading = element("h2", None, f"Fold scores: {found.metric}")
     if not found.paired or not found.cells:
         return element("section", None, heading, element("p", {"class": "note"}, f"Not paired: {found.note}."))
     labels = [f"r{r} f{f}" if any(c[0] for c in found.cells) else str(f) for r, f in found.cells]
-    chart = fold_chart(labels, [Series("A", found.a_scores, CANDIDATE, "circle"),
-                                Series("B", found.b_scores, BASELINE, "square")],
+    chart = fold_chart(labels, [Series(f"A: {a_name}", found.a_scores, CANDIDATE, "circle"),
+                                Series(f"B: {b_name}", found.b_scores, BASELINE, "square")],
                        found.metric, found.greater_is_better)
     diff_chart = fold_chart(labels, [Series("A better by", found.differences, CANDIDATE, "diamond")],
-                            found.metric, True, height=220)
+                            found.metric, True, height=240, axis_label=f"A better by ({found.metric})",
+                            zero_line=True)
     rows = [[label, a, b, d] for label, a, b, d in zip(labels, found.a_scores, found.b_scores, found.differences,
                                                        strict=True)]
     return element("section", None, heading, chart,
@@ -81,7 +83,7 @@ def _folds(found: Comparison) -> Markup:
                            "order, so the points are not joined. Dashed: A's mean."),
                    element("h2", None, "Differences, fold by fold"), diff_chart,
                    element("p", {"class": "note"}, f"How much better A scored than B on each fold, in {found.metric} "
-                           "(below zero: B was better). Dashed: the mean difference."),
+                           "(below the solid zero line: B was better). Dashed: the mean difference."),
                    table("Paired fold scores", ["fold", "A", "B", "A better by"], rows))
 
 

@@ -17,7 +17,7 @@ from service.api.auth import team_dataset
 from service.gate.board import board_document
 from service.gate.review_state import champion_state, policy_in_force
 from service.records import datasets as dataset_records
-from service.records import policies, submissions
+from service.records import keys, policies, submissions
 from service.records.engine import iso
 from service.report.columns import development_missing
 from service.report.markup import Markup, element
@@ -68,6 +68,7 @@ def dataset_page(session: DeskSession, ds_id: str) -> Response:
     board = board_document(engine, ds, per_page, cursor)
     policy = policy_in_force(engine, ds)
     champions = champion_state(engine, ds["id"])
+    names = {str(k["id"]): str(k["name"] or k["id"]) for k in keys.team_listing(engine, session.key.team)}
     sections = [
         element("p", {"class": "lead"}, f"{ds['task']} on {ds['target']} \u00b7 registered {when(ds['created_at'])}"),
         facts([("rows", f"{ds['rows']['total']} in all: {ds['rows']['development']} for development, "
@@ -75,12 +76,12 @@ def dataset_page(session: DeskSession, ds_id: str) -> Response:
                ("fold plan", _plan(ds["fold_plan"])),
                ("holdout drawn", f"{ds['holdout']['scheme']}, {ds['holdout']['fraction']:g} of the rows")]),
         board_section(session, ds, board, per_page, cursor is not None),
-        _champion_section(ds, champions),
+        _champion_section(ds, champions, names),
         element("h2", {"id": "policy"}, "Review policy"),
         policy_facts(policy),
         element("p", None, element("a", {"href": url_for("desk.policy_form", ds_id=ds["id"])}, "Edit the policy"))
         if session.key.can("steward") else None,
-        policy_history(policies.history(engine, ds["id"])),
+        policy_history(policies.history(engine, ds["id"]), names),
         _columns_section(ds, development_missing(settings, ds["id"])),
         _balance_section(ds),
     ]
@@ -99,16 +100,22 @@ def _plan(plan: dict[str, Any]) -> str:
     return f"{plan['scheme']}, {plan['folds']} folds"
 
 
-def _champion_section(ds: dict[str, Any], state: dict[str, Any]) -> Markup:
+def _champion_section(ds: dict[str, Any], state: dict[str, Any], names: dict[str, str]) -> Markup:
     champion = state["champion"]
     now = element("p", None, "No champion yet." if champion is None else [
         "Champion in force: ", element("a", {"href": url_for("desk.report", sub_id=champion["submission"])},
                                        champion["label"] or champion["submission"]),
         f", promoted {when(champion['promoted_at'])}."])
-    rows = [[element("a", {"href": url_for("desk.report", sub_id=h["submission"])}, h["submission"]),
-             h["promoted_by"], when(h["promoted_at"])] for h in state["history"]]
+    engine = service_context().engine
+    rows = [[element("a", {"href": url_for("desk.report", sub_id=h["submission"])}, _label(engine, h["submission"])),
+             names.get(h["promoted_by"], h["promoted_by"]), when(h["promoted_at"])] for h in state["history"]]
     return element("section", {"aria-labelledby": "champion"}, element("h2", {"id": "champion"}, "Champion"), now,
-                   table("Promotions, newest first", ["submission", "promoted by key", "when"], rows))
+                   table("Promotions, newest first", ["submission", "promoted by", "when"], rows))
+
+
+def _label(engine: Any, sub_id: str) -> str:
+    row = submissions.get(engine, sub_id)
+    return str(row["label"] or sub_id) if row else sub_id
 
 
 def _columns_section(ds: dict[str, Any], missing: dict[str, int] | None) -> Markup:

@@ -29,7 +29,7 @@ header.bar { background: var(--paper); border-bottom: 1px solid var(--line); pad
 header.bar .name { font-weight: 700; letter-spacing: 0.04em; color: var(--accent); text-decoration: none; }
 header.bar nav { display: flex; flex-wrap: wrap; gap: 4px 16px; flex: 1; }
 header.bar .who { color: var(--muted); font-size: 0.9rem; }
-main { max-width: 1080px; margin: 0 auto; padding: 16px; background: var(--paper); min-height: 100vh; }
+main { max-width: 1240px; margin: 0 auto; padding: 16px; background: var(--paper); min-height: 100vh; }
 h1 { font-size: 1.45rem; margin: 4px 0 8px; } h2 { font-size: 1.15rem; margin: 28px 0 8px;
   padding-bottom: 4px; border-bottom: 1px solid var(--line); }
 a { color: var(--accent); } a:focus, button:focus, input:focus, select:focus { outline: 3px solid #f0b429;
@@ -39,7 +39,8 @@ a { color: var(--accent); } a:focus, button:focus, input:focus, select:focus { o
 table { border-collapse: collapse; width: 100%; font-size: 0.92rem; margin: 6px 0 12px; }
 caption { text-align: left; color: var(--muted); font-size: 0.88rem; padding: 4px 0; }
 th, td { text-align: left; padding: 6px 8px; border-bottom: 1px solid var(--line); vertical-align: top; }
-th { background: #eef1f2; font-weight: 600; } td.num { text-align: right; font-variant-numeric: tabular-nums; }
+th { background: #eef1f2; font-weight: 600; } td.num, th.num { text-align: right; }
+td.num { font-variant-numeric: tabular-nums; }
 tr.champion td { background: #f4f8ee; }
 .tag { display: inline-block; padding: 0 6px; border-radius: 4px; font-size: 0.82rem; border: 1px solid; }
 .tag.pass { color: var(--good); } .tag.fail { color: var(--bad); } .tag.inconclusive { color: var(--unsure); }
@@ -109,14 +110,18 @@ def table(caption: str, headers: Sequence[str], rows: Iterable[Sequence[object]]
           row_classes: Sequence[str | None] | None = None) -> Markup:
     """A captioned table in a horizontally scrolling box (phones); cells that are numbers align right."""
     body = []
-    for i, row in enumerate(rows):
+    rows_seen = [list(r) for r in rows]
+    for i, row in enumerate(rows_seen):
         cells = [element("td", {"class": "num"}, figure(float(c))) if isinstance(c, float) else
                  element("td", {"class": "num"}, str(c)) if isinstance(c, int) and not isinstance(c, bool) else
                  element("td", None, c) for c in row]
         body.append(element("tr", {"class": row_classes[i] if row_classes else None}, cells))
     if not body:
         return element("p", {"class": "note"}, f"{caption}: none yet.")
-    head = element("tr", None, [element("th", {"scope": "col"}, h) for h in headers])
+    numeric = [all(isinstance(r[i], int | float) and not isinstance(r[i], bool) for r in rows_seen)
+               for i in range(len(headers))]
+    head = element("tr", None, [element("th", {"scope": "col", "class": "num" if n else None}, h)
+                                for h, n in zip(headers, numeric, strict=True)])
     return element("div", {"class": "scroll"}, element("table", None, element("caption", None, caption),
                                                       element("thead", None, head), element("tbody", None, body)))
 

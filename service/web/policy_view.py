@@ -44,10 +44,10 @@ def _or(value: Any, empty: str) -> object:
     return empty if value is None else value
 
 
-def policy_history(history: list[dict[str, Any]]) -> Markup:
+def policy_history(history: list[dict[str, Any]], names: dict[str, str]) -> Markup:
     """Every stored version, newest first: who set it, when, and its main settings."""
-    rows = [[h["version"], h["set_by"], when(h["set_at"]), h["document"].get("primary_metric", "-"),
-             h["document"].get("champion_margin", "-"), (h["document"].get("release") or {}).get("mode", "-")]
-            for h in history]
-    return table("Policy versions, newest first", ["version", "set by key", "when", "primary metric",
+    rows = [[h["version"], names.get(h["set_by"], h["set_by"]), when(h["set_at"]),
+             h["document"].get("primary_metric", "-"), h["document"].get("champion_margin", "-"),
+             (h["document"].get("release") or {}).get("mode", "-")] for h in history]
+    return table("Policy versions, newest first", ["version", "set by", "when", "primary metric",
                                                     "champion margin", "holdout release"], rows)

@@ -74,18 +74,28 @@ class Shots:
         return path
 
 
-def _sign_in(driver: Any, token: str) -> None:
+def _click(driver: Any, element: Any, url_part: str) -> None:
+    """Click a link or button and wait for the page it leads to (form posts return before it loads)."""
+    from selenium.webdriver.support import expected_conditions
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    element.click()
+    WebDriverWait(driver, 30).until(expected_conditions.url_contains(url_part))
+    WebDriverWait(driver, 30).until(lambda d: d.execute_script("return document.readyState") == "complete")
+
+
+def _sign_in(driver: Any, token: str, lands_on: str) -> None:
     from selenium.webdriver.common.by import By
 
     assert "/desk/sign-in" in driver.current_url, driver.current_url
     driver.find_element(By.ID, "key").send_keys(token)
-    driver.find_element(By.CSS_SELECTOR, "form[action='/desk/sign-in'] button[type=submit]").click()
+    _click(driver, driver.find_element(By.CSS_SELECTOR, "form[action='/desk/sign-in'] button[type=submit]"), lands_on)
 
 
 def _sign_out(driver: Any) -> None:
     from selenium.webdriver.common.by import By
 
-    driver.find_element(By.CSS_SELECTOR, "form[action='/desk/sign-out'] button").click()
+    _click(driver, driver.find_element(By.CSS_SELECTOR, "form[action='/desk/sign-out'] button"), "/desk/sign-out")
     assert "You are signed out." in driver.page_source
 
 
@@ -97,6 +107,7 @@ def _board_rows(driver: Any) -> list[Any]:
 
 def test_the_desk_in_a_real_browser(api: Api, dataset: dict[str, Any], browser: Any, tmp_path: Path) -> None:
     from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
 
     folder = Path(os.environ.get("SEALFOLD_SCREENSHOTS") or tmp_path / "screenshots")
     shots = Shots(browser, folder)
@@ -112,7 +123,7 @@ def test_the_desk_in_a_real_browser(api: Api, dataset: dict[str, Any], browser: 
         browser.get(f"{served.url}/v1/submissions/{tries[0]}/report")
         assert "/desk/sign-in?next=" in browser.current_url
         shots.take("sign-in")
-        _sign_in(browser, api.tokens["submitter"])
+        _sign_in(browser, api.tokens["submitter"], "/report")
         assert browser.current_url == f"{served.url}/desk/submissions/{tries[0]}/report"
         assert browser.find_element(By.TAG_NAME, "h1").text == "Review of gradient boosting, try 1"
         shots.take("report-after-sign-in")
@@ -125,10 +136,10 @@ def test_the_desk_in_a_real_browser(api: Api, dataset: dict[str, Any], browser: 
 
         # A steward: the datasets, a dataset, its board page by page.
         browser.get(f"{served.url}/desk/")
-        _sign_in(browser, api.tokens["steward"])
+        _sign_in(browser, api.tokens["steward"], "/desk/")
         assert browser.current_url == f"{served.url}/desk/"
         shots.take("datasets")
-        browser.find_element(By.LINK_TEXT, "diabetes").click()
+        _click(browser, browser.find_element(By.LINK_TEXT, "diabetes"), "/desk/datasets/")
         assert browser.find_element(By.TAG_NAME, "h1").text == "diabetes"
         first_page = _board_rows(browser)
         assert len(first_page) == 20
@@ -139,24 +150,24 @@ def test_the_desk_in_a_real_browser(api: Api, dataset: dict[str, Any], browser: 
         overflow = browser.execute_script("return document.documentElement.scrollWidth - window.innerWidth")
         browser.set_window_size(1280, 900)
         assert overflow <= 0, f"the page is {overflow}px wider than a phone; wide tables must scroll in their box"
-        browser.find_element(By.LINK_TEXT, "Next page").click()
+        _click(browser, browser.find_element(By.LINK_TEXT, "Next page"), "cursor=")
         second_page = _board_rows(browser)
         assert len(second_page) == 3  # 23 on the board: 22 tries and the champion, ranked last (rmse 55)
         assert "champion" in second_page[-1].text
         shots.take("board-page-2")
-        browser.find_element(By.LINK_TEXT, "First page").click()
+        _click(browser, browser.find_element(By.LINK_TEXT, "First page"), "per=20")
 
         # A report from the board, and back.
-        _board_rows(browser)[0].find_element(By.CSS_SELECTOR, "a[href*='/report']").click()
+        _click(browser, _board_rows(browser)[0].find_element(By.CSS_SELECTOR, "a[href*='/report']"), "/report")
         assert browser.find_element(By.TAG_NAME, "h1").text == "Review of gradient boosting, try 1"
         assert str(RAW_HOLDOUT)[:6] not in browser.page_source
-        browser.find_element(By.LINK_TEXT, "Back to the board").click()
+        _click(browser, browser.find_element(By.LINK_TEXT, "Back to the board"), "#board")
 
         # Two submissions side by side.
         rows = _board_rows(browser)
         rows[0].find_element(By.CSS_SELECTOR, "input[name=a]").click()
         rows[1].find_element(By.CSS_SELECTOR, "input[name=b]").click()
-        browser.find_element(By.XPATH, "//button[text()='Compare A with B']").click()
+        _click(browser, browser.find_element(By.XPATH, "//button[text()='Compare A with B']"), "/desk/compare?")
         assert "/desk/compare?" in browser.current_url
         page = browser.page_source
         assert "Paired fold scores" in page and "corrected resampled t = " in page
@@ -164,11 +175,12 @@ def test_the_desk_in_a_real_browser(api: Api, dataset: dict[str, Any], browser: 
 
         # The policy: refused with the API's message, then saved as version 1.
         browser.get(f"{served.url}/desk/datasets/{ds_id}")
-        browser.find_element(By.LINK_TEXT, "Edit the policy").click()
+        _click(browser, browser.find_element(By.LINK_TEXT, "Edit the policy"), "/policy")
         margin = browser.find_element(By.ID, "f-champion_margin")
         margin.clear()
         margin.send_keys("-1")
         browser.find_element(By.XPATH, "//button[text()='Save as a new version']").click()
+        WebDriverWait(browser, 30).until(lambda d: d.find_elements(By.ID, "f-champion_margin-error"))
         message = api.problem(api.call("steward", "PUT", f"/v1/datasets/{ds_id}/policy",
                                        json={"champion_margin": -1}), 422)["errors"][0]["detail"]
         assert message in browser.find_element(By.ID, "f-champion_margin-error").text
@@ -176,34 +188,36 @@ def test_the_desk_in_a_real_browser(api: Api, dataset: dict[str, Any], browser: 
         margin = browser.find_element(By.ID, "f-champion_margin")
         margin.clear()
         margin.send_keys("1.5")
-        browser.find_element(By.XPATH, "//button[text()='Save as a new version']").click()
+        _click(browser, browser.find_element(By.XPATH, "//button[text()='Save as a new version']"), "#policy")
         assert browser.current_url.endswith(f"/desk/datasets/{ds_id}#policy")
         assert "margin allowed behind the champion" in browser.page_source
         assert api.get("steward", f"/v1/datasets/{ds_id}/policy").get_json()["champion_margin"] == 1.5
 
         # Promote the best passing submission, after the confirmation.
-        _board_rows(browser)[0].find_element(By.PARTIAL_LINK_TEXT, "promote").click()
+        _click(browser, _board_rows(browser)[0].find_element(By.PARTIAL_LINK_TEXT, "promote"), "/promote?")
         assert browser.find_element(By.TAG_NAME, "h1").text == "Promote a champion?"
         shots.take("promote-confirm")
-        browser.find_element(By.XPATH, "//button[text()='Yes, promote it']").click()
+        _click(browser, browser.find_element(By.XPATH, "//button[text()='Yes, promote it']"), "#champion")
         assert browser.current_url.endswith("#champion")
         assert "champion" in _board_rows(browser)[0].text
         assert api.get("steward", f"/v1/datasets/{ds_id}/champion").get_json()["champion"]["submission"] == tries[0]
         shots.take("promoted")
-        browser.find_element(By.LINK_TEXT, "Audit trail").click()
+        _click(browser, browser.find_element(By.LINK_TEXT, "Audit trail"), "/desk/audit")
         assert "promoted a champion" in browser.page_source and "set a policy" in browser.page_source
         shots.take("audit-trail")
         _sign_out(browser)
 
         # An admin: create a key and revoke it.
         browser.get(f"{served.url}/desk/keys")
-        _sign_in(browser, api.tokens["admin"])
+        _sign_in(browser, api.tokens["admin"], "/desk/keys")
         browser.find_element(By.ID, "key-name").send_keys("night shift")
         browser.find_element(By.XPATH, "//button[text()='Create the key']").click()
+        WebDriverWait(browser, 30).until(lambda d: d.find_elements(By.CSS_SELECTOR, ".done code"))
         token = browser.find_element(By.CSS_SELECTOR, ".done code").text
         assert api.get(token, "/v1/datasets").status_code == 200
         shots.take("key-created")
         browser.find_element(By.CSS_SELECTOR, "button[aria-label='revoke night shift']").click()
+        WebDriverWait(browser, 30).until(lambda d: "revoked" in d.find_element(By.TAG_NAME, "main").text)
         assert api.get(token, "/v1/datasets").status_code == 401
         shots.take("keys")
         _sign_out(browser)

@@ -11,6 +11,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from service.gate.release import Release
 from service.records import champions, keys, policies
 from tests.service.web.conftest import csrf_of, form_field, inputs, sign_in
 from tests.support.api import Api
@@ -48,8 +49,20 @@ def test_the_board_is_ranked_paged_and_marks_the_champion(api: Api, dataset: dic
     assert seen == [*tries, champion]
     first = _text(client.get(f"/desk/datasets/{dataset['id']}"))
     assert "champion" in first and "version 0" in first and "pass" in first
-    assert "this submission's holdout score: rmse 51 (exact, rounded)" in first
-    assert "holdout (as released)" in first
+    assert "holdout (as released)" in first and "51 this submission's score, rounded (exact, policy version 0)" in first
+
+
+def test_a_ladder_figure_on_the_board_is_labelled_as_the_dataset_best(api: Api, dataset: dict[str, Any]) -> None:
+    owner = api.key_ids["submitter"]
+    holder = make_submission(api.engine, dataset, owner, label="holder", scores=[50, 51, 49, 52, 48],
+                             release_with=lambda sub: Release("ladder", {"rmse": 50.1}, 1,
+                                                              {"ladder": {"best_submission": sub}}))
+    make_submission(api.engine, dataset, owner, label="follower", scores=[51, 52, 50, 53, 49],
+                    release_with=lambda sub: Release("ladder", {"rmse": 50.1}, 1,
+                                                     {"ladder": {"best_submission": holder}}), policy_version=0)
+    text = _text(_client(api, "submitter").get(f"/desk/datasets/{dataset['id']}"))
+    assert "50.1 new best: this submission set the dataset's best so far (ladder, policy version 0)" in text
+    assert "50.1 the dataset's best so far, not this submission's (ladder, policy version 0)" in text
 
 
 def test_no_page_shows_the_raw_holdout_or_the_seal(api: Api, dataset: dict[str, Any]) -> None:
