@@ -58,6 +58,8 @@ input[type=text], input[type=password], select { font: inherit; padding: 6px 8px
 button { font: inherit; padding: 6px 14px; border-radius: 4px; border: 1px solid var(--accent);
   background: var(--accent); color: #fff; cursor: pointer; margin-top: 12px; }
 button.quiet { background: var(--paper); color: var(--accent); margin-top: 0; }
+.skip { position: absolute; left: -999px; } .skip:focus { left: 8px; top: 8px; background: var(--paper);
+  padding: 6px 10px; z-index: 2; }
 .pager { display: flex; gap: 16px; margin: 8px 0; }
 code { font-size: 0.85rem; overflow-wrap: anywhere; }
 @media (max-width: 600px) { main { padding: 10px; } dl.facts { grid-template-columns: 1fr; }
@@ -70,7 +72,8 @@ def page(title: str, session: DeskSession | None, *content: object, status: int 
     head = element("head", None, element("meta", {"charset": "utf-8"}),
                    element("meta", {"name": "viewport", "content": "width=device-width, initial-scale=1"}),
                    element("title", None, f"{title} \u00b7 sealfold desk"), element("style", None, STYLE))
-    body = element("body", None, _bar(session), element("main", {"id": "main"}, element("h1", None, title),
+    skip = element("a", {"class": "skip", "href": "#main"}, "Skip to the content")
+    body = element("body", None, skip, _bar(session), element("main", {"id": "main"}, element("h1", None, title),
                                                        *content))
     return html_response("<!doctype html>\n" + element("html", {"lang": "en"}, head, body) + "\n", status)
 
