@@ -115,7 +115,9 @@ def promote(session: DeskSession, ds_id: str) -> Response:
 
 _ACTIONS = {"policy.set": "set a policy", "champion.promoted": "promoted a champion",
             "dataset.registered": "registered a dataset", "submission.created": "submitted",
-            "key.created": "created a key", "key.revoked": "revoked a key"}
+            "key.created": "created a key", "key.revoked": "revoked a key", "submission.canceled": "canceled",
+            "holdout.scored": "scored on the holdout", "holdout.failed": "holdout scoring failed",
+            "holdout.released": "released a holdout figure"}
 
 
 @desk.get("/audit")
@@ -125,14 +127,23 @@ def audit_trail(session: DeskSession) -> Response:
     names = {k["id"]: k["name"] or k["id"] for k in keys.team_listing(engine, session.key.team)}
     events = audit.recent_for_team(engine, session.key.team)
     rows = [[when(e["at"]), names.get(e["actor"], e["actor"]), _ACTIONS.get(e["action"], e["action"]),
-             e["subject"], _detail(e)] for e in events]
+             _subject(str(e["subject"])), _detail(e)] for e in events]
     return page("Audit trail", session,
                 element("p", {"class": "lead"}, f"What was done in team {session.key.team}, newest first "
                         f"(the latest {len(rows)})."),
                 table("Audit events", ["when", "by", "action", "on", "details"], rows))
 
 
+def _subject(subject: str) -> object:
+    if subject.startswith("ds_"):
+        return element("a", {"href": url_for("desk.dataset_page", ds_id=subject)}, subject)
+    if subject.startswith("sub_"):
+        return element("a", {"href": url_for("desk.report", sub_id=subject)}, subject)
+    return subject
+
+
 def _detail(event: dict[str, Any]) -> str:
+    """A few safe words per action; the details of holdout events are never shown (they may hold figures)."""
     detail = event.get("detail") or {}
     if event["action"] == "policy.set":
         return f"version {detail.get('version')}"

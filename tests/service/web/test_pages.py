@@ -72,7 +72,7 @@ def test_no_page_shows_the_raw_holdout_or_the_seal(api: Api, dataset: dict[str, 
     for who in ("submitter", "steward", "admin"):
         client = _client(api, who)
         for path in ("/desk/", f"/desk/datasets/{dataset['id']}", f"/desk/compare?a={a}&b={b}",
-                     f"/desk/submissions/{b}/report"):
+                     f"/desk/submissions/{b}/report", *(("/desk/audit",) if who != "submitter" else ())):
             page = client.get(path).get_data(as_text=True)
             assert str(RAW_HOLDOUT)[:6] not in page, (who, path)
             assert "sealing_seed" not in page and "holdout_fingerprint" not in page
