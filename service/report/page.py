@@ -27,7 +27,7 @@ from service.report.charts import (
 from service.report.facts import ReportFacts
 from service.report.fitting import diagnosis_section
 from service.report.markup import Markup, element
-from service.report.reasons import plain_reasons, rule_name
+from service.report.verdict_view import verdict_section
 
 TESTS = {
     "corrected_resampled_t": "corrected resampled t-test (Nadeau & Bengio 2003; repeated form Bouckaert & "
@@ -79,7 +79,7 @@ def render_report(facts: ReportFacts, base_url: str = "", nav: Markup | None = N
         nav,
         element("h1", None, f"Review of {title}"),
         element("p", {"class": "meta"}, _meta_line(facts)),
-        _verdict_section(facts),
+        verdict_section(facts),
         _fold_section(facts),
         _interval_section(facts),
         diagnosis_section(facts),
@@ -104,34 +104,6 @@ def _meta_line(facts: ReportFacts) -> list[object]:
 def _when(value: datetime | None) -> str:
     stamped = as_utc(value)
     return "-" if stamped is None else stamped.strftime("%Y-%m-%d %H:%M UTC")
-
-
-def _verdict_section(facts: ReportFacts) -> Markup:
-    verdict, row = facts.verdict, facts.submission
-    if verdict is None:
-        if row["state"] == "failed":
-            text = f"No verdict: the submission failed. {row['error'] or ''}".strip()
-        elif row["state"] == "canceled":
-            text = "No verdict: the submission was canceled."
-        else:
-            text = f"No verdict yet: the submission is {row['state']}."
-        return element("section", {"class": "verdict none"}, element("div", {"class": "decision"}, "no verdict"),
-                       element("p", None, text))
-    decision = str(verdict.get("decision", ""))
-    plain = plain_reasons(verdict)
-    if not plain:  # a verdict without rules: its reasons as they are
-        items = [element("li", None, reason) for reason in verdict.get("reasons", [])]
-    else:
-        items = [element("li", None, element("span", {"class": f"outcome {r.outcome}"}, f"{rule_name(r.rule)}: "),
-                         r.sentence, element("br", None) if r.figures else None,
-                         element("span", {"class": "note"}, f"Figures: {r.figures}") if r.figures else None)
-                 for r in plain if r.outcome != "skipped"]
-    skipped = [rule_name(r.rule) for r in plain if r.outcome == "skipped"]
-    return element("section", {"class": f"verdict {decision}"},
-                   element("div", {"class": "decision"}, decision),
-                   element("ul", None, items),
-                   element("p", {"class": "note"}, f"Not checked (the policy sets no such rule, or nothing to "
-                                                   f"check yet): {', '.join(skipped)}.") if skipped else None)
 
 
 def _cell_label(repeat: int, fold: int, repeats: int) -> str:
