@@ -16,6 +16,8 @@ from typing import Any
 
 import pytest
 
+from service.gate.policy import default_policy
+from service.gate.verdict import ChampionFolds, PlanFacts, judge
 from tests.support.api import Api
 from tests.support.reviews import RAW_HOLDOUT, make_submission
 from tests.support.servers import ServedApp, skip_or_fail
@@ -118,6 +120,18 @@ def test_the_desk_in_a_real_browser(api: Api, dataset: dict[str, Any], browser: 
     tries = [make_submission(api.engine, dataset, owner, label=f"gradient boosting, try {i + 1}",
                              scores=[50 + i / 20, 52 + i / 15, 49 + i / 25, 53 + i / 20, 51 + i / 10],
                              decision="fail" if i % 5 == 4 else "pass") for i in range(22)]
+    # One judged for real against the champion: worse by 2.56 rmse on every fold (the gate's own verdict).
+    champion_scores = [55.0, 56.0, 54.0, 57.0, 53.0]
+    worse_scores = [c + d for c, d in zip(champion_scores, [2.4, 2.7, 2.5, 2.6, 2.6], strict=True)]
+    cells = [(0, f) for f in range(5)]
+    plan = dataset["fold_plan"]
+    key = (plan["scheme"], plan["folds"], plan["seed"])
+    judged = judge(default_policy("regression"), dict(zip(cells, worse_scores, strict=True)),
+                   {c: v * 1.3 for c, v in zip(cells, worse_scores, strict=True)},
+                   ChampionFolds(champion, dict(zip(cells, champion_scores, strict=True)), key), None,
+                   PlanFacts(key, {c: (283, 71) for c in cells}), policy_version=0)
+    worse = make_submission(api.engine, dataset, owner, label="random forest, deeper", scores=worse_scores,
+                            verdict_doc=judged, champion_id=champion)
     with ServedApp(api.app) as served:
         # A report link pasted in a chat, opened without a session: sign-in first, then the report.
         browser.get(f"{served.url}/v1/submissions/{tries[0]}/report")
@@ -127,6 +141,11 @@ def test_the_desk_in_a_real_browser(api: Api, dataset: dict[str, Any], browser: 
         assert browser.current_url == f"{served.url}/desk/submissions/{tries[0]}/report"
         assert browser.find_element(By.TAG_NAME, "h1").text == "Review of gradient boosting, try 1"
         shots.take("report-after-sign-in")
+        browser.get(f"{served.url}/desk/submissions/{worse}/report")
+        verdict_box = browser.find_element(By.CSS_SELECTOR, "section.verdict").text
+        assert "Worse than the champion by 2.56 rmse, beyond the margin of 0; the folds show it clearly." in verdict_box
+        assert "Figures: Worse than champion" in verdict_box and "one-sided p" in verdict_box
+        shots.take("report-plain-reasons")
         # A submitter may not edit the policy.
         browser.get(f"{served.url}/desk/datasets/{ds_id}/policy")
         assert "This page needs a steward key" in browser.page_source
@@ -152,8 +171,8 @@ def test_the_desk_in_a_real_browser(api: Api, dataset: dict[str, Any], browser: 
         assert overflow <= 0, f"the page is {overflow}px wider than a phone; wide tables must scroll in their box"
         _click(browser, browser.find_element(By.LINK_TEXT, "Next page"), "cursor=")
         second_page = _board_rows(browser)
-        assert len(second_page) == 3  # 23 on the board: 22 tries and the champion, ranked last (rmse 55)
-        assert "champion" in second_page[-1].text
+        assert len(second_page) == 4  # 24 on the board: 22 tries, the champion (rmse 55), the worse one (57.56)
+        assert "champion" in second_page[2].text and "random forest" in second_page[3].text
         shots.take("board-page-2")
         _click(browser, browser.find_element(By.LINK_TEXT, "First page"), "per=20")
 
