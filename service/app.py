@@ -27,6 +27,7 @@ from service.records.engine import make_engine
 from service.records.schema import require_current
 from service.settings import Settings
 from service.vault.spool import sweep_spool
+from service.web import register_desk
 
 REDIS_CONNECT_TIMEOUT_SECONDS = 5.0
 
@@ -60,6 +61,7 @@ def create_app(overrides: Mapping[str, Any] | None = None) -> Flask:
     )
     api = SealfoldApi(app)
     register_blueprints(api)
+    register_desk(app)
     install(app, app.extensions[EXTENSION_KEY].http_metrics)
     return app
 

@@ -12,7 +12,6 @@ from typing import Any
 from flask import Response, request
 from flask.views import MethodView
 
-from service import team_scope
 from service.api import SealfoldBlueprint, json_response, service_context
 from service.api.auth import current_key, team_dataset
 from service.api.bodies import request_json
@@ -24,11 +23,11 @@ from service.api.review_schemas import (
     PolicyBodySchema,
     PolicySchema,
 )
-from service.errors import Conflict, FieldProblem, InputError, UnsupportedFormat, field_error
-from service.gate import board
+from service.errors import UnsupportedFormat
+from service.gate import board, promotion
 from service.gate.policy import parse_policy
-from service.gate.review_state import policy_in_force
-from service.records import champions, policies, submissions
+from service.gate.review_state import champion_state, policy_in_force
+from service.records import policies
 
 blp = SealfoldBlueprint("reviews", __name__, url_prefix="/v1/datasets",
                         description="A dataset's review policy, champion and board.")
@@ -77,7 +76,7 @@ class ChampionItem(MethodView):
     def get(self, ds_id: str) -> Response:
         """Read the champion in force and the history of promotions."""
         dataset = team_dataset(current_key(), ds_id)
-        return json_response(champion_state(dataset["id"]))
+        return json_response(champion_state(service_context().engine, dataset["id"]))
 
     @blp.requires("steward")
     @blp.arguments(ChampionRequestSchema)
@@ -90,33 +89,8 @@ class ChampionItem(MethodView):
         """Promote a submission that passed to champion (steward); the previous one stays in the history."""
         caller, engine = current_key(), service_context().engine
         dataset = team_dataset(caller, ds_id)
-        sub_id = body["submission"]
-        row = team_scope.team_submission(engine, caller, sub_id, pointer="/submission")
-        if row["dataset_id"] != dataset["id"]:
-            raise field_error(InputError, "/submission", f"submission {sub_id} is on dataset {row['dataset_id']}, "
-                              f"not {dataset['id']}; a champion must be a submission of this dataset")
-        decision = (row["verdict"] or {}).get("decision")
-        if decision != "pass":
-            why = (f"its verdict is {decision!r}" if decision else
-                   f"it has no verdict yet (state {row['state']})")
-            raise Conflict(f"submission {sub_id} cannot be champion: {why}; only a submission whose verdict is "
-                           "'pass' can be promoted",
-                           [FieldProblem("/submission", "the submission's verdict is not 'pass'")])
-        if champions.current(engine, dataset["id"]) != sub_id:
-            champions.promote(engine, dataset["id"], sub_id, caller.id)
-        return json_response(champion_state(dataset["id"]))
-
-
-def champion_state(dataset_id: str) -> dict[str, Any]:
-    """The champion in force with its label and verdict, and every promotion newest first."""
-    engine = service_context().engine
-    history = champions.history(engine, dataset_id)
-    champion = None
-    if history:
-        row = submissions.get(engine, history[0]["submission"])
-        champion = {**history[0], "label": row["label"] if row else "",
-                    "verdict": ((row or {}).get("verdict") or {}).get("decision")}
-    return {"dataset": dataset_id, "champion": champion, "history": history}
+        promotion.promote(engine, caller, dataset, body["submission"])
+        return json_response(champion_state(engine, dataset["id"]))
 
 
 @blp.route("/<ds_id>/board")
@@ -128,18 +102,6 @@ class Board(MethodView):
     @blp.problem(422, "A bad limit, or a cursor from another board or an older policy")
     def get(self, query: dict[str, Any], ds_id: str) -> Response:
         """Rank the dataset's submissions by the primary metric's CV mean, best first; the champion marked."""
-        caller, engine = current_key(), service_context().engine
-        dataset = team_dataset(caller, ds_id)
-        policy = policy_in_force(engine, dataset)
-        metric = str(policy["primary_metric"])
-        order = board.BoardOrder(metric, bool(policy["greater_is_better"]))
-        after = None if query["cursor"] is None else board.decode_cursor(query["cursor"], order)
-        champion = champions.current(engine, dataset["id"])
-        entries, cursor = board.board_page(engine, dataset, order, query["limit"], after, champion)
-        released_under = board.board_policies(engine, dataset, order)
-        return json_response({
-            "dataset": dataset["id"], "primary_metric": metric, "greater_is_better": order.greater_is_better,
-            "policy_version": policy["version"], "champion": champion, "entries": entries,
-            "next_cursor": None if cursor is None else board.encode_cursor(cursor),
-            "holdout_policies": released_under, "mixed_policies": board.mixed_policies_note(released_under),
-        })
+        dataset = team_dataset(current_key(), ds_id)
+        return json_response(board.board_document(service_context().engine, dataset, query["limit"],
+                                                  query["cursor"]))

@@ -21,7 +21,8 @@ from sqlalchemy import Engine, and_, func, or_, select
 from sqlalchemy.sql.elements import ColumnElement
 
 from service.errors import InputError, field_error
-from service.gate.review_state import holdout_summary, ladder_reading
+from service.gate.review_state import holdout_summary, ladder_reading, policy_in_force
+from service.records import champions
 from service.records.engine import iso
 from service.records.tables import api_keys, holdout_releases, submissions
 from service.vocabulary import HOLDOUT_FIGURES, RELEASE_MODES
@@ -109,6 +110,26 @@ def board_page(
         return entries, None
     last = rows[limit - 1]
     return entries, BoardCursor(order, float(last["mean"]), str(last["id"]), start + limit)
+
+
+def board_document(engine: Engine, dataset: dict[str, Any], limit: int, cursor: str | None) -> dict[str, Any]:
+    """Return one page of a dataset's board as ``GET /v1/datasets/{id}/board`` serves it (the desk shows the same).
+
+    ``cursor`` is the ``next_cursor`` of the previous page, or None for the first page.
+    """
+    policy = policy_in_force(engine, dataset)
+    metric = str(policy["primary_metric"])
+    order = BoardOrder(metric, bool(policy["greater_is_better"]))
+    after = None if cursor is None else decode_cursor(cursor, order)
+    champion = champions.current(engine, dataset["id"])
+    entries, following = board_page(engine, dataset, order, limit, after, champion)
+    released_under = board_policies(engine, dataset, order)
+    return {
+        "dataset": dataset["id"], "primary_metric": metric, "greater_is_better": order.greater_is_better,
+        "policy_version": policy["version"], "champion": champion, "entries": entries,
+        "next_cursor": None if following is None else encode_cursor(following),
+        "holdout_policies": released_under, "mixed_policies": mixed_policies_note(released_under),
+    }
 
 
 def board_policies(engine: Engine, dataset: dict[str, Any], order: BoardOrder) -> list[dict[str, Any]]:

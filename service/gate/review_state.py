@@ -11,7 +11,7 @@ from typing import Any
 from sqlalchemy import Engine
 
 from service.gate.policy import default_policy
-from service.records import policies
+from service.records import champions, policies, submissions
 from service.records.engine import iso
 
 
@@ -24,6 +24,17 @@ def policy_in_force(engine: Engine, dataset: dict[str, Any]) -> dict[str, Any]:
         version, document = stored
     body = {k: v for k, v in document.items() if k != "version"}
     return {"version": version, **body}
+
+
+def champion_state(engine: Engine, dataset_id: str) -> dict[str, Any]:
+    """The champion in force with its label and verdict, and every promotion newest first."""
+    history = champions.history(engine, dataset_id)
+    champion = None
+    if history:
+        row = submissions.get(engine, history[0]["submission"])
+        champion = {**history[0], "label": row["label"] if row else "",
+                    "verdict": ((row or {}).get("verdict") or {}).get("decision")}
+    return {"dataset": dataset_id, "champion": champion, "history": history}
 
 
 def holdout_part(release: dict[str, Any] | None, state: str | None = None,

@@ -34,3 +34,15 @@ def events_for(engine: Engine, subject: str) -> list[dict[str, Any]]:
         {"at": iso(r.at), "actor": r.actor, "action": r.action, "subject": r.subject, "detail": r.detail}
         for r in rows
     ]
+
+
+def recent_for_team(engine: Engine, team: str, limit: int = 200) -> list[dict[str, Any]]:
+    """Return a team's newest events first, at most ``limit`` of them."""
+    with engine.connect() as conn:
+        rows = conn.execute(
+            select(audit_events).where(audit_events.c.team == team).order_by(audit_events.c.id.desc()).limit(limit)
+        ).all()
+    return [
+        {"at": iso(r.at), "actor": r.actor, "action": r.action, "subject": r.subject, "detail": r.detail}
+        for r in rows
+    ]

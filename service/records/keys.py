@@ -8,7 +8,7 @@ from sqlalchemy import Engine, select, update
 
 from service.errors import InputError, NotFound, field_error
 from service.ids import new_id, new_token, same_secret, token_hash
-from service.records.engine import utcnow
+from service.records.engine import iso, utcnow
 from service.records.tables import api_keys
 from service.vocabulary import ROLES
 
@@ -88,3 +88,21 @@ def get_key(engine: Engine, key_id: str) -> KeyInfo | None:
     with engine.connect() as conn:
         row = conn.execute(select(api_keys).where(api_keys.c.id == key_id)).first()
     return None if row is None else KeyInfo(id=row.id, team=row.team, role=row.role, name=row.name)
+
+
+def live_key(engine: Engine, key_id: str) -> KeyInfo | None:
+    """Return a key by id if it is not revoked, else None (a browser session re-checks it on every page)."""
+    with engine.connect() as conn:
+        row = conn.execute(select(api_keys).where(api_keys.c.id == key_id, api_keys.c.revoked_at.is_(None))).first()
+    return None if row is None else KeyInfo(id=row.id, team=row.team, role=row.role, name=row.name)
+
+
+def team_listing(engine: Engine, team: str) -> list[dict[str, object]]:
+    """Return a team's keys (never a token or its hash), newest first, with when each was revoked."""
+    with engine.connect() as conn:
+        rows = conn.execute(
+            select(api_keys.c.id, api_keys.c.role, api_keys.c.name, api_keys.c.created_at, api_keys.c.revoked_at)
+            .where(api_keys.c.team == team).order_by(api_keys.c.created_at.desc(), api_keys.c.id)
+        ).all()
+    return [{"id": r.id, "role": r.role, "name": r.name, "created_at": iso(r.created_at),
+             "revoked_at": iso(r.revoked_at)} for r in rows]

@@ -7,7 +7,7 @@ from typing import Any
 from sqlalchemy import Engine, func, select
 
 from service.records import audit
-from service.records.engine import utcnow
+from service.records.engine import iso, utcnow
 from service.records.tables import datasets, policies
 
 
@@ -33,3 +33,13 @@ def put(engine: Engine, dataset_id: str, document: dict[str, Any], actor: str) -
         team = conn.execute(select(datasets.c.team).where(datasets.c.id == dataset_id)).scalar_one()
         audit.record(conn, actor, team, "policy.set", dataset_id, {"version": version, "policy": document})
     return version
+
+
+def history(engine: Engine, dataset_id: str) -> list[dict[str, Any]]:
+    """Return every stored policy version of a dataset, newest first, with who set it and when."""
+    with engine.connect() as conn:
+        rows = conn.execute(
+            select(policies).where(policies.c.dataset_id == dataset_id).order_by(policies.c.version.desc())
+        ).mappings().all()
+    return [{"version": int(r["version"]), "document": dict(r["document"]), "set_by": r["set_by"],
+             "set_at": iso(r["set_at"])} for r in rows]

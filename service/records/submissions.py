@@ -214,3 +214,13 @@ def count_by_state(engine: Engine) -> dict[str, int]:
             select(submissions.c.state, func.count()).group_by(submissions.c.state)
         ).all()
     return {state: int(n) for state, n in rows}
+
+
+def last_activity(engine: Engine, team: str) -> dict[str, datetime]:
+    """Return, per dataset of a team, when one of its submissions last changed."""
+    with engine.connect() as conn:
+        rows = conn.execute(
+            select(submissions.c.dataset_id, func.max(submissions.c.updated_at))
+            .where(submissions.c.team == team).group_by(submissions.c.dataset_id)
+        ).all()
+    return {str(ds): at for ds, at in rows if at is not None}

@@ -102,13 +102,17 @@ def _legend(items: Sequence[tuple[str, str, str]], x: float, y: float) -> Markup
 
 
 def fold_chart(cells: Sequence[str], series: Sequence[Series], metric: str, greater_is_better: bool,
-               width: int = 880, height: int = 320) -> Markup:
-    """Fold-by-fold scores of each series on a shared value axis, the candidate's mean dashed."""
+               width: int = 880, height: int = 320, axis_label: str | None = None, zero_line: bool = False) -> Markup:
+    """Each series' score per fold on a shared value axis, the first series' mean dashed; points stand alone.
+
+    The series of one fold sit side by side within its column, so equal scores never hide each other;
+    ``zero_line`` keeps 0 in range and draws it (for differences).
+    """
     values = [v for s in series for v in s.values if v is not None]
     if not cells or not values:
         return element("p", {"class": "note"}, "No fold scores to chart.")
     left, right, top, bottom = 72, 16, 28, 58
-    lo, hi = padded_range(values)
+    lo, hi = padded_range([*values, 0.0] if zero_line else values)
     y = Scale(lo, hi, height - bottom, top)
     band = (width - left - right) / len(cells)
     parts: list[Markup] = []
@@ -120,27 +124,26 @@ def fold_chart(cells: Sequence[str], series: Sequence[Series], metric: str, grea
     for i, cell in enumerate(cells):
         if i % label_every == 0:
             parts.append(_text(left + (i + 0.5) * band, height - bottom + 18, cell, "middle", fill=MUTED))
-    for s in series:
-        points = [(left + (i + 0.5) * band, y(v)) for i, v in enumerate(s.values) if v is not None]
-        if len(points) > 1:
-            path = " ".join(f"{px:.1f},{py:.1f}" for px, py in points)
-            parts.append(element("polyline", {"points": path, "fill": "none", "stroke": s.color,
-                                              "stroke-width": 1, "stroke-opacity": 0.5}))
+    if zero_line:
+        parts.append(element("line", {"x1": left, "x2": width - right, "y1": y(0.0), "y2": y(0.0), "stroke": INK}))
+    # Folds have no order, so their points are never joined by lines.
+    step = min(12.0, band / (len(series) + 1))
     candidate = [v for v in series[0].values if v is not None]
     if candidate:
         mean = sum(candidate) / len(candidate)
         parts.append(element("line", {"x1": left, "x2": width - right, "y1": y(mean), "y2": y(mean),
                                       "stroke": series[0].color, "stroke-dasharray": "6 4"},
                              element("title", None, f"{series[0].name} mean {figure(mean)}")))
-    for s in series:
+    for k, s in enumerate(series):
+        dodge = (k - (len(series) - 1) / 2) * step
         for i, v in enumerate(s.values):
             if v is not None:
-                parts.append(marker(s.marker, left + (i + 0.5) * band, y(v), s.color,
+                parts.append(marker(s.marker, left + (i + 0.5) * band + dodge, y(v), s.color,
                                     f"{s.name}, fold {cells[i]}: {metric} {figure(v)}"))
     direction = "higher is better" if greater_is_better else "lower is better"
     parts.append(element("text", {"x": 14, "y": (top + height - bottom) / 2, "text-anchor": "middle", **FONT,
                                   "transform": f"rotate(-90 14 {(top + height - bottom) / 2:.1f})"},
-                         f"{metric} ({direction})"))
+                         axis_label or f"{metric} ({direction})"))
     parts.append(_legend([(s.name, s.color, s.marker) for s in series], left, height - 12))
     return _svg(width, height, f"{metric} per fold", parts)
 

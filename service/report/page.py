@@ -27,6 +27,7 @@ from service.report.charts import (
 from service.report.facts import ReportFacts
 from service.report.fitting import diagnosis_section
 from service.report.markup import Markup, element
+from service.report.verdict_view import verdict_section
 
 TESTS = {
     "corrected_resampled_t": "corrected resampled t-test (Nadeau & Bengio 2003; repeated form Bouckaert & "
@@ -63,18 +64,22 @@ th { background: #f4f4f1; font-weight: 600; } td.num { text-align: right; font-v
 dl { display: grid; grid-template-columns: 230px 1fr; gap: 4px 12px; font-size: 0.9rem; }
 dt { color: #555; } dd { margin: 0; overflow-wrap: anywhere; } code, pre { font-size: 0.85rem; }
 pre { background: #f4f4f1; padding: 8px; overflow-x: auto; }
+nav.desk { font-size: 0.9rem; color: #555; margin: 0 0 12px; } nav.desk form.inline { display: inline; }
+.scroll { overflow-x: auto; }
+@media (max-width: 600px) { main { padding: 12px; } dl { grid-template-columns: 1fr; } }
 """)
 
 
-def render_report(facts: ReportFacts, base_url: str = "") -> str:
-    """Return the whole HTML document of a submission's report."""
+def render_report(facts: ReportFacts, base_url: str = "", nav: Markup | None = None) -> str:
+    """Return the whole HTML document of a submission's report; ``nav`` (the desk's links) goes on top."""
     row = facts.submission
     title = row["label"] or row["id"]
     body = element(
         "main", None,
+        nav,
         element("h1", None, f"Review of {title}"),
         element("p", {"class": "meta"}, _meta_line(facts)),
-        _verdict_section(facts),
+        verdict_section(facts),
         _fold_section(facts),
         _interval_section(facts),
         diagnosis_section(facts),
@@ -99,31 +104,6 @@ def _meta_line(facts: ReportFacts) -> list[object]:
 def _when(value: datetime | None) -> str:
     stamped = as_utc(value)
     return "-" if stamped is None else stamped.strftime("%Y-%m-%d %H:%M UTC")
-
-
-def _verdict_section(facts: ReportFacts) -> Markup:
-    verdict, row = facts.verdict, facts.submission
-    if verdict is None:
-        if row["state"] == "failed":
-            text = f"No verdict: the submission failed. {row['error'] or ''}".strip()
-        elif row["state"] == "canceled":
-            text = "No verdict: the submission was canceled."
-        else:
-            text = f"No verdict yet: the submission is {row['state']}."
-        return element("section", {"class": "verdict none"}, element("div", {"class": "decision"}, "no verdict"),
-                       element("p", None, text))
-    decision = str(verdict.get("decision", ""))
-    rules = verdict.get("rules") or []
-    table = element("table", None,
-                    element("tr", None, element("th", None, "rule"), element("th", None, "outcome"),
-                            element("th", None, "why")),
-                    [element("tr", None, element("td", None, r.get("rule")),
-                             element("td", {"class": f"outcome {r.get('outcome', '')}"}, r.get("outcome")),
-                             element("td", None, r.get("sentence"))) for r in rules])
-    return Markup(element("section", {"class": f"verdict {decision}"},
-                          element("div", {"class": "decision"}, decision),
-                          element("ul", None, [element("li", None, reason) for reason in verdict.get("reasons", [])]))
-                  + (table if rules else ""))
 
 
 def _cell_label(repeat: int, fold: int, repeats: int) -> str:
@@ -175,7 +155,7 @@ def _fold_section(facts: ReportFacts) -> Markup:
                    fold_chart(labels, series, metric, facts.greater_is_better),
                    element("p", {"class": "note"}, notes),
                    element("details", None, element("summary", None, "the numbers"),
-                           element("table", None, header, table_rows)))
+                           element("div", {"class": "scroll"}, element("table", None, header, table_rows))))
 
 
 def _interval_section(facts: ReportFacts) -> Markup:
@@ -227,7 +207,7 @@ def _metrics_table(facts: ReportFacts) -> Markup:
         rows.append(element("tr", None, element("td", None, metric), _num(item.get("mean")), _num(item.get("std")),
                             element("td", {"class": "num"}, shown), _num((baseline.get(metric) or {}).get("mean")),
                             _holdout_cell(facts.holdout, metric, released.get(metric))))
-    return element("table", None, header, rows)
+    return element("div", {"class": "scroll"}, element("table", None, header, rows))
 
 
 def _holdout_cell(holdout: dict[str, Any], metric: str, value: float | None) -> Markup:
@@ -272,7 +252,7 @@ def _coefficient_section(facts: ReportFacts) -> Markup:
                    coefficient_chart(ranges[:60]),
                    element("p", {"class": "note"}, f"Showing {min(60, len(ranges))} of {len(ranges)} terms in the "
                            "chart; the table lists all.") if len(ranges) > 60 else None,
-                   element("table", None, header, rows, intercepts))
+                   element("div", {"class": "scroll"}, element("table", None, header, rows, intercepts)))
 
 
 def _stable(value: bool | None) -> str:
