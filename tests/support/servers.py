@@ -13,6 +13,7 @@ import time
 import uuid
 from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import pytest
 
@@ -163,3 +164,13 @@ class ServedApp:
         self._stop.set()
         self.thread.join(timeout=10)
         self.server.close()
+
+
+def register_worker(redis: Any, queue_name: str, name: str = "test-worker") -> Any:
+    """Register an RQ worker in ``redis`` as a started ``sealfold worker`` does (its birth, with a TTL), so
+    ``/readyz`` sees a live worker without one running; return it (``register_death()`` removes it)."""
+    from rq.worker import Worker
+
+    worker = Worker([queue_name], connection=redis, name=name)
+    worker.register_birth()
+    return worker

@@ -12,6 +12,7 @@ import pandas as pd
 import pytest
 from sqlalchemy import func, select
 
+from service.ops.data_identity import MARKER_NAME
 from service.records import datasets
 from service.records.tables import datasets as datasets_table
 from service.vault import registration
@@ -30,7 +31,9 @@ def _nothing_written(api: Api) -> None:
     with api.engine.connect() as conn:
         assert conn.execute(select(func.count()).select_from(datasets_table)).scalar_one() == 0
     data_dir = Path(api.settings.data_dir)
-    leftovers = [p for p in data_dir.rglob("*") if p.is_file() and not p.name.startswith("records.sqlite3")]
+    # The records DB and the deployment's identity marker exist from the app's start, before any request.
+    leftovers = [p for p in data_dir.rglob("*") if p.is_file() and not p.name.startswith("records.sqlite3")
+                 and p.name != MARKER_NAME]
     assert leftovers == []
 
 

@@ -8,9 +8,9 @@ from typing import TYPE_CHECKING, Any
 
 from prometheus_client.parser import text_string_to_metric_families
 from redis import Redis
-from rq.worker import Worker
 
 from service.ops.data_identity import marker_path
+from tests.support.servers import register_worker
 
 if TYPE_CHECKING:
     from tests.support.api import Api
@@ -22,12 +22,9 @@ def test_healthz_needs_no_key_and_no_backend(api: Api) -> None:
     assert reply.status_code == 200 and reply.get_json() == {"status": "ok"}
 
 
-def _register_worker(api: Api) -> Worker:
-    """Register an RQ worker in the app's Redis, as a started ``sealfold worker`` does (its birth and TTL)."""
+def _register_worker(api: Api) -> Any:
     ctx = api.app.extensions["sealfold"]
-    worker = Worker([ctx.settings.queue_name], connection=ctx.redis, name="test-worker")
-    worker.register_birth()
-    return worker
+    return register_worker(ctx.redis, ctx.settings.queue_name)
 
 
 def test_readyz_checks_database_redis_workers_data_and_disk(api: Api) -> None:

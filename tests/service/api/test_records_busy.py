@@ -18,7 +18,7 @@ from service.app import create_app
 from service.records.keys import create_key
 from service.settings import Settings
 from tests.support.records import upgraded_engine
-from tests.support.servers import postgres_database
+from tests.support.servers import postgres_database, register_worker
 
 if TYPE_CHECKING:
     from tests.support.api import Api
@@ -36,6 +36,7 @@ def pg_app(tmp_path: Path) -> Iterator[tuple[Flask, str, str]]:
         app = create_app(overrides)
         ctx = app.extensions["sealfold"]
         app.extensions["sealfold"] = dataclasses.replace(ctx, redis=fakeredis.FakeRedis())
+        register_worker(app.extensions["sealfold"].redis, ctx.settings.queue_name)  # /readyz needs a live one
         _info, token = create_key(ctx.engine, "fleet", "steward", "busy test")
         try:
             yield app, url.replace("postgresql+psycopg://", "postgresql://", 1), token
