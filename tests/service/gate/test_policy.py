@@ -41,7 +41,8 @@ def test_document_has_the_served_shape_and_round_trips() -> None:
     assert set(doc) == {"version", "primary_metric", "greater_is_better", "bar", "baseline_alpha",
                         "champion_margin", "champion_alpha", "holdout_gap", "max_fold_std", "release"}
     assert set(doc["holdout_gap"]) == {"k_std", "floor"}
-    assert set(doc["release"]) == {"mode", "digits", "budget", "window_hours", "ladder_step", "thresholdout"}
+    assert set(doc["release"]) == {"mode", "digits", "budget", "window_hours", "team_budget", "ladder_step",
+                                   "thresholdout"}
     assert set(doc["release"]["thresholdout"]) == {"threshold", "sigma", "budget"}
     assert doc["version"] == 0
     json.dumps(doc, allow_nan=False)

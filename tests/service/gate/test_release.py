@@ -44,7 +44,7 @@ def test_exact_rounds_every_metric_to_significant_digits() -> None:
     assert out.released == {"rmse": 12.3, "mae": 0.00988, "r2": 0.518}
     assert out.spent == 1 and out.withheld_until is None
     assert out.document() == {"released": True, "mode": "exact", "scores": out.released, "withheld_until": None,
-                              "note": "Exact holdout scores, rounded to 3 significant digits."}
+                              "note": "Exact holdout scores, rounded to 3 significant digits.", "outcome": "released"}
 
 
 def test_budget_status_in_a_rolling_window() -> None:
@@ -67,7 +67,7 @@ def test_beyond_the_budget_the_figure_is_withheld_and_nothing_changes() -> None:
     doc = out.document()
     assert doc["released"] is False and doc["scores"] is None
     assert doc["withheld_until"] == "2026-03-02T07:00:00+00:00"
-    assert "2 releases per 24 hours are spent" in (doc["note"] or "")
+    assert "this submitter's 2 holdout queries per 24 hours are spent" in (doc["note"] or "")
 
 
 def test_fixed_step_ladder_moves_only_beyond_the_step() -> None:
