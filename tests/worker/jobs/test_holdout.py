@@ -137,6 +137,8 @@ def test_a_broken_seal_fails_the_submission(ctx: WorkerContext) -> None:
     sub = submissions.get(ctx.engine, sub_id)
     assert sub is not None and sub["state"] == "failed" and "fingerprint" in sub["error"]
     assert submissions.get_holdout(ctx.engine, sub_id) is None
+    # Not the model's fault: the configuration gave up its key, so submitting it again runs it again.
+    assert sub["config_key"] == f"reopened:{sub_id}"
 
 
 def test_holdout_errors_do_not_quote_holdout_values(ctx: WorkerContext, redis_url: str) -> None:
