@@ -211,7 +211,8 @@ def _parse_release(p: _Reader, base: ReleaseParams, metric: str) -> ReleaseParam
         r.problem("thresholdout", f"release mode thresholdout needs thresholdout parameters (threshold, sigma, "
                                   f"budget) in {metric} units; got none")
     return replace(base, mode=mode, digits=_req(digits, base.digits), budget=_req(budget, base.budget),
-                   window_hours=_req(window, base.window_hours), team_budget=team_budget, ladder_step=step, thresholdout=thresholdout)
+                   window_hours=_req(window, base.window_hours), team_budget=team_budget, ladder_step=step,
+                   thresholdout=thresholdout)
 
 
 def _req(value: Any, fallback: Any) -> Any:

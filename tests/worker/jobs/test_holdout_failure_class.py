@@ -20,7 +20,6 @@ import pandas as pd
 import pytest
 from redis import Redis
 from sklearn.datasets import load_diabetes
-from sklearn.linear_model import Ridge
 from sklearn.preprocessing import OneHotEncoder, OrdinalEncoder
 
 from service.catalog import load_catalog
