@@ -92,17 +92,6 @@ class Release:
     new_best: bool = False  # ladder: keep this submission's per-example values as the new best's
     outcome: str = RELEASED  # RELEASED a figure, WITHHELD everything, or told that the attempt FAILED
 
-    @property
-    def own_figure(self) -> float | None:
-        """The released primary figure when it is this submission's own answer (exact, thresholdout), else None.
-
-        Rules that read the holdout (its consistency with CV) are judged on this, never on the raw
-        score: a function of what was released tells nothing more than the release did.
-        """
-        if self.outcome != RELEASED or not self.released or self.mode == "ladder":
-            return None
-        return next(iter(self.released.values()))
-
     def document(self) -> dict[str, Any]:
         """Return the holdout part of the submission document (``result.holdout``)."""
         return {"released": self.released is not None, "mode": self.mode, "scores": self.released,
