@@ -1,5 +1,8 @@
 """Key endpoints (admin): create a key and show its token once, revoke a key.
 
+A key may name whose it is (``identity``: a person or a CI identity); holdout budgets are counted per
+identity and per team, so minting keys creates no budget.
+
 An admin manages its own team's keys; a key of another team is a 404 like any unknown id. Keys
 for a new team are made with the command line, which has the records DB at hand.
 """
@@ -26,7 +29,7 @@ class KeyCollection(MethodView):
     @blp.requires("admin")
     @blp.arguments(KeyCreateSchema)
     @blp.response(201, KeyCreatedSchema, headers={"Location": {"schema": {"type": "string"}}})
-    @blp.problem(422, "Unknown role, or a bad team or name")
+    @blp.problem(422, "Unknown role, or a bad team, name or identity")
     def post(self, body: dict[str, Any]) -> Response:
         """Create a key; the token is in this answer and nowhere else, ever."""
         caller, engine = current_key(), service_context().engine
@@ -34,9 +37,11 @@ class KeyCollection(MethodView):
         if team != caller.team:
             raise Forbidden(f"an admin key manages keys of its own team {caller.team!r}, not {team!r}; "
                             "create keys for another team with the command line")
-        info, token = keys.create_key(engine, team, body["role"], body["name"])
-        audit.record(engine, caller.id, team, "key.created", info.id, {"role": info.role, "name": info.name})
-        document = {"id": info.id, "team": info.team, "role": info.role, "name": info.name, "token": token}
+        info, token = keys.create_key(engine, team, body["role"], body["name"], body["identity"])
+        audit.record(engine, caller.id, team, "key.created", info.id,
+                     {"role": info.role, "name": info.name, "identity": info.identity or None})
+        document = {"id": info.id, "team": info.team, "role": info.role, "name": info.name,
+                    "identity": info.identity or None, "token": token}
         return json_response(document, 201, {"Location": f"/v1/keys/{info.id}", "Cache-Control": "no-store"})
 
 

@@ -31,8 +31,11 @@ class ThresholdoutSchema(Schema):
 class ReleaseSchema(Schema):
     mode = fields.String(metadata={"enum": list(RELEASE_MODES)})
     digits = fields.Integer(metadata={"description": "exact mode: digits the score is rounded to"})
-    budget = fields.Integer(metadata={"description": "holdout releases per submitter per dataset per window"})
+    budget = fields.Integer(metadata={"description": "holdout queries per submitter (a person or CI identity, "
+                                                    "whatever its keys) per dataset per window"})
     window_hours = fields.Float()
+    team_budget = fields.Integer(allow_none=True, metadata={
+        "minimum": 1, "description": "holdout queries per team per dataset per window; null: three times budget"})
     ladder_step = fields.Float(allow_none=True, metadata={"description": "null: the parameter-free ladder"})
     thresholdout = fields.Nested(ThresholdoutSchema, allow_none=True, metadata={
         "description": "null: none (the default for metrics in the target's units, which have no default)"})

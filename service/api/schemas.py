@@ -77,10 +77,17 @@ class CatalogSchema(Schema):
     caps_note = fields.Dict(keys=fields.String(), values=fields.String())
 
 
+_IDENTITY = ("whose key it is: a person or a CI identity of the team (e.g. an address or a CI job's name). "
+             "Holdout budgets are counted per identity and per team, so a second key for an identity adds no "
+             "budget. Letters, digits and . _ @ + : -, at most 100, not starting with 'key_'.")
+
+
 class KeyCreateSchema(Schema):
     team = fields.String(load_default=None, metadata={"description": "default: the caller's team"})
     role = fields.String(required=True, validate=validate.OneOf(ROLES))
     name = fields.String(load_default="", validate=validate.Length(max=200))
+    identity = fields.String(load_default=None, validate=validate.Length(min=1, max=100), metadata={
+        "description": _IDENTITY + " Default: none, and the key is an identity of its own."})
 
 
 class KeySchema(Schema):
@@ -88,6 +95,8 @@ class KeySchema(Schema):
     team = fields.String()
     role = fields.String(validate=validate.OneOf(ROLES))
     name = fields.String()
+    identity = fields.String(allow_none=True, metadata={
+        "description": "the identity whose holdout budget the key spends (null: the key is its own)"})
 
 
 class KeyCreatedSchema(KeySchema):

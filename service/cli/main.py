@@ -90,6 +90,8 @@ def build_parser() -> argparse.ArgumentParser:
     create.add_argument("--team", required=True)
     create.add_argument("--role", required=True, choices=ROLES)
     create.add_argument("--name", default="", help="a label for the key")
+    create.add_argument("--identity", default=None,
+                        help="whose key it is (a person or CI identity); its keys share one holdout budget")
     add_client_commands(commands)
     return parser
 
@@ -228,7 +230,7 @@ def cmd_keys_create(args: argparse.Namespace) -> int:
         engine = make_engine(Settings.load())
         try:
             require_current(engine)
-            _info, token = create_key(engine, args.team, args.role, args.name)
+            _info, token = create_key(engine, args.team, args.role, args.name, args.identity)
         finally:
             engine.dispose()
     except SealfoldError as exc:

@@ -16,7 +16,8 @@ Defaults and where they come from:
   model in twenty on chance alone).
 - release: mode "ladder" with ladder_step null (the parameter-free ladder, Blum & Hardt 2015), chosen
   by the measurement in tests/service/gate/test_release_adaptive.py; 3 significant digits; 10 releases per
-  submitter per 24 hours (*common practice*).
+  submitter (a person or CI identity, not a key) per 24 hours (*common practice*); a team at most
+  ``team_budget`` per window, by default three submitters' worth (a judgement).
 - thresholdout: threshold 0.04 and sigma 0.01 for unit-free metrics (the values of Dwork et al. 2015's
   illustration, *from memory*), budget 100 (*common practice*); null for metrics in the target's
   units: a steward must give them before choosing the thresholdout mode.
@@ -35,6 +36,7 @@ from service.vocabulary import RELEASE_MODES
 
 UNIT_METRICS = frozenset({"rmse", "mae", "mse"})  # in the target's units (mse: squared)
 MAX_DIGITS, MAX_BUDGET, MAX_WINDOW_HOURS = 12, 10_000, 24.0 * 366
+TEAM_BUDGET_MULTIPLE = 3  # a team's default budget: three submitters' worth (*common practice*, a judgement)
 
 
 @dataclass(frozen=True)
@@ -60,10 +62,16 @@ class ReleaseParams:
 
     mode: str = "ladder"
     digits: int = 3  # significant digits of a released figure
-    budget: int = 10  # releases per submitter per dataset per rolling window
+    budget: int = 10  # holdout queries per submitter (a person or CI identity) per dataset per window
     window_hours: float = 24.0
+    team_budget: int | None = None  # per team per dataset per window; None: TEAM_BUDGET_MULTIPLE * budget
     ladder_step: float | None = None  # None: the parameter-free ladder
     thresholdout: ThresholdoutParams | None = None
+
+    @property
+    def team_limit(self) -> int:
+        """The team's holdout queries per dataset per window: set, or a multiple of the submitter's."""
+        return self.team_budget if self.team_budget is not None else TEAM_BUDGET_MULTIPLE * self.budget
 
 
 @dataclass(frozen=True)
@@ -91,7 +99,7 @@ class Policy:
             "max_fold_std": self.max_fold_std,
             "release": {
                 "mode": r.mode, "digits": r.digits, "budget": r.budget, "window_hours": r.window_hours,
-                "ladder_step": r.ladder_step,
+                "team_budget": r.team_budget, "ladder_step": r.ladder_step,
                 "thresholdout": None if r.thresholdout is None else {
                     "threshold": r.thresholdout.threshold, "sigma": r.thresholdout.sigma,
                     "budget": r.thresholdout.budget},
@@ -158,7 +166,7 @@ def parse_policy(doc: Mapping[str, Any], task: str, allowed_metrics: Sequence[st
 
 _TOP_FIELDS = ("primary_metric", "greater_is_better", "bar", "baseline_alpha", "champion_margin",
                "champion_alpha", "holdout_gap", "max_fold_std", "release")
-_RELEASE_FIELDS = {"mode", "digits", "budget", "window_hours", "ladder_step", "thresholdout"}
+_RELEASE_FIELDS = {"mode", "digits", "budget", "window_hours", "team_budget", "ladder_step", "thresholdout"}
 
 
 def _defaults_for(metric: str) -> Policy:
@@ -181,6 +189,8 @@ def _parse_release(p: _Reader, base: ReleaseParams, metric: str) -> ReleaseParam
     digits = r.integer("digits", base.digits, 1, MAX_DIGITS)
     budget = r.integer("budget", base.budget, 1, MAX_BUDGET)
     window = r.number("window_hours", base.window_hours, positive=True, maximum=MAX_WINDOW_HOURS)
+    team_budget = None if "team_budget" in r.doc and r.doc["team_budget"] is None \
+        else r.integer("team_budget", base.team_budget, 1, MAX_BUDGET)
     step = r.number("ladder_step", base.ladder_step, nullable=True, positive=True)
     thresholdout = base.thresholdout
     if "thresholdout" in r.doc and r.doc["thresholdout"] is None:
@@ -201,7 +211,8 @@ def _parse_release(p: _Reader, base: ReleaseParams, metric: str) -> ReleaseParam
         r.problem("thresholdout", f"release mode thresholdout needs thresholdout parameters (threshold, sigma, "
                                   f"budget) in {metric} units; got none")
     return replace(base, mode=mode, digits=_req(digits, base.digits), budget=_req(budget, base.budget),
-                   window_hours=_req(window, base.window_hours), ladder_step=step, thresholdout=thresholdout)
+                   window_hours=_req(window, base.window_hours), team_budget=team_budget, ladder_step=step,
+                   thresholdout=thresholdout)
 
 
 def _req(value: Any, fallback: Any) -> Any:

@@ -17,8 +17,15 @@ often, it lets an adaptive submitter fit the holdout itself. Three mechanisms:
 
 Ladder and thresholdout release the primary metric only: any other exact figure would bypass them.
 Internally every metric is a loss (greater-is-better ones negated); figures are released in the
-metric's own orientation. On top, a per-submitter budget of releases per dataset per rolling window:
-beyond it the figure is withheld and the document says when budget returns.
+metric's own orientation. On top, a budget of holdout queries per dataset per rolling window, per
+submitter (a person or CI identity, whatever its keys) and per team: beyond either the figure is
+withheld and the document says when budget returns.
+
+A holdout attempt that failed (the refit, a transform or the scoring raised) is a query as well: whether
+a pipeline runs on the sealed rows depends on what they hold (a category or a missing value the
+development rows lack). It goes through the same budget and, under thresholdout, spends one of its
+answers; when allowed it is told in one fixed sentence (``FAILED_NOTE``), whatever failed and why,
+and when not it is withheld exactly as a figure would be.
 
 Pure: state in, state out. The state is a JSON-able dict per dataset (the verdict job stores it
 in holdout_releases.state); it holds the ladder's level and thresholdout's secret noise, so it must never
@@ -54,6 +61,7 @@ class HoldoutScores:
     fold_test_rows: float  # mean test rows per fold
     holdout_rows: int
     per_example: np.ndarray | None = None  # per holdout row; mean = primary metric (rmse: squared errors)
+    failed: bool = False  # the one attempt raised: no scores; the failure itself is the answer to release
 
 
 @dataclass(frozen=True)
@@ -62,6 +70,13 @@ class Budget:
 
     remaining: int
     returns_at: datetime | None
+
+
+# What a submitter is told of a failed holdout attempt: the same words whatever failed (refit, transform,
+# scoring) and whatever the exception said, which stays in the records for operators.
+FAILED_NOTE = ("The holdout step did not produce a figure: the model could not be refitted on the development "
+               "rows or could not score the sealed rows. The attempt counted as one holdout query.")
+RELEASED, WITHHELD, FAILED = "released", "withheld", "failed"
 
 
 @dataclass(frozen=True)
@@ -75,12 +90,13 @@ class Release:
     withheld_until: datetime | None = None
     note: str | None = None
     new_best: bool = False  # ladder: keep this submission's per-example values as the new best's
+    outcome: str = RELEASED  # RELEASED a figure, WITHHELD everything, or told that the attempt FAILED
 
     def document(self) -> dict[str, Any]:
         """Return the holdout part of the submission document (``result.holdout``)."""
         return {"released": self.released is not None, "mode": self.mode, "scores": self.released,
                 "withheld_until": None if self.withheld_until is None else self.withheld_until.isoformat(),
-                "note": self.note}
+                "note": self.note, "outcome": self.outcome}
 
 
 def budget_status(spent_at: Sequence[datetime], now: datetime, budget: int, window_hours: float) -> Budget:
@@ -96,18 +112,25 @@ def budget_status(spent_at: Sequence[datetime], now: datetime, budget: int, wind
 def release(
     policy: Policy, holdout: HoldoutScores, *, state: Mapping[str, Any] | None, spent_at: Sequence[datetime],
     now: datetime, rng: np.random.Generator, best_per_example: np.ndarray | None = None,
+    team_spent_at: Sequence[datetime] = (),
 ) -> Release:
-    """Release a submission's holdout figure under the policy, or withhold it; return the new state.
+    """Release a submission's holdout figure (or its failure) under the policy, or withhold it; return the new state.
 
-    ``spent_at``: when this submitter's earlier releases on this dataset spent budget (any age).
+    ``spent_at``: when this submitter's earlier holdout queries on this dataset spent budget (any age);
+    ``team_spent_at``: the same for the whole team (this submitter's included).
     """
     params = policy.release
     old = dict(state or {})
     budget = budget_status(spent_at, now, params.budget, params.window_hours)
-    if budget.remaining == 0:
-        return Release(params.mode, None, 0, old, budget.returns_at,
-                       f"Holdout figure withheld: {params.budget} releases per {params.window_hours:g} hours "
-                       f"are spent; the next returns at {budget.returns_at.isoformat() if budget.returns_at else ''}.")
+    team = budget_status(team_spent_at, now, params.team_limit, params.window_hours)
+    for left, limit, whose in ((budget, params.budget, "this submitter's"), (team, params.team_limit, "the team's")):
+        if left.remaining == 0:
+            at = left.returns_at.isoformat() if left.returns_at else ""
+            return Release(params.mode, None, 0, old, left.returns_at,
+                           f"Holdout figure withheld: {whose} {limit} holdout queries per {params.window_hours:g} "
+                           f"hours are spent; the next returns at {at}.", outcome=WITHHELD)
+    if holdout.failed:
+        return _failed(params, old)
     if params.mode == "exact":
         scores = {m: _round(v, params.digits) for m, v in holdout.scores.items()}
         return Release("exact", scores, 1, old, None,
@@ -117,6 +140,23 @@ def release(
     if params.mode == "thresholdout":
         return _thresholdout(policy, params, holdout, old, rng)
     raise ValueError(f"release mode must be exact, ladder or thresholdout, got {params.mode!r}")
+
+
+def _failed(params: ReleaseParams, old: dict[str, Any]) -> Release:
+    """Tell that the attempt failed, as one query; thresholdout also spends one of its answers, or withholds."""
+    if params.mode == "thresholdout" and params.thresholdout is not None:
+        th = dict(old.get("thresholdout") or {"spent": 0})
+        if int(th.get("spent", 0)) >= params.thresholdout.budget:
+            return _thresholdout_spent(params.thresholdout.budget, old)
+        th["spent"] = int(th.get("spent", 0)) + 1
+        return Release(params.mode, None, 1, {**old, "thresholdout": th}, None, FAILED_NOTE, outcome=FAILED)
+    return Release(params.mode, None, 1, old, None, FAILED_NOTE, outcome=FAILED)
+
+
+def _thresholdout_spent(budget: int, old: dict[str, Any]) -> Release:
+    return Release("thresholdout", None, 0, old, None,
+                   f"Holdout figure withheld: thresholdout's budget of {budget} holdout answers on this "
+                   "dataset is spent, so no further holdout figure can be released.", outcome=WITHHELD)
 
 
 def _ladder(policy: Policy, params: ReleaseParams, h: HoldoutScores, old: dict[str, Any],
@@ -167,9 +207,7 @@ def _thresholdout(policy: Policy, params: ReleaseParams, h: HoldoutScores, old: 
     th = dict(old.get("thresholdout") or {"spent": 0})
     spent = int(th.get("spent", 0))
     if spent >= t.budget:
-        return Release("thresholdout", None, 0, old, None,
-                       f"Holdout figure withheld: thresholdout's budget of {t.budget} holdout answers on this "
-                       "dataset is spent, so no further holdout figure can be released.")
+        return _thresholdout_spent(t.budget, old)
     gamma = float(th["threshold_noise"]) if "threshold_noise" in th else float(rng.laplace(0.0, 2 * t.sigma))
     eta = float(rng.laplace(0.0, 4 * t.sigma))
     raw = float(h.scores[metric])

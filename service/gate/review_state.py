@@ -11,6 +11,7 @@ from typing import Any
 from sqlalchemy import Engine
 
 from service.gate.policy import default_policy
+from service.gate.release import FAILED, FAILED_NOTE
 from service.records import champions, policies, submissions
 from service.records.engine import iso
 
@@ -53,8 +54,13 @@ def holdout_part(release: dict[str, Any] | None, state: str | None = None,
     released = release["released"]
     withheld_until = iso(release["withheld_until"])
     note = None
+    if release.get("outcome") == FAILED:
+        # Told only because the budget allowed it, in the same words whatever failed.
+        return {"released": False, "mode": release["mode"], "scores": None, "withheld_until": None,
+                "note": FAILED_NOTE, "policy_version": release.get("policy_version") or policy_version,
+                "ladder": None, "summary": "no holdout figure: " + FAILED_NOTE[0].lower() + FAILED_NOTE[1:]}
     if released is None:
-        note = ("withheld: the submitter's holdout releases on this dataset are used up for now"
+        note = ("withheld: the submitter's or the team's holdout queries on this dataset are used up for now"
                 + (f"; more are available from {withheld_until}" if withheld_until else ""))
     ladder = ladder_reading(release["mode"], released, (release["state"].get("ladder") or {}).get("best_submission"),
                             release["submission_id"])

@@ -9,7 +9,10 @@ Rules, each with figures and one plain sentence:
   only when both ran the same fold plan (scheme, folds, seed). Otherwise inconclusive, never a pass.
 - holdout_gap: |holdout - cv_mean| <= k_std * fold_std + floor (skipped without a holdout score).
   Its figures never contain the holdout score or the gap: what a submitter sees of the holdout is
-  decided by service.gate.release alone. (The outcome itself is one bit about the holdout.)
+  decided by service.gate.release alone. Its outcome is a bit about the holdout, so it is judged only
+  on the figure as released (a function of a counted release tells nothing more), and shown as
+  withheld (skipped, counting for nothing) whenever no own figure of the submission was released. A
+  holdout attempt that failed, when the release policy lets that be told, fails it in fixed words.
 - fold_stability: fold std <= max_fold_std (skipped when not set).
 
 The burden of proof is on the candidate: a test that does not reach its level fails the rule. A
@@ -65,12 +68,19 @@ class ChampionFolds:
 def judge(
     policy: Policy, candidate: Mapping[Cell, float], baseline: Mapping[Cell, float],
     champion: ChampionFolds | None, holdout: float | None, plan: PlanFacts, *, policy_version: int,
+    holdout_hidden: str | None = None, holdout_failed: bool = False,
 ) -> dict[str, Any]:
-    """Return the verdict document for a candidate's primary-metric fold scores."""
+    """Return the verdict document for a candidate's primary-metric fold scores.
+
+    ``holdout`` is the released figure (never a raw score the release withheld); ``holdout_hidden``
+    says why the holdout rule is withheld; ``holdout_failed``: the attempt failed and that is released.
+    """
     if plan.test not in (CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV):
         raise ValueError(f"test must be {CORRECTED_RESAMPLED_T} or {FIVE_BY_TWO_CV}, got {plan.test!r}")
     j = _Judge(policy, candidate, plan)
-    rules = [j.baseline(baseline), j.bar(), j.champion(champion), j.holdout_gap(holdout), j.fold_stability()]
+    gap = j.holdout_unavailable(holdout_hidden, holdout_failed) if holdout_hidden or holdout_failed \
+        else j.holdout_gap(holdout)
+    rules = [j.baseline(baseline), j.bar(), j.champion(champion), gap, j.fold_stability()]
     outcomes = {r["outcome"] for r in rules}
     decision = "fail" if "fail" in outcomes else "inconclusive" if "inconclusive" in outcomes else "pass"
     ordered = sorted(rules, key=lambda r: _ORDER[r["outcome"]])
@@ -236,6 +246,16 @@ class _Judge:
                          figures)
         return _rule("holdout_gap", "fail", f"The holdout score is not consistent with CV: it lies outside {band} "
                      "(a leak, a shift between partitions or an unstable model can cause this).", figures)
+
+    def holdout_unavailable(self, hidden: str | None, failed: bool) -> dict[str, Any]:
+        """The holdout rule when no own figure may be judged: withheld, or failed in fixed words."""
+        gap = self.policy.holdout_gap
+        figures: dict[str, Any] = {"k_std": gap.k_std, "floor": gap.floor}
+        if hidden is not None:
+            return _rule("holdout_gap", "skipped", f"Whether the holdout is consistent with CV is withheld: {hidden}.",
+                         {**figures, "withheld": True})
+        return _rule("holdout_gap", "fail", "The holdout step did not produce a figure, so the model's consistency "
+                     "with CV could not be checked; the attempt counted as one holdout query.", figures)
 
     def _gap_scale(self) -> float:
         """Scale the fold spread to the spread of (holdout score - CV mean).

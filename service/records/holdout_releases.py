@@ -9,7 +9,7 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import Engine, select
+from sqlalchemy import Engine, func, select
 from sqlalchemy.exc import IntegrityError
 
 from service.records import audit
@@ -27,7 +27,7 @@ def record(engine: Engine, row: dict[str, Any]) -> tuple[dict[str, Any], bool]:
                 select(submissions.c.team).where(submissions.c.id == values["submission_id"])).scalar_one()
             audit.record(conn, "system", team, "holdout.released", values["submission_id"],
                          {"mode": values["mode"], "released": values["released"] is not None,
-                          "spent": values["spent"]})
+                          "spent": values["spent"], "outcome": values.get("outcome")})
     except IntegrityError:
         existing = get(engine, values["submission_id"])
         if existing is None:
@@ -56,6 +56,20 @@ def list_since(
     with engine.connect() as conn:
         rows = conn.execute(query.order_by(holdout_releases.c.released_at)).mappings().all()
     return [dict(r) for r in rows]
+
+
+def spent_times(engine: Engine, dataset_id: str, identity: str | None = None) -> list[datetime]:
+    """Return when holdout queries on a dataset spent budget, oldest first: the team's, or one identity's.
+
+    A row from before identities were recorded counts for its owner key, each old key its own identity.
+    """
+    who = func.coalesce(holdout_releases.c.identity, holdout_releases.c.owner_key_id)
+    query = select(holdout_releases.c.released_at).where(
+        holdout_releases.c.dataset_id == dataset_id, holdout_releases.c.spent > 0)
+    if identity is not None:
+        query = query.where(who == identity)
+    with engine.connect() as conn:
+        return [r[0] for r in conn.execute(query.order_by(holdout_releases.c.released_at)).all()]
 
 
 def latest(engine: Engine, dataset_id: str) -> dict[str, Any] | None:

@@ -7,6 +7,8 @@ submission cannot move it backwards.
 
 from __future__ import annotations
 
+import hashlib
+import json
 from datetime import datetime
 from typing import Any
 
@@ -49,13 +51,29 @@ def find_by_idempotency_key(engine: Engine, owner_key_id: str, key: str) -> dict
     return None if row is None else dict(row)
 
 
-def find_by_config(engine: Engine, team: str, dataset_id: str, config_fingerprint: str) -> dict[str, Any] | None:
-    """Return the oldest live or finished submission of a team with this configuration, ignoring canceled ones."""
+def config_key(team: str, dataset_id: str, config_fingerprint: str, policy_version: int) -> str:
+    """Return the key that allows one submission per (team, dataset, configuration, policy version)."""
+    canonical = json.dumps([team, dataset_id, config_fingerprint, policy_version], separators=(",", ":"))
+    return hashlib.sha256(canonical.encode("utf-8")).hexdigest()
+
+
+def find_by_config(engine: Engine, team: str, dataset_id: str, config_fingerprint: str,
+                   key: str | None = None) -> dict[str, Any] | None:
+    """Return the submission holding this configuration key, or an older one of the same configuration.
+
+    Rows from before configuration keys (``config_key`` null) are matched by their fingerprint,
+    ignoring canceled ones, as they were then.
+    """
     with engine.connect() as conn:
+        if key is not None:
+            row = conn.execute(select(submissions).where(submissions.c.config_key == key)).mappings().first()
+            if row is not None:
+                return dict(row)
         row = conn.execute(
             select(submissions).where(
                 submissions.c.team == team, submissions.c.dataset_id == dataset_id,
                 submissions.c.config_fingerprint == config_fingerprint, submissions.c.state != "canceled",
+                submissions.c.config_key.is_(None),
             ).order_by(submissions.c.created_at).limit(1)
         ).mappings().first()
     return None if row is None else dict(row)
@@ -81,11 +99,19 @@ def list_for_team(
 
 
 def transition(
-    engine: Engine, sub_id: str, state: str, from_states: tuple[str, ...], error: str | None = None
+    engine: Engine, sub_id: str, state: str, from_states: tuple[str, ...], error: str | None = None,
+    *, reopen: bool = False,
 ) -> bool:
-    """Move a submission to ``state`` if it is in one of ``from_states``; return whether it moved."""
+    """Move a submission to ``state`` if it is in one of ``from_states``; return whether it moved.
+
+    ``reopen`` (and every cancel): give up the configuration key, so the same configuration may be
+    submitted again -- for a submission that ended through no fault of its own (the infrastructure
+    failed it) or was canceled before any verdict.
+    """
     now = utcnow()
     values: dict[str, Any] = {"state": state, "updated_at": now}
+    if reopen or state == "canceled":
+        values["config_key"] = f"reopened:{sub_id}"
     if state == "running":
         values["started_at"] = now
     if state in TERMINAL_STATES:

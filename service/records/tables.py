@@ -32,6 +32,10 @@ api_keys = Table(
     Column("token_hash", String(64), nullable=False, unique=True),
     Column("created_at", DateTime(timezone=True), nullable=False),
     Column("revoked_at", DateTime(timezone=True)),
+    # Whose key it is (a person or a CI identity, within the team): holdout budgets are counted per
+    # identity, so minting another key for it adds none. Null: the key is its own identity (its id).
+    Column("identity", String(100)),
+    Index("ix_api_keys_identity", "team", "identity"),
 )
 
 datasets = Table(
@@ -88,7 +92,12 @@ submissions = Table(
     Column("started_at", DateTime(timezone=True)),
     Column("finished_at", DateTime(timezone=True)),
     Column("updated_at", DateTime(timezone=True), nullable=False),
+    # sha256 of (team, dataset, configuration fingerprint, policy version): one submission per key under
+    # any concurrency. A canceled submission or one failed by the infrastructure gets "reopened:<id>",
+    # so the configuration may run again; null on rows from before the column.
+    Column("config_key", String(64)),
     UniqueConstraint("owner_key_id", "idempotency_key", name="uq_submission_idempotency"),
+    Index("uq_submissions_config_key", "config_key", unique=True),
     Index("ix_submissions_team_created", "team", "created_at"),
     Index("ix_submissions_state", "state"),
     Index("ix_submissions_config", "dataset_id", "config_fingerprint"),
@@ -177,7 +186,10 @@ holdout_releases = Table(
     Column("withheld_until", DateTime(timezone=True)),
     Column("released_at", DateTime(timezone=True), nullable=False),
     Column("policy_version", Integer),  # the policy released under; null on rows from before it was kept
+    Column("identity", String(100)),  # whose budget the query spent; null on older rows: owner_key_id's
+    Column("outcome", String(20)),  # released | withheld | failed; null on older rows (read from released)
     Index("ix_releases_owner", "dataset_id", "owner_key_id", "released_at"),
+    Index("ix_releases_identity", "dataset_id", "identity", "released_at"),
 )
 
 audit_events = Table(

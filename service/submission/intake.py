@@ -56,7 +56,10 @@ def submit(
 
     With an ``idempotency_key``, a replay of the same body returns the first submission; a
     different body under the same key is a 422. A configuration the team already submitted on the
-    same data (same configuration fingerprint) returns that submission instead of a new one.
+    same data under the same policy version (same configuration key) returns that submission instead
+    of a new one, however many identical requests arrive at once: the key is unique in the records,
+    so of racing inserts one wins and the others return its row. A submission that was canceled or
+    that the infrastructure failed gave its key up, so its configuration runs again.
     """
     fingerprint = request_fingerprint(request)
     if idempotency_key is not None:
@@ -67,12 +70,14 @@ def submit(
     dataset = find_dataset(engine, key, request.dataset)
     catalog = load_catalog()
     resolved = config.resolve(request, dataset, catalog)
-    primary = policy_in_force(engine, dataset)["primary_metric"]
+    in_force = policy_in_force(engine, dataset)
+    primary = in_force["primary_metric"]
     if primary not in resolved.metrics:
         # The verdict is decided on the policy's primary metric, so every submission computes it.
         resolved = replace(resolved, metrics=(*resolved.metrics, primary))
     config_fingerprint = config.config_fingerprint(resolved, dataset["fingerprint"])
-    same = submissions.find_by_config(engine, key.team, dataset["id"], config_fingerprint)
+    slot = submissions.config_key(key.team, dataset["id"], config_fingerprint, int(in_force["version"]))
+    same = submissions.find_by_config(engine, key.team, dataset["id"], config_fingerprint, slot)
     if same is not None:
         # The same model, validation and data were already judged: answer with that submission, so a
         # resubmission recomputes nothing and spends no holdout budget.
@@ -86,7 +91,7 @@ def submit(
     row = {
         "id": sub_id, "team": key.team, "dataset_id": dataset["id"], "owner_key_id": key.id,
         "label": request.label, "config": resolved.to_document(),
-        "config_fingerprint": config_fingerprint,
+        "config_fingerprint": config_fingerprint, "config_key": slot,
         "folds_total": len(dispatch.fold_cells(validation)),
         "idempotency_key": idempotency_key, "request_fingerprint": fingerprint,
         "warnings": fold_plan_warnings(settings, dataset, validation),
@@ -94,11 +99,15 @@ def submit(
     try:
         submissions.insert(engine, row)
     except IntegrityError:
-        # Two requests raced under one Idempotency-Key; the first one's row stands.
-        earlier = submissions.find_by_idempotency_key(engine, key.id, idempotency_key or "")
-        if earlier is None:
+        # Requests raced under one Idempotency-Key or with one configuration; the first one's row stands.
+        if idempotency_key is not None:
+            earlier = submissions.find_by_idempotency_key(engine, key.id, idempotency_key)
+            if earlier is not None:
+                return _replay(earlier, fingerprint), False
+        same = submissions.find_by_config(engine, key.team, dataset["id"], config_fingerprint, slot)
+        if same is None:
             raise
-        return _replay(earlier, fingerprint), False
+        return same, False
     dispatch.enqueue_submission(redis, settings, sub_id, validation)
     stored = submissions.get(engine, sub_id)
     assert stored is not None

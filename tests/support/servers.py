@@ -139,11 +139,11 @@ def stop_processes(procs: list[subprocess.Popen[bytes]]) -> None:
 class ServedApp:
     """The real WSGI app served by waitress on a free port in a background thread."""
 
-    def __init__(self, app: object) -> None:
+    def __init__(self, app: object, threads: int = 4) -> None:
         from waitress.server import create_server
 
         self.port = free_port()
-        self.server = create_server(app, host="127.0.0.1", port=self.port, threads=4)
+        self.server = create_server(app, host="127.0.0.1", port=self.port, threads=threads)
         self._stop = threading.Event()
         self.thread = threading.Thread(target=self._serve, daemon=True)
 

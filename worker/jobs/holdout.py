@@ -11,8 +11,12 @@ thought abandoned while the original still runs) one computes, the other waits f
 and takes over only when the holder's heartbeat has stopped; a holder that finds its claim taken over
 stops before opening the seal. Nothing here logs, returns or stores holdout rows, ids or
 predictions; errors raised while the holdout is in use are replaced by their class name, because
-an estimator's message can quote the values it choked on. A broken seal is the one outcome that
-fails the submission at once: it is an incident with the data, not a verdict on the model.
+an estimator's message can quote the values it choked on. A failed attempt -- refit, transform or
+scoring -- is stored for operators only (``holdout_scores.error``, in the records): whether a pipeline
+runs on the sealed rows depends on what they hold, so the verdict job releases that outcome like a
+score, as one counted query in fixed words, and the job's own answer says no more than "not scored".
+A broken seal is the one outcome that fails the submission at once: it is an incident with the data,
+not a verdict on the model, and the configuration may be submitted again.
 """
 
 from __future__ import annotations
@@ -90,7 +94,7 @@ def _score(
         raise
     except Exception as exc:  # development rows only: the estimator's message may be shown
         error = f"refitting on all development rows failed: {type(exc).__name__}: {exc}"
-        return _not_scored(ctx, submission_id, dataset, error, "refit failed")
+        return _not_scored(ctx, submission_id, dataset, error)
 
     if not holdout_claims.beat(engine, submission_id, token):
         # This job stalled past the stale limit and another took the claim over: that one scores.
@@ -98,7 +102,7 @@ def _score(
     try:
         holdout = store.open_sealed_holdout(ctx.settings, dataset["id"], dataset["holdout_fingerprint"])
     except SealBroken as exc:
-        submissions.transition(engine, submission_id, "failed", LIVE_STATES, error=exc.detail)
+        submissions.transition(engine, submission_id, "failed", LIVE_STATES, error=exc.detail, reopen=True)
         raise
     try:
         with warnings.catch_warnings():
@@ -114,7 +118,7 @@ def _score(
     except Exception as exc:
         error = (f"scoring on the holdout failed with {type(exc).__name__}; its message is withheld because "
                  "it may describe holdout rows (e.g. an unseen category: try handle_unknown='ignore')")
-        return _not_scored(ctx, submission_id, dataset, error, type(exc).__name__)
+        return _not_scored(ctx, submission_id, dataset, error)
     finally:
         del holdout
 
@@ -136,9 +140,10 @@ def _heartbeat(ctx: WorkerContext, submission_id: str, token: str) -> AbstractCo
                      f"holdout-claim-{submission_id}")
 
 
-def _not_scored(
-    ctx: WorkerContext, submission_id: str, dataset: dict[str, Any], error: str, reason: str
-) -> dict[str, Any]:
-    """Store a failed attempt as the submission's one holdout outcome; the verdict job reports it."""
+def _not_scored(ctx: WorkerContext, submission_id: str, dataset: dict[str, Any], error: str) -> dict[str, Any]:
+    """Store a failed attempt as the submission's one holdout outcome; the verdict job releases it as a query.
+
+    The answer (kept by RQ, where anyone with the queue may read it) names no stage and no error.
+    """
     submissions.store_holdout_once(ctx.engine, submission_id, {}, dataset["holdout_fingerprint"], None, error=error)
-    return {"submission_id": submission_id, "holdout": "not scored", "reason": reason}
+    return {"submission_id": submission_id, "holdout": "not scored"}

@@ -60,7 +60,10 @@ def summarize(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     ok = sum(1 for r in rows if r["status"] == "ok")
     if ok == 0:
         first = document["failures"][0]["error"] if document["failures"] else "no fold produced a result"
-        submissions.transition(ctx.engine, submission_id, "failed", LIVE_STATES, error=first)
+        # Every fold lost (none recorded a model error): the infrastructure failed it, not the model, so
+        # the configuration gives its key up and may be submitted again.
+        lost = not any(r["status"] != "ok" for r in rows)
+        submissions.transition(ctx.engine, submission_id, "failed", LIVE_STATES, error=first, reopen=lost)
     return {"submission_id": submission_id, "folds_ok": ok, "folds_failed": len(document["failures"])}
 
 

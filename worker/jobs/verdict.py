@@ -2,9 +2,11 @@
 
 The last job of the chain (folds -> summary, and the holdout beside them -> verdict). It reads only
 the records: fold rows, the stored summary and the raw holdout outcome the holdout job stored once.
-A holdout attempt that failed fails the submission here, after the summary, so the failed
-submission still carries its cross-validation result; so does a per-example loss file that cannot be
-read, with nothing released. The release is
+A holdout attempt that failed is released like a score: one counted query, told in fixed words when
+the budget allows (the holdout rule then fails) and withheld like a figure when it does not, so the
+submission's state and shape are the same whatever failed and why. A per-example loss file that
+cannot be read fails the submission, with nothing released (an infrastructure failure: the
+configuration may run again). The holdout rule reads only the release. The release is
 recorded once per submission (primary key) under a per-dataset lock, because the ladder and
 thresholdout carry state from one submission to the next. The submission becomes ``succeeded``
 only here, so a client that sees ``succeeded`` always finds its verdict.
@@ -13,7 +15,6 @@ only here, so a client that sees ``succeeded`` always finds its verdict.
 from __future__ import annotations
 
 from collections.abc import Mapping
-from datetime import datetime
 from typing import Any
 
 import numpy as np
@@ -21,9 +22,9 @@ from redis import Redis
 
 from service.gate import review_state
 from service.gate.policy import Policy, parse_policy
-from service.gate.release import HoldoutScores, release
+from service.gate.release import FAILED, RELEASED, WITHHELD, HoldoutScores, release
 from service.gate.verdict import CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV, ChampionFolds, PlanFacts, judge
-from service.records import champions, holdout_releases, submissions
+from service.records import champions, holdout_releases, keys, submissions
 from service.records.engine import as_utc, utcnow
 from service.submission.resolved import ValidationPlan
 from service.vocabulary import LIVE_STATES
@@ -31,7 +32,6 @@ from worker.jobs.losses import DamagedLosses, load_per_example
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 
 Cell = tuple[int, int]
-_EPOCH = datetime(1970, 1, 1)
 
 
 def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[str, Any]:
@@ -50,9 +50,6 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
     raw = submissions.get_holdout(engine, submission_id)
     if raw is None:
         raise RuntimeError(f"submission {submission_id} has no holdout score yet; it is judged after the holdout job")
-    if raw.get("error"):
-        submissions.transition(engine, submission_id, "failed", LIVE_STATES, error=str(raw["error"]))
-        return {"submission_id": submission_id, "decision": None, "holdout": "not scored"}
 
     stated = review_state.policy_in_force(engine, dataset)
     version = int(stated["version"])
@@ -64,12 +61,13 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
 
     try:
         with redis.lock(f"sealfold:release:{dataset['id']}", timeout=120, blocking_timeout=60):
-            if holdout_releases.get(engine, submission_id) is None:
-                _release(ctx, sub, dataset, policy, version, raw["scores"], candidate, folds)
+            told = holdout_releases.get(engine, submission_id)
+            if told is None:
+                told = _release(ctx, sub, dataset, policy, version, raw, candidate, folds)
     except DamagedLosses as exc:
         # A retry would find the same file: fail now, with nothing released, rather than stay running.
         error = f"{exc}; nothing about the holdout was released"
-        submissions.transition(engine, submission_id, "failed", LIVE_STATES, error=error)
+        submissions.transition(engine, submission_id, "failed", LIVE_STATES, error=error, reopen=True)
         return {"submission_id": submission_id, "decision": None, "holdout": "not released"}
 
     champion_id = champions.current(engine, dataset["id"])
@@ -82,11 +80,30 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
         test=FIVE_BY_TWO_CV if validation.test == "5x2cv" else CORRECTED_RESAMPLED_T,
         holdout_rows=int(dataset["rows_holdout"]),
     )
-    holdout_value = raw["scores"].get(metric)
-    verdict = judge(policy, candidate, baseline, champion, holdout_value, plan, policy_version=version)
+    figure, hidden, failed = holdout_reading(told, metric)
+    verdict = judge(policy, candidate, baseline, champion, figure, plan, policy_version=version,
+                    holdout_hidden=hidden, holdout_failed=failed)
     submissions.store_verdict(engine, submission_id, verdict, version, None if champion is None else champion_id)
     submissions.transition(engine, submission_id, "succeeded", LIVE_STATES)
     return {"submission_id": submission_id, "decision": verdict["decision"]}
+
+
+def holdout_reading(told: Mapping[str, Any], metric: str) -> tuple[float | None, str | None, bool]:
+    """Return what the holdout rule may read of a release row: (own released figure, why hidden, failed told).
+
+    Never the raw score: the rule's pass/fail is a bit about the holdout, so it is judged on the
+    figure as released when that is the submission's own answer, and withheld otherwise.
+    """
+    outcome = told.get("outcome") or (RELEASED if told["released"] is not None else WITHHELD)
+    if outcome == FAILED:
+        return None, None, True
+    if outcome == WITHHELD:
+        return None, "the holdout figure is withheld under the release policy, and so is anything judged on it", False
+    if told["mode"] == "ladder":
+        return None, ("the ladder releases the dataset's best figure so far, not this submission's own, and the "
+                      "rule would tell about that"), False
+    value = (told["released"] or {}).get(metric)
+    return (None if value is None else float(value)), None, False
 
 
 def _plan_key(validation: ValidationPlan) -> tuple[str, int, int]:
@@ -113,30 +130,38 @@ def _champion(ctx: WorkerContext, champion_id: str, metric: str) -> ChampionFold
 
 def _release(
     ctx: WorkerContext, sub: Mapping[str, Any], dataset: Mapping[str, Any], policy: Policy, version: int,
-    raw_scores: Mapping[str, float | None], candidate: Mapping[Cell, float], folds: list[dict[str, Any]],
-) -> None:
+    raw: Mapping[str, Any], candidate: Mapping[Cell, float], folds: list[dict[str, Any]],
+) -> dict[str, Any]:
+    """Release the stored outcome under the policy, counted against the submitter's and the team's budget."""
     engine = ctx.engine
     values = np.array(list(candidate.values()), dtype=float)
     last = holdout_releases.latest(engine, dataset["id"])
     state: dict[str, Any] = dict(last["state"]) if last else {}
-    mine = holdout_releases.list_since(engine, dataset["id"], _EPOCH, owner_key_id=sub["owner_key_id"])
-    spent_at = [as_utc(r["released_at"]) or utcnow() for r in mine if r["spent"] > 0]
+    owner = keys.get_key(engine, str(sub["owner_key_id"]))
+    identity = owner.budget_identity if owner is not None else str(sub["owner_key_id"])
+    spent_at = [as_utc(t) or utcnow() for t in holdout_releases.spent_times(engine, dataset["id"], identity)]
+    team_spent_at = [as_utc(t) or utcnow() for t in holdout_releases.spent_times(engine, dataset["id"])]
+    failed = bool(raw.get("error"))
     holdout = HoldoutScores(
         submission_id=sub["id"],
-        scores={m: float(v) for m, v in raw_scores.items() if v is not None},
+        scores={m: float(v) for m, v in (raw["scores"] or {}).items() if v is not None},
         cv_mean=float(values.mean()) if values.size else float("nan"),
         cv_std=float(values.std(ddof=1)) if values.size > 1 else 0.0,
         fold_test_rows=float(np.mean([r["test_rows"] for r in folds])) if folds else 0.0,
         holdout_rows=int(dataset["rows_holdout"]),
-        per_example=load_per_example(ctx.settings, dataset["id"], sub["id"], policy.primary_metric),
+        per_example=None if failed else load_per_example(ctx.settings, dataset["id"], sub["id"],
+                                                         policy.primary_metric),
+        failed=failed,
     )
     best_id = (state.get("ladder") or {}).get("best_submission")
     best = load_per_example(ctx.settings, dataset["id"], str(best_id), policy.primary_metric) if best_id else None
     # Fresh OS entropy for the noise of thresholdout: a seed anyone could know would undo the noise.
     outcome = release(policy, holdout, state=state, spent_at=spent_at, now=utcnow(),
-                      rng=np.random.default_rng(), best_per_example=best)
-    holdout_releases.record(engine, {
+                      rng=np.random.default_rng(), best_per_example=best, team_spent_at=team_spent_at)
+    row, _created = holdout_releases.record(engine, {
         "submission_id": sub["id"], "dataset_id": dataset["id"], "owner_key_id": sub["owner_key_id"],
-        "mode": outcome.mode, "released": outcome.released, "spent": outcome.spent, "state": outcome.state,
-        "withheld_until": outcome.withheld_until, "policy_version": version,
+        "identity": identity, "mode": outcome.mode, "released": outcome.released, "spent": outcome.spent,
+        "state": outcome.state, "withheld_until": outcome.withheld_until, "policy_version": version,
+        "outcome": outcome.outcome,
     })
+    return row

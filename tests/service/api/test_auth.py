@@ -79,3 +79,12 @@ def test_admin_cannot_touch_another_teams_keys(api: Api) -> None:
 def test_key_creation_validates_with_pointers(api: Api) -> None:
     problem = api.problem(api.post("admin", "/v1/keys", json={"role": "root", "extra": 1}), 422)
     assert sorted(api.pointers(problem)) == ["/extra", "/role"]
+
+
+def test_a_key_records_whose_it_is_and_a_bad_identity_is_named(api: Api) -> None:
+    made = api.post("admin", "/v1/keys", json={"role": "submitter", "identity": "ci-nightly"}).get_json()
+    again = api.post("admin", "/v1/keys", json={"role": "submitter", "identity": "ci-nightly"}).get_json()
+    assert made["identity"] == again["identity"] == "ci-nightly" and made["id"] != again["id"]
+    assert api.post("admin", "/v1/keys", json={"role": "submitter"}).get_json()["identity"] is None
+    problem = api.problem(api.post("admin", "/v1/keys", json={"role": "submitter", "identity": "key_x"}), 422)
+    assert api.pointers(problem) == ["/identity"] and "identity must be" in problem["detail"]

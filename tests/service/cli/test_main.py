@@ -122,6 +122,27 @@ def _key_count(data_dir: Path) -> int:
         return int(conn.execute("SELECT count(*) FROM api_keys").fetchone()[0])
 
 
+def test_keys_create_records_an_identity_and_names_a_bad_one(tmp_path: Path) -> None:
+    from service.records.engine import make_engine
+    from service.records.keys import authenticate
+    from service.settings import Settings
+
+    env = {k: v for k, v in os.environ.items() if k != "DATABASE_URL"}
+    env["SEALFOLD_DATA_DIR"] = str(tmp_path)
+    subprocess.run([*sealfold_argv(), "db", "upgrade"], capture_output=True, env=env, timeout=60, check=True)
+    base = [*sealfold_argv(), "keys", "create", "--team", "fleet", "--role", "submitter", "--identity"]
+    out = subprocess.run([*base, "ci-nightly"], capture_output=True, text=True, env=env, timeout=60)
+    assert out.returncode == 0, out.stderr
+    engine = make_engine(Settings.load({"data_dir": tmp_path, "database_url": ""}, environ={}))
+    try:
+        key = authenticate(engine, out.stdout.strip())
+        assert key is not None and key.budget_identity == "ci-nightly"
+    finally:
+        engine.dispose()
+    bad = subprocess.run([*base, "key_123"], capture_output=True, text=True, env=env, timeout=60)
+    assert bad.returncode == 2 and bad.stdout == "" and "identity must be" in bad.stderr
+
+
 def test_keys_create_refuses_blank_team(tmp_path: Path) -> None:
     env = {**os.environ, "SEALFOLD_DATA_DIR": str(tmp_path)}
     env.pop("DATABASE_URL", None)

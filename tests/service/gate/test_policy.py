@@ -41,7 +41,8 @@ def test_document_has_the_served_shape_and_round_trips() -> None:
     assert set(doc) == {"version", "primary_metric", "greater_is_better", "bar", "baseline_alpha",
                         "champion_margin", "champion_alpha", "holdout_gap", "max_fold_std", "release"}
     assert set(doc["holdout_gap"]) == {"k_std", "floor"}
-    assert set(doc["release"]) == {"mode", "digits", "budget", "window_hours", "ladder_step", "thresholdout"}
+    assert set(doc["release"]) == {"mode", "digits", "budget", "window_hours", "team_budget", "ladder_step",
+                                   "thresholdout"}
     assert set(doc["release"]["thresholdout"]) == {"threshold", "sigma", "budget"}
     assert doc["version"] == 0
     json.dumps(doc, allow_nan=False)
@@ -137,3 +138,14 @@ def test_non_object_sections_are_rejected() -> None:
 
 def test_version_in_the_document_is_ignored() -> None:
     assert parse_policy({"version": 7}, "regression") == default_policy("regression")
+
+
+def test_the_team_budget_defaults_to_three_submitters_and_is_checked() -> None:
+    default = default_policy("regression").release
+    assert default.team_budget is None and default.team_limit == 3 * default.budget  # a judgement, see policy.py
+    set_ = parse_policy({"release": {"budget": 4, "team_budget": 6}}, "regression").release
+    assert (set_.budget, set_.team_limit) == (4, 6)
+    assert parse_policy({"release": {"team_budget": None}}, "regression").release.team_budget is None
+    with pytest.raises(InputError) as exc:
+        parse_policy({"release": {"team_budget": 0}}, "regression")
+    assert [p.pointer for p in exc.value.problems] == ["/release/team_budget"]

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 from service.gate.policy import Policy, ReleaseParams, ThresholdoutParams, default_policy
-from service.gate.release import HoldoutScores, Release, budget_status, release
+from service.gate.release import FAILED_NOTE, HoldoutScores, Release, budget_status, release
 from service.gate.review_state import holdout_part
 
 NOW = datetime(2026, 3, 1, 12, 0, tzinfo=UTC)
@@ -44,7 +44,7 @@ def test_exact_rounds_every_metric_to_significant_digits() -> None:
     assert out.released == {"rmse": 12.3, "mae": 0.00988, "r2": 0.518}
     assert out.spent == 1 and out.withheld_until is None
     assert out.document() == {"released": True, "mode": "exact", "scores": out.released, "withheld_until": None,
-                              "note": "Exact holdout scores, rounded to 3 significant digits."}
+                              "note": "Exact holdout scores, rounded to 3 significant digits.", "outcome": "released"}
 
 
 def test_budget_status_in_a_rolling_window() -> None:
@@ -67,7 +67,7 @@ def test_beyond_the_budget_the_figure_is_withheld_and_nothing_changes() -> None:
     doc = out.document()
     assert doc["released"] is False and doc["scores"] is None
     assert doc["withheld_until"] == "2026-03-02T07:00:00+00:00"
-    assert "2 releases per 24 hours are spent" in (doc["note"] or "")
+    assert "this submitter's 2 holdout queries per 24 hours are spent" in (doc["note"] or "")
 
 
 def test_fixed_step_ladder_moves_only_beyond_the_step() -> None:
@@ -219,3 +219,36 @@ def test_the_holdout_part_says_whether_a_ladder_figure_is_this_submissions_and_n
     assert c["summary"].startswith("withheld:") and "10" not in c["summary"]
     exact = holdout_part(_row(_release(_policy(RMSE, mode="exact"), _scores(12.34567, sub="sub_d")), "sub_d"))
     assert exact["ladder"] is None and exact["summary"] == "this submission's holdout score: rmse 12.3 (exact, rounded)"
+
+
+def _failed(sub: str = "sub_f") -> HoldoutScores:
+    return HoldoutScores(sub, {}, 50.0, 0.5, 100, 400, None, failed=True)
+
+
+@pytest.mark.parametrize("mode", ["exact", "ladder", "thresholdout"])
+def test_a_failed_attempt_is_one_query_in_fixed_words_in_every_mode(mode: str) -> None:
+    policy = _policy(default_policy("classification"), mode=mode)
+    state = {"ladder": {"metric": "accuracy", "step": None, "released_loss": -0.9, "best_submission": "sub_0"},
+             "thresholdout": {"spent": 3, "threshold_noise": 0.001}}
+    out = _release(policy, _failed(), state)
+    assert (out.outcome, out.released, out.spent, out.note) == ("failed", None, 1, FAILED_NOTE)
+    assert out.state["ladder"] == state["ladder"]  # the ladder does not move
+    # Thresholdout counts it among its answers too (its noise is not redrawn: no figure was answered).
+    assert out.state["thresholdout"] == ({"spent": 4, "threshold_noise": 0.001} if mode == "thresholdout"
+                                         else state["thresholdout"])
+
+
+def test_beyond_either_budget_a_failure_is_withheld_as_a_figure_is() -> None:
+    policy = _policy(RMSE, mode="exact", budget=2, window_hours=24, team_budget=3)
+    mine = [NOW - timedelta(hours=1)]
+    team = [NOW - timedelta(hours=3), NOW - timedelta(hours=2), NOW - timedelta(hours=1)]
+    for scores in (_failed(), _scores(1.0)):
+        out = release(policy, scores, state={}, spent_at=mine, team_spent_at=team, now=NOW,
+                      rng=np.random.default_rng(0))
+        assert (out.outcome, out.released, out.spent) == ("withheld", None, 0)
+        assert "the team's 3 holdout queries per 24 hours are spent" in (out.note or "")
+        assert out.withheld_until == NOW + timedelta(hours=21)
+    spent_b = replace(policy.release.thresholdout or ThresholdoutParams(0.1, 0.01, 2), budget=2)
+    tpolicy = _policy(RMSE, mode="thresholdout", thresholdout=spent_b)
+    out = _release(tpolicy, _failed(), {"thresholdout": {"spent": 2}})
+    assert (out.outcome, out.spent) == ("withheld", 0) and "thresholdout's budget of 2" in (out.note or "")

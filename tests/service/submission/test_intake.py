@@ -18,6 +18,7 @@ from sklearn.svm import SVC
 from sqlalchemy import Engine, func, select
 
 from service.errors import ConfigRejected, Conflict, FieldProblem, Forbidden, InputError, NotFound
+from service.gate.policy import default_policy
 from service.records import policies, submissions
 from service.records.keys import KeyInfo, create_key
 from service.records.tables import audit_events
@@ -195,6 +196,37 @@ def test_the_same_configuration_again_returns_the_earlier_submission_unless_it_w
     intake.cancel(records, redis, settings, keys["owner"], first["id"])
     fresh, created = intake.submit(records, redis, settings, keys["colleague"], ridge(dataset))
     assert created is True and fresh["id"] != first["id"] and len(asked) == 2
+
+
+def test_a_configuration_the_infrastructure_failed_runs_again_and_one_that_failed_itself_does_not(
+    records: Engine, redis: Redis, settings: Settings, keys: dict[str, KeyInfo], dataset: dict[str, Any],
+    asked: list[dict[str, Any]],
+) -> None:
+    first, _ = intake.submit(records, redis, settings, keys["owner"], ridge(dataset))
+    # Its own fault (e.g. every fold raised): the same configuration answers with that failure.
+    submissions.transition(records, first["id"], "failed", LIVE_STATES, error="ValueError: the fit diverged")
+    same, created = intake.submit(records, redis, settings, keys["owner"], ridge(dataset))
+    assert created is False and same["id"] == first["id"] and same["state"] == "failed"
+    # Lost to the infrastructure (a broken seal, a damaged loss file, every fold lost): it runs again.
+    second, _ = intake.submit(records, redis, settings, keys["owner"], ridge(dataset, alpha=2.0))
+    submissions.transition(records, second["id"], "failed", LIVE_STATES, error="the seal is broken", reopen=True)
+    again, created = intake.submit(records, redis, settings, keys["owner"], ridge(dataset, alpha=2.0))
+    assert created is True and again["id"] != second["id"] and again["state"] == "queued"
+    # ... once: the new run holds the configuration now.
+    third, created = intake.submit(records, redis, settings, keys["colleague"], ridge(dataset, alpha=2.0))
+    assert created is False and third["id"] == again["id"]
+
+
+def test_a_new_policy_version_lets_the_same_configuration_be_judged_under_it(
+    records: Engine, redis: Redis, settings: Settings, keys: dict[str, KeyInfo], dataset: dict[str, Any],
+    asked: list[dict[str, Any]],
+) -> None:
+    first, _ = intake.submit(records, redis, settings, keys["owner"], ridge(dataset))
+    document = {**default_policy("regression").to_document(0), "champion_margin": 1.0}
+    policies.put(records, dataset["id"], {k: v for k, v in document.items() if k != "version"}, keys["steward"].id)
+    second, created = intake.submit(records, redis, settings, keys["owner"], ridge(dataset))
+    assert created is True and second["id"] != first["id"]
+    assert intake.submit(records, redis, settings, keys["owner"], ridge(dataset))[0]["id"] == second["id"]
 
 
 def test_a_configuration_the_checks_refuse_writes_and_enqueues_nothing(

@@ -15,6 +15,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pandas as pd
 import pytest
 from sklearn.datasets import load_diabetes
 from sqlalchemy import update
@@ -199,3 +200,24 @@ def test_the_loss_file_is_sealed_and_written_whole(ctx: WorkerContext) -> None:
     kept = losses.load_per_example(ctx.settings, dataset["id"], sub_id, "rmse")
     assert kept is not None and float(kept[0]) in (0.0, 1.0) and np.all(kept == kept[0])
     assert [p.name for p in folder.iterdir()] == [f"{sub_id}.npz"]
+
+
+def test_two_jobs_at_once_on_a_pipeline_that_fails_on_the_seal_store_one_failure(
+    any_ctx: WorkerContext, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # A failed attempt is a counted query as much as a score: it must be computed, and stored, once.
+    counted = Counted(monkeypatch, pause=0.3)
+    frame = load_diabetes(as_frame=True).frame
+    frame["depot"] = pd.Series(np.where(frame["sex"] > 0, "north", "south"), dtype="str")
+    dev, hold = frame.iloc[:400].copy(), frame.iloc[400:].copy()
+    hold.loc[hold.index[0], "depot"] = "depot-only-sealed"
+    dataset = add_dataset(any_ctx, dev, hold, "target", "regression", folds=3)
+    for attempt in range(3):
+        config = config_document(dataset, "Ridge", params={"alpha": 0.5 + attempt}, features=["depot", "age"],
+                                 preprocess=[{"transformer": "OneHotEncoder", "columns": ["depot"]}])
+        sub_id = add_submission(any_ctx, dataset, config)
+        answers = _at_once(any_ctx, sub_id)
+        assert sorted(a["holdout"] for a in answers) == ["already scored", "not scored"], answers
+        assert counted.refits == attempt + 1 and counted.writes == 0
+        stored = submissions.get_holdout(any_ctx.engine, sub_id)
+        assert stored is not None and stored["scores"] == {} and "ValueError" in stored["error"]

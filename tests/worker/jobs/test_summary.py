@@ -152,4 +152,17 @@ def test_all_folds_failed_fails_the_submission_with_the_estimators_message(ctx: 
     assert sub is not None and sub["state"] == "failed" and sub["finished_at"] is not None
     assert sub["error"].startswith("ValueError: solver='svd' does not support positive fitting")
     assert len(sub["cv_summary"]["failures"]) == 3
+    assert sub["config_key"] is None or not sub["config_key"].startswith("reopened:")  # its own fault: kept
     assert jobs.score_holdout(sub_id) == {"submission_id": sub_id, "skipped": "failed"}
+
+
+def test_every_fold_lost_is_the_infrastructures_failure_and_the_configuration_may_run_again(
+    ctx: WorkerContext,
+) -> None:
+    frame = load_diabetes(as_frame=True).frame
+    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression", folds=3)
+    sub_id = add_submission(ctx, dataset, config_document(dataset, "Ridge"))
+    assert jobs.summarize(sub_id)["folds_ok"] == 0  # no fold job ever recorded a result
+    sub = submissions.get(ctx.engine, sub_id)
+    assert sub is not None and sub["state"] == "failed" and "crashed or was lost" in sub["error"]
+    assert sub["config_key"] == f"reopened:{sub_id}"
