@@ -17,6 +17,11 @@ Defaults and where they come from:
 - release: mode "ladder" with ladder_step null (the parameter-free ladder, Blum & Hardt 2015), chosen
   by the measurement in tests/service/gate/test_release_adaptive.py; 3 significant digits; 10 releases per
   submitter per 24 hours (*common practice*).
+- champion_rule = "both": a candidate must be shown within the margin of the champion on the
+  shared folds (CV) and on the sealed rows (one more holdout query, service.gate.holdout_champion);
+  the folds are public, so after many tries the CV comparison alone is optimistic.
+- champion_online = "lord++": the holdout champion decisions of a dataset are one stream under LORD++
+  (service.gate.online), so many tries do not eventually pass a worse model by chance.
 - thresholdout: threshold 0.04 and sigma 0.01 for unit-free metrics (the values of Dwork et al. 2015's
   illustration, *from memory*), budget 100 (*common practice*); null for metrics in the target's
   units: a steward must give them before choosing the thresholdout mode.
@@ -31,8 +36,10 @@ from typing import Any
 
 from service.catalog.metrics import DEFAULT_METRICS, METRICS
 from service.errors import FieldProblem, InputError
+from service.gate.online import LORD_PLUS_PLUS, ONLINE_PROCEDURES
 from service.vocabulary import RELEASE_MODES
 
+CHAMPION_RULES = ("cv", "holdout", "both")  # which champion comparison decides
 UNIT_METRICS = frozenset({"rmse", "mae", "mse"})  # in the target's units (mse: squared)
 MAX_DIGITS, MAX_BUDGET, MAX_WINDOW_HOURS = 12, 10_000, 24.0 * 366
 
@@ -79,6 +86,8 @@ class Policy:
     holdout_gap: HoldoutGap = HoldoutGap()
     max_fold_std: float | None = None
     release: ReleaseParams = ReleaseParams()
+    champion_rule: str = "both"
+    champion_online: str = LORD_PLUS_PLUS
 
     def to_document(self, version: int) -> dict[str, Any]:
         """Return the policy document ``GET /v1/datasets/{id}/policy`` serves (``version`` 0 = the task default)."""
@@ -89,6 +98,7 @@ class Policy:
             "champion_alpha": self.champion_alpha,
             "holdout_gap": {"k_std": self.holdout_gap.k_std, "floor": self.holdout_gap.floor},
             "max_fold_std": self.max_fold_std,
+            "champion_rule": self.champion_rule, "champion_online": self.champion_online,
             "release": {
                 "mode": r.mode, "digits": r.digits, "budget": r.budget, "window_hours": r.window_hours,
                 "ladder_step": r.ladder_step,
@@ -149,15 +159,17 @@ def parse_policy(doc: Mapping[str, Any], task: str, allowed_metrics: Sequence[st
                          floor=_req(g.number("floor", gap.floor, minimum=0.0), gap.floor))
 
     release = _parse_release(p, base.release, metric)
+    champion_rule = p.choice("champion_rule", base.champion_rule, CHAMPION_RULES)
+    champion_online = p.choice("champion_online", base.champion_online, ONLINE_PROCEDURES)
     policy = Policy(metric, base.greater_is_better, bar, _req(baseline_alpha, 0.05), _req(margin, 0.0),
-                    _req(champion_alpha, 0.05), gap, max_fold_std, release)
+                    _req(champion_alpha, 0.05), gap, max_fold_std, release, champion_rule, champion_online)
     if problems:
         raise InputError("; ".join(pr.detail for pr in problems), problems)
     return policy
 
 
 _TOP_FIELDS = ("primary_metric", "greater_is_better", "bar", "baseline_alpha", "champion_margin",
-               "champion_alpha", "holdout_gap", "max_fold_std", "release")
+               "champion_alpha", "holdout_gap", "max_fold_std", "release", "champion_rule", "champion_online")
 _RELEASE_FIELDS = {"mode", "digits", "budget", "window_hours", "ladder_step", "thresholdout"}
 
 
@@ -267,6 +279,13 @@ class _Reader:
                                f"got {self.doc[name]!r}")
             return None
         return value
+
+    def choice(self, name: str, default: str, accepted: Sequence[str]) -> str:
+        value = self.doc.get(name, default)
+        if value not in accepted:
+            self.problem(name, f"{self._label(name)} must be one of {', '.join(accepted)}, got {value!r}")
+            return default
+        return str(value)
 
     def integer(self, name: str, default: int | None, low: int, high: int) -> int | None:
         if name not in self.doc:

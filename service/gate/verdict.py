@@ -7,6 +7,10 @@ Rules, each with figures and one plain sentence:
 - bar: the CV mean meets the policy's absolute bar (skipped when none is set).
 - champion: non-inferiority, the same test on d + margin over the (repeat, fold) cells both have;
   only when both ran the same fold plan (scheme, folds, seed). Otherwise inconclusive, never a pass.
+- champion_holdout: non-inferiority on the sealed rows, paired per row, at the level the dataset's
+  online procedure allows (service.gate.holdout_champion; the verdict job makes it). The policy's
+  champion_rule says which of the two champion rules decides (cv, holdout or both); the other is
+  shown with ``figures.decides`` false and does not enter the decision.
 - holdout_gap: |holdout - cv_mean| <= k_std * fold_std + floor (skipped without a holdout score).
   Its figures never contain the holdout score or the gap: what a submitter sees of the holdout is
   decided by service.gate.release alone. (The outcome itself is one bit about the holdout.)
@@ -26,6 +30,7 @@ from typing import Any
 
 import numpy as np
 
+from service.gate import holdout_champion as hc
 from service.gate.policy import Policy
 from service.gate.statistics import (
     CORRECTED_RESAMPLED_T,
@@ -65,18 +70,47 @@ class ChampionFolds:
 def judge(
     policy: Policy, candidate: Mapping[Cell, float], baseline: Mapping[Cell, float],
     champion: ChampionFolds | None, holdout: float | None, plan: PlanFacts, *, policy_version: int,
+    champion_holdout: Mapping[str, Any] | None = None,
 ) -> dict[str, Any]:
-    """Return the verdict document for a candidate's primary-metric fold scores."""
+    """Return the verdict document for a candidate's primary-metric fold scores.
+
+    ``champion_holdout`` is the rule entry of the champion decision on the sealed rows
+    (service.gate.holdout_champion), made by the verdict job; None when it was not made.
+    """
     if plan.test not in (CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV):
         raise ValueError(f"test must be {CORRECTED_RESAMPLED_T} or {FIVE_BY_TWO_CV}, got {plan.test!r}")
     j = _Judge(policy, candidate, plan)
-    rules = [j.baseline(baseline), j.bar(), j.champion(champion), j.holdout_gap(holdout), j.fold_stability()]
-    outcomes = {r["outcome"] for r in rules}
+    on_cv, on_holdout = _champion_rules(policy, champion, champion_holdout, j.champion(champion))
+    rules = [j.baseline(baseline), j.bar(), on_cv, on_holdout, j.holdout_gap(holdout), j.fold_stability()]
+    outcomes = {r["outcome"] for r in rules if r["figures"].get("decides", True)}
     decision = "fail" if "fail" in outcomes else "inconclusive" if "inconclusive" in outcomes else "pass"
     ordered = sorted(rules, key=lambda r: _ORDER[r["outcome"]])
     return {"decision": decision, "reasons": [r["sentence"] for r in ordered], "rules": rules,
             "primary_metric": policy.primary_metric, "test": plan.test, "policy_version": policy_version,
             "champion": None if champion is None else champion.submission_id}
+
+
+def _champion_rules(
+    policy: Policy, champion: ChampionFolds | None, on_holdout: Mapping[str, Any] | None, on_cv: dict[str, Any],
+) -> tuple[dict[str, Any], dict[str, Any]]:
+    """Mark which champion comparison decides (the policy's champion_rule); the other is shown only."""
+    by_cv, by_holdout = policy.champion_rule in ("cv", "both"), policy.champion_rule in ("holdout", "both")
+    if champion is None:
+        held = hc.not_decided(policy, None, "No champion is in force on this dataset.", decides=by_holdout,
+                              outcome="skipped")
+    elif on_holdout is None:
+        held = hc.not_decided(policy, champion.submission_id, f"Cannot compare with champion "
+                              f"{champion.submission_id} on the sealed rows: the comparison was not made.",
+                              decides=by_holdout)
+    else:
+        held = {**on_holdout, "figures": {**on_holdout["figures"]}}
+    entries = []
+    for entry, decides in ((on_cv, by_cv), (held, by_holdout)):
+        entry = {**entry, "figures": {**entry["figures"], "decides": decides}}
+        if not decides and entry["outcome"] != "skipped":
+            entry["sentence"] += f" (Shown only: the policy's champion_rule is {policy.champion_rule}.)"
+        entries.append(entry)
+    return entries[0], entries[1]
 
 
 def _rule(rule: str, outcome: str, sentence: str, figures: dict[str, Any]) -> dict[str, Any]:
