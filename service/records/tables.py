@@ -7,6 +7,7 @@ from __future__ import annotations
 
 from sqlalchemy import (
     JSON,
+    Boolean,
     Column,
     DateTime,
     Float,
@@ -178,6 +179,23 @@ holdout_releases = Table(
     Column("released_at", DateTime(timezone=True), nullable=False),
     Column("policy_version", Integer),  # the policy released under; null on rows from before it was kept
     Index("ix_releases_owner", "dataset_id", "owner_key_id", "released_at"),
+)
+
+champion_tests = Table(
+    "champion_tests",
+    metadata,
+    # The champion decision on the sealed rows, once per submission (primary key), and the dataset's
+    # stream of them for the online procedure: the rows with a ``seq`` are the tests, in order; a row
+    # without one records a decision not made (budget spent, nothing kept), which advances nothing.
+    Column("submission_id", ForeignKey("submissions.id"), primary_key=True),
+    Column("dataset_id", ForeignKey("datasets.id"), nullable=False),
+    Column("champion_id", ForeignKey("submissions.id"), nullable=False),
+    Column("seq", Integer),  # 1-based place in the dataset's stream; null when no test was made
+    Column("level", Float),  # the level the test ran at (what the online procedure allowed)
+    Column("passed", Boolean),  # whether non-inferiority was shown (H0 rejected)
+    Column("entry", JSON, nullable=False),  # the verdict's rule entry: outcome, level, sentence
+    Column("tested_at", DateTime(timezone=True), nullable=False),
+    UniqueConstraint("dataset_id", "seq", name="uq_champion_tests_seq"),
 )
 
 audit_events = Table(

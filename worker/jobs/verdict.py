@@ -21,12 +21,13 @@ from redis import Redis
 
 from service.gate import review_state
 from service.gate.policy import Policy, parse_policy
-from service.gate.release import HoldoutScores, release
+from service.gate.release import HoldoutScores, budget_status, release
 from service.gate.verdict import CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV, ChampionFolds, PlanFacts, judge
 from service.records import champions, holdout_releases, submissions
 from service.records.engine import as_utc, utcnow
 from service.submission.resolved import ValidationPlan
 from service.vocabulary import LIVE_STATES
+from worker.jobs import sealed_champion
 from worker.jobs.losses import DamagedLosses, load_per_example
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 
@@ -62,17 +63,17 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
     candidate = _cells(folds, "scores", metric)
     baseline = _cells(folds, "baseline_scores", metric)
 
+    champion_id = champions.current(engine, dataset["id"])
     try:
         with redis.lock(f"sealfold:release:{dataset['id']}", timeout=120, blocking_timeout=60):
             if holdout_releases.get(engine, submission_id) is None:
-                _release(ctx, sub, dataset, policy, version, raw["scores"], candidate, folds)
+                _release(ctx, sub, dataset, policy, version, raw["scores"], candidate, folds, champion_id)
     except DamagedLosses as exc:
         # A retry would find the same file: fail now, with nothing released, rather than stay running.
         error = f"{exc}; nothing about the holdout was released"
         submissions.transition(engine, submission_id, "failed", LIVE_STATES, error=error)
         return {"submission_id": submission_id, "decision": None, "holdout": "not released"}
 
-    champion_id = champions.current(engine, dataset["id"])
     champion = None if champion_id in (None, submission_id) else _champion(ctx, str(champion_id), metric)
     validation = ValidationPlan.from_document(sub["config"]["validation"])
     plan = PlanFacts(
@@ -83,7 +84,8 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
         holdout_rows=int(dataset["rows_holdout"]),
     )
     holdout_value = raw["scores"].get(metric)
-    verdict = judge(policy, candidate, baseline, champion, holdout_value, plan, policy_version=version)
+    verdict = judge(policy, candidate, baseline, champion, holdout_value, plan, policy_version=version,
+                    champion_holdout=sealed_champion.recorded_entry(ctx, submission_id))
     submissions.store_verdict(engine, submission_id, verdict, version, None if champion is None else champion_id)
     submissions.transition(engine, submission_id, "succeeded", LIVE_STATES)
     return {"submission_id": submission_id, "decision": verdict["decision"]}
@@ -114,13 +116,15 @@ def _champion(ctx: WorkerContext, champion_id: str, metric: str) -> ChampionFold
 def _release(
     ctx: WorkerContext, sub: Mapping[str, Any], dataset: Mapping[str, Any], policy: Policy, version: int,
     raw_scores: Mapping[str, float | None], candidate: Mapping[Cell, float], folds: list[dict[str, Any]],
+    champion_id: str | None,
 ) -> None:
     engine = ctx.engine
     values = np.array(list(candidate.values()), dtype=float)
     last = holdout_releases.latest(engine, dataset["id"])
     state: dict[str, Any] = dict(last["state"]) if last else {}
     mine = holdout_releases.list_since(engine, dataset["id"], _EPOCH, owner_key_id=sub["owner_key_id"])
-    spent_at = [as_utc(r["released_at"]) or utcnow() for r in mine if r["spent"] > 0]
+    # One entry per unit spent: a release that also answered the champion decision on the sealed rows spent two.
+    spent_at = [as_utc(r["released_at"]) or utcnow() for r in mine for _unit in range(int(r["spent"]))]
     holdout = HoldoutScores(
         submission_id=sub["id"],
         scores={m: float(v) for m, v in raw_scores.items() if v is not None},
@@ -133,10 +137,14 @@ def _release(
     best_id = (state.get("ladder") or {}).get("best_submission")
     best = load_per_example(ctx.settings, dataset["id"], str(best_id), policy.primary_metric) if best_id else None
     # Fresh OS entropy for the noise of thresholdout: a seed anyone could know would undo the noise.
-    outcome = release(policy, holdout, state=state, spent_at=spent_at, now=utcnow(),
+    now = utcnow()
+    outcome = release(policy, holdout, state=state, spent_at=spent_at, now=now,
                       rng=np.random.default_rng(), best_per_example=best)
+    left = budget_status(spent_at, now, policy.release.budget, policy.release.window_hours).remaining - outcome.spent
+    # The champion decision on the sealed rows is one more holdout query, paid from the same budget.
+    queried = sealed_champion.decide_once(ctx, sub, dataset, policy, champion_id, left)
     holdout_releases.record(engine, {
         "submission_id": sub["id"], "dataset_id": dataset["id"], "owner_key_id": sub["owner_key_id"],
-        "mode": outcome.mode, "released": outcome.released, "spent": outcome.spent, "state": outcome.state,
+        "mode": outcome.mode, "released": outcome.released, "spent": outcome.spent + queried, "state": outcome.state,
         "withheld_until": outcome.withheld_until, "policy_version": version,
     })

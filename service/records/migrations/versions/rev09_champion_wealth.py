@@ -1,0 +1,43 @@
+"""The champion decision on the sealed rows and each dataset's stream of them (``champion_tests``).
+
+Revision ID: 0009
+Revises: 0006
+
+One row per submission whose candidate was compared with the champion on the sealed rows: the
+level its test ran at (the online procedure's allowance, LORD++ by default), whether it passed,
+and its place in the dataset's stream; the online procedure's state per dataset is these rows.
+"""
+
+from __future__ import annotations
+
+import sqlalchemy as sa
+from alembic import op
+
+from service.records.migrations.steps import has_table
+
+revision = "0009"
+down_revision = "0006"
+branch_labels = None
+depends_on = None
+
+
+def upgrade() -> None:
+    """Create the champion tests table."""
+    if not has_table("champion_tests"):
+        op.create_table(
+            "champion_tests",
+            sa.Column("submission_id", sa.String(40), sa.ForeignKey("submissions.id"), primary_key=True),
+            sa.Column("dataset_id", sa.String(40), sa.ForeignKey("datasets.id"), nullable=False),
+            sa.Column("champion_id", sa.String(40), sa.ForeignKey("submissions.id"), nullable=False),
+            sa.Column("seq", sa.Integer),
+            sa.Column("level", sa.Float),
+            sa.Column("passed", sa.Boolean),
+            sa.Column("entry", sa.JSON, nullable=False),
+            sa.Column("tested_at", sa.DateTime(timezone=True), nullable=False),
+            sa.UniqueConstraint("dataset_id", "seq", name="uq_champion_tests_seq"),
+        )
+
+
+def downgrade() -> None:
+    """Drop the champion tests table."""
+    op.drop_table("champion_tests")
