@@ -53,6 +53,14 @@ class PolicyBodySchema(Schema):
         "description": "|holdout - CV mean| <= k_std * fold std + floor"})
     max_fold_std = fields.Float(allow_none=True, metadata={"description": "limit on the fold spread; null: none"})
     release = fields.Nested(ReleaseSchema)
+    champion_rule = fields.String(metadata={
+        "enum": ["cv", "holdout", "both"],
+        "description": "which champion comparison decides: on the shared folds (cv), on the sealed rows "
+                       "(holdout, one more holdout query paid from the release budget) or both"})
+    champion_online = fields.String(metadata={
+        "enum": ["lord++", "none"],
+        "description": "error control across the dataset's stream of champion decisions on the sealed rows: "
+                       "LORD++ levels, or every test at champion_alpha"})
 
 
 class PolicySchema(PolicyBodySchema):
