@@ -1,0 +1,120 @@
+"""The champion decision on the sealed rows by simulation: its size under the null and its power, with and without LORD++.
+
+A stream is one dataset: one champion, fixed sealed rows, and a sequence of candidates tested one
+after another with the service's own code (service.gate.holdout_champion.decide over a
+service.gate.online.Stream). Candidates are drawn afresh per submission from a generator whose
+difference from the champion on the sealed rows is known:
+
+- accuracy (a mean of per-row correctness, paired t): the champion is right on each sealed row with
+  probability 0.8; a candidate disagrees with it on a random share of rows, chosen so that its expected
+  accuracy on those rows is the champion's minus ``delta``.
+- rmse (delta method): the champion's errors are N(0, 1); a candidate's errors are the champion's plus
+  independent noise, scaled so that its expected rmse is the champion's plus ``delta``.
+
+Figures (each over ``--streams`` streams of ``--submissions`` candidates):
+- size: candidates worse by exactly the margin (the boundary of H0): the share of tests that pass, and
+  the share of streams in which any candidate passes (what "many tries eventually pass a worse model"
+  means), at a fixed level (procedure "none") and under LORD++;
+- power: candidates as good as the champion (delta 0), which are non-inferior: the share that pass,
+  at the first test of a stream and over the whole stream;
+- a mixed stream (1 candidate in 5 as good as the champion, the rest worse by the margin): the false
+  discovery proportion (passes of worse models among all passes) and the share of good ones passed.
+
+Simulation data, invented for this purpose; never a reference. Prints figures, asserts nothing.
+Run: ``python bench/champion_holdout.py`` (about a minute).
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import sys
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+
+from service.gate import holdout_champion as hc  # noqa: E402
+from service.gate.online import Stream  # noqa: E402
+from service.gate.policy import Policy, default_policy  # noqa: E402
+
+CHAMPION_ACCURACY, DISAGREE_WHEN_WRONG = 0.8, 0.25
+
+
+def accuracy_candidate(rng: np.random.Generator, champ: np.ndarray, delta: float) -> np.ndarray:
+    """Per-row correctness of a candidate whose expected accuracy on these rows is champion's minus delta."""
+    wrong = 1.0 - champ.mean()
+    fix = DISAGREE_WHEN_WRONG  # the candidate is right on this share of the champion's errors ...
+    spoil = (wrong * fix + delta) / (1.0 - wrong)  # ... and wrong on this share of its right answers
+    flip = np.where(champ == 1.0, rng.random(champ.size) < spoil, rng.random(champ.size) < fix)
+    return np.where(flip, 1.0 - champ, champ)
+
+
+def rmse_candidate(rng: np.random.Generator, champ_err: np.ndarray, delta: float) -> np.ndarray:
+    """Squared errors of a candidate whose expected rmse is the champion's plus delta (correlated errors)."""
+    rho = 0.8
+    base = rho * champ_err + math.sqrt(1.0 - rho**2) * rng.standard_normal(champ_err.size)
+    target = math.sqrt(float(np.mean(champ_err**2))) + delta
+    return np.square(base * target)
+
+
+def run_streams(policy: Policy, metric: str, n_rows: int, streams: int, submissions: int, good_share: float,
+                delta_bad: float, seed: int) -> dict[str, float]:
+    passes = np.zeros((streams, submissions), dtype=bool)
+    good = np.zeros((streams, submissions), dtype=bool)
+    for s in range(streams):
+        rng = np.random.default_rng([seed, s])
+        if metric == "accuracy":
+            champ = (rng.random(n_rows) < CHAMPION_ACCURACY).astype(float)
+        else:
+            champ_err = rng.standard_normal(n_rows)
+            champ = np.square(champ_err)
+        stream = Stream()
+        for i in range(submissions):
+            is_good = bool(rng.random() < good_share)
+            delta = 0.0 if is_good else delta_bad
+            cand = accuracy_candidate(rng, champ, delta) if metric == "accuracy" else rmse_candidate(rng, champ_err, delta)
+            d = hc.decide(policy, stream, hc.SealedRows(cand, n_rows), hc.SealedRows(champ, n_rows),
+                          candidate_id=f"c{s}-{i}", champion_id=f"h{s}")
+            stream = stream.after(d.passed)
+            passes[s, i], good[s, i] = d.passed, is_good
+    bad = ~good
+    false_passes = (passes & bad).sum(axis=1)
+    all_passes = passes.sum(axis=1)
+    fdp = np.where(all_passes > 0, false_passes / np.maximum(all_passes, 1), 0.0)
+    return {
+        "pass_rate_bad": float(passes[bad].mean()) if bad.any() else math.nan,
+        "any_bad_pass": float((false_passes > 0).mean()),
+        "pass_rate_good": float(passes[good].mean()) if good.any() else math.nan,
+        "first_test_pass_good": float(passes[:, 0][good[:, 0]].mean()) if good[:, 0].any() else math.nan,
+        "fdr": float(fdp.mean()),
+    }
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--streams", type=int, default=200)
+    parser.add_argument("--submissions", type=int, default=100)
+    parser.add_argument("--rows", type=int, default=2000, help="sealed rows")
+    parser.add_argument("--seed", type=int, default=20261203)
+    args = parser.parse_args()
+    cases = [("accuracy", 0.02, 0.02), ("rmse", 0.05, 0.05)]
+    print(f"{args.streams} streams x {args.submissions} candidates, {args.rows} sealed rows; alpha 0.05")
+    for metric, margin, worse in cases:
+        base = replace(default_policy("classification" if metric == "accuracy" else "regression", [metric]),
+                       champion_margin=margin)
+        print(f"\n{metric}: margin {margin}, 'worse' candidates are worse by the margin ({worse})")
+        print(f"{'procedure':<10} {'scenario':<28} {'pass|worse':>10} {'any worse passes':>17} "
+              f"{'pass|good':>10} {'1st test pass|good':>19} {'FDR':>6}")
+        for procedure in ("none", "lord++"):
+            policy = replace(base, champion_online=procedure)
+            for name, share in (("null: all worse by margin", 0.0), ("alt: all as good", 1.0), ("mixed: 1 in 5 good", 0.2)):
+                f = run_streams(policy, metric, args.rows, args.streams, args.submissions, share, worse, args.seed)
+                print(f"{procedure:<10} {name:<28} {f['pass_rate_bad']:>10.4f} {f['any_bad_pass']:>17.3f} "
+                      f"{f['pass_rate_good']:>10.3f} {f['first_test_pass_good']:>19.3f} {f['fdr']:>6.3f}")
+
+
+if __name__ == "__main__":
+    main()
