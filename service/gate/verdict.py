@@ -6,7 +6,9 @@ Rules, each with figures and one plain sentence:
   p when t > 0, one minus half of it otherwise).
 - bar: the CV mean meets the policy's absolute bar (skipped when none is set).
 - champion: non-inferiority, the same test on d + margin over the (repeat, fold) cells both have;
-  only when both ran the same fold plan (scheme, folds, seed). Otherwise inconclusive, never a pass.
+  only when both ran the same fold plan (scheme, folds, seed) -- the champion's configuration is
+  scored on the candidate's plan when they differ (``ChampionFolds.replayed``). Without such scores,
+  inconclusive, never a pass.
 - champion_holdout: non-inferiority on the sealed rows, paired per row, at the level the dataset's
   online procedure allows (service.gate.holdout_champion; the verdict job makes it). The policy's
   champion_rule says which of the two champion rules decides (cv, holdout or both); the other is
@@ -65,6 +67,7 @@ class ChampionFolds:
     submission_id: str
     scores: Mapping[Cell, float]
     plan_key: tuple[str, int, int]
+    replayed: bool = False  # its configuration scored on the candidate's plan, not its own folds
 
 
 def judge(
@@ -226,7 +229,7 @@ class _Judge:
                 f"champion: {_plan(champion.plan_key)}), so no paired test exists."),
                 {**base, "plan": list(self.plan.key), "champion_plan": list(champion.plan_key)})
         test, why, cells = self._paired(champion.scores, margin)
-        figures = {**base, **self._test_figures(test, alpha, cells)}
+        figures = {**base, **self._test_figures(test, alpha, cells), "champion_on_candidate_plan": champion.replayed}
         if test is None:
             return _rule("champion", "inconclusive", f"Cannot compare with champion {name}: {why}.", figures)
         figures["candidate_mean"] = float(np.mean([self.candidate[c] for c in cells]))
@@ -246,8 +249,9 @@ class _Judge:
                 "inconclusive": f"Cannot tell whether it is within the margin {margin:g} of champion {name}"}[outcome]
         return _rule("champion", outcome, (
             f"{head}: mean {self.metric} {_g(figures['candidate_mean'])} against {_g(figures['champion_mean'])} "
-            f"over {len(cells)} shared folds, {_diff(figures['mean_difference'])}; on the difference plus the "
-            f"margin, {self._test_text(test, alpha)}."), figures)
+            f"over {len(cells)} shared folds{_REPLAYED if champion.replayed else ''}, "
+            f"{_diff(figures['mean_difference'])}; on the difference plus the margin, "
+            f"{self._test_text(test, alpha)}."), figures)
 
     def holdout_gap(self, holdout: float | None) -> dict[str, Any]:
         gap = self.policy.holdout_gap
@@ -299,6 +303,9 @@ class _Judge:
         return _rule("fold_stability", "pass" if ok else "fail",
                      f"Folds are {'stable' if ok else 'unstable'}: fold std of {self.metric} {_g(std)} "
                      f"{'within' if ok else 'above'} the limit {limit:g}.", {"max_fold_std": limit, "fold_std": std})
+
+
+_REPLAYED = " (the champion's configuration scored on this submission's folds)"
 
 
 def _diff(d: float) -> str:

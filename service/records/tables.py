@@ -198,6 +198,24 @@ champion_tests = Table(
     UniqueConstraint("dataset_id", "seq", name="uq_champion_tests_seq"),
 )
 
+champion_folds = Table(
+    "champion_folds",
+    metadata,
+    # The champion's configuration scored on another fold plan (a candidate's 5x2cv or fold-count
+    # override), so the CV comparison with it is paired; cached per (champion, plan) for every later
+    # candidate on that plan. ``plan`` is "<scheme>-<folds>-<seed>".
+    Column("champion_id", ForeignKey("submissions.id"), primary_key=True),
+    Column("plan", String(80), primary_key=True),
+    Column("repeat", Integer, primary_key=True),
+    Column("fold", Integer, primary_key=True),
+    Column("status", String(20), nullable=False),  # ok | failed (the estimator's own error)
+    Column("scores", JSON),
+    Column("train_rows", Integer, nullable=False),
+    Column("test_rows", Integer, nullable=False),
+    Column("error", Text),
+    Column("finished_at", DateTime(timezone=True), nullable=False),
+)
+
 audit_events = Table(
     "audit_events",
     metadata,

@@ -99,7 +99,8 @@ def submit(
         if earlier is None:
             raise
         return _replay(earlier, fingerprint), False
-    dispatch.enqueue_submission(redis, settings, sub_id, validation)
+    dispatch.enqueue_submission(redis, settings, sub_id, validation,
+                                dispatch.champion_to_replay(engine, dataset["id"], validation))
     stored = submissions.get(engine, sub_id)
     assert stored is not None
     return stored, True

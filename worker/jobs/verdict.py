@@ -23,7 +23,7 @@ from service.gate import review_state
 from service.gate.policy import Policy, parse_policy
 from service.gate.release import HoldoutScores, budget_status, release
 from service.gate.verdict import CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV, ChampionFolds, PlanFacts, judge
-from service.records import champions, holdout_releases, submissions
+from service.records import champion_folds, champions, holdout_releases, submissions
 from service.records.engine import as_utc, utcnow
 from service.submission.resolved import ValidationPlan
 from service.vocabulary import LIVE_STATES
@@ -74,8 +74,8 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
         submissions.transition(engine, submission_id, "failed", LIVE_STATES, error=error)
         return {"submission_id": submission_id, "decision": None, "holdout": "not released"}
 
-    champion = None if champion_id in (None, submission_id) else _champion(ctx, str(champion_id), metric)
     validation = ValidationPlan.from_document(sub["config"]["validation"])
+    champion = None if champion_id in (None, submission_id) else _champion(ctx, str(champion_id), metric, validation)
     plan = PlanFacts(
         key=_plan_key(validation),
         sizes={(r["repeat"], r["fold"]): (r["train_rows"], r["test_rows"]) for r in folds},
@@ -102,15 +102,26 @@ def _cells(folds: list[dict[str, Any]], column: str, metric: str) -> dict[Cell, 
     return {(r, f): float(v) for r, f, v in values if v is not None}
 
 
-def _champion(ctx: WorkerContext, champion_id: str, metric: str) -> ChampionFolds | None:
+def _champion(ctx: WorkerContext, champion_id: str, metric: str, mine: ValidationPlan) -> ChampionFolds | None:
+    """Return the champion's fold scores: its own, or on the candidate's plan when that one differs.
+
+    The champion's configuration scored on the candidate's plan (``worker.jobs.champion_fold``,
+    cached per plan) keeps the comparison paired; without those scores the plans differ and the
+    champion rule says so.
+    """
     champ = submissions.get(ctx.engine, champion_id)
     if champ is None:
         return None
     validation = ValidationPlan.from_document(champ["config"]["validation"])
+    own, key = _plan_key(validation), _plan_key(mine)
+    if own != key:
+        replayed = [r for r in champion_folds.rows(ctx.engine, champion_id, champion_folds.plan_name(key))
+                    if r["status"] == "ok"]
+        if replayed:
+            return ChampionFolds(submission_id=champion_id, scores=_cells(replayed, "scores", metric), plan_key=key,
+                                 replayed=True)
     rows = [r for r in submissions.fold_rows(ctx.engine, champion_id) if r["status"] == "ok"]
-    return ChampionFolds(
-        submission_id=champion_id, scores=_cells(rows, "scores", metric), plan_key=_plan_key(validation),
-    )
+    return ChampionFolds(submission_id=champion_id, scores=_cells(rows, "scores", metric), plan_key=own)
 
 
 def _release(
