@@ -1,4 +1,4 @@
-"""The champion decision on the sealed rows by simulation: its size under the null and its power, with and without LORD++.
+"""The champion decision on the sealed rows by simulation: size under the null and power, with and without LORD++.
 
 A stream is one dataset: one champion, fixed sealed rows, and a sequence of candidates tested one
 after another with the service's own code (service.gate.holdout_champion.decide over a
@@ -36,9 +36,9 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from service.gate import holdout_champion as hc  # noqa: E402
-from service.gate.online import Stream  # noqa: E402
-from service.gate.policy import Policy, default_policy  # noqa: E402
+from service.gate import holdout_champion as hc
+from service.gate.online import Stream
+from service.gate.policy import Policy, default_policy
 
 CHAMPION_ACCURACY, DISAGREE_WHEN_WRONG = 0.8, 0.25
 
@@ -75,7 +75,8 @@ def run_streams(policy: Policy, metric: str, n_rows: int, streams: int, submissi
         for i in range(submissions):
             is_good = bool(rng.random() < good_share)
             delta = 0.0 if is_good else delta_bad
-            cand = accuracy_candidate(rng, champ, delta) if metric == "accuracy" else rmse_candidate(rng, champ_err, delta)
+            cand = (accuracy_candidate(rng, champ, delta) if metric == "accuracy"
+                    else rmse_candidate(rng, champ_err, delta))
             d = hc.decide(policy, stream, hc.SealedRows(cand, n_rows), hc.SealedRows(champ, n_rows),
                           candidate_id=f"c{s}-{i}", champion_id=f"h{s}")
             stream = stream.after(d.passed)
@@ -110,7 +111,8 @@ def main() -> None:
               f"{'pass|good':>10} {'1st test pass|good':>19} {'FDR':>6}")
         for procedure in ("none", "lord++"):
             policy = replace(base, champion_online=procedure)
-            for name, share in (("null: all worse by margin", 0.0), ("alt: all as good", 1.0), ("mixed: 1 in 5 good", 0.2)):
+            for name, share in (("null: all worse by margin", 0.0), ("alt: all as good", 1.0),
+                                ("mixed: 1 in 5 good", 0.2)):
                 f = run_streams(policy, metric, args.rows, args.streams, args.submissions, share, worse, args.seed)
                 print(f"{procedure:<10} {name:<28} {f['pass_rate_bad']:>10.4f} {f['any_bad_pass']:>17.3f} "
                       f"{f['pass_rate_good']:>10.3f} {f['first_test_pass_good']:>19.3f} {f['fdr']:>6.3f}")

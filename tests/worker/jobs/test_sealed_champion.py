@@ -19,14 +19,22 @@ from sklearn.linear_model import LinearRegression, Ridge
 
 from service.gate.online import gamma
 from service.records import champion_tests, champions, holdout_releases, policies, submissions
-from tests.worker.jobs.test_verdict import Judged, recorded, redis, rule, shuffled_diabetes  # noqa: F401
-from tests.worker.jobs.test_verdict import diabetes  # noqa: F401
+from tests.worker.jobs.test_verdict import (  # noqa: F401
+    Judged,
+    diabetes,
+    recorded,
+    redis,
+    rule,
+    shuffled_diabetes,
+)
 from worker.jobs import losses
 from worker.jobs.runtime import WorkerContext
 from worker.jobs.verdict import give_verdict
 
 
-def kept(ctx: WorkerContext, dataset: dict[str, Any], model: RegressorMixin, **kwargs: Any) -> tuple[Judged, np.ndarray]:
+def kept(
+    ctx: WorkerContext, dataset: dict[str, Any], model: RegressorMixin, **kwargs: Any,
+) -> tuple[Judged, np.ndarray]:
     """Record a submission and keep its per-row squared errors on the sealed rows, as the holdout job does."""
     judged = recorded(ctx, dataset, model, **kwargs)
     frame = shuffled_diabetes()
