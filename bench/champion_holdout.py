@@ -8,8 +8,13 @@ difference from the champion on the sealed rows is known:
 - accuracy (a mean of per-row correctness, paired t): the champion is right on each sealed row with
   probability 0.8; a candidate disagrees with it on a random share of rows, chosen so that its expected
   accuracy on those rows is the champion's minus ``delta``.
-- rmse (delta method): the champion's errors are N(0, 1); a candidate's errors are the champion's plus
-  independent noise, scaled so that its expected rmse is the champion's plus ``delta``.
+- rmse (delta method): the champion's errors are N(0, 1); a candidate's errors are correlated with the
+  champion's (0.8) and scaled so that, given the champion's errors, its expected mean squared error is
+  (champion's rmse + ``delta``)^2.
+
+Everything is conditional on the stream's sealed rows, as in the service (one seal per dataset): the
+paired t treats the rows' differences as one sample, so given rows whose differences come from two
+kinds of row (the champion right or wrong) it is somewhat conservative (size below alpha).
 
 Figures (each over ``--streams`` streams of ``--submissions`` candidates):
 - size: candidates worse by exactly the margin (the boundary of H0): the share of tests that pass, and
@@ -56,8 +61,11 @@ def rmse_candidate(rng: np.random.Generator, champ_err: np.ndarray, delta: float
     """Squared errors of a candidate whose expected rmse is the champion's plus delta (correlated errors)."""
     rho = 0.8
     base = rho * champ_err + math.sqrt(1.0 - rho**2) * rng.standard_normal(champ_err.size)
-    target = math.sqrt(float(np.mean(champ_err**2))) + delta
-    return np.square(base * target)
+    champ_ms = float(np.mean(champ_err**2))
+    target = math.sqrt(champ_ms) + delta
+    # Given the champion's errors, E[mean(base^2)] = rho^2 mean(e^2) + 1 - rho^2: scale that to target^2,
+    # so the candidate is worse by exactly delta on these rows (not by delta plus a per-stream bias).
+    return np.square(base) * target**2 / (rho**2 * champ_ms + 1.0 - rho**2)
 
 
 def run_streams(policy: Policy, metric: str, n_rows: int, streams: int, submissions: int, good_share: float,

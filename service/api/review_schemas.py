@@ -34,6 +34,10 @@ class ReleaseSchema(Schema):
     budget = fields.Integer(metadata={"description": "holdout releases per submitter per dataset per window"})
     window_hours = fields.Float()
     ladder_step = fields.Float(allow_none=True, metadata={"description": "null: the parameter-free ladder"})
+    ladder_threshold_se = fields.Float(metadata={
+        "exclusiveMinimum": True, "minimum": 0, "maximum": 10,
+        "description": "parameter-free ladder: the threshold in standard errors of the per-row differences "
+                       "from the best (default 2.5, measured in bench/ladder_adaptive.py)"})
     thresholdout = fields.Nested(ThresholdoutSchema, allow_none=True, metadata={
         "description": "null: none (the default for metrics in the target's units, which have no default)"})
 

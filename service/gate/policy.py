@@ -70,6 +70,7 @@ class ReleaseParams:
     budget: int = 10  # releases per submitter per dataset per rolling window
     window_hours: float = 24.0
     ladder_step: float | None = None  # None: the parameter-free ladder
+    ladder_threshold_se: float = 2.5  # parameter-free ladder: threshold in standard errors (bench/ladder_adaptive.py)
     thresholdout: ThresholdoutParams | None = None
 
 
@@ -101,7 +102,7 @@ class Policy:
             "champion_rule": self.champion_rule, "champion_online": self.champion_online,
             "release": {
                 "mode": r.mode, "digits": r.digits, "budget": r.budget, "window_hours": r.window_hours,
-                "ladder_step": r.ladder_step,
+                "ladder_step": r.ladder_step, "ladder_threshold_se": r.ladder_threshold_se,
                 "thresholdout": None if r.thresholdout is None else {
                     "threshold": r.thresholdout.threshold, "sigma": r.thresholdout.sigma,
                     "budget": r.thresholdout.budget},
@@ -170,7 +171,8 @@ def parse_policy(doc: Mapping[str, Any], task: str, allowed_metrics: Sequence[st
 
 _TOP_FIELDS = ("primary_metric", "greater_is_better", "bar", "baseline_alpha", "champion_margin",
                "champion_alpha", "holdout_gap", "max_fold_std", "release", "champion_rule", "champion_online")
-_RELEASE_FIELDS = {"mode", "digits", "budget", "window_hours", "ladder_step", "thresholdout"}
+_RELEASE_FIELDS = {"mode", "digits", "budget", "window_hours", "ladder_step", "ladder_threshold_se",
+                   "thresholdout"}
 
 
 def _defaults_for(metric: str) -> Policy:
@@ -194,6 +196,7 @@ def _parse_release(p: _Reader, base: ReleaseParams, metric: str) -> ReleaseParam
     budget = r.integer("budget", base.budget, 1, MAX_BUDGET)
     window = r.number("window_hours", base.window_hours, positive=True, maximum=MAX_WINDOW_HOURS)
     step = r.number("ladder_step", base.ladder_step, nullable=True, positive=True)
+    threshold_se = r.number("ladder_threshold_se", base.ladder_threshold_se, positive=True, maximum=10.0)
     thresholdout = base.thresholdout
     if "thresholdout" in r.doc and r.doc["thresholdout"] is None:
         thresholdout = None
@@ -213,7 +216,8 @@ def _parse_release(p: _Reader, base: ReleaseParams, metric: str) -> ReleaseParam
         r.problem("thresholdout", f"release mode thresholdout needs thresholdout parameters (threshold, sigma, "
                                   f"budget) in {metric} units; got none")
     return replace(base, mode=mode, digits=_req(digits, base.digits), budget=_req(budget, base.budget),
-                   window_hours=_req(window, base.window_hours), ladder_step=step, thresholdout=thresholdout)
+                   window_hours=_req(window, base.window_hours), ladder_step=step,
+                   ladder_threshold_se=_req(threshold_se, base.ladder_threshold_se), thresholdout=thresholdout)
 
 
 def _req(value: Any, fallback: Any) -> Any:

@@ -42,7 +42,8 @@ def test_document_has_the_served_shape_and_round_trips() -> None:
                         "champion_margin", "champion_alpha", "holdout_gap", "max_fold_std", "release",
                         "champion_rule", "champion_online"}
     assert set(doc["holdout_gap"]) == {"k_std", "floor"}
-    assert set(doc["release"]) == {"mode", "digits", "budget", "window_hours", "ladder_step", "thresholdout"}
+    assert set(doc["release"]) == {"mode", "digits", "budget", "window_hours", "ladder_step", "ladder_threshold_se",
+                                   "thresholdout"}
     assert set(doc["release"]["thresholdout"]) == {"threshold", "sigma", "budget"}
     assert doc["version"] == 0
     json.dumps(doc, allow_nan=False)
