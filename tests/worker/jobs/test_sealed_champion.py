@@ -15,10 +15,17 @@ import pytest
 from redis import Redis
 from scipy import stats as sps
 from sklearn.base import RegressorMixin
-from sklearn.linear_model import LinearRegression, Ridge
+from sklearn.datasets import load_breast_cancer
+from sklearn.linear_model import LinearRegression, LogisticRegression, Ridge
+from sklearn.metrics import roc_auc_score
+from sklearn.pipeline import make_pipeline
+from sklearn.preprocessing import StandardScaler
 
 from service.gate.online import gamma
+from service.gate.policy import parse_policy
 from service.records import champion_tests, champions, holdout_releases, policies, submissions
+from tests.support.folds import run_all_folds
+from tests.support.worker_records import add_dataset, add_submission, config_document
 from tests.worker.jobs.test_verdict import (  # noqa: F401
     Judged,
     diabetes,
@@ -27,8 +34,10 @@ from tests.worker.jobs.test_verdict import (  # noqa: F401
     rule,
     shuffled_diabetes,
 )
+from worker import jobs
 from worker.jobs import losses
 from worker.jobs.runtime import WorkerContext
+from worker.jobs.sealed_champion import _sealed
 from worker.jobs.verdict import give_verdict
 
 
@@ -99,3 +108,49 @@ def test_without_budget_no_decision_is_made_and_the_stream_does_not_advance(
     assert entry["figures"]["level"] is None
     assert holdout_releases.get(ctx.engine, judged.sub_id)["spent"] == 0  # type: ignore[index]
     assert champion_tests.stream(ctx.engine, diabetes["id"]).tests == 0
+
+
+def test_roc_auc_is_decided_by_a_paired_bootstrap_over_what_the_holdout_job_kept(
+    ctx: WorkerContext, redis: Redis  # noqa: F811
+) -> None:
+    # Breast cancer (Wolberg et al. 1995, bundled with scikit-learn), shuffled, labels as text so the kept
+    # arrays exercise the no-pickle path; reference: scikit-learn's roc_auc_score of the same refits.
+    frame = load_breast_cancer(as_frame=True).frame
+    frame = frame.iloc[np.random.default_rng(0).permutation(len(frame))].reset_index(drop=True)
+    frame.columns = [c.replace(" ", "_") for c in frame.columns]
+    frame["target"] = np.where(frame["target"] == 1, "benign", "malignant").astype(object)
+    features = [c for c in frame.columns if c != "target"][:6]
+    frame = frame[[*features, "target"]]
+    dev, hold = frame.iloc[:450], frame.iloc[450:]
+    dataset = add_dataset(ctx, dev, hold, "target", "classification", scheme="stratified", folds=3, seed=0)
+    policies.put(ctx.engine, dataset["id"], {"primary_metric": "roc_auc", "champion_online": "none"}, "key_steward")
+
+    def submit(c: float) -> str:
+        config = config_document(dataset, "LogisticRegression", params={"C": c, "max_iter": 2000}, features=features,
+                                 metrics=["roc_auc"], preprocess=[{"transformer": "StandardScaler",
+                                                                   "columns": features}])
+        sub_id = add_submission(ctx, dataset, config)
+        run_all_folds(sub_id, 3)
+        jobs.summarize(sub_id)
+        jobs.score_holdout(sub_id)
+        give_verdict(ctx, redis, sub_id)
+        return sub_id
+
+    champion = submit(1.0)
+    champions.promote(ctx.engine, dataset["id"], champion, "key_steward")
+    candidate = submit(0.01)
+    entry = rule(submissions.get(ctx.engine, candidate)["verdict"], "champion_holdout")  # type: ignore[index]
+    assert entry["figures"]["test"] == "paired_bootstrap" and entry["figures"]["level"] == 0.05
+    assert entry["outcome"] in ("pass", "fail")
+
+    stated = policies.current(ctx.engine, dataset["id"])
+    assert stated is not None
+    policy = parse_policy(stated[1], "classification")
+    scoring = _sealed(ctx, dataset, policy, candidate, champion)
+    assert scoring is not None and scoring[2] is not None
+    mine, theirs = scoring[2](np.arange(len(hold)))
+    X, y = dev[features].to_numpy(), dev["target"].to_numpy()
+    expected = [roc_auc_score(hold["target"] == "malignant",
+                              make_pipeline(StandardScaler(), LogisticRegression(C=c, max_iter=2000)).fit(X, y)
+                              .predict_proba(hold[features].to_numpy())[:, 1]) for c in (0.01, 1.0)]
+    assert (mine, theirs) == (pytest.approx(expected[0], rel=1e-9), pytest.approx(expected[1], rel=1e-9))
