@@ -34,8 +34,8 @@ from scipy import stats as sps
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from service.gate.policy import Policy, default_policy  # noqa: E402
-from service.gate.release import HoldoutScores, release  # noqa: E402
+from service.gate.policy import Policy, default_policy
+from service.gate.release import HoldoutScores, release
 
 NOW = datetime(2026, 1, 1, tzinfo=UTC)
 KEYS = 4

@@ -24,9 +24,11 @@ from tests.support.folds import diabetes_parts, run_all_folds
 from tests.support.worker_records import add_dataset, add_submission, config_document
 from tests.worker.jobs.test_verdict import redis, rule  # noqa: F401
 from worker import jobs
+from worker.jobs import ALLOWED_JOBS
 from worker.jobs.holdout import score_holdout
 from worker.jobs.runtime import WorkerContext
 from worker.jobs.verdict import give_verdict
+from worker.process import placement
 
 
 def _config(dataset: dict[str, Any], alpha: float, folds: int | None = None) -> dict[str, Any]:
@@ -105,3 +107,8 @@ def test_a_five_by_two_cv_candidate_gets_a_paired_champion_test(ctx: WorkerConte
     # Dietterich's 5x2cv t on all 10 cells, paired with the champion scored on the same splits.
     assert verdict["test"] == "five_by_two_cv" and on_cv["figures"]["test"] == "five_by_two_cv"
     assert on_cv["figures"]["cells"] == 10 and on_cv["figures"]["df"] == 5
+
+
+def test_the_champion_fold_job_is_allowed_and_runs_in_a_work_horse() -> None:
+    assert "worker.jobs.run_champion_fold" in ALLOWED_JOBS
+    assert not placement.runs_in_process("worker.jobs.run_champion_fold")  # it fits models: never in the worker
