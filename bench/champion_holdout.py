@@ -19,7 +19,8 @@ kinds of row (the champion right or wrong) it is somewhat conservative (size bel
 Figures (each over ``--streams`` streams of ``--submissions`` candidates):
 - size: candidates worse by exactly the margin (the boundary of H0): the share of tests that pass, and
   the share of streams in which any candidate passes (what "many tries eventually pass a worse model"
-  means), at a fixed level (procedure "none") and under LORD++;
+  means), at a fixed level (procedure "none") and under LORD++; and the same for equal models with a
+  margin of 0 (the boundary of H0 is then "as good as the champion");
 - power: candidates as good as the champion (delta 0), which are non-inferior: the share that pass,
   at the first test of a stream and over the whole stream;
 - a mixed stream (1 candidate in 5 as good as the champion, the rest worse by the margin): the false
@@ -109,9 +110,13 @@ def main() -> None:
     parser.add_argument("--rows", type=int, default=2000, help="sealed rows")
     parser.add_argument("--seed", type=int, default=20261203)
     args = parser.parse_args()
-    cases = [("accuracy", 0.02, 0.02), ("rmse", 0.05, 0.05)]
+    every = (("null: all worse by margin", 0.0), ("alt: all as good", 1.0), ("mixed: 1 in 5 good", 0.2))
+    # Margin 0 and equal models: the null's boundary is "as good as the champion" itself.
+    cases = [("accuracy", 0.02, 0.02, every), ("rmse", 0.05, 0.05, every),
+             ("accuracy", 0.0, 0.0, (("null: equal models, margin 0", 0.0),)),
+             ("rmse", 0.0, 0.0, (("null: equal models, margin 0", 0.0),))]
     print(f"{args.streams} streams x {args.submissions} candidates, {args.rows} sealed rows; alpha 0.05")
-    for metric, margin, worse in cases:
+    for metric, margin, worse, scenarios in cases:
         base = replace(default_policy("classification" if metric == "accuracy" else "regression", [metric]),
                        champion_margin=margin)
         print(f"\n{metric}: margin {margin}, 'worse' candidates are worse by the margin ({worse})")
@@ -119,8 +124,7 @@ def main() -> None:
               f"{'pass|good':>10} {'1st test pass|good':>19} {'FDR':>6}")
         for procedure in ("none", "lord++"):
             policy = replace(base, champion_online=procedure)
-            for name, share in (("null: all worse by margin", 0.0), ("alt: all as good", 1.0),
-                                ("mixed: 1 in 5 good", 0.2)):
+            for name, share in scenarios:
                 f = run_streams(policy, metric, args.rows, args.streams, args.submissions, share, worse, args.seed)
                 print(f"{procedure:<10} {name:<28} {f['pass_rate_bad']:>10.4f} {f['any_bad_pass']:>17.3f} "
                       f"{f['pass_rate_good']:>10.3f} {f['first_test_pass_good']:>19.3f} {f['fdr']:>6.3f}")
