@@ -101,6 +101,10 @@ def _champion_rules(
     if champion is None:
         held = hc.not_decided(policy, None, "No champion is in force on this dataset.", decides=by_holdout,
                               outcome="skipped")
+    elif on_holdout is None and not by_holdout:
+        held = hc.not_decided(policy, champion.submission_id, "Not compared with the champion on the sealed rows: "
+                              "the policy decides on the folds (champion_rule cv), so no holdout query was spent.",
+                              decides=False, outcome="skipped")
     elif on_holdout is None:
         held = hc.not_decided(policy, champion.submission_id, f"Cannot compare with champion "
                               f"{champion.submission_id} on the sealed rows: the comparison was not made.",

@@ -33,8 +33,8 @@ def decide_once(
 
     The caller holds the dataset's release lock, which orders the stream.
     """
-    if champion_id is None or champion_id == sub["id"]:
-        return 0
+    if champion_id is None or champion_id == sub["id"] or policy.champion_rule == "cv":
+        return 0  # nothing to compare, or the policy decides on the folds: no holdout query is spent
     engine = ctx.engine
     existing = champion_tests.get(engine, str(sub["id"]))
     if existing is not None:

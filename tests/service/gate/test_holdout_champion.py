@@ -190,3 +190,13 @@ def test_the_policy_says_which_champion_rule_decides() -> None:
     cv = next(r for r in v["rules"] if r["rule"] == "champion")
     assert not cv["figures"]["decides"]
     assert v["decision"] == "pass"
+
+
+def test_with_champion_rule_cv_no_holdout_comparison_is_made_or_shown_as_missing() -> None:
+    policy = replace(default_policy("classification"), champion_rule="cv")
+    scores = {(0, f): 0.9 + 0.01 * f for f in range(5)}
+    plan = PlanFacts(("kfold", 5, 1), {(0, f): (80, 20) for f in range(5)})
+    champ = ChampionFolds("sub_a", {c: v - 0.001 for c, v in scores.items()}, ("kfold", 5, 1))
+    v = judge(policy, scores, {c: 0.5 for c in scores}, champ, None, plan, policy_version=1)
+    held = next(r for r in v["rules"] if r["rule"] == "champion_holdout")
+    assert held["outcome"] == "skipped" and "no holdout query" in held["sentence"]

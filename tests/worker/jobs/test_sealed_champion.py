@@ -154,3 +154,18 @@ def test_roc_auc_is_decided_by_a_paired_bootstrap_over_what_the_holdout_job_kept
                               make_pipeline(StandardScaler(), LogisticRegression(C=c, max_iter=2000)).fit(X, y)
                               .predict_proba(hold[features].to_numpy())[:, 1]) for c in (0.01, 1.0)]
     assert (mine, theirs) == (pytest.approx(expected[0], rel=1e-9), pytest.approx(expected[1], rel=1e-9))
+
+
+def test_when_the_folds_decide_no_holdout_query_is_spent(
+    ctx: WorkerContext, redis: Redis, diabetes: dict[str, Any]  # noqa: F811
+) -> None:
+    policies.put(ctx.engine, diabetes["id"], {"champion_margin": 5.0, "champion_rule": "cv"}, "key_steward")
+    champion, _ = kept(ctx, diabetes, LinearRegression())
+    give_verdict(ctx, redis, champion.sub_id)
+    champions.promote(ctx.engine, diabetes["id"], champion.sub_id, "key_steward")
+    judged, _ = kept(ctx, diabetes, Ridge(alpha=0.1))
+    give_verdict(ctx, redis, judged.sub_id)
+    entry = rule(submissions.get(ctx.engine, judged.sub_id)["verdict"], "champion_holdout")  # type: ignore[index]
+    assert entry["outcome"] == "skipped" and entry["figures"]["decides"] is False
+    assert champion_tests.get(ctx.engine, judged.sub_id) is None
+    assert holdout_releases.get(ctx.engine, judged.sub_id)["spent"] == 1  # type: ignore[index]
