@@ -27,7 +27,8 @@ Figures (each over ``--streams`` streams of ``--submissions`` candidates):
   discovery proportion (passes of worse models among all passes) and the share of good ones passed.
 
 Simulation data, invented for this purpose; never a reference. Prints figures, asserts nothing.
-Run: ``python bench/champion_holdout.py`` (about a minute).
+With ``--bootstrap-tests N``, also the size of the paired bootstrap (roc_auc, equal models, margin
+0), every test on rows of its own. Run: ``python bench/champion_holdout.py`` (a few minutes).
 """
 
 from __future__ import annotations
@@ -39,6 +40,7 @@ from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
+from scipy import stats as sps
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
@@ -103,13 +105,53 @@ def run_streams(policy: Policy, metric: str, n_rows: int, streams: int, submissi
     }
 
 
+def _auc(y: np.ndarray, s: np.ndarray) -> float:
+    """roc_auc as the Mann-Whitney statistic: mean rank of the positives (ties get mean ranks, scipy's rankdata)."""
+    pos = y == 1
+    n_pos, n_neg = int(pos.sum()), int((~pos).sum())
+    if n_pos == 0 or n_neg == 0:
+        return math.nan
+    ranks = sps.rankdata(s)
+    return float((ranks[pos].sum() - n_pos * (n_pos + 1) / 2) / (n_pos * n_neg))
+
+
+def bootstrap_size(tests: int, n_rows: int, seed: int) -> float:
+    """Share of paired-bootstrap roc_auc tests of equal models (margin 0) that pass at alpha 0.05.
+
+    Unconditional: every test draws its own rows, so the two models' AUCs are equal in expectation.
+    """
+    policy = replace(default_policy("classification", ["roc_auc"]), champion_margin=0.0, champion_online="none")
+    passed = 0
+    for i in range(tests):
+        rng = np.random.default_rng([seed, 3, i])
+        y = (rng.random(n_rows) < 0.4).astype(int)
+        shared = rng.standard_normal(n_rows)
+        champ = y + 0.8 * shared + 0.6 * rng.standard_normal(n_rows)
+        cand = y + 0.8 * shared + 0.6 * rng.standard_normal(n_rows)
+
+        def score(rows: np.ndarray, cand: np.ndarray = cand, champ: np.ndarray = champ, y: np.ndarray = y
+                  ) -> tuple[float, float]:
+            return _auc(y[rows], cand[rows]), _auc(y[rows], champ[rows])
+
+        d = hc.decide(policy, Stream(), hc.SealedRows(None, n_rows), hc.SealedRows(None, n_rows),
+                      candidate_id=f"c{i}", champion_id="h", score_rows=score)
+        passed += d.passed
+    return passed / tests
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--streams", type=int, default=200)
     parser.add_argument("--submissions", type=int, default=100)
     parser.add_argument("--rows", type=int, default=2000, help="sealed rows")
     parser.add_argument("--seed", type=int, default=20261203)
+    parser.add_argument("--bootstrap-tests", type=int, default=0,
+                        help="also measure the paired bootstrap's size on roc_auc with this many tests (slow)")
     args = parser.parse_args()
+    if args.bootstrap_tests:
+        size = bootstrap_size(args.bootstrap_tests, 500, args.seed)
+        print(f"roc_auc, paired bootstrap ({hc.BOOTSTRAP_RESAMPLES} resamples), equal models, margin 0, 500 rows, "
+              f"alpha 0.05: {size:.3f} of {args.bootstrap_tests} tests pass")
     every = (("null: all worse by margin", 0.0), ("alt: all as good", 1.0), ("mixed: 1 in 5 good", 0.2))
     # Margin 0 and equal models: the null's boundary is "as good as the champion" itself.
     cases = [("accuracy", 0.02, 0.02, every), ("rmse", 0.05, 0.05, every),
