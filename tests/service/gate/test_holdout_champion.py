@@ -49,15 +49,15 @@ def test_gain_metrics_are_oriented_the_other_way() -> None:
 
 def test_rmse_delta_method_matches_its_formula_and_a_bootstrap() -> None:
     rng = np.random.default_rng(3)
-    y = rng.normal(0.0, 3.0, ROWS)
     champ_sq = (rng.normal(0.0, 1.0, ROWS)) ** 2
     cand_sq = (rng.normal(0.0, 1.05, ROWS)) ** 2
     got = ni.rmse_rows(cand_sq, champ_sq, 0.05)
     rc, rh = math.sqrt(cand_sq.mean()), math.sqrt(champ_sq.mean())
     assert got.estimate == pytest.approx(rh - rc)
-    # Delta method: the influence values' one-sample t against -margin is scipy's ttest_1samp.
+    # Delta method: t = (D + margin) / (sd(u) / sqrt(n)) with u the per-row influence values, i.e. scipy's
+    # ttest_1samp of u shifted so that its mean is D (it differs from D only at second order).
     u = champ_sq / (2 * rh) - cand_sq / (2 * rc)
-    ref = sps.ttest_1samp(u, -0.05 - (rh - rc) + u.mean(), alternative="greater")
+    ref = sps.ttest_1samp(u - u.mean() + (rh - rc), -0.05, alternative="greater")
     assert got.p_value == pytest.approx(ref.pvalue, rel=1e-9)
     # The delta-method standard error agrees with a paired bootstrap of the rmse difference (10 %).
     draws = []
@@ -65,7 +65,6 @@ def test_rmse_delta_method_matches_its_formula_and_a_bootstrap() -> None:
         i = rng.integers(0, ROWS, ROWS)
         draws.append(math.sqrt(champ_sq[i].mean()) - math.sqrt(cand_sq[i].mean()))
     assert got.standard_error == pytest.approx(float(np.std(draws, ddof=1)), rel=0.1)
-    del y
 
 
 def _auc(y: np.ndarray, s: np.ndarray) -> float:
