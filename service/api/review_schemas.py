@@ -37,6 +37,10 @@ class ReleaseSchema(Schema):
     team_budget = fields.Integer(allow_none=True, metadata={
         "minimum": 1, "description": "holdout queries per team per dataset per window; null: three times budget"})
     ladder_step = fields.Float(allow_none=True, metadata={"description": "null: the parameter-free ladder"})
+    ladder_threshold_se = fields.Float(metadata={
+        "exclusiveMinimum": True, "minimum": 0, "maximum": 10,
+        "description": "parameter-free ladder: the threshold in standard errors of the per-row differences "
+                       "from the best (default 2.5, measured in bench/ladder_adaptive.py)"})
     thresholdout = fields.Nested(ThresholdoutSchema, allow_none=True, metadata={
         "description": "null: none (the default for metrics in the target's units, which have no default)"})
 
@@ -56,6 +60,14 @@ class PolicyBodySchema(Schema):
         "description": "|holdout - CV mean| <= k_std * fold std + floor"})
     max_fold_std = fields.Float(allow_none=True, metadata={"description": "limit on the fold spread; null: none"})
     release = fields.Nested(ReleaseSchema)
+    champion_rule = fields.String(metadata={
+        "enum": ["cv", "holdout", "both"],
+        "description": "which champion comparison decides: on the shared folds (cv), on the sealed rows "
+                       "(holdout, one more holdout query paid from the release budget) or both"})
+    champion_online = fields.String(metadata={
+        "enum": ["lord++", "none"],
+        "description": "error control across the dataset's stream of champion decisions on the sealed rows: "
+                       "LORD++ levels, or every test at champion_alpha"})
 
 
 class PolicySchema(PolicyBodySchema):

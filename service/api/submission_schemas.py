@@ -248,7 +248,8 @@ class HoldoutResultSchema(Schema):
 
 
 class VerdictRuleSchema(Schema):
-    rule = fields.String(validate=validate.OneOf(("baseline", "bar", "champion", "holdout_gap", "fold_stability")))
+    rule = fields.String(validate=validate.OneOf(
+        ("baseline", "bar", "champion", "champion_holdout", "holdout_gap", "fold_stability")))
     outcome = fields.String(validate=validate.OneOf(RULE_OUTCOMES))
     sentence = fields.String()
     figures = fields.Dict()

@@ -18,6 +18,11 @@ Defaults and where they come from:
   by the measurement in tests/service/gate/test_release_adaptive.py; 3 significant digits; 10 releases per
   submitter (a person or CI identity, not a key) per 24 hours (*common practice*); a team at most
   ``team_budget`` per window, by default three submitters' worth (a judgement).
+- champion_rule = "both": a candidate must be shown within the margin of the champion on the
+  shared folds (CV) and on the sealed rows (one more holdout query, service.gate.holdout_champion);
+  the folds are public, so after many tries the CV comparison alone is optimistic.
+- champion_online = "lord++": the holdout champion decisions of a dataset are one stream under LORD++
+  (service.gate.online), so many tries do not eventually pass a worse model by chance.
 - thresholdout: threshold 0.04 and sigma 0.01 for unit-free metrics (the values of Dwork et al. 2015's
   illustration, *from memory*), budget 100 (*common practice*); null for metrics in the target's
   units: a steward must give them before choosing the thresholdout mode.
@@ -32,8 +37,10 @@ from typing import Any
 
 from service.catalog.metrics import DEFAULT_METRICS, METRICS
 from service.errors import FieldProblem, InputError
+from service.gate.online import LORD_PLUS_PLUS, ONLINE_PROCEDURES
 from service.vocabulary import RELEASE_MODES
 
+CHAMPION_RULES = ("cv", "holdout", "both")  # which champion comparison decides
 UNIT_METRICS = frozenset({"rmse", "mae", "mse"})  # in the target's units (mse: squared)
 MAX_DIGITS, MAX_BUDGET, MAX_WINDOW_HOURS = 12, 10_000, 24.0 * 366
 TEAM_BUDGET_MULTIPLE = 3  # a team's default budget: three submitters' worth (*common practice*, a judgement)
@@ -66,6 +73,7 @@ class ReleaseParams:
     window_hours: float = 24.0
     team_budget: int | None = None  # per team per dataset per window; None: TEAM_BUDGET_MULTIPLE * budget
     ladder_step: float | None = None  # None: the parameter-free ladder
+    ladder_threshold_se: float = 2.5  # parameter-free ladder: threshold in standard errors (bench/ladder_adaptive.py)
     thresholdout: ThresholdoutParams | None = None
 
     @property
@@ -87,6 +95,8 @@ class Policy:
     holdout_gap: HoldoutGap = HoldoutGap()
     max_fold_std: float | None = None
     release: ReleaseParams = ReleaseParams()
+    champion_rule: str = "both"
+    champion_online: str = LORD_PLUS_PLUS
 
     def to_document(self, version: int) -> dict[str, Any]:
         """Return the policy document ``GET /v1/datasets/{id}/policy`` serves (``version`` 0 = the task default)."""
@@ -97,9 +107,11 @@ class Policy:
             "champion_alpha": self.champion_alpha,
             "holdout_gap": {"k_std": self.holdout_gap.k_std, "floor": self.holdout_gap.floor},
             "max_fold_std": self.max_fold_std,
+            "champion_rule": self.champion_rule, "champion_online": self.champion_online,
             "release": {
                 "mode": r.mode, "digits": r.digits, "budget": r.budget, "window_hours": r.window_hours,
                 "team_budget": r.team_budget, "ladder_step": r.ladder_step,
+                "ladder_threshold_se": r.ladder_threshold_se,
                 "thresholdout": None if r.thresholdout is None else {
                     "threshold": r.thresholdout.threshold, "sigma": r.thresholdout.sigma,
                     "budget": r.thresholdout.budget},
@@ -157,16 +169,19 @@ def parse_policy(doc: Mapping[str, Any], task: str, allowed_metrics: Sequence[st
                          floor=_req(g.number("floor", gap.floor, minimum=0.0), gap.floor))
 
     release = _parse_release(p, base.release, metric)
+    champion_rule = p.choice("champion_rule", base.champion_rule, CHAMPION_RULES)
+    champion_online = p.choice("champion_online", base.champion_online, ONLINE_PROCEDURES)
     policy = Policy(metric, base.greater_is_better, bar, _req(baseline_alpha, 0.05), _req(margin, 0.0),
-                    _req(champion_alpha, 0.05), gap, max_fold_std, release)
+                    _req(champion_alpha, 0.05), gap, max_fold_std, release, champion_rule, champion_online)
     if problems:
         raise InputError("; ".join(pr.detail for pr in problems), problems)
     return policy
 
 
 _TOP_FIELDS = ("primary_metric", "greater_is_better", "bar", "baseline_alpha", "champion_margin",
-               "champion_alpha", "holdout_gap", "max_fold_std", "release")
-_RELEASE_FIELDS = {"mode", "digits", "budget", "window_hours", "team_budget", "ladder_step", "thresholdout"}
+               "champion_alpha", "holdout_gap", "max_fold_std", "release", "champion_rule", "champion_online")
+_RELEASE_FIELDS = {"mode", "digits", "budget", "window_hours", "team_budget", "ladder_step", "ladder_threshold_se",
+                   "thresholdout"}
 
 
 def _defaults_for(metric: str) -> Policy:
@@ -192,6 +207,7 @@ def _parse_release(p: _Reader, base: ReleaseParams, metric: str) -> ReleaseParam
     team_budget = None if "team_budget" in r.doc and r.doc["team_budget"] is None \
         else r.integer("team_budget", base.team_budget, 1, MAX_BUDGET)
     step = r.number("ladder_step", base.ladder_step, nullable=True, positive=True)
+    threshold_se = r.number("ladder_threshold_se", base.ladder_threshold_se, positive=True, maximum=10.0)
     thresholdout = base.thresholdout
     if "thresholdout" in r.doc and r.doc["thresholdout"] is None:
         thresholdout = None
@@ -212,7 +228,7 @@ def _parse_release(p: _Reader, base: ReleaseParams, metric: str) -> ReleaseParam
                                   f"budget) in {metric} units; got none")
     return replace(base, mode=mode, digits=_req(digits, base.digits), budget=_req(budget, base.budget),
                    window_hours=_req(window, base.window_hours), team_budget=team_budget, ladder_step=step,
-                   thresholdout=thresholdout)
+                   ladder_threshold_se=_req(threshold_se, base.ladder_threshold_se), thresholdout=thresholdout)
 
 
 def _req(value: Any, fallback: Any) -> Any:
@@ -278,6 +294,13 @@ class _Reader:
                                f"got {self.doc[name]!r}")
             return None
         return value
+
+    def choice(self, name: str, default: str, accepted: Sequence[str]) -> str:
+        value = self.doc.get(name, default)
+        if value not in accepted:
+            self.problem(name, f"{self._label(name)} must be one of {', '.join(accepted)}, got {value!r}")
+            return default
+        return str(value)
 
     def integer(self, name: str, default: int | None, low: int, high: int) -> int | None:
         if name not in self.doc:

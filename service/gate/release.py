@@ -168,6 +168,8 @@ def _ladder(policy: Policy, params: ReleaseParams, h: HoldoutScores, old: dict[s
     loss = sign * float(h.scores[metric])
     level = ladder["released_loss"]
     threshold, how = _ladder_threshold(params, metric, h, best_per_example, ladder["best_submission"])
+    if params.ladder_step is None:  # parameter-free: a multiple of the standard error (policy default 2.5)
+        threshold, how = threshold * params.ladder_threshold_se, f"{params.ladder_threshold_se:g} x {how}"
     moved = level is None or loss < level - threshold
     if moved:
         step = params.ladder_step

@@ -6,7 +6,13 @@ Rules, each with figures and one plain sentence:
   p when t > 0, one minus half of it otherwise).
 - bar: the CV mean meets the policy's absolute bar (skipped when none is set).
 - champion: non-inferiority, the same test on d + margin over the (repeat, fold) cells both have;
-  only when both ran the same fold plan (scheme, folds, seed). Otherwise inconclusive, never a pass.
+  only when both ran the same fold plan (scheme, folds, seed) -- the champion's configuration is
+  scored on the candidate's plan when they differ (``ChampionFolds.replayed``). Without such scores,
+  inconclusive, never a pass.
+- champion_holdout: non-inferiority on the sealed rows, paired per row, at the level the dataset's
+  online procedure allows (service.gate.holdout_champion; the verdict job makes it). The policy's
+  champion_rule says which of the two champion rules decides (cv, holdout or both); the other is
+  shown with ``figures.decides`` false and does not enter the decision.
 - holdout_gap: |holdout - cv_mean| <= k_std * fold_std + floor (skipped without a holdout score).
   Its figures never contain the holdout score or the gap: what a submitter sees of the holdout is
   decided by service.gate.release alone. Its outcome is a bit about the holdout, so it is judged only
@@ -29,6 +35,7 @@ from typing import Any
 
 import numpy as np
 
+from service.gate import holdout_champion as hc
 from service.gate.policy import Policy
 from service.gate.statistics import (
     CORRECTED_RESAMPLED_T,
@@ -63,30 +70,62 @@ class ChampionFolds:
     submission_id: str
     scores: Mapping[Cell, float]
     plan_key: tuple[str, int, int]
+    replayed: bool = False  # its configuration scored on the candidate's plan, not its own folds
 
 
 def judge(
     policy: Policy, candidate: Mapping[Cell, float], baseline: Mapping[Cell, float],
     champion: ChampionFolds | None, holdout: float | None, plan: PlanFacts, *, policy_version: int,
     holdout_hidden: str | None = None, holdout_failed: bool = False,
+    champion_holdout: Mapping[str, Any] | None = None,
 ) -> dict[str, Any]:
     """Return the verdict document for a candidate's primary-metric fold scores.
 
     ``holdout`` is the released figure (never a raw score the release withheld); ``holdout_hidden``
     says why the holdout rule is withheld; ``holdout_failed``: the attempt failed and that is released.
+    ``champion_holdout`` is the rule entry of the champion decision on the sealed rows
+    (service.gate.holdout_champion), made by the verdict job; None when it was not made.
     """
     if plan.test not in (CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV):
         raise ValueError(f"test must be {CORRECTED_RESAMPLED_T} or {FIVE_BY_TWO_CV}, got {plan.test!r}")
     j = _Judge(policy, candidate, plan)
     gap = j.holdout_unavailable(holdout_hidden, holdout_failed) if holdout_hidden or holdout_failed \
         else j.holdout_gap(holdout)
-    rules = [j.baseline(baseline), j.bar(), j.champion(champion), gap, j.fold_stability()]
-    outcomes = {r["outcome"] for r in rules}
+    on_cv, on_holdout = _champion_rules(policy, champion, champion_holdout, j.champion(champion))
+    rules = [j.baseline(baseline), j.bar(), on_cv, on_holdout, gap, j.fold_stability()]
+    outcomes = {r["outcome"] for r in rules if r["figures"].get("decides", True)}
     decision = "fail" if "fail" in outcomes else "inconclusive" if "inconclusive" in outcomes else "pass"
     ordered = sorted(rules, key=lambda r: _ORDER[r["outcome"]])
     return {"decision": decision, "reasons": [r["sentence"] for r in ordered], "rules": rules,
             "primary_metric": policy.primary_metric, "test": plan.test, "policy_version": policy_version,
             "champion": None if champion is None else champion.submission_id}
+
+
+def _champion_rules(
+    policy: Policy, champion: ChampionFolds | None, on_holdout: Mapping[str, Any] | None, on_cv: dict[str, Any],
+) -> tuple[dict[str, Any], dict[str, Any]]:
+    """Mark which champion comparison decides (the policy's champion_rule); the other is shown only."""
+    by_cv, by_holdout = policy.champion_rule in ("cv", "both"), policy.champion_rule in ("holdout", "both")
+    if champion is None:
+        held = hc.not_decided(policy, None, "No champion is in force on this dataset.", decides=by_holdout,
+                              outcome="skipped")
+    elif on_holdout is None and not by_holdout:
+        held = hc.not_decided(policy, champion.submission_id, "Not compared with the champion on the sealed rows: "
+                              "the policy decides on the folds (champion_rule cv), so no holdout query was spent.",
+                              decides=False, outcome="skipped")
+    elif on_holdout is None:
+        held = hc.not_decided(policy, champion.submission_id, f"Cannot compare with champion "
+                              f"{champion.submission_id} on the sealed rows: the comparison was not made.",
+                              decides=by_holdout)
+    else:
+        held = {**on_holdout, "figures": {**on_holdout["figures"]}}
+    entries = []
+    for entry, decides in ((on_cv, by_cv), (held, by_holdout)):
+        entry = {**entry, "figures": {**entry["figures"], "decides": decides}}
+        if not decides and entry["outcome"] != "skipped":
+            entry["sentence"] += f" (Shown only: the policy's champion_rule is {policy.champion_rule}.)"
+        entries.append(entry)
+    return entries[0], entries[1]
 
 
 def _rule(rule: str, outcome: str, sentence: str, figures: dict[str, Any]) -> dict[str, Any]:
@@ -202,7 +241,7 @@ class _Judge:
                 f"champion: {_plan(champion.plan_key)}), so no paired test exists."),
                 {**base, "plan": list(self.plan.key), "champion_plan": list(champion.plan_key)})
         test, why, cells = self._paired(champion.scores, margin)
-        figures = {**base, **self._test_figures(test, alpha, cells)}
+        figures = {**base, **self._test_figures(test, alpha, cells), "champion_on_candidate_plan": champion.replayed}
         if test is None:
             return _rule("champion", "inconclusive", f"Cannot compare with champion {name}: {why}.", figures)
         figures["candidate_mean"] = float(np.mean([self.candidate[c] for c in cells]))
@@ -222,8 +261,9 @@ class _Judge:
                 "inconclusive": f"Cannot tell whether it is within the margin {margin:g} of champion {name}"}[outcome]
         return _rule("champion", outcome, (
             f"{head}: mean {self.metric} {_g(figures['candidate_mean'])} against {_g(figures['champion_mean'])} "
-            f"over {len(cells)} shared folds, {_diff(figures['mean_difference'])}; on the difference plus the "
-            f"margin, {self._test_text(test, alpha)}."), figures)
+            f"over {len(cells)} shared folds{_REPLAYED if champion.replayed else ''}, "
+            f"{_diff(figures['mean_difference'])}; on the difference plus the margin, "
+            f"{self._test_text(test, alpha)}."), figures)
 
     def holdout_gap(self, holdout: float | None) -> dict[str, Any]:
         gap = self.policy.holdout_gap
@@ -285,6 +325,9 @@ class _Judge:
         return _rule("fold_stability", "pass" if ok else "fail",
                      f"Folds are {'stable' if ok else 'unstable'}: fold std of {self.metric} {_g(std)} "
                      f"{'within' if ok else 'above'} the limit {limit:g}.", {"max_fold_std": limit, "fold_std": std})
+
+
+_REPLAYED = " (the champion's configuration scored on this submission's folds)"
 
 
 def _diff(d: float) -> str:

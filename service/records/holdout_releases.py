@@ -59,17 +59,20 @@ def list_since(
 
 
 def spent_times(engine: Engine, dataset_id: str, identity: str | None = None) -> list[datetime]:
-    """Return when holdout queries on a dataset spent budget, oldest first: the team's, or one identity's.
+    """Return when holdout queries on a dataset spent budget, one entry per unit, oldest first: the team's, or one
+    identity's.
 
     A row from before identities were recorded counts for its owner key, each old key its own identity.
     """
     who = func.coalesce(holdout_releases.c.identity, holdout_releases.c.owner_key_id)
-    query = select(holdout_releases.c.released_at).where(
+    query = select(holdout_releases.c.released_at, holdout_releases.c.spent).where(
         holdout_releases.c.dataset_id == dataset_id, holdout_releases.c.spent > 0)
     if identity is not None:
         query = query.where(who == identity)
     with engine.connect() as conn:
-        return [r[0] for r in conn.execute(query.order_by(holdout_releases.c.released_at)).all()]
+        rows = conn.execute(query.order_by(holdout_releases.c.released_at)).all()
+    # One entry per unit: a release that also answered the champion decision on the sealed rows spent two.
+    return [at for at, spent in rows for _unit in range(int(spent))]
 
 
 def latest(engine: Engine, dataset_id: str) -> dict[str, Any] | None:

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 from sqlalchemy import (
     JSON,
+    Boolean,
     Column,
     DateTime,
     Float,
@@ -190,6 +191,41 @@ holdout_releases = Table(
     Column("outcome", String(20)),  # released | withheld | failed; null on older rows (read from released)
     Index("ix_releases_owner", "dataset_id", "owner_key_id", "released_at"),
     Index("ix_releases_identity", "dataset_id", "identity", "released_at"),
+)
+
+champion_tests = Table(
+    "champion_tests",
+    metadata,
+    # The champion decision on the sealed rows, once per submission (primary key), and the dataset's
+    # stream of them for the online procedure: the rows with a ``seq`` are the tests, in order; a row
+    # without one records a decision not made (budget spent, nothing kept), which advances nothing.
+    Column("submission_id", ForeignKey("submissions.id"), primary_key=True),
+    Column("dataset_id", ForeignKey("datasets.id"), nullable=False),
+    Column("champion_id", ForeignKey("submissions.id"), nullable=False),
+    Column("seq", Integer),  # 1-based place in the dataset's stream; null when no test was made
+    Column("level", Float),  # the level the test ran at (what the online procedure allowed)
+    Column("passed", Boolean),  # whether non-inferiority was shown (H0 rejected)
+    Column("entry", JSON, nullable=False),  # the verdict's rule entry: outcome, level, sentence
+    Column("tested_at", DateTime(timezone=True), nullable=False),
+    UniqueConstraint("dataset_id", "seq", name="uq_champion_tests_seq"),
+)
+
+champion_folds = Table(
+    "champion_folds",
+    metadata,
+    # The champion's configuration scored on another fold plan (a candidate's 5x2cv or fold-count
+    # override), so the CV comparison with it is paired; cached per (champion, plan) for every later
+    # candidate on that plan. ``plan`` is "<scheme>-<folds>-<seed>".
+    Column("champion_id", ForeignKey("submissions.id"), primary_key=True),
+    Column("plan", String(80), primary_key=True),
+    Column("repeat", Integer, primary_key=True),
+    Column("fold", Integer, primary_key=True),
+    Column("status", String(20), nullable=False),  # ok | failed (the estimator's own error)
+    Column("scores", JSON),
+    Column("train_rows", Integer, nullable=False),
+    Column("test_rows", Integer, nullable=False),
+    Column("error", Text),
+    Column("finished_at", DateTime(timezone=True), nullable=False),
 )
 
 audit_events = Table(

@@ -10,7 +10,12 @@ Chain per submission::
 
     holdout (refit on every development row, score the seal exactly once) --+
     fold jobs (one per repeat x fold) --allow_failure--> summary (fan-in) --+--> verdict
-        (release the holdout figure, decide, mark succeeded)
+    champion fold jobs (only when the champion ran another plan) ------------+   (release the holdout
+                                                                                   figure, decide, mark succeeded)
+
+A champion fold job (``<sub>-champion-<repeat>-<fold>``) scores the champion's configuration on one
+cell of the submission's plan when that plan differs from the champion's (5x2cv, a fold-count
+override), so the CV comparison with the champion stays paired; cells are cached per (champion, plan).
 
 The holdout job depends on none of the folds (the refit on every development row does not need
 their results), so it is queued first: it is the longest job of the chain, and a longest-first
@@ -39,7 +44,7 @@ from sqlalchemy import Engine
 
 from service.errors import ConfigRejected, FieldProblem, Unavailable
 from service.logs import request_id_var
-from service.records import submissions
+from service.records import champion_folds, champions, submissions
 from service.records.engine import as_utc, utcnow
 from service.settings import Settings
 from service.submission.resolved import ValidationPlan
@@ -74,6 +79,30 @@ def verdict_job_id(sub_id: str) -> str:
     return f"{sub_id}-verdict"
 
 
+def champion_fold_job_id(sub_id: str, repeat: int, fold: int) -> str:
+    """Return the deterministic id of the job that scores the champion on one cell of a submission's plan."""
+    return f"{sub_id}-champion-{repeat}-{fold}"
+
+
+def champion_to_replay(engine: Engine, dataset_id: str, validation: ValidationPlan) -> str | None:
+    """Return the champion to score on this plan's folds, or None when no job is needed.
+
+    Needed when a champion is in force, its own fold plan differs from ``validation``'s and its
+    scores on this plan are not all stored yet (``records.champion_folds``, cached per plan).
+    """
+    champion_id = champions.current(engine, dataset_id)
+    champion = None if champion_id is None else submissions.get(engine, champion_id)
+    if champion is None:
+        return None
+    mine, theirs = validation.fold_plan(), ValidationPlan.from_document(champion["config"]["validation"]).fold_plan()
+    key = (mine.scheme, mine.folds, mine.seed)
+    if key == (theirs.scheme, theirs.folds, theirs.seed):
+        return None
+    cached = champion_folds.rows(engine, str(champion_id), champion_folds.plan_name(key))
+    stored = {(r["repeat"], r["fold"]) for r in cached}
+    return None if set(fold_cells(validation)) <= stored else str(champion_id)
+
+
 def work_queue(redis: Redis, settings: Settings) -> Queue:
     """Return the queue fold, summary and holdout jobs go to."""
     return Queue(settings.queue_name, connection=redis, serializer=JSONSerializer)
@@ -84,14 +113,22 @@ def fold_cells(validation: ValidationPlan) -> list[tuple[int, int]]:
     return [(r, f) for r in range(validation.repeats) for f in range(validation.folds)]
 
 
-def enqueue_submission(redis: Redis, settings: Settings, sub_id: str, validation: ValidationPlan) -> None:
-    """Enqueue the whole job chain of a new submission."""
+def enqueue_submission(
+    redis: Redis, settings: Settings, sub_id: str, validation: ValidationPlan, champion: str | None = None,
+) -> None:
+    """Enqueue the whole job chain of a new submission.
+
+    ``champion`` (``champion_to_replay``): score that champion's configuration on this plan's folds
+    too, in jobs the verdict waits for, so the CV comparison with it is paired.
+    """
     try:
         queue = work_queue(redis, settings)
         _enqueue_holdout(queue, settings, sub_id)
         fold_ids = [_enqueue_fold(queue, settings, sub_id, r, f) for r, f in fold_cells(validation)]
+        replay = [] if champion is None else [
+            _enqueue_champion_fold(queue, settings, sub_id, champion, r, f) for r, f in fold_cells(validation)]
         _enqueue_summary(queue, settings, sub_id, fold_ids)
-        _enqueue_verdict(queue, sub_id, [summary_job_id(sub_id), holdout_job_id(sub_id)])
+        _enqueue_verdict(queue, sub_id, [summary_job_id(sub_id), holdout_job_id(sub_id), *replay])
     except RedisError as exc:
         # The submission row exists and the reconciler will enqueue it once Redis is back.
         log.warning("could not enqueue %s: %s", sub_id, exc)
@@ -131,6 +168,7 @@ def check_config_remote(
 def cancel_jobs(redis: Redis, settings: Settings, sub_id: str, validation: ValidationPlan) -> None:
     """Cancel a submission's queued jobs; running ones see the canceled state and stop early."""
     ids = [fold_job_id(sub_id, r, f) for r, f in fold_cells(validation)]
+    ids += [champion_fold_job_id(sub_id, r, f) for r, f in fold_cells(validation)]
     ids += [summary_job_id(sub_id), holdout_job_id(sub_id), verdict_job_id(sub_id)]
     try:
         for job in Job.fetch_many(ids, connection=redis, serializer=JSONSerializer):
@@ -205,6 +243,20 @@ def _reconcile_one(engine: Engine, live: set[str], queue: Queue, settings: Setti
             live_folds.append(_enqueue_fold(queue, settings, sub_id, r, f))
             enqueued += 1
     waits_for: list[str] = []
+    validation = ValidationPlan.from_document(sub["config"]["validation"])
+    champion = None if sub["verdict"] is not None else champion_to_replay(engine, sub["dataset_id"], validation)
+    if champion is not None:
+        plan = validation.fold_plan()
+        cached = {(r["repeat"], r["fold"]) for r in champion_folds.rows(
+            engine, champion, champion_folds.plan_name((plan.scheme, plan.folds, plan.seed)))}
+        for r, f in fold_cells(validation):
+            job_id = champion_fold_job_id(sub_id, r, f)
+            if (r, f) in cached:
+                continue
+            if job_id not in live:
+                _enqueue_champion_fold(queue, settings, sub_id, champion, r, f)
+                enqueued += 1
+            waits_for.append(job_id)
     if sub["cv_summary"] is None:
         if summary_job_id(sub_id) not in live:
             _enqueue_summary(queue, settings, sub_id, live_folds)
@@ -225,6 +277,16 @@ def _enqueue_fold(queue: Queue, settings: Settings, sub_id: str, repeat: int, fo
         f"{JOB_MODULE}.run_fold", args=(sub_id, repeat, fold), job_id=fold_job_id(sub_id, repeat, fold),
         timeout=settings.job_timeout_seconds("fold"), result_ttl=RESULT_TTL, retry=_retry(),
         description=f"fold {fold} of repeat {repeat} of {sub_id}", meta=job_meta(),
+    )
+    return str(job.id)
+
+
+def _enqueue_champion_fold(queue: Queue, settings: Settings, sub_id: str, champion: str, repeat: int, fold: int) -> str:
+    job = queue.enqueue_call(
+        f"{JOB_MODULE}.run_champion_fold", args=(sub_id, champion, repeat, fold),
+        job_id=champion_fold_job_id(sub_id, repeat, fold), timeout=settings.fold_timeout_seconds,
+        result_ttl=RESULT_TTL, retry=_retry(), description=f"champion {champion} on fold {fold} of repeat {repeat} "
+                                                           f"of {sub_id}'s plan",
     )
     return str(job.id)
 

@@ -10,7 +10,7 @@ from typing import Any
 
 from rq import get_current_job
 
-from worker.jobs import check, holdout, summary, verdict
+from worker.jobs import champion_fold, check, holdout, summary, verdict
 from worker.jobs.fold import run_fold as _run_fold
 from worker.jobs.runtime import current, fold_runner
 
@@ -29,6 +29,11 @@ def run_fold(submission_id: str, repeat: int, fold: int) -> dict[str, Any]:
     if runner is not None:
         return runner.run_fold(submission_id, repeat, fold)
     return _run_fold(current(), submission_id, repeat, fold)
+
+
+def run_champion_fold(submission_id: str, champion_id: str, repeat: int, fold: int) -> dict[str, Any]:
+    """Score the champion's configuration on one fold of the submission's plan (cached per plan)."""
+    return champion_fold.run_champion_fold(current(), submission_id, champion_id, repeat, fold)
 
 
 def summarize(submission_id: str) -> dict[str, Any]:
@@ -51,5 +56,6 @@ def give_verdict(submission_id: str) -> dict[str, Any]:
 
 # The dotted names a sealfold worker agrees to run; nothing else in Redis is ever imported.
 ALLOWED_JOBS: frozenset[str] = frozenset(
-    f"{__name__}.{job.__name__}" for job in (check_config, run_fold, summarize, score_holdout, give_verdict)
+    f"{__name__}.{job.__name__}" for job in (check_config, run_fold, run_champion_fold, summarize, score_holdout,
+                                              give_verdict)
 )

@@ -33,7 +33,7 @@ from service.records import holdout_claims, submissions
 from service.submission.resolved import ResolvedConfig
 from service.vault import store
 from service.vocabulary import LIVE_STATES
-from worker.jobs.losses import save_per_example
+from worker.jobs.losses import save_per_example, scoring_rows
 from worker.jobs.runtime import Skip, WorkerContext, repeating, submission_to_work_on
 from worker.learning.development import column_kinds, load_development, model_frame, model_matrix, target_values
 from worker.learning.pipeline import build_pipeline, fit_in_place, uses_frame
@@ -113,6 +113,10 @@ def _score(
             pred, proba, labels = predictions(pipeline, X, metrics, classes)
             scores, _undefined = score_predictions(y, pred, proba, labels, metrics)
             kept = {m: v for m in metrics if (v := per_example(m, y, pred, proba, labels)) is not None}
+            if any(m not in kept for m in metrics):
+                # Metrics that are no mean of per-row values: keep what scores them on any subset of
+                # rows, for the paired bootstrap of the champion decision (worker/jobs/sealed_champion.py).
+                kept.update(scoring_rows(y, pred, proba, labels))
     except MemoryError:
         raise
     except Exception as exc:

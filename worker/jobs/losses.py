@@ -43,7 +43,8 @@ def save_per_example(
     path = _path(settings, dataset_id, submission_id)
     path.parent.mkdir(mode=0o700, exist_ok=True)
     fd, partial = tempfile.mkstemp(prefix=f".{submission_id}-", suffix=".partial", dir=path.parent)
-    arrays: dict[str, Any] = {m: np.asarray(v, dtype=np.float64) for m, v in values.items()}
+    arrays: dict[str, Any] = {m: np.asarray(v) if m in ROW_KEYS else np.asarray(v, dtype=np.float64)
+                              for m, v in values.items()}
     try:
         os.fchmod(fd, 0o600)
         with os.fdopen(fd, "wb") as handle:
@@ -52,6 +53,41 @@ def save_per_example(
     except BaseException:
         Path(partial).unlink(missing_ok=True)
         raise
+
+
+# Keys of the arrays that score a metric on any subset of the sealed rows (no metric is named so).
+ROW_KEYS = ("_y", "_pred", "_proba", "_labels")
+
+
+def scoring_rows(y: Any, pred: Any, proba: Any, labels: Any) -> dict[str, np.ndarray]:
+    """Return the arrays that score any metric on a subset of rows: targets, predictions, classes.
+
+    Labels that numpy can only hold as objects are stored as text, all of them the same way, so the
+    file never needs pickle and y, predictions and classes still compare equal.
+    """
+    arrays = {"_y": y, "_pred": pred, "_proba": proba, "_labels": labels}
+    kept = {k: np.asarray(v) for k, v in arrays.items() if v is not None}
+    if any(a.dtype == object for a in kept.values()):
+        kept = {k: (a.astype(str) if k != "_proba" else a.astype(np.float64)) for k, a in kept.items()}
+    return kept
+
+
+def load_scoring_rows(settings: Settings, dataset_id: str, submission_id: str) -> dict[str, np.ndarray] | None:
+    """Return a submission's ``scoring_rows`` arrays, or None when none were kept.
+
+    Raises ``DamagedLosses`` when the file is there but cannot be read.
+    """
+    path = _path(settings, dataset_id, submission_id)
+    if not path.exists():
+        return None
+    try:
+        with np.load(path, allow_pickle=False) as stored:
+            if "_y" not in stored.files:
+                return None
+            return {k: np.asarray(stored[k]) for k in ROW_KEYS if k in stored.files}
+    except (OSError, ValueError, EOFError, KeyError, zipfile.BadZipFile) as exc:
+        raise DamagedLosses(f"the per-example holdout losses kept for submission {submission_id} cannot be read "
+                            f"({type(exc).__name__})") from exc
 
 
 def load_per_example(settings: Settings, dataset_id: str, submission_id: str, metric: str) -> np.ndarray | None:

@@ -6,7 +6,10 @@ A holdout attempt that failed is released like a score: one counted query, told 
 the budget allows (the holdout rule then fails) and withheld like a figure when it does not, so the
 submission's state and shape are the same whatever failed and why. A per-example loss file that
 cannot be read fails the submission, with nothing released (an infrastructure failure: the
-configuration may run again). The holdout rule reads only the release. The release is
+configuration may run again). The holdout rule reads only the release. The champion decision on the
+sealed rows (``worker.jobs.sealed_champion``) is made in the same lock, one more query paid from the
+same budget; the champion's folds on the candidate's plan (``worker.jobs.champion_fold``) keep the CV
+comparison paired. The release is
 recorded once per submission (primary key) under a per-dataset lock, because the ladder and
 thresholdout carry state from one submission to the next. The submission becomes ``succeeded``
 only here, so a client that sees ``succeeded`` always finds its verdict.
@@ -22,12 +25,13 @@ from redis import Redis
 
 from service.gate import review_state
 from service.gate.policy import Policy, parse_policy
-from service.gate.release import FAILED, RELEASED, WITHHELD, HoldoutScores, release
+from service.gate.release import FAILED, RELEASED, WITHHELD, HoldoutScores, budget_status, release
 from service.gate.verdict import CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV, ChampionFolds, PlanFacts, judge
-from service.records import champions, holdout_releases, keys, submissions
+from service.records import champion_folds, champions, holdout_releases, keys, submissions
 from service.records.engine import as_utc, utcnow
 from service.submission.resolved import ValidationPlan
 from service.vocabulary import LIVE_STATES
+from worker.jobs import sealed_champion
 from worker.jobs.losses import DamagedLosses, load_per_example
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 
@@ -58,21 +62,21 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
     folds = [row for row in submissions.fold_rows(engine, submission_id) if row["status"] == "ok"]
     candidate = _cells(folds, "scores", metric)
     baseline = _cells(folds, "baseline_scores", metric)
+    champion_id = champions.current(engine, dataset["id"])
 
     try:
         with redis.lock(f"sealfold:release:{dataset['id']}", timeout=120, blocking_timeout=60):
             told = holdout_releases.get(engine, submission_id)
             if told is None:
-                told = _release(ctx, sub, dataset, policy, version, raw, candidate, folds)
+                told = _release(ctx, sub, dataset, policy, version, raw, candidate, folds, champion_id)
     except DamagedLosses as exc:
         # A retry would find the same file: fail now, with nothing released, rather than stay running.
         error = f"{exc}; nothing about the holdout was released"
         submissions.transition(engine, submission_id, "failed", LIVE_STATES, error=error, reopen=True)
         return {"submission_id": submission_id, "decision": None, "holdout": "not released"}
 
-    champion_id = champions.current(engine, dataset["id"])
-    champion = None if champion_id in (None, submission_id) else _champion(ctx, str(champion_id), metric)
     validation = ValidationPlan.from_document(sub["config"]["validation"])
+    champion = None if champion_id in (None, submission_id) else _champion(ctx, str(champion_id), metric, validation)
     plan = PlanFacts(
         key=_plan_key(validation),
         sizes={(r["repeat"], r["fold"]): (r["train_rows"], r["test_rows"]) for r in folds},
@@ -82,7 +86,8 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
     )
     figure, hidden, failed = holdout_reading(told, metric)
     verdict = judge(policy, candidate, baseline, champion, figure, plan, policy_version=version,
-                    holdout_hidden=hidden, holdout_failed=failed)
+                    holdout_hidden=hidden, holdout_failed=failed,
+                    champion_holdout=sealed_champion.recorded_entry(ctx, submission_id))
     submissions.store_verdict(engine, submission_id, verdict, version, None if champion is None else champion_id)
     submissions.transition(engine, submission_id, "succeeded", LIVE_STATES)
     return {"submission_id": submission_id, "decision": verdict["decision"]}
@@ -117,22 +122,34 @@ def _cells(folds: list[dict[str, Any]], column: str, metric: str) -> dict[Cell, 
     return {(r, f): float(v) for r, f, v in values if v is not None}
 
 
-def _champion(ctx: WorkerContext, champion_id: str, metric: str) -> ChampionFolds | None:
+def _champion(ctx: WorkerContext, champion_id: str, metric: str, mine: ValidationPlan) -> ChampionFolds | None:
+    """Return the champion's fold scores: its own, or on the candidate's plan when that one differs.
+
+    The champion's configuration scored on the candidate's plan (``worker.jobs.champion_fold``,
+    cached per plan) keeps the comparison paired; without those scores the plans differ and the
+    champion rule says so.
+    """
     champ = submissions.get(ctx.engine, champion_id)
     if champ is None:
         return None
     validation = ValidationPlan.from_document(champ["config"]["validation"])
     rows = [r for r in submissions.fold_rows(ctx.engine, champion_id) if r["status"] == "ok"]
-    return ChampionFolds(
-        submission_id=champion_id, scores=_cells(rows, "scores", metric), plan_key=_plan_key(validation),
-    )
+    own, key = _plan_key(validation), _plan_key(mine)
+    if own != key:
+        replayed = [r for r in champion_folds.rows(ctx.engine, champion_id, champion_folds.plan_name(key))
+                    if r["status"] == "ok"]
+        if replayed:
+            return ChampionFolds(submission_id=champion_id, scores=_cells(replayed, "scores", metric), plan_key=key,
+                                 replayed=True)
+    return ChampionFolds(submission_id=champion_id, scores=_cells(rows, "scores", metric), plan_key=own)
 
 
 def _release(
     ctx: WorkerContext, sub: Mapping[str, Any], dataset: Mapping[str, Any], policy: Policy, version: int,
-    raw: Mapping[str, Any], candidate: Mapping[Cell, float], folds: list[dict[str, Any]],
+    raw: Mapping[str, Any], candidate: Mapping[Cell, float], folds: list[dict[str, Any]], champion_id: str | None,
 ) -> dict[str, Any]:
-    """Release the stored outcome under the policy, counted against the submitter's and the team's budget."""
+    """Release the stored outcome under the policy, counted against the submitter's and the team's budget,
+    then make the champion decision on the sealed rows when the budget still allows one more query."""
     engine = ctx.engine
     values = np.array(list(candidate.values()), dtype=float)
     last = holdout_releases.latest(engine, dataset["id"])
@@ -156,11 +173,18 @@ def _release(
     best_id = (state.get("ladder") or {}).get("best_submission")
     best = load_per_example(ctx.settings, dataset["id"], str(best_id), policy.primary_metric) if best_id else None
     # Fresh OS entropy for the noise of thresholdout: a seed anyone could know would undo the noise.
-    outcome = release(policy, holdout, state=state, spent_at=spent_at, now=utcnow(),
+    now = utcnow()
+    outcome = release(policy, holdout, state=state, spent_at=spent_at, now=now,
                       rng=np.random.default_rng(), best_per_example=best, team_spent_at=team_spent_at)
+    window = policy.release.window_hours
+    left = min(budget_status(spent_at, now, policy.release.budget, window).remaining,
+               budget_status(team_spent_at, now, policy.release.team_limit, window).remaining) - outcome.spent
+    # The champion decision on the sealed rows is one more holdout query, paid from the same budgets.
+    queried = 0 if failed else sealed_champion.decide_once(ctx, sub, dataset, policy, champion_id, left)
     row, _created = holdout_releases.record(engine, {
         "submission_id": sub["id"], "dataset_id": dataset["id"], "owner_key_id": sub["owner_key_id"],
-        "identity": identity, "mode": outcome.mode, "released": outcome.released, "spent": outcome.spent,
+        "identity": identity, "mode": outcome.mode, "released": outcome.released,
+        "spent": outcome.spent + queried,
         "state": outcome.state, "withheld_until": outcome.withheld_until, "policy_version": version,
         "outcome": outcome.outcome,
     })

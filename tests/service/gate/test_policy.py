@@ -39,9 +39,11 @@ def test_classification_default_and_first_dataset_metric() -> None:
 def test_document_has_the_served_shape_and_round_trips() -> None:
     doc = default_policy("classification").to_document(0)
     assert set(doc) == {"version", "primary_metric", "greater_is_better", "bar", "baseline_alpha",
-                        "champion_margin", "champion_alpha", "holdout_gap", "max_fold_std", "release"}
+                        "champion_margin", "champion_alpha", "holdout_gap", "max_fold_std", "release",
+                        "champion_rule", "champion_online"}
     assert set(doc["holdout_gap"]) == {"k_std", "floor"}
     assert set(doc["release"]) == {"mode", "digits", "budget", "window_hours", "team_budget", "ladder_step",
+                                   "ladder_threshold_se",
                                    "thresholdout"}
     assert set(doc["release"]["thresholdout"]) == {"threshold", "sigma", "budget"}
     assert doc["version"] == 0

@@ -121,7 +121,7 @@ def test_parameter_free_ladder_uses_the_standard_error_of_paired_differences() -
 
 def test_parameter_free_ladder_on_rmse_converts_the_squared_error_threshold() -> None:
     # sqrt(a) - sqrt(b) = (a - b) / (sqrt(a) + sqrt(b)): the mse standard error divided by rmse_new + rmse_best.
-    policy = _policy(RMSE, mode="ladder")
+    policy = _policy(RMSE, mode="ladder", ladder_threshold_se=1.0)  # the standard error itself (multiple: below)
     rng = np.random.default_rng(2)
     best_sq = rng.normal(0, 2.0, 1000) ** 2
     first = _release(policy, _scores(float(np.sqrt(best_sq.mean())), per_example=best_sq, sub="a"))
@@ -143,7 +143,7 @@ def test_parameter_free_ladder_on_rmse_converts_the_squared_error_threshold() ->
 
 def test_parameter_free_ladder_without_per_example_values_falls_back_to_the_fold_spread() -> None:
     # Fallback threshold: fold_std * sqrt(fold_test_rows / holdout_rows) = 0.5 * sqrt(100 / 400) = 0.25.
-    policy = _policy(RMSE, mode="ladder")
+    policy = _policy(RMSE, mode="ladder", ladder_threshold_se=1.0)
     first = _release(policy, _scores(5.0, sub="a"))
     assert not _release(policy, _scores(4.8, sub="b"), first.state).new_best
     moved = _release(policy, _scores(4.7, sub="c"), first.state)

@@ -53,7 +53,8 @@ def test_baseline_rule_reproduces_the_worked_value_and_passes() -> None:
     assert rule["sentence"].startswith("Beats the baseline: mean accuracy")
     assert v["decision"] == "pass" and v["test"] == "corrected_resampled_t" and v["policy_version"] == 4
     assert set(v) == {"decision", "reasons", "rules", "primary_metric", "test", "policy_version", "champion"}
-    assert [r["rule"] for r in v["rules"]] == ["baseline", "bar", "champion", "holdout_gap", "fold_stability"]
+    assert [r["rule"] for r in v["rules"]] == ["baseline", "bar", "champion", "champion_holdout", "holdout_gap",
+                                               "fold_stability"]
 
 
 def test_baseline_rule_fails_at_a_stricter_level() -> None:
@@ -220,7 +221,7 @@ def test_fail_outranks_inconclusive_and_reasons_list_failures_first() -> None:
     assert "fail" in outcomes and "inconclusive" in outcomes and v["decision"] == "fail"
     assert v["reasons"][0].startswith("Misses the bar")
     assert v["reasons"][1].startswith("Cannot compare with champion")
-    assert len(v["reasons"]) == 5
+    assert len(v["reasons"]) == 6
 
 
 FIVE_BY_TWO = [(r, f) for r in range(5) for f in range(2)]

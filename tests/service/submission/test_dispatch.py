@@ -21,7 +21,7 @@ from rq.utils import current_timestamp
 from sqlalchemy import Engine, update
 
 from service.ids import new_id
-from service.records import submissions
+from service.records import champion_folds, champions, submissions
 from service.records.engine import utcnow
 from service.records.tables import submissions as submissions_table
 from service.settings import Settings
@@ -279,3 +279,28 @@ def test_live_jobs_are_those_queued_taken_started_deferred_ready_or_scheduled(
         queue.ready_job_registry.register_jobs([ready], pipeline=pipe)
         pipe.execute()
     assert dispatch.live_job_ids(queue) == {"queued", "deferred", "scheduled", "taken", "running", "ready"}
+
+
+def test_a_champion_on_another_plan_is_scored_on_this_plan_and_the_verdict_waits_for_it(
+    records: Engine, redis: Redis, settings: Settings, dataset: dict[str, Any]
+) -> None:
+    champion = lost_submission(records, dataset, folds=5)
+    champions.promote(records, dataset["id"], champion, "key_steward")
+    sub = lost_submission(records, dataset, folds=3)
+    validation = ValidationPlan("kfold", folds=3, seed=0)
+    assert dispatch.champion_to_replay(records, dataset["id"], validation) == champion
+    assert dispatch.champion_to_replay(records, dataset["id"], ValidationPlan("kfold", folds=5, seed=0)) is None
+    dispatch.enqueue_submission(redis, settings, sub, validation, champion)
+    replay = {f"{sub}-champion-0-{f}" for f in range(3)}
+    assert replay <= set(queue_of(redis, settings).get_job_ids())
+    assert waits_for(redis, f"{sub}-verdict") == {f"{sub}-summary", f"{sub}-holdout", *replay}
+    assert job(redis, f"{sub}-champion-0-2").args == [sub, champion, 0, 2]
+
+    # After a Redis loss, the reconciler puts back only the cells not cached for this plan.
+    redis.flushdb()
+    champion_folds.record(records, champion, "kfold-3-0", 0, 1, status="ok", scores={"rmse": 50.0},
+                          train_rows=266, test_rows=134, error=None)
+    dispatch.reconcile(records, redis, settings)
+    queued = set(queue_of(redis, settings).get_job_ids())
+    assert {f"{sub}-champion-0-0", f"{sub}-champion-0-2"} <= queued and f"{sub}-champion-0-1" not in queued
+    assert {f"{sub}-champion-0-0", f"{sub}-champion-0-2"} <= waits_for(redis, f"{sub}-verdict")

@@ -1,7 +1,7 @@
 """Facts about the deployment as a whole: ``deployment`` (the data identity the workers check).
 
 Revision ID: 0010
-Revises: 0007
+Revises: 0009
 
 ``deployment.data_identity`` is matched with ``<data dir>/deployment-id`` by every worker before it takes
 a job, so a worker on a host without the shared data volume refuses work instead of losing folds.
@@ -15,7 +15,7 @@ from alembic import op
 from service.records.migrations.steps import has_table
 
 revision = "0010"
-down_revision = "0007"
+down_revision = "0009"
 branch_labels = None
 depends_on = None
 
