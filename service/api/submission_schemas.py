@@ -49,6 +49,23 @@ class DatasetRefField(fields.Field[DatasetRef]):
                               f"fingerprint, got {value!r}")
 
 
+class MetricField(fields.Field[Any]):
+    """A metric: a name or key (``"f1(average=weighted)"``) or an object ``{"name": ..., options}``.
+
+    Only the shape is checked here; names and options are resolved against the dataset
+    (``service.catalog.metric_keys``), which answers every problem at ``/metrics/<i>``.
+    """
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        if isinstance(value, str) and value.strip():
+            return value
+        if isinstance(value, dict) and isinstance(value.get("name"), str):
+            return dict(value)
+        raise ValidationError(f"a metric is a name such as 'f1' or 'f1(average=weighted)', or an object with a "
+                              f"name and its options such as {{\"name\": \"pinball_loss\", \"alpha\": 0.9}}, "
+                              f"got {value!r}")
+
+
 class PreprocessStepSchema(Schema):
     transformer = fields.String(required=True, metadata={"example": "StandardScaler"})
     columns = fields.List(fields.String(), required=True)
@@ -111,8 +128,15 @@ class SubmissionRequestSchema(Schema):
     model = fields.Nested(ModelSchema, required=True)
     validation = fields.Nested(ValidationOptionsSchema,
                                load_default=lambda: {"folds": None, "repeats": 1, "test": None})
-    metrics = fields.List(fields.String(), load_default=None, allow_none=True, metadata={
-        "description": "default: the task's default metrics; see GET /v1/catalog"})
+    metrics = fields.List(MetricField(metadata={"oneOf": [
+        {"type": "string", "example": "f1(average=weighted)"},
+        {"type": "object", "required": ["name"], "additionalProperties": True,
+         "properties": {"name": {"type": "string", "example": "pinball_loss"}},
+         "example": {"name": "pinball_loss", "alpha": 0.9}},
+    ]}), load_default=None, allow_none=True, metadata={
+        "description": "default: the task's default metrics; see GET /v1/catalog. A metric with choices is "
+                       "named with them, 'f1(average=weighted)', or as an object {\"name\": \"f1\", \"average\": "
+                       "\"weighted\"}; the stored configuration spells out every choice"})
     label = fields.String(load_default="", validate=validate.Length(max=200))
     search = fields.Nested(SearchOptionsSchema, load_default=None, allow_none=True, metadata={
         "description": "nested search: each outer fold tunes on its training rows only, scored by the first "

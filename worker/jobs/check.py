@@ -9,13 +9,14 @@ features and the columns of each step; facts the catalog knows (e.g. ``linear``)
 
 from __future__ import annotations
 
+import json
 import math
 import numbers
 from collections.abc import Mapping
 from typing import Any
 
 from sklearn.base import BaseEstimator
-from sklearn.utils._param_validation import InvalidParameterError
+from sklearn.utils._param_validation import InvalidParameterError, StrOptions
 
 from service.catalog import CatalogEntry, load_catalog
 from service.errors import FieldProblem
@@ -49,7 +50,40 @@ def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: 
             problems.append(FieldProblem(f"/model/preprocess/{i}/columns", width))
     if problems:
         return _rejected(problems)
-    return {"ok": True, "has_proba": hasattr(estimator, "predict_proba")}
+    if hasattr(estimator, "predict_proba") or config.task != "classification":
+        return {"ok": True, "has_proba": hasattr(estimator, "predict_proba")}
+    return {"ok": True, "has_proba": False, "proba_settings": probability_settings(entry, model.params)}
+
+
+def probability_settings(entry: CatalogEntry, params: Mapping[str, Any]) -> list[str]:
+    """Return the single parameter changes that would give the estimator ``predict_proba``.
+
+    Tries every value of each parameter that takes a boolean or a word (scikit-learn's
+    ``_parameter_constraints``; deprecated words and values the service fixes left out), e.g.
+    ``probability=true`` for SVC, ``loss="log_loss"`` for SGDClassifier. Written as JSON, as a
+    submission writes them.
+    """
+    cls = type(make_instance(entry, {}))
+    found: list[str] = []
+    for name, allowed in getattr(cls, "_parameter_constraints", {}).items():
+        if name in entry.forced or name not in entry.params:
+            continue
+        values: list[Any] = []
+        for constraint in allowed:
+            if constraint == "boolean":
+                values += [True, False]
+            elif isinstance(constraint, StrOptions):
+                values += sorted(constraint.options - constraint.deprecated)
+        for value in values:
+            if name in params and params[name] == value:
+                continue
+            try:
+                probe = make_instance(entry, {**params, name: value})
+            except (TypeError, ValueError):
+                continue
+            if hasattr(probe, "predict_proba"):
+                found.append(f"{name}={json.dumps(value)}")
+    return found
 
 
 def checked_instance(

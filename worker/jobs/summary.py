@@ -26,7 +26,7 @@ from scipy import stats
 
 import service
 from service.catalog import load_catalog
-from service.catalog.metrics import METRICS
+from service.catalog.metrics import spec_of
 from service.records import submissions
 from service.submission.dispatch import fold_cells
 from service.submission.resolved import ResolvedConfig, ValidationPlan
@@ -77,7 +77,7 @@ def summary_document(
     failures.sort(key=lambda x: (x["repeat"], x["fold"]))
     curve = curve_summary(ok, metrics)
     return {
-        "summary": {m: metric_summary([r["scores"].get(m) for r in ok], METRICS[m].bounds) for m in metrics},
+        "summary": {m: metric_summary([r["scores"].get(m) for r in ok], spec_of(m).bounds) for m in metrics},
         "statistics": STATISTICS_NOTE,
         "folds_ok": len(ok),
         "failures": failures,
@@ -89,7 +89,7 @@ def summary_document(
         "baseline": {
             **baseline_description(task),
             "folds": "the folds where the candidate succeeded",
-            "summary": {m: within(describe([(r["baseline_scores"] or {}).get(m) for r in ok]), METRICS[m].bounds)
+            "summary": {m: within(describe([(r["baseline_scores"] or {}).get(m) for r in ok]), spec_of(m).bounds)
                         for m in metrics},
         },
     }

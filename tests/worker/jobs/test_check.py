@@ -174,3 +174,16 @@ def test_json_lists_for_tuple_parameters_pass_validation(diabetes: dict[str, Any
     steps = [{"transformer": "MinMaxScaler", "columns": ["age"], "params": {"feature_range": "wide"}}]
     found = pointers(check(diabetes, "Ridge", preprocess=steps))
     assert "'feature_range' parameter of MinMaxScaler" in found["/model/preprocess/0/params/feature_range"]
+
+
+@pytest.mark.parametrize(("estimator", "params", "settings"), [
+    # scikit-learn's SVC docs: probability=True enables predict_proba; SGDClassifier's: predict_proba
+    # "only available for log loss and modified Huber loss".
+    ("SVC", {}, ["probability=true"]),
+    ("SGDClassifier", {"penalty": "l1"}, ['loss="log_loss"', 'loss="modified_huber"']),
+])
+def test_the_parameters_that_give_probabilities_are_named(
+    cancer: dict[str, Any], estimator: str, params: dict[str, Any], settings: list[str]
+) -> None:
+    answer = check(cancer, estimator, params=params)
+    assert answer == {"ok": True, "has_proba": False, "proba_settings": settings}
