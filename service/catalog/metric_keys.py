@@ -183,3 +183,23 @@ def _label_options(spec: MetricSpec, given: Mapping[str, Any], classes: Sequence
         raise MetricRefused(f"{spec.name} pos_label must be one of the dataset's classes "
                             f"({', '.join(classes)}), got {given.get('pos_label')!r}")
     return {"average": average, "pos_label": pos_label}
+
+
+def target_floor(key: str) -> tuple[float, bool] | None:
+    """Return the lowest target value a metric is defined for, and whether it is excluded; None if any.
+
+    Mean Poisson deviance needs y >= 0; gamma y > 0; Tweedie, by its power p: none for p <= 0,
+    y >= 0 for 1 <= p < 2, y > 0 for p >= 2 (scikit-learn's ``mean_tweedie_deviance`` documentation).
+    """
+    name, options = parse_key(key)
+    if name == "poisson_deviance":
+        return 0.0, False
+    if name == "gamma_deviance":
+        return 0.0, True
+    if name == "tweedie_deviance" and options.get("power") is not None:
+        power = float(options["power"])
+        if power >= 2:
+            return 0.0, True
+        if power >= 1:
+            return 0.0, False
+    return None

@@ -19,9 +19,11 @@ from sklearn.base import BaseEstimator
 from sklearn.utils._param_validation import InvalidParameterError, StrOptions
 
 from service.catalog import CatalogEntry, load_catalog
+from service.catalog.metric_keys import target_floor
 from service.errors import FieldProblem
 from service.records import datasets
 from service.submission.resolved import ResolvedConfig, SearchSpec
+from service.vault import store
 from worker.jobs.runtime import WorkerContext
 from worker.learning.pipeline import entry_for, make_instance
 
@@ -48,11 +50,35 @@ def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: 
         width = output_width_problem(step_entry, transformer, len(step.columns))
         if width is not None:
             problems.append(FieldProblem(f"/model/preprocess/{i}/columns", width))
+    problems.extend(target_range_problems(ctx, config, dataset_id))
     if problems:
         return _rejected(problems)
     if hasattr(estimator, "predict_proba") or config.task != "classification":
         return {"ok": True, "has_proba": hasattr(estimator, "predict_proba")}
     return {"ok": True, "has_proba": False, "proba_settings": probability_settings(entry, model.params)}
+
+
+def target_range_problems(ctx: WorkerContext, config: ResolvedConfig, dataset_id: str) -> list[FieldProblem]:
+    """Refuse a deviance the development target's values leave undefined (e.g. gamma on a target with zeros).
+
+    Reads the target of the development rows only (the sealed rows are never opened here), and
+    only when a metric asks for a range.
+    """
+    floors = {i: target_floor(key) for i, key in enumerate(config.metrics) if config.task == "regression"}
+    floors = {i: floor for i, floor in floors.items() if floor is not None}
+    if not floors:
+        return []
+    dataset = datasets.get_internal(ctx.engine, dataset_id)
+    assert dataset is not None  # checked by the caller
+    target = str(dataset["target"])
+    lowest = float(store.load_development_frame(ctx.settings, dataset_id, columns=[target])[target].min())
+    problems = []
+    for i, (floor, strict) in floors.items():
+        if lowest < floor or (strict and lowest == floor):
+            needs = f"> {floor:g}" if strict else f">= {floor:g}"
+            problems.append(FieldProblem(f"/metrics/{i}", f"metric {config.metrics[i]!r} is defined only for a "
+                                         f"target {needs}; the development rows' {target} goes down to {lowest:g}"))
+    return problems
 
 
 def probability_settings(entry: CatalogEntry, params: Mapping[str, Any]) -> list[str]:
