@@ -295,6 +295,32 @@ class ProvenanceSchema(Schema):
     versions = fields.Dict(keys=fields.String(), values=fields.String())
 
 
+class ReliabilityBinSchema(Schema):
+    low = fields.Float()
+    high = fields.Float()
+    count = fields.Integer(metadata={"description": "out-of-fold predictions in the bin, over every fold"})
+    mean_predicted = fields.Float(allow_none=True, metadata={"description": "null for an empty bin"})
+    fraction_observed = fields.Float(allow_none=True, metadata={
+        "description": "positive_class: the fraction of the bin's rows of that class; top_label: the fraction "
+                       "whose most probable class was right"})
+
+
+class CalibrationSchema(Schema):
+    """The reliability of the candidate's predicted probabilities, pooled over the out-of-fold predictions."""
+
+    kind = fields.String(validate=validate.OneOf(("positive_class", "top_label")), metadata={
+        "description": "two classes: the probability of positive_class; more: the largest probability of a row"})
+    positive_class = fields.String(allow_none=True)
+    binning = fields.String(metadata={"description": "the bins, in words"})
+    rows = fields.Integer(metadata={"description": "out-of-fold predictions pooled (each row once per repeat)"})
+    curve = fields.List(fields.Nested(ReliabilityBinSchema))
+    ece = fields.Float(allow_none=True, metadata={
+        "description": "expected calibration error on those bins: sum of (bin rows / rows) * |observed - predicted|"})
+    folds = fields.List(fields.Dict(), metadata={
+        "description": "per fold: repeat, fold, its points [mean_predicted, fraction_observed, count] per non-empty "
+                       "bin, and its ece"})
+
+
 class SubmissionResultSchema(Schema):
     cv = fields.Nested(CrossValidationSchema)
     coefficients = fields.Dict(allow_none=True, metadata={
@@ -308,6 +334,8 @@ class SubmissionResultSchema(Schema):
     search = fields.Dict(allow_none=True, metadata={
         "description": "nested search: how often each value was chosen, the naive best inner score mean beside "
                        "the nested estimate"})
+    calibration = fields.Nested(CalibrationSchema, allow_none=True, metadata={
+        "description": "classification with probabilities: the reliability curve of the out-of-fold predictions"})
     baseline = fields.Nested(BaselineSchema, allow_none=True)
     holdout = fields.Nested(HoldoutResultSchema, allow_none=True)
     verdict = fields.Nested(VerdictSchema, allow_none=True)

@@ -32,6 +32,7 @@ from service.submission.dispatch import fold_cells
 from service.submission.resolved import ResolvedConfig, ValidationPlan
 from service.vocabulary import LIVE_STATES, TERMINAL_STATES
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
+from worker.learning.calibration import pooled
 from worker.learning.curve import SHUFFLE_NOTE
 from worker.learning.fit_readings import curve_summary, fit_gap, search_summary
 from worker.learning.pipeline import baseline_description
@@ -86,6 +87,7 @@ def summary_document(
         "learning_curve": curve,
         "learning_curve_note": SHUFFLE_NOTE if curve else None,
         "search": search_summary(ok, metrics),
+        "calibration": pooled(ok),
         "baseline": {
             **baseline_description(task),
             "folds": "the folds where the candidate succeeded",

@@ -170,24 +170,24 @@ def class_probabilities(proba: np.ndarray, model_classes: Any, classes: np.ndarr
 
 
 def predictions(
-    model: Any, X: Any, metric_names: Sequence[str], classes: Any = None
+    model: Any, X: Any, metric_names: Sequence[str], classes: Any = None, *, proba: bool = False
 ) -> tuple[Any, Any, Any]:
     """Predict once: labels and/or probabilities as the metrics need, and the classes to score them on.
 
     With ``classes`` (the dataset's, ``class_labels``) the probabilities get one column per class in
     that order (``class_probabilities``) and the classes returned are those; without, the model's
-    ``classes_``.
+    ``classes_``. ``proba``: predict probabilities even if no metric needs them (for calibration).
     """
-    needs_proba = any(spec_of(m).needs_proba for m in metric_names)
+    needs_proba = proba or any(spec_of(m).needs_proba for m in metric_names)
     needs_pred = any(not spec_of(m).needs_proba or m in PER_EXAMPLE_FROM_LABELS for m in metric_names)
     pred = model.predict(X) if needs_pred else None
-    proba = model.predict_proba(X) if needs_proba else None
+    probabilities = model.predict_proba(X) if needs_proba else None
     if classes is None:
-        return pred, proba, getattr(model, "classes_", None)
+        return pred, probabilities, getattr(model, "classes_", None)
     labels = np.asarray(classes)
-    if proba is not None:
-        proba = class_probabilities(np.asarray(proba), model.classes_, labels)
-    return pred, proba, labels
+    if probabilities is not None:
+        probabilities = class_probabilities(np.asarray(probabilities), model.classes_, labels)
+    return pred, probabilities, labels
 
 
 def score_predictions(
