@@ -24,6 +24,7 @@ from service.report.charts import (
     fold_chart,
     interval_chart,
 )
+from service.report.calibration import calibration_section
 from service.report.facts import ReportFacts
 from service.report.fitting import diagnosis_section
 from service.report.markup import Markup, element
@@ -78,6 +79,7 @@ def render_report(facts: ReportFacts, base_url: str = "") -> str:
         _fold_section(facts),
         _interval_section(facts),
         diagnosis_section(facts),
+        calibration_section(facts),
         _coefficient_section(facts),
         _provenance_section(facts, base_url),
     )
