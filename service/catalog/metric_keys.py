@@ -38,7 +38,8 @@ def parse_key(text: str) -> tuple[str, dict[str, Any]]:
     match = _NAME.match(text)
     if match is None:
         raise MetricRefused(f"a metric is written name or name(option=value, ...), got {text!r}")
-    name, rest, options = match.group(1), text[match.end():], {}
+    name, rest = match.group(1), text[match.end():]
+    options: dict[str, Any] = {}
     if not rest:
         return name, options
     if not (rest.startswith("(") and rest.rstrip().endswith(")")):
@@ -88,10 +89,10 @@ def resolve_metric(requested: Any, task: str, classes: Sequence[str] | None = No
     if isinstance(requested, str):
         name, options = parse_key(requested)
     elif isinstance(requested, Mapping):
-        name = requested.get("name")
-        if not isinstance(name, str):
-            raise MetricRefused(f"a metric object needs a name (a string), got {requested.get('name')!r}")
-        options = {k: v for k, v in requested.items() if k != "name"}
+        given = requested.get("name")
+        if not isinstance(given, str):
+            raise MetricRefused(f"a metric object needs a name (a string), got {given!r}")
+        name, options = given, {k: v for k, v in requested.items() if k != "name"}
     else:
         raise MetricRefused(f"a metric is a name such as 'f1', 'f1(average=weighted)' or an object "
                             f"{{\"name\": ..., options}}, got {requested!r}")

@@ -11,6 +11,7 @@ from datetime import datetime
 from typing import Any
 
 from service.records.engine import as_utc
+from service.report.calibration import calibration_section
 from service.report.charts import (
     BASELINE,
     CANDIDATE,
@@ -24,7 +25,6 @@ from service.report.charts import (
     fold_chart,
     interval_chart,
 )
-from service.report.calibration import calibration_section
 from service.report.facts import ReportFacts
 from service.report.fitting import diagnosis_section
 from service.report.markup import Markup, element

@@ -64,15 +64,18 @@ def target_range_problems(ctx: WorkerContext, config: ResolvedConfig, dataset_id
     Reads the target of the development rows only (the sealed rows are never opened here), and
     only when a metric asks for a range.
     """
-    floors = {i: target_floor(key) for i, key in enumerate(config.metrics) if config.task == "regression"}
-    floors = {i: floor for i, floor in floors.items() if floor is not None}
+    floors: dict[int, tuple[float, bool]] = {}
+    for i, key in enumerate(config.metrics):
+        needed = target_floor(key) if config.task == "regression" else None
+        if needed is not None:
+            floors[i] = needed
     if not floors:
         return []
     dataset = datasets.get_internal(ctx.engine, dataset_id)
     assert dataset is not None  # checked by the caller
     target = str(dataset["target"])
     lowest = float(store.load_development_frame(ctx.settings, dataset_id, columns=[target])[target].min())
-    problems = []
+    problems: list[FieldProblem] = []
     for i, (floor, strict) in floors.items():
         if lowest < floor or (strict and lowest == floor):
             needs = f"> {floor:g}" if strict else f">= {floor:g}"

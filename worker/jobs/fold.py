@@ -20,10 +20,10 @@ from service.submission.resolved import ResolvedConfig
 from service.vault.folds import Split
 from service.vocabulary import TERMINAL_STATES
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
+from worker.learning.calibration import fold_bins
 from worker.learning.curve import curve_points
 from worker.learning.development import DevelopmentData, column_kinds, load_development, split_for
 from worker.learning.pipeline import MODEL_STEP, baseline_estimator, build_pipeline, fit_in_place, output_feature_names
-from worker.learning.calibration import fold_bins
 from worker.learning.scoring import (
     class_labels,
     predictions,

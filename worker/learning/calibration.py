@@ -35,7 +35,7 @@ def fold_bins(y: np.ndarray, proba: np.ndarray, classes: np.ndarray) -> dict[str
     y = np.asarray(y)
     if len(classes) == 2:
         score, outcome = p[:, 1], (y == classes[1]).astype(np.float64)
-        target = {"kind": "positive_class", "positive_class": str(classes[1])}
+        target: dict[str, str | None] = {"kind": "positive_class", "positive_class": str(classes[1])}
     else:
         top = p.argmax(axis=1)
         score, outcome = p[np.arange(len(y)), top], (np.asarray(classes)[top] == y).astype(np.float64)

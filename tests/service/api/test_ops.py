@@ -64,5 +64,6 @@ def test_catalog_lists_estimators_transformers_and_metrics(api: Api) -> None:
     # Choices are listed with what they accept; a quantile has no default and must be declared.
     average = {o["name"]: o for o in metrics["f1"]["options"]}["average"]
     assert average["choices"] == ["binary", "micro", "macro", "weighted"] and average["required"] is False
-    assert metrics["pinball_loss"]["options"][0]["name"] == "alpha" and metrics["pinball_loss"]["options"][0]["required"]
+    alpha = metrics["pinball_loss"]["options"][0]
+    assert alpha["name"] == "alpha" and alpha["required"] is True
     assert metrics["matthews_corrcoef"]["bounds"] == [-1.0, 1.0] and metrics["matthews_corrcoef"]["options"] == []

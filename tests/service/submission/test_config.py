@@ -156,7 +156,8 @@ def test_metric_choices_resolve_to_keys_that_spell_them_out() -> None:
     assert _metrics(THREE, "f1", "average_precision", {"name": "recall", "average": "micro"}) == [
         "f1(average=macro)", "average_precision(average=macro)", "recall(average=micro)"]
     # A key resolves to itself, so one copied from a summary or policy is the same metric.
-    assert _metrics(BINARY, 'f1(average=binary, pos_label="on time")', "f1") == ['f1(average=binary, pos_label="on time")']
+    spelled = 'f1(average=binary, pos_label="on time")'
+    assert _metrics(BINARY, spelled, "f1") == [spelled]
 
 
 def test_choices_are_part_of_the_configuration_fingerprint() -> None:

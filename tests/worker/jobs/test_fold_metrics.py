@@ -32,7 +32,8 @@ def _classification(ctx: WorkerContext, frame: Any, metrics: list[str], folds: i
     frame.columns = [c.replace(" ", "_") for c in frame.columns]
     frame = frame.sort_values("target", kind="stable")  # sorted by class, as real exports often are
     order = np.random.default_rng(0).permutation(len(frame))
-    dev, hold = frame.iloc[np.sort(order[: int(len(frame) * 0.85)])], frame.iloc[np.sort(order[int(len(frame) * 0.85):])]
+    cut = int(len(frame) * 0.85)
+    dev, hold = frame.iloc[np.sort(order[:cut])], frame.iloc[np.sort(order[cut:])]
     dataset = add_dataset(ctx, dev, hold, "target", "classification", scheme="stratified", folds=folds, seed=5)
     features = [c for c in dev.columns if c != "target"]
     config = config_document(dataset, "LogisticRegression", params={"C": 0.3, "max_iter": 5000},
