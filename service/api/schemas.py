@@ -74,7 +74,7 @@ class MetricSchema(Schema):
     default = fields.Boolean(metadata={"description": "used when a submission names no metrics"})
     options = fields.List(fields.Nested(MetricOptionSchema), metadata={
         "description": "choices a submission declares as name(option=value, ...) or {\"name\": ..., option: "
-                       "value}; stored spelled out, e.g. f1(average=binary, pos_label=yes)"})
+                       "value}; stored spelled out, e.g. f1(average=binary;pos_label=yes)"})
     in_target_units = fields.Boolean(metadata={
         "description": "values are in the target's units (or their square): no default margin fits every dataset"})
 

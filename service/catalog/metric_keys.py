@@ -3,10 +3,14 @@
 A submission names a metric as a string, ``"f1"`` or ``"f1(average=weighted)"``, or as an object,
 ``{"name": "f1", "average": "weighted"}``. Resolution checks the name against the dataset's task and
 each option against the dataset (its classes), fills in the defaults that depend on it (the average,
-the positive label) and returns the canonical key, every option spelled out in the spec's order:
-``f1(average=binary, pos_label=yes)``, ``pinball_loss(alpha=0.9)``. Words and labels made only of
-letters, digits and ``_.+-`` are written bare; other labels as JSON strings (``pos_label="no sale"``).
-Numbers are written as Python writes a float (``0.9``, ``1.0``), so one choice has one key.
+the positive label) and returns the canonical key, every option spelled out in the spec's order and
+separated by ``;``: ``f1(average=binary;pos_label=yes)``, ``pinball_loss(alpha=0.9)``. Numbers are written
+as Python writes a float (``0.9``, ``1.0``), so one choice has one key; a label with characters other
+than letters, digits and ``_.+-`` is percent-encoded (``pos_label=no%20sale``). A key so never holds a
+space, comma, quote, brace or backslash: it is used as is inside JSON paths of the records DB (the
+board's ranking), where PostgreSQL's path arrays split on commas and SQLite's quoted keys end at a
+quote. On input, options may also be separated by commas and a label written as a JSON string
+(``f1(average=binary, pos_label="no sale")`` is read as ``f1(average=binary;pos_label=no%20sale)``).
 
 Resolving a key again gives the same key, so a key copied from a summary or a policy is accepted
 as it is. Without the dataset's classes (``classes=None``) defaults that depend on them are left
@@ -21,11 +25,13 @@ import math
 import re
 from collections.abc import Mapping, Sequence
 from typing import Any
+from urllib.parse import quote, unquote
 
 from service.catalog.metrics import METRIC_OPTIONS, METRICS, MetricSpec
 
 _NAME = re.compile(r"\s*([A-Za-z0-9_]+)\s*")
 _BARE = re.compile(r"[A-Za-z0-9_.+\-]+")
+_WORD = re.compile(r"[A-Za-z0-9_.+\-%]+")  # a bare value as written: percent-encoding allowed
 _DECODER = json.JSONDecoder()
 
 
@@ -48,19 +54,19 @@ def parse_key(text: str) -> tuple[str, dict[str, Any]]:
     while body.strip():
         option = re.match(r"\s*([A-Za-z_]+)\s*=\s*", body[at:])
         if option is None:
-            raise MetricRefused(f"options are written option=value and separated by commas, got {text!r}")
+            raise MetricRefused(f"options are written option=value and separated by ';', got {text!r}")
         at += option.end()
         if body[at:at + 1] == '"':
             value, at = _DECODER.raw_decode(body, at)
         else:
-            bare = _BARE.match(body, at)
+            bare = _WORD.match(body, at)
             if bare is None:
                 raise MetricRefused(f"option {option.group(1)!r} has no value in {text!r}")
-            value, at = bare.group(0), bare.end()
+            value, at = unquote(bare.group(0)), bare.end()
         options[option.group(1)] = value
-        tail = re.match(r"\s*(,|$)", body[at:])
+        tail = re.match(r"\s*([,;]|$)", body[at:])
         if tail is None:
-            raise MetricRefused(f"options are written option=value and separated by commas, got {text!r}")
+            raise MetricRefused(f"options are written option=value and separated by ';', got {text!r}")
         at += tail.end()
         if not tail.group(1):
             break
@@ -70,14 +76,14 @@ def parse_key(text: str) -> tuple[str, dict[str, Any]]:
 def write_key(spec: MetricSpec, options: Mapping[str, Any]) -> str:
     """Return the canonical key: the name, then the set options in the spec's order."""
     parts = [f"{name}={_write_value(options[name])}" for name in spec.options if options.get(name) is not None]
-    return f"{spec.name}({', '.join(parts)})" if parts else spec.name
+    return f"{spec.name}({';'.join(parts)})" if parts else spec.name
 
 
 def _write_value(value: Any) -> str:
     if isinstance(value, float):
         return repr(value)
     text = str(value)
-    return text if _BARE.fullmatch(text) else json.dumps(text)
+    return text if _BARE.fullmatch(text) else quote(text, safe="")
 
 
 def resolve_metric(requested: Any, task: str, classes: Sequence[str] | None = None) -> str:

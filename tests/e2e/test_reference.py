@@ -95,7 +95,7 @@ def test_breast_cancer_logistic_fold_scores_equal_cross_validate(stack: Stack, c
                             "balanced_accuracy": "balanced_accuracy", "f1": "f1", "brier": "neg_brier_score"},
     )
     # "f1" is stored with its choice spelled out: binary averaging on the larger label (1).
-    f1 = "f1(average=binary, pos_label=1)"
+    f1 = "f1(average=binary;pos_label=1)"
     assert doc["config"]["metrics"] == ["accuracy", "roc_auc", "log_loss", "balanced_accuracy", f1, "brier"]
     for i, fold in enumerate(doc["result"]["cv"]["folds"]):
         assert fold["scores"][f1] == pytest.approx(reference["test_f1"][i], rel=1e-9)
@@ -121,7 +121,7 @@ def test_metric_choices_and_calibration_on_breast_cancer(stack: Stack, cancer: d
                     "average_precision"],
     })
     assert doc["state"] == "succeeded", doc
-    keys = ["precision(average=binary, pos_label=0)", "recall(average=weighted)", "matthews_corrcoef",
+    keys = ["precision(average=binary;pos_label=0)", "recall(average=weighted)", "matthews_corrcoef",
             "average_precision(pos_label=1)", "accuracy"]  # accuracy: the default policy's primary metric
     assert doc["config"]["metrics"] == keys
     dev = development(stack.client(), cancer["id"])

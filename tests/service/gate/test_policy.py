@@ -83,7 +83,7 @@ def test_metric_choices_are_resolved_to_their_key() -> None:
     assert policy.primary_metric == "pinball_loss(alpha=0.9)" and policy.greater_is_better is False
     assert policy.champion_margin == 0.0  # in the target's units: no default margin
     policy = parse_policy({"primary_metric": "f1"}, "classification", classes=["no", "yes"])
-    assert policy.primary_metric == "f1(average=binary, pos_label=yes)" and policy.greater_is_better is True
+    assert policy.primary_metric == "f1(average=binary;pos_label=yes)" and policy.greater_is_better is True
     problems = _problems({"primary_metric": "pinball_loss"})
     assert "needs alpha to be declared" in problems["/primary_metric"]
 

@@ -148,16 +148,16 @@ THREE = {**DATASET, "task": "classification", "classes": ["a", "b", "c"]}
 def test_metric_choices_resolve_to_keys_that_spell_them_out() -> None:
     assert _metrics(DATASET, "pinball_loss(alpha=0.9)", {"name": "tweedie_deviance", "power": 1.5}, "mape") == [
         "pinball_loss(alpha=0.9)", "tweedie_deviance(power=1.5)", "mape"]
-    # Two classes: binary averaging on the larger label unless told; a label with a space is quoted.
+    # Two classes: binary averaging on the larger label unless told; a label with a space is percent-encoded.
     assert _metrics(BINARY, "f1", {"name": "precision", "pos_label": "late"}, "recall(average=weighted)",
                     "average_precision") == [
-        'f1(average=binary, pos_label="on time")', "precision(average=binary, pos_label=late)",
-        "recall(average=weighted)", 'average_precision(pos_label="on time")']
+        "f1(average=binary;pos_label=on%20time)", "precision(average=binary;pos_label=late)",
+        "recall(average=weighted)", "average_precision(pos_label=on%20time)"]
     assert _metrics(THREE, "f1", "average_precision", {"name": "recall", "average": "micro"}) == [
         "f1(average=macro)", "average_precision(average=macro)", "recall(average=micro)"]
     # A key resolves to itself, so one copied from a summary or policy is the same metric.
-    spelled = 'f1(average=binary, pos_label="on time")'
-    assert _metrics(BINARY, spelled, "f1") == [spelled]
+    spelled = "f1(average=binary;pos_label=on%20time)"
+    assert _metrics(BINARY, spelled, "f1", 'f1(average=binary, pos_label="on time")') == [spelled]
 
 
 def test_choices_are_part_of_the_configuration_fingerprint() -> None:

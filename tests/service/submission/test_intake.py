@@ -254,11 +254,11 @@ def test_probability_metrics_are_refused_for_a_model_without_probabilities(
     labels_only = SubmissionRequest(dataset=DatasetRef(cancer["id"]), model=ModelSpec("SVC"), metrics=("f1",))
     row, created = intake.submit(records, redis, settings, keys["owner"], labels_only)
     # The stored key spells out the choice: breast cancer's classes are 0 and 1, the positive one is 1.
-    assert created is True and row["config"]["metrics"] == ["f1(average=binary, pos_label=1)", "accuracy"]
+    assert created is True and row["config"]["metrics"] == ["f1(average=binary;pos_label=1)", "accuracy"]
     with_proba = SubmissionRequest(dataset=DatasetRef(cancer["id"]), model=ModelSpec("SVC", {"probability": True}),
                                    metrics=metrics)
     row, created = intake.submit(records, redis, settings, keys["owner"], with_proba)
-    assert created is True and row["config"]["metrics"] == ["accuracy", "roc_auc", "f1(average=binary, pos_label=1)",
+    assert created is True and row["config"]["metrics"] == ["accuracy", "roc_auc", "f1(average=binary;pos_label=1)",
                                                         "log_loss"]
     assert row["config"]["linear"] is False
 

@@ -47,7 +47,7 @@ def _classification(ctx: WorkerContext, frame: Any, metrics: list[str], folds: i
 
 
 def test_binary_choices_and_calibration_on_breast_cancer(ctx: WorkerContext) -> None:
-    metrics = ["precision(average=binary, pos_label=0)", "recall(average=weighted)", "f1(average=macro)",
+    metrics = ["precision(average=binary;pos_label=0)", "recall(average=weighted)", "f1(average=macro)",
                "matthews_corrcoef", "average_precision(pos_label=1)", "balanced_accuracy"]
     rows, X, y, cv, model = _classification(ctx, load_breast_cancer(as_frame=True).frame, metrics, 4)
     scoring = {

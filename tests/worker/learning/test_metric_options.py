@@ -52,11 +52,11 @@ def test_binary_average_uses_the_declared_positive_label() -> None:
     pred = model.predict(data.data)
     classes = class_labels(y)
     key = _key({"name": "recall", "pos_label": "malignant"}, "classification", ["benign", "malignant"])
-    assert key == "recall(average=binary, pos_label=malignant)"
+    assert key == "recall(average=binary;pos_label=malignant)"
     assert compute(key, y, pred, None, classes) == skm.recall_score(y, pred, pos_label="malignant")
     default = _key("recall", "classification", ["benign", "malignant"])
-    assert default == "recall(average=binary, pos_label=malignant)"  # classes[1] in sorted order
-    key = _key("precision(average=binary, pos_label=benign)", "classification", ["benign", "malignant"])
+    assert default == "recall(average=binary;pos_label=malignant)"  # classes[1] in sorted order
+    key = _key("precision(average=binary;pos_label=benign)", "classification", ["benign", "malignant"])
     assert compute(key, y, pred, None, classes) == skm.precision_score(y, pred, pos_label="benign")
     macro = _key("f1(average=macro)", "classification", ["benign", "malignant"])
     assert compute(macro, y, pred, None, classes) == skm.f1_score(y, pred, average="macro")
