@@ -29,10 +29,16 @@ BINNING = (f"{BINS} equal-width bins of [0, 1] (edges 0, 0.1, ..., 1; a probabil
            "the bin below), as sklearn.calibration.calibration_curve(n_bins=10, strategy='uniform')")
 
 
-def fold_bins(y: np.ndarray, proba: np.ndarray, classes: np.ndarray) -> dict[str, Any]:
-    """Return one fold's bin counts and sums; ``proba`` has one column per class of ``classes``."""
+def fold_bins(y: np.ndarray, proba: np.ndarray, classes: np.ndarray) -> dict[str, Any] | None:
+    """Return one fold's bin counts and sums; ``proba`` has one column per class of ``classes``.
+
+    None when a probability is not a finite number in [0, 1] (a model's numerical failure): such a
+    fold has no place on a reliability curve, and its metrics say what went wrong.
+    """
     p = np.asarray(proba, dtype=np.float64)
     y = np.asarray(y)
+    if p.size == 0 or not (np.isfinite(p).all() and p.min() >= 0.0 and p.max() <= 1.0):
+        return None
     if len(classes) == 2:
         score, outcome = p[:, 1], (y == classes[1]).astype(np.float64)
         target: dict[str, str | None] = {"kind": "positive_class", "positive_class": str(classes[1])}

@@ -7,6 +7,7 @@ from types import SimpleNamespace
 from typing import Any, cast
 
 import numpy as np
+import pytest
 from sklearn.datasets import load_breast_cancer
 from sklearn.linear_model import LogisticRegression
 from sklearn.model_selection import StratifiedKFold
@@ -56,3 +57,14 @@ def test_the_pooled_curve_is_one_line_and_fold_points_are_not_joined() -> None:
 def test_no_probabilities_says_so_and_regression_has_no_section() -> None:
     assert "No reliability curve" in str(calibration_section(facts({})))
     assert calibration_section(facts({}, "regression")) is None
+
+
+def test_a_fold_with_non_finite_probabilities_is_left_out() -> None:
+    # A NaN probability has no bin; the fold stores no bins and the pooled curve is built without it.
+    classes = np.array([0, 1])
+    assert fold_bins(np.array([0, 1]), np.array([[0.5, 0.5], [np.nan, np.nan]]), classes) is None
+    kept = fold_bins(np.array([0, 1]), np.array([[0.8, 0.2], [0.3, 0.7]]), classes)
+    result = pooled([{"repeat": 0, "fold": 0, "calibration": None}, {"repeat": 0, "fold": 1, "calibration": kept}])
+    assert result is not None and result["rows"] == 2 and [f["fold"] for f in result["folds"]] == [1]
+    # Two rows, bins 0.2 (observed 0) and 0.7 (observed 1): ECE = (0.2 + 0.3) / 2 (computed by hand).
+    assert result["ece"] == pytest.approx(0.25)
