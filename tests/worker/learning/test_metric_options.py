@@ -17,7 +17,7 @@ from sklearn.preprocessing import StandardScaler, label_binarize
 
 from service.catalog.metric_keys import resolve_metric
 from service.catalog.metrics import METRICS, spec_of
-from worker.learning.scoring import class_labels, compute, score_model, score_predictions
+from worker.learning.scoring import class_labels, compute, per_example, score_model, score_predictions
 
 
 def _fitted(X: np.ndarray, y: np.ndarray) -> object:
@@ -165,3 +165,22 @@ def test_every_metric_has_a_range_containing_its_values_and_a_direction() -> Non
     assert spec_of("f1(average=weighted)").bounds == (0.0, 1.0)
     assert spec_of("explained_variance").bounds == (None, 1.0)
     assert spec_of("pinball_loss(alpha=0.9)").bounds == (0.0, None)
+
+
+@pytest.mark.parametrize("key", ["pinball_loss(alpha=0.9)", "pinball_loss(alpha=0.25)", "mape", "poisson_deviance",
+                                 "gamma_deviance", "tweedie_deviance(power=1.5)", "tweedie_deviance(power=3.0)",
+                                 "tweedie_deviance(power=-1.0)", "tweedie_deviance(power=0.0)"])
+def test_per_row_values_average_to_sklearns_metric(key: str) -> None:
+    # The parameter-free ladder compares per-row holdout values; their mean must be scikit-learn's metric
+    # (same function, same arguments, diabetes bundled with scikit-learn, predictions of a Poisson GLM).
+    X, y = load_diabetes(return_X_y=True)
+    pred = PoissonRegressor(alpha=1e-3, max_iter=1000).fit(X, y).predict(X)
+    rows = per_example(key, y, pred, None, None)
+    assert rows is not None and rows.shape == y.shape
+    assert float(rows.mean()) == pytest.approx(compute(key, y, pred), rel=1e-12)
+
+
+def test_no_per_row_values_where_the_metric_is_undefined_or_not_a_mean() -> None:
+    assert per_example("gamma_deviance", np.array([0.0, 1.0]), np.array([1.0, 1.0]), None, None) is None
+    assert per_example("median_absolute_error", np.array([0.0, 1.0]), np.array([1.0, 1.0]), None, None) is None
+    assert per_example("f1(average=macro)", np.array([0, 1]), np.array([0, 1]), None, np.array([0, 1])) is None
