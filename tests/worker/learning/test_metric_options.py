@@ -17,7 +17,8 @@ from sklearn.preprocessing import StandardScaler, label_binarize
 
 from service.catalog.metric_keys import resolve_metric
 from service.catalog.metrics import METRICS, spec_of
-from worker.learning.scoring import class_labels, compute, per_example, score_model, score_predictions
+from worker.learning.per_row import per_example
+from worker.learning.scoring import class_labels, compute, score_model, score_predictions
 
 
 def _fitted(X: np.ndarray, y: np.ndarray) -> object:
