@@ -57,7 +57,11 @@ def parse_key(text: str) -> tuple[str, dict[str, Any]]:
             raise MetricRefused(f"options are written option=value and separated by ';', got {text!r}")
         at += option.end()
         if body[at:at + 1] == '"':
-            value, at = _DECODER.raw_decode(body, at)
+            try:
+                value, at = _DECODER.raw_decode(body, at)
+            except json.JSONDecodeError:
+                raise MetricRefused(f"option {option.group(1)!r} has a quoted value that is not a JSON string in "
+                                    f"{text!r}") from None
         else:
             bare = _WORD.match(body, at)
             if bare is None:
@@ -169,7 +173,7 @@ def _label_options(spec: MetricSpec, given: Mapping[str, Any], classes: Sequence
                                 f"not average (got average={average!r})")
         if two is False and pos_label is not None:
             raise MetricRefused(f"{spec.name} pos_label is for two-class datasets; this one has {len(classes or ())}"
-                                f" classes: declare average ({', '.join(words[1:])})")
+                                f" classes: declare average ({', '.join(words)})")
         if two and pos_label is None:
             pos_label = classes[1] if classes else None
         if two is False and average is None:

@@ -188,6 +188,9 @@ def test_an_unknown_metric_is_refused_as_unknown_with_the_accepted_names() -> No
     (BINARY, "f1(pos_label=maybe)", "pos_label must be one of the dataset's classes (late, on time)"),
     (BINARY, "f1(average=macro, pos_label=late)", "pos_label goes with average=binary only"),
     (BINARY, "f1(average=macro", "a metric is written name or name(option=value, ...)"),
+    (BINARY, 'f1(pos_label="late)', "option 'pos_label' has a quoted value that is not a JSON string"),
+    (BINARY, "f1(average=macro;;)", "options are written option=value and separated by ';'"),
+    (THREE, "average_precision(pos_label=a)", "declare average (micro, macro, weighted)"),
 ])
 def test_bad_choices_are_refused_with_what_is_accepted(dataset: dict[str, Any], metric: Any, words: str) -> None:
     assert words in _refusals(dataset, metric)["/metrics/0"]
