@@ -62,7 +62,7 @@ class PolicyItem(MethodView):
         """Set the review policy (steward); each PUT is a new version, audited, judging later submissions."""
         caller, engine = current_key(), service_context().engine
         dataset = team_dataset(caller, ds_id)
-        document = parse_policy(_json_body(), str(dataset["task"])).to_document(0)
+        document = parse_policy(_json_body(), str(dataset["task"]), classes=dataset.get("classes")).to_document(0)
         del document["version"]  # the records assign it
         version = policies.put(engine, dataset["id"], document, caller.id)
         return json_response({"version": version, **document})

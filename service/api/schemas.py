@@ -55,6 +55,13 @@ class CatalogEntrySchema(Schema):
     has_predict_proba_by_default = fields.Boolean()
 
 
+class MetricOptionSchema(Schema):
+    name = fields.String(metadata={"example": "average"})
+    description = fields.String()
+    choices = fields.List(fields.String(), metadata={"description": "the accepted words; empty for a value"})
+    required = fields.Boolean(metadata={"description": "no default: a submission must declare it"})
+
+
 class MetricSchema(Schema):
     name = fields.String()
     bounds = fields.List(fields.Float(allow_none=True), metadata={
@@ -65,6 +72,11 @@ class MetricSchema(Schema):
     needs_proba = fields.Boolean()
     description = fields.String()
     default = fields.Boolean(metadata={"description": "used when a submission names no metrics"})
+    options = fields.List(fields.Nested(MetricOptionSchema), metadata={
+        "description": "choices a submission declares as name(option=value, ...) or {\"name\": ..., option: "
+                       "value}; stored spelled out, e.g. f1(average=binary;pos_label=yes)"})
+    in_target_units = fields.Boolean(metadata={
+        "description": "values are in the target's units (or their square): no default margin fits every dataset"})
 
 
 class CatalogSchema(Schema):

@@ -49,6 +49,23 @@ class DatasetRefField(fields.Field[DatasetRef]):
                               f"fingerprint, got {value!r}")
 
 
+class MetricField(fields.Field[Any]):
+    """A metric: a name or key (``"f1(average=weighted)"``) or an object ``{"name": ..., options}``.
+
+    Only the shape is checked here; names and options are resolved against the dataset
+    (``service.catalog.metric_keys``), which answers every problem at ``/metrics/<i>``.
+    """
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        if isinstance(value, str) and value.strip():
+            return value
+        if isinstance(value, dict) and isinstance(value.get("name"), str):
+            return dict(value)
+        raise ValidationError(f"a metric is a name such as 'f1' or 'f1(average=weighted)', or an object with a "
+                              f"name and its options such as {{\"name\": \"pinball_loss\", \"alpha\": 0.9}}, "
+                              f"got {value!r}")
+
+
 class PreprocessStepSchema(Schema):
     transformer = fields.String(required=True, metadata={"example": "StandardScaler"})
     columns = fields.List(fields.String(), required=True)
@@ -111,8 +128,15 @@ class SubmissionRequestSchema(Schema):
     model = fields.Nested(ModelSchema, required=True)
     validation = fields.Nested(ValidationOptionsSchema,
                                load_default=lambda: {"folds": None, "repeats": 1, "test": None})
-    metrics = fields.List(fields.String(), load_default=None, allow_none=True, metadata={
-        "description": "default: the task's default metrics; see GET /v1/catalog"})
+    metrics = fields.List(MetricField(metadata={"oneOf": [
+        {"type": "string", "example": "f1(average=weighted)"},
+        {"type": "object", "required": ["name"], "additionalProperties": True,
+         "properties": {"name": {"type": "string", "example": "pinball_loss"}},
+         "example": {"name": "pinball_loss", "alpha": 0.9}},
+    ]}), load_default=None, allow_none=True, metadata={
+        "description": "default: the task's default metrics; see GET /v1/catalog. A metric with choices is "
+                       "named with them, 'f1(average=weighted)', or as an object {\"name\": \"f1\", \"average\": "
+                       "\"weighted\"}; the stored configuration spells out every choice"})
     label = fields.String(load_default="", validate=validate.Length(max=200))
     search = fields.Nested(SearchOptionsSchema, load_default=None, allow_none=True, metadata={
         "description": "nested search: each outer fold tunes on its training rows only, scored by the first "
@@ -272,6 +296,32 @@ class ProvenanceSchema(Schema):
     versions = fields.Dict(keys=fields.String(), values=fields.String())
 
 
+class ReliabilityBinSchema(Schema):
+    low = fields.Float()
+    high = fields.Float()
+    count = fields.Integer(metadata={"description": "out-of-fold predictions in the bin, over every fold"})
+    mean_predicted = fields.Float(allow_none=True, metadata={"description": "null for an empty bin"})
+    fraction_observed = fields.Float(allow_none=True, metadata={
+        "description": "positive_class: the fraction of the bin's rows of that class; top_label: the fraction "
+                       "whose most probable class was right"})
+
+
+class CalibrationSchema(Schema):
+    """The reliability of the candidate's predicted probabilities, pooled over the out-of-fold predictions."""
+
+    kind = fields.String(validate=validate.OneOf(("positive_class", "top_label")), metadata={
+        "description": "two classes: the probability of positive_class; more: the largest probability of a row"})
+    positive_class = fields.String(allow_none=True)
+    binning = fields.String(metadata={"description": "the bins, in words"})
+    rows = fields.Integer(metadata={"description": "out-of-fold predictions pooled (each row once per repeat)"})
+    curve = fields.List(fields.Nested(ReliabilityBinSchema))
+    ece = fields.Float(allow_none=True, metadata={
+        "description": "expected calibration error on those bins: sum of (bin rows / rows) * |observed - predicted|"})
+    folds = fields.List(fields.Dict(), metadata={
+        "description": "per fold: repeat, fold, its points [mean_predicted, fraction_observed, count] per non-empty "
+                       "bin, and its ece"})
+
+
 class SubmissionResultSchema(Schema):
     cv = fields.Nested(CrossValidationSchema)
     coefficients = fields.Dict(allow_none=True, metadata={
@@ -285,6 +335,8 @@ class SubmissionResultSchema(Schema):
     search = fields.Dict(allow_none=True, metadata={
         "description": "nested search: how often each value was chosen, the naive best inner score mean beside "
                        "the nested estimate"})
+    calibration = fields.Nested(CalibrationSchema, allow_none=True, metadata={
+        "description": "classification with probabilities: the reliability curve of the out-of-fold predictions"})
     baseline = fields.Nested(BaselineSchema, allow_none=True)
     holdout = fields.Nested(HoldoutResultSchema, allow_none=True)
     verdict = fields.Nested(VerdictSchema, allow_none=True)

@@ -9,8 +9,9 @@ Defaults and where they come from:
   classification, ``service.catalog.metrics.DEFAULT_METRICS``).
 - baseline_alpha = champion_alpha = 0.05: the conventional level (*common practice*).
 - champion_margin and holdout_gap.floor: 0.01 for unit-free metrics (accuracy, balanced_accuracy,
-  f1, roc_auc, r2, log_loss, brier), 0 for metrics in the target's units (rmse, mae, mse), whose scale
-  no default can know (*common practice*; a steward should set them for regression).
+  f1, roc_auc, r2, log_loss, brier, ...), 0 for metrics in the target's units (rmse, mae, mse,
+  median_absolute_error, pinball_loss, Poisson and Tweedie deviances: ``MetricSpec.in_target_units``),
+  whose scale no default can know (*common practice*; a steward should set them for regression).
 - holdout_gap.k_std = 3.0 (*common practice*: three standard deviations of (holdout - CV mean), whose
   spread is estimated from the fold spread scaled to the holdout's size; two would fail about one sound
   model in twenty on chance alone).
@@ -35,13 +36,14 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from typing import Any
 
-from service.catalog.metrics import DEFAULT_METRICS, METRICS
+from service.catalog.metric_keys import MetricRefused, resolve_metric
+from service.catalog.metrics import DEFAULT_METRICS, METRICS, spec_of
 from service.errors import FieldProblem, InputError
 from service.gate.online import LORD_PLUS_PLUS, ONLINE_PROCEDURES
 from service.vocabulary import RELEASE_MODES
 
 CHAMPION_RULES = ("cv", "holdout", "both")  # which champion comparison decides
-UNIT_METRICS = frozenset({"rmse", "mae", "mse"})  # in the target's units (mse: squared)
+UNIT_METRICS = frozenset(m.name for m in METRICS.values() if m.in_target_units)  # in the target's units
 MAX_DIGITS, MAX_BUDGET, MAX_WINDOW_HOURS = 12, 10_000, 24.0 * 366
 TEAM_BUDGET_MULTIPLE = 3  # a team's default budget: three submitters' worth (*common practice*, a judgement)
 
@@ -127,11 +129,15 @@ def default_policy(task: str, metrics: Sequence[str] | None = None) -> Policy:
     return _defaults_for(primary)
 
 
-def parse_policy(doc: Mapping[str, Any], task: str, allowed_metrics: Sequence[str] | None = None) -> Policy:
+def parse_policy(
+    doc: Mapping[str, Any], task: str, allowed_metrics: Sequence[str] | None = None,
+    classes: Sequence[str] | None = None,
+) -> Policy:
     """Parse a policy document for a dataset of ``task``; missing fields take the defaults.
 
-    ``allowed_metrics`` are the metric names the dataset accepts (default: every metric of the task).
-    Raises InputError listing every bad field.
+    ``allowed_metrics`` are the metric names the dataset accepts (default: every metric of the task,
+    with its choices: ``f1(average=weighted)``, resolved to its key with the dataset's ``classes``
+    when given, ``service.catalog.metric_keys``). Raises InputError listing every bad field.
     """
     allowed = list(allowed_metrics) if allowed_metrics is not None else [
         m.name for m in METRICS.values() if m.task == task]
@@ -142,12 +148,13 @@ def parse_policy(doc: Mapping[str, Any], task: str, allowed_metrics: Sequence[st
     _unknown(doc, {f for f in _TOP_FIELDS} | {"version"}, "", problems)
 
     primary = doc.get("primary_metric", allowed[0] if allowed else DEFAULT_METRICS.get(task, ("",))[0])
-    if not isinstance(primary, str) or primary not in allowed:
-        problems.append(FieldProblem("/primary_metric", f"primary_metric must be one of {', '.join(allowed)} "
-                                     f"for a {task} dataset, got {primary!r}"))
+    key, refused = _primary_key(primary, task, allowed, allowed_metrics is not None, classes)
+    if key is None:
+        problems.append(FieldProblem("/primary_metric", refused or f"primary_metric must be one of "
+                                     f"{', '.join(allowed)} for a {task} dataset, got {primary!r}"))
         base = default_policy(task) if task in DEFAULT_METRICS else _defaults_for("rmse")
     else:
-        base = _defaults_for(primary)
+        base = _defaults_for(key)
     metric = base.primary_metric
     if "greater_is_better" in doc and doc["greater_is_better"] is not base.greater_is_better:
         problems.append(FieldProblem("/greater_is_better", f"greater_is_better is fixed by the metric: {metric} "
@@ -184,9 +191,21 @@ _RELEASE_FIELDS = {"mode", "digits", "budget", "window_hours", "team_budget", "l
                    "thresholdout"}
 
 
+def _primary_key(
+    primary: Any, task: str, allowed: Sequence[str], listed: bool, classes: Sequence[str] | None
+) -> tuple[str | None, str | None]:
+    """Return the primary metric's key, or None and why it was refused."""
+    if not isinstance(primary, str | Mapping) or (listed and primary not in allowed):
+        return None, None
+    try:
+        return resolve_metric(primary, task, classes), None
+    except MetricRefused as exc:
+        return None, f"primary_metric: {exc}"
+
+
 def _defaults_for(metric: str) -> Policy:
-    spec = METRICS[metric]
-    unit_free = metric not in UNIT_METRICS
+    spec = spec_of(metric)
+    unit_free = not spec.in_target_units
     small = 0.01 if unit_free else 0.0
     thresholdout = ThresholdoutParams(0.04, 0.01, 100) if unit_free else None
     return Policy(primary_metric=metric, greater_is_better=spec.greater_is_better, champion_margin=small,

@@ -43,11 +43,13 @@ from typing import Any
 
 import numpy as np
 
+from service.catalog.metrics import metric_name
 from service.gate.policy import Policy, ReleaseParams
 
 # Metrics whose value is the mean of per-example values ("mean") or the square root of such a mean.
 PER_EXAMPLE_FORMS = {"mse": "mean", "mae": "mean", "accuracy": "mean", "log_loss": "mean", "brier": "mean",
-                     "rmse": "sqrt_of_mean"}
+                     "rmse": "sqrt_of_mean", "pinball_loss": "mean", "mape": "mean", "poisson_deviance": "mean",
+                     "gamma_deviance": "mean", "tweedie_deviance": "mean"}  # by metric name: options do not matter
 
 
 @dataclass(frozen=True)
@@ -188,7 +190,7 @@ def _ladder_threshold(params: ReleaseParams, metric: str, h: HoldoutScores, best
     """Return the ladder's threshold in metric units and a short description of where it came from."""
     if params.ladder_step is not None:
         return params.ladder_step, f"fixed step {params.ladder_step:g}"
-    form = PER_EXAMPLE_FORMS.get(metric)
+    form = PER_EXAMPLE_FORMS.get(metric_name(metric))
     mine = h.per_example
     if form and mine is not None and best is not None and best_id is not None and best.shape == mine.shape:
         n = mine.size

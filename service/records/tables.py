@@ -121,6 +121,9 @@ fold_results = Table(
     Column("train_scored_rows", Integer),  # how many of them: all, or a seeded sample above 100,000
     Column("curve", JSON),  # learning-curve points [{"fraction", "train_rows", "train_scores", "scores"}] or null
     Column("search", JSON),  # nested search: {"best_params", "best_inner_score", "scoring"} or null
+    # classification with probabilities: per-bin counts and sums of the test rows' predicted probabilities
+    # and outcomes (worker.learning.calibration), pooled into the reliability curve; never a per-row value
+    Column("calibration", JSON),
     Column("fit_seconds", Float),
     Column("score_seconds", Float),
     Column("error", Text),

@@ -12,7 +12,7 @@ from typing import Any
 
 from sqlalchemy import Engine
 
-from service.catalog.metrics import METRICS
+from service.catalog.metrics import METRICS, metric_name
 from service.gate.review_state import holdout_part, policy_in_force
 from service.records import champions, datasets, holdout_releases, keys, submissions
 
@@ -64,7 +64,7 @@ def gather(engine: Engine, row: dict[str, Any]) -> ReportFacts:
     policy = policy_in_force(engine, dataset)
     verdict = row.get("verdict")
     primary = str((verdict or {}).get("primary_metric") or policy["primary_metric"])
-    spec = METRICS.get(primary)
+    spec = METRICS.get(metric_name(primary))
     owner = keys.get_key(engine, row["owner_key_id"])
     return ReportFacts(
         submission=row,

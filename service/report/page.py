@@ -11,6 +11,7 @@ from datetime import datetime
 from typing import Any
 
 from service.records.engine import as_utc
+from service.report.calibration import calibration_section
 from service.report.charts import (
     BASELINE,
     CANDIDATE,
@@ -83,6 +84,7 @@ def render_report(facts: ReportFacts, base_url: str = "", nav: Markup | None = N
         _fold_section(facts),
         _interval_section(facts),
         diagnosis_section(facts),
+        calibration_section(facts),
         _coefficient_section(facts),
         _provenance_section(facts, base_url),
     )

@@ -15,7 +15,8 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
 from typing import Any, Protocol
 
-from service.catalog.metrics import DEFAULT_METRICS, METRICS
+from service.catalog.metric_keys import MetricRefused, resolve_metric
+from service.catalog.metrics import DEFAULT_METRICS
 from service.errors import ConfigRejected, FieldProblem
 from service.submission.resolved import PreprocessStep, ResolvedConfig, ResolvedModel, SearchSpec, ValidationPlan
 
@@ -53,6 +54,10 @@ class ValidationSpec:
     learning_curve: tuple[float, ...] | None = None  # fractions of each training fold, e.g. (0.1, ..., 1.0)
 
 
+# A metric as requested: a name or key ("f1", "f1(average=weighted)"), or an object {"name": ..., options}.
+MetricRequest = str | Mapping[str, Any]
+
+
 @dataclass(frozen=True)
 class SubmissionRequest:
     """A parsed ``POST /v1/submissions`` body."""
@@ -60,7 +65,7 @@ class SubmissionRequest:
     dataset: DatasetRef
     model: ModelSpec
     validation: ValidationSpec = ValidationSpec()
-    metrics: tuple[str, ...] | None = None
+    metrics: tuple[MetricRequest, ...] | None = None
     label: str = ""
     search: SearchSpec | None = None
 
@@ -203,22 +208,25 @@ def _check_categoricals(
 
 
 def _resolve_metrics(
-    requested: tuple[str, ...] | None, task: str, dataset: Mapping[str, Any], problems: _Problems
+    requested: tuple[MetricRequest, ...] | None, task: str, dataset: Mapping[str, Any], problems: _Problems
 ) -> list[str]:
+    """Resolve each requested metric to its key, every choice spelled out (``service.catalog.metric_keys``)."""
+    classes = [str(c) for c in dataset.get("classes") or []] if task == "classification" else None
     if requested is None:
-        return list(DEFAULT_METRICS[task])
+        return [resolve_metric(name, task, classes) for name in DEFAULT_METRICS[task]]
     if not requested:
         problems.add("/metrics", "metrics must name at least one metric, got an empty list")
-    accepted = [m.name for m in METRICS.values() if m.task == task]
-    n_classes = len(dataset.get("classes") or [])
-    for i, name in enumerate(requested):
-        spec = METRICS.get(name)
-        if spec is None or spec.task != task:
-            problems.add(f"/metrics/{i}", f"metric {name!r} does not apply to {task}; use one of: "
-                         f"{', '.join(accepted)}")
-        elif name == "brier" and n_classes > 2:
-            problems.add(f"/metrics/{i}", f"metric 'brier' needs a binary target; this one has {n_classes} classes")
-    return list(dict.fromkeys(requested))
+    keys: list[str] = []
+    for i, item in enumerate(requested):
+        try:
+            key = resolve_metric(item, task, classes)
+        except MetricRefused as exc:
+            problems.add(f"/metrics/{i}", str(exc))
+            continue
+        if key == "brier" and classes is not None and len(classes) > 2:
+            problems.add(f"/metrics/{i}", f"metric 'brier' needs a binary target; this one has {len(classes)} classes")
+        keys.append(key)
+    return list(dict.fromkeys(keys))
 
 
 def _resolve_plan(

@@ -55,6 +55,7 @@ def _result(row: dict[str, Any], folds: list[dict[str, Any]], release: dict[str,
         "learning_curve": summary.get("learning_curve"),
         "learning_curve_note": summary.get("learning_curve_note"),
         "search": summary.get("search"),
+        "calibration": summary.get("calibration"),
         "baseline": summary.get("baseline"),
         # only what the release policy lets out, never the raw score
         "holdout": holdout_part(release, row["state"], row.get("policy_version")),

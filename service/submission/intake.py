@@ -18,7 +18,7 @@ from sqlalchemy.exc import IntegrityError
 
 from service import team_scope
 from service.catalog import load_catalog
-from service.catalog.metrics import METRICS
+from service.catalog.metrics import spec_of
 from service.errors import ConfigRejected, Conflict, FieldProblem, Forbidden, InputError
 from service.gate.review_state import policy_in_force
 from service.ids import new_id
@@ -141,10 +141,16 @@ def _replay(earlier: dict[str, Any], fingerprint: str) -> dict[str, Any]:
 def _check_probability_metrics(resolved: ResolvedConfig, check: dict[str, Any]) -> None:
     if check.get("has_proba", True):
         return
+    estimator = resolved.model.estimator
+    settings = [str(s) for s in check.get("proba_settings") or []]
+    if settings:
+        turn_on = f"set {' or '.join(settings)} in model.params to get them"
+    else:
+        turn_on = f"no parameter of {estimator} gives them: choose a metric computed from labels"
     problems = [
         FieldProblem(f"/metrics/{i}", f"metric {name!r} needs predicted probabilities, which "
-                     f"{resolved.model.estimator} with these parameters does not give")
-        for i, name in enumerate(resolved.metrics) if METRICS[name].needs_proba
+                     f"{estimator} with these parameters does not give; {turn_on}")
+        for i, name in enumerate(resolved.metrics) if spec_of(name).needs_proba
     ]
     if problems:
         raise ConfigRejected(problems[0].detail, problems)

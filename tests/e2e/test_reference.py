@@ -11,8 +11,10 @@ from typing import Any
 
 import numpy as np
 import pytest
+from sklearn.calibration import calibration_curve
 from sklearn.linear_model import Lasso, LogisticRegression, Ridge
-from sklearn.model_selection import cross_validate
+from sklearn.metrics import make_scorer, mean_pinball_loss, mean_tweedie_deviance, precision_score
+from sklearn.model_selection import cross_val_predict, cross_validate
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 
@@ -92,8 +94,12 @@ def test_breast_cancer_logistic_fold_scores_equal_cross_validate(stack: Stack, c
         cv=splits, scoring={"accuracy": "accuracy", "roc_auc": "roc_auc", "log_loss": "neg_log_loss",
                             "balanced_accuracy": "balanced_accuracy", "f1": "f1", "brier": "neg_brier_score"},
     )
+    # "f1" is stored with its choice spelled out: binary averaging on the larger label (1).
+    f1 = "f1(average=binary;pos_label=1)"
+    assert doc["config"]["metrics"] == ["accuracy", "roc_auc", "log_loss", "balanced_accuracy", f1, "brier"]
     for i, fold in enumerate(doc["result"]["cv"]["folds"]):
-        for metric in ("accuracy", "roc_auc", "balanced_accuracy", "f1"):
+        assert fold["scores"][f1] == pytest.approx(reference["test_f1"][i], rel=1e-9)
+        for metric in ("accuracy", "roc_auc", "balanced_accuracy"):
             assert fold["scores"][metric] == pytest.approx(reference[f"test_{metric}"][i], rel=1e-9)
         for metric in ("log_loss", "brier"):
             assert fold["scores"][metric] == pytest.approx(-reference[f"test_{metric}"][i], rel=1e-9)
@@ -101,6 +107,69 @@ def test_breast_cancer_logistic_fold_scores_equal_cross_validate(stack: Stack, c
     y = dev["target"].to_numpy()
     for _, test in splits:
         assert abs(y[test].mean() - y.mean()) < 0.03
+
+
+def test_metric_choices_and_calibration_on_breast_cancer(stack: Stack, cancer: dict[str, Any]) -> None:
+    # Reference: cross_validate with scikit-learn's scorers for the same choices, on the served folds;
+    # calibration_curve(n_bins=10) on cross_val_predict's out-of-fold probabilities.
+    features = [c for c in breast_cancer_frame().columns if c != "target"]
+    doc = _submit(stack, {
+        "dataset": cancer["id"],
+        "model": {"estimator": "LogisticRegression", "params": {"C": 0.05, "max_iter": 2000},
+                  "preprocess": [{"transformer": "StandardScaler", "columns": features}]},
+        "metrics": [{"name": "precision", "pos_label": 0}, "recall(average=weighted)", "matthews_corrcoef",
+                    "average_precision"],
+    })
+    assert doc["state"] == "succeeded", doc
+    keys = ["precision(average=binary;pos_label=0)", "recall(average=weighted)", "matthews_corrcoef",
+            "average_precision(pos_label=1)", "accuracy"]  # accuracy: the default policy's primary metric
+    assert doc["config"]["metrics"] == keys
+    dev = development(stack.client(), cancer["id"])
+    splits = fold_indices(stack.client(), doc["id"], dev)
+    model = make_pipeline(StandardScaler(), LogisticRegression(C=0.05, max_iter=2000))
+    scoring = {"p": make_scorer(precision_score, pos_label=0), "r": "recall_weighted", "m": "matthews_corrcoef",
+               "ap": "average_precision"}
+    reference = cross_validate(model, dev[features], dev["target"], cv=splits, scoring=scoring)
+    for i, fold in enumerate(doc["result"]["cv"]["folds"]):
+        for key, short in zip(keys, scoring, strict=False):
+            assert fold["scores"][key] == pytest.approx(reference[f"test_{short}"][i], rel=1e-9), key
+    calibration = doc["result"]["calibration"]
+    oof = cross_val_predict(model, dev[features], dev["target"], cv=splits, method="predict_proba")[:, 1]
+    observed, predicted = calibration_curve(dev["target"], oof, n_bins=10)
+    used = [b for b in calibration["curve"] if b["count"]]
+    np.testing.assert_allclose([b["fraction_observed"] for b in used], observed, rtol=1e-12)
+    np.testing.assert_allclose([b["mean_predicted"] for b in used], predicted, rtol=1e-9)
+    assert calibration["rows"] == len(dev) and 0.0 <= calibration["ece"] <= 1.0
+    # Direction and range as the summary reports them: Matthews in [-1, 1], the rest in [0, 1].
+    for key in keys:
+        low, high = doc["result"]["cv"]["summary"][key]["naive_interval_95"]
+        assert (-1.0 if key == "matthews_corrcoef" else 0.0) <= low <= high <= 1.0
+
+
+def test_regression_metric_choices_on_diabetes(stack: Stack, diabetes: dict[str, Any]) -> None:
+    doc = _submit(stack, {
+        "dataset": diabetes["id"],
+        "model": {"estimator": "Ridge", "params": {"alpha": 0.5},
+                  "preprocess": [{"transformer": "StandardScaler", "columns": DIABETES_FEATURES}]},
+        "metrics": [{"name": "pinball_loss", "alpha": 0.8}, "median_absolute_error", "mape",
+                    "tweedie_deviance(power=1.5)", "explained_variance"],
+    })
+    assert doc["state"] == "succeeded", doc
+    keys = ["pinball_loss(alpha=0.8)", "median_absolute_error", "mape", "tweedie_deviance(power=1.5)",
+            "explained_variance", "rmse"]  # rmse: the dataset policy's primary metric
+    assert doc["config"]["metrics"] == keys
+    dev = development(stack.client(), diabetes["id"])
+    splits = fold_indices(stack.client(), doc["id"], dev)
+    scoring = {"q": make_scorer(mean_pinball_loss, alpha=0.8), "med": "neg_median_absolute_error",
+               "mape": "neg_mean_absolute_percentage_error", "tw": make_scorer(mean_tweedie_deviance, power=1.5),
+               "ev": "explained_variance"}
+    sign = {"q": 1.0, "med": -1.0, "mape": -1.0, "tw": 1.0, "ev": 1.0}
+    reference = cross_validate(make_pipeline(StandardScaler(), Ridge(alpha=0.5)), dev[DIABETES_FEATURES],
+                               dev["target"], cv=splits, scoring=scoring)
+    for i, fold in enumerate(doc["result"]["cv"]["folds"]):
+        for key, short in zip(keys, scoring, strict=False):
+            assert fold["scores"][key] == pytest.approx(sign[short] * reference[f"test_{short}"][i], rel=1e-9)
+    assert doc["result"]["calibration"] is None
 
 
 def test_baseline_is_dummy_on_the_same_folds(stack: Stack, diabetes: dict[str, Any]) -> None:

@@ -148,6 +148,8 @@ def test_cancel_a_queued_submission(stack: Stack, diabetes: dict[str, Any]) -> N
         ({"estimator": "Ridge", "preprocess": [{"transformer": "Imaginary", "columns": ["bmi"]}]}, None,
          "/model/preprocess/0/transformer", "StandardScaler"),
         ({"estimator": "Ridge"}, ["accuracy"], "/metrics/0", "rmse"),
+        ({"estimator": "Ridge"}, ["rmse", "rmsle"], "/metrics/1", "unknown metric 'rmsle'; metrics for regression"),
+        ({"estimator": "Ridge"}, [{"name": "pinball_loss"}], "/metrics/0", "needs alpha to be declared"),
     ],
 )
 def test_refused_configurations_name_the_field(
@@ -170,6 +172,7 @@ def test_probability_metric_refused_for_a_model_without_probabilities(stack: Sta
             "metrics": ["accuracy", "roc_auc"]}
     problem = _problem(stack.client().post("/v1/submissions", json_body=body), 422)
     assert any(e["pointer"] == "/metrics/1" for e in problem["errors"]), problem
+    assert "set probability=true in model.params" in problem["detail"]
 
 
 def test_categorical_feature_without_encoder_is_refused(stack: Stack) -> None:

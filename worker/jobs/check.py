@@ -9,18 +9,21 @@ features and the columns of each step; facts the catalog knows (e.g. ``linear``)
 
 from __future__ import annotations
 
+import json
 import math
 import numbers
 from collections.abc import Mapping
 from typing import Any
 
 from sklearn.base import BaseEstimator
-from sklearn.utils._param_validation import InvalidParameterError
+from sklearn.utils._param_validation import InvalidParameterError, StrOptions
 
 from service.catalog import CatalogEntry, load_catalog
+from service.catalog.metric_keys import target_floor
 from service.errors import FieldProblem
 from service.records import datasets
 from service.submission.resolved import ResolvedConfig, SearchSpec
+from service.vault import store
 from worker.jobs.runtime import WorkerContext
 from worker.learning.pipeline import entry_for, make_instance
 
@@ -47,9 +50,69 @@ def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: 
         width = output_width_problem(step_entry, transformer, len(step.columns))
         if width is not None:
             problems.append(FieldProblem(f"/model/preprocess/{i}/columns", width))
+    problems.extend(target_range_problems(ctx, config, dataset_id))
     if problems:
         return _rejected(problems)
-    return {"ok": True, "has_proba": hasattr(estimator, "predict_proba")}
+    if hasattr(estimator, "predict_proba") or config.task != "classification":
+        return {"ok": True, "has_proba": hasattr(estimator, "predict_proba")}
+    return {"ok": True, "has_proba": False, "proba_settings": probability_settings(entry, model.params)}
+
+
+def target_range_problems(ctx: WorkerContext, config: ResolvedConfig, dataset_id: str) -> list[FieldProblem]:
+    """Refuse a deviance the development target's values leave undefined (e.g. gamma on a target with zeros).
+
+    Reads the target of the development rows only (the sealed rows are never opened here), and
+    only when a metric asks for a range.
+    """
+    floors: dict[int, tuple[float, bool]] = {}
+    for i, key in enumerate(config.metrics):
+        needed = target_floor(key) if config.task == "regression" else None
+        if needed is not None:
+            floors[i] = needed
+    if not floors:
+        return []
+    dataset = datasets.get_internal(ctx.engine, dataset_id)
+    assert dataset is not None  # checked by the caller
+    target = str(dataset["target"])
+    lowest = float(store.load_development_frame(ctx.settings, dataset_id, columns=[target])[target].min())
+    problems: list[FieldProblem] = []
+    for i, (floor, strict) in floors.items():
+        if lowest < floor or (strict and lowest == floor):
+            needs = f"> {floor:g}" if strict else f">= {floor:g}"
+            problems.append(FieldProblem(f"/metrics/{i}", f"metric {config.metrics[i]!r} is defined only for a "
+                                         f"target {needs}; the development rows' {target} goes down to {lowest:g}"))
+    return problems
+
+
+def probability_settings(entry: CatalogEntry, params: Mapping[str, Any]) -> list[str]:
+    """Return the single parameter changes that would give the estimator ``predict_proba``.
+
+    Tries every value of each parameter that takes a boolean or a word (scikit-learn's
+    ``_parameter_constraints``; deprecated words and values the service fixes left out), e.g.
+    ``probability=true`` for SVC, ``loss="log_loss"`` for SGDClassifier. Written as JSON, as a
+    submission writes them.
+    """
+    cls = type(make_instance(entry, {}))
+    found: list[str] = []
+    for name, allowed in getattr(cls, "_parameter_constraints", {}).items():
+        if name in entry.forced or name not in entry.params:
+            continue
+        values: list[Any] = []
+        for constraint in allowed:
+            if constraint == "boolean":
+                values += [True, False]
+            elif isinstance(constraint, StrOptions):
+                values += sorted(constraint.options - constraint.deprecated)
+        for value in values:
+            if name in params and params[name] == value:
+                continue
+            try:
+                probe = make_instance(entry, {**params, name: value})
+            except (TypeError, ValueError):
+                continue
+            if hasattr(probe, "predict_proba"):
+                found.append(f"{name}={json.dumps(value)}")
+    return found
 
 
 def checked_instance(

@@ -20,10 +20,18 @@ from service.submission.resolved import ResolvedConfig
 from service.vault.folds import Split
 from service.vocabulary import TERMINAL_STATES
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
+from worker.learning.calibration import fold_bins
 from worker.learning.curve import curve_points
 from worker.learning.development import DevelopmentData, column_kinds, load_development, split_for
 from worker.learning.pipeline import MODEL_STEP, baseline_estimator, build_pipeline, fit_in_place, output_feature_names
-from worker.learning.scoring import class_labels, rows_to_score, score_model, training_sample
+from worker.learning.scoring import (
+    class_labels,
+    predictions,
+    rows_to_score,
+    score_model,
+    score_predictions,
+    training_sample,
+)
 from worker.learning.search import build_model, search_record
 
 
@@ -83,13 +91,19 @@ def evaluate_fold(
         "baseline_scores": baseline_scores(task, y_train, y_test, metrics, classes),
         "scores": None, "coefficients": None, "fit_seconds": None, "score_seconds": None, "error": None,
         "train_scores": None, "train_scored_rows": len(y_scored), "curve": None, "search": None, "undefined": None,
+        "calibration": None,
     }
     try:
         started = time.perf_counter()
         model.fit(X_train, y_train)
         fields["fit_seconds"] = time.perf_counter() - started
         started = time.perf_counter()
-        scores, undefined = score_model(model, X_test, y_test, metrics, classes)
+        # A classifier with probabilities also bins them for the report's reliability curve.
+        binned = task == "classification" and hasattr(model, "predict_proba")
+        pred, proba, labels = predictions(model, X_test, metrics, classes, proba=binned)
+        scores, undefined = score_predictions(y_test, pred, proba, labels, metrics)
+        if binned:
+            fields["calibration"] = fold_bins(y_test, proba, labels)
         fields["score_seconds"] = time.perf_counter() - started
         # The training rows passed scikit-learn's finite checks in fit a moment ago; checking them
         # again costs ~10 ms per fold at a million rows and cannot change a score (a non-finite

@@ -36,8 +36,9 @@ from service.vocabulary import LIVE_STATES
 from worker.jobs.losses import save_per_example, scoring_rows
 from worker.jobs.runtime import Skip, WorkerContext, repeating, submission_to_work_on
 from worker.learning.development import column_kinds, load_development, model_frame, model_matrix, target_values
+from worker.learning.per_row import per_example
 from worker.learning.pipeline import build_pipeline, fit_in_place, uses_frame
-from worker.learning.scoring import class_labels, per_example, predictions, score_predictions
+from worker.learning.scoring import class_labels, predictions, score_predictions
 from worker.learning.search import build_model
 
 # A claim without a heartbeat for this long belonged to a job that died; another job may take it over.

@@ -26,12 +26,13 @@ from scipy import stats
 
 import service
 from service.catalog import load_catalog
-from service.catalog.metrics import METRICS
+from service.catalog.metrics import spec_of
 from service.records import submissions
 from service.submission.dispatch import fold_cells
 from service.submission.resolved import ResolvedConfig, ValidationPlan
 from service.vocabulary import LIVE_STATES, TERMINAL_STATES
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
+from worker.learning.calibration import pooled
 from worker.learning.curve import SHUFFLE_NOTE
 from worker.learning.fit_readings import curve_summary, fit_gap, search_summary
 from worker.learning.pipeline import baseline_description
@@ -80,7 +81,7 @@ def summary_document(
     failures.sort(key=lambda x: (x["repeat"], x["fold"]))
     curve = curve_summary(ok, metrics)
     return {
-        "summary": {m: metric_summary([r["scores"].get(m) for r in ok], METRICS[m].bounds) for m in metrics},
+        "summary": {m: metric_summary([r["scores"].get(m) for r in ok], spec_of(m).bounds) for m in metrics},
         "statistics": STATISTICS_NOTE,
         "folds_ok": len(ok),
         "failures": failures,
@@ -89,10 +90,11 @@ def summary_document(
         "learning_curve": curve,
         "learning_curve_note": SHUFFLE_NOTE if curve else None,
         "search": search_summary(ok, metrics),
+        "calibration": pooled(ok),
         "baseline": {
             **baseline_description(task),
             "folds": "the folds where the candidate succeeded",
-            "summary": {m: within(describe([(r["baseline_scores"] or {}).get(m) for r in ok]), METRICS[m].bounds)
+            "summary": {m: within(describe([(r["baseline_scores"] or {}).get(m) for r in ok]), spec_of(m).bounds)
                         for m in metrics},
         },
     }

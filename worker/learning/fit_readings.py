@@ -14,7 +14,7 @@ from typing import Any
 
 import numpy as np
 
-from service.catalog.metrics import METRICS
+from service.catalog.metrics import spec_of
 
 RELATIVE_GAP, ABSOLUTE_GAP = 0.10, 0.05  # common practice, see the module docstring
 VARIANCE = ("large train/validation gap: points to variance -- more regularisation, fewer features or "
@@ -43,7 +43,7 @@ def fit_gap(rows: Sequence[Mapping[str, Any]], metrics: Sequence[str]) -> dict[s
         gap = None
         reading = None
         if train is not None and valid is not None:
-            better = METRICS[m].greater_is_better
+            better = spec_of(m).greater_is_better
             gap = train - valid if better else valid - train
             reading = _reading(gap, train, valid, base, better)
         out[m] = {"train_mean": train, "validation_mean": valid, "gap": gap, "reading": reading}

@@ -1,32 +1,42 @@
 """Compute the metrics a submission asked for, with scikit-learn's own metric functions.
 
-Classification conventions (the catalog and API describe the same):
+A metric is named by its key (``service.catalog.metric_keys``): ``f1(average=weighted)``,
+``pinball_loss(alpha=0.9)``; each option goes to scikit-learn's function as the argument of the same
+name. Classification conventions (the catalog and API describe the same):
 - the classes are the dataset's (the sorted labels of its development target, ``class_labels``), never
   a fold model's ``classes_``: a model that never saw a class gets a zero probability column for it,
-  and every metric is told the full class set (``labels=``), so a fold whose training rows miss a
-  class is still scored as the task it belongs to;
-- binary: the positive class is ``classes[1]``, the larger label in scikit-learn's sorted order; ``f1``
-  uses it as ``pos_label``, ``roc_auc`` and ``brier`` use the probability of it;
-- multiclass: ``f1`` is the macro average, ``roc_auc`` one-vs-rest macro; ``brier`` is binary only.
+  and every metric whose scikit-learn function takes ``labels=`` is told the full class set, so a fold
+  whose training rows miss a class is still scored as the task it belongs to
+  (``matthews_corrcoef`` and ``balanced_accuracy_score`` take no labels: the first is unchanged by
+  a class absent from both labels and predictions, the second averages the classes present);
+- binary: the positive class is the key's ``pos_label``, by default ``classes[1]``, the larger label in
+  scikit-learn's sorted order; ``roc_auc`` and ``brier`` use the probability of ``classes[1]``;
+- an average missing from a key (keys stored before averages were spelled out) is ``binary`` on two
+  classes and ``macro`` on more; ``roc_auc`` is one-vs-rest macro; ``brier`` is binary only;
+- ``average_precision`` on more than two classes binarises the labels one-vs-rest against the
+  dataset's classes and averages as declared; ``macro`` is undefined when a class has no scored row.
 A metric scikit-learn cannot compute on the rows (it raises, or returns a non-finite value such as
-``roc_auc`` on a test fold with one class, or ``r2`` on a constant one) is reported as None, with the
-reason.
+``roc_auc`` on a test fold with one class, or a deviance on a non-positive prediction) is reported
+as None, with the reason.
 """
 
 from __future__ import annotations
 
 import math
 import warnings
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 import numpy as np
 import pandas as pd
 from sklearn import metrics as skm
+from sklearn.preprocessing import label_binarize
 
-from service.catalog.metrics import METRICS
+from service.catalog.metric_keys import parse_key
+from service.catalog.metrics import METRICS, spec_of
 
-Metric = Callable[[np.ndarray, np.ndarray | None, np.ndarray | None, np.ndarray], float]
+Options = Mapping[str, Any]
+Metric = Callable[[np.ndarray, Any, Any, np.ndarray, Options], float]
 
 
 def _binary(classes: np.ndarray, name: str) -> None:
@@ -34,47 +44,100 @@ def _binary(classes: np.ndarray, name: str) -> None:
         raise ValueError(f"{name} needs a binary target, got {len(classes)} classes")
 
 
-def _f1(y: np.ndarray, pred: Any, _proba: Any, classes: np.ndarray) -> float:
+def _positive(classes: np.ndarray, options: Options) -> Any:
+    """Return the dataset class the key's ``pos_label`` names (compared as text), by default ``classes[1]``."""
+    wanted = options.get("pos_label")
+    if wanted is None:
+        return classes[1]
+    for label in classes:
+        if str(label) == str(wanted):
+            return label
+    raise ValueError(f"pos_label {wanted!r} is not one of the classes {[str(c) for c in classes]}")
+
+
+def _by_label(function: Callable[..., Any], name: str) -> Metric:
+    """Return precision, recall or F1 as the key averages it (scikit-learn's ``average=``)."""
+    def metric(y: np.ndarray, pred: Any, _proba: Any, classes: np.ndarray, options: Options) -> float:
+        average = options.get("average") or ("binary" if len(classes) == 2 else "macro")
+        if average == "binary":
+            _binary(classes, f"{name} with average=binary")
+            return float(function(y, pred, pos_label=_positive(classes, options), average="binary"))
+        return float(function(y, pred, labels=classes, average=average))
+    return metric
+
+
+def _average_precision(y: np.ndarray, _pred: Any, proba: Any, classes: np.ndarray, options: Options) -> float:
     if len(classes) == 2:
-        return float(skm.f1_score(y, pred, pos_label=classes[1], average="binary"))
-    return float(skm.f1_score(y, pred, labels=classes, average="macro"))
+        positive = _positive(classes, options)
+        truth = y == positive
+        if not truth.any():
+            raise ValueError(f"no scored row is of the positive class {str(positive)!r}: average precision is "
+                             "undefined")
+        return float(skm.average_precision_score(truth, proba[:, int(np.flatnonzero(classes == positive)[0])]))
+    average = options.get("average") or "macro"
+    indicator = label_binarize(y, classes=classes)
+    absent = [str(c) for c, n in zip(classes, indicator.sum(axis=0), strict=True) if n == 0]
+    if absent and average == "macro":
+        raise ValueError(f"no scored row is of class {', '.join(absent)}: its average precision is undefined, and so "
+                         "is their macro average")
+    return float(skm.average_precision_score(indicator, proba, average=average))
 
 
-def _roc_auc(y: np.ndarray, _pred: Any, proba: Any, classes: np.ndarray) -> float:
+def _roc_auc(y: np.ndarray, _pred: Any, proba: Any, classes: np.ndarray, _options: Options) -> float:
     if len(classes) == 2:
         return float(skm.roc_auc_score(y == classes[1], proba[:, 1]))
     return float(skm.roc_auc_score(y, proba, multi_class="ovr", average="macro", labels=classes))
 
 
-def _brier(y: np.ndarray, _pred: Any, proba: Any, classes: np.ndarray) -> float:
+def _brier(y: np.ndarray, _pred: Any, proba: Any, classes: np.ndarray, _options: Options) -> float:
     _binary(classes, "brier")
     return float(skm.brier_score_loss(y, proba[:, 1], pos_label=classes[1]))
 
 
+def _values(function: Callable[..., Any], **fixed: Any) -> Metric:
+    """Return a metric of values and predictions; the key's options are passed as keyword arguments."""
+    def metric(y: np.ndarray, pred: Any, _proba: Any, _classes: np.ndarray, options: Options) -> float:
+        return float(function(y, pred, **fixed, **options))
+    return metric
+
+
 METRIC_FUNCTIONS: dict[str, Metric] = {
-    "rmse": lambda y, pred, _p, _c: float(skm.root_mean_squared_error(y, pred)),
-    "mse": lambda y, pred, _p, _c: float(skm.mean_squared_error(y, pred)),
-    "mae": lambda y, pred, _p, _c: float(skm.mean_absolute_error(y, pred)),
-    "r2": lambda y, pred, _p, _c: float(skm.r2_score(y, pred)),
-    "accuracy": lambda y, pred, _p, _c: float(skm.accuracy_score(y, pred)),
-    "balanced_accuracy": lambda y, pred, _p, _c: float(skm.balanced_accuracy_score(y, pred)),
-    "f1": _f1,
+    "rmse": _values(skm.root_mean_squared_error),
+    "mse": _values(skm.mean_squared_error),
+    "mae": _values(skm.mean_absolute_error),
+    "r2": _values(skm.r2_score),
+    "explained_variance": _values(skm.explained_variance_score),
+    "median_absolute_error": _values(skm.median_absolute_error),
+    "mape": _values(skm.mean_absolute_percentage_error),
+    "pinball_loss": _values(skm.mean_pinball_loss),
+    "poisson_deviance": _values(skm.mean_poisson_deviance),
+    "gamma_deviance": _values(skm.mean_gamma_deviance),
+    "tweedie_deviance": _values(skm.mean_tweedie_deviance),
+    "accuracy": _values(skm.accuracy_score),
+    "balanced_accuracy": _values(skm.balanced_accuracy_score),
+    "precision": _by_label(skm.precision_score, "precision"),
+    "recall": _by_label(skm.recall_score, "recall"),
+    "f1": _by_label(skm.f1_score, "f1"),
+    "matthews_corrcoef": _values(skm.matthews_corrcoef),
+    "average_precision": _average_precision,
     "roc_auc": _roc_auc,
-    "log_loss": lambda y, _pred, proba, classes: float(skm.log_loss(y, proba, labels=classes)),
+    "log_loss": lambda y, _pred, proba, classes, _o: float(skm.log_loss(y, proba, labels=classes)),
     "brier": _brier,
 }
 
 
 def compute(
-    name: str, y_true: Any, y_pred: Any = None, proba: Any = None, classes: Any = None
+    key: str, y_true: Any, y_pred: Any = None, proba: Any = None, classes: Any = None
 ) -> float | None:
-    """Return one metric from labels or values, predictions and (for some) class probabilities."""
+    """Return one metric (by key) from labels or values, predictions and (for some) class probabilities."""
+    name, options = parse_key(key)
     y = np.asarray(y_true)
     labels = np.asarray(classes) if classes is not None else np.array([])
     if METRICS[name].task == "classification" and classes is None:
         labels = np.unique(y)
     value = METRIC_FUNCTIONS[name](y, None if y_pred is None else np.asarray(y_pred),
-                                   None if proba is None else np.asarray(proba), labels)
+                                   None if proba is None else np.asarray(proba), labels,
+                                   {k: float(v) if k in ("alpha", "power") else v for k, v in options.items()})
     return value if math.isfinite(value) else None
 
 
@@ -107,24 +170,24 @@ def class_probabilities(proba: np.ndarray, model_classes: Any, classes: np.ndarr
 
 
 def predictions(
-    model: Any, X: Any, metric_names: Sequence[str], classes: Any = None
+    model: Any, X: Any, metric_names: Sequence[str], classes: Any = None, *, proba: bool = False
 ) -> tuple[Any, Any, Any]:
     """Predict once: labels and/or probabilities as the metrics need, and the classes to score them on.
 
     With ``classes`` (the dataset's, ``class_labels``) the probabilities get one column per class in
     that order (``class_probabilities``) and the classes returned are those; without, the model's
-    ``classes_``.
+    ``classes_``. ``proba``: predict probabilities even if no metric needs them (for calibration).
     """
-    needs_proba = any(METRICS[m].needs_proba for m in metric_names)
-    needs_pred = any(not METRICS[m].needs_proba or m in PER_EXAMPLE_FROM_LABELS for m in metric_names)
+    needs_proba = proba or any(spec_of(m).needs_proba for m in metric_names)
+    needs_pred = any(not spec_of(m).needs_proba or m in PER_EXAMPLE_FROM_LABELS for m in metric_names)
     pred = model.predict(X) if needs_pred else None
-    proba = model.predict_proba(X) if needs_proba else None
+    probabilities = model.predict_proba(X) if needs_proba else None
     if classes is None:
-        return pred, proba, getattr(model, "classes_", None)
+        return pred, probabilities, getattr(model, "classes_", None)
     labels = np.asarray(classes)
-    if proba is not None:
-        proba = class_probabilities(np.asarray(proba), model.classes_, labels)
-    return pred, proba, labels
+    if probabilities is not None:
+        probabilities = class_probabilities(np.asarray(probabilities), model.classes_, labels)
+    return pred, probabilities, labels
 
 
 def score_predictions(
@@ -193,26 +256,3 @@ def rows_to_score(X: Any, y: np.ndarray, sample: np.ndarray | None) -> tuple[Any
         return X, y
     return (X.iloc[sample] if hasattr(X, "iloc") else X[sample]), y[sample]
 
-
-def per_example(name: str, y_true: Any, pred: Any, proba: Any, classes: Any) -> np.ndarray | None:
-    """Return per-row values whose mean is the metric (rmse: squared errors), or None if it has none.
-
-    For the parameter-free ladder only; these values stay inside the service.
-    """
-    y = np.asarray(y_true)
-    if name in ("rmse", "mse"):
-        return np.square(y.astype(float) - np.asarray(pred, dtype=float))
-    if name == "mae":
-        return np.abs(y.astype(float) - np.asarray(pred, dtype=float))
-    if name == "accuracy":
-        return (y == np.asarray(pred)).astype(float)
-    if name in ("log_loss", "brier") and proba is not None and classes is not None:
-        p = np.asarray(proba, dtype=float)
-        column = np.searchsorted(np.asarray(classes), y)
-        if name == "log_loss":
-            # scikit-learn's log_loss clips probabilities to [eps, 1 - eps] with eps of the dtype.
-            eps = np.finfo(p.dtype).eps
-            return -np.log(np.clip(p[np.arange(len(y)), column], eps, 1 - eps))
-        if p.shape[1] == 2:
-            return np.square(p[:, 1] - (column == 1))
-    return None

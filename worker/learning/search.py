@@ -20,7 +20,7 @@ from sklearn.base import BaseEstimator
 from sklearn.model_selection import GridSearchCV, KFold, RandomizedSearchCV, StratifiedKFold
 from sklearn.pipeline import Pipeline
 
-from service.catalog.metrics import METRICS
+from service.catalog.metrics import spec_of
 from service.submission.resolved import ResolvedConfig
 from worker.learning.pipeline import MODEL_STEP, from_json
 from worker.learning.scoring import score_model
@@ -38,7 +38,7 @@ class MetricScorer:
 
     def __init__(self, metric: str, classes: np.ndarray | None = None) -> None:
         self.metric = metric
-        self.sign = 1.0 if METRICS[metric].greater_is_better else -1.0
+        self.sign = 1.0 if spec_of(metric).greater_is_better else -1.0
         self.classes = classes
 
     def __call__(self, estimator: Any, X: Any, y: Any) -> float:
@@ -95,7 +95,7 @@ def search_record(model: BaseEstimator, config: ResolvedConfig) -> dict[str, Any
     if not isinstance(model, GridSearchCV | RandomizedSearchCV):
         return None
     metric = config.metrics[0]
-    sign = 1.0 if METRICS[metric].greater_is_better else -1.0
+    sign = 1.0 if spec_of(metric).greater_is_better else -1.0
     best = float(model.best_score_)
     return {
         "best_params": {k.removeprefix(PREFIX): json_value(v) for k, v in model.best_params_.items()},

@@ -135,3 +135,9 @@ def test_catalog_lists_estimators_transformers_and_metrics(api: Api) -> None:
     metrics = {m["name"]: m for m in catalog["metrics"]}
     assert metrics["rmse"]["greater_is_better"] is False and metrics["rmse"]["default"] is True
     assert metrics["roc_auc"]["needs_proba"] is True
+    # Choices are listed with what they accept; a quantile has no default and must be declared.
+    average = {o["name"]: o for o in metrics["f1"]["options"]}["average"]
+    assert average["choices"] == ["binary", "micro", "macro", "weighted"] and average["required"] is False
+    alpha = metrics["pinball_loss"]["options"][0]
+    assert alpha["name"] == "alpha" and alpha["required"] is True
+    assert metrics["matthews_corrcoef"]["bounds"] == [-1.0, 1.0] and metrics["matthews_corrcoef"]["options"] == []

@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import base64
 import json
+from collections.abc import Iterator
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -21,10 +23,12 @@ from sqlalchemy import Engine
 from service.errors import InputError, NotFound
 from service.gate.board import BoardCursor, BoardOrder, board_page, decode_cursor, encode_cursor
 from service.records.keys import KeyInfo, create_key
+from service.settings import Settings
 from service.team_scope import team_dataset
 from tests.support.frames import diabetes_frame
-from tests.support.records import add_dataset_row
+from tests.support.records import add_dataset_row, records_engine, upgraded_engine
 from tests.support.reviews import RAW_HOLDOUT, make_submission
+from tests.support.servers import postgres_database
 
 ALPHAS = (0.001, 0.03, 0.3, 1.0, 3.0, 30.0, 300.0)
 RMSE = BoardOrder("rmse", greater_is_better=False)
@@ -199,3 +203,31 @@ def test_a_cursor_of_a_board_ranked_another_way_is_refused(other: BoardOrder) ->
         decode_cursor(text, RMSE)
     assert [p.pointer for p in caught.value.problems] == ["/cursor"]
     assert "start again from the first page" in caught.value.detail
+
+
+@pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)])
+def any_records(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[Engine]:
+    """A records DB on each dialect: their JSON paths quote keys differently."""
+    if request.param == "sqlite":
+        engine = records_engine(tmp_path / "records")
+        yield engine
+        engine.dispose()
+        return
+    with postgres_database() as url:
+        engine = upgraded_engine(Settings.load({"data_dir": tmp_path, "database_url": url}, environ={}))
+        yield engine
+        engine.dispose()
+
+
+@pytest.mark.parametrize("metric", ["pinball_loss(alpha=0.9)", "tweedie_deviance(power=1.5)",
+                                    "f1(average=binary;pos_label=on%20time)"])
+def test_a_metric_key_with_choices_ranks_on_every_dialect(
+    any_records: Engine, ridge_folds: dict[float, dict[str, list[float]]], metric: str
+) -> None:
+    # A key is used inside the JSON path of the ranking query; PostgreSQL's path array splits on commas
+    # and SQLite's quoted path keys end at a double quote, so keys hold neither (service.catalog.metric_keys).
+    dataset = add_dataset_row(any_records, diabetes_frame(), "target", "regression", folds=5)
+    owner = create_key(any_records, "fleet", "submitter", "owner")[0]
+    made = submit_all(any_records, dataset, owner, {a: {metric: s["rmse"]} for a, s in ridge_folds.items()}, metric)
+    entries, _ = board_page(any_records, dataset, BoardOrder(metric, greater_is_better=False), limit=50)
+    assert [e["submission"] for e in entries] == sorted(made, key=lambda s: made[s])

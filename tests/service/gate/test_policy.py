@@ -74,8 +74,21 @@ def test_a_full_document_is_parsed() -> None:
 
 def test_unknown_metric() -> None:
     problems = _problems({"primary_metric": "accuracy"})
-    assert problems["/primary_metric"] == ("primary_metric must be one of rmse, mse, mae, r2 for a regression "
-                                           "dataset, got 'accuracy'")
+    assert problems["/primary_metric"].startswith(
+        "primary_metric: metric 'accuracy' is a classification metric and does not apply to a regression dataset; "
+        "metrics for regression: rmse, mse, mae, r2, ")
+    problems = _problems({"primary_metric": "accurcy"})
+    assert problems["/primary_metric"].startswith("primary_metric: unknown metric 'accurcy'; metrics for regression: ")
+
+
+def test_metric_choices_are_resolved_to_their_key() -> None:
+    policy = parse_policy({"primary_metric": "pinball_loss(alpha=0.9)"}, "regression")
+    assert policy.primary_metric == "pinball_loss(alpha=0.9)" and policy.greater_is_better is False
+    assert policy.champion_margin == 0.0  # in the target's units: no default margin
+    policy = parse_policy({"primary_metric": "f1"}, "classification", classes=["no", "yes"])
+    assert policy.primary_metric == "f1(average=binary;pos_label=yes)" and policy.greater_is_better is True
+    problems = _problems({"primary_metric": "pinball_loss"})
+    assert "needs alpha to be declared" in problems["/primary_metric"]
 
 
 def test_metric_outside_the_datasets_allowed_list() -> None:

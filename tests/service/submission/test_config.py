@@ -125,3 +125,72 @@ def test_search_caps_count_the_learning_curve_sizes() -> None:
         resolve(_request(model, search=grid, validation=ValidationSpec(learning_curve=(0.25, 0.5, 1.0))),
                 DATASET, load_catalog())
     assert "x 3 learning-curve sizes = 3000 fits" in _pointers(exc)["/search"]
+
+
+def _metrics(dataset: dict[str, Any], *metrics: Any) -> list[str]:
+    estimator = "Ridge" if dataset["task"] == "regression" else "LogisticRegression"
+    model = ModelSpec(estimator, features=("distance_km", "stops"))
+    return list(resolve(_request(model, metrics=metrics), dataset, load_catalog()).metrics)
+
+
+def _refusals(dataset: dict[str, Any], *metrics: Any) -> dict[str, str]:
+    estimator = "Ridge" if dataset["task"] == "regression" else "LogisticRegression"
+    with pytest.raises(ConfigRejected) as exc:
+        resolve(_request(ModelSpec(estimator, features=("distance_km", "stops")), metrics=metrics), dataset,
+                load_catalog())
+    return _pointers(exc)
+
+
+BINARY = {**DATASET, "task": "classification", "classes": ["late", "on time"]}
+THREE = {**DATASET, "task": "classification", "classes": ["a", "b", "c"]}
+
+
+def test_metric_choices_resolve_to_keys_that_spell_them_out() -> None:
+    assert _metrics(DATASET, "pinball_loss(alpha=0.9)", {"name": "tweedie_deviance", "power": 1.5}, "mape") == [
+        "pinball_loss(alpha=0.9)", "tweedie_deviance(power=1.5)", "mape"]
+    # Two classes: binary averaging on the larger label unless told; a label with a space is percent-encoded.
+    assert _metrics(BINARY, "f1", {"name": "precision", "pos_label": "late"}, "recall(average=weighted)",
+                    "average_precision") == [
+        "f1(average=binary;pos_label=on%20time)", "precision(average=binary;pos_label=late)",
+        "recall(average=weighted)", "average_precision(pos_label=on%20time)"]
+    assert _metrics(THREE, "f1", "average_precision", {"name": "recall", "average": "micro"}) == [
+        "f1(average=macro)", "average_precision(average=macro)", "recall(average=micro)"]
+    # A key resolves to itself, so one copied from a summary or policy is the same metric.
+    spelled = "f1(average=binary;pos_label=on%20time)"
+    assert _metrics(BINARY, spelled, "f1", 'f1(average=binary, pos_label="on time")') == [spelled]
+
+
+def test_choices_are_part_of_the_configuration_fingerprint() -> None:
+    model = ModelSpec("Ridge", features=("distance_km",))
+    fingerprints = {
+        config_fingerprint(resolve(_request(model, metrics=(m,)), DATASET, load_catalog()), "fp")
+        for m in ("pinball_loss(alpha=0.9)", "pinball_loss(alpha=0.5)", "tweedie_deviance(power=1.5)")}
+    assert len(fingerprints) == 3
+
+
+def test_an_unknown_metric_is_refused_as_unknown_with_the_accepted_names() -> None:
+    found = _refusals(BINARY, "accuracy", "acuracy", "rmse")
+    assert found["/metrics/1"].startswith("unknown metric 'acuracy'; metrics for classification: accuracy, ")
+    assert "matthews_corrcoef" in found["/metrics/1"]
+    assert found["/metrics/2"].startswith("metric 'rmse' is a regression metric and does not apply to a "
+                                          "classification dataset")
+    assert "/metrics/0" not in found
+
+
+@pytest.mark.parametrize(("dataset", "metric", "words"), [
+    (DATASET, "pinball_loss", "pinball_loss' needs alpha to be declared"),
+    (DATASET, "pinball_loss(alpha=1.5)", "alpha is a quantile in (0, 1), got '1.5'"),
+    (DATASET, {"name": "tweedie_deviance", "power": 0.5}, "power must be <= 0 or >= 1"),
+    (DATASET, {"name": "mape", "alpha": 0.5}, "metric 'mape' has no option 'alpha'; it takes no options"),
+    (THREE, "f1(average=binary)", "average=binary needs a two-class dataset; this one has 3 classes"),
+    (THREE, "average_precision(pos_label=a)", "pos_label is for two-class datasets"),
+    (BINARY, "f1(average=samples)", "average must be one of binary, micro, macro, weighted, got 'samples'"),
+    (BINARY, "f1(pos_label=maybe)", "pos_label must be one of the dataset's classes (late, on time)"),
+    (BINARY, "f1(average=macro, pos_label=late)", "pos_label goes with average=binary only"),
+    (BINARY, "f1(average=macro", "a metric is written name or name(option=value, ...)"),
+    (BINARY, 'f1(pos_label="late)', "option 'pos_label' has a quoted value that is not a JSON string"),
+    (BINARY, "f1(average=macro;;)", "options are written option=value and separated by ';'"),
+    (THREE, "average_precision(pos_label=a)", "declare average (micro, macro, weighted)"),
+])
+def test_bad_choices_are_refused_with_what_is_accepted(dataset: dict[str, Any], metric: Any, words: str) -> None:
+    assert words in _refusals(dataset, metric)["/metrics/0"]

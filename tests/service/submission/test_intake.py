@@ -279,15 +279,19 @@ def test_probability_metrics_are_refused_for_a_model_without_probabilities(
         intake.submit(records, redis, settings, keys["owner"], request)
     assert [p.pointer for p in caught.value.problems] == ["/metrics/1", "/metrics/3"]
     assert "'roc_auc' needs predicted probabilities" in caught.value.detail and "SVC" in caught.value.detail
+    # The parameter that turns them on is named, found from scikit-learn's own constraints.
+    assert "set probability=true in model.params" in caught.value.detail
     assert count_submissions(records) == 0 and queued_ids(redis, settings) == []
 
     labels_only = SubmissionRequest(dataset=DatasetRef(cancer["id"]), model=ModelSpec("SVC"), metrics=("f1",))
     row, created = intake.submit(records, redis, settings, keys["owner"], labels_only)
-    assert created is True and row["config"]["metrics"] == ["f1", "accuracy"]
+    # The stored key spells out the choice: breast cancer's classes are 0 and 1, the positive one is 1.
+    assert created is True and row["config"]["metrics"] == ["f1(average=binary;pos_label=1)", "accuracy"]
     with_proba = SubmissionRequest(dataset=DatasetRef(cancer["id"]), model=ModelSpec("SVC", {"probability": True}),
                                    metrics=metrics)
     row, created = intake.submit(records, redis, settings, keys["owner"], with_proba)
-    assert created is True and row["config"]["metrics"] == list(metrics)
+    assert created is True and row["config"]["metrics"] == ["accuracy", "roc_auc", "f1(average=binary;pos_label=1)",
+                                                        "log_loss"]
     assert row["config"]["linear"] is False
 
 

@@ -174,3 +174,31 @@ def test_json_lists_for_tuple_parameters_pass_validation(diabetes: dict[str, Any
     steps = [{"transformer": "MinMaxScaler", "columns": ["age"], "params": {"feature_range": "wide"}}]
     found = pointers(check(diabetes, "Ridge", preprocess=steps))
     assert "'feature_range' parameter of MinMaxScaler" in found["/model/preprocess/0/params/feature_range"]
+
+
+@pytest.mark.parametrize(("estimator", "params", "settings"), [
+    # scikit-learn's SVC docs: probability=True enables predict_proba; SGDClassifier's: predict_proba
+    # "only available for log loss and modified Huber loss".
+    ("SVC", {}, ["probability=true"]),
+    ("SGDClassifier", {"penalty": "l1"}, ['loss="log_loss"', 'loss="modified_huber"']),
+])
+def test_the_parameters_that_give_probabilities_are_named(
+    cancer: dict[str, Any], estimator: str, params: dict[str, Any], settings: list[str]
+) -> None:
+    answer = check(cancer, estimator, params=params)
+    assert answer == {"ok": True, "has_proba": False, "proba_settings": settings}
+
+
+def test_a_deviance_the_target_range_leaves_undefined_is_refused(ctx: WorkerContext) -> None:
+    # Diabetes with its target's smallest value moved to 0 (the sealed rows keep theirs): scikit-learn's
+    # mean_gamma_deviance needs y > 0, mean_poisson_deviance y >= 0, mean_tweedie_deviance(power=2) y > 0.
+    frame = load_diabetes(as_frame=True).frame
+    development = frame.iloc[:400].copy()
+    development.loc[development["target"].idxmin(), "target"] = 0.0
+    dataset = add_dataset(ctx, development, frame.iloc[400:], "target", "regression")
+    metrics = ["poisson_deviance", "gamma_deviance", "tweedie_deviance(power=2.0)", "tweedie_deviance(power=1.5)"]
+    found = pointers(check(dataset, "Ridge", metrics=metrics))
+    assert set(found) == {"/metrics/1", "/metrics/2"}
+    assert found["/metrics/1"] == ("metric 'gamma_deviance' is defined only for a target > 0; the development "
+                                   "rows' target goes down to 0")
+    assert check(dataset, "Ridge", metrics=["poisson_deviance"])["ok"] is True

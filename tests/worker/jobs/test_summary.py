@@ -74,11 +74,16 @@ def test_intervals_on_real_folds_are_clipped_to_the_metric_range(ctx: WorkerCont
 
 def test_every_metric_declares_its_range() -> None:
     # Ranges from the definitions (scikit-learn's metric docs): scores in [0, 1], losses and errors
-    # at least 0 with no ceiling, r2 at most 1 with no floor.
+    # at least 0 with no ceiling, r2 and explained variance at most 1 with no floor, Matthews in [-1, 1].
     ranges = {m: spec.bounds for m, spec in METRICS.items()}
     assert ranges == {"accuracy": (0.0, 1.0), "balanced_accuracy": (0.0, 1.0), "f1": (0.0, 1.0),
+                      "precision": (0.0, 1.0), "recall": (0.0, 1.0), "average_precision": (0.0, 1.0),
+                      "matthews_corrcoef": (-1.0, 1.0),
                       "roc_auc": (0.0, 1.0), "brier": (0.0, 1.0), "log_loss": (0.0, None), "mse": (0.0, None),
-                      "rmse": (0.0, None), "mae": (0.0, None), "r2": (None, 1.0)}
+                      "rmse": (0.0, None), "mae": (0.0, None), "r2": (None, 1.0), "explained_variance": (None, 1.0),
+                      "median_absolute_error": (0.0, None), "mape": (0.0, None), "pinball_loss": (0.0, None),
+                      "poisson_deviance": (0.0, None), "gamma_deviance": (0.0, None),
+                      "tweedie_deviance": (0.0, None)}
 
 
 def _fold(values: list[float], names: list[str] | None = None) -> dict[str, object]:
