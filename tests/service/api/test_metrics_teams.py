@@ -28,7 +28,9 @@ def test_metrics_carry_no_team_key_dataset_or_submission(
                *api.key_ids.values()]
     assert not [s for s in secrets if s in text]
     labels = {name for line in text.splitlines() if not line.startswith("#") for name, _ in LABEL.findall(line)}
-    assert labels <= {"state", "method", "route", "status"}
+    # Labels name states, routes, queues (a deployment setting), job kinds and outcomes, histogram bounds and
+    # scrape sources: nothing that tells one team from another.
+    assert labels <= {"state", "method", "route", "status", "queue", "kind", "outcome", "le", "source"}
     routes = {value for line in text.splitlines() for name, value in LABEL.findall(line) if name == "route"}
     assert any("<" in r for r in routes)  # a path with an id is counted under its template
     assert all(not re.search(r"(sub|ds|key)_[0-9a-f]{20}", r) for r in routes)

@@ -97,13 +97,6 @@ def test_metrics_are_prometheus_text(api: Api) -> None:
         assert name in families, name
 
 
-def test_metrics_carry_no_ids_or_team_names(api: Api, dataset: dict[str, Any]) -> None:
-    text = api.get(None, "/metrics").get_data(as_text=True)
-    labels = {k for family in text_string_to_metric_families(text) for s in family.samples for k in s.labels}
-    assert labels <= {"method", "route", "status", "state", "queue", "kind", "outcome", "source", "le"}
-    assert dataset["id"] not in text and "fleet" not in text
-
-
 def test_metrics_can_be_restricted_to_operators(api: Api) -> None:
     ctx = api.app.extensions["sealfold"]
     api.app.extensions["sealfold"] = dataclasses.replace(
