@@ -135,7 +135,8 @@ class Board(MethodView):
         order = board.BoardOrder(metric, bool(policy["greater_is_better"]))
         after = None if query["cursor"] is None else board.decode_cursor(query["cursor"], order)
         champion = champions.current(engine, dataset["id"])
-        entries, cursor = board.board_page(engine, dataset, order, query["limit"], after, champion)
+        entries, cursor = board.board_page(engine, dataset, order, query["limit"], after, champion,
+                                           int(policy["version"]))
         released_under = board.board_policies(engine, dataset, order)
         return json_response({
             "dataset": dataset["id"], "primary_metric": metric, "greater_is_better": order.greater_is_better,

@@ -65,18 +65,30 @@ class ChampionFolds:
 def judge(
     policy: Policy, candidate: Mapping[Cell, float], baseline: Mapping[Cell, float],
     champion: ChampionFolds | None, holdout: float | None, plan: PlanFacts, *, policy_version: int,
+    holdout_rule: dict[str, Any] | None = None,
 ) -> dict[str, Any]:
-    """Return the verdict document for a candidate's primary-metric fold scores."""
+    """Return the verdict document for a candidate's primary-metric fold scores.
+
+    ``holdout_rule``, when given, stands for the holdout-gap rule instead of checking it on ``holdout``:
+    a re-judge passes the answer an earlier verdict already gave, or a rule saying the check is withheld.
+    """
     if plan.test not in (CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV):
         raise ValueError(f"test must be {CORRECTED_RESAMPLED_T} or {FIVE_BY_TWO_CV}, got {plan.test!r}")
     j = _Judge(policy, candidate, plan)
-    rules = [j.baseline(baseline), j.bar(), j.champion(champion), j.holdout_gap(holdout), j.fold_stability()]
+    gap = holdout_rule if holdout_rule is not None else j.holdout_gap(holdout)
+    rules = [j.baseline(baseline), j.bar(), j.champion(champion), gap, j.fold_stability()]
     outcomes = {r["outcome"] for r in rules}
     decision = "fail" if "fail" in outcomes else "inconclusive" if "inconclusive" in outcomes else "pass"
     ordered = sorted(rules, key=lambda r: _ORDER[r["outcome"]])
     return {"decision": decision, "reasons": [r["sentence"] for r in ordered], "rules": rules,
             "primary_metric": policy.primary_metric, "test": plan.test, "policy_version": policy_version,
             "champion": None if champion is None else champion.submission_id}
+
+
+def holdout_gap_rule(policy: Policy, candidate: Mapping[Cell, float], plan: PlanFacts,
+                     holdout: float | None) -> dict[str, Any]:
+    """Return the holdout-gap rule alone (a re-judge checks it apart from the others)."""
+    return _Judge(policy, candidate, plan).holdout_gap(holdout)
 
 
 def _rule(rule: str, outcome: str, sentence: str, figures: dict[str, Any]) -> dict[str, Any]:

@@ -13,25 +13,24 @@ only here, so a client that sees ``succeeded`` always finds its verdict.
 from __future__ import annotations
 
 from collections.abc import Mapping
-from datetime import datetime
 from typing import Any
 
 import numpy as np
 from redis import Redis
 
 from service.gate import review_state
+from service.gate.evidence import gather
 from service.gate.policy import Policy, parse_policy
+from service.gate.rejudge import holdout_spent_at, release_lock_name
 from service.gate.release import HoldoutScores, release
-from service.gate.verdict import CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV, ChampionFolds, PlanFacts, judge
-from service.records import champions, holdout_releases, submissions
-from service.records.engine import as_utc, utcnow
-from service.submission.resolved import ValidationPlan
+from service.gate.verdict import judge
+from service.records import holdout_releases, submissions
+from service.records.engine import utcnow
 from service.vocabulary import LIVE_STATES
 from worker.jobs.losses import DamagedLosses, load_per_example
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 
 Cell = tuple[int, int]
-_EPOCH = datetime(1970, 1, 1)
 
 
 def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[str, Any]:
@@ -58,12 +57,11 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
     version = int(stated["version"])
     policy = parse_policy(stated, str(dataset["task"]))
     metric = policy.primary_metric
-    folds = [row for row in submissions.fold_rows(engine, submission_id) if row["status"] == "ok"]
-    candidate = _cells(folds, "scores", metric)
-    baseline = _cells(folds, "baseline_scores", metric)
+    evidence = gather(engine, sub, dataset, metric)
+    candidate, folds = evidence.candidate, evidence.folds
 
     try:
-        with redis.lock(f"sealfold:release:{dataset['id']}", timeout=120, blocking_timeout=60):
+        with redis.lock(release_lock_name(str(dataset["id"])), timeout=120, blocking_timeout=60):
             if holdout_releases.get(engine, submission_id) is None:
                 _release(ctx, sub, dataset, policy, version, raw["scores"], candidate, folds)
     except DamagedLosses as exc:
@@ -72,43 +70,12 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
         submissions.transition(engine, submission_id, "failed", LIVE_STATES, error=error)
         return {"submission_id": submission_id, "decision": None, "holdout": "not released"}
 
-    champion_id = champions.current(engine, dataset["id"])
-    champion = None if champion_id in (None, submission_id) else _champion(ctx, str(champion_id), metric)
-    validation = ValidationPlan.from_document(sub["config"]["validation"])
-    plan = PlanFacts(
-        key=_plan_key(validation),
-        sizes={(r["repeat"], r["fold"]): (r["train_rows"], r["test_rows"]) for r in folds},
-        overridden=validation.plan_overridden,
-        test=FIVE_BY_TWO_CV if validation.test == "5x2cv" else CORRECTED_RESAMPLED_T,
-        holdout_rows=int(dataset["rows_holdout"]),
-    )
     holdout_value = raw["scores"].get(metric)
-    verdict = judge(policy, candidate, baseline, champion, holdout_value, plan, policy_version=version)
-    submissions.store_verdict(engine, submission_id, verdict, version, None if champion is None else champion_id)
+    verdict = judge(policy, candidate, evidence.baseline, evidence.champion, holdout_value, evidence.plan,
+                    policy_version=version)
+    submissions.store_verdict(engine, submission_id, verdict, version, evidence.champion_id)
     submissions.transition(engine, submission_id, "succeeded", LIVE_STATES)
     return {"submission_id": submission_id, "decision": verdict["decision"]}
-
-
-def _plan_key(validation: ValidationPlan) -> tuple[str, int, int]:
-    """Return the fold plan as (scheme, folds, seed): equal keys mean identical splits per repeat."""
-    plan = validation.fold_plan()
-    return plan.scheme, plan.folds, plan.seed
-
-
-def _cells(folds: list[dict[str, Any]], column: str, metric: str) -> dict[Cell, float]:
-    values = ((row["repeat"], row["fold"], (row[column] or {}).get(metric)) for row in folds)
-    return {(r, f): float(v) for r, f, v in values if v is not None}
-
-
-def _champion(ctx: WorkerContext, champion_id: str, metric: str) -> ChampionFolds | None:
-    champ = submissions.get(ctx.engine, champion_id)
-    if champ is None:
-        return None
-    validation = ValidationPlan.from_document(champ["config"]["validation"])
-    rows = [r for r in submissions.fold_rows(ctx.engine, champion_id) if r["status"] == "ok"]
-    return ChampionFolds(
-        submission_id=champion_id, scores=_cells(rows, "scores", metric), plan_key=_plan_key(validation),
-    )
 
 
 def _release(
@@ -119,8 +86,7 @@ def _release(
     values = np.array(list(candidate.values()), dtype=float)
     last = holdout_releases.latest(engine, dataset["id"])
     state: dict[str, Any] = dict(last["state"]) if last else {}
-    mine = holdout_releases.list_since(engine, dataset["id"], _EPOCH, owner_key_id=sub["owner_key_id"])
-    spent_at = [as_utc(r["released_at"]) or utcnow() for r in mine if r["spent"] > 0]
+    spent_at = holdout_spent_at(engine, str(dataset["id"]), str(sub["owner_key_id"]))
     holdout = HoldoutScores(
         submission_id=sub["id"],
         scores={m: float(v) for m, v in raw_scores.items() if v is not None},

@@ -1,0 +1,141 @@
+"""Re-judging under a changed policy: the verdict from the stored fold scores, its history, its holdout accounting.
+
+The decisions themselves are the rules' (tests/service/gate/test_verdict.py checks them against published
+values); here the checks are what a re-judge may do: recompute from the stored folds, keep every verdict
+with its policy version, never show the raw holdout score, and count a new holdout question against the
+submitter's budget as a released figure is counted.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+from typing import TYPE_CHECKING, Any
+
+import pytest
+from redis import Redis
+
+from service.gate.rejudge import holdout_spent_at
+from service.records import audit
+from tests.support.reviews import RAW_HOLDOUT, make_submission
+
+if TYPE_CHECKING:
+    from tests.support.api import Api
+
+@pytest.fixture(autouse=True)
+def real_redis(api: Api, redis_url: str) -> None:
+    """A re-judge takes the dataset's release lock, a Lua script that fakeredis does not run: a real redis-server."""
+    ctx = api.app.extensions["sealfold"]
+    api.app.extensions["sealfold"] = dataclasses.replace(ctx, redis=Redis.from_url(redis_url))
+
+
+SCORES = [55.0, 57.0, 54.0, 56.0, 58.0]  # rmse per fold; the baseline's are 1.3 times these
+
+
+def _sub(api: Api, dataset: dict[str, Any], **kwargs: Any) -> str:
+    return make_submission(api.engine, dataset, api.key_ids["submitter"], scores=SCORES, **kwargs)
+
+
+def _policy(api: Api, dataset: dict[str, Any], body: dict[str, Any]) -> int:
+    reply = api.call("steward", "PUT", f"/v1/datasets/{dataset['id']}/policy", json=body)
+    assert reply.status_code == 200, reply.get_data(as_text=True)
+    return int(reply.get_json()["version"])
+
+
+def _rejudge(api: Api, sub_id: str, who: str = "steward") -> dict[str, Any]:
+    reply = api.post(who, f"/v1/submissions/{sub_id}/verdicts")
+    assert reply.status_code == 200, reply.get_data(as_text=True)
+    assert str(RAW_HOLDOUT) not in reply.get_data(as_text=True)
+    return dict(reply.get_json())
+
+
+def _gap(doc: dict[str, Any]) -> dict[str, Any]:
+    return next(r for r in doc["verdict"]["rules"] if r["rule"] == "holdout_gap")
+
+
+def test_a_new_bar_is_applied_by_a_rejudge_and_every_verdict_is_kept(api: Api, dataset: dict[str, Any]) -> None:
+    sub = _sub(api, dataset, label="ridge")
+    version = _policy(api, dataset, {"bar": 50.0})  # every fold is above 50: the CV mean misses the bar
+    doc = _rejudge(api, sub)
+    assert doc["rejudged"] is True and doc["before"] == {"decision": "pass", "policy_version": 0, "champion": None}
+    assert doc["after"]["policy_version"] == version and doc["verdict"]["policy_version"] == version
+    assert doc["verdict"]["decision"] == "fail"
+    bar = next(r for r in doc["verdict"]["rules"] if r["rule"] == "bar")
+    assert bar["outcome"] == "fail" and bar["figures"]["cv_mean"] == sum(SCORES) / len(SCORES)
+
+    history = api.get("submitter", f"/v1/submissions/{sub}/verdicts").get_json()
+    assert [h["policy_version"] for h in history["history"]] == [0, version]
+    assert [h["judged_by"] for h in history["history"]] == ["system", api.key_ids["steward"]]
+    assert history["judged_under_policy_in_force"] is True and history["policy_version_in_force"] == version
+    served = api.get("submitter", f"/v1/submissions/{sub}").get_json()
+    assert served["result"]["verdict"] == doc["verdict"]
+    entry = api.get("submitter", f"/v1/datasets/{dataset['id']}/board").get_json()["entries"][0]
+    assert entry["policy_version"] == version and entry["verdict"] == "fail"
+    assert entry["judged_under_policy_in_force"] is True
+    events = [e for e in audit.events_for(api.engine, sub) if e["action"] == "submission.rejudged"]
+    assert len(events) == 1 and events[0]["actor"] == api.key_ids["steward"]
+
+    again = _rejudge(api, sub)  # nothing changed since: no new verdict
+    assert again["rejudged"] is False and "already judged" in again["note"]
+    assert len(api.get("steward", f"/v1/submissions/{sub}/verdicts").get_json()["history"]) == 2
+
+
+def test_a_new_holdout_question_spends_budget_and_an_answered_one_is_reused(
+    api: Api, dataset: dict[str, Any]
+) -> None:
+    sub = _sub(api, dataset)  # its release spent one unit of the submitter's budget
+    _policy(api, dataset, {"release": {"mode": "exact", "budget": 1, "window_hours": 24}})
+    withheld = _rejudge(api, sub)
+    rule = _gap(withheld)
+    assert withheld["holdout_spent"] == 0 and rule["outcome"] == "inconclusive" and rule["figures"]["withheld"]
+    assert "used up" in rule["sentence"] and withheld["verdict"]["decision"] != "pass"
+
+    _policy(api, dataset, {"release": {"mode": "exact", "budget": 3, "window_hours": 24}})
+    asked = _rejudge(api, sub)
+    # The stored raw holdout score (987.65) lies far outside CV mean 56 +/- 3 x spread: the answer is fail.
+    assert asked["holdout_spent"] == 1 and _gap(asked)["outcome"] == "fail"
+    assert "withheld" not in _gap(asked)["figures"]
+    assert len(holdout_spent_at(api.engine, dataset["id"], api.key_ids["submitter"])) == 2
+
+    _policy(api, dataset, {"release": {"mode": "exact", "budget": 3, "window_hours": 24}, "bar": 80.0})
+    reused = _rejudge(api, sub)  # same metric, k_std and floor: the earlier answer, no new query
+    assert reused["holdout_spent"] == 0 and _gap(reused) == _gap(asked)
+    assert len(holdout_spent_at(api.engine, dataset["id"], api.key_ids["submitter"])) == 2
+
+    _policy(api, dataset, {"holdout_gap": {"k_std": 4.0, "floor": 1.0},
+                           "release": {"mode": "thresholdout", "thresholdout": {
+                               "threshold": 2.0, "sigma": 1.0, "budget": 5}}})
+    under_thresholdout = _rejudge(api, sub)
+    assert under_thresholdout["holdout_spent"] == 0 and _gap(under_thresholdout)["figures"]["withheld"]
+    assert "thresholdout" in _gap(under_thresholdout)["sentence"]
+
+
+def test_rejudge_is_for_stewards_of_the_team_and_for_judged_submissions(api: Api, dataset: dict[str, Any]) -> None:
+    sub = _sub(api, dataset)
+    api.problem(api.post("submitter", f"/v1/submissions/{sub}/verdicts"), 403)
+    api.problem(api.post("other_steward", f"/v1/submissions/{sub}/verdicts"), 404)
+    api.problem(api.post(None, f"/v1/submissions/{sub}/verdicts"), 401)
+    queued = make_submission(api.engine, dataset, api.key_ids["submitter"], scores=None, decision=None)
+    problem = api.problem(api.post("steward", f"/v1/submissions/{queued}/verdicts"), 409)
+    assert "queued" in problem["detail"]
+    _policy(api, dataset, {"primary_metric": "mae"})  # the stored folds have rmse only
+    problem = api.problem(api.post("steward", f"/v1/submissions/{sub}/verdicts"), 409)
+    assert "'mae' in its metrics" in problem["detail"]
+
+
+def test_a_dataset_is_rejudged_a_page_at_a_time(api: Api, dataset: dict[str, Any]) -> None:
+    subs = [_sub(api, dataset, label=f"model {i}") for i in range(3)]
+    version = _policy(api, dataset, {"bar": 56.5})
+    path = f"/v1/datasets/{dataset['id']}/verdicts"
+    api.problem(api.post("submitter", path, json={}), 403)
+    api.problem(api.post("steward", path, json={"limit": 0}), 422)
+    first = api.post("steward", path, json={"limit": 2}).get_json()
+    assert first["policy_version"] == version and first["next_after"] is not None
+    second = api.post("steward", path, json={"limit": 2, "after": first["next_after"]}).get_json()
+    assert second["next_after"] is None
+    results = first["results"] + second["results"]
+    assert sorted(r["submission"] for r in results) == sorted(subs)
+    assert all(r["rejudged"] and r["after"]["policy_version"] == version for r in results)
+    assert api.post("steward", path).get_json()["results"] == []  # no body: the defaults; nothing left
+    text = json.dumps(first) + json.dumps(second)
+    assert str(RAW_HOLDOUT) not in text
