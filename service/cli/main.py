@@ -12,6 +12,7 @@ direction one way (``worker`` imports ``service``, never the reverse).
 from __future__ import annotations
 
 import argparse
+import hashlib
 import json
 import os
 import sys
@@ -306,9 +307,14 @@ def _ensure_demo_dataset(sup: Supervisor, stack: Stack, engine: Engine, steward_
     from service.settings import Settings
     from service.vault.store import dataset_paths
 
-    existing = datasets.find_by_name(engine, demo.DEMO_TEAM, demo.DEMO_NAME)
-    if existing is not None:
-        # With a shared DATABASE_URL the record may belong to another data dir: reuse only our own.
+    # With a shared DATABASE_URL the demo's record may belong to another data dir: reuse only our own,
+    # and since names are unique within a team, register ours under a name of its data dir then.
+    here = hashlib.sha256(str(stack.options.data_dir.resolve()).encode("utf-8")).hexdigest()[:8]
+    name = demo.DEMO_NAME
+    for name in (demo.DEMO_NAME, f"{demo.DEMO_NAME} ({here})"):
+        existing = datasets.find_by_name(engine, demo.DEMO_TEAM, name)
+        if existing is None:
+            break
         paths = dataset_paths(Settings.load(environ=stack.env), existing["id"])
         if paths.development.exists() and paths.sealed_holdout.exists():
             return existing
@@ -316,7 +322,7 @@ def _ensure_demo_dataset(sup: Supervisor, stack: Stack, engine: Engine, steward_
     sup.check()
     from service.cli.embedded import register_dataset
 
-    return register_dataset(stack.base_url, steward_token, demo.demo_declaration(), csv_path)
+    return register_dataset(stack.base_url, steward_token, {**demo.demo_declaration(), "name": name}, csv_path)
 
 
 def banner(stack: Stack, tokens: dict[str, str], dataset: dict[str, Any] | None) -> str:

@@ -139,3 +139,33 @@ def test_a_dataset_is_rejudged_a_page_at_a_time(api: Api, dataset: dict[str, Any
     assert api.post("steward", path).get_json()["results"] == []  # no body: the defaults; nothing left
     text = json.dumps(first) + json.dumps(second)
     assert str(RAW_HOLDOUT) not in text
+
+
+def test_a_resubmission_says_which_policy_judged_it_and_how_to_rejudge(
+    api: Api, dataset: dict[str, Any], worker_says_ok: list[dict[str, Any]]
+) -> None:
+    from service.records import submissions
+    from service.vocabulary import LIVE_STATES
+    from tests.support.api import submission_body
+    from tests.support.reviews import verdict
+
+    first = api.post("submitter", "/v1/submissions", json=submission_body(dataset, label="ridge v1"),
+                     headers={"Idempotency-Key": "first"})
+    assert first.status_code == 202 and "resubmission" not in first.get_json()
+    sub = first.get_json()["id"]
+    submissions.store_verdict(api.engine, sub, verdict("pass"), 0, None)
+    submissions.transition(api.engine, sub, "succeeded", LIVE_STATES)
+    replay = api.post("submitter", "/v1/submissions", json=submission_body(dataset, label="ridge v1"),
+                      headers={"Idempotency-Key": "first"})
+    assert replay.status_code == 200 and "resubmission" not in replay.get_json()  # a replay, not a resubmission
+
+    version = _policy(api, dataset, {"bar": 50.0})
+    again = api.post("submitter2", "/v1/submissions", json=submission_body(dataset, label="ridge, new policy"))
+    assert again.status_code == 200, again.get_data(as_text=True)
+    note = again.get_json()["resubmission"]
+    assert again.get_json()["id"] == sub and note["submission"] == sub
+    assert note["judged_under_policy_version"] == 0 and note["policy_version_in_force"] == version
+    assert note["judged_under_policy_in_force"] is False
+    assert note["label_sent"] == "ridge, new policy" and note["label_kept"] == "ridge v1"
+    assert f"POST /v1/submissions/{sub}/verdicts" in note["message"] and "was not kept" in note["message"]
+    assert len(worker_says_ok) == 1  # the resubmission was not checked nor run again
