@@ -83,7 +83,7 @@ def build_parser() -> argparse.ArgumentParser:
     create.add_argument("--team", required=True)
     create.add_argument("--role", required=True, choices=ROLES)
     create.add_argument("--name", default="", help="a label for the key")
-    add_client_commands(commands)
+    add_client_commands(commands, key_commands)
     return parser
 
 
@@ -113,8 +113,11 @@ CLIENT_EPILOG = ("exit codes: 0 passed (reading commands: answered); 1 failed, i
                  "(connection refused, timeout, 5xx)")
 
 
-def add_client_commands(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
-    """Add submit, status, board and datasets, which talk HTTP to SEALFOLD_URL with SEALFOLD_KEY."""
+def add_client_commands(commands: argparse._SubParsersAction[argparse.ArgumentParser],
+                        key_commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    """Add the commands that talk HTTP to SEALFOLD_URL with SEALFOLD_KEY (every role's)."""
+    from service.cli import access, steward
+
     common = argparse.ArgumentParser(add_help=False)
     common.add_argument("--url", help="service base URL (default: $SEALFOLD_URL)")
     common.add_argument("--key", help="API key (default: $SEALFOLD_KEY; prefer the variable, flags show in ps)")
@@ -138,6 +141,8 @@ def add_client_commands(commands: argparse._SubParsersAction[argparse.ArgumentPa
     board.add_argument("dataset", metavar="DATASET")
     board.add_argument("--limit", type=_entries, default=20, help="entries to show (default 20)")
     commands.add_parser("datasets", parents=[common], help="list the team's datasets", epilog=CLIENT_EPILOG)
+    steward.add_parsers(commands, common, CLIENT_EPILOG)
+    access.add_parsers(key_commands, commands, common, CLIENT_EPILOG)
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -149,9 +154,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         return cmd_worker(args)
     if args.command == "db":
         return cmd_db(args)
-    if args.command in ("submit", "status", "board", "datasets"):
-        from service.cli import remote
+    from service.cli import remote
 
+    if args.command in remote.CLIENT_COMMANDS or getattr(args, "keys_command", None) in remote.REMOTE_KEY_ACTIONS:
         return remote.run(args)
     return cmd_keys_create(args)
 

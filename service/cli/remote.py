@@ -1,7 +1,9 @@
-"""The client commands of ``sealfold``: submit (and wait), status, board, datasets.
+"""The client commands of ``sealfold``: submit (and wait), status, board, datasets; and their dispatch.
 
-Exit codes, the same for every command: 0 passed (or, for commands that only read, answered);
-1 the submission failed its review, was inconclusive, failed to run or was canceled; 2 the
+The steward's commands are in ``service.cli.steward``, key and report commands in ``service.cli.access``.
+Exit codes, the same for every command: 0 passed (or, for commands that only read or act, answered);
+1 the submission failed its review, was inconclusive, failed to run or was canceled (``status`` of a
+failed or canceled submission, with the reason on stderr); 2 the
 request is wrong (usage, a 4xx problem: its detail and field errors go to stderr); 3 the service
 could not be reached or failed (connection refused, timeout, 5xx). Results go to stdout (a
 summary, or the JSON document with ``--json``); progress and errors go to stderr.
@@ -35,12 +37,22 @@ _PLAIN = {c: " " for c in [*range(0x00, 0x20), *range(0x7F, 0xA0)]}  # no termin
 
 def run(args: argparse.Namespace) -> int:
     """Run one client command; turn client errors into their exit code and a message on stderr."""
-    commands = {"submit": cmd_submit, "status": cmd_status, "board": cmd_board, "datasets": cmd_datasets}
+    from service.cli import access, steward
+
+    commands = {"submit": cmd_submit, "status": cmd_status, "board": cmd_board, "datasets": cmd_datasets,
+                "register": steward.cmd_register, "policy": steward.cmd_policy, "rejudge": steward.cmd_rejudge,
+                "champion": steward.cmd_champion, "report": access.cmd_report,
+                "keys issue": access.cmd_keys_issue, "keys revoke": access.cmd_keys_revoke}
+    name = args.command if args.command != "keys" else f"keys {args.keys_command}"
     try:
-        return commands[args.command](args, connect(args))
+        return commands[name](args, connect(args))
     except ClientError as exc:
-        print(f"sealfold {args.command}: {exc.message}", file=sys.stderr)
+        print(f"sealfold {name}: {exc.message}", file=sys.stderr)
         return exc.exit_code
+
+
+CLIENT_COMMANDS = ("submit", "status", "board", "datasets", "register", "policy", "rejudge", "champion", "report")
+REMOTE_KEY_ACTIONS = ("issue", "revoke")
 
 
 def connect(args: argparse.Namespace) -> ServiceClient:
@@ -99,10 +111,10 @@ def cmd_submit(args: argparse.Namespace, client: ServiceClient) -> int:
         print(f"sealfold submit: {submission['id']} was already submitted (same configuration); following it",
               file=sys.stderr)
     if not args.wait:
-        print(_dumps(submission) if args.json else submission["id"])
+        print(dumps(submission) if args.json else submission["id"])
         return EXIT_PASS
     final = wait_for(client, submission, args.timeout, args.poll, Progress(sys.stderr))
-    print(_dumps(final) if args.json else summary_text(final, client.base_url))
+    print(dumps(final) if args.json else summary_text(final, client.base_url))
     return outcome_code(final)
 
 
@@ -188,9 +200,14 @@ def _phase(document: dict[str, Any], done: int, total: int) -> str:
 # -- reading commands -----------------------------------------------------------------------------
 
 def cmd_status(args: argparse.Namespace, client: ServiceClient) -> int:
-    """Print one submission (summary or JSON); exit 0 once it was read, whatever its state."""
+    """Print one submission (summary or JSON); exit 1 with the reason if it failed to run or was canceled."""
     document = client.call("GET", f"/v1/submissions/{urllib.parse.quote(args.id, safe='')}").json()
-    print(_dumps(document) if args.json else summary_text(document, client.base_url))
+    print(dumps(document) if args.json else summary_text(document, client.base_url))
+    state = document.get("state")
+    if state in ("failed", "canceled"):
+        why = plain(document.get("error") or "no reason was recorded") if state == "failed" else "it was canceled"
+        print(f"sealfold status: {document['id']} {state}: {why}", file=sys.stderr)
+        return EXIT_NOT_PASSED
     return EXIT_PASS
 
 
@@ -207,14 +224,14 @@ def cmd_board(args: argparse.Namespace, client: ServiceClient) -> int:
         if cursor is None or len(entries) >= args.limit:
             break
     board = {**page, "entries": entries, "next_cursor": cursor}
-    print(_dumps(board) if args.json else board_text(board))
+    print(dumps(board) if args.json else board_text(board))
     return EXIT_PASS
 
 
 def cmd_datasets(args: argparse.Namespace, client: ServiceClient) -> int:
     """Print the team's datasets."""
     document = client.call("GET", "/v1/datasets").json()
-    print(_dumps(document) if args.json else datasets_text(document["datasets"]))
+    print(dumps(document) if args.json else datasets_text(document["datasets"]))
     return EXIT_PASS
 
 
@@ -274,7 +291,8 @@ def board_text(board: dict[str, Any]) -> str:
     lines = [f"board of {board.get('dataset')}: ranked by {metric} ({direction} is better), policy "
              f"version {board.get('policy_version')}"]
     rows: list[tuple[Any, ...]] = [("rank", "submission", "label", f"CV {metric}", "naive 95 % interval",
-                                    "holdout (as released)", "released under", "verdict", "submitter", "created")]
+                                    "holdout (as released)", "released under", "verdict (policy)", "submitter",
+                                    "created")]
     for e in board["entries"]:
         interval = e["cv"].get("naive_interval_95")
         holdout = e["holdout"]
@@ -282,22 +300,33 @@ def board_text(board: dict[str, Any]) -> str:
             f"{e['rank']}{' *' if e.get('champion') else ''}", e["submission"], plain(e.get("label") or "")[:28],
             num(e["cv"].get("mean")), f"{num(interval[0])} to {num(interval[1])}" if interval else "-",
             _board_holdout(holdout), _released_under(holdout),
-            e.get("verdict") or "-", plain((e.get("submitter") or {}).get("name") or "")[:24],
+            _judged(e), plain((e.get("submitter") or {}).get("name") or "")[:24],
             str(e.get("created_at") or "")[:10],
         ))
     if not board["entries"]:
         return "\n".join([*lines, "no ranked submissions yet"])
-    lines += _table(rows)
+    lines += table(rows)
     if any(e.get("champion") for e in board["entries"]):
         lines.append("* champion")
     if any(e["holdout"].get("ladder") for e in board["entries"]):
         lines.append("ladder figures are the dataset's best holdout so far, not the row's own: \"new best\" marks "
                      "the rows that set one")
+    if any(e.get("judged_under_policy_in_force") is False for e in board["entries"]):
+        lines.append(f"! judged under an older policy than version {board.get('policy_version')}: a steward "
+                     f"re-judges them with `sealfold rejudge --dataset {board.get('dataset')}`")
     if board.get("mixed_policies"):
         lines.append(f"note: {plain(board['mixed_policies'])}")
     if board.get("next_cursor"):
         lines.append("(more entries: raise --limit)")
     return "\n".join(lines)
+
+
+def _judged(entry: dict[str, Any]) -> str:
+    """A board row's verdict and the policy version it was judged under, marked when that is not the one in force."""
+    if not entry.get("verdict"):
+        return "-"
+    stale = " !" if entry.get("judged_under_policy_in_force") is False else ""
+    return f"{entry['verdict']} v{entry.get('policy_version')}{stale}"
 
 
 def _board_holdout(holdout: dict[str, Any]) -> str:
@@ -330,13 +359,13 @@ def datasets_text(datasets: list[dict[str, Any]]) -> str:
         rows.append((d["id"], plain(d.get("name"))[:28], d.get("task"), plain(d.get("target"))[:20],
                      str((d.get("rows") or {}).get("development")), str((d.get("rows") or {}).get("holdout")),
                      f"{plan.get('scheme')} x{plan.get('folds')}", str(d.get("created_at") or "")[:10]))
-    return "\n".join(_table(rows))
+    return "\n".join(table(rows))
 
 
-def _table(rows: list[tuple[Any, ...]]) -> list[str]:
+def table(rows: list[tuple[Any, ...]]) -> list[str]:
     widths = [max(len(str(r[i])) for r in rows) for i in range(len(rows[0]))]
     return ["  ".join(str(c).ljust(w) for c, w in zip(r, widths, strict=True)).rstrip() for r in rows]
 
 
-def _dumps(document: Any) -> str:
+def dumps(document: Any) -> str:
     return json.dumps(document, indent=2, sort_keys=True)
