@@ -123,7 +123,7 @@ def store_verdict(
     The verdict becomes the submission's current one and is appended to its history (``records.verdicts``)
     in the same transaction; ``holdout_spent`` is the units of the owner's holdout budget it used.
     """
-    now = utcnow()
+    now, verdict = utcnow(), verdicts.finite(verdict)
     with engine.begin() as conn:
         owner = conn.execute(select(submissions.c.dataset_id, submissions.c.owner_key_id)
                              .where(submissions.c.id == sub_id)).one()

@@ -7,6 +7,7 @@ The verdict job adds the first; a steward's re-judge adds later ones (``service.
 
 from __future__ import annotations
 
+import math
 from datetime import datetime
 from typing import Any
 
@@ -14,6 +15,22 @@ from sqlalchemy import Connection, Engine, and_, or_, select
 
 from service.records.engine import iso
 from service.records.tables import submissions, verdicts
+
+
+def finite(document: Any) -> Any:
+    """Return a JSON document with every NaN or infinite number replaced by null.
+
+    JSON has neither; Python writes them as ``NaN``/``Infinity``, which the databases' JSON functions
+    (the board's ranking reads the verdict with them) refuse as malformed. A figure that is not finite,
+    e.g. a test's bound at an extreme level, is shown as null, as an absent figure is.
+    """
+    if isinstance(document, float):
+        return document if math.isfinite(document) else None
+    if isinstance(document, dict):
+        return {k: finite(v) for k, v in document.items()}
+    if isinstance(document, list | tuple):
+        return [finite(v) for v in document]
+    return document
 
 
 def add(conn: Connection, row: dict[str, Any]) -> None:

@@ -169,3 +169,17 @@ def test_a_resubmission_says_which_policy_judged_it_and_how_to_rejudge(
     assert note["label_sent"] == "ridge, new policy" and note["label_kept"] == "ridge v1"
     assert f"POST /v1/submissions/{sub}/verdicts" in note["message"] and "was not kept" in note["message"]
     assert len(worker_says_ok) == 1  # the resubmission was not checked nor run again
+
+
+def test_a_figure_that_is_not_finite_is_stored_as_null_and_the_board_still_ranks(
+    api: Api, dataset: dict[str, Any]
+) -> None:
+    # At a level of 1e-300 the one-sided bound of the paired test is -infinity (scipy's t.ppf); JSON has no
+    # infinity, and SQLite's JSON functions refuse a document that holds one.
+    sub = _sub(api, dataset)
+    _policy(api, dataset, {"baseline_alpha": 1e-300, "holdout_gap": {"k_std": 1e308, "floor": 1e308}})
+    doc = _rejudge(api, sub)
+    baseline = next(r for r in doc["verdict"]["rules"] if r["rule"] == "baseline")
+    assert baseline["figures"]["lower_bound"] is None
+    board = api.get("submitter", f"/v1/datasets/{dataset['id']}/board")
+    assert board.status_code == 200 and board.get_json()["entries"][0]["submission"] == sub
