@@ -108,7 +108,9 @@ def cmd_submit(args: argparse.Namespace, client: ServiceClient) -> int:
                         headers={"Idempotency-Key": key})
     submission = reply.json()
     if reply.status == 200:
-        print(f"sealfold submit: {submission['id']} was already submitted (same configuration); following it",
+        note = (submission.get("resubmission") or {}).get("message")
+        print(f"sealfold submit: {plain(note)}" if note else
+              f"sealfold submit: {submission['id']} was already submitted (same configuration); following it",
               file=sys.stderr)
     if not args.wait:
         print(dumps(submission) if args.json else submission["id"])
