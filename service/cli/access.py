@@ -15,7 +15,7 @@ import urllib.parse
 import webbrowser
 
 from service.cli.client import EXIT_PASS, ServiceClient, Trouble
-from service.cli.remote import dumps
+from service.cli.text import dumps
 from service.vocabulary import ROLES
 
 

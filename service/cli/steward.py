@@ -16,7 +16,7 @@ from pathlib import Path
 from typing import Any
 
 from service.cli.client import EXIT_NOT_PASSED, EXIT_PASS, Refused, ServiceClient, failure
-from service.cli.remote import dumps, num, plain, table
+from service.cli.text import dumps, num, plain, table
 from service.vocabulary import TASKS
 
 _FORMAT_TYPES = {".csv": "text/csv", ".parquet": "application/vnd.apache.parquet",
