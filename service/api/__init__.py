@@ -56,7 +56,7 @@ def json_response(document: Any, status: int = 200, headers: Mapping[str, str] |
 
 def register_blueprints(api: SealfoldApi) -> None:
     """Register every blueprint of the v1 surface and the open operational endpoints."""
-    from service.api import catalog, datasets, keys, ops, report, reviews, submissions
+    from service.api import catalog, datasets, keys, ops, report, reviews, submissions, verdicts
 
-    for module in (datasets, reviews, submissions, report, catalog, keys, ops):
+    for module in (datasets, reviews, submissions, verdicts, report, catalog, keys, ops):
         api.register_blueprint(module.blp)

@@ -74,6 +74,9 @@ class ColumnSchema(Schema):
     name = fields.String()
     kind = fields.String(validate=validate.OneOf(("numeric", "categorical", "datetime")))
     dtype = fields.String()
+    missing = fields.Integer(allow_none=True, metadata={
+        "description": "missing values in the development partition; absent on datasets registered before "
+                       "they were counted"})
 
 
 class FoldPlanSchema(Schema):

@@ -157,6 +157,7 @@ class DatasetCollection(MethodView):
     @blp.requires("steward")
     @blp.doc(requestBody=_REGISTER_BODY)
     @blp.response(201, DatasetSchema, headers={"Location": {"schema": {"type": "string"}}})
+    @blp.problem(409, "The team already has a dataset of this name (names are unique within a team)")
     @blp.problem(413, "The upload exceeds the server's size limit")
     @blp.problem(415, "Neither CSV nor Parquet, or neither multipart nor JSON")
     @blp.problem(422, "The dataset or its declaration is rejected")

@@ -154,6 +154,9 @@ class BoardEntrySchema(Schema):
     holdout = fields.Nested(BoardHoldoutSchema)
     verdict = fields.String(allow_none=True, validate=validate.OneOf(DECISIONS))
     policy_version = fields.Integer(allow_none=True, metadata={"description": "the policy it was judged under"})
+    judged_under_policy_in_force = fields.Boolean(allow_none=True, metadata={
+        "description": "false: judged under an older policy; a steward can re-judge it (POST "
+                       "/v1/submissions/{id}/verdicts); null while it has no verdict"})
     submitter = fields.Nested(SubmitterSchema)
     created_at = fields.String(metadata=_DATETIME)
     champion = fields.Boolean()

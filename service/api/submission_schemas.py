@@ -370,6 +370,20 @@ class SubmissionWarningSchema(Schema):
         "description": "class_missing_from_training: per fold, repeat, fold and missing_classes"})
 
 
+class ResubmissionSchema(Schema):
+    """Only in the answer to a POST of a configuration the team already submitted on the same data."""
+
+    submission = fields.String(metadata={"description": "the earlier submission answered instead"})
+    judged_under_policy_version = fields.Integer(allow_none=True, metadata={
+        "description": "the policy version its verdict was judged under; null while it has no verdict"})
+    policy_version_in_force = fields.Integer()
+    judged_under_policy_in_force = fields.Boolean(allow_none=True)
+    label_sent = fields.String(metadata={"description": "the label of this request, which is not kept"})
+    label_kept = fields.String()
+    message = fields.String(metadata={"description": "one plain paragraph, saying how to re-judge when the "
+                                                     "verdict is from an older policy"})
+
+
 class SubmissionSchema(Schema):
     """A submission: its state, progress and, once computed, its result."""
 
@@ -387,6 +401,8 @@ class SubmissionSchema(Schema):
     config = fields.Nested(ResolvedConfigSchema)
     config_fingerprint = fields.String()
     result = fields.Nested(SubmissionResultSchema, allow_none=True)
+    resubmission = fields.Nested(ResubmissionSchema, metadata={
+        "description": "only when this POST named a configuration the team already submitted"})
 
 
 class SubmissionListSchema(Schema):

@@ -18,6 +18,7 @@ from flask import Response, request
 from flask.views import MethodView
 from marshmallow import EXCLUDE, Schema, fields, validate
 
+from service import team_scope
 from service.api import SealfoldBlueprint, json_response, service_context
 from service.api.auth import current_key, team_dataset, team_submission
 from service.api.submission_schemas import (
@@ -28,12 +29,14 @@ from service.api.submission_schemas import (
     SubmissionSchema,
 )
 from service.errors import InputError, field_error
+from service.gate.review_state import policy_in_force
 from service.records import submissions
 from service.records.engine import as_utc, iso
 from service.submission import intake
 from service.submission.config import SubmissionRequest
 from service.submission.document import submission_document
 from service.submission.resolved import ValidationPlan
+from service.submission.resubmission import resubmission_note
 from service.vault.folds import fold_splits, split_keys_from_frame
 from service.vault.store import load_development_frame
 
@@ -89,7 +92,9 @@ class SubmissionCollection(MethodView):
     @blp.response(202, SubmissionSchema, description="Accepted: the folds are queued",
                   headers={"Location": {"schema": {"type": "string"}}})
     @blp.alt_response(200, schema=SubmissionSchema, success=True,
-                      description="A replay: the submission first made with this Idempotency-Key")
+                      description="A replay: the submission first made with this Idempotency-Key; or the team's "
+                                  "earlier submission of the same configuration, with a 'resubmission' note "
+                                  "saying which policy version judged it and how to re-judge it")
     @blp.problem(404, "No such dataset in the caller's team")
     @blp.problem(409, "The pinned dataset fingerprint does not match")
     @blp.problem(415, "The body is not JSON")
@@ -97,11 +102,15 @@ class SubmissionCollection(MethodView):
     @blp.problem(503, "No worker answered the configuration check, or the queue is down")
     def post(self, headers: dict[str, Any], submission: SubmissionRequest) -> Response:
         """Submit a model configuration for review."""
-        ctx = service_context()
-        row, created = intake.submit(
-            ctx.engine, ctx.redis, ctx.settings, current_key(), submission, headers["idempotency_key"]
-        )
+        ctx, caller = service_context(), current_key()
+        key = headers["idempotency_key"]
+        row, created = intake.submit(ctx.engine, ctx.redis, ctx.settings, caller, submission, key)
         document = submission_document(ctx.engine, row)
+        replay = key is not None and row["idempotency_key"] == key and row["owner_key_id"] == caller.id
+        if not created and not replay:
+            dataset = team_scope.team_dataset(ctx.engine, caller, row["dataset_id"])
+            version = int(policy_in_force(ctx.engine, dataset)["version"])
+            document["resubmission"] = resubmission_note(row, submission.label, version)
         return json_response(document, 202 if created else 200, _location(row["id"]))
 
     @blp.requires("submitter")

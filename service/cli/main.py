@@ -12,6 +12,7 @@ direction one way (``worker`` imports ``service``, never the reverse).
 from __future__ import annotations
 
 import argparse
+import hashlib
 import json
 import os
 import sys
@@ -92,7 +93,7 @@ def build_parser() -> argparse.ArgumentParser:
     create.add_argument("--name", default="", help="a label for the key")
     create.add_argument("--identity", default=None,
                         help="whose key it is (a person or CI identity); its keys share one holdout budget")
-    add_client_commands(commands)
+    add_client_commands(commands, key_commands)
     return parser
 
 
@@ -122,8 +123,11 @@ CLIENT_EPILOG = ("exit codes: 0 passed (reading commands: answered); 1 failed, i
                  "(connection refused, timeout, 5xx)")
 
 
-def add_client_commands(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
-    """Add submit, status, board and datasets, which talk HTTP to SEALFOLD_URL with SEALFOLD_KEY."""
+def add_client_commands(commands: argparse._SubParsersAction[argparse.ArgumentParser],
+                        key_commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    """Add the commands that talk HTTP to SEALFOLD_URL with SEALFOLD_KEY (every role's)."""
+    from service.cli import access, steward
+
     common = argparse.ArgumentParser(add_help=False)
     common.add_argument("--url", help="service base URL (default: $SEALFOLD_URL)")
     common.add_argument("--key", help="API key (default: $SEALFOLD_KEY; prefer the variable, flags show in ps)")
@@ -147,6 +151,8 @@ def add_client_commands(commands: argparse._SubParsersAction[argparse.ArgumentPa
     board.add_argument("dataset", metavar="DATASET")
     board.add_argument("--limit", type=_entries, default=20, help="entries to show (default 20)")
     commands.add_parser("datasets", parents=[common], help="list the team's datasets", epilog=CLIENT_EPILOG)
+    steward.add_parsers(commands, common, CLIENT_EPILOG)
+    access.add_parsers(key_commands, commands, common, CLIENT_EPILOG)
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -162,9 +168,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         from service.cli.operations import cmd_backup
 
         return cmd_backup(args)
-    if args.command in ("submit", "status", "board", "datasets"):
-        from service.cli import remote
+    from service.cli import remote
 
+    if args.command in remote.CLIENT_COMMANDS or getattr(args, "keys_command", None) in remote.REMOTE_KEY_ACTIONS:
         return remote.run(args)
     return cmd_keys_create(args)
 
@@ -327,9 +333,14 @@ def _ensure_demo_dataset(sup: Supervisor, stack: Stack, engine: Engine, steward_
     from service.settings import Settings
     from service.vault.store import dataset_paths
 
-    existing = datasets.find_by_name(engine, demo.DEMO_TEAM, demo.DEMO_NAME)
-    if existing is not None:
-        # With a shared DATABASE_URL the record may belong to another data dir: reuse only our own.
+    # With a shared DATABASE_URL the demo's record may belong to another data dir: reuse only our own,
+    # and since names are unique within a team, register ours under a name of its data dir then.
+    here = hashlib.sha256(str(stack.options.data_dir.resolve()).encode("utf-8")).hexdigest()[:8]
+    name = demo.DEMO_NAME
+    for name in (demo.DEMO_NAME, f"{demo.DEMO_NAME} ({here})"):
+        existing = datasets.find_by_name(engine, demo.DEMO_TEAM, name)
+        if existing is None:
+            break
         paths = dataset_paths(Settings.load(environ=stack.env), existing["id"])
         if paths.development.exists() and paths.sealed_holdout.exists():
             return existing
@@ -337,7 +348,7 @@ def _ensure_demo_dataset(sup: Supervisor, stack: Stack, engine: Engine, steward_
     sup.check()
     from service.cli.embedded import register_dataset
 
-    return register_dataset(stack.base_url, steward_token, demo.demo_declaration(), csv_path)
+    return register_dataset(stack.base_url, steward_token, {**demo.demo_declaration(), "name": name}, csv_path)
 
 
 def banner(stack: Stack, tokens: dict[str, str], dataset: dict[str, Any] | None) -> str:

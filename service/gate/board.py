@@ -74,11 +74,12 @@ def decode_cursor(text: str, order: BoardOrder) -> BoardCursor:
 
 def board_page(
     engine: Engine, dataset: dict[str, Any], order: BoardOrder, limit: int, after: BoardCursor | None = None,
-    champion_id: str | None = None,
+    champion_id: str | None = None, policy_version: int | None = None,
 ) -> tuple[list[dict[str, Any]], BoardCursor | None]:
     """Return one page of board entries and the cursor of the next page (None on the last page).
 
-    ``dataset`` is the caller's team's dataset as ``service.team_scope.team_dataset`` returned it.
+    ``dataset`` is the caller's team's dataset as ``service.team_scope.team_dataset`` returned it;
+    ``policy_version`` is the version in force, so each entry says whether it was judged under it.
     """
     summary = submissions.c.cv_summary[("summary", order.metric)]
     mean = submissions.c.cv_summary[("summary", order.metric, "mean")].as_float()
@@ -105,7 +106,8 @@ def board_page(
     with engine.connect() as conn:
         rows = conn.execute(query).mappings().all()
     start = 0 if after is None else after.position
-    entries = [_entry(dict(r), start + i + 1, champion_id, order.metric) for i, r in enumerate(rows[:limit])]
+    entries = [_entry(dict(r), start + i + 1, champion_id, order.metric, policy_version)
+               for i, r in enumerate(rows[:limit])]
     if len(rows) <= limit:
         return entries, None
     last = rows[limit - 1]
@@ -122,7 +124,7 @@ def board_document(engine: Engine, dataset: dict[str, Any], limit: int, cursor: 
     order = BoardOrder(metric, bool(policy["greater_is_better"]))
     after = None if cursor is None else decode_cursor(cursor, order)
     champion = champions.current(engine, dataset["id"])
-    entries, following = board_page(engine, dataset, order, limit, after, champion)
+    entries, following = board_page(engine, dataset, order, limit, after, champion, int(policy["version"]))
     released_under = board_policies(engine, dataset, order)
     return {
         "dataset": dataset["id"], "primary_metric": metric, "greater_is_better": order.greater_is_better,
@@ -173,7 +175,8 @@ def _after(mean: ColumnElement[float], order: BoardOrder, cursor: BoardCursor) -
     return or_(beyond, and_(mean == cursor.mean, submissions.c.id > cursor.submission_id))
 
 
-def _entry(row: dict[str, Any], rank: int, champion_id: str | None, metric: str) -> dict[str, Any]:
+def _entry(row: dict[str, Any], rank: int, champion_id: str | None, metric: str,
+           version_in_force: int | None) -> dict[str, Any]:
     summary = row["summary"] if isinstance(row["summary"], dict) else {}
     has_release = row["release_of"] is not None
     shown = None if row["released"] is None else {metric: float(row["released"])}
@@ -198,6 +201,8 @@ def _entry(row: dict[str, Any], rank: int, champion_id: str | None, metric: str)
         },
         "verdict": row["decision"],
         "policy_version": row["policy_version"],
+        "judged_under_policy_in_force": None if row["decision"] is None or version_in_force is None
+        else row["policy_version"] == version_in_force,
         "submitter": {"key": row["owner_key_id"], "name": row["key_name"]},
         "created_at": iso(row["created_at"]),
         "champion": row["id"] == champion_id,

@@ -77,7 +77,7 @@ def judge(
     policy: Policy, candidate: Mapping[Cell, float], baseline: Mapping[Cell, float],
     champion: ChampionFolds | None, holdout: float | None, plan: PlanFacts, *, policy_version: int,
     holdout_hidden: str | None = None, holdout_failed: bool = False,
-    champion_holdout: Mapping[str, Any] | None = None,
+    champion_holdout: Mapping[str, Any] | None = None, holdout_rule: dict[str, Any] | None = None,
 ) -> dict[str, Any]:
     """Return the verdict document for a candidate's primary-metric fold scores.
 
@@ -85,12 +85,18 @@ def judge(
     says why the holdout rule is withheld; ``holdout_failed``: the attempt failed and that is released.
     ``champion_holdout`` is the rule entry of the champion decision on the sealed rows
     (service.gate.holdout_champion), made by the verdict job; None when it was not made.
+    ``holdout_rule``, when given, stands for the holdout-gap rule instead of checking it on ``holdout``:
+    a re-judge passes the answer an earlier verdict already gave, or a rule saying the check is withheld.
     """
     if plan.test not in (CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV):
         raise ValueError(f"test must be {CORRECTED_RESAMPLED_T} or {FIVE_BY_TWO_CV}, got {plan.test!r}")
     j = _Judge(policy, candidate, plan)
-    gap = j.holdout_unavailable(holdout_hidden, holdout_failed) if holdout_hidden or holdout_failed \
-        else j.holdout_gap(holdout)
+    if holdout_rule is not None:
+        gap = holdout_rule
+    elif holdout_hidden or holdout_failed:
+        gap = j.holdout_unavailable(holdout_hidden, holdout_failed)
+    else:
+        gap = j.holdout_gap(holdout)
     on_cv, on_holdout = _champion_rules(policy, champion, champion_holdout, j.champion(champion))
     rules = [j.baseline(baseline), j.bar(), on_cv, on_holdout, gap, j.fold_stability()]
     outcomes = {r["outcome"] for r in rules if r["figures"].get("decides", True)}
@@ -126,6 +132,12 @@ def _champion_rules(
             entry["sentence"] += f" (Shown only: the policy's champion_rule is {policy.champion_rule}.)"
         entries.append(entry)
     return entries[0], entries[1]
+
+
+def holdout_gap_rule(policy: Policy, candidate: Mapping[Cell, float], plan: PlanFacts,
+                     holdout: float | None) -> dict[str, Any]:
+    """Return the holdout-gap rule alone (a re-judge checks it apart from the others)."""
+    return _Judge(policy, candidate, plan).holdout_gap(holdout)
 
 
 def _rule(rule: str, outcome: str, sentence: str, figures: dict[str, Any]) -> dict[str, Any]:

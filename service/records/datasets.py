@@ -10,8 +10,9 @@ from __future__ import annotations
 
 from typing import Any
 
-from sqlalchemy import Engine, select
+from sqlalchemy import Connection, Engine, select
 
+from service.errors import Conflict, field_error
 from service.records import audit
 from service.records.engine import iso
 from service.records.tables import datasets
@@ -22,9 +23,27 @@ BALANCE_SUMMARY = ("balanced", "adversarial_auc", "draws")
 _READS_BALANCE_TABLE = "steward"
 
 
+def refuse_taken_name(engine: Engine | Connection, team: str, name: str) -> None:
+    """Raise a 409 on /name when the team already has a dataset of this name.
+
+    Names are unique within a team, so a board, a CLI listing or a report names one dataset. Checked before
+    the file is read and again in the transaction that inserts the row.
+    """
+    query = select(datasets.c.id).where(datasets.c.team == team, datasets.c.name == name).limit(1)
+    if isinstance(engine, Connection):
+        taken = engine.execute(query).scalar()
+    else:
+        with engine.connect() as conn:
+            taken = conn.execute(query).scalar()
+    if taken is not None:
+        raise field_error(Conflict, "/name", f"team {team!r} already has a dataset named {name!r} ({taken}); "
+                          "dataset names are unique within a team: choose another name")
+
+
 def insert(engine: Engine, row: dict[str, Any]) -> None:
-    """Insert a dataset row and its audit event in one transaction."""
+    """Insert a dataset row and its audit event in one transaction; a name the team already has is a 409."""
     with engine.begin() as conn:
+        refuse_taken_name(conn, row["team"], row["name"])
         conn.execute(datasets.insert().values(**row))
         audit.record(
             conn, row["created_by"], row["team"], "dataset.registered", row["id"],

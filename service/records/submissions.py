@@ -15,7 +15,7 @@ from typing import Any
 from sqlalchemy import Engine, and_, func, select, update
 from sqlalchemy.exc import IntegrityError
 
-from service.records import audit
+from service.records import audit, verdicts
 from service.records.engine import utcnow
 from service.records.tables import fold_results, holdout_scores, submissions
 from service.vocabulary import LIVE_STATES, TERMINAL_STATES
@@ -142,11 +142,24 @@ def store_summary(engine: Engine, sub_id: str, cv_summary: dict[str, Any]) -> No
 
 def store_verdict(
     engine: Engine, sub_id: str, verdict: dict[str, Any], policy_version: int | None, champion_id: str | None,
+    *, judged_by: str = "system", holdout_spent: int = 0,
 ) -> None:
-    """Store the verdict of a submission with the policy version and champion it was judged against."""
+    """Store the verdict of a submission with the policy version and champion it was judged against.
+
+    The verdict becomes the submission's current one and is appended to its history (``records.verdicts``)
+    in the same transaction; ``holdout_spent`` is the units of the owner's holdout budget it used.
+    """
+    now, verdict = utcnow(), verdicts.finite(verdict)
     with engine.begin() as conn:
+        owner = conn.execute(select(submissions.c.dataset_id, submissions.c.owner_key_id)
+                             .where(submissions.c.id == sub_id)).one()
         conn.execute(update(submissions).where(submissions.c.id == sub_id).values(
-            verdict=verdict, policy_version=policy_version, champion_id=champion_id, updated_at=utcnow()))
+            verdict=verdict, policy_version=policy_version, champion_id=champion_id, updated_at=now))
+        verdicts.add(conn, {
+            "submission_id": sub_id, "dataset_id": owner.dataset_id, "owner_key_id": owner.owner_key_id,
+            "policy_version": policy_version, "champion_id": champion_id, "verdict": verdict,
+            "judged_by": judged_by, "judged_at": now, "holdout_spent": holdout_spent,
+        })
 
 
 def record_fold(engine: Engine, sub_id: str, repeat: int, fold: int, **fields: Any) -> bool:

@@ -176,6 +176,27 @@ champions = Table(
     Column("promoted_at", DateTime(timezone=True), nullable=False),
 )
 
+verdicts = Table(
+    "verdicts",
+    metadata,
+    # Every verdict a submission was given, oldest first: the first by the verdict job, later ones when a
+    # steward re-judged it under a newer policy or champion. submissions.verdict is the newest of them.
+    Column("id", Integer, primary_key=True, autoincrement=True),
+    Column("submission_id", ForeignKey("submissions.id"), nullable=False),
+    Column("dataset_id", ForeignKey("datasets.id"), nullable=False),
+    Column("owner_key_id", String(40), nullable=False),  # the submission's owner, whose holdout budget is used
+    Column("policy_version", Integer),  # the policy it was judged under (null: records from before versions)
+    Column("champion_id", String(40)),  # the champion it was judged against (null: none)
+    Column("verdict", JSON, nullable=False),
+    Column("judged_by", String(40), nullable=False),  # "system" (the verdict job) or the re-judging steward's key
+    Column("judged_at", DateTime(timezone=True), nullable=False),
+    # Units of the owner's holdout budget this verdict used: 1 when a re-judge asked the holdout a question
+    # no earlier verdict had answered (the holdout-gap rule under new parameters), else 0.
+    Column("holdout_spent", Integer, nullable=False, server_default="0"),
+    Index("ix_verdicts_submission", "submission_id", "id"),
+    Index("ix_verdicts_spent", "dataset_id", "owner_key_id", "judged_at"),
+)
+
 holdout_releases = Table(
     "holdout_releases",
     metadata,

@@ -93,6 +93,7 @@ def register_dataset(
     if not actor.can("steward"):
         raise Forbidden(f"registering a dataset needs the steward role; key {actor.id!r} is a {actor.role}")
     scheme = _check_declaration(declaration)
+    datasets.refuse_taken_name(engine, actor.team, declaration.name.strip())
     frame = read_table(_checked_source(settings, source), fmt)
     fraction = declaration.holdout_fraction
     if fraction is None:
@@ -117,7 +118,8 @@ def register_dataset(
         "task": declaration.task,
         "target": declaration.target,
         **{role: getattr(declaration, role) for role in _ROLE_COLUMNS},
-        "columns": manifest["columns"],
+        # Missing values per column, counted on the development rows (the holdout's stay sealed).
+        "columns": [{**c, "missing": int(sealed.development[c["name"]].isna().sum())} for c in kinds],
         "classes": _classes(frame[declaration.target]) if declaration.task == "classification" else None,
         "rows_total": len(frame),
         "rows_development": len(sealed.development),

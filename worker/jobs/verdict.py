@@ -24,12 +24,13 @@ import numpy as np
 from redis import Redis
 
 from service.gate import review_state
+from service.gate.evidence import gather, holdout_reading
 from service.gate.policy import Policy, parse_policy
-from service.gate.release import FAILED, RELEASED, WITHHELD, HoldoutScores, budget_status, release
-from service.gate.verdict import CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV, ChampionFolds, PlanFacts, judge
-from service.records import champion_folds, champions, holdout_releases, keys, submissions
+from service.gate.rejudge import release_lock_name
+from service.gate.release import HoldoutScores, budget_status, release
+from service.gate.verdict import judge
+from service.records import champions, holdout_releases, keys, submissions
 from service.records.engine import as_utc, utcnow
-from service.submission.resolved import ValidationPlan
 from service.vocabulary import LIVE_STATES
 from worker.jobs import sealed_champion
 from worker.jobs.losses import DamagedLosses, load_per_example
@@ -59,13 +60,12 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
     version = int(stated["version"])
     policy = parse_policy(stated, str(dataset["task"]))
     metric = policy.primary_metric
-    folds = [row for row in submissions.fold_rows(engine, submission_id) if row["status"] == "ok"]
-    candidate = _cells(folds, "scores", metric)
-    baseline = _cells(folds, "baseline_scores", metric)
+    evidence = gather(engine, sub, dataset, metric)
+    candidate, folds = evidence.candidate, evidence.folds
     champion_id = champions.current(engine, dataset["id"])
 
     try:
-        with redis.lock(f"sealfold:release:{dataset['id']}", timeout=120, blocking_timeout=60):
+        with redis.lock(release_lock_name(str(dataset["id"])), timeout=120, blocking_timeout=60):
             told = holdout_releases.get(engine, submission_id)
             if told is None:
                 told = _release(ctx, sub, dataset, policy, version, raw, candidate, folds, champion_id)
@@ -75,73 +75,13 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
         submissions.transition(engine, submission_id, "failed", LIVE_STATES, error=error, reopen=True)
         return {"submission_id": submission_id, "decision": None, "holdout": "not released"}
 
-    validation = ValidationPlan.from_document(sub["config"]["validation"])
-    champion = None if champion_id in (None, submission_id) else _champion(ctx, str(champion_id), metric, validation)
-    plan = PlanFacts(
-        key=_plan_key(validation),
-        sizes={(r["repeat"], r["fold"]): (r["train_rows"], r["test_rows"]) for r in folds},
-        overridden=validation.plan_overridden,
-        test=FIVE_BY_TWO_CV if validation.test == "5x2cv" else CORRECTED_RESAMPLED_T,
-        holdout_rows=int(dataset["rows_holdout"]),
-    )
     figure, hidden, failed = holdout_reading(told, metric)
-    verdict = judge(policy, candidate, baseline, champion, figure, plan, policy_version=version,
-                    holdout_hidden=hidden, holdout_failed=failed,
+    verdict = judge(policy, candidate, evidence.baseline, evidence.champion, figure, evidence.plan,
+                    policy_version=version, holdout_hidden=hidden, holdout_failed=failed,
                     champion_holdout=sealed_champion.recorded_entry(ctx, submission_id))
-    submissions.store_verdict(engine, submission_id, verdict, version, None if champion is None else champion_id)
+    submissions.store_verdict(engine, submission_id, verdict, version, evidence.champion_id)
     submissions.transition(engine, submission_id, "succeeded", LIVE_STATES)
     return {"submission_id": submission_id, "decision": verdict["decision"]}
-
-
-def holdout_reading(told: Mapping[str, Any], metric: str) -> tuple[float | None, str | None, bool]:
-    """Return what the holdout rule may read of a release row: (own released figure, why hidden, failed told).
-
-    Never the raw score: the rule's pass/fail is a bit about the holdout, so it is judged on the
-    figure as released when that is the submission's own answer, and withheld otherwise.
-    """
-    outcome = told.get("outcome") or (RELEASED if told["released"] is not None else WITHHELD)
-    if outcome == FAILED:
-        return None, None, True
-    if outcome == WITHHELD:
-        return None, "the holdout figure is withheld under the release policy, and so is anything judged on it", False
-    if told["mode"] == "ladder":
-        return None, ("the ladder releases the dataset's best figure so far, not this submission's own, and the "
-                      "rule would tell about that"), False
-    value = (told["released"] or {}).get(metric)
-    return (None if value is None else float(value)), None, False
-
-
-def _plan_key(validation: ValidationPlan) -> tuple[str, int, int]:
-    """Return the fold plan as (scheme, folds, seed): equal keys mean identical splits per repeat."""
-    plan = validation.fold_plan()
-    return plan.scheme, plan.folds, plan.seed
-
-
-def _cells(folds: list[dict[str, Any]], column: str, metric: str) -> dict[Cell, float]:
-    values = ((row["repeat"], row["fold"], (row[column] or {}).get(metric)) for row in folds)
-    return {(r, f): float(v) for r, f, v in values if v is not None}
-
-
-def _champion(ctx: WorkerContext, champion_id: str, metric: str, mine: ValidationPlan) -> ChampionFolds | None:
-    """Return the champion's fold scores: its own, or on the candidate's plan when that one differs.
-
-    The champion's configuration scored on the candidate's plan (``worker.jobs.champion_fold``,
-    cached per plan) keeps the comparison paired; without those scores the plans differ and the
-    champion rule says so.
-    """
-    champ = submissions.get(ctx.engine, champion_id)
-    if champ is None:
-        return None
-    validation = ValidationPlan.from_document(champ["config"]["validation"])
-    rows = [r for r in submissions.fold_rows(ctx.engine, champion_id) if r["status"] == "ok"]
-    own, key = _plan_key(validation), _plan_key(mine)
-    if own != key:
-        replayed = [r for r in champion_folds.rows(ctx.engine, champion_id, champion_folds.plan_name(key))
-                    if r["status"] == "ok"]
-        if replayed:
-            return ChampionFolds(submission_id=champion_id, scores=_cells(replayed, "scores", metric), plan_key=key,
-                                 replayed=True)
-    return ChampionFolds(submission_id=champion_id, scores=_cells(rows, "scores", metric), plan_key=own)
 
 
 def _release(

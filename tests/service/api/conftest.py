@@ -23,12 +23,18 @@ class FuzzTarget:
 
 
 @pytest.fixture(scope="module")
-def fuzz_target(tmp_path_factory: pytest.TempPathFactory) -> Iterator[FuzzTarget]:
+def fuzz_target(tmp_path_factory: pytest.TempPathFactory, redis_url: str) -> Iterator[FuzzTarget]:
     """One app for a whole fuzz run: the diabetes data registered, a queued and a finished submission.
 
     The worker's configuration check answers "ok" (no worker runs here), so accepted submissions are
-    stored and queued on fakeredis, where nothing picks them up.
+    stored and queued on the session's private redis-server (a queue of their own, which no worker
+    reads); a real one, because a re-judge takes the dataset's release lock, a Lua script fakeredis
+    does not run.
     """
+    import dataclasses
+
+    from redis import Redis
+
     from service.submission import dispatch
 
     def check(redis: Any, settings: Any, config_doc: dict[str, Any], dataset_id: str) -> dict[str, Any]:
@@ -36,6 +42,9 @@ def fuzz_target(tmp_path_factory: pytest.TempPathFactory) -> Iterator[FuzzTarget
 
     with pytest.MonkeyPatch.context() as patch, open_api(tmp_path_factory.mktemp("fuzz")) as api:
         patch.setattr(dispatch, "check_config_remote", check)
+        ctx = api.app.extensions["sealfold"]
+        settings = dataclasses.replace(ctx.settings, queue_name="fuzz")
+        api.app.extensions["sealfold"] = dataclasses.replace(ctx, settings=settings, redis=Redis.from_url(redis_url))
         reply = api.upload("steward", csv_bytes(diabetes_frame()), name="diabetes", target="target",
                            task="regression")
         assert reply.status_code == 201, reply.get_data(as_text=True)

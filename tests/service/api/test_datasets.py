@@ -8,6 +8,7 @@ import json
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+import numpy as np
 import pandas as pd
 import pytest
 from sqlalchemy import func, select
@@ -90,16 +91,19 @@ def test_parquet_upload_and_import_by_path(
 ) -> None:
     buffer = io.BytesIO()
     diabetes_frame().to_parquet(buffer, index=False)
-    parquet = api.upload("steward", buffer.getvalue(), filename="diabetes.parquet", **DECLARATION)
+    # Names are unique within a team: each registration of the same table is named apart.
+    parquet = api.upload("steward", buffer.getvalue(), filename="diabetes.parquet",
+                         **{**DECLARATION, "name": "diabetes as parquet"})
     assert parquet.status_code == 201, parquet.get_data(as_text=True)
     assert parquet.get_json()["rows"]["total"] == 442
     # The published fingerprint covers the seal too, so the two registrations below draw the same one.
     monkeypatch.setattr(registration.secrets, "randbits", lambda bits: 2**40 + 7)
-    uploaded = api.upload("steward", diabetes_csv, filename="diabetes.csv", **DECLARATION)
+    uploaded = api.upload("steward", diabetes_csv, filename="diabetes.csv", **{**DECLARATION, "name": "uploaded"})
     assert uploaded.status_code == 201, uploaded.get_data(as_text=True)
     (Path(api.settings.import_root) / "fleet").mkdir()
     (Path(api.settings.import_root) / "fleet" / "diabetes.csv").write_bytes(diabetes_csv)
-    imported = api.post("steward", "/v1/datasets", json={"path": "fleet/diabetes.csv", **DECLARATION})
+    imported = api.post("steward", "/v1/datasets", json={"path": "fleet/diabetes.csv", **DECLARATION,
+                                                          "name": "imported"})
     assert imported.status_code == 201, imported.get_data(as_text=True)
     assert imported.headers["Location"] == f"/v1/datasets/{imported.get_json()['id']}"
     # The same CSV file uploaded or imported, sealed alike, is the same table: same fingerprints.
@@ -217,3 +221,30 @@ def test_balance_of_the_seal_is_a_flag_for_submitters_and_a_table_for_stewards(a
     assert internal["sealing_seed"] not in text
     # Another team still gets the plain 404 of an unknown id.
     api.problem(api.get("other_steward", f"/v1/datasets/{ds_id}"), 404)
+
+
+def test_a_name_the_team_already_has_is_a_409_and_another_team_may_use_it(
+    api: Api, dataset: dict[str, Any], diabetes_csv: bytes
+) -> None:
+    again = api.upload("steward", diabetes_csv, **{**DECLARATION, "name": f"  {dataset['name']} "})
+    problem = api.problem(again, 409)
+    assert api.pointers(problem) == ["/name"] and dataset["id"] in problem["detail"]
+    assert [d["id"] for d in api.get("steward", "/v1/datasets").get_json()["datasets"]] == [dataset["id"]]
+    assert [p.name for p in (Path(api.settings.data_dir) / "datasets").iterdir()] == [dataset["id"]]
+    rivals = api.upload("other_steward", diabetes_csv, **{**DECLARATION, "name": dataset["name"]})
+    assert rivals.status_code == 201, rivals.get_data(as_text=True)
+
+
+def test_the_record_counts_missing_values_per_column_on_the_development_rows(api: Api) -> None:
+    # scikit-learn's diabetes data with holes punched in two columns: 'bmi' in every 4th row, 's5' in one.
+    frame = diabetes_frame()
+    frame.loc[frame.index % 4 == 0, "bmi"] = np.nan
+    frame.loc[7, "s5"] = np.nan
+    reply = api.upload("steward", frame.to_csv(index=False).encode(), **{**DECLARATION, "name": "with holes"})
+    assert reply.status_code == 201, reply.get_data(as_text=True)
+    record = reply.get_json()
+    development = pd.read_csv(io.BytesIO(api.get("submitter", f"/v1/datasets/{record['id']}/development").data))
+    missing = {c["name"]: c["missing"] for c in record["columns"]}
+    assert missing == {name: int(development[name].isna().sum()) for name in frame.columns}
+    assert 0 < missing["bmi"] < len(development) and missing["age"] == 0
+    assert api.get("submitter", f"/v1/datasets/{record['id']}").get_json()["columns"] == record["columns"]

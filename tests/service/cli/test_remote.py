@@ -316,6 +316,9 @@ def test_submit_against_the_real_api_replays_a_rerun(
     assert sub_id.startswith("sub_")
     again = run_cli(served, "submit", str(path), "--dataset", dataset["id"], "--json", key=key)
     assert again.returncode == 0 and json.loads(again.stdout)["id"] == sub_id
+    other = run_cli(served, "submit", str(path), "--dataset", dataset["id"], key=api.tokens["submitter2"])
+    assert other.returncode == 0 and other.stdout.strip() == sub_id  # a teammate's resubmission is told so
+    assert f"already submitted on this dataset as {sub_id}" in other.stderr and "no verdict yet" in other.stderr
     assert len(worker_says_ok) == 1  # the rerun was answered from the first submission, nothing re-checked
     refused = run_cli(served, "submit", str(path), "--dataset", "ds_nope", key=key)
     assert refused.returncode == 2 and "/dataset: no dataset 'ds_nope'" in refused.stderr

@@ -146,3 +146,26 @@ def test_the_revisions_form_one_chain_from_the_first() -> None:
     files = [p for p in (schema.MIGRATIONS_DIR / "versions").glob("*.py") if p.name != "__init__.py"]
     assert chain[-1] == "0001" and chain[0] == schema.head_revision()
     assert len(set(chain)) == len(chain) == len(files)
+
+
+def test_stored_verdicts_become_the_first_entry_of_their_history(settings: Settings) -> None:
+    from service.records import verdicts
+
+    engine = make_engine(settings)
+    try:
+        schema.upgrade(engine, "0001")
+        _old_rows(engine)
+        schema.upgrade(engine, "0006")
+        judged = {"decision": "fail", "reasons": ["misses the bar"], "policy_version": 2}
+        with engine.begin() as conn:
+            conn.execute(text("UPDATE submissions SET verdict = :v, policy_version = 2, finished_at = :t "
+                              "WHERE id = 'sub_old'"), {"v": json.dumps(judged), "t": NOW})
+        schema.upgrade(engine)
+        assert _differences(engine) == []
+        history = verdicts.history(engine, "sub_old")
+        assert len(history) == 1
+        assert history[0]["verdict"] == judged and history[0]["policy_version"] == 2
+        assert history[0]["judged_by"] == "system" and history[0]["holdout_spent"] == 0
+        assert history[0]["judged_at"].startswith("2026-12-01T12:00:00")
+    finally:
+        engine.dispose()

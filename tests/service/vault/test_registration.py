@@ -178,7 +178,8 @@ def test_the_same_table_as_csv_or_parquet_has_one_fingerprint(
     # The published fingerprint covers the seal too, so both registrations draw the same one here.
     monkeypatch.setattr(registration.secrets, "randbits", lambda bits: 2**40 + 7)
     first = _register(settings, engine, steward, _csv(frame), task="classification")
-    second = _register(settings, engine, steward, sink.getvalue(), "parquet", task="classification")
+    second = _register(settings, engine, steward, sink.getvalue(), "parquet", task="classification",
+                       name="routes as parquet")  # names are unique within a team
     assert first["fingerprint"] == second["fingerprint"]
     assert first["development_fingerprint"] == second["development_fingerprint"]
     internal = [datasets.get_internal(engine, r["id"]) for r in (first, second)]

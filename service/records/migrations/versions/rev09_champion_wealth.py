@@ -1,7 +1,7 @@
 """The champion decision on the sealed rows and the champion on other fold plans.
 
 Revision ID: 0009
-Revises: 0007
+Revises: 0008
 
 One row per submission whose candidate was compared with the champion on the sealed rows: the
 level its test ran at (the online procedure's allowance, LORD++ by default), whether it passed,
@@ -18,7 +18,7 @@ from alembic import op
 from service.records.migrations.steps import has_table
 
 revision = "0009"
-down_revision = "0007"
+down_revision = "0008"
 branch_labels = None
 depends_on = None
 
