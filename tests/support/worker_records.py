@@ -33,7 +33,7 @@ def add_dataset(
     store.write_dataset(ctx.settings, ds_id, dev, hold, manifest)
     full = pd.concat([development, holdout], ignore_index=True)
     datasets.insert(ctx.engine, {
-        "id": ds_id, "team": "fleet", "name": "test data", "task": task, "target": target,
+        "id": ds_id, "team": "fleet", "name": f"test data {ds_id}", "task": task, "target": target,
         "columns": kinds, "classes": sorted(str(c) for c in full[target].unique()) if task == "classification"
         else None, "rows_total": len(full), "rows_development": len(dev), "rows_holdout": len(hold),
         "holdout_scheme": "random", "holdout_fraction": len(hold) / len(full), "sealing_seed": "1",

@@ -89,7 +89,8 @@ def test_a_rejudge_reads_only_what_was_released_and_spends_nothing(api: Api, dat
     assert doc["holdout_spent"] == 0 and _gap(doc)["outcome"] == "pass"
     assert holdout_releases.spent_times(api.engine, dataset["id"]) == spent
 
-    withheld = _sub(api, dataset, released=None)  # nothing of its own was released
+    withheld = _sub(api, dataset, released=None)  # nothing of its own was released (its query spent a unit)
+    spent = holdout_releases.spent_times(api.engine, dataset["id"])
     rule = _gap(_rejudge(api, withheld))
     assert rule["outcome"] == "skipped" and rule["figures"]["withheld"] is True
     assert holdout_releases.spent_times(api.engine, dataset["id"]) == spent
@@ -144,16 +145,22 @@ def test_a_resubmission_says_which_policy_judged_it_and_how_to_rejudge(
                       headers={"Idempotency-Key": "first"})
     assert replay.status_code == 200 and "resubmission" not in replay.get_json()  # a replay, not a resubmission
 
-    version = _policy(api, dataset, {"bar": 50.0})
-    again = api.post("submitter2", "/v1/submissions", json=submission_body(dataset, label="ridge, new policy"))
+    again = api.post("submitter2", "/v1/submissions", json=submission_body(dataset, label="ridge again"))
     assert again.status_code == 200, again.get_data(as_text=True)
     note = again.get_json()["resubmission"]
     assert again.get_json()["id"] == sub and note["submission"] == sub
-    assert note["judged_under_policy_version"] == 0 and note["policy_version_in_force"] == version
-    assert note["judged_under_policy_in_force"] is False
-    assert note["label_sent"] == "ridge, new policy" and note["label_kept"] == "ridge v1"
-    assert f"POST /v1/submissions/{sub}/verdicts" in note["message"] and "was not kept" in note["message"]
+    assert note["judged_under_policy_version"] == 0 == note["policy_version_in_force"]
+    assert note["judged_under_policy_in_force"] is True
+    assert note["label_sent"] == "ridge again" and note["label_kept"] == "ridge v1"
+    assert "was not kept" in note["message"]
     assert len(worker_says_ok) == 1  # the resubmission was not checked nor run again
+
+    # Under a new policy version the same configuration is a new question (one submission per configuration
+    # and policy version): it runs again and is judged under the policy in force; the earlier submission can
+    # be re-judged instead, from its stored folds.
+    _policy(api, dataset, {"bar": 50.0})
+    rerun = api.post("submitter2", "/v1/submissions", json=submission_body(dataset, label="ridge, new policy"))
+    assert rerun.status_code == 202 and rerun.get_json()["id"] != sub and "resubmission" not in rerun.get_json()
 
 
 def test_a_figure_that_is_not_finite_is_stored_as_null_and_the_board_still_ranks(
