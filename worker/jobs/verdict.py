@@ -22,7 +22,17 @@ from redis import Redis
 from service.gate import review_state
 from service.gate.policy import Policy, parse_policy
 from service.gate.release import HoldoutScores, release
-from service.gate.verdict import CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV, ChampionFolds, PlanFacts, judge
+from service.gate.statistics import without_largest
+from service.gate.verdict import (
+    CORRECTED_RESAMPLED_T,
+    FIVE_BY_TWO_CV,
+    TRIMMABLE_FORMS,
+    ChampionFolds,
+    PlanFacts,
+    TrimmedHoldout,
+    judge,
+    trimmed_rows,
+)
 from service.records import champions, holdout_releases, submissions
 from service.records.engine import as_utc, utcnow
 from service.submission.resolved import ValidationPlan
@@ -83,10 +93,27 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
         holdout_rows=int(dataset["rows_holdout"]),
     )
     holdout_value = raw["scores"].get(metric)
-    verdict = judge(policy, candidate, baseline, champion, holdout_value, plan, policy_version=version)
+    trimmed = _trimmed(ctx, dataset, submission_id, metric) if holdout_value is not None else None
+    verdict = judge(policy, candidate, baseline, champion, holdout_value, plan, policy_version=version,
+                    holdout_trimmed=trimmed)
     submissions.store_verdict(engine, submission_id, verdict, version, None if champion is None else champion_id)
     submissions.transition(engine, submission_id, "succeeded", LIVE_STATES)
     return {"submission_id": submission_id, "decision": verdict["decision"]}
+
+
+def _trimmed(ctx: WorkerContext, dataset: Mapping[str, Any], submission_id: str, metric: str) -> TrimmedHoldout | None:
+    """The holdout score without its few largest per-row losses, for the consistency rule; None if not kept."""
+    form = TRIMMABLE_FORMS.get(metric)
+    rows = trimmed_rows(int(dataset["rows_holdout"]))
+    if form is None or rows == 0:
+        return None
+    try:
+        values = load_per_example(ctx.settings, dataset["id"], submission_id, metric)
+    except DamagedLosses:
+        return None  # the release above already failed the submission on such a file
+    if values is None or values.size <= rows:
+        return None
+    return TrimmedHoldout(without_largest(values, form, rows), rows)
 
 
 def _plan_key(validation: ValidationPlan) -> tuple[str, int, int]:

@@ -6,6 +6,7 @@ import json
 from typing import Any
 
 import pytest
+from scipy import stats as sps
 
 from service.errors import InputError
 from service.gate.policy import Policy, ThresholdoutParams, default_policy, parse_policy
@@ -40,7 +41,7 @@ def test_document_has_the_served_shape_and_round_trips() -> None:
     doc = default_policy("classification").to_document(0)
     assert set(doc) == {"version", "primary_metric", "greater_is_better", "bar", "baseline_alpha",
                         "champion_margin", "champion_alpha", "holdout_gap", "max_fold_std", "release"}
-    assert set(doc["holdout_gap"]) == {"k_std", "floor"}
+    assert set(doc["holdout_gap"]) == {"k_std", "floor", "false_fail_rate"}
     assert set(doc["release"]) == {"mode", "digits", "budget", "window_hours", "ladder_step", "thresholdout"}
     assert set(doc["release"]["thresholdout"]) == {"threshold", "sigma", "budget"}
     assert doc["version"] == 0
@@ -137,3 +138,21 @@ def test_non_object_sections_are_rejected() -> None:
 
 def test_version_in_the_document_is_ignored() -> None:
     assert parse_policy({"version": 7}, "regression") == default_policy("regression")
+
+
+def test_holdout_gap_states_its_false_fail_rate_and_takes_one_instead_of_k_std() -> None:
+    # Nominal false-fail rate 2 * (1 - Phi(k)): 0.27 % at the default k = 3 (*computed* with scipy).
+    default = default_policy("regression")
+    assert default.holdout_gap.false_fail_rate == pytest.approx(2 * sps.norm.sf(3.0), rel=1e-12)
+    assert default.to_document(0)["holdout_gap"]["false_fail_rate"] == pytest.approx(0.0026998, abs=1e-7)
+    p = parse_policy({"holdout_gap": {"false_fail_rate": 0.01}}, "regression")
+    assert p.holdout_gap.k_std == pytest.approx(2.5758293, abs=1e-6)  # Phi^-1(0.995), *computed*
+    assert p.holdout_gap.false_fail_rate == pytest.approx(0.01, rel=1e-9)
+    assert parse_policy(p.to_document(2), "regression").holdout_gap.k_std == pytest.approx(p.holdout_gap.k_std)
+    with pytest.raises(InputError) as raised:
+        parse_policy({"holdout_gap": {"k_std": 3.0, "false_fail_rate": 0.01}}, "regression")
+    assert [pr.pointer for pr in raised.value.problems] == ["/holdout_gap/false_fail_rate"]
+    assert "asks for k_std 2.57583, but k_std 3 was given" in raised.value.problems[0].detail
+    with pytest.raises(InputError) as raised:
+        parse_policy({"holdout_gap": {"false_fail_rate": 0.7}}, "regression")
+    assert raised.value.problems[0].detail == "holdout_gap.false_fail_rate must be at most 0.5, got 0.7"
