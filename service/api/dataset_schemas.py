@@ -100,6 +100,13 @@ class ComparedRowsSchema(Schema):
     holdout = fields.Integer()
 
 
+class BeyondRangeSchema(Schema):
+    """Holdout rows above the development maximum and below the development minimum."""
+
+    above = fields.Integer()
+    below = fields.Integer()
+
+
 class BalanceColumnSchema(Schema):
     """One column's comparison of holdout and development rows (holdout minus development)."""
 
@@ -114,6 +121,10 @@ class BalanceColumnSchema(Schema):
         "description": "the larger of the fixed limit and what a chance split would reach"})
     ks = fields.Float(allow_none=True, metadata={"description": "numeric: two-sample Kolmogorov-Smirnov statistic"})
     ks_pvalue = fields.Float(allow_none=True)
+    beyond_range = fields.Nested(BeyondRangeSchema, metadata={
+        "description": "numeric: holdout rows beyond the development range; a long tail sealed away shows here"})
+    beyond_range_pvalue = fields.Float(metadata={
+        "description": "numeric: chance a random split seals that many of the most extreme values (worse side, x2)"})
     missing_tv = fields.Float(allow_none=True, metadata={
         "description": "numeric with missing values: difference of the missing shares"})
     missing_pvalue = fields.Float(allow_none=True)
@@ -147,6 +158,12 @@ class BalanceDrawSchema(Schema):
     exceeded = fields.List(fields.Nested(BalanceExceededSchema))
 
 
+class SealMethodSchema(Schema):
+    scheme = fields.String()
+    version = fields.Integer(metadata={"description": "2: regression strata include bins of their own for each "
+                                                      "tail of the target"})
+
+
 class BalanceSchema(Schema):
     """How well the sealed holdout matches the development partition.
 
@@ -165,6 +182,8 @@ class BalanceSchema(Schema):
     excluded = fields.List(fields.String(), metadata={"description": "stewards: id, group and time columns"})
     limits = fields.Dict(metadata={"description": "stewards: the limits the draws were held to"})
     attempts = fields.List(fields.Nested(BalanceDrawSchema), metadata={"description": "stewards: every draw"})
+    seal = fields.Nested(SealMethodSchema, metadata={
+        "description": "stewards: the sealing scheme and its version (absent on datasets sealed before versions)"})
 
 
 class DatasetSchema(Schema):

@@ -353,6 +353,7 @@ def _draw_balanced(
         mask = sealing.holdout_mask(
             frame, scheme, fraction, seed, target=declaration.target,
             group_column=declaration.group_column, time_column=declaration.time_column, task=declaration.task,
+            version=sealing.SEAL_VERSION,
         )
         measured = check.measure(mask)
         draws.append(measured)
@@ -362,6 +363,7 @@ def _draw_balanced(
             break
     assert best is not None  # at least one draw
     document = balance.balance_document(draws, best[2], redrawable=redrawable, limits=limits, excluded=excluded)
+    document["seal"] = {"scheme": scheme, "version": sealing.SEAL_VERSION}
     return best[0], best[1], document
 
 
