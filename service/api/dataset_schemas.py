@@ -186,6 +186,23 @@ class BalanceSchema(Schema):
         "description": "stewards: the sealing scheme and its version (absent on datasets sealed before versions)"})
 
 
+class RegistrationWarningSchema(Schema):
+    """One warning about undeclared structure, with its figures."""
+
+    kind = fields.String(validate=validate.OneOf(("group", "order", "time_column")))
+    detail = fields.String(metadata={"description": "what was found and what to declare"})
+    column = fields.String(metadata={"description": "group, time_column: the column"})
+    score = fields.String(metadata={"description": "group: r2 (regression) or accuracy (classification)"})
+    rows_compared = fields.Integer(metadata={"description": "group: development rows in the sample"})
+    values = fields.Integer(metadata={"description": "group: distinct values of the column"})
+    random_folds = fields.Float(metadata={"description": "group: 1-NN score, rows of one value on both sides"})
+    group_folds = fields.Float(metadata={"description": "group: 1-NN score, whole values per fold"})
+    gap = fields.Float(metadata={"description": "group: random_folds - group_folds"})
+    statistic = fields.String(metadata={"description": "order: lag1_autocorrelation or same_class_excess"})
+    value = fields.Float(metadata={"description": "order: the statistic in file order"})
+    z = fields.Float(metadata={"description": "order: against a random order"})
+
+
 class DatasetSchema(Schema):
     """A dataset's public record: never the sealing seed, holdout rows or the holdout's fingerprint."""
 
@@ -203,6 +220,9 @@ class DatasetSchema(Schema):
     holdout = fields.Nested(HoldoutPlanSchema)
     fold_plan = fields.Nested(FoldPlanSchema)
     balance = fields.Nested(BalanceSchema, allow_none=True)
+    warnings = fields.List(fields.Nested(RegistrationWarningSchema), allow_none=True, metadata={
+        "description": "structure the declaration did not name, found on the development rows: a column that "
+                       "looks like groups, rows in time order (null on datasets registered before these checks)"})
     fingerprint = fields.String(metadata={"description": (
         "Pins the registered data: SHA-256 of the development fingerprint and a keyed hash (HMAC, server-side "
         "key) of the holdout's, so it changes with any holdout value but cannot be recomputed from rows")})

@@ -574,3 +574,17 @@ def test_a_long_tailed_target_registers_with_its_extremes_on_both_sides(
     assert target["beyond_range"]["above"] <= 1 and "beyond_range" not in target["exceeds"]
     _, holdout, _ = _partitions(settings, engine, record["id"])
     assert int(holdout["target"].isin(frame["target"].nlargest(5)).sum()) == 1
+
+
+def test_registration_warns_of_a_group_column_it_was_not_told_of(
+    settings: Settings, engine: Engine, steward: KeyInfo
+) -> None:
+    from tests.service.vault.test_structure import replicated_diabetes
+
+    frame = replicated_diabetes()
+    record = _register(settings, engine, steward, _csv(frame))
+    assert [(w["kind"], w["column"]) for w in record["warnings"]] == [("group", "patient")]
+    assert record["warnings"][0]["random_folds"] > record["warnings"][0]["group_folds"] + 0.6
+    assert datasets.get(engine, record["id"])["warnings"] == record["warnings"]  # type: ignore[index]
+    declared = _register(settings, engine, steward, _csv(frame), group_column="patient")
+    assert declared["warnings"] == []

@@ -207,7 +207,7 @@ def _replicated_diabetes(copies: int = 3, rows: int = 150) -> pd.DataFrame:
     base = load_diabetes(as_frame=True).frame.iloc[:rows].reset_index(drop=True)
     rng = np.random.default_rng(0)
     parts = []
-    for c in range(copies):
+    for _ in range(copies):
         part = base.copy()
         features = [col for col in base.columns if col != "target"]
         part[features] = part[features] + rng.normal(scale=1e-3, size=(rows, len(features)))
