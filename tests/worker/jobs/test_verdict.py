@@ -348,3 +348,26 @@ def test_a_canceled_submission_is_not_judged(ctx: WorkerContext, redis: Redis, d
     assert give_verdict(ctx, redis, judged.sub_id) == {"submission_id": judged.sub_id, "skipped": "canceled"}
     assert submissions.get(ctx.engine, judged.sub_id)["verdict"] is None  # type: ignore[index]
     assert holdout_releases.get(ctx.engine, judged.sub_id) is None
+
+
+def test_one_extreme_holdout_row_is_set_aside_by_the_consistency_rule(ctx: WorkerContext, redis: Redis) -> None:
+    # Shuffled diabetes (bundled with scikit-learn) with one sealed target moved far out (25 times the largest):
+    # the holdout rmse is far outside the folds' interval, but not without that row's squared error, which
+    # the verdict job reads from the kept per-row losses (trimmed_rows(42) = 1).
+    frame = shuffled_diabetes()
+    frame.loc[420, "target"] = 25 * frame["target"].max()
+    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression", folds=5, seed=0)
+    with_losses = recorded(ctx, dataset, Ridge(alpha=0.1), frame=frame)
+    model = Ridge(alpha=0.1).fit(frame.iloc[:400].drop(columns="target"), frame["target"].iloc[:400])
+    hold = frame.iloc[400:]
+    squared = (hold["target"].to_numpy() - model.predict(hold.drop(columns="target"))) ** 2
+    assert math.sqrt(squared.mean()) == pytest.approx(with_losses.holdout["rmse"])  # the per-row losses of rmse
+    losses.save_per_example(ctx.settings, dataset["id"], with_losses.sub_id, {"rmse": squared})
+    give_verdict(ctx, redis, with_losses.sub_id)
+    gap = rule(submissions.get(ctx.engine, with_losses.sub_id)["verdict"], "holdout_gap")  # type: ignore[index]
+    assert gap["outcome"] == "pass" and gap["figures"]["rows_set_aside"] == 1
+    assert "once its 1 largest per-row loss(es) are set aside" in gap["sentence"]
+    # The same submission without kept losses: nothing to set aside, the rule fails.
+    bare = recorded(ctx, dataset, Ridge(alpha=0.05), frame=frame)
+    give_verdict(ctx, redis, bare.sub_id)
+    assert rule(submissions.get(ctx.engine, bare.sub_id)["verdict"], "holdout_gap")["outcome"] == "fail"  # type: ignore[index]
