@@ -11,6 +11,9 @@ rejects far more often. Registered with it, the seal and the folds keep patients
 
 The seal and the folds are the service's own (``sealing.holdout_mask``, ``folds.fold_splits``), the
 test is ``service.gate.statistics.corrected_resampled_t``. Not a test; it asserts nothing.
+Measured (100 registrations x 2 directions each): 7.5 % without the group column, 3.5 % with it
+(binomial sd about 1.5 points at 5 %). Registration now warns of the patient column when it is left out
+(``service.vault.structure``), so the steward learns of it before any figure.
 
     PYTHONPATH=$PWD nice -n 10 .venv/bin/python -m bench.grouped_size --reps 300
 """

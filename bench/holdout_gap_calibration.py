@@ -10,6 +10,10 @@ Printed per case: the rate of the rule as it was before (k_std fold spreads scal
 sqrt(n_test/n_holdout + 1/J), normal k), the rule now (t prediction interval with Nadeau & Bengio's
 correlated-fold term, ``service.gate.statistics.holdout_interval``), each with the policy's default
 floor and with floor 0, and the nominal rate. Not a test; it asserts nothing.
+Measured (5-fold; default floor is 0 for rmse, 0.01 for accuracy; nominal now 0.27 %):
+diabetes Ridge 2,000 reseals 3.50 % -> 0.20 %; diabetes kNN(15) 2,000: 3.10 % -> 0.20 %; breast cancer LDA
+400: 2.00 % (4.50 % at floor 0) -> 0.00 % (0.00 %); wine GaussianNB 400: 1.75 % (5.00 %) -> 0.00 % (0.50 %);
+diabetes Ridge 10-fold 2,000: 1.05 % -> 0.25 %.
 
     PYTHONPATH=$PWD nice -n 10 .venv/bin/python -m bench.holdout_gap_calibration --reseals 1000
 """
