@@ -103,6 +103,13 @@ class ComparedRowsSchema(Schema):
     holdout = fields.Integer()
 
 
+class BeyondRangeSchema(Schema):
+    """Holdout rows above the development maximum and below the development minimum."""
+
+    above = fields.Integer()
+    below = fields.Integer()
+
+
 class BalanceColumnSchema(Schema):
     """One column's comparison of holdout and development rows (holdout minus development)."""
 
@@ -117,6 +124,10 @@ class BalanceColumnSchema(Schema):
         "description": "the larger of the fixed limit and what a chance split would reach"})
     ks = fields.Float(allow_none=True, metadata={"description": "numeric: two-sample Kolmogorov-Smirnov statistic"})
     ks_pvalue = fields.Float(allow_none=True)
+    beyond_range = fields.Nested(BeyondRangeSchema, metadata={
+        "description": "numeric: holdout rows beyond the development range; a long tail sealed away shows here"})
+    beyond_range_pvalue = fields.Float(metadata={
+        "description": "numeric: chance a random split seals that many of the most extreme values (worse side, x2)"})
     missing_tv = fields.Float(allow_none=True, metadata={
         "description": "numeric with missing values: difference of the missing shares"})
     missing_pvalue = fields.Float(allow_none=True)
@@ -150,6 +161,12 @@ class BalanceDrawSchema(Schema):
     exceeded = fields.List(fields.Nested(BalanceExceededSchema))
 
 
+class SealMethodSchema(Schema):
+    scheme = fields.String()
+    version = fields.Integer(metadata={"description": "2: regression strata include bins of their own for each "
+                                                      "tail of the target"})
+
+
 class BalanceSchema(Schema):
     """How well the sealed holdout matches the development partition.
 
@@ -168,6 +185,25 @@ class BalanceSchema(Schema):
     excluded = fields.List(fields.String(), metadata={"description": "stewards: id, group and time columns"})
     limits = fields.Dict(metadata={"description": "stewards: the limits the draws were held to"})
     attempts = fields.List(fields.Nested(BalanceDrawSchema), metadata={"description": "stewards: every draw"})
+    seal = fields.Nested(SealMethodSchema, metadata={
+        "description": "stewards: the sealing scheme and its version (absent on datasets sealed before versions)"})
+
+
+class RegistrationWarningSchema(Schema):
+    """One warning about undeclared structure, with its figures."""
+
+    kind = fields.String(validate=validate.OneOf(("group", "order", "time_column")))
+    detail = fields.String(metadata={"description": "what was found and what to declare"})
+    column = fields.String(metadata={"description": "group, time_column: the column"})
+    score = fields.String(metadata={"description": "group: r2 (regression) or accuracy (classification)"})
+    rows_compared = fields.Integer(metadata={"description": "group: development rows in the sample"})
+    values = fields.Integer(metadata={"description": "group: distinct values of the column"})
+    random_folds = fields.Float(metadata={"description": "group: 1-NN score, rows of one value on both sides"})
+    group_folds = fields.Float(metadata={"description": "group: 1-NN score, whole values per fold"})
+    gap = fields.Float(metadata={"description": "group: random_folds - group_folds"})
+    statistic = fields.String(metadata={"description": "order: lag1_autocorrelation or same_class_excess"})
+    value = fields.Float(metadata={"description": "order: the statistic in file order"})
+    z = fields.Float(metadata={"description": "order: against a random order"})
 
 
 class DatasetSchema(Schema):
@@ -187,6 +223,9 @@ class DatasetSchema(Schema):
     holdout = fields.Nested(HoldoutPlanSchema)
     fold_plan = fields.Nested(FoldPlanSchema)
     balance = fields.Nested(BalanceSchema, allow_none=True)
+    warnings = fields.List(fields.Nested(RegistrationWarningSchema), allow_none=True, metadata={
+        "description": "structure the declaration did not name, found on the development rows: a column that "
+                       "looks like groups, rows in time order (null on datasets registered before these checks)"})
     fingerprint = fields.String(metadata={"description": (
         "Pins the registered data: SHA-256 of the development fingerprint and a keyed hash (HMAC, server-side "
         "key) of the holdout's, so it changes with any holdout value but cannot be recomputed from rows")})

@@ -18,8 +18,12 @@ _LEVEL = {**_POSITIVE, "maximum": 0.5, "exclusiveMaximum": True}
 
 
 class HoldoutGapSchema(Schema):
-    k_std = fields.Float(metadata={"description": "allowed gap in fold standard deviations"})
+    k_std = fields.Float(metadata={"description": "sets the nominal false-fail rate 2 * (1 - Phi(k_std)) of the "
+                                                  "t prediction interval (default 3: 0.27 %)"})
     floor = fields.Float(metadata={"minimum": 0, "description": "added to the gap, in the metric's units"})
+    false_fail_rate = fields.Float(metadata={**_POSITIVE, "maximum": 0.5, "description": (
+        "the chance that a sound model's holdout falls outside the interval; may be given instead of k_std "
+        "(both given must agree)")})
 
 
 class ThresholdoutSchema(Schema):
@@ -57,7 +61,8 @@ class PolicyBodySchema(Schema):
                                                                           "metric's units"})
     champion_alpha = fields.Float(metadata=_LEVEL)
     holdout_gap = fields.Nested(HoldoutGapSchema, metadata={
-        "description": "|holdout - CV mean| <= k_std * fold std + floor"})
+        "description": "|holdout - CV mean| <= t_{J-1} * fold std * sqrt(1/J + n_test/n_train + "
+                       "n_test/n_holdout) + floor, at the nominal false_fail_rate"})
     max_fold_std = fields.Float(allow_none=True, metadata={"description": "limit on the fold spread; null: none"})
     release = fields.Nested(ReleaseSchema)
     champion_rule = fields.String(metadata={

@@ -12,9 +12,9 @@ Defaults and where they come from:
   f1, roc_auc, r2, log_loss, brier, ...), 0 for metrics in the target's units (rmse, mae, mse,
   median_absolute_error, pinball_loss, Poisson and Tweedie deviances: ``MetricSpec.in_target_units``),
   whose scale no default can know (*common practice*; a steward should set them for regression).
-- holdout_gap.k_std = 3.0 (*common practice*: three standard deviations of (holdout - CV mean), whose
-  spread is estimated from the fold spread scaled to the holdout's size; two would fail about one sound
-  model in twenty on chance alone).
+- holdout_gap.k_std = 3.0, i.e. a nominal false-fail rate of 2 * (1 - Phi(3)) = 0.27 % (*common practice*:
+  the three-sigma convention). The rule is a t prediction interval at that rate
+  (``service.gate.statistics.holdout_interval``); a steward may give ``false_fail_rate`` instead of k_std.
 - release: mode "ladder" with ladder_step null (the parameter-free ladder, Blum & Hardt 2015), chosen
   by the measurement in tests/service/gate/test_release_adaptive.py; 3 significant digits; 10 releases per
   submitter (a person or CI identity, not a key) per 24 hours (*common practice*); a team at most
@@ -36,6 +36,8 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from typing import Any
 
+from scipy import stats as sps
+
 from service.catalog.metric_keys import MetricRefused, resolve_metric
 from service.catalog.metrics import DEFAULT_METRICS, METRICS, spec_of
 from service.errors import FieldProblem, InputError
@@ -50,10 +52,25 @@ TEAM_BUDGET_MULTIPLE = 3  # a team's default budget: three submitters' worth (*c
 
 @dataclass(frozen=True)
 class HoldoutGap:
-    """The holdout must fall within cv_mean +/- (k_std * fold_std + floor)."""
+    """The holdout must fall within the prediction interval of the CV mean, widened by ``floor``.
+
+    ``k_std`` is the width in normal standard deviations that sets the nominal false-fail rate,
+    2 * (1 - Phi(k_std)); the interval itself uses Student's t at that rate (see
+    ``service.gate.statistics.holdout_interval``), so with few folds it is wider than k_std fold spreads.
+    """
 
     k_std: float = 3.0
     floor: float = 0.0
+
+    @property
+    def false_fail_rate(self) -> float:
+        """The chance that a sound model's holdout score falls outside (floor aside): 2 * (1 - Phi(k_std))."""
+        return math.erfc(self.k_std / math.sqrt(2.0))
+
+
+def k_std_for_rate(rate: float) -> float:
+    """Return the k_std whose nominal false-fail rate is ``rate``: Phi^-1(1 - rate/2)."""
+    return float(sps.norm.isf(rate / 2.0))
 
 
 @dataclass(frozen=True)
@@ -107,7 +124,8 @@ class Policy:
             "version": version, "primary_metric": self.primary_metric, "greater_is_better": self.greater_is_better,
             "bar": self.bar, "baseline_alpha": self.baseline_alpha, "champion_margin": self.champion_margin,
             "champion_alpha": self.champion_alpha,
-            "holdout_gap": {"k_std": self.holdout_gap.k_std, "floor": self.holdout_gap.floor},
+            "holdout_gap": {"k_std": self.holdout_gap.k_std, "floor": self.holdout_gap.floor,
+                            "false_fail_rate": self.holdout_gap.false_fail_rate},
             "max_fold_std": self.max_fold_std,
             "champion_rule": self.champion_rule, "champion_online": self.champion_online,
             "release": {
@@ -170,9 +188,9 @@ def parse_policy(
     max_fold_std = p.number("max_fold_std", base.max_fold_std, nullable=True, positive=True)
 
     gap = base.holdout_gap
-    g = p.child("holdout_gap", {"k_std", "floor"})
+    g = p.child("holdout_gap", {"k_std", "floor", "false_fail_rate"})
     if g is not None:
-        gap = HoldoutGap(k_std=_req(g.number("k_std", gap.k_std, positive=True), gap.k_std),
+        gap = HoldoutGap(k_std=_req(_gap_width(g, gap.k_std), gap.k_std),
                          floor=_req(g.number("floor", gap.floor, minimum=0.0), gap.floor))
 
     release = _parse_release(p, base.release, metric)
@@ -248,6 +266,22 @@ def _parse_release(p: _Reader, base: ReleaseParams, metric: str) -> ReleaseParam
     return replace(base, mode=mode, digits=_req(digits, base.digits), budget=_req(budget, base.budget),
                    window_hours=_req(window, base.window_hours), team_budget=team_budget, ladder_step=step,
                    ladder_threshold_se=_req(threshold_se, base.ladder_threshold_se), thresholdout=thresholdout)
+
+
+def _gap_width(g: _Reader, default: float) -> float | None:
+    """Read k_std, or false_fail_rate in its stead; both given must agree (a policy document has both)."""
+    k_std = g.number("k_std", default, positive=True)
+    if "false_fail_rate" not in g.doc:
+        return k_std
+    rate = g.number("false_fail_rate", None, positive=True, maximum=0.5)
+    if rate is None:
+        return None
+    from_rate = k_std_for_rate(rate)
+    if "k_std" in g.doc and k_std is not None and not math.isclose(k_std, from_rate, rel_tol=1e-6):
+        g.problem("false_fail_rate", f"holdout_gap.false_fail_rate {rate:g} asks for k_std {from_rate:.6g}, but "
+                                     f"k_std {k_std:g} was given; give one of them, or both in agreement")
+        return None
+    return k_std if "k_std" in g.doc else from_rate
 
 
 def _req(value: Any, fallback: Any) -> Any:

@@ -155,3 +155,76 @@ def _zero_spread(deviations: np.ndarray, values: np.ndarray) -> bool:
 def _zero_spread_reason(p: np.ndarray) -> str:
     return ("the two folds of every repeat give equal differences: every s_i^2 is zero, so t would be "
             + ("undefined (0/0)" if p[0, 0] == 0 else "infinite") + " and the test cannot weigh them")
+
+
+@dataclass(frozen=True)
+class HoldoutInterval:
+    """Where a sound model's holdout score is expected: cv_mean +/- half_width (before any floor).
+
+    The prediction interval for one new score (the holdout's) from J correlated fold scores. With s
+    the fold std (ddof 1), J folds of n_test rows trained on n_train rows and n_holdout sealed rows:
+
+        half_width = t_{J-1, 1 - rate/2} * s * sqrt(1/J + n_test/n_train + n_test/n_holdout)
+
+    - 1/J + n_test/n_train: the variance of the CV mean in units of one fold's, the correlated folds'
+      correction of Nadeau & Bengio (2003, "Inference for the Generalization Error", Machine Learning
+      52:239-281; repeated k-fold with J = k * r, Bouckaert & Frank 2004); 1/J alone treats the folds
+      as independent and understates it.
+    - n_test/n_holdout: the holdout score is one more score like a fold's, on n_holdout rows instead
+      of n_test, so its variance is a fold's scaled by the row counts.
+    - t with J - 1 degrees of freedom: s itself comes from J scores; a normal quantile (a fixed k
+      standard deviations) ignores that and fails sound models several times as often as it says.
+    ``rate`` is the nominal false-fail rate: the chance a sound model's holdout lands outside.
+    """
+
+    cv_mean: float
+    fold_std: float
+    folds: int
+    variance_factor: float  # 1/J + n_test/n_train + n_test/n_holdout
+    quantile: float  # t_{J-1, 1 - rate/2}
+    half_width: float
+    rate: float
+
+    @property
+    def expected_spread(self) -> float:
+        """The standard error of (holdout - CV mean): fold std times sqrt(variance_factor)."""
+        return self.fold_std * math.sqrt(self.variance_factor)
+
+
+def holdout_interval(
+    fold_scores: Sequence[float] | np.ndarray, n_train: float, n_test: float, n_holdout: float | None, rate: float,
+) -> HoldoutInterval:
+    """Return the prediction interval of a holdout score from fold scores (see ``HoldoutInterval``).
+
+    Without ``n_holdout`` the holdout counts as one more fold (n_test/n_holdout = 1).
+    """
+    scores = np.asarray(fold_scores, dtype=float).ravel()
+    if scores.size < 2:
+        raise ValueError(f"a holdout interval needs at least 2 fold scores, got {scores.size}")
+    if not (n_train > 0 and n_test > 0) or (n_holdout is not None and not n_holdout > 0):
+        raise ValueError(f"row counts must be positive, got n_train {n_train}, n_test {n_test}, "
+                         f"n_holdout {n_holdout}")
+    if not 0.0 < rate < 1.0:
+        raise ValueError(f"rate must be in (0, 1), got {rate}")
+    j = scores.size
+    factor = 1.0 / j + n_test / n_train + (1.0 if n_holdout is None else n_test / n_holdout)
+    quantile = float(sps.t.isf(rate / 2.0, j - 1))
+    std = float(scores.std(ddof=1))
+    return HoldoutInterval(float(scores.mean()), std, j, factor, quantile, quantile * std * math.sqrt(factor), rate)
+
+
+def without_largest(per_example: np.ndarray, form: str, count: int) -> float:
+    """Return the metric recomputed without the ``count`` largest per-example losses.
+
+    ``form`` says how the per-example values make the metric: "mean" or "sqrt_of_mean" (rmse).
+    """
+    values = np.sort(np.asarray(per_example, dtype=float))
+    if not 0 <= count < values.size:
+        raise ValueError(f"count must be in [0, {values.size}), got {count}")
+    kept = values[: values.size - count]
+    mean = float(kept.mean())
+    if form == "sqrt_of_mean":
+        return math.sqrt(mean)
+    if form != "mean":
+        raise ValueError(f"form must be 'mean' or 'sqrt_of_mean', got {form!r}")
+    return mean

@@ -13,9 +13,13 @@ Rules, each with figures and one plain sentence:
   online procedure allows (service.gate.holdout_champion; the verdict job makes it). The policy's
   champion_rule says which of the two champion rules decides (cv, holdout or both); the other is
   shown with ``figures.decides`` false and does not enter the decision.
-- holdout_gap: |holdout - cv_mean| <= k_std * fold_std + floor (skipped without a holdout score).
-  Its figures never contain the holdout score or the gap: what a submitter sees of the holdout is
-  decided by service.gate.release alone. Its outcome is a bit about the holdout, so it is judged only
+- holdout_gap: |holdout - cv_mean| <= half width of the t prediction interval at the policy's
+  false-fail rate + floor (``statistics.holdout_interval``: Nadeau & Bengio's correlated-fold term,
+  the holdout's size, J - 1 degrees of freedom); skipped without a holdout score. A holdout outside
+  it still passes when the score without its few largest per-row losses (``trimmed_rows``: 1 %,
+  at most 5) lies inside: a few extreme rows are not a verdict on the model. Its figures never
+  contain the holdout score or the gap: what a submitter sees of the holdout is decided by
+  service.gate.release alone. Its outcome is a bit about the holdout, so it is judged only
   on the figure as released (a function of a counted release tells nothing more), and shown as
   withheld (skipped, counting for nothing) whenever no own figure of the submission was released. A
   holdout attempt that failed, when the release policy lets that be told, fails it in fixed words.
@@ -29,6 +33,7 @@ Decision: fail if any rule fails, else inconclusive if any is, else pass.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -43,6 +48,7 @@ from service.gate.statistics import (
     PairedTest,
     corrected_resampled_t,
     five_by_two_cv_t,
+    holdout_interval,
 )
 
 Cell = tuple[int, int]  # (repeat, fold)
@@ -64,6 +70,18 @@ class PlanFacts:
 
 
 @dataclass(frozen=True)
+class TrimmedHoldout:
+    """The holdout's primary metric recomputed without its ``rows`` largest per-row losses.
+
+    Lets the consistency rule tell a model that is off from a holdout with a few extreme rows. It is
+    derived from sealed rows, so, like the holdout score, it never appears in a verdict.
+    """
+
+    score: float
+    rows: int
+
+
+@dataclass(frozen=True)
 class ChampionFolds:
     """The champion in force: its id, primary-metric fold scores and the fold plan they came from."""
 
@@ -78,6 +96,7 @@ def judge(
     champion: ChampionFolds | None, holdout: float | None, plan: PlanFacts, *, policy_version: int,
     holdout_hidden: str | None = None, holdout_failed: bool = False,
     champion_holdout: Mapping[str, Any] | None = None, holdout_rule: dict[str, Any] | None = None,
+    holdout_trimmed: TrimmedHoldout | None = None,
 ) -> dict[str, Any]:
     """Return the verdict document for a candidate's primary-metric fold scores.
 
@@ -87,6 +106,8 @@ def judge(
     (service.gate.holdout_champion), made by the verdict job; None when it was not made.
     ``holdout_rule``, when given, stands for the holdout-gap rule instead of checking it on ``holdout``:
     a re-judge passes the answer an earlier verdict already gave, or a rule saying the check is withheld.
+    ``holdout_trimmed``: the holdout score without its few largest per-row losses (see ``trimmed_rows``),
+    for the metrics whose per-row losses are unbounded.
     """
     if plan.test not in (CORRECTED_RESAMPLED_T, FIVE_BY_TWO_CV):
         raise ValueError(f"test must be {CORRECTED_RESAMPLED_T} or {FIVE_BY_TWO_CV}, got {plan.test!r}")
@@ -96,7 +117,7 @@ def judge(
     elif holdout_hidden or holdout_failed:
         gap = j.holdout_unavailable(holdout_hidden, holdout_failed)
     else:
-        gap = j.holdout_gap(holdout)
+        gap = j.holdout_gap(holdout, holdout_trimmed)
     on_cv, on_holdout = _champion_rules(policy, champion, champion_holdout, j.champion(champion))
     rules = [j.baseline(baseline), j.bar(), on_cv, on_holdout, gap, j.fold_stability()]
     outcomes = {r["outcome"] for r in rules if r["figures"].get("decides", True)}
@@ -146,6 +167,21 @@ def _rule(rule: str, outcome: str, sentence: str, figures: dict[str, Any]) -> di
 
 def _g(x: float | None) -> str:
     return "n/a" if x is None else f"{x:.4g}"
+
+
+# Metrics whose per-row losses are unbounded, so a few rows can carry the score, and how the rows make it.
+TRIMMABLE_FORMS = {"rmse": "sqrt_of_mean", "mse": "mean", "mae": "mean", "log_loss": "mean"}
+MIN_TRIMMED_HOLDOUT = 20  # below this a single row is too large a share to set aside
+
+
+def trimmed_rows(holdout_rows: int) -> int:
+    """How many of the largest per-row losses the consistency rule may set aside: 1 %, 1 to 5 rows.
+
+    *Common practice* (a few rows, a small share), not a published figure; 0 on holdouts under 20 rows.
+    """
+    if holdout_rows < MIN_TRIMMED_HOLDOUT:
+        return 0
+    return max(1, min(5, math.ceil(0.01 * holdout_rows)))
 
 
 class _Judge:
@@ -277,25 +313,34 @@ class _Judge:
             f"{_diff(figures['mean_difference'])}; on the difference plus the margin, "
             f"{self._test_text(test, alpha)}."), figures)
 
-    def holdout_gap(self, holdout: float | None) -> dict[str, Any]:
+    def holdout_gap(self, holdout: float | None, trimmed: TrimmedHoldout | None = None) -> dict[str, Any]:
         gap = self.policy.holdout_gap
-        figures: dict[str, Any] = {"k_std": gap.k_std, "floor": gap.floor}
+        figures: dict[str, Any] = {"k_std": gap.k_std, "floor": gap.floor, "false_fail_rate": gap.false_fail_rate}
         if holdout is None:
             return _rule("holdout_gap", "skipped", "No holdout score to compare with.", figures)
         if len(self.cells) < 2:
             return _rule("holdout_gap", "inconclusive",
                          f"Cannot check the holdout against CV: the fold spread needs 2 folds, got {len(self.cells)}.",
                          figures)
-        mean, std = float(self.scores.mean()), float(self.scores.std(ddof=1))
-        spread = std * self._gap_scale()
-        allowed = gap.k_std * spread + gap.floor
-        figures.update({"cv_mean": mean, "fold_std": std, "expected_spread": spread, "allowed_gap": allowed})
-        inside = abs(holdout - mean) <= allowed
-        band = (f"CV mean {_g(mean)} +/- {_g(allowed)} ({gap.k_std:g} x expected spread {_g(spread)} + floor "
-                f"{gap.floor:g})")
-        if inside:
+        n_train, n_test = self._fold_rows()
+        interval = holdout_interval(self.scores, n_train, n_test, self.plan.holdout_rows, gap.false_fail_rate)
+        allowed = interval.half_width + gap.floor
+        figures.update({"cv_mean": interval.cv_mean, "fold_std": interval.fold_std,
+                        "expected_spread": interval.expected_spread, "t_quantile": interval.quantile,
+                        "df": interval.folds - 1, "allowed_gap": allowed})
+        band = (f"CV mean {_g(interval.cv_mean)} +/- {_g(allowed)} (t {interval.quantile:.3g}, "
+                f"df {interval.folds - 1}, x expected spread {_g(interval.expected_spread)} + floor {gap.floor:g}; "
+                f"a sound model falls outside {_pct(gap.false_fail_rate)} of the time)")
+        if abs(holdout - interval.cv_mean) <= allowed:
             return _rule("holdout_gap", "pass", f"The holdout score is consistent with CV: it lies within {band}.",
                          figures)
+        if trimmed is not None:
+            figures["rows_set_aside"] = trimmed.rows
+            if abs(trimmed.score - interval.cv_mean) <= allowed:
+                return _rule("holdout_gap", "pass", (
+                    f"The holdout score is consistent with CV once its {trimmed.rows} largest per-row "
+                    f"loss(es) are set aside: it then lies within {band}; a few extreme rows, not the "
+                    "model as a whole, make the difference."), figures)
         return _rule("holdout_gap", "fail", f"The holdout score is not consistent with CV: it lies outside {band} "
                      "(a leak, a shift between partitions or an unstable model can cause this).", figures)
 
@@ -309,20 +354,12 @@ class _Judge:
         return _rule("holdout_gap", "fail", "The holdout step did not produce a figure, so the model's consistency "
                      "with CV could not be checked; the attempt counted as one holdout query.", figures)
 
-    def _gap_scale(self) -> float:
-        """Scale the fold spread to the spread of (holdout score - CV mean).
-
-        A fold's score varies with its n_test rows; the holdout score, computed on n_holdout rows,
-        varies about sqrt(n_test / n_holdout) times as much, and the CV mean of J folds adds about
-        1/J of a fold's variance. Without the holdout size the fold spread is used as it is.
-        """
-        if not self.plan.holdout_rows:
-            return 1.0
-        sizes = [float(self.plan.sizes[c][1]) for c in self.cells if c in self.plan.sizes]
-        n_test = float(np.mean(sizes)) if sizes else 0.0
-        if n_test <= 0:
-            return 1.0
-        return float(np.sqrt(n_test / self.plan.holdout_rows + 1.0 / len(self.cells)))
+    def _fold_rows(self) -> tuple[float, float]:
+        """Mean training and test rows of the scored folds; without sizes, a 5-fold split's ratio."""
+        sizes = [self.plan.sizes[c] for c in self.cells if c in self.plan.sizes]
+        if not sizes or min(min(pair) for pair in sizes) <= 0:
+            return 4.0, 1.0
+        return float(np.mean([p[0] for p in sizes])), float(np.mean([p[1] for p in sizes]))
 
     def fold_stability(self) -> dict[str, Any]:
         limit = self.policy.max_fold_std
@@ -340,6 +377,10 @@ class _Judge:
 
 
 _REPLAYED = " (the champion's configuration scored on this submission's folds)"
+
+
+def _pct(rate: float) -> str:
+    return f"{100.0 * rate:.2g} %"
 
 
 def _diff(d: float) -> str:

@@ -65,6 +65,9 @@ datasets = Table(
     # How well the holdout matches the development rows, and each draw of the seal: aggregate
     # statistics only (vault.balance), never rows, ids or seeds. Null on records from before it.
     Column("balance", JSON),
+    # Registration warnings about undeclared structure (vault.structure): [{"kind", "detail", figures}].
+    # Computed on development rows only. Null on records from before it.
+    Column("warnings", JSON),
     Column("created_by", String(40), nullable=False),
     Column("created_at", DateTime(timezone=True), nullable=False),
 )

@@ -3,9 +3,10 @@
 Pure numpy, pandas and pyarrow; nothing here imports Flask or scikit-learn. Modules:
 ``tables`` (read a file, describe its columns), ``fingerprint`` (canonical SHA-256 of a frame, and the
 published fingerprint), ``sealing`` (which rows are held out), ``balance`` and ``adversarial`` (how well
-a holdout draw matches the development rows), ``folds`` (fold plans and their splits), ``store`` (files
-under the data dir, the fingerprint key, and the checked opening of the sealed holdout), ``spool``
-(uploads received to disk, and the start-up sweep of what a killed upload left).
+a holdout draw matches the development rows), ``structure`` (warnings of undeclared groups or time
+order), ``folds`` (fold plans and their splits), ``store`` (files under the data dir, the fingerprint
+key, and the checked opening of the sealed holdout), ``spool`` (uploads received to disk, and the
+start-up sweep of what a killed upload left).
 
 ``store.open_sealed_holdout`` is deliberately not re-exported: only the worker's holdout job opens
 the seal, and it imports it by its full name.

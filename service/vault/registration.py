@@ -10,6 +10,10 @@ Two seeds are drawn from ``secrets``: the sealing seed (63 bits, stored, never s
 outside can recompute which rows were sealed) and the fold seed (31 bits, shown in the fold plan so
 that anyone can reproduce the folds on the development rows).
 
+The development rows are also checked for structure the declaration left out
+(``vault.structure``): a column that looks like groups, rows in time order. What it finds is a
+warning in the record (and so in the registration answer), never a refusal.
+
 Each draw of the seal is measured against the development rows (``vault.balance``). A draw out of
 balance is redrawn with a fresh sealing seed, at most ``BalanceLimits.redraws`` times, and the best
 draw is kept: rerandomisation (Morgan K.L., Rubin D.B. 2012, "Rerandomization to improve covariate
@@ -35,7 +39,7 @@ from service.records import datasets
 from service.records.engine import utcnow
 from service.records.keys import KeyInfo
 from service.settings import Settings
-from service.vault import balance, sealing, store
+from service.vault import balance, sealing, store, structure
 from service.vault.fingerprint import fingerprint_frame, published_fingerprint
 from service.vault.folds import (
     FOLD_SCHEMES,
@@ -133,6 +137,10 @@ def register_dataset(
         "development_fingerprint": development_fingerprint,
         "holdout_fingerprint": holdout_fingerprint,
         "balance": sealed.balance,
+        # Structure the declaration did not name (a column that looks like groups, rows in time order).
+        "warnings": structure.undeclared_structure(
+            sealed.development.drop(columns=[store.ROW_ID]), target=declaration.target, task=declaration.task,
+            declared={role: getattr(declaration, role) for role in _ROLE_COLUMNS}),
         "created_by": actor.id,
         "created_at": utcnow(),
     }
@@ -355,6 +363,7 @@ def _draw_balanced(
         mask = sealing.holdout_mask(
             frame, scheme, fraction, seed, target=declaration.target,
             group_column=declaration.group_column, time_column=declaration.time_column, task=declaration.task,
+            version=sealing.SEAL_VERSION,
         )
         measured = check.measure(mask)
         draws.append(measured)
@@ -364,6 +373,7 @@ def _draw_balanced(
             break
     assert best is not None  # at least one draw
     document = balance.balance_document(draws, best[2], redrawable=redrawable, limits=limits, excluded=excluded)
+    document["seal"] = {"scheme": scheme, "version": sealing.SEAL_VERSION}
     return best[0], best[1], document
 
 

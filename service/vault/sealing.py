@@ -9,6 +9,8 @@ Schemes:
     random      a uniformly random subset of rows
     stratified  within each stratum of the target, the same fraction: the classes of a classification
                 target; for regression, quantile bins of the target (deciles, fewer on small tables)
+                and, from seal version 2, each tail of the target in bins of its own (see
+                ``tail_aware_bins``), so the extremes are split between the partitions like the rest
     group       whole groups: every group lies entirely on one side
     time        the latest rows by the time column (no seed involved)
 
@@ -17,6 +19,11 @@ nothing in randomness (rows are still drawn at random within each bin) and it ru
 unluckiest draws, those that put a narrow or shifted range of the target in the holdout, which
 would bias every holdout score. Group and time holdouts cannot be stratified this way without
 breaking their own promise, so they keep their schemes.
+
+Seal versions: a dataset's holdout is fixed at registration and never re-derived, but the function
+must keep giving the same mask for the same inputs, so a change to a scheme's algorithm is a new
+version (``SEAL_VERSION``, recorded in the balance document) and the older ones stay callable.
+Version 1: regression strata are the decile bins alone. Version 2: plus the tail bins.
 """
 
 from __future__ import annotations
@@ -32,6 +39,9 @@ from service.vault.tables import time_order_key
 HOLDOUT_SCHEMES: tuple[str, ...] = ("random", "stratified", "group", "time")
 MAX_FRACTION = 0.5
 MAX_TARGET_BINS = 10  # deciles
+SEAL_VERSIONS: tuple[int, ...] = (1, 2)
+SEAL_VERSION = 2  # what registration uses now
+TAIL_BLOCKS = 3  # bins of its own per tail of a regression target (seal version 2)
 
 
 def default_fraction(n_rows: int) -> float:
@@ -109,12 +119,16 @@ def holdout_mask(
     group_column: str | None,
     time_column: str | None,
     task: str | None = None,
+    version: int = 1,
 ) -> np.ndarray:
     """Return a boolean array over the rows of ``df``: True for the rows to seal away.
 
     ``task`` matters to the stratified scheme only: "regression" stratifies on quantile bins of the
-    target, anything else on its classes.
+    target, anything else on its classes. ``version``: the seal version (module docstring); the
+    default stays 1 so that a caller re-deriving an old seal gets it back.
     """
+    if version not in SEAL_VERSIONS:
+        raise ValueError(f"seal version must be one of {SEAL_VERSIONS}, got {version!r}")
     problems = holdout_problems(scheme, fraction, group_column=group_column, time_column=time_column)
     if problems:
         raise DatasetRejected(problems[0].detail, problems)
@@ -131,6 +145,8 @@ def holdout_mask(
         strata = df[target].to_numpy()
         if task == "regression":
             strata = target_bins(df[target], n_holdout)
+            if version >= 2:
+                strata = tail_aware_bins(df[target], strata, fraction)
         chosen = _stratified(strata, n_holdout, rng)
     elif scheme == "group":
         assert group_column is not None  # holdout_problems checked it
@@ -171,6 +187,32 @@ def target_bins(target: pd.Series, n_holdout: int) -> np.ndarray:
     bins = max(1, min(MAX_TARGET_BINS, n_holdout))
     ranks = target.rank(method="min").to_numpy(dtype=np.float64) - 1.0
     return np.floor(ranks * bins / len(target)).astype(np.int64)
+
+
+def tail_aware_bins(target: pd.Series, bins: np.ndarray, fraction: float) -> np.ndarray:
+    """Give each tail of a numeric target ``TAIL_BLOCKS`` bins of its own, of ceil(1/fraction) rows each.
+
+    Deciles alone leave the top tenth as one bin, from which rows are drawn at random: on a long-tailed
+    target the few largest values can all land in the holdout (at 20 %, the three largest with
+    chance 0.8 %), the development rows never show that range and every holdout score is off. A bin
+    of ceil(1/fraction) consecutive rows by target gives up about one row (its share is at least 1),
+    so of the most extreme values one in ceil(1/fraction) is sealed, as of the rest. Rows are ordered
+    by target, ties by position (a tie split between two tail bins changes nothing the seal promises).
+    The tails shrink on small tables so that they never take more than half the rows.
+    """
+    n_rows = len(target)
+    block = math.ceil(1.0 / fraction)
+    blocks = min(TAIL_BLOCKS, n_rows // (4 * block))
+    if blocks == 0:
+        return bins
+    order = np.argsort(target.to_numpy(dtype=np.float64), kind="stable")
+    tail_rows = blocks * block
+    strata = bins.astype(np.int64).copy()
+    first = int(strata.max()) + 1
+    blocks_of_tail = np.arange(tail_rows) // block
+    strata[order[:tail_rows]] = first + blocks_of_tail  # the lowest targets
+    strata[order[n_rows - tail_rows:]] = first + blocks + blocks_of_tail[::-1]  # the highest
+    return strata
 
 
 def class_codes(y: np.ndarray | pd.Series) -> tuple[np.ndarray, np.ndarray, list[object]]:

@@ -20,7 +20,8 @@ from worker.jobs import runtime
 
 def add_dataset(
     ctx: runtime.WorkerContext, development: pd.DataFrame, holdout: pd.DataFrame, target: str, task: str,
-    *, scheme: str = "kfold", folds: int = 5, seed: int = 0,
+    *, scheme: str = "kfold", folds: int = 5, seed: int = 0, group_column: str | None = None,
+    time_column: str | None = None,
 ) -> dict[str, Any]:
     """Store a dataset whose development and holdout rows are exactly the frames given."""
     ds_id = new_id("ds")
@@ -34,6 +35,7 @@ def add_dataset(
     full = pd.concat([development, holdout], ignore_index=True)
     datasets.insert(ctx.engine, {
         "id": ds_id, "team": "fleet", "name": f"test data {ds_id}", "task": task, "target": target,
+        "group_column": group_column, "time_column": time_column,
         "columns": kinds, "classes": sorted(str(c) for c in full[target].unique()) if task == "classification"
         else None, "rows_total": len(full), "rows_development": len(dev), "rows_holdout": len(hold),
         "holdout_scheme": "random", "holdout_fraction": len(hold) / len(full), "sealing_seed": "1",

@@ -32,7 +32,7 @@ from worker.learning.scoring import (
     score_predictions,
     training_sample,
 )
-from worker.learning.search import build_model, search_record
+from worker.learning.search import build_model, search_keys, search_record
 
 
 def run_fold(ctx: WorkerContext, submission_id: str, repeat: int, fold: int) -> dict[str, Any]:
@@ -50,7 +50,9 @@ def run_fold(ctx: WorkerContext, submission_id: str, repeat: int, fold: int) -> 
     # Learning-curve sizes count from the first split's training rows, as scikit-learn's do.
     reference = len(split_for(ctx.settings, dataset, config.validation, keys, repeat, 0).train) if curve else None
     classes = class_labels(data.y) if dataset["task"] == "classification" else None
-    model = build_model(build_pipeline(config.model, column_kinds(dataset)), config, classes)
+    # A search's inner folds follow the plan's groups or times, on this fold's training rows.
+    model = build_model(build_pipeline(config.model, column_kinds(dataset)), config, classes,
+                        search_keys(config, dataset, keys), split.train)
     outcome = evaluate_fold(
         model, data, split, str(dataset["task"]), config.metrics,
         linear=bool(config.linear), target=str(dataset["target"]),

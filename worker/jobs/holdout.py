@@ -39,7 +39,7 @@ from worker.learning.development import column_kinds, load_development, model_fr
 from worker.learning.per_row import per_example
 from worker.learning.pipeline import build_pipeline, fit_in_place, uses_frame
 from worker.learning.scoring import class_labels, predictions, score_predictions
-from worker.learning.search import build_model
+from worker.learning.search import build_model, search_keys
 
 # A claim without a heartbeat for this long belonged to a job that died; another job may take it over.
 CLAIM_STALE_SECONDS = 60.0
@@ -82,11 +82,12 @@ def _score(
     kinds = column_kinds(dataset)
     features = list(config.model.features)
 
-    data, _ = load_development(ctx.settings, dataset, features)
+    data, key_frame = load_development(ctx.settings, dataset, features)
     # Scored against the development rows' classes, as the folds are: the holdout adds none.
     classes = class_labels(data.y) if dataset["task"] == "classification" else None
     # A search is refitted on every dev row; a plain pipeline may centre its private copy in place.
-    pipeline = fit_in_place(build_model(build_pipeline(config.model, kinds), config, classes), config.model)
+    inner = search_keys(config, dataset, key_frame)  # a search's inner folds follow the plan's groups or times
+    pipeline = fit_in_place(build_model(build_pipeline(config.model, kinds), config, classes, inner), config.model)
     try:
         started = time.perf_counter()
         pipeline.fit(data.features_of(), data.target_of())

@@ -28,7 +28,8 @@ from service.gate.evidence import gather, holdout_reading
 from service.gate.policy import Policy, parse_policy
 from service.gate.rejudge import release_lock_name
 from service.gate.release import HoldoutScores, budget_status, release
-from service.gate.verdict import judge
+from service.gate.statistics import without_largest
+from service.gate.verdict import TRIMMABLE_FORMS, TrimmedHoldout, judge, trimmed_rows
 from service.records import champions, holdout_releases, keys, submissions
 from service.records.engine import as_utc, utcnow
 from service.vocabulary import LIVE_STATES
@@ -76,12 +77,30 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
         return {"submission_id": submission_id, "decision": None, "holdout": "not released"}
 
     figure, hidden, failed = holdout_reading(told, metric)
+    # Only beside the submission's own released figure: the rule then tells nothing the counted release
+    # does not already answer, save whether a few extreme rows explain a gap.
+    trimmed = _trimmed(ctx, dataset, submission_id, metric) if figure is not None else None
     verdict = judge(policy, candidate, evidence.baseline, evidence.champion, figure, evidence.plan,
                     policy_version=version, holdout_hidden=hidden, holdout_failed=failed,
-                    champion_holdout=sealed_champion.recorded_entry(ctx, submission_id))
+                    champion_holdout=sealed_champion.recorded_entry(ctx, submission_id), holdout_trimmed=trimmed)
     submissions.store_verdict(engine, submission_id, verdict, version, evidence.champion_id)
     submissions.transition(engine, submission_id, "succeeded", LIVE_STATES)
     return {"submission_id": submission_id, "decision": verdict["decision"]}
+
+
+def _trimmed(ctx: WorkerContext, dataset: Mapping[str, Any], submission_id: str, metric: str) -> TrimmedHoldout | None:
+    """The holdout score without its few largest per-row losses, for the consistency rule; None if not kept."""
+    form = TRIMMABLE_FORMS.get(metric)
+    rows = trimmed_rows(int(dataset["rows_holdout"]))
+    if form is None or rows == 0:
+        return None
+    try:
+        values = load_per_example(ctx.settings, dataset["id"], submission_id, metric)
+    except DamagedLosses:
+        return None  # the release above already failed the submission on such a file
+    if values is None or values.size <= rows:
+        return None
+    return TrimmedHoldout(without_largest(values, form, rows), rows)
 
 
 def _release(

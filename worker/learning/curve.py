@@ -23,6 +23,7 @@ from sklearn.base import BaseEstimator, clone
 from service.vault.folds import Split
 from worker.learning.development import DevelopmentData
 from worker.learning.scoring import rows_to_score, score_model, training_sample
+from worker.learning.search import for_rows
 
 SHUFFLE_NOTE = ("each size trains on the first n rows of a seeded shuffle of the fold's training rows (the "
                 "fold plan's seed, repeat and fold: the same rows for every submission on the dataset), as "
@@ -67,7 +68,7 @@ def curve_points(
         scored = training_sample(n, split.repeat, split.fold)
         point["train_scored_rows"] = n if scored is None else len(scored)
         try:
-            fitted = clone(model).fit(X_part, y_part)
+            fitted = for_rows(clone(model), rows).fit(X_part, y_part)
             point["train_scores"], _ = score_model(fitted, *rows_to_score(X_part, y_part, scored), metrics, classes)
             point["scores"], undefined = score_model(fitted, X_test, y_test, metrics, classes)
             if undefined:

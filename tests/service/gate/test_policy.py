@@ -6,6 +6,7 @@ import json
 from typing import Any
 
 import pytest
+from scipy import stats as sps
 
 from service.errors import InputError
 from service.gate.policy import Policy, ThresholdoutParams, default_policy, parse_policy
@@ -41,7 +42,7 @@ def test_document_has_the_served_shape_and_round_trips() -> None:
     assert set(doc) == {"version", "primary_metric", "greater_is_better", "bar", "baseline_alpha",
                         "champion_margin", "champion_alpha", "holdout_gap", "max_fold_std", "release",
                         "champion_rule", "champion_online"}
-    assert set(doc["holdout_gap"]) == {"k_std", "floor"}
+    assert set(doc["holdout_gap"]) == {"k_std", "floor", "false_fail_rate"}
     assert set(doc["release"]) == {"mode", "digits", "budget", "window_hours", "team_budget", "ladder_step",
                                    "ladder_threshold_se",
                                    "thresholdout"}
@@ -164,3 +165,21 @@ def test_the_team_budget_defaults_to_three_submitters_and_is_checked() -> None:
     with pytest.raises(InputError) as exc:
         parse_policy({"release": {"team_budget": 0}}, "regression")
     assert [p.pointer for p in exc.value.problems] == ["/release/team_budget"]
+
+
+def test_holdout_gap_states_its_false_fail_rate_and_takes_one_instead_of_k_std() -> None:
+    # Nominal false-fail rate 2 * (1 - Phi(k)): 0.27 % at the default k = 3 (*computed* with scipy).
+    default = default_policy("regression")
+    assert default.holdout_gap.false_fail_rate == pytest.approx(2 * sps.norm.sf(3.0), rel=1e-12)
+    assert default.to_document(0)["holdout_gap"]["false_fail_rate"] == pytest.approx(0.0026998, abs=1e-7)
+    p = parse_policy({"holdout_gap": {"false_fail_rate": 0.01}}, "regression")
+    assert p.holdout_gap.k_std == pytest.approx(2.5758293, abs=1e-6)  # Phi^-1(0.995), *computed*
+    assert p.holdout_gap.false_fail_rate == pytest.approx(0.01, rel=1e-9)
+    assert parse_policy(p.to_document(2), "regression").holdout_gap.k_std == pytest.approx(p.holdout_gap.k_std)
+    with pytest.raises(InputError) as raised:
+        parse_policy({"holdout_gap": {"k_std": 3.0, "false_fail_rate": 0.01}}, "regression")
+    assert [pr.pointer for pr in raised.value.problems] == ["/holdout_gap/false_fail_rate"]
+    assert "asks for k_std 2.57583, but k_std 3 was given" in raised.value.problems[0].detail
+    with pytest.raises(InputError) as raised:
+        parse_policy({"holdout_gap": {"false_fail_rate": 0.7}}, "regression")
+    assert raised.value.problems[0].detail == "holdout_gap.false_fail_rate must be at most 0.5, got 0.7"

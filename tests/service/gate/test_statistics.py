@@ -15,6 +15,7 @@ from service.gate.statistics import (
     corrected_resampled_t,
     corrected_t_from_moments,
     five_by_two_cv_t,
+    holdout_interval,
     paired_t,
 )
 
@@ -161,3 +162,38 @@ def test_figures_are_json_able() -> None:
 
     for r in (corrected_resampled_t(D, 180, 20), corrected_resampled_t([0.1] * 3, 180, 20), five_by_two_cv_t(P_5X2)):
         json.dumps(r.figures(), allow_nan=False)
+
+
+def test_holdout_interval_is_the_t_prediction_interval_with_the_fold_overlap_term() -> None:
+    # half width = t_{J-1, 1-rate/2} * s * sqrt(1/J + n_test/n_train + n_test/n_holdout): Nadeau & Bengio
+    # 2003 (Machine Learning 52:239-281) for n_test/n_train; check value *computed* with scipy:
+    # s = std(D, ddof 1) = 0.0143372, factor 0.1 + 20/180 + 20/50 = 0.61111, t_9 at 0.995 = 3.24984,
+    # half width 0.0364239.
+    interval = holdout_interval(D, n_train=180, n_test=20, n_holdout=50, rate=0.01)
+    assert interval.folds == 10 and interval.variance_factor == pytest.approx(0.1 + 20 / 180 + 20 / 50)
+    assert interval.quantile == pytest.approx(sps.t.ppf(0.995, 9), rel=1e-12)
+    assert interval.quantile == pytest.approx(3.24984, abs=1e-5)
+    assert interval.half_width == pytest.approx(0.0364239, abs=1e-7)
+    assert interval.cv_mean == pytest.approx(0.015)
+    # Without a holdout size the holdout counts as one more fold.
+    assert holdout_interval(D, 180, 20, None, 0.01).variance_factor == pytest.approx(0.1 + 20 / 180 + 1)
+    with pytest.raises(ValueError, match="at least 2 fold scores"):
+        holdout_interval([0.5], 180, 20, 50, 0.01)
+
+
+def test_holdout_interval_holds_its_rate_when_its_assumptions_hold() -> None:
+    # Independent normal fold scores (n_train so large that the overlap term vanishes) and an independent
+    # holdout score with variance n_test/n_holdout of a fold's: (h - m) / (s sqrt(factor)) is then exactly
+    # Student's t with J - 1 df, so a sound model falls outside at the nominal rate. Simulated: 200,000
+    # draws, rate 1 %; the count's binomial sd is 44, the check allows 4 sd.
+    rng = np.random.default_rng(7)
+    j, ratio, rate, draws = 5, 0.25, 0.01, 200_000
+    interval = holdout_interval(rng.normal(size=j), n_train=1e12, n_test=1.0, n_holdout=1 / ratio, rate=rate)
+    folds = rng.normal(size=(draws, j))
+    holdout = rng.normal(scale=math.sqrt(ratio), size=draws)
+    half = interval.quantile * folds.std(axis=1, ddof=1) * math.sqrt(interval.variance_factor)
+    outside = int((np.abs(holdout - folds.mean(axis=1)) > half).sum())
+    assert abs(outside - rate * draws) < 4 * math.sqrt(rate * (1 - rate) * draws)
+    # A normal quantile (k standard deviations, as if s were known) fails it far more often at J = 5.
+    normal = sps.norm.isf(rate / 2) * folds.std(axis=1, ddof=1) * math.sqrt(interval.variance_factor)
+    assert int((np.abs(holdout - folds.mean(axis=1)) > normal).sum()) > 3 * rate * draws

@@ -11,8 +11,8 @@ import pytest
 from scipy import stats as sps
 
 from service.gate.policy import HoldoutGap, Policy, default_policy
-from service.gate.statistics import FIVE_BY_TWO_CV
-from service.gate.verdict import Cell, ChampionFolds, PlanFacts, judge
+from service.gate.statistics import FIVE_BY_TWO_CV, without_largest
+from service.gate.verdict import Cell, ChampionFolds, PlanFacts, TrimmedHoldout, judge, trimmed_rows
 
 KEY = ("kfold", 10, 42)
 CELLS = [(0, f) for f in range(10)]
@@ -173,13 +173,28 @@ def test_no_champion_is_skipped() -> None:
     assert _rule(v, "champion")["outcome"] == "skipped" and v["champion"] is None
 
 
+def _interval_half_width(values: list[float] | np.ndarray, n_train: float, n_test: float, n_holdout: float,
+                         rate: float) -> float:
+    """The t prediction interval written out (Nadeau & Bengio 2003 variance term, *computed* with scipy)."""
+    j = len(values)
+    factor = 1 / j + n_test / n_train + n_test / n_holdout
+    return float(sps.t.isf(rate / 2, j - 1) * np.std(values, ddof=1) * np.sqrt(factor))
+
+
 def test_holdout_gap_pass_fail_skip_and_never_shows_the_holdout() -> None:
-    candidate = _scores(np.add(BASE_ACC, D))  # mean 0.816, fold std ~0.0206
-    policy = replace(ACCURACY, holdout_gap=HoldoutGap(2.0, 0.01))  # allowed gap ~0.0512
+    values = np.add(BASE_ACC, D)
+    candidate = _scores(values)  # mean 0.816, fold std 0.02366
+    policy = replace(ACCURACY, holdout_gap=HoldoutGap(2.0, 0.01))  # nominal rate 2 * (1 - Phi(2)) = 4.55 %
+    # Without a holdout size the holdout counts as one more fold of 20 rows: 1/10 + 20/180 + 1 (*computed*).
+    allowed = _interval_half_width(values, 180, 20, 20, 2 * sps.norm.sf(2.0)) + 0.01
+    assert allowed == pytest.approx(0.07041, abs=1e-5)
     inside = _judge(policy, candidate, _scores(BASE_ACC), holdout=0.8357)
     rule = _rule(inside, "holdout_gap")
     assert rule["outcome"] == "pass"
-    assert rule["figures"]["allowed_gap"] == pytest.approx(2 * np.std(np.add(BASE_ACC, D), ddof=1) + 0.01)
+    assert rule["figures"]["allowed_gap"] == pytest.approx(allowed)
+    assert rule["figures"]["false_fail_rate"] == pytest.approx(0.0455, abs=1e-4)
+    assert (rule["figures"]["df"], rule["figures"]["t_quantile"]) == (9, pytest.approx(sps.t.isf(0.0455 / 2, 9),
+                                                                                       rel=1e-3))
     outside = _judge(policy, candidate, _scores(BASE_ACC), holdout=0.7357)
     assert _rule(outside, "holdout_gap")["outcome"] == "fail" and outside["decision"] == "fail"
     for verdict in (inside, outside):
@@ -188,19 +203,61 @@ def test_holdout_gap_pass_fail_skip_and_never_shows_the_holdout() -> None:
     assert _rule(_judge(policy, candidate, _scores(BASE_ACC)), "holdout_gap")["outcome"] == "skipped"
 
 
-def test_holdout_gap_scales_the_fold_spread_to_the_holdout_size() -> None:
-    # 10 folds of 20 test rows and a holdout of 50 rows: the holdout score varies like a mean of 50 rows,
-    # sqrt(20/50) of a fold's spread, and the CV mean adds 1/10 of a fold's variance (both *computed*).
-    candidate = _scores(np.add(BASE_ACC, D))
-    std = float(np.std(np.add(BASE_ACC, D), ddof=1))
+def test_holdout_gap_is_the_t_prediction_interval_with_the_fold_overlap_term() -> None:
+    # 10 folds of 20 test rows trained on 180 and a holdout of 50 rows: the variance of (holdout - CV mean)
+    # in fold variances is 1/10 (the mean) + 20/180 (Nadeau & Bengio 2003's correlated-fold term) +
+    # 20/50 (a holdout score on 50 rows), and the quantile is Student's t with 9 df at the nominal
+    # rate 2 * (1 - Phi(3)) = 0.27 % (*computed* with scipy).
+    values = np.add(BASE_ACC, D)
+    candidate = _scores(values)
+    std = float(np.std(values, ddof=1))
     policy = replace(ACCURACY, holdout_gap=HoldoutGap(3.0, 0.0))
     scaled = _judge(policy, candidate, _scores(BASE_ACC), holdout=0.82, plan=replace(PLAN, holdout_rows=50))
     figures = _rule(scaled, "holdout_gap")["figures"]
-    assert figures["expected_spread"] == pytest.approx(std * np.sqrt(20 / 50 + 1 / 10))
-    assert figures["allowed_gap"] == pytest.approx(3.0 * std * np.sqrt(0.5))
-    # A holdout much larger than a fold narrows the allowance below the raw fold spread.
-    wide = _judge(policy, candidate, _scores(BASE_ACC), holdout=0.82, plan=replace(PLAN, holdout_rows=2000))
-    assert _rule(wide, "holdout_gap")["figures"]["allowed_gap"] < 3.0 * std * 0.5
+    assert figures["expected_spread"] == pytest.approx(std * np.sqrt(1 / 10 + 20 / 180 + 20 / 50))
+    assert figures["t_quantile"] == pytest.approx(sps.t.isf(sps.norm.sf(3.0), 9))
+    assert figures["t_quantile"] == pytest.approx(4.094, abs=1e-3)  # *computed*: t_9 at 0.99865
+    assert figures["allowed_gap"] == pytest.approx(_interval_half_width(values, 180, 20, 50, 2 * sps.norm.sf(3.0)))
+    assert figures["false_fail_rate"] == pytest.approx(0.0027, abs=1e-5)
+    # A holdout much larger than a fold narrows the allowance; the correlated-fold term keeps it above
+    # what independent folds would give.
+    wide = _rule(_judge(policy, candidate, _scores(BASE_ACC), holdout=0.82, plan=replace(PLAN, holdout_rows=2000)),
+                 "holdout_gap")["figures"]["allowed_gap"]
+    assert wide < figures["allowed_gap"]
+    assert wide > sps.t.isf(sps.norm.sf(3.0), 9) * std * np.sqrt(1 / 10 + 20 / 2000)
+
+
+def test_a_few_extreme_holdout_rows_do_not_fail_the_consistency_rule() -> None:
+    # rmse folds around 50; a holdout rmse of 90 is far outside, but 52.9 once its largest losses are set
+    # aside: a pass that says why. A holdout still outside without them fails.
+    values = [50.0, 52.0, 49.0, 51.0, 48.0, 50.5, 51.5, 49.5, 50.0, 52.5]
+    candidate = _scores(values)
+    plan = replace(PLAN, holdout_rows=200)
+    assert trimmed_rows(200) == 2 and trimmed_rows(19) == 0 and trimmed_rows(10_000) == 5
+    rescued = _judge_trimmed(candidate, plan, 90.123, TrimmedHoldout(52.917, 2))
+    rule = _rule(rescued, "holdout_gap")
+    assert rule["outcome"] == "pass" and "2 largest per-row loss(es) are set aside" in rule["sentence"]
+    text = json.dumps(rule)
+    assert rule["figures"]["rows_set_aside"] == 2 and "52.917" not in text and "90.123" not in text
+    still = _judge_trimmed(candidate, plan, 90.0, TrimmedHoldout(80.0, 2))
+    assert _rule(still, "holdout_gap")["outcome"] == "fail"
+    assert _rule(_judge_trimmed(candidate, plan, 90.0, None), "holdout_gap")["outcome"] == "fail"
+
+
+def test_without_largest_recomputes_mean_and_root_mean_metrics() -> None:
+    # The worked squared errors of REFERENCES.md (y = [3, -0.5, 2, 7], y_hat = [2.5, 0, 2, 8]): MSE 0.375;
+    # without the largest (1.0) the mean of [0.25, 0.25, 0] is 1/6 and its root 0.408248 (*computed*).
+    squared = np.square(np.array([3, -0.5, 2, 7]) - np.array([2.5, 0.0, 2, 8]))
+    assert without_largest(squared, "mean", 0) == pytest.approx(0.375)
+    assert without_largest(squared, "mean", 1) == pytest.approx(1 / 6)
+    assert without_largest(squared, "sqrt_of_mean", 1) == pytest.approx(0.408248, abs=1e-6)
+
+
+def _judge_trimmed(candidate: dict[Cell, float], plan: PlanFacts, holdout: float,
+                   trimmed: TrimmedHoldout | None) -> dict[str, Any]:
+    verdict = judge(RMSE, candidate, candidate, None, holdout, plan, policy_version=1, holdout_trimmed=trimmed)
+    json.dumps(verdict, allow_nan=False)
+    return verdict
 
 
 def test_fold_stability() -> None:

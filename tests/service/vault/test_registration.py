@@ -496,8 +496,10 @@ def test_an_unlucky_draw_is_detected_redrawn_and_recorded(
     top_decile = frame["target"].nlargest(sealing.holdout_count(442, 0.1))
     assert len(holdout) == len(top_decile) and holdout["target"].min() < top_decile.min()
     assert internal["sealing_seed"] == str(seeds[-1])
+    # The record names the seal's version, which re-derives it.
+    assert found["seal"] == {"scheme": "stratified", "version": sealing.SEAL_VERSION}
     kept = sealing.holdout_mask(frame, "stratified", 0.1, seeds[-1], target="target", group_column=None,
-                                time_column=None, task="regression")
+                                time_column=None, task="regression", version=found["seal"]["version"])
     assert fingerprint_frame(frame[kept].reset_index(drop=True)) == internal["holdout_fingerprint"]
     # Each draw is recorded by its figures, never by its seed.
     stored = json.dumps(internal["balance"])
@@ -540,3 +542,50 @@ def test_submitters_read_the_flag_and_stewards_the_table(settings: Settings, eng
     assert as_submitter["balance"] == {k: record["balance"][k] for k in ("balanced", "adversarial_auc", "draws")}
     assert datasets.get(engine, record["id"], role="admin") == record
     assert datasets.list_for_team(engine, "fleet", role="submitter") == [as_submitter]
+
+
+def test_a_long_tailed_target_registers_with_its_extremes_on_both_sides(
+    settings: Settings, engine: Engine, steward: KeyInfo, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Diabetes (bundled with scikit-learn) with its target cubed and sorted: a long right tail. A first draw
+    # planted to seal the three largest targets is flagged by the range statistic and redrawn; the kept
+    # seal (tail-aware, version 2) leaves at most one of the five largest in the holdout.
+    frame = diabetes_frame()
+    frame["target"] = frame["target"] ** 3
+    frame = frame.sort_values("target", kind="stable").reset_index(drop=True)
+    real = sealing.holdout_mask
+    seeds: list[int] = []
+
+    def planted(df: pd.DataFrame, scheme: str, fraction: float, seed: int, **columns: Any) -> np.ndarray:
+        seeds.append(seed)
+        mask = real(df, scheme, fraction, seed, **columns)
+        if len(seeds) == 1:
+            extra = np.flatnonzero(mask[:-5])[: 5 - int(mask[-5:].sum()) - 2]
+            mask[-5:] = [False, False, True, True, True]
+            mask[extra] = False
+        return mask
+
+    monkeypatch.setattr(sealing, "holdout_mask", planted)
+    record = _register(settings, engine, steward, _csv(frame))
+    found = record["balance"]
+    first = found["attempts"][0]
+    assert ("target", "beyond_range") in {(e["column"], e["statistic"]) for e in first["exceeded"]}
+    assert found["draws"] >= 2 and found["balanced"] is True
+    target = next(c for c in found["columns"] if c["name"] == "target")
+    assert target["beyond_range"]["above"] <= 1 and "beyond_range" not in target["exceeds"]
+    _, holdout, _ = _partitions(settings, engine, record["id"])
+    assert int(holdout["target"].isin(frame["target"].nlargest(5)).sum()) == 1
+
+
+def test_registration_warns_of_a_group_column_it_was_not_told_of(
+    settings: Settings, engine: Engine, steward: KeyInfo
+) -> None:
+    from tests.service.vault.test_structure import replicated_diabetes
+
+    frame = replicated_diabetes()
+    record = _register(settings, engine, steward, _csv(frame))
+    assert [(w["kind"], w["column"]) for w in record["warnings"]] == [("group", "patient")]
+    assert record["warnings"][0]["random_folds"] > record["warnings"][0]["group_folds"] + 0.6
+    assert datasets.get(engine, record["id"])["warnings"] == record["warnings"]  # type: ignore[index]
+    declared = _register(settings, engine, steward, _csv(frame), group_column="patient")
+    assert declared["warnings"] == []

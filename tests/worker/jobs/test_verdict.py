@@ -174,7 +174,7 @@ def test_a_holdout_out_of_line_with_the_folds_fails_the_verdict(ctx: WorkerConte
     verdict = submissions.get(ctx.engine, judged.sub_id)["verdict"]  # type: ignore[index]
     std = float(np.std(judged.candidate, ddof=1))
     gap = abs(judged.holdout["rmse"] - float(np.mean(judged.candidate)))
-    assert gap > 3.0 * std * math.sqrt(80 / 42 + 1 / 5)
+    assert gap > float(stats.t.isf(stats.norm.sf(3.0), 4)) * std * math.sqrt(1 / 5 + 80 / 320 + 80 / 42)
     assert rule(verdict, "holdout_gap")["outcome"] == "fail" and rule(verdict, "baseline")["outcome"] == "pass"
     assert verdict["reasons"][0] == rule(verdict, "holdout_gap")["sentence"]  # the failing rule is said first
 
@@ -187,9 +187,11 @@ def test_under_exact_release_the_holdout_rule_reads_the_released_figure(
     give_verdict(ctx, redis, judged.sub_id)
     verdict = submissions.get(ctx.engine, judged.sub_id)["verdict"]  # type: ignore[index]
     gap = rule(verdict, "holdout_gap")["figures"]
-    # The allowance scales the fold std to the spread of (holdout - CV mean): sqrt(n_test/n_holdout + 1/J).
+    # The allowance is the t prediction interval at the nominal rate 2 * (1 - Phi(3)), df J - 1 = 4, on the
+    # spread of (holdout - CV mean): sqrt(1/J + n_test/n_train + n_test/n_holdout) fold std (Nadeau &
+    # Bengio 2003 for the middle term; *computed* with scipy).
     std = float(np.std(judged.candidate, ddof=1))
-    allowed = 3.0 * std * math.sqrt(80 / 42 + 1 / 5)
+    allowed = float(stats.t.isf(stats.norm.sf(3.0), 4)) * std * math.sqrt(1 / 5 + 80 / 320 + 80 / 42)
     assert gap["allowed_gap"] == pytest.approx(allowed) and gap["fold_std"] == pytest.approx(std)
     released = float(f"{judged.holdout['rmse']:.3g}")  # what the submitter was shown
     inside = abs(released - float(np.mean(judged.candidate))) <= allowed
@@ -372,3 +374,26 @@ def test_a_canceled_submission_is_not_judged(ctx: WorkerContext, redis: Redis, d
     assert give_verdict(ctx, redis, judged.sub_id) == {"submission_id": judged.sub_id, "skipped": "canceled"}
     assert submissions.get(ctx.engine, judged.sub_id)["verdict"] is None  # type: ignore[index]
     assert holdout_releases.get(ctx.engine, judged.sub_id) is None
+
+
+def test_one_extreme_holdout_row_is_set_aside_by_the_consistency_rule(ctx: WorkerContext, redis: Redis) -> None:
+    # Shuffled diabetes (bundled with scikit-learn) with one sealed target moved far out (25 times the largest):
+    # the holdout rmse is far outside the folds' interval, but not without that row's squared error, which
+    # the verdict job reads from the kept per-row losses (trimmed_rows(42) = 1).
+    frame = shuffled_diabetes()
+    frame.loc[420, "target"] = 25 * frame["target"].max()
+    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression", folds=5, seed=0)
+    with_losses = recorded(ctx, dataset, Ridge(alpha=0.1), frame=frame)
+    model = Ridge(alpha=0.1).fit(frame.iloc[:400].drop(columns="target"), frame["target"].iloc[:400])
+    hold = frame.iloc[400:]
+    squared = (hold["target"].to_numpy() - model.predict(hold.drop(columns="target"))) ** 2
+    assert math.sqrt(squared.mean()) == pytest.approx(with_losses.holdout["rmse"])  # the per-row losses of rmse
+    losses.save_per_example(ctx.settings, dataset["id"], with_losses.sub_id, {"rmse": squared})
+    give_verdict(ctx, redis, with_losses.sub_id)
+    gap = rule(submissions.get(ctx.engine, with_losses.sub_id)["verdict"], "holdout_gap")  # type: ignore[index]
+    assert gap["outcome"] == "pass" and gap["figures"]["rows_set_aside"] == 1
+    assert "once its 1 largest per-row loss(es) are set aside" in gap["sentence"]
+    # The same submission without kept losses: nothing to set aside, the rule fails.
+    bare = recorded(ctx, dataset, Ridge(alpha=0.05), frame=frame)
+    give_verdict(ctx, redis, bare.sub_id)
+    assert rule(submissions.get(ctx.engine, bare.sub_id)["verdict"], "holdout_gap")["outcome"] == "fail"  # type: ignore[index]

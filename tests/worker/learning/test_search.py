@@ -199,3 +199,120 @@ def test_the_search_scorer_counts_every_class_of_the_dataset() -> None:
     assert MetricScorer("roc_auc", classes)(model, X, y) == pytest.approx(expected, rel=1e-12)
     assert MetricScorer("log_loss", classes)(model, X, y) == pytest.approx(
         -skm.log_loss(y, padded(model.predict_proba(X), model.classes_, classes), labels=classes), rel=1e-12)
+
+
+def _replicated_diabetes(copies: int = 3, rows: int = 150) -> pd.DataFrame:
+    """Diabetes (bundled with scikit-learn), each of its first rows measured ``copies`` times (tiny noise):
+    a group per original row, as repeated visits of one patient would be."""
+    base = load_diabetes(as_frame=True).frame.iloc[:rows].reset_index(drop=True)
+    rng = np.random.default_rng(0)
+    parts = []
+    for _ in range(copies):
+        part = base.copy()
+        features = [col for col in base.columns if col != "target"]
+        part[features] = part[features] + rng.normal(scale=1e-3, size=(rows, len(features)))
+        part["patient"] = np.arange(rows)
+        parts.append(part)
+    mixed = pd.concat(parts, ignore_index=True)
+    return mixed.sample(frac=1.0, random_state=1).reset_index(drop=True)
+
+
+def test_inner_folds_of_a_group_plan_are_scikit_learns_group_k_fold(ctx: WorkerContext) -> None:
+    frame = _replicated_diabetes()
+    dev, hold = frame.iloc[:400], frame.iloc[400:]
+    dataset = add_dataset(ctx, dev, hold, "target", "regression", scheme="group", folds=4, seed=3,
+                          group_column="patient")
+    features = [c for c in dev.columns if c not in ("target", "patient")]
+    neighbours = [1, 3, 10, 30]
+    config = searched(config_document(dataset, "KNeighborsRegressor", features=features, metrics=["rmse"]),
+                      grid={"n_neighbors": neighbours})
+    sub_id = add_submission(ctx, dataset, config)
+    rows = run_all_folds(sub_id, 4)
+
+    # Reference: GridSearchCV(cv=GroupKFold(3)) fitted with the training rows' groups, on the vault's outer
+    # group folds; the same search with plain KFold inner folds picks the neighbour that is a copy of the row.
+    from sklearn.model_selection import GroupKFold
+    from sklearn.neighbors import KNeighborsRegressor
+
+    plan = FoldPlan("group", 4, 3)
+    outer = fold_splits(plan, split_keys_from_frame(dev, plan, "target", "patient", None))
+    X, y, groups = dev[features].to_numpy(), dev["target"].to_numpy(), dev["patient"].to_numpy()
+    leaky_choices = []
+    for split, row in zip(outer, rows, strict=True):
+        assert row["status"] == "ok", row["error"]
+        assert not set(groups[split.train]) & set(groups[split.test])
+        grid = {"model__n_neighbors": neighbours}
+        search = GridSearchCV(Pipeline([("model", KNeighborsRegressor())]), grid,
+                              scoring="neg_root_mean_squared_error", cv=GroupKFold(3))
+        search.fit(X[split.train], y[split.train], groups=groups[split.train])
+        assert row["search"]["best_params"] == {"n_neighbors": search.best_params_["model__n_neighbors"]}
+        assert row["search"]["best_inner_score"] == pytest.approx(-search.best_score_, rel=1e-10)
+        rmse = skm.root_mean_squared_error(y[split.test], search.predict(X[split.test]))
+        assert row["scores"]["rmse"] == pytest.approx(rmse, rel=1e-10)
+        leaky = GridSearchCV(Pipeline([("model", KNeighborsRegressor())]), grid,
+                             scoring="neg_root_mean_squared_error", cv=KFold(3, shuffle=True, random_state=3))
+        leaky_choices.append(leaky.fit(X[split.train], y[split.train]).best_params_["model__n_neighbors"])
+    assert leaky_choices == [1] * 4  # rows of one patient on both sides: the copy is the best neighbour
+    assert all(row["search"]["best_params"]["n_neighbors"] > 1 for row in rows)
+
+
+def test_inner_folds_of_a_time_plan_chain_forward_and_keep_ties_together() -> None:
+    from sklearn.model_selection import TimeSeriesSplit
+
+    from service.vault.folds import SplitKeys
+    from worker.learning.search import PlannedInnerFolds, for_rows
+
+    # Distinct times in shuffled file order: exactly TimeSeriesSplit's splits on the time-sorted rows.
+    rng = np.random.default_rng(4)
+    times = rng.permutation(60).astype(np.int64)
+    folds = PlannedInnerFolds("time", 3, SplitKeys(n_rows=60, time=times))
+    ours = [(np.sort(times[tr]), np.sort(times[te])) for tr, te in folds.split(np.zeros((60, 1)))]
+    ordered = np.sort(times)
+    reference = [(ordered[tr], ordered[te]) for tr, te in TimeSeriesSplit(3).split(ordered)]
+    assert len(ours) == 3
+    for (a, b), (c, d) in zip(ours, reference, strict=True):
+        assert np.array_equal(a, c) and np.array_equal(b, d)
+
+    # Tied times (three rows per day), a subset of the rows as a learning-curve point would use them: every
+    # inner split trains on earlier days only and no day is on both sides.
+    days = np.repeat(np.arange(40), 3)[rng.permutation(120)]
+    subset = np.sort(rng.choice(120, size=90, replace=False))
+    tied = for_rows(GridSearchCV(Ridge(), {"alpha": [1.0]},
+                                 cv=PlannedInnerFolds("time", 4, SplitKeys(n_rows=120, time=days))), subset)
+    splits = list(tied.cv.split(np.zeros((90, 1))))
+    assert len(splits) == 4
+    for train, test in splits:
+        assert days[subset][train].max() < days[subset][test].min()
+    with pytest.raises(ValueError, match="the inner folds were set for 90 rows, the search got 80"):
+        list(tied.cv.split(np.zeros((80, 1))))
+
+
+def test_a_search_on_a_time_plan_tunes_on_the_past_like_time_series_split(ctx: WorkerContext) -> None:
+    from sklearn.model_selection import TimeSeriesSplit
+
+    # Diabetes (bundled with scikit-learn) with a distinct day per row, the file in another order.
+    frame = load_diabetes(as_frame=True).frame
+    frame["day"] = np.random.default_rng(2).permutation(len(frame))
+    dev, hold = frame.iloc[:400], frame.iloc[400:]
+    dataset = add_dataset(ctx, dev, hold, "target", "regression", scheme="time", folds=3, seed=0,
+                          time_column="day")
+    features = [c for c in dev.columns if c not in ("target", "day")]
+    config = searched(config_document(dataset, "Ridge", features=features, metrics=["rmse"]),
+                      grid={"alpha": ALPHAS})
+    sub_id = add_submission(ctx, dataset, config)
+    rows = run_all_folds(sub_id, 3)
+
+    # Reference: GridSearchCV(cv=TimeSeriesSplit(3)) on each outer fold's training rows sorted by day.
+    plan = FoldPlan("time", 3, 0)
+    outer = fold_splits(plan, split_keys_from_frame(dev, plan, "target", None, "day"))
+    X, y, day = dev[features].to_numpy(), dev["target"].to_numpy(), dev["day"].to_numpy()
+    for split, row in zip(outer, rows, strict=True):
+        assert row["status"] == "ok", row["error"]
+        train = split.train[np.argsort(day[split.train], kind="stable")]
+        search = GridSearchCV(Pipeline([("model", Ridge(random_state=0))]), {"model__alpha": ALPHAS},
+                              scoring="neg_root_mean_squared_error", cv=TimeSeriesSplit(3))
+        search.fit(X[train], y[train])
+        assert row["search"]["best_params"] == {"alpha": search.best_params_["model__alpha"]}
+        assert row["search"]["best_inner_score"] == pytest.approx(-search.best_score_, rel=1e-8)
+        rmse = skm.root_mean_squared_error(y[split.test], search.predict(X[split.test]))
+        assert row["scores"]["rmse"] == pytest.approx(rmse, rel=1e-8)
