@@ -169,7 +169,7 @@ def test_a_figure_that_is_not_finite_is_stored_as_null_and_the_board_still_ranks
     # At a level of 1e-300 the one-sided bound of the paired test is -infinity (scipy's t.ppf); JSON has no
     # infinity, and SQLite's JSON functions refuse a document that holds one.
     sub = _sub(api, dataset)
-    _policy(api, dataset, {"baseline_alpha": 1e-300, "holdout_gap": {"k_std": 1e308, "floor": 1e308}})
+    _policy(api, dataset, {"baseline_alpha": 1e-300, "holdout_gap": {"floor": 1e308}})
     doc = _rejudge(api, sub)
     baseline = next(r for r in doc["verdict"]["rules"] if r["rule"] == "baseline")
     assert baseline["figures"]["lower_bound"] is None

@@ -587,5 +587,6 @@ def test_registration_warns_of_a_group_column_it_was_not_told_of(
     assert [(w["kind"], w["column"]) for w in record["warnings"]] == [("group", "patient")]
     assert record["warnings"][0]["random_folds"] > record["warnings"][0]["group_folds"] + 0.6
     assert datasets.get(engine, record["id"])["warnings"] == record["warnings"]  # type: ignore[index]
-    declared = _register(settings, engine, steward, _csv(frame), group_column="patient")
+    declared = _register(settings, engine, steward, _csv(frame), group_column="patient",
+                         name="routes by patient")  # names are unique within a team
     assert declared["warnings"] == []
