@@ -41,6 +41,7 @@ class ModelSpec:
     params: Mapping[str, Any] = field(default_factory=dict)
     features: tuple[str, ...] | None = None
     preprocess: tuple[PreprocessStep, ...] = ()
+    categorical_features: tuple[str, ...] = ()  # taken as categories by the estimator itself
 
 
 @dataclass(frozen=True)
@@ -76,6 +77,8 @@ class CatalogView(Protocol):
 
     def transformer_names(self) -> list[str]: ...
 
+    def native_categorical_names(self) -> list[str]: ...
+
 
 class _Problems:
     """Collects field problems so one response names all of them."""
@@ -109,7 +112,8 @@ def resolve(request: SubmissionRequest, dataset: Mapping[str, Any], catalog: Cat
 
     features = _resolve_features(model, dataset, kinds, reserved, problems)
     steps = _resolve_steps(model, features, problems, catalog)
-    _check_categoricals(features, kinds, steps, problems)
+    native = _resolve_native(model, features, kinds, steps, problems, catalog)
+    _check_categoricals(features, kinds, steps, native, problems)
     metrics = _resolve_metrics(request.metrics, task, dataset, problems)
     plan = _resolve_plan(request.validation, dataset["fold_plan"], problems)
     if request.validation.learning_curve is not None:
@@ -118,7 +122,7 @@ def resolve(request: SubmissionRequest, dataset: Mapping[str, Any], catalog: Cat
     problems.raise_if_any()
     return ResolvedConfig(
         model=ResolvedModel(estimator=model.estimator, params=dict(model.params), features=tuple(features),
-                            preprocess=steps),
+                            preprocess=steps, categorical_features=native),
         validation=plan,
         metrics=tuple(metrics),
         search=search,
@@ -192,14 +196,44 @@ def _resolve_steps(
     return tuple(steps)
 
 
+def _resolve_native(
+    model: ModelSpec, features: list[str], kinds: Mapping[str, str], steps: tuple[PreprocessStep, ...],
+    problems: _Problems, catalog: CatalogView,
+) -> tuple[str, ...]:
+    """Check the declared native categorical columns: a supporting estimator, categorical features, no step."""
+    if not model.categorical_features:
+        return ()
+    supporting = catalog.native_categorical_names()
+    if model.estimator not in supporting:
+        problems.add("/model/categorical_features", f"estimator {model.estimator!r} has no native categorical "
+                     f"support; use one of {', '.join(supporting)}, or encode the columns in a preprocess step")
+        return ()
+    stepped = {c for s in steps for c in s.columns}
+    for i, name in enumerate(model.categorical_features):
+        pointer = f"/model/categorical_features/{i}"
+        if name not in features:
+            problems.add(pointer, f"column {name!r} is not among the features ({', '.join(features)})")
+        elif kinds.get(name) != "categorical":
+            problems.add(pointer, f"column {name!r} is {kinds.get(name)}; only categorical columns are taken as "
+                         "native categories")
+        elif name in stepped:
+            problems.add(pointer, f"column {name!r} is also in a preprocess step; a native categorical column is "
+                         "handed to the estimator as it is")
+        elif name in model.categorical_features[:i]:
+            problems.add(pointer, f"column {name!r} is listed twice")
+    return tuple(dict.fromkeys(model.categorical_features))
+
+
 def _check_categoricals(
-    features: list[str], kinds: Mapping[str, str], steps: tuple[PreprocessStep, ...], problems: _Problems
+    features: list[str], kinds: Mapping[str, str], steps: tuple[PreprocessStep, ...], native: tuple[str, ...],
+    problems: _Problems,
 ) -> None:
-    encoded = {c for s in steps if s.transformer in ENCODERS for c in s.columns}
+    encoded = {c for s in steps if s.transformer in ENCODERS for c in s.columns} | set(native)
     for i, name in enumerate(features):
         if kinds.get(name) == "categorical" and name not in encoded:
             problems.add(f"/model/features/{i}", f"feature {name!r} is categorical and needs an encoder: add a "
-                         f"preprocess step with OneHotEncoder or OrdinalEncoder for it")
+                         f"preprocess step with {' or '.join(sorted(ENCODERS))} for it, or, with an estimator "
+                         "that handles categories itself, list it in model.categorical_features")
 
 
 def _resolve_metrics(

@@ -18,6 +18,7 @@ from sklearn.base import BaseEstimator
 from sklearn.utils._param_validation import InvalidParameterError
 
 from service.catalog import CatalogEntry, load_catalog
+from service.catalog.constraints import problem as constraint_problem
 from service.errors import FieldProblem
 from service.records import datasets
 from service.submission.resolved import ResolvedConfig, SearchSpec
@@ -59,6 +60,9 @@ def checked_instance(
     valid: dict[str, Any] = {}
     for name, value in params.items():
         pointer = f"{base}/{name}"
+        if name in entry.withheld:
+            problems.append(FieldProblem(pointer, f"{name} cannot be set on {entry.name}: {entry.withheld[name]}"))
+            continue
         if name not in entry.params:
             problems.append(FieldProblem(pointer, f"{entry.name} has no parameter {name!r}; accepted: "
                                          f"{', '.join(entry.param_names)}"))
@@ -67,11 +71,9 @@ def checked_instance(
             problems.append(FieldProblem(pointer, f"{name} is fixed to {entry.forced[name]!r} by the service "
                                          f"(one core per fold job; scale out with more workers), got {value!r}"))
             continue
-        probe = make_instance(entry, {name: value})
-        try:
-            probe._validate_params()
-        except InvalidParameterError as exc:
-            problems.append(FieldProblem(pointer, str(exc)))
+        invalid = parameter_problem(entry, name, value)
+        if invalid is not None:
+            problems.append(FieldProblem(pointer, invalid))
             continue
         over = cap_problem(entry, name, value)
         if over is not None:
@@ -79,8 +81,25 @@ def checked_instance(
             continue
         valid[name] = value
     instance = make_instance(entry, valid)
-    instance._validate_params()  # each alone was valid; defaults and forced values are too
+    if not entry.constraints:
+        instance._validate_params()  # each alone was valid; defaults and forced values are too
     return instance
+
+
+def parameter_problem(entry: CatalogEntry, name: str, value: Any) -> str | None:
+    """Return why ``value`` is not valid for parameter ``name``, in scikit-learn's words, or None.
+
+    scikit-learn's classes validate themselves (``_validate_params``); LightGBM's and XGBoost's do
+    not, and are checked against the constraints their catalog entry states.
+    """
+    if entry.constraints:
+        return constraint_problem(entry.name, name, entry.constraints[name], value)
+    probe = make_instance(entry, {name: value})
+    try:
+        probe._validate_params()
+    except InvalidParameterError as exc:
+        return str(exc)
+    return None
 
 
 def search_problems(
@@ -134,8 +153,11 @@ def cap_problem(entry: CatalogEntry, name: str, value: Any) -> str | None:
                     f"{sum(sizes)} in {value!r}")
         return None
     largest = max(value) if isinstance(value, list | tuple) and value else value
-    if isinstance(largest, numbers.Real) and float(largest) > cap["max"]:
+    if isinstance(largest, numbers.Real) and "max" in cap and float(largest) > cap["max"]:
         return f"{name} must be at most {cap['max']} (a service cap), got {value!r}"
+    smallest = min(value) if isinstance(value, list | tuple) and value else value
+    if isinstance(smallest, numbers.Real) and "min" in cap and float(smallest) < cap["min"]:
+        return f"{name} must be at least {cap['min']} (a service cap), got {value!r}"
     return None
 
 

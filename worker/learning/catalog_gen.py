@@ -15,9 +15,14 @@ import numbers
 from pathlib import Path
 from typing import Any
 
+import lightgbm
 import sklearn
+import xgboost
 from sklearn.base import BaseEstimator, is_classifier, is_regressor
 from sklearn.utils._param_validation import Hidden, Options, StrOptions, make_constraint
+
+from service.catalog.constraints import describe as describe_constraint
+from worker.learning import boosting_params as bp
 
 CATALOG_PATH = Path(__file__).resolve().parents[2] / "service" / "catalog" / "estimators.json"
 
@@ -33,6 +38,18 @@ TRANSFORMERS: tuple[str, ...] = (
     "StandardScaler", "MinMaxScaler", "RobustScaler", "OneHotEncoder", "OrdinalEncoder", "SimpleImputer",
     "PolynomialFeatures",
 )
+# The gradient-boosting libraries' scikit-learn classes: name -> (library, module the service imports, task).
+# XGBClassifier is the service's subclass that fits on the dataset's own labels (worker.learning.boosting).
+BOOSTING: dict[str, tuple[str, str, str]] = {
+    "LGBMRegressor": ("lightgbm", "lightgbm", "regression"),
+    "LGBMClassifier": ("lightgbm", "lightgbm", "classification"),
+    "XGBRegressor": ("xgboost", "xgboost", "regression"),
+    "XGBClassifier": ("xgboost", "worker.learning.boosting", "classification"),
+}
+# Estimators that take categorical columns as they are, declared in model.categorical_features.
+NATIVE_CATEGORICAL: frozenset[str] = frozenset({
+    "HistGradientBoostingRegressor", "HistGradientBoostingClassifier", *BOOSTING,
+})
 _PUBLIC_MODULES: tuple[str, ...] = (
     "sklearn.linear_model", "sklearn.neighbors", "sklearn.svm", "sklearn.tree", "sklearn.ensemble",
     "sklearn.neural_network", "sklearn.dummy", "sklearn.preprocessing", "sklearn.impute",
@@ -69,6 +86,16 @@ CAPS_NOTE = {
               "stay free of fitting chatter); a different value is rejected",
     "service_defaults": "defaults the service uses instead of scikit-learn's (random_state=0 so every "
                         "fold and the holdout refit are reproducible); a submission may override them",
+    "num_leaves": "LightGBM: at most 1024 leaves per tree",
+    "max_leaves": "XGBoost: at most 1024 leaves per tree (0, no limit, stays allowed: max_depth bounds it)",
+    "max_bin": "XGBoost: at most 1024 histogram bins per feature",
+    "boosting_depth": "LightGBM max_depth at most 64 (-1, no limit, stays allowed: num_leaves bounds the tree); "
+                      "XGBoost max_depth between 1 and 16 (0, no limit, is refused)",
+    "boosting_threads": "LightGBM and XGBoost fit on one thread (n_jobs=1) and keep quiet (LightGBM verbose=-1, "
+                        "XGBoost verbosity=0); XGBoost runs on the CPU (device='cpu')",
+    "withheld": "parameters a library has that a submission may not set; each entry says why",
+    "constraints": "LightGBM and XGBoost do not validate their parameters as scikit-learn does: their entries "
+                   "carry constraints written from the libraries' documentation, checked before any fit",
 }
 
 
@@ -78,7 +105,9 @@ def build_catalog() -> dict[str, Any]:
         "generated_by": "python -m worker.learning.catalog_gen",
         "sklearn_version": sklearn.__version__,
         "caps_note": CAPS_NOTE,
-        "estimators": [_entry(name, "estimator") for name in sorted(ESTIMATORS)],
+        "library_versions": {"lightgbm": lightgbm.__version__, "xgboost": xgboost.__version__},
+        "estimators": sorted([*(_entry(name, "estimator") for name in ESTIMATORS),
+                              *(_boosting_entry(name) for name in BOOSTING)], key=lambda e: str(e["name"])),
         "transformers": [_entry(name, "transformer") for name in sorted(TRANSFORMERS)],
     }
 
@@ -104,13 +133,17 @@ def catalog_drift(path: Path = CATALOG_PATH) -> list[str]:
         return [f"{path} is missing; run python -m worker.learning.catalog_gen"]
     committed = json.loads(path.read_text(encoding="utf-8"))
     fresh = json.loads(render(build_catalog()))
-    committed.pop("sklearn_version", None)
-    fresh.pop("sklearn_version", None)
+    for informational in ("sklearn_version", "library_versions"):
+        committed.pop(informational, None)
+        fresh.pop(informational, None)
     return _differences(committed, fresh, "")
 
 
 def estimator_class(name: str) -> type[BaseEstimator]:
     """Import an allow-listed class by name from its public scikit-learn module."""
+    if name in BOOSTING:
+        cls: type[BaseEstimator] = getattr(importlib.import_module(BOOSTING[name][1]), name)
+        return cls
     if name not in ESTIMATORS and name not in TRANSFORMERS:
         raise KeyError(f"{name!r} is not in the catalog allow-list")
     return _find_class(name)[1]
@@ -156,7 +189,48 @@ def _entry(name: str, kind: str) -> dict[str, Any]:
         assert is_classifier(instance) or is_regressor(instance), name
         entry["linear"] = name in _LINEAR
         entry["has_predict_proba_by_default"] = hasattr(instance, "predict_proba")
+        entry["native_categorical"] = name in NATIVE_CATEGORICAL
+    if name.startswith("HistGradientBoosting"):
+        entry["withheld"] = dict(bp.HIST_GRADIENT_BOOSTING_WITHHELD)
     return entry
+
+
+def _boosting_entry(name: str) -> dict[str, Any]:
+    """Describe a LightGBM or XGBoost class: defaults from its signature, constraints from its documentation."""
+    library, module_name, task = BOOSTING[name]
+    cls = estimator_class(name)
+    instance = cls()
+    defaults = instance.get_params(deep=False)
+    if library == "lightgbm":
+        defaults.update(bp.LIGHTGBM_EXTRA_DEFAULTS)
+    constraints = bp.constraints_for(library, task)
+    withheld = bp.XGBOOST_WITHHELD if library == "xgboost" else {}
+    unknown = set(defaults) - set(constraints) - set(withheld)
+    assert not unknown, f"{name}: describe {sorted(unknown)} in worker/learning/boosting_params.py"
+    params: dict[str, Any] = {}
+    for param in sorted(set(defaults) - set(withheld)):
+        described: dict[str, Any] = {"default": _json_value(defaults[param]),
+                                     "type": describe_constraint(constraints[param])}
+        if defaults[param] is None and library == "xgboost" and param in bp.XGBOOST_LIBRARY_DEFAULTS:
+            described["library_default"] = bp.XGBOOST_LIBRARY_DEFAULTS[param]
+        params[param] = described
+    assert is_classifier(instance) == (task == "classification"), name
+    return {
+        "name": name,
+        "kind": "estimator",
+        "module": module_name,
+        "library": library,
+        "params": params,
+        "constraints": {param: constraints[param] for param in sorted(params)},
+        "withheld": dict(sorted(withheld.items())),
+        "forced": dict(bp.BOOSTING_FORCED[library]),
+        "service_defaults": {"random_state": 0},
+        "caps": bp.BOOSTING_CAPS[library],
+        "task": task,
+        "linear": False,
+        "has_predict_proba_by_default": task == "classification",
+        "native_categorical": True,
+    }
 
 
 def _deprecated(cls: type[BaseEstimator], param: str) -> bool:

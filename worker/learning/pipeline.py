@@ -22,6 +22,8 @@ from sklearn.pipeline import Pipeline
 
 from service.catalog import Catalog, CatalogEntry, load_catalog
 from service.submission.resolved import PreprocessStep, ResolvedModel
+from worker.learning.categories import STEP_NAME as NATIVE_STEP
+from worker.learning.categories import CategoryCodes, native_categorical_params
 
 PREPROCESS_STEP = "preprocess"
 MODEL_STEP = "model"
@@ -83,23 +85,30 @@ def build_pipeline(
     catalog = catalog or load_catalog()
     features = list(model.features)
     estimator = make_instance(entry_for(catalog, model.estimator, "estimator"), model.params)
+    native = list(model.categorical_features)
+    if native:
+        estimator.set_params(**native_categorical_params(model.estimator, native))
     steps = model.preprocess
     by_name = uses_frame(features, column_kinds)
     if not steps and not by_name:
         return Pipeline([(MODEL_STEP, estimator)])
     # A frame keeps the ColumnTransformer even without steps: it hands the estimator the numpy
     # matrix it always saw, where a frame would change what some estimators do with its dtypes.
-    return Pipeline([(PREPROCESS_STEP, build_preprocessing(catalog, steps, features, by_name)),
+    return Pipeline([(PREPROCESS_STEP, build_preprocessing(catalog, steps, features, by_name, native)),
                      (MODEL_STEP, estimator)])
 
 
 def build_preprocessing(
-    catalog: Catalog, steps: Sequence[PreprocessStep], features: Sequence[str], by_name: bool
+    catalog: Catalog, steps: Sequence[PreprocessStep], features: Sequence[str], by_name: bool,
+    native: Sequence[str] = (),
 ) -> ColumnTransformer:
     """Return the ColumnTransformer for the preprocess steps; unnamed columns pass through.
 
     The steps are the resolved ones: every column is a feature and steps share a column only when
     they name exactly the same columns (``service.submission.config.resolve`` checks both).
+    Declared native categorical columns (``native``) come first, as pandas categoricals
+    (``worker.learning.categories``), and the output is then a pandas frame (dense: a frame holds no
+    sparse block), so the estimator sees their dtype and names.
     """
     chains: dict[tuple[str, ...], list[int]] = {}
     for i, step in enumerate(steps):
@@ -119,7 +128,12 @@ def build_preprocessing(
         else:
             name = "chain" + "_".join(str(i) for i in indices)
             transformers.append((name, Pipeline(parts), selector))
-    return ColumnTransformer(transformers, remainder="passthrough", verbose_feature_names_out=False)
+    if not native:
+        return ColumnTransformer(transformers, remainder="passthrough", verbose_feature_names_out=False)
+    selector = list(native) if by_name else [position[c] for c in native]
+    transformers.insert(0, (NATIVE_STEP, CategoryCodes(), selector))
+    return ColumnTransformer(transformers, remainder="passthrough", verbose_feature_names_out=False,
+                             sparse_threshold=0.0).set_output(transform="pandas")
 
 
 def output_feature_names(pipeline: Pipeline, features: Sequence[str]) -> list[str]:

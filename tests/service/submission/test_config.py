@@ -125,3 +125,35 @@ def test_search_caps_count_the_learning_curve_sizes() -> None:
         resolve(_request(model, search=grid, validation=ValidationSpec(learning_curve=(0.25, 0.5, 1.0))),
                 DATASET, load_catalog())
     assert "x 3 learning-curve sizes = 3000 fits" in _pointers(exc)["/search"]
+
+
+def test_native_categorical_columns_need_no_encoder() -> None:
+    # HistGradientBoosting, LightGBM and XGBoost take a declared categorical column as it is.
+    for estimator in ("HistGradientBoostingRegressor", "LGBMRegressor", "XGBRegressor"):
+        doc = resolve(_request(ModelSpec(estimator, categorical_features=("depot",))), DATASET,
+                      load_catalog()).to_document()
+        assert doc["model"]["categorical_features"] == ["depot"]
+    # Without a declaration the document (and so the fingerprint) is what it was before.
+    plain = resolve(_request(ModelSpec("Ridge", preprocess=(PreprocessStep("OneHotEncoder", ("depot",)),))),
+                    DATASET, load_catalog()).to_document()
+    assert "categorical_features" not in plain["model"]
+
+
+def test_native_categorical_declarations_are_checked() -> None:
+    with pytest.raises(ConfigRejected) as exc:
+        resolve(_request(ModelSpec("Ridge", categorical_features=("depot",))), DATASET, load_catalog())
+    found = _pointers(exc)
+    assert "no native categorical support" in found["/model/categorical_features"]
+    assert "LGBMRegressor" in found["/model/categorical_features"]
+    with pytest.raises(ConfigRejected) as exc:
+        resolve(_request(ModelSpec("LGBMRegressor", categorical_features=("depot", "stops", "nowhere"),
+                                   preprocess=(PreprocessStep("StandardScaler", ("stops",)),))),
+                DATASET, load_catalog())
+    found = _pointers(exc)
+    assert "numeric" in found["/model/categorical_features/1"]
+    assert "not among the features" in found["/model/categorical_features/2"]
+    with pytest.raises(ConfigRejected) as exc:
+        resolve(_request(ModelSpec("LGBMRegressor", categorical_features=("depot",),
+                                   preprocess=(PreprocessStep("OrdinalEncoder", ("depot",)),))),
+                DATASET, load_catalog())
+    assert "also in a preprocess step" in _pointers(exc)["/model/categorical_features/0"]

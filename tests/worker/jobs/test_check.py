@@ -174,3 +174,36 @@ def test_json_lists_for_tuple_parameters_pass_validation(diabetes: dict[str, Any
     steps = [{"transformer": "MinMaxScaler", "columns": ["age"], "params": {"feature_range": "wide"}}]
     found = pointers(check(diabetes, "Ridge", preprocess=steps))
     assert "'feature_range' parameter of MinMaxScaler" in found["/model/preprocess/0/params/feature_range"]
+
+
+def test_boosting_parameters_are_checked_against_the_catalog(diabetes: dict[str, Any]) -> None:
+    # LightGBM's Parameters page: "1 < num_leaves <= 131072"; the service caps trees at 500 and leaves at 1024.
+    found = pointers(check(diabetes, "LGBMRegressor", params={
+        "num_leaves": 1, "n_estimators": 501, "objective": "binary", "n_jobs": 4, "learning_rate": 0.05}))
+    assert set(found) == {"/model/params/num_leaves", "/model/params/n_estimators", "/model/params/objective",
+                          "/model/params/n_jobs"}
+    assert found["/model/params/num_leaves"] == ("The 'num_leaves' parameter of LGBMRegressor must be an int in "
+                                                 "the range (1, 131072]. Got 1 instead.")
+    assert "at most 500 (a service cap)" in found["/model/params/n_estimators"]
+    assert "leaves" not in found["/model/params/n_estimators"]
+    assert "num_leaves must be at most 1024" in pointers(check(diabetes, "LGBMRegressor",
+                                                               params={"num_leaves": 2048}))["/model/params/num_leaves"]
+    assert check(diabetes, "LGBMRegressor", params={"num_leaves": 63, "max_depth": -1}) == {"ok": True,
+                                                                                           "has_proba": False}
+
+
+def test_xgboost_withheld_and_capped_parameters(diabetes: dict[str, Any], cancer: dict[str, Any]) -> None:
+    found = pointers(check(diabetes, "XGBRegressor", params={
+        "callbacks": None, "max_depth": 0, "tree_method": "gpu_hist", "enable_categorical": True}))
+    assert "callbacks are code" in found["/model/params/callbacks"]
+    assert "max_depth must be at least 1 (a service cap)" in found["/model/params/max_depth"]
+    assert "'tree_method' parameter of XGBRegressor must be one of 'hist', 'approx', 'exact' or None" in \
+        found["/model/params/tree_method"]
+    assert "model.categorical_features" in found["/model/params/enable_categorical"]
+    assert check(cancer, "XGBClassifier", params={"max_depth": 4}, metrics=["accuracy"]) == {"ok": True,
+                                                                                          "has_proba": True}
+    # A searched value is checked the same way, at its position.
+    config = config_document(diabetes, "XGBRegressor")
+    config["search"] = {"grid": {"max_depth": [3, 40]}, "distributions": None, "n_iter": None, "inner_folds": 3}
+    found = pointers(jobs.check_config(config, diabetes["id"]))
+    assert list(found) == ["/search/grid/max_depth/1"]

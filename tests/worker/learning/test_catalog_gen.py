@@ -62,7 +62,8 @@ def test_allow_list_is_the_issues_list() -> None:
     assert set(ESTIMATORS) == ISSUE_ESTIMATORS
     assert set(TRANSFORMERS) == ISSUE_TRANSFORMERS
     catalog = load_catalog()
-    assert {e.name for e in catalog.entries.values() if e.kind == "estimator"} == ISSUE_ESTIMATORS
+    boosting = {"LGBMRegressor", "LGBMClassifier", "XGBRegressor", "XGBClassifier"}
+    assert {e.name for e in catalog.entries.values() if e.kind == "estimator"} == ISSUE_ESTIMATORS | boosting
     assert set(catalog.transformer_names()) == ISSUE_TRANSFORMERS
 
 
