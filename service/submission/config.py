@@ -22,7 +22,7 @@ from service.submission.resolved import PreprocessStep, ResolvedConfig, Resolved
 MAX_FOLDS, MAX_REPEATS, MAX_FOLD_JOBS = 20, 10, 100
 MAX_CANDIDATES, MAX_SEARCH_FITS, MAX_INNER_FOLDS = 50, 2000, 10
 LEARNING_CURVE_DEFAULT = (0.1, 0.325, 0.55, 0.775, 1.0)  # scikit-learn learning_curve's default sizes
-ENCODERS = frozenset({"OneHotEncoder", "OrdinalEncoder"})
+ENCODERS = frozenset({"OneHotEncoder", "OrdinalEncoder", "TargetEncoder"})
 
 
 @dataclass(frozen=True)

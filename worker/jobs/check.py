@@ -22,8 +22,11 @@ from service.catalog.constraints import problem as constraint_problem
 from service.errors import FieldProblem
 from service.records import datasets
 from service.submission.resolved import ResolvedConfig, SearchSpec
+from service.vault import store
 from worker.jobs.runtime import WorkerContext
+from worker.learning.development import target_values
 from worker.learning.pipeline import entry_for, make_instance
+from worker.learning.target_domain import target_domain
 
 
 def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: str) -> dict[str, Any]:
@@ -50,6 +53,14 @@ def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: 
             problems.append(FieldProblem(f"/model/preprocess/{i}/columns", width))
     if problems:
         return _rejected(problems)
+    domain = target_domain(model.estimator, model.params) if config.task == "regression" else None
+    if domain is not None:
+        frame = store.load_development_frame(ctx.settings, dataset_id, columns=[config.target])
+        outside = domain.problem(target_values(frame[config.target], "regression"))
+        if outside is not None:
+            chosen = next((f"/model/params/{p}" for p in ("objective", "loss", "power") if p in model.params),
+                          "/model/estimator")
+            return _rejected([FieldProblem(chosen, outside)])
     return {"ok": True, "has_proba": hasattr(estimator, "predict_proba")}
 
 

@@ -19,6 +19,7 @@ import lightgbm
 import sklearn
 import xgboost
 from sklearn.base import BaseEstimator, is_classifier, is_regressor
+from sklearn.experimental import enable_iterative_imputer  # noqa: F401  (IterativeImputer is experimental)
 from sklearn.utils._param_validation import Hidden, Options, StrOptions, make_constraint
 
 from service.catalog.constraints import describe as describe_constraint
@@ -32,11 +33,13 @@ ESTIMATORS: tuple[str, ...] = (
     "DecisionTreeClassifier", "RandomForestRegressor", "RandomForestClassifier", "ExtraTreesRegressor",
     "ExtraTreesClassifier", "GradientBoostingRegressor", "GradientBoostingClassifier",
     "HistGradientBoostingRegressor", "HistGradientBoostingClassifier", "MLPRegressor", "MLPClassifier",
-    "DummyRegressor", "DummyClassifier",
+    "DummyRegressor", "DummyClassifier", "PoissonRegressor", "GammaRegressor", "TweedieRegressor",
+    "HuberRegressor", "QuantileRegressor", "GaussianNB",
 )
 TRANSFORMERS: tuple[str, ...] = (
     "StandardScaler", "MinMaxScaler", "RobustScaler", "OneHotEncoder", "OrdinalEncoder", "SimpleImputer",
-    "PolynomialFeatures",
+    "PolynomialFeatures", "KNNImputer", "IterativeImputer", "MissingIndicator", "TargetEncoder",
+    "SplineTransformer", "KBinsDiscretizer", "PCA",
 )
 # The gradient-boosting libraries' scikit-learn classes: name -> (library, module the service imports, task).
 # XGBClassifier is the service's subclass that fits on the dataset's own labels (worker.learning.boosting).
@@ -52,12 +55,23 @@ NATIVE_CATEGORICAL: frozenset[str] = frozenset({
 })
 _PUBLIC_MODULES: tuple[str, ...] = (
     "sklearn.linear_model", "sklearn.neighbors", "sklearn.svm", "sklearn.tree", "sklearn.ensemble",
-    "sklearn.neural_network", "sklearn.dummy", "sklearn.preprocessing", "sklearn.impute",
+    "sklearn.neural_network", "sklearn.dummy", "sklearn.preprocessing", "sklearn.impute", "sklearn.naive_bayes",
+    "sklearn.decomposition",
 )
 # Fitted models that expose ``coef_`` whatever their parameters; their coefficients are recorded per fold.
 _LINEAR: frozenset[str] = frozenset({
     "LinearRegression", "Ridge", "Lasso", "ElasticNet", "SGDRegressor", "LogisticRegression", "SGDClassifier",
+    "PoissonRegressor", "GammaRegressor", "TweedieRegressor", "HuberRegressor", "QuantileRegressor",
 })
+# Caps on what sizes a transformer's memory or time, by class: {class: {param: {"max": n}}}.
+_TRANSFORMER_CAPS: dict[str, dict[str, dict[str, int]]] = {
+    "KNNImputer": {"n_neighbors": {"max": 100}},
+    "IterativeImputer": {"max_iter": {"max": 100}},
+    "SplineTransformer": {"n_knots": {"max": 100}, "degree": {"max": 5}},
+    "KBinsDiscretizer": {"n_bins": {"max": 256}},
+    "PCA": {"n_components": {"max": 1000}, "iterated_power": {"max": 100}},
+    "TargetEncoder": {"cv": {"max": 10}},
+}
 _TREE_DEPTH_CAP = 64
 _ITERATION_CAP = 10_000
 _ENSEMBLE_CAP = 500
@@ -82,6 +96,13 @@ CAPS_NOTE = {
     "output_features": f"PolynomialFeatures may produce at most {_POLYNOMIAL_OUTPUT_CAP} columns, "
                        "counted as comb(columns + degree, degree)",
     "cache_size": "SVM kernel cache at most 1024 MB",
+    "n_neighbors": "KNNImputer: at most 100 neighbours",
+    "n_knots": "SplineTransformer: at most 100 knots and degree at most 5",
+    "n_bins": "KBinsDiscretizer: at most 256 bins per column",
+    "n_components": "PCA: at most 1000 components (a fraction of the variance stays allowed); iterated_power at "
+                    "most 100",
+    "cv": "TargetEncoder: at most 10 internal folds",
+    "imputer_max_iter": "IterativeImputer: at most 100 rounds of imputation",
     "forced": "parameters the service fixes (n_jobs=1: one core per fold job; verbose off: worker logs "
               "stay free of fitting chatter); a different value is rejected",
     "service_defaults": "defaults the service uses instead of scikit-learn's (random_state=0 so every "
@@ -171,6 +192,10 @@ def _entry(name: str, kind: str) -> dict[str, Any]:
     service_defaults: dict[str, Any] = {}
     if "random_state" in defaults and defaults["random_state"] is None:
         service_defaults["random_state"] = 0
+    if name == "TargetEncoder":
+        # Its cross fitting shuffles with an unseeded generator unless given a seed; random_state is
+        # deprecated in favour of a splitter object, which JSON cannot carry, so the seed it is.
+        service_defaults["random_state"] = 0
     entry: dict[str, Any] = {
         "name": name,
         "kind": kind,
@@ -254,6 +279,7 @@ def _caps(name: str, defaults: dict[str, Any]) -> dict[str, dict[str, int]]:
         caps["output_features"] = {"max": _POLYNOMIAL_OUTPUT_CAP}
     if "cache_size" in defaults:
         caps["cache_size"] = {"max": 1024}
+    caps.update(_TRANSFORMER_CAPS.get(name, {}))
     return caps
 
 

@@ -18,6 +18,7 @@ from typing import Any
 from sklearn.base import BaseEstimator, clone
 from sklearn.compose import ColumnTransformer
 from sklearn.dummy import DummyClassifier, DummyRegressor
+from sklearn.experimental import enable_iterative_imputer  # noqa: F401  (IterativeImputer is experimental)
 from sklearn.pipeline import Pipeline
 
 from service.catalog import Catalog, CatalogEntry, load_catalog

@@ -21,9 +21,12 @@ ISSUE_ESTIMATORS = {
     "RandomForestRegressor", "RandomForestClassifier", "ExtraTreesRegressor", "ExtraTreesClassifier",
     "GradientBoostingRegressor", "GradientBoostingClassifier", "HistGradientBoostingRegressor",
     "HistGradientBoostingClassifier", "MLPRegressor", "MLPClassifier", "DummyRegressor", "DummyClassifier",
+    # counts, amounts and quantiles; naive Bayes
+    "PoissonRegressor", "GammaRegressor", "TweedieRegressor", "HuberRegressor", "QuantileRegressor", "GaussianNB",
 }
 ISSUE_TRANSFORMERS = {"StandardScaler", "MinMaxScaler", "RobustScaler", "OneHotEncoder", "OrdinalEncoder",
-                      "SimpleImputer", "PolynomialFeatures"}
+                      "SimpleImputer", "PolynomialFeatures", "KNNImputer", "IterativeImputer", "MissingIndicator",
+                      "TargetEncoder", "SplineTransformer", "KBinsDiscretizer", "PCA"}
 
 
 def test_committed_catalog_matches_installed_sklearn() -> None:
