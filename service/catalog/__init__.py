@@ -37,6 +37,9 @@ class CatalogEntry:
     withheld: Mapping[str, str] = field(default_factory=dict)  # parameters a submission may not set, and why
     native_categorical: bool = False  # takes the columns in model.categorical_features as they are
     library: str = "scikit-learn"
+    # Parameters holding nested catalog estimators: {param: {"form": "one"|"list", "max_members": n}}.
+    nested: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
+    target_functions: Mapping[str, str] = field(default_factory=dict)  # func name -> its inverse_func name
 
     @property
     def param_names(self) -> list[str]:
@@ -101,6 +104,16 @@ class Catalog:
         """Return the names of every transformer, sorted."""
         return [e.name for e in self.transformers()]
 
+    def nested_of(self, name: str) -> Mapping[str, Mapping[str, Any]]:
+        """Return the parameters of estimator ``name`` that hold nested estimators (empty for most)."""
+        entry = self.estimator(name)
+        return {} if entry is None else entry.nested
+
+    def target_functions_of(self, name: str) -> Mapping[str, str]:
+        """Return the func names estimator ``name`` accepts, each with its inverse_func name."""
+        entry = self.estimator(name)
+        return {} if entry is None else entry.target_functions
+
     def native_categorical_names(self) -> list[str]:
         """Return the estimators that take declared categorical columns as they are, sorted."""
         return [e.name for e in self._sorted() if e.kind == "estimator" and e.native_categorical]
@@ -132,6 +145,8 @@ def parse_catalog(document: Mapping[str, Any]) -> Catalog:
             withheld=MappingProxyType(dict(raw.get("withheld", {}))),
             native_categorical=bool(raw.get("native_categorical", False)),
             library=str(raw.get("library", "scikit-learn")),
+            nested=MappingProxyType({k: MappingProxyType(dict(v)) for k, v in raw.get("nested", {}).items()}),
+            target_functions=MappingProxyType(dict(raw.get("target_functions", {}))),
         )
     return Catalog(document=MappingProxyType(dict(document)), entries=MappingProxyType(entries))
 

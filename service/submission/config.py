@@ -79,6 +79,10 @@ class CatalogView(Protocol):
 
     def native_categorical_names(self) -> list[str]: ...
 
+    def nested_of(self, name: str) -> Mapping[str, Mapping[str, Any]]: ...
+
+    def target_functions_of(self, name: str) -> Mapping[str, str]: ...
+
 
 class _Problems:
     """Collects field problems so one response names all of them."""
@@ -110,6 +114,8 @@ def resolve(request: SubmissionRequest, dataset: Mapping[str, Any], catalog: Cat
         problems.add("/model/estimator", f"estimator {model.estimator!r} {what}; for a {task} dataset "
                      f"use one of: {accepted}")
 
+    if est_task == task:
+        _resolve_nested(model.estimator, model.params, task, problems, catalog)
     features = _resolve_features(model, dataset, kinds, reserved, problems)
     steps = _resolve_steps(model, features, problems, catalog)
     native = _resolve_native(model, features, kinds, steps, problems, catalog)
@@ -194,6 +200,76 @@ def _resolve_steps(
                              "other columns; steps chain only when they name exactly the same columns")
         steps.append(PreprocessStep(step.transformer, tuple(step.columns), dict(step.params)))
     return tuple(steps)
+
+
+def _resolve_nested(
+    estimator: str, params: Mapping[str, Any], task: str, problems: _Problems, catalog: CatalogView
+) -> None:
+    """Check the nested estimators of an ensemble, calibration or target transformation, and named functions.
+
+    A nested estimator is ``{"estimator": name, "params": {...}}`` (a list member also has a ``name``):
+    a catalog estimator of the same task that nests nothing itself. Its parameter values are checked
+    by scikit-learn in the worker, as the outer estimator's are.
+    """
+    for param, rule in catalog.nested_of(estimator).items():
+        if param not in params or params[param] is None:
+            continue
+        base = f"/model/params/{param}"
+        value = params[param]
+        if rule["form"] == "one":
+            _check_member(value, base, task, problems, catalog, named=False)
+            continue
+        if not isinstance(value, list) or not value:
+            problems.add(base, f"{param} must be a non-empty list of {{\"name\", \"estimator\", \"params\"}} "
+                         f"objects, got {value!r}")
+            continue
+        if len(value) > rule["max_members"]:
+            problems.add(base, f"{param} may list at most {rule['max_members']} estimators (a service cap), got "
+                         f"{len(value)}")
+        names = [m.get("name") for m in value if isinstance(m, dict)]
+        for i, member in enumerate(value):
+            _check_member(member, f"{base}/{i}", task, problems, catalog, named=True)
+            name = member.get("name") if isinstance(member, dict) else None
+            if isinstance(name, str) and names.count(name) > 1 and names.index(name) < i:
+                problems.add(f"{base}/{i}/name", f"member name {name!r} is used twice")
+    functions = catalog.target_functions_of(estimator)
+    if functions:
+        _check_target_functions(params, functions, problems)
+
+
+def _check_member(
+    member: Any, base: str, task: str, problems: _Problems, catalog: CatalogView, *, named: bool
+) -> None:
+    allowed = {"estimator", "params", *({"name"} if named else set())}
+    if not isinstance(member, dict) or not isinstance(member.get("estimator"), str) or set(member) - allowed:
+        shape = '{"name": ..., "estimator": ..., "params": {...}}' if named else '{"estimator": ..., "params": {...}}'
+        problems.add(base, f"a nested estimator is an object {shape}, got {member!r}")
+        return
+    name = member["estimator"]
+    member_task = catalog.estimator_task(name)
+    plain = [n for n in catalog.estimator_names(task) if not catalog.nested_of(n)]
+    if member_task != task or catalog.nested_of(name):
+        what = ("is not in the catalog" if member_task is None else
+                f"is a {member_task} estimator" if member_task != task else "nests estimators itself")
+        problems.add(f"{base}/estimator", f"nested estimator {name!r} {what}; use one of: {', '.join(plain)}")
+    if not isinstance(member.get("params", {}), dict):
+        problems.add(f"{base}/params", f"params must be an object, got {member.get('params')!r}")
+    if named:
+        label = member.get("name")
+        if not (isinstance(label, str) and label.isidentifier() and "__" not in label):
+            problems.add(f"{base}/name", f"a member name is an identifier without '__', got {label!r}")
+
+
+def _check_target_functions(params: Mapping[str, Any], functions: Mapping[str, str], problems: _Problems) -> None:
+    func, inverse = params.get("func"), params.get("inverse_func")
+    pairs = ", ".join(f"{f!r} (inverse_func {i!r})" for f, i in functions.items())
+    if func is None and inverse is not None:
+        problems.add("/model/params/inverse_func", "inverse_func needs a func; name one of " + pairs)
+    elif func is not None and func not in functions:
+        problems.add("/model/params/func", f"func is named from an allow-list: {pairs}; got {func!r}")
+    elif func is not None and inverse not in (None, functions[func]):
+        problems.add("/model/params/inverse_func", f"the inverse of {func!r} is {functions[func]!r}; leave "
+                     f"inverse_func out or name it, got {inverse!r}")
 
 
 def _resolve_native(

@@ -58,7 +58,7 @@ def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: 
         frame = store.load_development_frame(ctx.settings, dataset_id, columns=[config.target])
         outside = domain.problem(target_values(frame[config.target], "regression"))
         if outside is not None:
-            chosen = next((f"/model/params/{p}" for p in ("objective", "loss", "power") if p in model.params),
+            chosen = next((f"/model/params/{p}" for p in ("objective", "loss", "power", "func") if p in model.params),
                           "/model/estimator")
             return _rejected([FieldProblem(chosen, outside)])
     return {"ok": True, "has_proba": hasattr(estimator, "predict_proba")}
@@ -81,6 +81,20 @@ def checked_instance(
         if name in entry.forced and value != entry.forced[name]:
             problems.append(FieldProblem(pointer, f"{name} is fixed to {entry.forced[name]!r} by the service "
                                          f"(one core per fold job; scale out with more workers), got {value!r}"))
+            continue
+        if entry.target_functions and name in ("func", "inverse_func"):
+            valid[name] = value  # named from the allow-list, which the API checked
+            continue
+        if name in entry.nested:
+            # The API checked the nesting; each member's values are checked here, as the outer ones are.
+            members = value if isinstance(value, list) else [] if value is None else [value]
+            before = len(problems)
+            for k, member in enumerate(members):
+                where = f"{pointer}/{k}" if isinstance(value, list) else pointer
+                checked_instance(load_catalog().entries[member["estimator"]], member.get("params") or {},
+                                 f"{where}/params", problems)
+            if len(problems) == before:
+                valid[name] = value
             continue
         invalid = parameter_problem(entry, name, value)
         if invalid is not None:

@@ -49,6 +49,20 @@ BOOSTING: dict[str, tuple[str, str, str]] = {
     "XGBRegressor": ("xgboost", "xgboost", "regression"),
     "XGBClassifier": ("xgboost", "worker.learning.boosting", "classification"),
 }
+# Estimators built around other catalog estimators, declared as nested {"estimator": name, "params": {...}}
+# objects: which parameters hold them ("one" estimator, or a "list" of named members) and the module.
+# A member is a plain catalog estimator of the same task: no ensemble inside an ensemble.
+META: dict[str, tuple[str, dict[str, str]]] = {
+    "CalibratedClassifierCV": ("sklearn.calibration", {"estimator": "one"}),
+    "VotingClassifier": ("sklearn.ensemble", {"estimators": "list"}),
+    "VotingRegressor": ("sklearn.ensemble", {"estimators": "list"}),
+    "StackingClassifier": ("sklearn.ensemble", {"estimators": "list", "final_estimator": "one"}),
+    "StackingRegressor": ("sklearn.ensemble", {"estimators": "list", "final_estimator": "one"}),
+    "TransformedTargetRegressor": ("sklearn.compose", {"regressor": "one"}),
+}
+_MAX_MEMBERS = 5
+# TransformedTargetRegressor's func, by name, and the inverse_func that goes with it.
+TARGET_FUNCTIONS: dict[str, str] = {"log1p": "expm1", "sqrt": "square"}
 # Estimators that take categorical columns as they are, declared in model.categorical_features.
 NATIVE_CATEGORICAL: frozenset[str] = frozenset({
     "HistGradientBoostingRegressor", "HistGradientBoostingClassifier", *BOOSTING,
@@ -115,6 +129,11 @@ CAPS_NOTE = {
     "boosting_threads": "LightGBM and XGBoost fit on one thread (n_jobs=1) and keep quiet (LightGBM verbose=-1, "
                         "XGBoost verbosity=0); XGBoost runs on the CPU (device='cpu')",
     "withheld": "parameters a library has that a submission may not set; each entry says why",
+    "nested": f"ensembles, calibration and target transformation take catalog estimators of their own task as "
+              f"nested {{\"estimator\": name, \"params\": {{...}}}} objects (list members also take a \"name\"); "
+              f"at most {_MAX_MEMBERS} members, and no ensemble or other nesting estimator inside one",
+    "target_functions": "TransformedTargetRegressor: func is 'log1p' (inverse_func 'expm1') or 'sqrt' "
+                        "(inverse_func 'square'), by name; inverse_func may be left out",
     "constraints": "LightGBM and XGBoost do not validate their parameters as scikit-learn does: their entries "
                    "carry constraints written from the libraries' documentation, checked before any fit",
 }
@@ -127,7 +146,7 @@ def build_catalog() -> dict[str, Any]:
         "sklearn_version": sklearn.__version__,
         "caps_note": CAPS_NOTE,
         "library_versions": {"lightgbm": lightgbm.__version__, "xgboost": xgboost.__version__},
-        "estimators": sorted([*(_entry(name, "estimator") for name in ESTIMATORS),
+        "estimators": sorted([*(_entry(name, "estimator") for name in [*ESTIMATORS, *META]),
                               *(_boosting_entry(name) for name in BOOSTING)], key=lambda e: str(e["name"])),
         "transformers": [_entry(name, "transformer") for name in sorted(TRANSFORMERS)],
     }
@@ -162,8 +181,9 @@ def catalog_drift(path: Path = CATALOG_PATH) -> list[str]:
 
 def estimator_class(name: str) -> type[BaseEstimator]:
     """Import an allow-listed class by name from its public scikit-learn module."""
-    if name in BOOSTING:
-        cls: type[BaseEstimator] = getattr(importlib.import_module(BOOSTING[name][1]), name)
+    if name in BOOSTING or name in META:
+        module = BOOSTING[name][1] if name in BOOSTING else META[name][0]
+        cls: type[BaseEstimator] = getattr(importlib.import_module(module), name)
         return cls
     if name not in ESTIMATORS and name not in TRANSFORMERS:
         raise KeyError(f"{name!r} is not in the catalog allow-list")
@@ -178,9 +198,14 @@ def _find_class(name: str) -> tuple[str, type[BaseEstimator]]:
     raise KeyError(f"{name!r} is not found in any of {', '.join(_PUBLIC_MODULES)}")
 
 
+def construct(cls: type[BaseEstimator]) -> BaseEstimator:
+    """Instantiate a catalog class with its defaults (ensembles require a member list: an empty one)."""
+    return cls(estimators=[]) if cls.__name__ in META and "estimators" in META[cls.__name__][1] else cls()
+
+
 def _entry(name: str, kind: str) -> dict[str, Any]:
-    module_name, cls = _find_class(name)
-    instance = cls()
+    module_name, cls = (META[name][0], estimator_class(name)) if name in META else _find_class(name)
+    instance = construct(cls)
     defaults = instance.get_params(deep=False)
     constraints: dict[str, Any] = getattr(cls, "_parameter_constraints", {})
     forced: dict[str, Any] = {}
@@ -217,6 +242,13 @@ def _entry(name: str, kind: str) -> dict[str, Any]:
         entry["native_categorical"] = name in NATIVE_CATEGORICAL
     if name.startswith("HistGradientBoosting"):
         entry["withheld"] = dict(bp.HIST_GRADIENT_BOOSTING_WITHHELD)
+    if name in META:
+        entry["nested"] = {param: {"form": form, **({"max_members": _MAX_MEMBERS} if form == "list" else {})}
+                           for param, form in META[name][1].items()}
+    if name == "TransformedTargetRegressor":
+        entry["target_functions"] = dict(TARGET_FUNCTIONS)
+        entry["withheld"] = {"transformer": "a transformer object is not expressible in JSON; name func "
+                                            "(and inverse_func) instead"}
     return entry
 
 
@@ -280,6 +312,8 @@ def _caps(name: str, defaults: dict[str, Any]) -> dict[str, dict[str, int]]:
     if "cache_size" in defaults:
         caps["cache_size"] = {"max": 1024}
     caps.update(_TRANSFORMER_CAPS.get(name, {}))
+    if name in META and "cv" in defaults:
+        caps["cv"] = {"max": 10}
     return caps
 
 

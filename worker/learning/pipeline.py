@@ -15,6 +15,7 @@ import importlib
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+import numpy as np
 from sklearn.base import BaseEstimator, clone
 from sklearn.compose import ColumnTransformer
 from sklearn.dummy import DummyClassifier, DummyRegressor
@@ -57,12 +58,40 @@ def effective_params(entry: CatalogEntry, params: Mapping[str, Any]) -> dict[str
     return {**entry.service_defaults, **params, **entry.forced}
 
 
-def make_instance(entry: CatalogEntry, params: Mapping[str, Any]) -> BaseEstimator:
-    """Instantiate an allow-listed class with its effective parameters (validated later, by fit)."""
+# TransformedTargetRegressor's functions, by the names the catalog allows (never code from a request).
+TARGET_FUNCTIONS: dict[str, Any] = {"log1p": np.log1p, "expm1": np.expm1, "sqrt": np.sqrt, "square": np.square}
+
+
+def make_instance(entry: CatalogEntry, params: Mapping[str, Any], catalog: Catalog | None = None) -> BaseEstimator:
+    """Instantiate an allow-listed class with its effective parameters (validated later, by fit).
+
+    Nested estimators (``{"estimator": name, "params": {...}}``, list members with a ``name``) are
+    built the same way from their own catalog entries; named target functions become numpy's.
+    """
     cls = getattr(importlib.import_module(entry.module), entry.name)
-    instance: BaseEstimator = cls()
-    instance.set_params(**{k: from_json(cls, k, v) for k, v in effective_params(entry, params).items()})
+    instance: BaseEstimator = cls(estimators=[]) if "estimators" in entry.nested else cls()
+    values = effective_params(entry, params)
+    converted: dict[str, Any] = {}
+    for name, value in values.items():
+        if name in entry.nested and value is not None:
+            converted[name] = _nested(catalog or load_catalog(), value)
+        elif name in ("func", "inverse_func") and entry.target_functions and isinstance(value, str):
+            converted[name] = TARGET_FUNCTIONS[value]
+        else:
+            converted[name] = from_json(cls, name, value)
+    func = values.get("func")
+    if isinstance(func, str) and entry.target_functions and values.get("inverse_func") is None:
+        converted["inverse_func"] = TARGET_FUNCTIONS[entry.target_functions[func]]
+    instance.set_params(**converted)
     return instance
+
+
+def _nested(catalog: Catalog, value: Any) -> Any:
+    """Build a nested estimator, or the (name, estimator) list of an ensemble's members."""
+    if isinstance(value, list):
+        return [(str(m["name"]), _nested(catalog, m)) for m in value]
+    member = entry_for(catalog, str(value["estimator"]), "estimator")
+    return make_instance(member, value.get("params") or {}, catalog)
 
 
 def from_json(cls: type[BaseEstimator], name: str, value: Any) -> Any:
@@ -85,7 +114,7 @@ def build_pipeline(
     """Return the unfitted pipeline for the model part of a resolved configuration."""
     catalog = catalog or load_catalog()
     features = list(model.features)
-    estimator = make_instance(entry_for(catalog, model.estimator, "estimator"), model.params)
+    estimator = make_instance(entry_for(catalog, model.estimator, "estimator"), model.params, catalog)
     native = list(model.categorical_features)
     if native:
         estimator.set_params(**native_categorical_params(model.estimator, native))

@@ -5,7 +5,8 @@ LightGBM and XGBoost fail or, worse, fit nonsense. The check job reads the devel
 (rows the team already has) and refuses such a configuration before any fold runs, naming the
 estimator, the parameter that chose the loss and the smallest target value. The domains are the
 losses' own (scikit-learn's ``_loss`` module: HalfPoissonLoss y >= 0, HalfGammaLoss y > 0,
-HalfTweedieLoss y >= 0 for 1 <= power < 2 and y > 0 for power >= 2).
+HalfTweedieLoss y >= 0 for 1 <= power < 2 and y > 0 for power >= 2); a target transformed by log1p
+must exceed -1, by sqrt be non-negative.
 """
 
 from __future__ import annotations
@@ -19,19 +20,22 @@ import numpy as np
 
 @dataclass(frozen=True)
 class TargetDomain:
-    """The targets a loss accepts: strictly positive, or non-negative; ``why`` names the loss."""
+    """The targets a loss or function accepts: above ``bound`` (``positive``) or at least it; ``why`` names it."""
 
     positive: bool
     why: str
+    bound: float = 0.0
 
     def problem(self, y: np.ndarray) -> str | None:
         """Return why ``y`` is outside the domain, or None."""
         smallest = float(np.min(y)) if y.size else 0.0
-        if self.positive and smallest <= 0:
-            return f"{self.why} needs a strictly positive target; the smallest development target is {smallest:g}"
-        if not self.positive and smallest < 0:
+        if self.positive and smallest <= self.bound:
+            words = "strictly positive" if self.bound == 0 else f"greater than {self.bound:g}"
+            return f"{self.why} needs a target {words}; the smallest development target is {smallest:g}"
+        if not self.positive and smallest < self.bound:
             return f"{self.why} needs a non-negative target; the smallest development target is {smallest:g}"
-        if not self.positive and y.size and float(np.sum(y)) <= 0:
+        if not self.positive and self.why.startswith(("PoissonRegressor", "HistGradientBoosting")) and y.size \
+                and float(np.sum(y)) <= 0:
             return f"{self.why} needs a target whose sum is positive; every development target is 0"
         return None
 
@@ -46,6 +50,10 @@ def _tweedie(power: float, owner: str) -> TargetDomain | None:
 
 def target_domain(estimator: str, params: Mapping[str, Any]) -> TargetDomain | None:
     """Return the target domain of ``estimator`` with ``params``, or None when any real target fits."""
+    if estimator == "TransformedTargetRegressor" and params.get("func") == "log1p":
+        return TargetDomain(True, "TransformedTargetRegressor with func='log1p'", bound=-1.0)
+    if estimator == "TransformedTargetRegressor" and params.get("func") == "sqrt":
+        return TargetDomain(False, "TransformedTargetRegressor with func='sqrt'")
     objective = params.get("objective")
     loss = params.get("loss")
     if estimator == "PoissonRegressor":

@@ -157,3 +157,40 @@ def test_native_categorical_declarations_are_checked() -> None:
                                    preprocess=(PreprocessStep("OrdinalEncoder", ("depot",)),))),
                 DATASET, load_catalog())
     assert "also in a preprocess step" in _pointers(exc)["/model/categorical_features/0"]
+
+
+def test_nested_estimators_are_declarative_capped_and_flat() -> None:
+    member = {"name": "ridge", "estimator": "Ridge"}
+    ok = resolve(_request(ModelSpec("VotingRegressor", params={"estimators": [member, {**member, "name": "r2"}]},
+                                    preprocess=(PreprocessStep("OneHotEncoder", ("depot",)),))),
+                 DATASET, load_catalog())
+    assert ok.model.params["estimators"][0] == member
+    with pytest.raises(ConfigRejected) as exc:
+        resolve(_request(ModelSpec("StackingRegressor", params={
+            "estimators": [member, member, {"name": "x__y", "estimator": "LogisticRegression"},
+                           {"name": "inner", "estimator": "VotingRegressor"}, member, member],
+            "final_estimator": "Ridge"}, preprocess=(PreprocessStep("OneHotEncoder", ("depot",)),))),
+            DATASET, load_catalog())
+    found = _pointers(exc)
+    assert "at most 5 estimators" in found["/model/params/estimators"]
+    assert "used twice" in found["/model/params/estimators/1/name"]
+    assert "is a classification estimator" in found["/model/params/estimators/2/estimator"]
+    assert "'__'" in found["/model/params/estimators/2/name"]
+    assert "nests estimators itself" in found["/model/params/estimators/3/estimator"]
+    assert "is an object" in found["/model/params/final_estimator"]
+
+
+def test_target_functions_are_named_from_the_allow_list() -> None:
+    def refused(params: dict[str, Any]) -> dict[str, str]:
+        with pytest.raises(ConfigRejected) as exc:
+            resolve(_request(ModelSpec("TransformedTargetRegressor", params=params,
+                                       preprocess=(PreprocessStep("OneHotEncoder", ("depot",)),))),
+                    DATASET, load_catalog())
+        return _pointers(exc)
+
+    assert "'log1p' (inverse_func 'expm1')" in refused({"func": "os.system"})["/model/params/func"]
+    assert "the inverse of 'sqrt' is 'square'" in refused({"func": "sqrt", "inverse_func": "expm1"})[
+        "/model/params/inverse_func"]
+    assert "needs a func" in refused({"inverse_func": "expm1"})["/model/params/inverse_func"]
+    resolve(_request(ModelSpec("TransformedTargetRegressor", params={"func": "log1p", "regressor": {
+        "estimator": "Ridge"}}, preprocess=(PreprocessStep("OneHotEncoder", ("depot",)),))), DATASET, load_catalog())
