@@ -91,8 +91,8 @@ def checked_instance(
             before = len(problems)
             for k, member in enumerate(members):
                 where = f"{pointer}/{k}" if isinstance(value, list) else pointer
-                checked_instance(load_catalog().entries[member["estimator"]], member.get("params") or {},
-                                 f"{where}/params", problems)
+                member_entry = entry_for(load_catalog(), member["estimator"], "estimator")
+                checked_instance(member_entry, member.get("params") or {}, f"{where}/params", problems)
             if len(problems) == before:
                 valid[name] = value
             continue
