@@ -20,10 +20,12 @@ from sklearn.ensemble import HistGradientBoostingRegressor
 from sklearn.metrics import accuracy_score, log_loss, mean_absolute_error, root_mean_squared_error
 from sklearn.model_selection import KFold
 
+from service.records import submissions
 from service.submission.resolved import ResolvedModel
 from service.vault.folds import FoldPlan, fold_splits, split_keys_from_frame
 from tests.support.folds import diabetes_parts, run_all_folds
 from tests.support.worker_records import add_dataset, add_submission, config_document
+from worker import jobs
 from worker.jobs.runtime import WorkerContext
 from worker.learning.pipeline import build_pipeline, output_feature_names
 
@@ -167,3 +169,29 @@ def test_each_library_is_told_which_columns_are_categories() -> None:
     assert fitted["LGBMRegressor"].booster_.dump_model()["pandas_categorical"] == [[0, 1], [0, 1, 2, 3]]
     assert fitted["XGBRegressor"].get_booster().feature_types == ["c", "c", "float", "float"]
     assert fitted["HistGradientBoostingRegressor"].is_categorical_.tolist() == [True, True, False, False]
+
+
+def test_holdout_refit_with_declared_categories_equals_lightgbm(ctx: WorkerContext) -> None:
+    # The holdout job refits on every development row and scores the sealed rows once; reference:
+    # LightGBM fitted by hand on the 400 development rows (categories coded from them), scored on the 42 others.
+    dev, hold = (_with_categories(p) for p in diabetes_parts())
+    dataset = add_dataset(ctx, dev, hold, "target", "regression", scheme="kfold", folds=3, seed=2)
+    cats, numeric = ["sex", "age_band"], ["bmi", "bp", "s5"]
+    params = {"n_estimators": 30, "num_leaves": 7}
+    config = config_document(dataset, "LGBMRegressor", params=params, features=[*cats, *numeric], metrics=["rmse"])
+    config["model"]["categorical_features"] = cats
+    sub_id = add_submission(ctx, dataset, config)
+    run_all_folds(sub_id, 3)
+    jobs.summarize(sub_id)
+    assert jobs.score_holdout(sub_id)["holdout"] == "scored"
+    stored = submissions.get_holdout(ctx.engine, sub_id)
+    assert stored is not None
+
+    def encode(part: pd.DataFrame) -> pd.DataFrame:
+        coded = {c: pd.Categorical.from_codes(pd.Categorical(part[c], categories=sorted(dev[c].unique())).codes,
+                                              categories=list(range(dev[c].nunique()))) for c in cats}
+        return pd.concat([pd.DataFrame(coded, index=part.index), part[numeric]], axis=1)
+
+    model = lightgbm.LGBMRegressor(**params, **LGBM_FORCED).fit(encode(dev), dev["target"].to_numpy())
+    expected = root_mean_squared_error(hold["target"].to_numpy(), model.predict(encode(hold)))
+    assert stored["scores"]["rmse"] == expected
