@@ -59,6 +59,8 @@ class CatalogEntrySchema(Schema):
                                                        "alternatives the service checks (from their documentation)"})
     withheld = fields.Dict(keys=fields.String(), values=fields.String(), metadata={
         "description": "parameters a submission may not set, each with the reason"})
+    restricted = fields.Dict(metadata={"description": "parameters whose values the service narrows: the values "
+                                                      "that work here and why"})
     native_categorical = fields.Boolean(metadata={"description": "takes model.categorical_features as categories"})
     nested = fields.Dict(metadata={"description": "parameters holding nested catalog estimators: form one or list"})
     target_functions = fields.Dict(keys=fields.String(), values=fields.String(), metadata={

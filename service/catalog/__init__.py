@@ -40,6 +40,8 @@ class CatalogEntry:
     # Parameters holding nested catalog estimators: {param: {"form": "one"|"list", "max_members": n}}.
     nested: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
     target_functions: Mapping[str, str] = field(default_factory=dict)  # func name -> its inverse_func name
+    # {param: {"values": [...], "why": "..."}}: the values that work here, narrower than the class's own list.
+    restricted: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
 
     @property
     def param_names(self) -> list[str]:
@@ -147,6 +149,7 @@ def parse_catalog(document: Mapping[str, Any]) -> Catalog:
             library=str(raw.get("library", "scikit-learn")),
             nested=MappingProxyType({k: MappingProxyType(dict(v)) for k, v in raw.get("nested", {}).items()}),
             target_functions=MappingProxyType(dict(raw.get("target_functions", {}))),
+            restricted=MappingProxyType({k: MappingProxyType(dict(v)) for k, v in raw.get("restricted", {}).items()}),
         )
     return Catalog(document=MappingProxyType(dict(document)), entries=MappingProxyType(entries))
 

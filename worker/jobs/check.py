@@ -100,6 +100,12 @@ def checked_instance(
         if invalid is not None:
             problems.append(FieldProblem(pointer, invalid))
             continue
+        narrowed = entry.restricted.get(name)
+        if narrowed is not None and value not in narrowed["values"]:
+            accepted = ", ".join(repr(v) for v in narrowed["values"])
+            problems.append(FieldProblem(pointer, f"{name} must be one of {accepted} here ({narrowed['why']}), "
+                                         f"got {value!r}"))
+            continue
         over = cap_problem(entry, name, value)
         if over is not None:
             problems.append(FieldProblem(pointer, over))

@@ -77,6 +77,15 @@ _LINEAR: frozenset[str] = frozenset({
     "LinearRegression", "Ridge", "Lasso", "ElasticNet", "SGDRegressor", "LogisticRegression", "SGDClassifier",
     "PoissonRegressor", "GammaRegressor", "TweedieRegressor", "HuberRegressor", "QuantileRegressor",
 })
+# Values scikit-learn's constraints still list that cannot work here, narrowed to those that do, with the reason.
+_RESTRICTED: dict[str, dict[str, dict[str, Any]]] = {
+    "QuantileRegressor": {"solver": {"values": ["highs", "highs-ds", "highs-ipm"],
+                                     "why": "scipy 1.11 removed the 'interior-point' and 'revised simplex' solvers"}},
+}
+_WITHHELD: dict[str, dict[str, str]] = {
+    "IterativeImputer": {"estimator": "an estimator object is not expressible in JSON; the default "
+                                      "BayesianRidge is used"},
+}
 # Caps on what sizes a transformer's memory or time, by class: {class: {param: {"max": n}}}.
 _TRANSFORMER_CAPS: dict[str, dict[str, dict[str, int]]] = {
     "KNNImputer": {"n_neighbors": {"max": 100}},
@@ -129,6 +138,8 @@ CAPS_NOTE = {
     "boosting_threads": "LightGBM and XGBoost fit on one thread (n_jobs=1) and keep quiet (LightGBM verbose=-1, "
                         "XGBoost verbosity=0); XGBoost runs on the CPU (device='cpu')",
     "withheld": "parameters a library has that a submission may not set; each entry says why",
+    "restricted": "parameters whose accepted values the service narrows to those that work with its libraries; "
+                  "each entry says why",
     "nested": f"ensembles, calibration and target transformation take catalog estimators of their own task as "
               f"nested {{\"estimator\": name, \"params\": {{...}}}} objects (list members also take a \"name\"); "
               f"at most {_MAX_MEMBERS} members, and no ensemble or other nesting estimator inside one",
@@ -242,6 +253,10 @@ def _entry(name: str, kind: str) -> dict[str, Any]:
         entry["native_categorical"] = name in NATIVE_CATEGORICAL
     if name.startswith("HistGradientBoosting"):
         entry["withheld"] = dict(bp.HIST_GRADIENT_BOOSTING_WITHHELD)
+    if name in _WITHHELD:
+        entry["withheld"] = dict(_WITHHELD[name])
+    if name in _RESTRICTED:
+        entry["restricted"] = _RESTRICTED[name]
     if name in META:
         entry["nested"] = {param: {"form": form, **({"max_members": _MAX_MEMBERS} if form == "list" else {})}
                            for param, form in META[name][1].items()}

@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from sklearn.datasets import load_breast_cancer, load_diabetes
-from sklearn.linear_model import Ridge
+from sklearn.linear_model import QuantileRegressor, Ridge
 from sklearn.utils._param_validation import InvalidParameterError
 
 from tests.support.worker_records import add_dataset, config_document
@@ -207,3 +207,16 @@ def test_xgboost_withheld_and_capped_parameters(diabetes: dict[str, Any], cancer
     config["search"] = {"grid": {"max_depth": [3, 40]}, "distributions": None, "n_iter": None, "inner_folds": 3}
     found = pointers(jobs.check_config(config, diabetes["id"]))
     assert list(found) == ["/search/grid/max_depth/1"]
+
+
+def test_values_that_cannot_work_here_are_refused_up_front(diabetes: dict[str, Any]) -> None:
+    # scikit-learn still lists 'interior-point' for QuantileRegressor; scipy >= 1.11 has no such solver,
+    # and QuantileRegressor itself raises at fit (its own check of the scipy version).
+    with pytest.raises(ValueError, match="interior-point"):
+        QuantileRegressor(solver="interior-point").fit([[0.0], [1.0], [2.0]], [0.0, 1.0, 2.0])
+    found = pointers(check(diabetes, "QuantileRegressor", params={"solver": "interior-point"}))
+    assert "'highs', 'highs-ds', 'highs-ipm'" in found["/model/params/solver"]
+    assert check(diabetes, "QuantileRegressor", params={"solver": "highs-ds"})["ok"]
+    withheld = pointers(check(diabetes, "Ridge", preprocess=[
+        {"transformer": "IterativeImputer", "columns": ["bmi"], "params": {"estimator": "Ridge"}}]))
+    assert "not expressible in JSON" in withheld["/model/preprocess/0/params/estimator"]
