@@ -18,7 +18,8 @@ import xgboost
 from sklearn.datasets import load_breast_cancer, load_diabetes, load_wine
 from sklearn.ensemble import HistGradientBoostingRegressor
 from sklearn.metrics import accuracy_score, log_loss, mean_absolute_error, root_mean_squared_error
-from sklearn.model_selection import KFold
+from sklearn.model_selection import GridSearchCV, KFold, cross_validate
+from sklearn.pipeline import Pipeline
 
 from service.records import submissions
 from service.submission.resolved import ResolvedModel
@@ -195,3 +196,29 @@ def test_holdout_refit_with_declared_categories_equals_lightgbm(ctx: WorkerConte
     model = lightgbm.LGBMRegressor(**params, **LGBM_FORCED).fit(encode(dev), dev["target"].to_numpy())
     expected = root_mean_squared_error(hold["target"].to_numpy(), model.predict(encode(hold)))
     assert stored["scores"]["rmse"] == expected
+
+
+def test_nested_search_over_lightgbm_parameters(ctx: WorkerContext) -> None:
+    # Reference: cross_validate(GridSearchCV(LGBMRegressor)) on the same outer folds; the inner search
+    # scores by the first metric on KFold(3, shuffle=True, random_state=<fold plan seed>).
+    dev, hold = diabetes_parts()
+    dataset = add_dataset(ctx, dev, hold, "target", "regression", scheme="kfold", folds=3, seed=5)
+    features = [c for c in dev.columns if c != "target"]
+    config = config_document(dataset, "LGBMRegressor", params={"n_estimators": 30}, features=features,
+                             metrics=["rmse"])
+    config["search"] = {"grid": {"num_leaves": [4, 15], "learning_rate": [0.05, 0.2]}, "distributions": None,
+                        "n_iter": None, "inner_folds": 3}
+    assert jobs.check_config(config, dataset["id"])["ok"]
+    rows = run_all_folds(add_submission(ctx, dataset, config), 3)
+    X, y = dev[features].to_numpy(), dev["target"].to_numpy()
+    search = GridSearchCV(Pipeline([("model", lightgbm.LGBMRegressor(n_estimators=30, **LGBM_FORCED))]),
+                          {"model__num_leaves": [4, 15], "model__learning_rate": [0.05, 0.2]},
+                          scoring="neg_root_mean_squared_error", cv=KFold(3, shuffle=True, random_state=5))
+    reference = cross_validate(search, X, y, cv=list(KFold(3, shuffle=True, random_state=5).split(X)),
+                               scoring={"rmse": "neg_root_mean_squared_error"}, return_estimator=True)
+    for k, row in enumerate(rows):
+        assert row["status"] == "ok", row["error"]
+        assert row["scores"]["rmse"] == -reference["test_rmse"][k]
+        best = reference["estimator"][k].best_params_
+        assert row["search"]["best_params"] == {"num_leaves": best["model__num_leaves"],
+                                                "learning_rate": best["model__learning_rate"]}
