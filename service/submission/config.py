@@ -13,10 +13,11 @@ import hashlib
 import json
 from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
-from typing import Any, Protocol
+from typing import Any
 
 from service.catalog.metrics import DEFAULT_METRICS, METRICS
 from service.errors import ConfigRejected, FieldProblem
+from service.submission.model_checks import CatalogView, check_native, check_nested
 from service.submission.resolved import PreprocessStep, ResolvedConfig, ResolvedModel, SearchSpec, ValidationPlan
 
 MAX_FOLDS, MAX_REPEATS, MAX_FOLD_JOBS = 20, 10, 100
@@ -66,24 +67,6 @@ class SubmissionRequest:
     search: SearchSpec | None = None
 
 
-class CatalogView(Protocol):
-    """What resolution needs from the catalog (``service.catalog``)."""
-
-    def estimator_task(self, name: str) -> str | None: ...
-
-    def is_transformer(self, name: str) -> bool: ...
-
-    def estimator_names(self, task: str) -> list[str]: ...
-
-    def transformer_names(self) -> list[str]: ...
-
-    def native_categorical_names(self) -> list[str]: ...
-
-    def nested_of(self, name: str) -> Mapping[str, Mapping[str, Any]]: ...
-
-    def target_functions_of(self, name: str) -> Mapping[str, str]: ...
-
-
 class _Problems:
     """Collects field problems so one response names all of them."""
 
@@ -115,10 +98,11 @@ def resolve(request: SubmissionRequest, dataset: Mapping[str, Any], catalog: Cat
                      f"use one of: {accepted}")
 
     if est_task == task:
-        _resolve_nested(model.estimator, model.params, task, problems, catalog)
+        check_nested(model.estimator, model.params, task, catalog, problems.add)
     features = _resolve_features(model, dataset, kinds, reserved, problems)
     steps = _resolve_steps(model, features, problems, catalog)
-    native = _resolve_native(model, features, kinds, steps, problems, catalog)
+    native = check_native(model.estimator, model.categorical_features, features, kinds, steps, catalog,
+                          problems.add)
     _check_categoricals(features, kinds, steps, native, problems)
     metrics = _resolve_metrics(request.metrics, task, dataset, problems)
     plan = _resolve_plan(request.validation, dataset["fold_plan"], problems)
@@ -200,104 +184,6 @@ def _resolve_steps(
                              "other columns; steps chain only when they name exactly the same columns")
         steps.append(PreprocessStep(step.transformer, tuple(step.columns), dict(step.params)))
     return tuple(steps)
-
-
-def _resolve_nested(
-    estimator: str, params: Mapping[str, Any], task: str, problems: _Problems, catalog: CatalogView
-) -> None:
-    """Check the nested estimators of an ensemble, calibration or target transformation, and named functions.
-
-    A nested estimator is ``{"estimator": name, "params": {...}}`` (a list member also has a ``name``):
-    a catalog estimator of the same task that nests nothing itself. Its parameter values are checked
-    by scikit-learn in the worker, as the outer estimator's are.
-    """
-    for param, rule in catalog.nested_of(estimator).items():
-        if param not in params or params[param] is None:
-            continue
-        base = f"/model/params/{param}"
-        value = params[param]
-        if rule["form"] == "one":
-            _check_member(value, base, task, problems, catalog, named=False)
-            continue
-        if not isinstance(value, list) or not value:
-            problems.add(base, f"{param} must be a non-empty list of {{\"name\", \"estimator\", \"params\"}} "
-                         f"objects, got {value!r}")
-            continue
-        if len(value) > rule["max_members"]:
-            problems.add(base, f"{param} may list at most {rule['max_members']} estimators (a service cap), got "
-                         f"{len(value)}")
-        names = [m.get("name") for m in value if isinstance(m, dict)]
-        for i, member in enumerate(value):
-            _check_member(member, f"{base}/{i}", task, problems, catalog, named=True)
-            name = member.get("name") if isinstance(member, dict) else None
-            if isinstance(name, str) and names.count(name) > 1 and names.index(name) < i:
-                problems.add(f"{base}/{i}/name", f"member name {name!r} is used twice")
-    functions = catalog.target_functions_of(estimator)
-    if functions:
-        _check_target_functions(params, functions, problems)
-
-
-def _check_member(
-    member: Any, base: str, task: str, problems: _Problems, catalog: CatalogView, *, named: bool
-) -> None:
-    allowed = {"estimator", "params", *({"name"} if named else set())}
-    if not isinstance(member, dict) or not isinstance(member.get("estimator"), str) or set(member) - allowed:
-        shape = '{"name": ..., "estimator": ..., "params": {...}}' if named else '{"estimator": ..., "params": {...}}'
-        problems.add(base, f"a nested estimator is an object {shape}, got {member!r}")
-        return
-    name = member["estimator"]
-    member_task = catalog.estimator_task(name)
-    plain = [n for n in catalog.estimator_names(task) if not catalog.nested_of(n)]
-    if member_task != task or catalog.nested_of(name):
-        what = ("is not in the catalog" if member_task is None else
-                f"is a {member_task} estimator" if member_task != task else "nests estimators itself")
-        problems.add(f"{base}/estimator", f"nested estimator {name!r} {what}; use one of: {', '.join(plain)}")
-    if not isinstance(member.get("params", {}), dict):
-        problems.add(f"{base}/params", f"params must be an object, got {member.get('params')!r}")
-    if named:
-        label = member.get("name")
-        if not (isinstance(label, str) and label.isidentifier() and "__" not in label):
-            problems.add(f"{base}/name", f"a member name is an identifier without '__', got {label!r}")
-
-
-def _check_target_functions(params: Mapping[str, Any], functions: Mapping[str, str], problems: _Problems) -> None:
-    func, inverse = params.get("func"), params.get("inverse_func")
-    pairs = ", ".join(f"{f!r} (inverse_func {i!r})" for f, i in functions.items())
-    if func is None and inverse is not None:
-        problems.add("/model/params/inverse_func", "inverse_func needs a func; name one of " + pairs)
-    elif func is not None and func not in functions:
-        problems.add("/model/params/func", f"func is named from an allow-list: {pairs}; got {func!r}")
-    elif func is not None and inverse not in (None, functions[func]):
-        problems.add("/model/params/inverse_func", f"the inverse of {func!r} is {functions[func]!r}; leave "
-                     f"inverse_func out or name it, got {inverse!r}")
-
-
-def _resolve_native(
-    model: ModelSpec, features: list[str], kinds: Mapping[str, str], steps: tuple[PreprocessStep, ...],
-    problems: _Problems, catalog: CatalogView,
-) -> tuple[str, ...]:
-    """Check the declared native categorical columns: a supporting estimator, categorical features, no step."""
-    if not model.categorical_features:
-        return ()
-    supporting = catalog.native_categorical_names()
-    if model.estimator not in supporting:
-        problems.add("/model/categorical_features", f"estimator {model.estimator!r} has no native categorical "
-                     f"support; use one of {', '.join(supporting)}, or encode the columns in a preprocess step")
-        return ()
-    stepped = {c for s in steps for c in s.columns}
-    for i, name in enumerate(model.categorical_features):
-        pointer = f"/model/categorical_features/{i}"
-        if name not in features:
-            problems.add(pointer, f"column {name!r} is not among the features ({', '.join(features)})")
-        elif kinds.get(name) != "categorical":
-            problems.add(pointer, f"column {name!r} is {kinds.get(name)}; only categorical columns are taken as "
-                         "native categories")
-        elif name in stepped:
-            problems.add(pointer, f"column {name!r} is also in a preprocess step; a native categorical column is "
-                         "handed to the estimator as it is")
-        elif name in model.categorical_features[:i]:
-            problems.add(pointer, f"column {name!r} is listed twice")
-    return tuple(dict.fromkeys(model.categorical_features))
 
 
 def _check_categoricals(
