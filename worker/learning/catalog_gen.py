@@ -10,8 +10,6 @@ from __future__ import annotations
 import importlib
 import inspect
 import json
-import math
-import numbers
 from pathlib import Path
 from typing import Any
 
@@ -20,10 +18,10 @@ import sklearn
 import xgboost
 from sklearn.base import BaseEstimator, is_classifier, is_regressor
 from sklearn.experimental import enable_iterative_imputer  # noqa: F401  (IterativeImputer is experimental)
-from sklearn.utils._param_validation import Hidden, Options, StrOptions, make_constraint
 
 from service.catalog.constraints import describe as describe_constraint
 from worker.learning import boosting_params as bp
+from worker.learning.catalog_render import describe, differences, json_value
 
 CATALOG_PATH = Path(__file__).resolve().parents[2] / "service" / "catalog" / "estimators.json"
 
@@ -99,15 +97,6 @@ _TREE_DEPTH_CAP = 64
 _ITERATION_CAP = 10_000
 _ENSEMBLE_CAP = 500
 _POLYNOMIAL_OUTPUT_CAP = 10_000
-
-# scikit-learn's constraint keywords, said in JSON terms (a submission can only send JSON values).
-_PLAIN_WORDS: dict[str, str] = {
-    "boolean": "a bool",
-    "random_state": "an int in the range [0, 4294967295] or None",
-    "verbose": "an int in the range [0, inf) or a bool",
-    "array-like": "an array-like (a JSON list)",
-    "sparse matrix": "a sparse matrix (not expressible in JSON)",
-}
 
 CAPS_NOTE = {
     "n_estimators": f"at most {_ENSEMBLE_CAP} trees or boosting stages",
@@ -187,7 +176,7 @@ def catalog_drift(path: Path = CATALOG_PATH) -> list[str]:
     for informational in ("sklearn_version", "library_versions"):
         committed.pop(informational, None)
         fresh.pop(informational, None)
-    return _differences(committed, fresh, "")
+    return differences(committed, fresh, "")
 
 
 def estimator_class(name: str) -> type[BaseEstimator]:
@@ -237,7 +226,7 @@ def _entry(name: str, kind: str) -> dict[str, Any]:
         "kind": kind,
         "module": module_name,
         "params": {
-            param: {"default": _json_value(value), "type": _describe(constraints.get(param)),
+            param: {"default": json_value(value), "type": describe(constraints.get(param)),
                     **({"deprecated": True} if _deprecated(cls, param) else {})}
             for param, value in sorted(defaults.items())
         },
@@ -281,7 +270,7 @@ def _boosting_entry(name: str) -> dict[str, Any]:
     assert not unknown, f"{name}: describe {sorted(unknown)} in worker/learning/boosting_params.py"
     params: dict[str, Any] = {}
     for param in sorted(set(defaults) - set(withheld)):
-        described: dict[str, Any] = {"default": _json_value(defaults[param]),
+        described: dict[str, Any] = {"default": json_value(defaults[param]),
                                      "type": describe_constraint(constraints[param])}
         if defaults[param] is None and library == "xgboost" and param in bp.XGBOOST_LIBRARY_DEFAULTS:
             described["library_default"] = bp.XGBOOST_LIBRARY_DEFAULTS[param]
@@ -330,77 +319,6 @@ def _caps(name: str, defaults: dict[str, Any]) -> dict[str, dict[str, int]]:
     if name in META and "cv" in defaults:
         caps["cv"] = {"max": 10}
     return caps
-
-
-def _describe(constraints: Any) -> str:
-    """Render scikit-learn's constraints of one parameter as a short, deterministic phrase."""
-    if constraints is None:
-        return "not validated by scikit-learn"
-    if constraints == "no_validation":
-        return "any value (not validated by scikit-learn)"
-    parts: list[str] = []
-    for raw in constraints:
-        if isinstance(raw, Hidden):
-            continue  # private or deprecated spellings scikit-learn does not advertise
-        if isinstance(raw, str) and raw in _PLAIN_WORDS:
-            parts.append(_PLAIN_WORDS[raw])
-            continue
-        constraint = make_constraint(raw)
-        if isinstance(constraint, StrOptions):
-            current = sorted(o for o in constraint.options if o not in constraint.deprecated)
-            parts.append("one of " + ", ".join(repr(o) for o in current))
-        elif isinstance(constraint, Options):
-            parts.append("one of " + ", ".join(sorted(repr(o) for o in constraint.options)))
-        elif raw is numbers.Integral or raw is int:
-            parts.append("an int")
-        elif raw is numbers.Real or raw is float:
-            parts.append("a float")
-        elif inspect.isclass(raw):
-            parts.append(f"a {raw.__name__}")
-        else:
-            parts.append(str(constraint))
-    return " or ".join(dict.fromkeys(parts))
-
-
-def _json_value(value: Any) -> Any:
-    """Return a JSON value for a default: plain JSON when it round-trips, else its repr."""
-    if value is None or isinstance(value, bool | str):
-        return value
-    if isinstance(value, numbers.Integral):
-        return int(value)
-    if isinstance(value, numbers.Real):
-        as_float = float(value)
-        return as_float if math.isfinite(as_float) else repr(as_float)
-    if isinstance(value, list | tuple):
-        return [_json_value(v) for v in value]
-    if isinstance(value, dict):
-        return {str(k): _json_value(v) for k, v in value.items()}
-    if inspect.isclass(value):
-        return f"{value.__module__}.{value.__qualname__}"
-    return repr(value)
-
-
-def _differences(committed: Any, fresh: Any, where: str) -> list[str]:
-    if isinstance(committed, dict) and isinstance(fresh, dict):
-        out: list[str] = []
-        for key in sorted(set(committed) | set(fresh)):
-            here = f"{where}/{key}"
-            if key not in fresh:
-                out.append(f"{here}: in the committed catalog, absent from the installed scikit-learn")
-            elif key not in committed:
-                out.append(f"{here}: new in the installed scikit-learn, absent from the committed catalog")
-            else:
-                out.extend(_differences(committed[key], fresh[key], here))
-        return out
-    if isinstance(committed, list) and isinstance(fresh, list) and len(committed) == len(fresh):
-        out = []
-        for i, (left, right) in enumerate(zip(committed, fresh, strict=True)):
-            label = left.get("name", i) if isinstance(left, dict) else i
-            out.extend(_differences(left, right, f"{where}/{label}"))
-        return out
-    if committed != fresh:
-        return [f"{where or '/'}: committed {committed!r}, installed scikit-learn gives {fresh!r}"]
-    return []
 
 
 def main() -> None:
