@@ -40,6 +40,7 @@ class CatalogParamSchema(Schema):
     type = fields.String(metadata={"description": "what scikit-learn accepts, in words"})
     deprecated = fields.Boolean(metadata={"description": "present and true when scikit-learn's docstring marks "
                                                          "the parameter deprecated"})
+    library_default = fields.Raw(metadata={"description": "XGBoost: the value a null default stands for"})
 
 
 class CatalogEntrySchema(Schema):
@@ -53,6 +54,17 @@ class CatalogEntrySchema(Schema):
     caps = fields.Dict(keys=fields.String(), values=fields.Dict(), metadata={"description": "upper bounds"})
     linear = fields.Boolean(metadata={"description": "coefficients are recorded per fold"})
     has_predict_proba_by_default = fields.Boolean()
+    library = fields.String(metadata={"description": "lightgbm or xgboost for the boosting libraries' classes"})
+    constraints = fields.Dict(metadata={"description": "LightGBM / XGBoost: per parameter, the accepted "
+                                                       "alternatives the service checks (from their documentation)"})
+    withheld = fields.Dict(keys=fields.String(), values=fields.String(), metadata={
+        "description": "parameters a submission may not set, each with the reason"})
+    restricted = fields.Dict(metadata={"description": "parameters whose values the service narrows: the values "
+                                                      "that work here and why"})
+    native_categorical = fields.Boolean(metadata={"description": "takes model.categorical_features as categories"})
+    nested = fields.Dict(metadata={"description": "parameters holding nested catalog estimators: form one or list"})
+    target_functions = fields.Dict(keys=fields.String(), values=fields.String(), metadata={
+        "description": "TransformedTargetRegressor: allowed func names, each with its inverse_func"})
 
 
 class MetricOptionSchema(Schema):
@@ -83,6 +95,7 @@ class CatalogSchema(Schema):
     """What a submission may name: estimators, transformers and metrics."""
 
     sklearn_version = fields.String()
+    library_versions = fields.Dict(keys=fields.String(), values=fields.String())
     estimators = fields.List(fields.Nested(CatalogEntrySchema))
     transformers = fields.List(fields.Nested(CatalogEntrySchema))
     metrics = fields.List(fields.Nested(MetricSchema))

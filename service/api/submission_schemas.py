@@ -78,6 +78,10 @@ class ModelSchema(Schema):
     features = fields.List(fields.String(), load_default=None, allow_none=True, metadata={
         "description": "default: every column except target, id, group and time columns"})
     preprocess = fields.List(fields.Nested(PreprocessStepSchema), load_default=list)
+    categorical_features = fields.List(fields.String(), load_default=list, metadata={
+        "description": "categorical columns the estimator takes as categories itself (LightGBM, XGBoost, "
+                       "HistGradientBoosting*), by name; they need no encoder step",
+        "example": ["depot"]})
 
 
 class ValidationOptionsSchema(Schema):
@@ -155,6 +159,7 @@ class SubmissionRequestSchema(Schema):
                     PreprocessStep(s["transformer"], tuple(s["columns"]), s["params"])
                     for s in model["preprocess"]
                 ),
+                categorical_features=tuple(model["categorical_features"]),
             ),
             validation=ValidationSpec(data["validation"]["folds"], data["validation"]["repeats"],
                                       data["validation"].get("test"), _curve(data["validation"])),

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import json
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import lru_cache
 from pathlib import Path
 from types import MappingProxyType
@@ -31,6 +31,17 @@ class CatalogEntry:
     caps: Mapping[str, Mapping[str, int]]  # {param: {"max": n} | {"max_layers": n, "max_total_units": n}}
     task: str | None = None  # estimators only: "regression" | "classification"
     linear: bool = False  # the fitted model has coef_; its coefficients are recorded per fold
+    # LightGBM / XGBoost: {param: [alternative, ...]} checked by service.catalog.constraints; empty for
+    # scikit-learn's classes, which validate their own parameters.
+    constraints: Mapping[str, Any] = field(default_factory=dict)
+    withheld: Mapping[str, str] = field(default_factory=dict)  # parameters a submission may not set, and why
+    native_categorical: bool = False  # takes the columns in model.categorical_features as they are
+    library: str = "scikit-learn"
+    # Parameters holding nested catalog estimators: {param: {"form": "one"|"list", "max_members": n}}.
+    nested: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
+    target_functions: Mapping[str, str] = field(default_factory=dict)  # func name -> its inverse_func name
+    # {param: {"values": [...], "why": "..."}}: the values that work here, narrower than the class's own list.
+    restricted: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
 
     @property
     def param_names(self) -> list[str]:
@@ -95,6 +106,20 @@ class Catalog:
         """Return the names of every transformer, sorted."""
         return [e.name for e in self.transformers()]
 
+    def nested_of(self, name: str) -> Mapping[str, Mapping[str, Any]]:
+        """Return the parameters of estimator ``name`` that hold nested estimators (empty for most)."""
+        entry = self.estimator(name)
+        return {} if entry is None else entry.nested
+
+    def target_functions_of(self, name: str) -> Mapping[str, str]:
+        """Return the func names estimator ``name`` accepts, each with its inverse_func name."""
+        entry = self.estimator(name)
+        return {} if entry is None else entry.target_functions
+
+    def native_categorical_names(self) -> list[str]:
+        """Return the estimators that take declared categorical columns as they are, sorted."""
+        return [e.name for e in self._sorted() if e.kind == "estimator" and e.native_categorical]
+
     def to_document(self) -> dict[str, Any]:
         """Return the catalog as the plain JSON document it was read from (a fresh copy)."""
         copied: dict[str, Any] = json.loads(json.dumps(dict(self.document)))
@@ -118,6 +143,13 @@ def parse_catalog(document: Mapping[str, Any]) -> Catalog:
             caps=MappingProxyType({k: MappingProxyType(dict(v)) for k, v in raw.get("caps", {}).items()}),
             task=raw.get("task"),
             linear=bool(raw.get("linear", False)),
+            constraints=MappingProxyType(dict(raw.get("constraints", {}))),
+            withheld=MappingProxyType(dict(raw.get("withheld", {}))),
+            native_categorical=bool(raw.get("native_categorical", False)),
+            library=str(raw.get("library", "scikit-learn")),
+            nested=MappingProxyType({k: MappingProxyType(dict(v)) for k, v in raw.get("nested", {}).items()}),
+            target_functions=MappingProxyType(dict(raw.get("target_functions", {}))),
+            restricted=MappingProxyType({k: MappingProxyType(dict(v)) for k, v in raw.get("restricted", {}).items()}),
         )
     return Catalog(document=MappingProxyType(dict(document)), entries=MappingProxyType(entries))
 

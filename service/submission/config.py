@@ -13,17 +13,18 @@ import hashlib
 import json
 from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
-from typing import Any, Protocol
+from typing import Any
 
 from service.catalog.metric_keys import MetricRefused, resolve_metric
 from service.catalog.metrics import DEFAULT_METRICS
 from service.errors import ConfigRejected, FieldProblem
+from service.submission.model_checks import CatalogView, check_native, check_nested
 from service.submission.resolved import PreprocessStep, ResolvedConfig, ResolvedModel, SearchSpec, ValidationPlan
 
 MAX_FOLDS, MAX_REPEATS, MAX_FOLD_JOBS = 20, 10, 100
 MAX_CANDIDATES, MAX_SEARCH_FITS, MAX_INNER_FOLDS = 50, 2000, 10
 LEARNING_CURVE_DEFAULT = (0.1, 0.325, 0.55, 0.775, 1.0)  # scikit-learn learning_curve's default sizes
-ENCODERS = frozenset({"OneHotEncoder", "OrdinalEncoder"})
+ENCODERS = frozenset({"OneHotEncoder", "OrdinalEncoder", "TargetEncoder"})
 
 
 @dataclass(frozen=True)
@@ -42,6 +43,7 @@ class ModelSpec:
     params: Mapping[str, Any] = field(default_factory=dict)
     features: tuple[str, ...] | None = None
     preprocess: tuple[PreprocessStep, ...] = ()
+    categorical_features: tuple[str, ...] = ()  # taken as categories by the estimator itself
 
 
 @dataclass(frozen=True)
@@ -68,18 +70,6 @@ class SubmissionRequest:
     metrics: tuple[MetricRequest, ...] | None = None
     label: str = ""
     search: SearchSpec | None = None
-
-
-class CatalogView(Protocol):
-    """What resolution needs from the catalog (``service.catalog``)."""
-
-    def estimator_task(self, name: str) -> str | None: ...
-
-    def is_transformer(self, name: str) -> bool: ...
-
-    def estimator_names(self, task: str) -> list[str]: ...
-
-    def transformer_names(self) -> list[str]: ...
 
 
 class _Problems:
@@ -112,9 +102,13 @@ def resolve(request: SubmissionRequest, dataset: Mapping[str, Any], catalog: Cat
         problems.add("/model/estimator", f"estimator {model.estimator!r} {what}; for a {task} dataset "
                      f"use one of: {accepted}")
 
+    if est_task == task:
+        check_nested(model.estimator, model.params, task, catalog, problems.add)
     features = _resolve_features(model, dataset, kinds, reserved, problems)
     steps = _resolve_steps(model, features, problems, catalog)
-    _check_categoricals(features, kinds, steps, problems)
+    native = check_native(model.estimator, model.categorical_features, features, kinds, steps, catalog,
+                          problems.add)
+    _check_categoricals(features, kinds, steps, native, problems)
     metrics = _resolve_metrics(request.metrics, task, dataset, problems)
     plan = _resolve_plan(request.validation, dataset["fold_plan"], problems)
     if request.validation.learning_curve is not None:
@@ -123,7 +117,7 @@ def resolve(request: SubmissionRequest, dataset: Mapping[str, Any], catalog: Cat
     problems.raise_if_any()
     return ResolvedConfig(
         model=ResolvedModel(estimator=model.estimator, params=dict(model.params), features=tuple(features),
-                            preprocess=steps),
+                            preprocess=steps, categorical_features=native),
         validation=plan,
         metrics=tuple(metrics),
         search=search,
@@ -198,13 +192,15 @@ def _resolve_steps(
 
 
 def _check_categoricals(
-    features: list[str], kinds: Mapping[str, str], steps: tuple[PreprocessStep, ...], problems: _Problems
+    features: list[str], kinds: Mapping[str, str], steps: tuple[PreprocessStep, ...], native: tuple[str, ...],
+    problems: _Problems,
 ) -> None:
-    encoded = {c for s in steps if s.transformer in ENCODERS for c in s.columns}
+    encoded = {c for s in steps if s.transformer in ENCODERS for c in s.columns} | set(native)
     for i, name in enumerate(features):
         if kinds.get(name) == "categorical" and name not in encoded:
             problems.add(f"/model/features/{i}", f"feature {name!r} is categorical and needs an encoder: add a "
-                         f"preprocess step with OneHotEncoder or OrdinalEncoder for it")
+                         f"preprocess step with {' or '.join(sorted(ENCODERS))} for it, or, with an estimator "
+                         "that handles categories itself, list it in model.categorical_features")
 
 
 def _resolve_metrics(

@@ -69,19 +69,27 @@ class SearchSpec:
 
 @dataclass(frozen=True)
 class ResolvedModel:
-    """The estimator, its parameters, the features it sees (always named) and their preprocessing."""
+    """The estimator, its parameters, the features it sees (always named) and their preprocessing.
+
+    ``categorical_features``: the columns an estimator with native categorical support takes as
+    categories, by name (left out of the document when empty, so earlier fingerprints stand).
+    """
 
     estimator: str
     params: Mapping[str, Any]
     features: tuple[str, ...]
     preprocess: tuple[PreprocessStep, ...] = ()
+    categorical_features: tuple[str, ...] = ()
 
     def to_document(self) -> dict[str, Any]:
         """Return the model part of a configuration document."""
-        return {
+        document: dict[str, Any] = {
             "estimator": self.estimator, "params": dict(self.params), "features": list(self.features),
             "preprocess": [step.to_document() for step in self.preprocess],
         }
+        if self.categorical_features:
+            document["categorical_features"] = list(self.categorical_features)
+        return document
 
     @classmethod
     def from_document(cls, document: Mapping[str, Any]) -> ResolvedModel:
@@ -90,6 +98,7 @@ class ResolvedModel:
             estimator=str(document["estimator"]), params=dict(document.get("params") or {}),
             features=tuple(document["features"]),
             preprocess=tuple(PreprocessStep.from_document(s) for s in document.get("preprocess") or []),
+            categorical_features=tuple(document.get("categorical_features") or ()),
         )
 
 

@@ -19,13 +19,16 @@ from sklearn.base import BaseEstimator
 from sklearn.utils._param_validation import InvalidParameterError, StrOptions
 
 from service.catalog import CatalogEntry, load_catalog
+from service.catalog.constraints import problem as constraint_problem
 from service.catalog.metric_keys import target_floor
 from service.errors import FieldProblem
 from service.records import datasets
 from service.submission.resolved import ResolvedConfig, SearchSpec
 from service.vault import store
 from worker.jobs.runtime import WorkerContext
+from worker.learning.development import target_values
 from worker.learning.pipeline import entry_for, make_instance
+from worker.learning.target_domain import target_domain
 
 
 def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: str) -> dict[str, Any]:
@@ -53,6 +56,14 @@ def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: 
     problems.extend(target_range_problems(ctx, config, dataset_id))
     if problems:
         return _rejected(problems)
+    domain = target_domain(model.estimator, model.params) if config.task == "regression" else None
+    if domain is not None:
+        frame = store.load_development_frame(ctx.settings, dataset_id, columns=[config.target])
+        outside = domain.problem(target_values(frame[config.target], "regression"))
+        if outside is not None:
+            chosen = next((f"/model/params/{p}" for p in ("objective", "loss", "power", "func") if p in model.params),
+                          "/model/estimator")
+            return _rejected([FieldProblem(chosen, outside)])
     if hasattr(estimator, "predict_proba") or config.task != "classification":
         return {"ok": True, "has_proba": hasattr(estimator, "predict_proba")}
     return {"ok": True, "has_proba": False, "proba_settings": probability_settings(entry, model.params)}
@@ -122,6 +133,9 @@ def checked_instance(
     valid: dict[str, Any] = {}
     for name, value in params.items():
         pointer = f"{base}/{name}"
+        if name in entry.withheld:
+            problems.append(FieldProblem(pointer, f"{name} cannot be set on {entry.name}: {entry.withheld[name]}"))
+            continue
         if name not in entry.params:
             problems.append(FieldProblem(pointer, f"{entry.name} has no parameter {name!r}; accepted: "
                                          f"{', '.join(entry.param_names)}"))
@@ -130,11 +144,29 @@ def checked_instance(
             problems.append(FieldProblem(pointer, f"{name} is fixed to {entry.forced[name]!r} by the service "
                                          f"(one core per fold job; scale out with more workers), got {value!r}"))
             continue
-        probe = make_instance(entry, {name: value})
-        try:
-            probe._validate_params()
-        except InvalidParameterError as exc:
-            problems.append(FieldProblem(pointer, str(exc)))
+        if entry.target_functions and name in ("func", "inverse_func"):
+            valid[name] = value  # named from the allow-list, which the API checked
+            continue
+        if name in entry.nested:
+            # The API checked the nesting; each member's values are checked here, as the outer ones are.
+            members = value if isinstance(value, list) else [] if value is None else [value]
+            before = len(problems)
+            for k, member in enumerate(members):
+                where = f"{pointer}/{k}" if isinstance(value, list) else pointer
+                member_entry = entry_for(load_catalog(), member["estimator"], "estimator")
+                checked_instance(member_entry, member.get("params") or {}, f"{where}/params", problems)
+            if len(problems) == before:
+                valid[name] = value
+            continue
+        invalid = parameter_problem(entry, name, value)
+        if invalid is not None:
+            problems.append(FieldProblem(pointer, invalid))
+            continue
+        narrowed = entry.restricted.get(name)
+        if narrowed is not None and value not in narrowed["values"]:
+            accepted = ", ".join(repr(v) for v in narrowed["values"])
+            problems.append(FieldProblem(pointer, f"{name} must be one of {accepted} here ({narrowed['why']}), "
+                                         f"got {value!r}"))
             continue
         over = cap_problem(entry, name, value)
         if over is not None:
@@ -142,8 +174,25 @@ def checked_instance(
             continue
         valid[name] = value
     instance = make_instance(entry, valid)
-    instance._validate_params()  # each alone was valid; defaults and forced values are too
+    if not entry.constraints:
+        instance._validate_params()  # each alone was valid; defaults and forced values are too
     return instance
+
+
+def parameter_problem(entry: CatalogEntry, name: str, value: Any) -> str | None:
+    """Return why ``value`` is not valid for parameter ``name``, in scikit-learn's words, or None.
+
+    scikit-learn's classes validate themselves (``_validate_params``); LightGBM's and XGBoost's do
+    not, and are checked against the constraints their catalog entry states.
+    """
+    if entry.constraints:
+        return constraint_problem(entry.name, name, entry.constraints[name], value)
+    probe = make_instance(entry, {name: value})
+    try:
+        probe._validate_params()
+    except InvalidParameterError as exc:
+        return str(exc)
+    return None
 
 
 def search_problems(
@@ -197,8 +246,11 @@ def cap_problem(entry: CatalogEntry, name: str, value: Any) -> str | None:
                     f"{sum(sizes)} in {value!r}")
         return None
     largest = max(value) if isinstance(value, list | tuple) and value else value
-    if isinstance(largest, numbers.Real) and float(largest) > cap["max"]:
+    if isinstance(largest, numbers.Real) and "max" in cap and float(largest) > cap["max"]:
         return f"{name} must be at most {cap['max']} (a service cap), got {value!r}"
+    smallest = min(value) if isinstance(value, list | tuple) and value else value
+    if isinstance(smallest, numbers.Real) and "min" in cap and float(smallest) < cap["min"]:
+        return f"{name} must be at least {cap['min']} (a service cap), got {value!r}"
     return None
 
 

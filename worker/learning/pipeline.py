@@ -15,13 +15,17 @@ import importlib
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+import numpy as np
 from sklearn.base import BaseEstimator, clone
 from sklearn.compose import ColumnTransformer
 from sklearn.dummy import DummyClassifier, DummyRegressor
+from sklearn.experimental import enable_iterative_imputer  # noqa: F401  (IterativeImputer is experimental)
 from sklearn.pipeline import Pipeline
 
 from service.catalog import Catalog, CatalogEntry, load_catalog
 from service.submission.resolved import PreprocessStep, ResolvedModel
+from worker.learning.categories import STEP_NAME as NATIVE_STEP
+from worker.learning.categories import CategoryCodes, native_categorical_params
 
 PREPROCESS_STEP = "preprocess"
 MODEL_STEP = "model"
@@ -54,12 +58,40 @@ def effective_params(entry: CatalogEntry, params: Mapping[str, Any]) -> dict[str
     return {**entry.service_defaults, **params, **entry.forced}
 
 
-def make_instance(entry: CatalogEntry, params: Mapping[str, Any]) -> BaseEstimator:
-    """Instantiate an allow-listed class with its effective parameters (validated later, by fit)."""
+# TransformedTargetRegressor's functions, by the names the catalog allows (never code from a request).
+TARGET_FUNCTIONS: dict[str, Any] = {"log1p": np.log1p, "expm1": np.expm1, "sqrt": np.sqrt, "square": np.square}
+
+
+def make_instance(entry: CatalogEntry, params: Mapping[str, Any], catalog: Catalog | None = None) -> BaseEstimator:
+    """Instantiate an allow-listed class with its effective parameters (validated later, by fit).
+
+    Nested estimators (``{"estimator": name, "params": {...}}``, list members with a ``name``) are
+    built the same way from their own catalog entries; named target functions become numpy's.
+    """
     cls = getattr(importlib.import_module(entry.module), entry.name)
-    instance: BaseEstimator = cls()
-    instance.set_params(**{k: from_json(cls, k, v) for k, v in effective_params(entry, params).items()})
+    instance: BaseEstimator = cls(estimators=[]) if "estimators" in entry.nested else cls()
+    values = effective_params(entry, params)
+    converted: dict[str, Any] = {}
+    for name, value in values.items():
+        if name in entry.nested and value is not None:
+            converted[name] = _nested(catalog or load_catalog(), value)
+        elif name in ("func", "inverse_func") and entry.target_functions and isinstance(value, str):
+            converted[name] = TARGET_FUNCTIONS[value]
+        else:
+            converted[name] = from_json(cls, name, value)
+    func = values.get("func")
+    if isinstance(func, str) and entry.target_functions and values.get("inverse_func") is None:
+        converted["inverse_func"] = TARGET_FUNCTIONS[entry.target_functions[func]]
+    instance.set_params(**converted)
     return instance
+
+
+def _nested(catalog: Catalog, value: Any) -> Any:
+    """Build a nested estimator, or the (name, estimator) list of an ensemble's members."""
+    if isinstance(value, list):
+        return [(str(m["name"]), _nested(catalog, m)) for m in value]
+    member = entry_for(catalog, str(value["estimator"]), "estimator")
+    return make_instance(member, value.get("params") or {}, catalog)
 
 
 def from_json(cls: type[BaseEstimator], name: str, value: Any) -> Any:
@@ -82,24 +114,31 @@ def build_pipeline(
     """Return the unfitted pipeline for the model part of a resolved configuration."""
     catalog = catalog or load_catalog()
     features = list(model.features)
-    estimator = make_instance(entry_for(catalog, model.estimator, "estimator"), model.params)
+    estimator = make_instance(entry_for(catalog, model.estimator, "estimator"), model.params, catalog)
+    native = list(model.categorical_features)
+    if native:
+        estimator.set_params(**native_categorical_params(model.estimator, native))
     steps = model.preprocess
     by_name = uses_frame(features, column_kinds)
     if not steps and not by_name:
         return Pipeline([(MODEL_STEP, estimator)])
     # A frame keeps the ColumnTransformer even without steps: it hands the estimator the numpy
     # matrix it always saw, where a frame would change what some estimators do with its dtypes.
-    return Pipeline([(PREPROCESS_STEP, build_preprocessing(catalog, steps, features, by_name)),
+    return Pipeline([(PREPROCESS_STEP, build_preprocessing(catalog, steps, features, by_name, native)),
                      (MODEL_STEP, estimator)])
 
 
 def build_preprocessing(
-    catalog: Catalog, steps: Sequence[PreprocessStep], features: Sequence[str], by_name: bool
+    catalog: Catalog, steps: Sequence[PreprocessStep], features: Sequence[str], by_name: bool,
+    native: Sequence[str] = (),
 ) -> ColumnTransformer:
     """Return the ColumnTransformer for the preprocess steps; unnamed columns pass through.
 
     The steps are the resolved ones: every column is a feature and steps share a column only when
     they name exactly the same columns (``service.submission.config.resolve`` checks both).
+    Declared native categorical columns (``native``) come first, as pandas categoricals
+    (``worker.learning.categories``), and the output is then a pandas frame (dense: a frame holds no
+    sparse block), so the estimator sees their dtype and names.
     """
     chains: dict[tuple[str, ...], list[int]] = {}
     for i, step in enumerate(steps):
@@ -119,7 +158,12 @@ def build_preprocessing(
         else:
             name = "chain" + "_".join(str(i) for i in indices)
             transformers.append((name, Pipeline(parts), selector))
-    return ColumnTransformer(transformers, remainder="passthrough", verbose_feature_names_out=False)
+    if not native:
+        return ColumnTransformer(transformers, remainder="passthrough", verbose_feature_names_out=False)
+    selector = list(native) if by_name else [position[c] for c in native]
+    transformers.insert(0, (NATIVE_STEP, CategoryCodes(), selector))
+    return ColumnTransformer(transformers, remainder="passthrough", verbose_feature_names_out=False,
+                             sparse_threshold=0.0).set_output(transform="pandas")
 
 
 def output_feature_names(pipeline: Pipeline, features: Sequence[str]) -> list[str]:

@@ -194,3 +194,72 @@ def test_an_unknown_metric_is_refused_as_unknown_with_the_accepted_names() -> No
 ])
 def test_bad_choices_are_refused_with_what_is_accepted(dataset: dict[str, Any], metric: Any, words: str) -> None:
     assert words in _refusals(dataset, metric)["/metrics/0"]
+
+
+def test_native_categorical_columns_need_no_encoder() -> None:
+    # HistGradientBoosting, LightGBM and XGBoost take a declared categorical column as it is.
+    for estimator in ("HistGradientBoostingRegressor", "LGBMRegressor", "XGBRegressor"):
+        doc = resolve(_request(ModelSpec(estimator, categorical_features=("depot",))), DATASET,
+                      load_catalog()).to_document()
+        assert doc["model"]["categorical_features"] == ["depot"]
+    # Without a declaration the document (and so the fingerprint) is what it was before.
+    plain = resolve(_request(ModelSpec("Ridge", preprocess=(PreprocessStep("OneHotEncoder", ("depot",)),))),
+                    DATASET, load_catalog()).to_document()
+    assert "categorical_features" not in plain["model"]
+
+
+def test_native_categorical_declarations_are_checked() -> None:
+    with pytest.raises(ConfigRejected) as exc:
+        resolve(_request(ModelSpec("Ridge", categorical_features=("depot",))), DATASET, load_catalog())
+    found = _pointers(exc)
+    assert "no native categorical support" in found["/model/categorical_features"]
+    assert "LGBMRegressor" in found["/model/categorical_features"]
+    with pytest.raises(ConfigRejected) as exc:
+        resolve(_request(ModelSpec("LGBMRegressor", categorical_features=("depot", "stops", "nowhere"),
+                                   preprocess=(PreprocessStep("StandardScaler", ("stops",)),))),
+                DATASET, load_catalog())
+    found = _pointers(exc)
+    assert "numeric" in found["/model/categorical_features/1"]
+    assert "not among the features" in found["/model/categorical_features/2"]
+    with pytest.raises(ConfigRejected) as exc:
+        resolve(_request(ModelSpec("LGBMRegressor", categorical_features=("depot",),
+                                   preprocess=(PreprocessStep("OrdinalEncoder", ("depot",)),))),
+                DATASET, load_catalog())
+    assert "also in a preprocess step" in _pointers(exc)["/model/categorical_features/0"]
+
+
+def test_nested_estimators_are_declarative_capped_and_flat() -> None:
+    member = {"name": "ridge", "estimator": "Ridge"}
+    ok = resolve(_request(ModelSpec("VotingRegressor", params={"estimators": [member, {**member, "name": "r2"}]},
+                                    preprocess=(PreprocessStep("OneHotEncoder", ("depot",)),))),
+                 DATASET, load_catalog())
+    assert ok.model.params["estimators"][0] == member
+    with pytest.raises(ConfigRejected) as exc:
+        resolve(_request(ModelSpec("StackingRegressor", params={
+            "estimators": [member, member, {"name": "x__y", "estimator": "LogisticRegression"},
+                           {"name": "inner", "estimator": "VotingRegressor"}, member, member],
+            "final_estimator": "Ridge"}, preprocess=(PreprocessStep("OneHotEncoder", ("depot",)),))),
+            DATASET, load_catalog())
+    found = _pointers(exc)
+    assert "at most 5 estimators" in found["/model/params/estimators"]
+    assert "used twice" in found["/model/params/estimators/1/name"]
+    assert "is a classification estimator" in found["/model/params/estimators/2/estimator"]
+    assert "'__'" in found["/model/params/estimators/2/name"]
+    assert "nests estimators itself" in found["/model/params/estimators/3/estimator"]
+    assert "is an object" in found["/model/params/final_estimator"]
+
+
+def test_target_functions_are_named_from_the_allow_list() -> None:
+    def refused(params: dict[str, Any]) -> dict[str, str]:
+        with pytest.raises(ConfigRejected) as exc:
+            resolve(_request(ModelSpec("TransformedTargetRegressor", params=params,
+                                       preprocess=(PreprocessStep("OneHotEncoder", ("depot",)),))),
+                    DATASET, load_catalog())
+        return _pointers(exc)
+
+    assert "'log1p' (inverse_func 'expm1')" in refused({"func": "os.system"})["/model/params/func"]
+    assert "the inverse of 'sqrt' is 'square'" in refused({"func": "sqrt", "inverse_func": "expm1"})[
+        "/model/params/inverse_func"]
+    assert "needs a func" in refused({"inverse_func": "expm1"})["/model/params/inverse_func"]
+    resolve(_request(ModelSpec("TransformedTargetRegressor", params={"func": "log1p", "regressor": {
+        "estimator": "Ridge"}}, preprocess=(PreprocessStep("OneHotEncoder", ("depot",)),))), DATASET, load_catalog())

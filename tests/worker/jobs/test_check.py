@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from sklearn.datasets import load_breast_cancer, load_diabetes
-from sklearn.linear_model import Ridge
+from sklearn.linear_model import QuantileRegressor, Ridge
 from sklearn.utils._param_validation import InvalidParameterError
 
 from tests.support.worker_records import add_dataset, config_document
@@ -202,3 +202,49 @@ def test_a_deviance_the_target_range_leaves_undefined_is_refused(ctx: WorkerCont
     assert found["/metrics/1"] == ("metric 'gamma_deviance' is defined only for a target > 0; the development "
                                    "rows' target goes down to 0")
     assert check(dataset, "Ridge", metrics=["poisson_deviance"])["ok"] is True
+
+
+def test_boosting_parameters_are_checked_against_the_catalog(diabetes: dict[str, Any]) -> None:
+    # LightGBM's Parameters page: "1 < num_leaves <= 131072"; the service caps trees at 500 and leaves at 1024.
+    found = pointers(check(diabetes, "LGBMRegressor", params={
+        "num_leaves": 1, "n_estimators": 501, "objective": "binary", "n_jobs": 4, "learning_rate": 0.05}))
+    assert set(found) == {"/model/params/num_leaves", "/model/params/n_estimators", "/model/params/objective",
+                          "/model/params/n_jobs"}
+    assert found["/model/params/num_leaves"] == ("The 'num_leaves' parameter of LGBMRegressor must be an int in "
+                                                 "the range (1, 131072]. Got 1 instead.")
+    assert "at most 500 (a service cap)" in found["/model/params/n_estimators"]
+    assert "leaves" not in found["/model/params/n_estimators"]
+    assert "num_leaves must be at most 1024" in pointers(check(diabetes, "LGBMRegressor",
+                                                               params={"num_leaves": 2048}))["/model/params/num_leaves"]
+    assert check(diabetes, "LGBMRegressor", params={"num_leaves": 63, "max_depth": -1}) == {"ok": True,
+                                                                                           "has_proba": False}
+
+
+def test_xgboost_withheld_and_capped_parameters(diabetes: dict[str, Any], cancer: dict[str, Any]) -> None:
+    found = pointers(check(diabetes, "XGBRegressor", params={
+        "callbacks": None, "max_depth": 0, "tree_method": "gpu_hist", "enable_categorical": True}))
+    assert "callbacks are code" in found["/model/params/callbacks"]
+    assert "max_depth must be at least 1 (a service cap)" in found["/model/params/max_depth"]
+    assert "'tree_method' parameter of XGBRegressor must be one of 'hist', 'approx', 'exact' or None" in \
+        found["/model/params/tree_method"]
+    assert "model.categorical_features" in found["/model/params/enable_categorical"]
+    assert check(cancer, "XGBClassifier", params={"max_depth": 4}, metrics=["accuracy"]) == {"ok": True,
+                                                                                          "has_proba": True}
+    # A searched value is checked the same way, at its position.
+    config = config_document(diabetes, "XGBRegressor")
+    config["search"] = {"grid": {"max_depth": [3, 40]}, "distributions": None, "n_iter": None, "inner_folds": 3}
+    found = pointers(jobs.check_config(config, diabetes["id"]))
+    assert list(found) == ["/search/grid/max_depth/1"]
+
+
+def test_values_that_cannot_work_here_are_refused_up_front(diabetes: dict[str, Any]) -> None:
+    # scikit-learn still lists 'interior-point' for QuantileRegressor; scipy >= 1.11 has no such solver,
+    # and QuantileRegressor itself raises at fit (its own check of the scipy version).
+    with pytest.raises(ValueError, match="interior-point"):
+        QuantileRegressor(solver="interior-point").fit([[0.0], [1.0], [2.0]], [0.0, 1.0, 2.0])
+    found = pointers(check(diabetes, "QuantileRegressor", params={"solver": "interior-point"}))
+    assert "'highs', 'highs-ds', 'highs-ipm'" in found["/model/params/solver"]
+    assert check(diabetes, "QuantileRegressor", params={"solver": "highs-ds"})["ok"]
+    withheld = pointers(check(diabetes, "Ridge", preprocess=[
+        {"transformer": "IterativeImputer", "columns": ["bmi"], "params": {"estimator": "Ridge"}}]))
+    assert "not expressible in JSON" in withheld["/model/preprocess/0/params/estimator"]

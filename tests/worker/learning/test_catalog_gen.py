@@ -12,7 +12,15 @@ import pytest
 from sklearn.base import clone
 
 from service.catalog import CATALOG_FILE, load_catalog, parse_catalog
-from worker.learning.catalog_gen import ESTIMATORS, TRANSFORMERS, build_catalog, catalog_drift, estimator_class, render
+from worker.learning.catalog_gen import (
+    ESTIMATORS,
+    TRANSFORMERS,
+    build_catalog,
+    catalog_drift,
+    construct,
+    estimator_class,
+    render,
+)
 
 # The allow-list as the issue states it.
 ISSUE_ESTIMATORS = {
@@ -21,9 +29,12 @@ ISSUE_ESTIMATORS = {
     "RandomForestRegressor", "RandomForestClassifier", "ExtraTreesRegressor", "ExtraTreesClassifier",
     "GradientBoostingRegressor", "GradientBoostingClassifier", "HistGradientBoostingRegressor",
     "HistGradientBoostingClassifier", "MLPRegressor", "MLPClassifier", "DummyRegressor", "DummyClassifier",
+    # counts, amounts and quantiles; naive Bayes
+    "PoissonRegressor", "GammaRegressor", "TweedieRegressor", "HuberRegressor", "QuantileRegressor", "GaussianNB",
 }
 ISSUE_TRANSFORMERS = {"StandardScaler", "MinMaxScaler", "RobustScaler", "OneHotEncoder", "OrdinalEncoder",
-                      "SimpleImputer", "PolynomialFeatures"}
+                      "SimpleImputer", "PolynomialFeatures", "KNNImputer", "IterativeImputer", "MissingIndicator",
+                      "TargetEncoder", "SplineTransformer", "KBinsDiscretizer", "PCA"}
 
 
 def test_committed_catalog_matches_installed_sklearn() -> None:
@@ -62,8 +73,28 @@ def test_allow_list_is_the_issues_list() -> None:
     assert set(ESTIMATORS) == ISSUE_ESTIMATORS
     assert set(TRANSFORMERS) == ISSUE_TRANSFORMERS
     catalog = load_catalog()
-    assert {e.name for e in catalog.entries.values() if e.kind == "estimator"} == ISSUE_ESTIMATORS
+    boosting = {"LGBMRegressor", "LGBMClassifier", "XGBRegressor", "XGBClassifier"}
+    listed = {e.name for e in catalog.entries.values() if e.kind == "estimator"}
+    assert listed == ISSUE_ESTIMATORS | boosting | META_NAMES
     assert set(catalog.transformer_names()) == ISSUE_TRANSFORMERS
+
+
+META_NAMES = {"CalibratedClassifierCV", "VotingClassifier", "VotingRegressor", "StackingClassifier",
+              "StackingRegressor", "TransformedTargetRegressor"}
+
+
+@pytest.mark.parametrize("name", sorted(META_NAMES))
+def test_nesting_entries_describe_the_class(name: str) -> None:
+    entry = load_catalog().entries[name]
+    cls = estimator_class(name)
+    assert set(entry.params) == set(construct(cls).get_params(deep=False))
+    assert entry.nested and all(rule["form"] in ("one", "list") for rule in entry.nested.values())
+    assert all(rule.get("max_members", 5) == 5 for rule in entry.nested.values())
+    if "cv" in entry.params:
+        assert entry.caps["cv"] == {"max": 10}
+    if name == "TransformedTargetRegressor":
+        assert dict(entry.target_functions) == {"log1p": "expm1", "sqrt": "square"}
+        assert "transformer" in entry.withheld
 
 
 @pytest.mark.parametrize("name", sorted(ISSUE_ESTIMATORS | ISSUE_TRANSFORMERS))
