@@ -20,7 +20,7 @@ import pandas as pd
 import pytest
 from redis import Redis
 from sklearn.datasets import load_diabetes
-from sklearn.preprocessing import OneHotEncoder, OrdinalEncoder
+from sklearn.preprocessing import OneHotEncoder, OrdinalEncoder, TargetEncoder
 
 from service.catalog import load_catalog
 from service.records import holdout_releases, policies, submissions
@@ -33,6 +33,10 @@ from worker.jobs.verdict import give_verdict
 SECRET = "secret-depot-7"  # a category only the sealed rows hold
 KNOWN = ["north", "south"]
 ENCODERS = {"OneHotEncoder": OneHotEncoder, "OrdinalEncoder": OrdinalEncoder}
+# Whether a fixed category list that lacks a value makes transform raise on that value (checked against
+# scikit-learn below): TargetEncoder encodes an unknown category with the target mean instead.
+CATEGORY_LIST_RAISES = {"OneHotEncoder": True, "OrdinalEncoder": True, "TargetEncoder": False}
+CATEGORY_LISTS = {**ENCODERS, "TargetEncoder": TargetEncoder}
 
 # Each catalog value of a parameter that decides what an encoder does with a value it was not fitted
 # on, and whether that value makes transform raise (checked against scikit-learn below).
@@ -79,7 +83,25 @@ def test_the_table_covers_every_unknown_handling_the_catalog_allows() -> None:
     assert _catalog_unknown_handling() == set(UNKNOWN_HANDLING)
     # ... and every transformer that takes a category list is an encoder enumerated here.
     with_categories = {e.name for e in load_catalog().transformers() if "categories" in e.params}
-    assert with_categories == set(ENCODERS)
+    assert with_categories == set(CATEGORY_LIST_RAISES)
+
+
+@pytest.mark.parametrize("name", sorted(CATEGORY_LIST_RAISES))
+def test_a_category_list_raises_exactly_where_the_table_says(name: str) -> None:
+    dev, hold = _frames()
+    params: dict[str, Any] = {"categories": [KNOWN]}
+    if name == "TargetEncoder":
+        params.update(target_type="continuous", random_state=0)
+    encoder = CATEGORY_LISTS[name](**params).fit(dev[["depot"]], dev["target"])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            encoder.transform(hold[["depot"]])
+            raised = False
+        except ValueError as exc:
+            raised = True
+            assert SECRET in str(exc)
+    assert raised is CATEGORY_LIST_RAISES[name]
 
 
 @pytest.mark.parametrize(("name", "handling"), sorted(UNKNOWN_HANDLING))
@@ -104,8 +126,9 @@ def _cases() -> dict[str, dict[str, Any]]:
         cases[f"{name}-{handling}"] = {"raises": raises, "features": ["depot", "age"], "preprocess": [
             {"transformer": name, "columns": ["depot"], "params": _encoder_params(name, handling)}]}
     for name in ENCODERS:  # a category list that lacks the sealed value, with unknowns refused
-        cases[f"{name}-categories"] = {"raises": True, "features": ["depot", "age"], "preprocess": [
-            {"transformer": name, "columns": ["depot"], "params": {"categories": [KNOWN]}}]}
+        cases[f"{name}-categories"] = {"raises": CATEGORY_LIST_RAISES[name], "features": ["depot", "age"],
+                                       "preprocess": [{"transformer": name, "columns": ["depot"],
+                                                       "params": {"categories": [KNOWN]}}]}
     # An estimator that refuses NaN, on a column whose missing value only the seal holds ...
     cases["Ridge-nan"] = {"raises": True, "features": ["bmi", "age"], "preprocess": []}
     # ... and an imputer in front of it, which makes it run.
