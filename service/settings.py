@@ -26,6 +26,7 @@ _ENV_NAMES: dict[str, str] = {
     "queue_name": "SEALFOLD_QUEUE",
     "fold_timeout_seconds": "SEALFOLD_FOLD_TIMEOUT",
     "check_timeout_seconds": "SEALFOLD_CHECK_TIMEOUT",
+    "memory_limit_mib": "SEALFOLD_MEMORY_LIMIT_MIB",
     "min_rows": "SEALFOLD_MIN_ROWS",
     "log_level": "SEALFOLD_LOG_LEVEL",
 }
@@ -46,6 +47,9 @@ class Settings:
     queue_name: str = "sealfold"
     fold_timeout_seconds: int = 3600
     check_timeout_seconds: float = 10.0
+    # What a fold or holdout process may add to its address space (RLIMIT_AS) while it runs a job, in MiB
+    # (0: no limit); beyond it the job fails with "memory limit N MiB exceeded" and is not retried.
+    memory_limit_mib: int = 4096
     min_rows: int = 50
     log_level: str = "INFO"
     extra: Mapping[str, Any] = field(default_factory=dict)
@@ -58,6 +62,8 @@ class Settings:
                 raise SettingsError(f"{name} must be 0 (no limit) or positive, got {getattr(self, name)}")
         if self.fold_timeout_seconds < 1:
             raise SettingsError(f"fold_timeout_seconds must be positive, got {self.fold_timeout_seconds}")
+        if self.memory_limit_mib < 0:
+            raise SettingsError(f"memory_limit_mib must be 0 (no limit) or positive, got {self.memory_limit_mib}")
         if self.min_rows < 10:
             raise SettingsError(f"min_rows must be at least 10, got {self.min_rows}")
 

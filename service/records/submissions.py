@@ -81,9 +81,13 @@ def list_for_team(
 
 
 def transition(
-    engine: Engine, sub_id: str, state: str, from_states: tuple[str, ...], error: str | None = None
+    engine: Engine, sub_id: str, state: str, from_states: tuple[str, ...], error: str | None = None,
+    cause: str | None = None,
 ) -> bool:
-    """Move a submission to ``state`` if it is in one of ``from_states``; return whether it moved."""
+    """Move a submission to ``state`` if it is in one of ``from_states``; return whether it moved.
+
+    ``cause`` names why a failed submission failed (``service.vocabulary.FAILURE_CAUSES``).
+    """
     now = utcnow()
     values: dict[str, Any] = {"state": state, "updated_at": now}
     if state == "running":
@@ -92,6 +96,8 @@ def transition(
         values["finished_at"] = now
     if error is not None:
         values["error"] = error
+    if cause is not None:
+        values["failure_cause"] = cause
     with engine.begin() as conn:
         result = conn.execute(
             update(submissions)

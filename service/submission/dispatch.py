@@ -30,6 +30,8 @@ from typing import Any
 from redis import Redis
 from redis.exceptions import RedisError
 from rq import Queue, Retry
+from rq.command import send_stop_job_command
+from rq.exceptions import InvalidJobOperation
 from rq.job import Dependency, Job, JobStatus
 from rq.registry import DeferredJobRegistry, ScheduledJobRegistry, StartedJobRegistry
 from rq.serializers import JSONSerializer
@@ -127,16 +129,48 @@ def check_config_remote(
     return answer
 
 
-def cancel_jobs(redis: Redis, settings: Settings, sub_id: str, validation: ValidationPlan) -> None:
-    """Cancel a submission's queued jobs; running ones see the canceled state and stop early."""
+def submission_job_ids(sub_id: str, validation: ValidationPlan) -> list[str]:
+    """Return the ids of every job of a submission's chain."""
     ids = [fold_job_id(sub_id, r, f) for r, f in fold_cells(validation)]
-    ids += [summary_job_id(sub_id), holdout_job_id(sub_id), verdict_job_id(sub_id)]
+    return [*ids, summary_job_id(sub_id), holdout_job_id(sub_id), verdict_job_id(sub_id)]
+
+
+def stop_jobs(
+    redis: Redis, settings: Settings, sub_id: str, validation: ValidationPlan, *, spare: str | None = None
+) -> int:
+    """Stop a finished (failed, canceled) submission's remaining jobs; return how many were stopped.
+
+    Queued and deferred jobs are canceled; running ones -- the holdout's refit included -- get RQ's
+    stop command, which kills the process doing the work (the holdout's horse, the worker's fold
+    process), so a failed submission costs no more worker time. ``spare`` is the job asking (it
+    ends by itself). A job that still starts (a race with a worker taking it) finds its submission
+    finished and skips.
+    """
+    stopped = 0
     try:
-        for job in Job.fetch_many(ids, connection=redis, serializer=JSONSerializer):
-            if job is not None and job.get_status(refresh=False) in (JobStatus.QUEUED, JobStatus.DEFERRED):
+        jobs = Job.fetch_many([j for j in submission_job_ids(sub_id, validation) if j != spare],
+                              connection=redis, serializer=JSONSerializer)
+        for job in jobs:
+            if job is None:
+                continue
+            status = job.get_status(refresh=False)
+            if status in (JobStatus.QUEUED, JobStatus.DEFERRED, JobStatus.SCHEDULED):
                 job.cancel()
+                stopped += 1
+            elif status == JobStatus.STARTED and job.worker_name:
+                try:
+                    send_stop_job_command(redis, job.id, serializer=JSONSerializer)
+                    stopped += 1
+                except InvalidJobOperation:
+                    pass  # it ended meanwhile
     except RedisError as exc:
-        log.warning("could not cancel jobs of %s: %s", sub_id, exc)
+        log.warning("could not stop the jobs of %s: %s", sub_id, exc)
+    return stopped
+
+
+def cancel_jobs(redis: Redis, settings: Settings, sub_id: str, validation: ValidationPlan) -> None:
+    """Stop a canceled submission's jobs, queued and running."""
+    stop_jobs(redis, settings, sub_id, validation)
 
 
 def reconcile(engine: Engine, redis: Redis, settings: Settings, min_age_seconds: float = 20.0) -> int:

@@ -16,6 +16,7 @@ from __future__ import annotations
 import importlib
 import logging
 import random
+import signal
 import time
 from collections.abc import Callable, Iterator
 from contextlib import AbstractContextManager, contextmanager
@@ -36,6 +37,7 @@ from service.records.schema import require_current
 from service.settings import Settings
 from service.submission import dispatch
 from worker.jobs import ALLOWED_JOBS, runtime
+from worker.jobs.failure import AVOID_WORKERS, limit_memory
 from worker.jobs.runtime import repeating
 from worker.process import placement
 from worker.process.fold_process import FoldProcess
@@ -110,13 +112,55 @@ class AllowListedJob(Job):
 
 
 class SealfoldWorker(Worker):
-    """RQ's forking worker, plus a fresh DB pool in each work horse and the reconciler in maintenance."""
+    """RQ's forking worker, plus a fresh DB pool in each work horse and the reconciler in maintenance.
+
+    It also leaves a job whose data it could not read to another worker (``leave_to_another``), and
+    stops an in-process job on RQ's stop command by killing its fold process (``kill_horse``).
+    """
 
     job_class = AllowListedJob
+    in_process_job: str | None = None  # the id of the job running in this process, if any
+    leave_pause_seconds = 0.5
 
     def main_work_horse(self, job: Job, queue: Queue) -> None:
         runtime.after_fork()
+        # The horse (the holdout job) ends with its job, so the limit ends with it too.
+        limit_memory(runtime.current().settings.memory_limit_mib)
         super().main_work_horse(job, queue)
+
+    def kill_horse(self, sig: signal.Signals = signal.SIGKILL) -> None:
+        """Stop the current job: a horse as RQ does, an in-process fold by killing the fold process.
+
+        RQ's own version would signal the process group of a stale horse pid (or of this worker) when
+        the job runs here; the other in-process jobs are short and end by themselves.
+        """
+        if self.in_process_job is None:
+            super().kill_horse(sig)
+            return
+        runner = runtime.fold_runner()
+        if isinstance(runner, FoldProcess):
+            runner.kill()  # the job's wait on it ends with FoldProcessDied; RQ marks the job stopped
+
+    def leave_to_another(self, job: Job, queue: Queue) -> bool:
+        """Put back a job this worker could not read the data of, when another live worker can take it.
+
+        ``worker.jobs.failure`` adds a worker to a job's avoid list when the job's data could not be
+        read there; the retry then goes to a worker not on the list. With no such worker, this one
+        runs it (and its last attempt fails the submission naming the missing data).
+        """
+        avoided = set(job.meta.get(AVOID_WORKERS, ()))
+        if self.name not in avoided:
+            return False
+        others = [w for w in Worker.all(queue=queue) if w.name not in avoided and w.name != self.name]
+        if not others:
+            return False
+        with self.connection.pipeline() as pipe:
+            pipe.lrem(queue.intermediate_queue_key, 1, job.id)
+            queue._enqueue_job(job, pipeline=pipe)
+            pipe.execute()
+        log.info("job %s could not read its data here; left to %s", job.id, ", ".join(w.name for w in others))
+        time.sleep(self.leave_pause_seconds)  # let another worker take it first
+        return True
 
     def execute_job(self, job: Job, queue: Queue) -> None:
         """Run the job in this process when ``worker.process.placement`` says so; fork a horse for the rest.
@@ -125,6 +169,9 @@ class SealfoldWorker(Worker):
         forking worker does while it waits for its horse, so a killed worker's job is declared
         abandoned and retried the same way whichever process ran it.
         """
+        if self.leave_to_another(job, queue):
+            self.set_state(WorkerStatus.IDLE)
+            return
         try:
             in_process = placement.runs_in_process(job.func_name)
         except DeserializationError:
@@ -135,7 +182,11 @@ class SealfoldWorker(Worker):
             execution = self.prepare_execution(job)
             if isinstance(job, AllowListedJob):
                 job.keepalive = lambda: self.heartbeats_while(job, execution)
-            self.perform_job(job, queue, execution)
+            self.in_process_job = job.id
+            try:
+                self.perform_job(job, queue, execution)
+            finally:
+                self.in_process_job = None
             self.set_state(WorkerStatus.IDLE)
         self.enqueue_ready_dependents()
 
