@@ -32,6 +32,7 @@ from worker.jobs.runtime import WorkerContext
 log = logging.getLogger(__name__)
 
 AVOID_WORKERS = "sealfold_avoid_workers"  # job.meta key: workers that could not read the job's data
+LEFT_COUNT = "sealfold_left"  # job.meta key: how often a worker on that list handed the job back
 
 
 class MemoryLimitExceeded(Exception):

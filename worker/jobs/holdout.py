@@ -62,8 +62,13 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
             if isinstance(late, Skip):
                 return late.answer
             time.sleep(POLL_SECONDS)
-    with _heartbeat(ctx, submission_id, token):
-        return _score(ctx, submission_id, sub, dataset, token)
+    try:
+        with _heartbeat(ctx, submission_id, token):
+            return _score(ctx, submission_id, sub, dataset, token)
+    except BaseException:
+        # Nothing was stored: let the retry claim the computation now rather than after the stale limit.
+        holdout_claims.release(engine, submission_id, token)
+        raise
 
 
 def _score(

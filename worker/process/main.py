@@ -37,7 +37,7 @@ from service.records.schema import require_current
 from service.settings import Settings
 from service.submission import dispatch
 from worker.jobs import ALLOWED_JOBS, runtime
-from worker.jobs.failure import AVOID_WORKERS, limit_memory
+from worker.jobs.failure import AVOID_WORKERS, LEFT_COUNT, limit_memory
 from worker.jobs.runtime import repeating
 from worker.process import placement
 from worker.process.fold_process import FoldProcess
@@ -121,6 +121,9 @@ class SealfoldWorker(Worker):
     job_class = AllowListedJob
     in_process_job: str | None = None  # the id of the job running in this process, if any
     leave_pause_seconds = 0.5
+    # A worker's registration outlives it by up to its TTL, so "another worker" may be a dead one: after
+    # this many hand-backs (some 10 s) the job runs here anyway, and its last attempt names the missing data.
+    leave_limit = 20
 
     def main_work_horse(self, job: Job, queue: Queue) -> None:
         runtime.after_fork()
@@ -149,11 +152,14 @@ class SealfoldWorker(Worker):
         runs it (and its last attempt fails the submission naming the missing data).
         """
         avoided = set(job.meta.get(AVOID_WORKERS, ()))
-        if self.name not in avoided:
+        left = int(job.meta.get(LEFT_COUNT, 0))
+        if self.name not in avoided or left >= self.leave_limit:
             return False
         others = [w for w in Worker.all(queue=queue) if w.name not in avoided and w.name != self.name]
         if not others:
             return False
+        job.meta[LEFT_COUNT] = left + 1
+        job.save_meta()
         with self.connection.pipeline() as pipe:
             pipe.lrem(queue.intermediate_queue_key, 1, job.id)
             queue._enqueue_job(job, pipeline=pipe)
