@@ -14,6 +14,7 @@ import numbers
 from collections.abc import Mapping
 from typing import Any
 
+import numpy as np
 from sklearn.base import BaseEstimator
 from sklearn.utils._param_validation import InvalidParameterError
 
@@ -66,6 +67,10 @@ def checked_instance(
         if name in entry.forced and value != entry.forced[name]:
             problems.append(FieldProblem(pointer, f"{name} is fixed to {entry.forced[name]!r} by the service "
                                          f"(one core per fold job; scale out with more workers), got {value!r}"))
+            continue
+        over = value_size_problem(name, value) or dtype_problem(entry, name, value)
+        if over is not None:  # before scikit-learn sees it: numpy sizes a dtype string as it parses it
+            problems.append(FieldProblem(pointer, over))
             continue
         probe = make_instance(entry, {name: value})
         try:
@@ -120,10 +125,47 @@ def search_problems(
     return problems
 
 
+def value_size_problem(name: str, value: Any) -> str | None:
+    """Return why a value's strings or lists exceed the catalog's value caps (``value_caps``), or None."""
+    caps = load_catalog().document.get("value_caps", {})
+    longest, most = int(caps.get("max_string_length", 256)), int(caps.get("max_list_items", 10_000))
+    pending = [value]
+    while pending:
+        item = pending.pop()
+        if isinstance(item, str) and len(item) > longest:
+            return (f"{name}: strings may have at most {longest} characters (a service cap), got one of "
+                    f"{len(item)}")
+        if isinstance(item, list | tuple):
+            if len(item) > most:
+                return f"{name}: lists may have at most {most} items (a service cap), got {len(item)}"
+            pending.extend(item)
+        elif isinstance(item, Mapping):
+            if len(item) > most:
+                return f"{name}: objects may have at most {most} members (a service cap), got {len(item)}"
+            pending.extend(item.keys())
+            pending.extend(item.values())
+    return None
+
+
+def dtype_problem(entry: CatalogEntry, name: str, value: Any) -> str | None:
+    """Return why an encoder's ``dtype`` is refused: only numeric types up to the cap's bytes per value."""
+    cap = entry.caps.get(name, {}).get("max_itemsize_bytes")
+    if cap is None:
+        return None
+    try:
+        parsed = np.dtype(value)
+    except (TypeError, ValueError):
+        return f"{name} must name a numeric type such as 'float64', got {value!r}"
+    if parsed.kind not in "biuf" or parsed.itemsize > cap:
+        return (f"{name} must be a numeric type of at most {cap} bytes per value (a service cap), got {value!r} "
+                f"({parsed.itemsize} bytes per value)")
+    return None
+
+
 def cap_problem(entry: CatalogEntry, name: str, value: Any) -> str | None:
     """Return why ``value`` exceeds the service cap on parameter ``name``, or None."""
     cap = entry.caps.get(name)
-    if cap is None or value is None or isinstance(value, bool):
+    if cap is None or value is None or isinstance(value, bool) or "max_itemsize_bytes" in cap:
         return None
     if name == "hidden_layer_sizes":
         sizes = [int(value)] if isinstance(value, numbers.Integral) else [int(v) for v in value]

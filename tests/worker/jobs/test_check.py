@@ -78,6 +78,10 @@ def test_forced_n_jobs_cannot_be_changed(diabetes: dict[str, Any]) -> None:
     ("MLPRegressor", {"hidden_layer_sizes": [600, 600]}, "/model/params/hidden_layer_sizes", "1024 units"),
     ("MLPRegressor", {"hidden_layer_sizes": [8, 8, 8, 8, 8]}, "/model/params/hidden_layer_sizes", "4 layers"),
     ("SVR", {"cache_size": 4096}, "/model/params/cache_size", "at most 1024"),
+    ("KNeighborsRegressor", {"n_neighbors": 1001}, "/model/params/n_neighbors", "at most 1000"),
+    ("MLPRegressor", {"max_fun": 50_001}, "/model/params/max_fun", "at most 50000"),
+    ("SVR", {"kernel": "r" * 257}, "/model/params/kernel", "at most 256 characters"),
+    ("MLPRegressor", {"hidden_layer_sizes": [1] * 10_001}, "/model/params/hidden_layer_sizes", "at most 10000 items"),
 ])
 def test_caps(diabetes: dict[str, Any], estimator: str, params: dict[str, Any], pointer: str, words: str) -> None:
     found = pointers(check(diabetes, estimator, params=params))
@@ -109,6 +113,22 @@ def test_transformer_parameters(diabetes: dict[str, Any]) -> None:
     assert "'with_mean' parameter of StandardScaler" in found["/model/preprocess/0/params/with_mean"]
     assert "at most 3" in found["/model/preprocess/1/params/degree"]
     assert "accepted: add_indicator, copy" in found["/model/preprocess/2/params/strategi"]
+
+
+@pytest.mark.parametrize("dtype", ["U100000", "<U100000", "object", "complex128", "S9", "float128"])
+def test_encoder_dtypes_are_numeric_and_small(ctx: WorkerContext, dtype: str) -> None:
+    # A 100,000-character unicode dtype makes the encoder's output 400,000 bytes per cell (numpy's
+    # dtype("U100000").itemsize); only numeric types of at most 8 bytes are allowed.
+    frame = load_diabetes(as_frame=True).frame
+    frame["sex"] = pd.Series(["f" if v > 0 else "m" for v in frame["sex"]], dtype="str")
+    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression")
+    for encoder in ("OneHotEncoder", "OrdinalEncoder"):
+        steps = [{"transformer": encoder, "columns": ["sex"], "params": {"dtype": dtype}}]
+        found = pointers(check(dataset, "Ridge", preprocess=steps))
+        assert list(found) == ["/model/preprocess/0/params/dtype"]
+        assert "numeric type" in found["/model/preprocess/0/params/dtype"]
+    fine = [{"transformer": "OneHotEncoder", "columns": ["sex"], "params": {"dtype": "float32"}}]
+    assert check(dataset, "Ridge", preprocess=fine)["ok"] is True
 
 
 def test_a_document_the_api_never_resolved_is_refused_before_any_import(diabetes: dict[str, Any]) -> None:
