@@ -186,7 +186,8 @@ def test_a_fold_over_the_memory_limit_fails_naming_the_limit(tight_stack: Stack)
     X, y = make_regression(n_samples=20000, n_features=4, noise=1.0, random_state=3)
     frame = pd.DataFrame(X, columns=[f"x{i}" for i in range(4)]).assign(y=y)
     ds = register(stack.client("steward"), frame, name="memory", target="y", task="regression")
-    doc = stack.wait_for(_submit(stack, ds["id"], "KNeighborsRegressor", {"algorithm": "brute", "metric": "cosine"}), timeout=120)
+    sub_id = _submit(stack, ds["id"], "KNeighborsRegressor", {"algorithm": "brute", "metric": "cosine"})
+    doc = stack.wait_for(sub_id, timeout=120)
     assert doc["state"] == "failed", doc
     assert doc["failure_cause"] == "memory_limit", doc
     assert "memory limit 300 MiB exceeded" in doc["error"], doc["error"]
