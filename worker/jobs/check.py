@@ -23,17 +23,22 @@ from service.errors import FieldProblem
 from service.records import datasets
 from service.submission.resolved import ResolvedConfig, SearchSpec
 from worker.jobs.runtime import WorkerContext
+from worker.jobs.trial_fit import trial_fit_problems
 from worker.learning.pipeline import entry_for, make_instance
 
 
 def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: str) -> dict[str, Any]:
     """Answer ``{"ok": true, "has_proba"}`` or ``{"ok": false, "problems": [...]}``.
 
+    Valid parameters are then tried in a quick fit on a sample of development rows
+    (``worker.jobs.trial_fit``), so a configuration that cannot fit at all is refused here.
+
     ``has_proba`` comes from the instance: whether ``predict_proba`` exists can depend on the
     parameters (``SVC(probability=True)``, ``SGDClassifier(loss="log_loss")``), which the catalog
     cannot say.
     """
-    if datasets.get_internal(ctx.engine, dataset_id) is None:
+    dataset = datasets.get_internal(ctx.engine, dataset_id)
+    if dataset is None:
         return _rejected([FieldProblem("/dataset", f"no dataset {dataset_id!r}")])
     catalog = load_catalog()
     config = ResolvedConfig.from_document(config_doc)
@@ -48,6 +53,9 @@ def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: 
         width = output_width_problem(step_entry, transformer, len(step.columns))
         if width is not None:
             problems.append(FieldProblem(f"/model/preprocess/{i}/columns", width))
+    if problems:
+        return _rejected(problems)
+    problems = trial_fit_problems(ctx.settings, dataset, model)
     if problems:
         return _rejected(problems)
     return {"ok": True, "has_proba": hasattr(estimator, "predict_proba")}

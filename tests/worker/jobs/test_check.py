@@ -194,3 +194,71 @@ def test_json_lists_for_tuple_parameters_pass_validation(diabetes: dict[str, Any
     steps = [{"transformer": "MinMaxScaler", "columns": ["age"], "params": {"feature_range": "wide"}}]
     found = pointers(check(diabetes, "Ridge", preprocess=steps))
     assert "'feature_range' parameter of MinMaxScaler" in found["/model/preprocess/0/params/feature_range"]
+
+
+# -- the trial fit: a configuration that cannot fit at all is refused, naming the step ----------------------
+
+def _sklearn_error(fit: Any) -> str:
+    with pytest.raises(Exception) as raised:
+        fit()
+    return f"{type(raised.value).__name__}: {raised.value}"
+
+
+def test_missing_values_fed_to_an_estimator_that_refuses_them(ctx: WorkerContext) -> None:
+    # Five missing bmi values among 420 development rows, at the end of them: the sample still sees them.
+    frame = load_diabetes(as_frame=True).frame.sort_values("bmi").reset_index(drop=True)
+    frame.loc[415:419, "bmi"] = np.nan
+    dataset = add_dataset(ctx, frame.iloc[:420], frame.iloc[420:], "target", "regression")
+    dev = frame.iloc[:420]
+    # scikit-learn's own words for the same fit (Ridge refuses NaN in X):
+    words = _sklearn_error(lambda: Ridge().fit(dev.drop(columns="target").to_numpy(), dev["target"].to_numpy()))
+    found = pointers(check(dataset, "Ridge"))
+    assert list(found) == ["/model/estimator"]
+    assert "Ridge" in found["/model/estimator"] and words.split(".")[0] in found["/model/estimator"]
+    imputed = [{"transformer": "SimpleImputer", "columns": ["bmi"], "params": {"strategy": "median"}}]
+    assert check(dataset, "Ridge", preprocess=imputed)["ok"] is True
+
+
+def test_a_mean_imputer_on_a_text_column_names_its_step(ctx: WorkerContext) -> None:
+    from sklearn.impute import SimpleImputer
+
+    frame = load_diabetes(as_frame=True).frame
+    frame["sex"] = pd.Series(["f" if v > 0 else "m" for v in frame["sex"]], dtype="str")
+    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression")
+    words = _sklearn_error(lambda: SimpleImputer(strategy="mean").fit(frame[["sex"]].astype(object)))
+    steps = [{"transformer": "StandardScaler", "columns": ["age"], "params": {}},
+             {"transformer": "SimpleImputer", "columns": ["sex"], "params": {"strategy": "mean"}},
+             {"transformer": "OneHotEncoder", "columns": ["sex"], "params": {}}]
+    found = pointers(check(dataset, "Ridge", preprocess=steps))
+    assert list(found) == ["/model/preprocess/1"]
+    assert "SimpleImputer on sex" in found["/model/preprocess/1"]
+    assert words.split(":")[0] in found["/model/preprocess/1"] and "non-numeric" in found["/model/preprocess/1"]
+
+
+def test_an_incompatible_solver_and_penalty_is_refused(cancer: dict[str, Any]) -> None:
+    from sklearn.linear_model import LogisticRegression
+
+    X, y = load_breast_cancer(return_X_y=True)
+    with pytest.warns(FutureWarning):  # scikit-learn 1.8 deprecated penalty; it still refuses the pair
+        words = _sklearn_error(lambda: LogisticRegression(penalty="l1", solver="lbfgs").fit(X, y))
+    found = pointers(check(cancer, "LogisticRegression", params={"penalty": "l1", "solver": "lbfgs"},
+                           metrics=["accuracy"]))
+    assert list(found) == ["/model/estimator"]
+    assert words in found["/model/estimator"]
+
+
+def test_a_class_sorted_table_is_sampled_with_every_class(ctx: WorkerContext) -> None:
+    # scikit-learn's breast cancer table sorted by class: a prefix would hold one class only, and
+    # LogisticRegression refuses a single class; the seeded sample (plus rows of each class) holds both.
+    from worker.jobs.trial_fit import sample_rows
+    from worker.learning.development import load_development
+
+    frame = load_breast_cancer(as_frame=True).frame.sort_values("target", kind="stable")
+    frame.columns = [c.replace(" ", "_") for c in frame.columns]
+    dataset = add_dataset(ctx, frame.iloc[:500], frame.iloc[500:], "target", "classification", scheme="stratified")
+    assert check(dataset, "LogisticRegression", params={"max_iter": 5000}, metrics=["accuracy"])["ok"] is True
+    features = [c["name"] for c in dataset["columns"] if c["name"] != "target"]
+    data, _ = load_development(ctx.settings, dataset, features)
+    rows = sample_rows(data, "classification", 20)
+    assert set(np.unique(data.y[rows])) == set(np.unique(data.y))
+    assert np.array_equal(rows, sample_rows(data, "classification", 20))  # seeded: the same every time
