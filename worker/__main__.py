@@ -20,9 +20,12 @@ def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(prog="python -m worker", description="Run a sealfold RQ worker.")
     parser.add_argument("--burst", action="store_true", help="exit once the queues are empty")
     parser.add_argument("--name", default=None, help="worker name shown in RQ (default: random)")
+    parser.add_argument("--checker", action="store_true",
+                        help="serve only configuration checks, never folds (answers submissions while every "
+                             "fold worker is busy)")
     args = parser.parse_args(argv)
     try:
-        run_worker(Settings.load(), burst=args.burst, name=args.name)
+        run_worker(Settings.load(), burst=args.burst, name=args.name, checker=args.checker)
     except SchemaOutOfDate as exc:
         print(f"sealfold worker: {exc}", file=sys.stderr, flush=True)
         sys.exit(2)

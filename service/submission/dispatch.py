@@ -29,6 +29,7 @@ from typing import Any
 
 from redis import Redis
 from redis.exceptions import RedisError
+from redis.exceptions import TimeoutError as RedisTimeoutError
 from rq import Queue, Retry
 from rq.command import send_stop_job_command
 from rq.exceptions import InvalidJobOperation
@@ -101,26 +102,33 @@ def enqueue_submission(redis: Redis, settings: Settings, sub_id: str, validation
 def check_config_remote(
     redis: Redis, settings: Settings, config_doc: dict[str, Any], dataset_id: str
 ) -> dict[str, Any]:
-    """Ask a worker to check a configuration with scikit-learn's own validation; wait for its answer.
+    """Ask for a configuration check (scikit-learn's validation, then a trial fit); wait for its answer.
 
-    Raises ConfigRejected with the worker's field problems, or Unavailable when no worker answers.
+    The check queue is served by checkers (``sealfold worker --checker``: processes that never run
+    folds, so a check never waits behind a fold) and, between their jobs, by the fold workers. Raises
+    ConfigRejected with the field problems, or Unavailable when nothing serves the queue or no answer
+    comes within ``check_timeout_seconds``.
     """
     queue = Queue(settings.check_queue_name, connection=redis, serializer=JSONSerializer)
     try:
         if Worker.count(connection=redis, queue=queue) == 0:
-            raise Unavailable("no sealfold worker is running to check the configuration; start one with "
-                              "`sealfold worker`")
+            raise Unavailable("no sealfold checker or worker is running to check the configuration; start one "
+                              "with `sealfold worker --checker`")
         job = queue.enqueue_call(
             f"{JOB_MODULE}.check_config", args=(config_doc, dataset_id), result_ttl=60, failure_ttl=300,
             timeout=max(30, int(settings.check_timeout_seconds) * 3),
         )
-        result = job.latest_result(timeout=max(1, round(settings.check_timeout_seconds)))
+        try:
+            result = job.latest_result(timeout=max(1, round(settings.check_timeout_seconds)))
+        except RedisTimeoutError:  # the socket gave up before the block did: no answer in time, Redis is fine
+            result = None
     except RedisError as exc:
         raise Unavailable(f"the job queue is not reachable: {type(exc).__name__}") from exc
     if result is None or result.type != result.Type.SUCCESSFUL:
         raise Unavailable(
-            f"no worker finished checking the configuration within {settings.check_timeout_seconds:g} s"
-            if result is None else "the configuration check crashed in the worker; see the worker log"
+            f"no checker answered within {settings.check_timeout_seconds:g} s; run more checkers "
+            "(`sealfold worker --checker`)" if result is None
+            else "the configuration check crashed in the worker; see the worker log"
         )
     answer: dict[str, Any] = result.return_value or {}
     if not answer.get("ok"):

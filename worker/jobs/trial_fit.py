@@ -155,10 +155,7 @@ def sample_rows(data: DevelopmentData, task: str, size: int, seed: int = 0) -> n
 
 def _rows_missing_each_feature(data: DevelopmentData) -> list[np.ndarray]:
     X = data.features_of()
-    if isinstance(X, pd.DataFrame):
-        missing = X.isna().to_numpy()
-    else:
-        missing = np.isnan(np.asarray(X, dtype=np.float64))
+    missing = X.isna().to_numpy() if isinstance(X, pd.DataFrame) else np.isnan(np.asarray(X, dtype=np.float64))
     return [np.flatnonzero(missing[:, j]) for j in range(missing.shape[1]) if missing[:, j].any()]
 
 

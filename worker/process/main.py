@@ -273,10 +273,13 @@ def limit_threads() -> None:
     threadpool_limits(limits=1)
 
 
-def build_worker(settings: Settings, redis: Redis[Any], name: str | None = None) -> SealfoldWorker:
-    """Return a worker on the check queue (served first) and the work queue."""
+def build_worker(
+    settings: Settings, redis: Redis[Any], name: str | None = None, *, checker: bool = False
+) -> SealfoldWorker:
+    """Return a worker on the check queue (served first) and the work queue; a checker serves checks only."""
+    queues = [settings.check_queue_name] if checker else [settings.check_queue_name, settings.queue_name]
     return SealfoldWorker(
-        [settings.check_queue_name, settings.queue_name],
+        queues,
         connection=redis,
         name=name,
         serializer=JSONSerializer,
@@ -289,8 +292,11 @@ def build_worker(settings: Settings, redis: Redis[Any], name: str | None = None)
     )
 
 
-def run_worker(settings: Settings, *, burst: bool = False, name: str | None = None) -> None:
+def run_worker(settings: Settings, *, burst: bool = False, name: str | None = None, checker: bool = False) -> None:
     """Install the worker context, preload, and work until stopped (or until the queues are empty).
+
+    A checker (``checker``) serves only the check queue and never runs a fold, so a submission's check
+    is answered while every fold worker is busy; it has no fold process.
 
     Raises ``SchemaOutOfDate`` before loading anything when the records database is not at this code's revision.
     """
@@ -304,10 +310,11 @@ def run_worker(settings: Settings, *, burst: bool = False, name: str | None = No
     runtime.install(runtime.WorkerContext(settings=settings, engine=engine))
     warm_up(runtime.current())
     folds = FoldProcess()
-    folds.start()  # forked now, warm and before any thread exists
-    runtime.install_fold_runner(folds)
+    if not checker:
+        folds.start()  # forked now, warm and before any thread exists
+        runtime.install_fold_runner(folds)
     redis = Redis.from_url(settings.redis_url)
-    worker = build_worker(settings, redis, name)
+    worker = build_worker(settings, redis, name, checker=checker)
     try:
         worker.work(burst=burst, logging_level=settings.log_level, with_scheduler=False)
     finally:
