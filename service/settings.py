@@ -27,6 +27,7 @@ _ENV_NAMES: dict[str, str] = {
     "fold_timeout_seconds": "SEALFOLD_FOLD_TIMEOUT",
     "check_timeout_seconds": "SEALFOLD_CHECK_TIMEOUT",
     "memory_limit_mib": "SEALFOLD_MEMORY_LIMIT_MIB",
+    "job_nice": "SEALFOLD_JOB_NICE",
     "min_rows": "SEALFOLD_MIN_ROWS",
     "log_level": "SEALFOLD_LOG_LEVEL",
 }
@@ -50,6 +51,9 @@ class Settings:
     # What a fold or holdout process may add to its address space (RLIMIT_AS) while it runs a job, in MiB
     # (0: no limit); beyond it the job fails with "memory limit N MiB exceeded" and is not retried.
     memory_limit_mib: int = 4096
+    # How much the processes that fit (a worker's fold process, the holdout's horse) lower their CPU priority
+    # (nice, 0-19), so the API and the checkers on the same host answer at once while folds run.
+    job_nice: int = 10
     min_rows: int = 50
     log_level: str = "INFO"
     extra: Mapping[str, Any] = field(default_factory=dict)
@@ -64,6 +68,8 @@ class Settings:
             raise SettingsError(f"fold_timeout_seconds must be positive, got {self.fold_timeout_seconds}")
         if self.memory_limit_mib < 0:
             raise SettingsError(f"memory_limit_mib must be 0 (no limit) or positive, got {self.memory_limit_mib}")
+        if not 0 <= self.job_nice <= 19:
+            raise SettingsError(f"job_nice must be between 0 and 19, got {self.job_nice}")
         if self.min_rows < 10:
             raise SettingsError(f"min_rows must be at least 10, got {self.min_rows}")
 

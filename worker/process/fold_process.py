@@ -173,6 +173,7 @@ def _serve(receive: int, send: int) -> None:
         libc.prctl(_PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)
         _keep_freed_memory(libc)
         runtime.after_fork()
+        os.nice(runtime.current().settings.job_nice)  # the API and checkers on this host come first
         while (request := _read_message(receive)) is not None:
             ctx = runtime.current()
             try:

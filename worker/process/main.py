@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import importlib
 import logging
+import os
 import random
 import signal
 import time
@@ -127,8 +128,10 @@ class SealfoldWorker(Worker):
 
     def main_work_horse(self, job: Job, queue: Queue) -> None:
         runtime.after_fork()
-        # The horse (the holdout job) ends with its job, so the limit ends with it too.
-        limit_memory(runtime.current().settings.memory_limit_mib)
+        # The horse (the holdout job) ends with its job, so the limit and the priority end with it too.
+        settings = runtime.current().settings
+        limit_memory(settings.memory_limit_mib)
+        os.nice(settings.job_nice)
         super().main_work_horse(job, queue)
 
     def kill_horse(self, sig: signal.Signals = signal.SIGKILL) -> None:
