@@ -28,6 +28,7 @@ _ENV_NAMES: dict[str, str] = {
     "check_timeout_seconds": "SEALFOLD_CHECK_TIMEOUT",
     "memory_limit_mib": "SEALFOLD_MEMORY_LIMIT_MIB",
     "job_nice": "SEALFOLD_JOB_NICE",
+    "team_max_live_submissions": "SEALFOLD_TEAM_MAX_LIVE",
     "min_rows": "SEALFOLD_MIN_ROWS",
     "log_level": "SEALFOLD_LOG_LEVEL",
 }
@@ -54,6 +55,9 @@ class Settings:
     # How much the processes that fit (a worker's fold process, the holdout's horse) lower their CPU priority
     # (nice, 0-19), so the API and the checkers on the same host answer at once while folds run.
     job_nice: int = 10
+    # Submissions one team may have queued or running at once (0: no limit); beyond it a POST answers 429,
+    # so one team's burst cannot fill the queue ahead of every other team.
+    team_max_live_submissions: int = 100
     min_rows: int = 50
     log_level: str = "INFO"
     extra: Mapping[str, Any] = field(default_factory=dict)
@@ -68,6 +72,9 @@ class Settings:
             raise SettingsError(f"fold_timeout_seconds must be positive, got {self.fold_timeout_seconds}")
         if self.memory_limit_mib < 0:
             raise SettingsError(f"memory_limit_mib must be 0 (no limit) or positive, got {self.memory_limit_mib}")
+        if self.team_max_live_submissions < 0:
+            raise SettingsError("team_max_live_submissions must be 0 (no limit) or positive, got "
+                                f"{self.team_max_live_submissions}")
         if not 0 <= self.job_nice <= 19:
             raise SettingsError(f"job_nice must be between 0 and 19, got {self.job_nice}")
         if self.min_rows < 10:

@@ -213,6 +213,16 @@ def unfinished(engine: Engine, limit: int = 500) -> list[dict[str, Any]]:
     return [dict(r) for r in rows]
 
 
+def count_live(engine: Engine, team: str) -> int:
+    """Count a team's queued and running submissions."""
+    with engine.connect() as conn:
+        count = conn.execute(
+            select(func.count()).select_from(submissions)
+            .where(submissions.c.team == team, submissions.c.state.in_(LIVE_STATES))
+        ).scalar_one()
+    return int(count)
+
+
 def count_by_state(engine: Engine) -> dict[str, int]:
     """Return how many submissions are in each state (for /metrics)."""
     with engine.connect() as conn:

@@ -18,6 +18,7 @@ dataset's rows once.
 from __future__ import annotations
 
 import dataclasses
+import logging
 import re
 import warnings
 from collections import OrderedDict
@@ -31,11 +32,13 @@ from sklearn.compose import ColumnTransformer
 from sklearn.pipeline import Pipeline
 
 from service.catalog import CatalogEntry, load_catalog
-from service.errors import FieldProblem
+from service.errors import FieldProblem, NotFound
 from service.settings import Settings
 from service.submission.resolved import ResolvedModel
 from worker.learning.development import DevelopmentData, column_kinds, load_development
 from worker.learning.pipeline import PREPROCESS_STEP, build_pipeline, entry_for
+
+log = logging.getLogger(__name__)
 
 SAMPLE_ROWS = 200
 LARGER_SAMPLE_ROWS = 2_000
@@ -49,8 +52,17 @@ _samples: OrderedDict[tuple[Any, ...], tuple[Any, np.ndarray, Any, np.ndarray]] 
 def trial_fit_problems(
     settings: Settings, dataset: Mapping[str, Any], model: ResolvedModel
 ) -> list[FieldProblem]:
-    """Fit ``model`` on a sample of development rows; return the problem of the step that failed, if any."""
-    small_X, small_y, large_X, large_y = _samples_of(settings, dataset, model.features)
+    """Fit ``model`` on a sample of development rows; return the problem of the step that failed, if any.
+
+    A checker that cannot read the rows (its data dir is not mounted) skips the trial fit and says so in
+    its log: the configuration is still checked by scikit-learn's validation, and a fold worker that
+    cannot read the rows either fails the submission naming the missing data.
+    """
+    try:
+        small_X, small_y, large_X, large_y = _samples_of(settings, dataset, model.features)
+    except (NotFound, OSError) as exc:
+        log.warning("trial fit skipped: the development rows of %s cannot be read here (%s)", dataset["id"], exc)
+        return []
     quick = quick_model(model)
     pipeline = build_pipeline(quick, column_kinds(dataset))
     error = _fit_error(pipeline, small_X, small_y)
