@@ -85,6 +85,10 @@ class Conflict(SealfoldError):
     code, status, title = "conflict", 409, "Conflict"
 
 
+class TeamLimitReached(SealfoldError):
+    code, status, title = "team-limit", 429, "Team limit reached"
+
+
 class Unavailable(SealfoldError):
     code, status, title = "unavailable", 503, "Service unavailable"
 

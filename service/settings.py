@@ -26,6 +26,9 @@ _ENV_NAMES: dict[str, str] = {
     "queue_name": "SEALFOLD_QUEUE",
     "fold_timeout_seconds": "SEALFOLD_FOLD_TIMEOUT",
     "check_timeout_seconds": "SEALFOLD_CHECK_TIMEOUT",
+    "memory_limit_mib": "SEALFOLD_MEMORY_LIMIT_MIB",
+    "job_nice": "SEALFOLD_JOB_NICE",
+    "team_max_live_submissions": "SEALFOLD_TEAM_MAX_LIVE",
     "min_rows": "SEALFOLD_MIN_ROWS",
     "log_level": "SEALFOLD_LOG_LEVEL",
     "log_format": "SEALFOLD_LOG_FORMAT",
@@ -49,6 +52,15 @@ class Settings:
     queue_name: str = "sealfold"
     fold_timeout_seconds: int = 3600
     check_timeout_seconds: float = 10.0
+    # What a fold or holdout process may add to its address space (RLIMIT_AS) while it runs a job, in MiB
+    # (0: no limit); beyond it the job fails with "memory limit N MiB exceeded" and is not retried.
+    memory_limit_mib: int = 4096
+    # How much the processes that fit (a worker's fold process, the holdout's horse) lower their CPU priority
+    # (nice, 0-19), so the API and the checkers on the same host answer at once while folds run.
+    job_nice: int = 10
+    # Submissions one team may have queued or running at once (0: no limit); beyond it a POST answers 429,
+    # so one team's burst cannot fill the queue ahead of every other team.
+    team_max_live_submissions: int = 100
     min_rows: int = 50
     log_level: str = "INFO"
     log_format: str = "json"  # "text" for reading in a terminal
@@ -70,6 +82,13 @@ class Settings:
             raise SettingsError(f"log_format must be json or text, got {self.log_format!r}")
         if self.min_free_disk_mb < 0:
             raise SettingsError(f"min_free_disk_mb must be 0 or positive, got {self.min_free_disk_mb}")
+        if self.memory_limit_mib < 0:
+            raise SettingsError(f"memory_limit_mib must be 0 (no limit) or positive, got {self.memory_limit_mib}")
+        if self.team_max_live_submissions < 0:
+            raise SettingsError("team_max_live_submissions must be 0 (no limit) or positive, got "
+                                f"{self.team_max_live_submissions}")
+        if not 0 <= self.job_nice <= 19:
+            raise SettingsError(f"job_nice must be between 0 and 19, got {self.job_nice}")
         if self.min_rows < 10:
             raise SettingsError(f"min_rows must be at least 10, got {self.min_rows}")
 

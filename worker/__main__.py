@@ -24,13 +24,16 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--name", default=None, help="worker name shown in RQ (default: random)")
     parser.add_argument("--healthcheck", action="store_true",
                         help="exit 0 when a worker of this host is registered in Redis with a live heartbeat, else 1")
+    parser.add_argument("--checker", action="store_true",
+                        help="serve only configuration checks, never folds (answers submissions while every "
+                             "fold worker is busy)")
     args = parser.parse_args(argv)
     settings = Settings.load()
     if args.healthcheck:
         sys.exit(healthcheck(settings))
     configure_logging(settings.log_level, settings.log_format)
     try:
-        run_worker(settings, burst=args.burst, name=args.name)
+        run_worker(settings, burst=args.burst, name=args.name, checker=args.checker)
     except SchemaOutOfDate as exc:
         print(f"sealfold worker: {exc}", file=sys.stderr, flush=True)
         sys.exit(2)

@@ -100,6 +100,8 @@ class CatalogSchema(Schema):
     transformers = fields.List(fields.Nested(CatalogEntrySchema))
     metrics = fields.List(fields.Nested(MetricSchema))
     caps_note = fields.Dict(keys=fields.String(), values=fields.String())
+    value_caps = fields.Dict(keys=fields.String(), values=fields.Integer(), metadata={
+        "description": "caps on every parameter value: max_string_length, max_list_items"})
 
 
 _IDENTITY = ("whose key it is: a person or a CI identity of the team (e.g. an address or a CI job's name). "

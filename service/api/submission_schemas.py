@@ -24,7 +24,7 @@ from service.submission.config import (
     ValidationSpec,
 )
 from service.vault import folds as fold_plans
-from service.vocabulary import DECISIONS, RELEASE_MODES, RULE_OUTCOMES, STATES
+from service.vocabulary import DECISIONS, FAILURE_CAUSES, RELEASE_MODES, RULE_OUTCOMES, STATES
 
 _DATETIME = {"format": "date-time"}
 
@@ -400,7 +400,13 @@ class SubmissionSchema(Schema):
     created_at = fields.String(metadata=_DATETIME)
     started_at = fields.String(allow_none=True, metadata=_DATETIME)
     finished_at = fields.String(allow_none=True, metadata=_DATETIME)
-    error = fields.String(allow_none=True)
+    error = fields.String(allow_none=True, metadata={"description": "why a failed submission failed, in words"})
+    failure_cause = fields.String(allow_none=True, validate=validate.OneOf(FAILURE_CAUSES), metadata={
+        "description": "null unless failed. model: the estimator raised on every fold (the submission's result); "
+                       "timeout, memory_limit: a fold or the holdout exceeded a bound (not retried); missing_data: "
+                       "the dataset's files could not be read on the workers that tried; crash: a job died or was "
+                       "lost on every attempt; data: the sealed holdout failed its fingerprint check. Apart from "
+                       "model, the work did not happen and no verdict is given"})
     warnings = fields.List(fields.Nested(SubmissionWarningSchema), metadata={
         "description": "what the submitter is warned of at submission (empty when nothing)"})
     config = fields.Nested(ResolvedConfigSchema)

@@ -99,7 +99,8 @@ class SubmissionCollection(MethodView):
     @blp.problem(409, "The pinned dataset fingerprint does not match")
     @blp.problem(415, "The body is not JSON")
     @blp.problem(422, "The configuration is rejected, or the Idempotency-Key was used with another body")
-    @blp.problem(503, "No worker answered the configuration check, or the queue is down")
+    @blp.problem(429, "The team already has the most submissions queued or running it may have")
+    @blp.problem(503, "No checker answered the configuration check, or the queue is down")
     def post(self, headers: dict[str, Any], submission: SubmissionRequest) -> Response:
         """Submit a model configuration for review."""
         ctx, caller = service_context(), current_key()

@@ -56,6 +56,7 @@ class Stack:
     redis: Child | None
     api: Child
     workers: list[Child]
+    checker: Child | None = None  # serves configuration checks only, so a POST never waits behind a fold
 
     @property
     def log_dir(self) -> Path:
@@ -241,10 +242,13 @@ def start_stack(sup: Supervisor, options: StackOptions) -> Stack:
         sup.start(f"worker-{i}", [sys.executable, "-m", "worker", "--name", name], env, log_dir, restartable=True)
         for i, name in enumerate(names, start=1)
     ]
+    checker_name = f"{prefix}-checker"
+    checker = sup.start("checker", [sys.executable, "-m", "worker", "--checker", "--name", checker_name], env,
+                        log_dir)
     base_url = f"http://{url_host(options.host)}:{port}"
     wait_for_ready(sup, base_url, options.ready_timeout_seconds)
-    wait_for_workers(sup, redis_url, names, options.ready_timeout_seconds)
-    return Stack(options, base_url, redis_url, database_url, env, redis_child, api, workers)
+    wait_for_workers(sup, redis_url, [*names, checker_name], options.ready_timeout_seconds)
+    return Stack(options, base_url, redis_url, database_url, env, redis_child, api, workers, checker)
 
 
 def register_dataset(base_url: str, token: str, fields: Mapping[str, str], csv_path: Path,

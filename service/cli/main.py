@@ -63,6 +63,9 @@ def build_parser() -> argparse.ArgumentParser:
     worker = commands.add_parser("worker", help="run one worker (python -m worker)")
     worker.add_argument("--burst", action="store_true", help="exit once the queues are empty")
     worker.add_argument("--name", help="worker name shown in RQ (default: generated)")
+    worker.add_argument("--checker", action="store_true",
+                        help="serve configuration checks only, never folds; run at least one per deployment so "
+                        "submissions are answered while every fold worker is busy")
 
     db = commands.add_parser(
         "db", help="the records database's schema",
@@ -182,6 +185,8 @@ def worker_argv(args: argparse.Namespace) -> list[str]:
         argv.append("--burst")
     if args.name:
         argv += ["--name", args.name]
+    if getattr(args, "checker", False):
+        argv.append("--checker")
     return argv
 
 

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 from datetime import timedelta
 
-from sqlalchemy import Engine, update
+from sqlalchemy import Engine, delete, update
 from sqlalchemy.exc import IntegrityError
 
 from service.records.engine import utcnow
@@ -49,3 +49,13 @@ def beat(engine: Engine, sub_id: str, token: str) -> bool:
             .values(heartbeat_at=utcnow())
         )
     return bool(result.rowcount)
+
+
+def release(engine: Engine, sub_id: str, token: str) -> None:
+    """Give up the claim held by ``token`` (its job failed before storing an outcome), so a retry need not wait.
+
+    Only the holder's row goes; a claim another job took over is left alone.
+    """
+    with engine.begin() as conn:
+        conn.execute(delete(holdout_claims).where(holdout_claims.c.submission_id == sub_id,
+                                                  holdout_claims.c.token == token))

@@ -18,7 +18,7 @@ from sqlalchemy.exc import IntegrityError
 from service.records import audit, verdicts
 from service.records.engine import utcnow
 from service.records.tables import fold_results, holdout_scores, submissions
-from service.vocabulary import LIVE_STATES, TERMINAL_STATES
+from service.vocabulary import INFRASTRUCTURE_CAUSES, LIVE_STATES, TERMINAL_STATES
 
 
 def insert(engine: Engine, row: dict[str, Any]) -> None:
@@ -100,17 +100,18 @@ def list_for_team(
 
 def transition(
     engine: Engine, sub_id: str, state: str, from_states: tuple[str, ...], error: str | None = None,
-    *, reopen: bool = False,
+    *, reopen: bool = False, cause: str | None = None,
 ) -> bool:
     """Move a submission to ``state`` if it is in one of ``from_states``; return whether it moved.
 
-    ``reopen`` (and every cancel): give up the configuration key, so the same configuration may be
-    submitted again -- for a submission that ended through no fault of its own (the infrastructure
-    failed it) or was canceled before any verdict.
+    ``reopen`` (and every cancel, and a failure the infrastructure caused): give up the configuration key,
+    so the same configuration may be submitted again -- for a submission that ended through no fault of its
+    own or was canceled before any verdict. ``cause`` names why a failed submission failed
+    (``service.vocabulary.FAILURE_CAUSES``).
     """
     now = utcnow()
     values: dict[str, Any] = {"state": state, "updated_at": now}
-    if reopen or state == "canceled":
+    if reopen or state == "canceled" or cause in INFRASTRUCTURE_CAUSES:
         values["config_key"] = f"reopened:{sub_id}"
     if state == "running":
         values["started_at"] = now
@@ -118,6 +119,8 @@ def transition(
         values["finished_at"] = now
     if error is not None:
         values["error"] = error
+    if cause is not None:
+        values["failure_cause"] = cause
     with engine.begin() as conn:
         result = conn.execute(
             update(submissions)
@@ -244,6 +247,16 @@ def unfinished(engine: Engine, limit: int = 500) -> list[dict[str, Any]]:
             .order_by(submissions.c.created_at).limit(limit)
         ).mappings().all()
     return [dict(r) for r in rows]
+
+
+def count_live(engine: Engine, team: str) -> int:
+    """Count a team's queued and running submissions."""
+    with engine.connect() as conn:
+        count = conn.execute(
+            select(func.count()).select_from(submissions)
+            .where(submissions.c.team == team, submissions.c.state.in_(LIVE_STATES))
+        ).scalar_one()
+    return int(count)
 
 
 def count_by_state(engine: Engine) -> dict[str, int]:

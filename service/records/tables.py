@@ -87,6 +87,7 @@ submissions = Table(
     Column("idempotency_key", String(200)),
     Column("request_fingerprint", String(64)),
     Column("error", Text),
+    Column("failure_cause", String(20)),  # why a failed submission failed (service.vocabulary.FAILURE_CAUSES)
     Column("warnings", JSON),  # what the submitter was warned of at submission, e.g. folds that lack a class
     Column("cv_summary", JSON),  # the cross-validation summary once computed (without holdout scores)
     Column("verdict", JSON),  # the review gate's decision, reasons and rule figures

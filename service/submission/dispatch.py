@@ -34,7 +34,10 @@ from typing import Any
 
 from redis import Redis
 from redis.exceptions import RedisError
+from redis.exceptions import TimeoutError as RedisTimeoutError
 from rq import Queue, Retry
+from rq.command import send_stop_job_command
+from rq.exceptions import InvalidJobOperation
 from rq.job import Dependency, Job, JobStatus
 from rq.registry import DeferredJobRegistry, ScheduledJobRegistry, StartedJobRegistry
 from rq.serializers import JSONSerializer
@@ -137,26 +140,33 @@ def enqueue_submission(
 def check_config_remote(
     redis: Redis, settings: Settings, config_doc: dict[str, Any], dataset_id: str
 ) -> dict[str, Any]:
-    """Ask a worker to check a configuration with scikit-learn's own validation; wait for its answer.
+    """Ask for a configuration check (scikit-learn's validation, then a trial fit); wait for its answer.
 
-    Raises ConfigRejected with the worker's field problems, or Unavailable when no worker answers.
+    The check queue is served by checkers (``sealfold worker --checker``: processes that never run
+    folds, so a check never waits behind a fold) and, between their jobs, by the fold workers. Raises
+    ConfigRejected with the field problems, or Unavailable when nothing serves the queue or no answer
+    comes within ``check_timeout_seconds``.
     """
     queue = Queue(settings.check_queue_name, connection=redis, serializer=JSONSerializer)
     try:
         if Worker.count(connection=redis, queue=queue) == 0:
-            raise Unavailable("no sealfold worker is running to check the configuration; start one with "
-                              "`sealfold worker`")
+            raise Unavailable("no sealfold checker or worker is running to check the configuration; start one "
+                              "with `sealfold worker --checker`")
         job = queue.enqueue_call(
             f"{JOB_MODULE}.check_config", args=(config_doc, dataset_id), result_ttl=60, failure_ttl=300,
             timeout=settings.job_timeout_seconds("check"), meta=job_meta(),
         )
-        result = job.latest_result(timeout=max(1, round(settings.check_timeout_seconds)))
+        try:
+            result = job.latest_result(timeout=max(1, round(settings.check_timeout_seconds)))
+        except RedisTimeoutError:  # the socket gave up before the block did: no answer in time, Redis is fine
+            result = None
     except RedisError as exc:
         raise Unavailable(f"the job queue is not reachable: {type(exc).__name__}") from exc
     if result is None or result.type != result.Type.SUCCESSFUL:
         raise Unavailable(
-            f"no worker finished checking the configuration within {settings.check_timeout_seconds:g} s"
-            if result is None else "the configuration check crashed in the worker; see the worker log"
+            f"no checker answered within {settings.check_timeout_seconds:g} s; run more checkers "
+            "(`sealfold worker --checker`)" if result is None
+            else "the configuration check crashed in the worker; see the worker log"
         )
     answer: dict[str, Any] = result.return_value or {}
     if not answer.get("ok"):
@@ -165,17 +175,49 @@ def check_config_remote(
     return answer
 
 
-def cancel_jobs(redis: Redis, settings: Settings, sub_id: str, validation: ValidationPlan) -> None:
-    """Cancel a submission's queued jobs; running ones see the canceled state and stop early."""
+def submission_job_ids(sub_id: str, validation: ValidationPlan) -> list[str]:
+    """Return the ids of every job of a submission's chain."""
     ids = [fold_job_id(sub_id, r, f) for r, f in fold_cells(validation)]
     ids += [champion_fold_job_id(sub_id, r, f) for r, f in fold_cells(validation)]
-    ids += [summary_job_id(sub_id), holdout_job_id(sub_id), verdict_job_id(sub_id)]
+    return [*ids, summary_job_id(sub_id), holdout_job_id(sub_id), verdict_job_id(sub_id)]
+
+
+def stop_jobs(
+    redis: Redis, settings: Settings, sub_id: str, validation: ValidationPlan, *, spare: str | None = None
+) -> int:
+    """Stop a finished (failed, canceled) submission's remaining jobs; return how many were stopped.
+
+    Queued and deferred jobs are canceled; running ones -- the holdout's refit included -- get RQ's
+    stop command, which kills the process doing the work (the holdout's horse, the worker's fold
+    process), so a failed submission costs no more worker time. ``spare`` is the job asking (it
+    ends by itself). A job that still starts (a race with a worker taking it) finds its submission
+    finished and skips.
+    """
+    stopped = 0
     try:
-        for job in Job.fetch_many(ids, connection=redis, serializer=JSONSerializer):
-            if job is not None and job.get_status(refresh=False) in (JobStatus.QUEUED, JobStatus.DEFERRED):
+        jobs = Job.fetch_many([j for j in submission_job_ids(sub_id, validation) if j != spare],
+                              connection=redis, serializer=JSONSerializer)
+        for job in jobs:
+            if job is None:
+                continue
+            status = job.get_status(refresh=False)
+            if status in (JobStatus.QUEUED, JobStatus.DEFERRED, JobStatus.SCHEDULED):
                 job.cancel()
+                stopped += 1
+            elif status == JobStatus.STARTED and job.worker_name:
+                try:
+                    send_stop_job_command(redis, job.id, serializer=JSONSerializer)
+                    stopped += 1
+                except InvalidJobOperation:
+                    pass  # it ended meanwhile
     except RedisError as exc:
-        log.warning("could not cancel jobs of %s: %s", sub_id, exc)
+        log.warning("could not stop the jobs of %s: %s", sub_id, exc)
+    return stopped
+
+
+def cancel_jobs(redis: Redis, settings: Settings, sub_id: str, validation: ValidationPlan) -> None:
+    """Stop a canceled submission's jobs, queued and running."""
+    stop_jobs(redis, settings, sub_id, validation)
 
 
 def reconcile(engine: Engine, redis: Redis, settings: Settings, min_age_seconds: float = 20.0) -> int:

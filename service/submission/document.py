@@ -31,6 +31,7 @@ def submission_document(engine: Engine, row: dict[str, Any]) -> dict[str, Any]:
         "started_at": iso(row["started_at"]),
         "finished_at": iso(row["finished_at"]),
         "error": row["error"],
+        "failure_cause": row.get("failure_cause"),
         "warnings": row.get("warnings") or [],
         "config": {k: config[k] for k in ("model", "validation", "metrics")}
         | ({"search": config["search"]} if config.get("search") else {}),

@@ -19,7 +19,7 @@ from sqlalchemy.exc import IntegrityError
 from service import team_scope
 from service.catalog import load_catalog
 from service.catalog.metrics import spec_of
-from service.errors import ConfigRejected, Conflict, FieldProblem, Forbidden, InputError
+from service.errors import ConfigRejected, Conflict, FieldProblem, Forbidden, InputError, TeamLimitReached
 from service.gate.review_state import policy_in_force
 from service.ids import new_id
 from service.records import audit, submissions
@@ -82,6 +82,10 @@ def submit(
         # The same model, validation and data were already judged: answer with that submission, so a
         # resubmission recomputes nothing and spends no holdout budget.
         return same, False
+    limit = settings.team_max_live_submissions
+    if limit and submissions.count_live(engine, key.team) >= limit:
+        raise TeamLimitReached(f"team {key.team} has {limit} submissions queued or running, the most a team may "
+                               "have at once (SEALFOLD_TEAM_MAX_LIVE); submit again when some have finished")
     check = dispatch.check_config_remote(redis, settings, resolved.to_document(), dataset["id"])
     _check_probability_metrics(resolved, check)
     resolved = replace(resolved, linear=catalog.is_linear(resolved.model.estimator))

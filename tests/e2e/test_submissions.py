@@ -85,14 +85,28 @@ def test_some_folds_failing_are_listed_and_the_rest_reported(stack: Stack) -> No
 
 
 def test_all_folds_failing_fails_with_the_estimators_message(stack: Stack, diabetes: dict[str, Any]) -> None:
-    # kernel="precomputed" wants a square Gram matrix; a feature matrix makes scikit-learn raise in every fold.
+    # 400 neighbours among a fold's ~283 training rows: the fit works (so the trial fit at submission
+    # accepts it) and scikit-learn's kneighbors raises in every fold's predict.
     reply = stack.client().post("/v1/submissions", json_body={
-        "dataset": diabetes["id"], "model": {"estimator": "SVR", "params": {"kernel": "precomputed"}}})
+        "dataset": diabetes["id"], "model": {"estimator": "KNeighborsRegressor", "params": {"n_neighbors": 400}}})
     assert reply.status == 202, reply.text
     doc = stack.wait_for(reply.json()["id"])
     assert doc["state"] == "failed"
-    assert "square" in doc["error"].lower() or "precomputed" in doc["error"].lower(), doc["error"]
+    assert doc["failure_cause"] == "model"  # the model's own error: the submission's result
+    assert "n_neighbors" in doc["error"] or "n_samples" in doc["error"], doc["error"]
     assert doc["result"]["holdout"]["released"] is False
+
+
+def test_a_configuration_that_cannot_fit_at_all_is_refused_at_post(stack: Stack, diabetes: dict[str, Any]) -> None:
+    # kernel="precomputed" wants a square Gram matrix; a feature matrix makes scikit-learn's fit raise,
+    # so it would fail on every fold: the trial fit on a sample of development rows refuses it now.
+    before = _count_submissions(stack)
+    problem = _problem(stack.client().post("/v1/submissions", json_body={
+        "dataset": diabetes["id"], "model": {"estimator": "SVR", "params": {"kernel": "precomputed"}}}), 422)
+    (error,) = problem["errors"]
+    assert error["pointer"] == "/model/estimator"
+    assert "SVR" in error["detail"] and ("square" in error["detail"].lower() or "precomputed" in error["detail"])
+    assert _count_submissions(stack) == before  # nothing half-written
 
 
 def test_idempotency_key_replays_and_refuses_a_different_body(stack: Stack, diabetes: dict[str, Any]) -> None:

@@ -115,11 +115,14 @@ def stack_environment(
     return env
 
 
-def start_worker(env: dict[str, str], name: str, log_path: Path) -> subprocess.Popen[bytes]:
-    """Start one real forking worker (`python -m worker`)."""
+def start_worker(
+    env: dict[str, str], name: str, log_path: Path, *, checker: bool = False
+) -> subprocess.Popen[bytes]:
+    """Start one real forking worker (`python -m worker`), or a checker that serves checks only."""
     log = log_path.open("ab")
     return subprocess.Popen(
-        [sys.executable, "-m", "worker", "--name", name], env=env, stdout=log, stderr=log, start_new_session=True
+        [sys.executable, "-m", "worker", "--name", name, *(["--checker"] if checker else [])], env=env, stdout=log,
+        stderr=log, start_new_session=True,
     )
 
 

@@ -62,8 +62,13 @@ def make_tokens(engine: Any) -> dict[str, str]:
 
 
 @contextlib.contextmanager
-def running_stack(data_dir: Path, redis_url: str, queue: str, workers: int = 2) -> Iterator[Stack]:
-    """Run the API (waitress, real HTTP) and ``workers`` real forking workers on one data dir."""
+def running_stack(
+    data_dir: Path, redis_url: str, queue: str, workers: int = 2, settings: dict[str, Any] | None = None
+) -> Iterator[Stack]:
+    """Run the API (waitress, real HTTP) and ``workers`` real forking workers on one data dir.
+
+    ``settings`` overrides settings in the API and, through their environment variables, the workers.
+    """
     from service.app import create_app
     from service.settings import Settings
     from tests.support.records import upgraded_engine
@@ -71,11 +76,12 @@ def running_stack(data_dir: Path, redis_url: str, queue: str, workers: int = 2) 
     import_root = data_dir / "imports"
     import_root.mkdir(parents=True, exist_ok=True)
     overrides = {"data_dir": data_dir, "redis_url": redis_url, "import_root": import_root,
-                 "queue_name": queue, "database_url": ""}
+                 "queue_name": queue, "database_url": "", **(settings or {})}
     settings = Settings.load(overrides, environ={})
     engine = upgraded_engine(settings)  # before any process starts, as `sealfold db upgrade` would be
     tokens = make_tokens(engine)
     env = stack_environment(data_dir, redis_url, queue=queue)
+    env.update(setting_environment(overrides))
     log_path = data_dir / "workers.log"
     procs = [start_worker(env, f"{queue}-{i}", log_path) for i in range(workers)]
     app = create_app(overrides)
@@ -89,6 +95,14 @@ def running_stack(data_dir: Path, redis_url: str, queue: str, workers: int = 2) 
     finally:
         stop_processes(procs)
         engine.dispose()
+
+
+def setting_environment(overrides: dict[str, Any]) -> dict[str, str]:
+    """Return the environment variables that carry ``overrides`` to a worker process."""
+    from service.settings import _ENV_NAMES
+
+    return {_ENV_NAMES[name]: str(value) for name, value in overrides.items()
+            if name in _ENV_NAMES and name not in ("data_dir", "import_root", "database_url")}
 
 
 def wait_ready(

@@ -11,6 +11,7 @@ from typing import Any
 from rq import get_current_job
 
 from worker.jobs import champion_fold, check, holdout, summary, verdict
+from worker.jobs.failure import classify, handle_lost_work
 from worker.jobs.fold import run_fold as _run_fold
 from worker.jobs.runtime import current, fold_runner
 
@@ -23,12 +24,21 @@ def check_config(config_doc: dict[str, Any], dataset_id: str) -> dict[str, Any]:
 def run_fold(submission_id: str, repeat: int, fold: int) -> dict[str, Any]:
     """Fit and score one fold of a submission, with its baseline, and record it.
 
-    In a started worker the fold process does the work (``worker.process.fold_process``).
+    In a started worker the fold process does the work (``worker.process.fold_process``). The
+    estimator's own error is recorded as the fold's result; anything else that stops the fold is lost
+    work (``worker.jobs.failure``): retried, or the submission fails naming the cause.
     """
-    runner = fold_runner()
-    if runner is not None:
-        return runner.run_fold(submission_id, repeat, fold)
-    return _run_fold(current(), submission_id, repeat, fold)
+    ctx = current()
+    try:
+        runner = fold_runner()
+        if runner is not None:
+            return runner.run_fold(submission_id, repeat, fold)
+        return _run_fold(ctx, submission_id, repeat, fold)
+    except Exception as exc:
+        loss = classify(exc, f"fold {fold} of repeat {repeat}", ctx.settings.fold_timeout_seconds,
+                        ctx.settings.memory_limit_mib)
+        handle_lost_work(ctx, get_current_job(), submission_id, loss)
+        raise
 
 
 def run_champion_fold(submission_id: str, champion_id: str, repeat: int, fold: int) -> dict[str, Any]:
@@ -38,12 +48,24 @@ def run_champion_fold(submission_id: str, champion_id: str, repeat: int, fold: i
 
 def summarize(submission_id: str) -> dict[str, Any]:
     """Summarise a submission's folds (fan-in) and store the summary."""
-    return summary.summarize(current(), submission_id)
+    job = get_current_job()
+    return summary.summarize(current(), submission_id, job.connection if job is not None else None)
 
 
 def score_holdout(submission_id: str) -> dict[str, Any]:
-    """Score a submission on the sealed holdout, exactly once."""
-    return holdout.score_holdout(current(), submission_id)
+    """Score a submission on the sealed holdout, exactly once.
+
+    It runs in a work horse under the memory limit (``worker.process.main``). What stops the job other
+    than the estimator's own error is lost work, as for a fold.
+    """
+    ctx = current()
+    try:
+        return holdout.score_holdout(ctx, submission_id)
+    except Exception as exc:
+        loss = classify(exc, "the holdout refit and scoring", ctx.settings.fold_timeout_seconds * 2,
+                        ctx.settings.memory_limit_mib, sealed=True)
+        handle_lost_work(ctx, get_current_job(), submission_id, loss)
+        raise
 
 
 def give_verdict(submission_id: str) -> dict[str, Any]:

@@ -15,6 +15,7 @@ import numbers
 from collections.abc import Mapping
 from typing import Any
 
+import numpy as np
 from sklearn.base import BaseEstimator
 from sklearn.utils._param_validation import InvalidParameterError, StrOptions
 
@@ -26,6 +27,7 @@ from service.records import datasets
 from service.submission.resolved import ResolvedConfig, SearchSpec
 from service.vault import store
 from worker.jobs.runtime import WorkerContext
+from worker.jobs.trial_fit import trial_fit_problems
 from worker.learning.development import target_values
 from worker.learning.pipeline import entry_for, make_instance
 from worker.learning.target_domain import target_domain
@@ -34,11 +36,15 @@ from worker.learning.target_domain import target_domain
 def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: str) -> dict[str, Any]:
     """Answer ``{"ok": true, "has_proba"}`` or ``{"ok": false, "problems": [...]}``.
 
+    Valid parameters are then tried in a quick fit on a sample of development rows
+    (``worker.jobs.trial_fit``), so a configuration that cannot fit at all is refused here.
+
     ``has_proba`` comes from the instance: whether ``predict_proba`` exists can depend on the
     parameters (``SVC(probability=True)``, ``SGDClassifier(loss="log_loss")``), which the catalog
     cannot say.
     """
-    if datasets.get_internal(ctx.engine, dataset_id) is None:
+    dataset = datasets.get_internal(ctx.engine, dataset_id)
+    if dataset is None:
         return _rejected([FieldProblem("/dataset", f"no dataset {dataset_id!r}")])
     catalog = load_catalog()
     config = ResolvedConfig.from_document(config_doc)
@@ -64,6 +70,9 @@ def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: 
             chosen = next((f"/model/params/{p}" for p in ("objective", "loss", "power", "func") if p in model.params),
                           "/model/estimator")
             return _rejected([FieldProblem(chosen, outside)])
+    problems = trial_fit_problems(ctx.settings, dataset, model)
+    if problems:
+        return _rejected(problems)
     if hasattr(estimator, "predict_proba") or config.task != "classification":
         return {"ok": True, "has_proba": hasattr(estimator, "predict_proba")}
     return {"ok": True, "has_proba": False, "proba_settings": probability_settings(entry, model.params)}
@@ -158,6 +167,10 @@ def checked_instance(
             if len(problems) == before:
                 valid[name] = value
             continue
+        over = value_size_problem(name, value) or dtype_problem(entry, name, value)
+        if over is not None:  # before scikit-learn sees it: numpy sizes a dtype string as it parses it
+            problems.append(FieldProblem(pointer, over))
+            continue
         invalid = parameter_problem(entry, name, value)
         if invalid is not None:
             problems.append(FieldProblem(pointer, invalid))
@@ -232,10 +245,47 @@ def search_problems(
     return problems
 
 
+def value_size_problem(name: str, value: Any) -> str | None:
+    """Return why a value's strings or lists exceed the catalog's value caps (``value_caps``), or None."""
+    caps = load_catalog().document.get("value_caps", {})
+    longest, most = int(caps.get("max_string_length", 256)), int(caps.get("max_list_items", 10_000))
+    pending = [value]
+    while pending:
+        item = pending.pop()
+        if isinstance(item, str) and len(item) > longest:
+            return (f"{name}: strings may have at most {longest} characters (a service cap), got one of "
+                    f"{len(item)}")
+        if isinstance(item, list | tuple):
+            if len(item) > most:
+                return f"{name}: lists may have at most {most} items (a service cap), got {len(item)}"
+            pending.extend(item)
+        elif isinstance(item, Mapping):
+            if len(item) > most:
+                return f"{name}: objects may have at most {most} members (a service cap), got {len(item)}"
+            pending.extend(item.keys())
+            pending.extend(item.values())
+    return None
+
+
+def dtype_problem(entry: CatalogEntry, name: str, value: Any) -> str | None:
+    """Return why an encoder's ``dtype`` is refused: only numeric types up to the cap's bytes per value."""
+    cap = entry.caps.get(name, {}).get("max_itemsize_bytes")
+    if cap is None:
+        return None
+    try:
+        parsed = np.dtype(value)
+    except (TypeError, ValueError):
+        return f"{name} must name a numeric type such as 'float64', got {value!r}"
+    if parsed.kind not in "biuf" or parsed.itemsize > cap:
+        return (f"{name} must be a numeric type of at most {cap} bytes per value (a service cap), got {value!r} "
+                f"({parsed.itemsize} bytes per value)")
+    return None
+
+
 def cap_problem(entry: CatalogEntry, name: str, value: Any) -> str | None:
     """Return why ``value`` exceeds the service cap on parameter ``name``, or None."""
     cap = entry.caps.get(name)
-    if cap is None or value is None or isinstance(value, bool):
+    if cap is None or value is None or isinstance(value, bool) or "max_itemsize_bytes" in cap:
         return None
     if name == "hidden_layer_sizes":
         sizes = [int(value)] if isinstance(value, numbers.Integral) else [int(v) for v in value]

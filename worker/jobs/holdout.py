@@ -32,7 +32,6 @@ from service.ids import new_id
 from service.records import holdout_claims, submissions
 from service.submission.resolved import ResolvedConfig
 from service.vault import store
-from service.vocabulary import LIVE_STATES
 from worker.jobs.losses import save_per_example, scoring_rows
 from worker.jobs.runtime import Skip, WorkerContext, repeating, submission_to_work_on
 from worker.learning.development import column_kinds, load_development, model_frame, model_matrix, target_values
@@ -68,8 +67,13 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
             if isinstance(late, Skip):
                 return late.answer
             time.sleep(POLL_SECONDS)
-    with _heartbeat(ctx, submission_id, token):
-        return _score(ctx, submission_id, sub, dataset, token)
+    try:
+        with _heartbeat(ctx, submission_id, token):
+            return _score(ctx, submission_id, sub, dataset, token)
+    except BaseException:
+        # Nothing was stored: let the retry claim the computation now rather than after the stale limit.
+        holdout_claims.release(engine, submission_id, token)
+        raise
 
 
 def _score(
@@ -103,9 +107,8 @@ def _score(
         return {"submission_id": submission_id, "holdout": "claim lost"}
     try:
         holdout = store.open_sealed_holdout(ctx.settings, dataset["id"], dataset["holdout_fingerprint"])
-    except SealBroken as exc:
-        submissions.transition(engine, submission_id, "failed", LIVE_STATES, error=exc.detail, reopen=True)
-        raise
+    except SealBroken:
+        raise  # worker.jobs.failure fails the submission (cause "data") and stops its other jobs
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # warning texts can quote holdout values

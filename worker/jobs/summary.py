@@ -22,6 +22,7 @@ import numpy as np
 import pandas as pd
 import scipy
 import sklearn
+from redis import Redis
 from scipy import stats
 
 import service
@@ -30,7 +31,8 @@ from service.catalog.metrics import spec_of
 from service.records import submissions
 from service.submission.dispatch import fold_cells
 from service.submission.resolved import ResolvedConfig, ValidationPlan
-from service.vocabulary import LIVE_STATES, TERMINAL_STATES
+from service.vocabulary import TERMINAL_STATES
+from worker.jobs.failure import fail_submission
 from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 from worker.learning.calibration import pooled
 from worker.learning.curve import SHUFFLE_NOTE
@@ -47,8 +49,14 @@ STATISTICS_NOTE = {
 }
 
 
-def summarize(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
-    """Summarise the folds, store the summary; when every fold failed, fail the submission."""
+def summarize(ctx: WorkerContext, submission_id: str, redis: Redis | None = None) -> dict[str, Any]:
+    """Summarise the folds, store the summary; fail the submission when it has nothing to judge.
+
+    When every fold failed with the estimator's own error, that is the submission's result (cause
+    "model"). When a planned fold has no record -- its job was lost on every attempt, e.g. each time
+    its worker was killed -- the plan is incomplete and no verdict is given (cause "crash");
+    ``redis`` is used to stop what remains of the chain.
+    """
     work = submission_to_work_on(ctx, submission_id, skip=TERMINAL_STATES)
     if isinstance(work, Skip):
         return work.answer
@@ -59,12 +67,17 @@ def summarize(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     document["provenance"] = provenance(config.validation, str(sub["config_fingerprint"]), dataset)
     submissions.store_summary(ctx.engine, submission_id, document)
     ok = sum(1 for r in rows if r["status"] == "ok")
-    if ok == 0:
+    recorded = {(r["repeat"], r["fold"]) for r in rows}
+    lost = [(r, f) for r, f in fold_cells(config.validation) if (r, f) not in recorded]
+    if lost:
+        named = ", ".join(f"fold {f} of repeat {r}" for r, f in lost[:5]) + (" ..." if len(lost) > 5 else "")
+        fail_submission(ctx, redis, submission_id, "crash",
+                        f"{len(lost)} of {len(fold_cells(config.validation))} folds were lost ({named}): no result "
+                        "was recorded after every attempt (a worker killed or a job lost each time); no verdict is "
+                        "given on a partial plan")
+    elif ok == 0:
         first = document["failures"][0]["error"] if document["failures"] else "no fold produced a result"
-        # Every fold lost (none recorded a model error): the infrastructure failed it, not the model, so
-        # the configuration gives its key up and may be submitted again.
-        lost = not any(r["status"] != "ok" for r in rows)
-        submissions.transition(ctx.engine, submission_id, "failed", LIVE_STATES, error=first, reopen=lost)
+        fail_submission(ctx, redis, submission_id, "model", first)
     return {"submission_id": submission_id, "folds_ok": ok, "folds_failed": len(document["failures"])}
 
 

@@ -97,6 +97,12 @@ _TREE_DEPTH_CAP = 64
 _ITERATION_CAP = 10_000
 _ENSEMBLE_CAP = 500
 _POLYNOMIAL_OUTPUT_CAP = 10_000
+_NEIGHBOURS_CAP = 1_000  # k-NN keeps test rows x k distances and indices
+_FUNCTION_CALLS_CAP = 50_000  # MLP's L-BFGS max_fun (default 15000)
+_DTYPE_ITEMSIZE_CAP = 8  # bytes per value of an encoder's output: numeric types only
+# Any parameter value: a string's length and a list's items (a 100,000-character dtype string once took a
+# fold from 149 to 665 MB; a fill_value string is copied into every imputed cell).
+VALUE_CAPS = {"max_string_length": 256, "max_list_items": 10_000}
 
 CAPS_NOTE = {
     "n_estimators": f"at most {_ENSEMBLE_CAP} trees or boosting stages",
@@ -108,7 +114,12 @@ CAPS_NOTE = {
     "output_features": f"PolynomialFeatures may produce at most {_POLYNOMIAL_OUTPUT_CAP} columns, "
                        "counted as comb(columns + degree, degree)",
     "cache_size": "SVM kernel cache at most 1024 MB",
-    "n_neighbors": "KNNImputer: at most 100 neighbours",
+    "n_neighbors": f"at most {_NEIGHBOURS_CAP} neighbours (KNNImputer: at most 100)",
+    "max_fun": f"at most {_FUNCTION_CALLS_CAP} loss function calls",
+    "dtype": f"a numeric type of at most {_DTYPE_ITEMSIZE_CAP} bytes per value (e.g. 'float64', 'float32', "
+             "'int64'); string and object types are refused",
+    "value_caps": f"every parameter value: strings of at most {VALUE_CAPS['max_string_length']} characters, "
+                  f"lists of at most {VALUE_CAPS['max_list_items']} items (nested lists count their own items)",
     "n_knots": "SplineTransformer: at most 100 knots and degree at most 5",
     "n_bins": "KBinsDiscretizer: at most 256 bins per column",
     "n_components": "PCA: at most 1000 components (a fraction of the variance stays allowed); iterated_power at "
@@ -145,6 +156,7 @@ def build_catalog() -> dict[str, Any]:
         "generated_by": "python -m worker.learning.catalog_gen",
         "sklearn_version": sklearn.__version__,
         "caps_note": CAPS_NOTE,
+        "value_caps": VALUE_CAPS,
         "library_versions": {"lightgbm": lightgbm.__version__, "xgboost": xgboost.__version__},
         "estimators": sorted([*(_entry(name, "estimator") for name in [*ESTIMATORS, *META]),
                               *(_boosting_entry(name) for name in BOOSTING)], key=lambda e: str(e["name"])),
@@ -315,6 +327,12 @@ def _caps(name: str, defaults: dict[str, Any]) -> dict[str, dict[str, int]]:
         caps["output_features"] = {"max": _POLYNOMIAL_OUTPUT_CAP}
     if "cache_size" in defaults:
         caps["cache_size"] = {"max": 1024}
+    if "n_neighbors" in defaults:
+        caps["n_neighbors"] = {"max": _NEIGHBOURS_CAP}
+    if "max_fun" in defaults:
+        caps["max_fun"] = {"max": _FUNCTION_CALLS_CAP}
+    if "dtype" in defaults:
+        caps["dtype"] = {"max_itemsize_bytes": _DTYPE_ITEMSIZE_CAP}
     caps.update(_TRANSFORMER_CAPS.get(name, {}))
     if name in META and "cv" in defaults:
         caps["cv"] = {"max": 10}

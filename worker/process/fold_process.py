@@ -37,6 +37,7 @@ import traceback
 from typing import Any
 
 from worker.jobs import runtime
+from worker.jobs.failure import lift_memory_limit, limit_memory
 from worker.jobs.fold import run_fold
 
 log = logging.getLogger(__name__)
@@ -111,11 +112,20 @@ class FoldProcess:
             how = self._reap()
             raise FoldProcessDied(f"the fold process {how} while it ran fold {fold} of repeat {repeat} of "
                                   f"{submission_id}; the job is retried in a new one")
+        if answer.get("replace"):
+            self.stop()  # it failed an allocation: start the next job in a fresh one
         self._replace_if_grown()
         if "error" in answer:
             raise FoldFailed(f"{answer['error']}\n--- in the fold process:\n{answer['trace']}")
         result: dict[str, Any] = answer["result"]
         return result
+
+    def kill(self) -> None:
+        """Kill the child from another thread; the thread waiting on it sees it die and reaps it."""
+        pid = self.pid
+        if pid is not None:
+            with contextlib.suppress(ProcessLookupError):
+                os.kill(pid, signal.SIGKILL)
 
     def stop(self) -> None:
         """Kill the child (if any) and forget it."""
@@ -163,12 +173,19 @@ def _serve(receive: int, send: int) -> None:
         libc.prctl(_PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)
         _keep_freed_memory(libc)
         runtime.after_fork()
+        os.nice(runtime.current().settings.job_nice)  # the API and checkers on this host come first
         while (request := _read_message(receive)) is not None:
+            ctx = runtime.current()
             try:
+                limit_memory(ctx.settings.memory_limit_mib)  # what this fold may add, from here
                 answer: dict[str, Any] = {"result": run_fold(
-                    runtime.current(), str(request["submission_id"]), int(request["repeat"]), int(request["fold"]))}
+                    ctx, str(request["submission_id"]), int(request["repeat"]), int(request["fold"]))}
+            except MemoryError as exc:
+                answer = {"error": f"MemoryError: {exc}", "trace": "", "replace": True}
             except Exception as exc:
                 answer = {"error": f"{type(exc).__name__}: {exc}", "trace": traceback.format_exc()}
+            finally:
+                lift_memory_limit()
             _write_message(send, answer)
     except BaseException:
         log.exception("fold process failed")

@@ -15,7 +15,9 @@ from __future__ import annotations
 
 import importlib
 import logging
+import os
 import random
+import signal
 import time
 from collections.abc import Callable, Iterator
 from contextlib import AbstractContextManager, contextmanager
@@ -28,7 +30,7 @@ from rq.job import Job
 from rq.queue import Queue
 from rq.serializers import JSONSerializer
 from rq.utils import import_attribute
-from rq.worker import WorkerStatus
+from rq.worker import Worker, WorkerStatus
 
 from service.catalog import load_catalog
 from service.logs import request_scope
@@ -38,6 +40,7 @@ from service.records.schema import require_current
 from service.settings import Settings
 from service.submission import dispatch
 from worker.jobs import ALLOWED_JOBS, runtime
+from worker.jobs.failure import AVOID_WORKERS, LEFT_COUNT, limit_memory
 from worker.jobs.runtime import repeating
 from worker.process import placement
 from worker.process.fold_process import FoldProcess
@@ -131,9 +134,18 @@ def _request_id(job: Job) -> str | None:
 
 
 class SealfoldWorker(OutageTolerantWorker):
-    """RQ's forking worker, plus a fresh DB pool in each work horse and the reconciler in maintenance."""
+    """RQ's forking worker, plus a fresh DB pool in each work horse and the reconciler in maintenance.
+
+    It also leaves a job whose data it could not read to another worker (``leave_to_another``), and
+    stops an in-process job on RQ's stop command by killing its fold process (``kill_horse``).
+    """
 
     job_class = AllowListedJob
+    in_process_job: str | None = None  # the id of the job running in this process, if any
+    leave_pause_seconds = 0.5
+    # A worker's registration outlives it by up to its TTL, so "another worker" may be a dead one: after
+    # this many hand-backs (some 10 s) the job runs here anyway, and its last attempt names the missing data.
+    leave_limit = 20
 
     data_problem: str | None = None  # set when this worker stopped because it lost the deployment's data
     data_check: Callable[[], str | None] | None = None  # why the data dir is unusable now, or None
@@ -141,6 +153,10 @@ class SealfoldWorker(OutageTolerantWorker):
 
     def main_work_horse(self, job: Job, queue: Queue) -> None:
         runtime.after_fork()
+        # The horse (the holdout job) ends with its job, so the limit and the priority end with it too.
+        settings = runtime.current().settings
+        limit_memory(settings.memory_limit_mib)
+        os.nice(settings.job_nice)
         super().main_work_horse(job, queue)
 
     def handle_job_success(self, job: Job, queue: Queue, started_job_registry: Any, execution: Any) -> None:
@@ -153,6 +169,43 @@ class SealfoldWorker(OutageTolerantWorker):
         outcome = "retried" if job.should_retry else "timed_out" if timed_out else "failed"
         job_tallies.record(self.connection, _func_name(job), outcome)
         super().handle_job_failure(job, queue, started_job_registry, exc_string, execution)
+
+    def kill_horse(self, sig: signal.Signals = signal.SIGKILL) -> None:
+        """Stop the current job: a horse as RQ does, an in-process fold by killing the fold process.
+
+        RQ's own version would signal the process group of a stale horse pid (or of this worker) when
+        the job runs here; the other in-process jobs are short and end by themselves.
+        """
+        if self.in_process_job is None:
+            super().kill_horse(sig)
+            return
+        runner = runtime.fold_runner()
+        if isinstance(runner, FoldProcess):
+            runner.kill()  # the job's wait on it ends with FoldProcessDied; RQ marks the job stopped
+
+    def leave_to_another(self, job: Job, queue: Queue) -> bool:
+        """Put back a job this worker could not read the data of, when another live worker can take it.
+
+        ``worker.jobs.failure`` adds a worker to a job's avoid list when the job's data could not be
+        read there; the retry then goes to a worker not on the list. With no such worker, this one
+        runs it (and its last attempt fails the submission naming the missing data).
+        """
+        avoided = set(job.meta.get(AVOID_WORKERS, ()))
+        left = int(job.meta.get(LEFT_COUNT, 0))
+        if self.name not in avoided or left >= self.leave_limit:
+            return False
+        others = [w for w in Worker.all(queue=queue) if w.name not in avoided and w.name != self.name]
+        if not others:
+            return False
+        job.meta[LEFT_COUNT] = left + 1
+        job.save_meta()
+        with self.connection.pipeline() as pipe:
+            pipe.lrem(queue.intermediate_queue_key, 1, job.id)
+            queue._enqueue_job(job, pipeline=pipe)
+            pipe.execute()
+        log.info("job %s could not read its data here; left to %s", job.id, ", ".join(w.name for w in others))
+        time.sleep(self.leave_pause_seconds)  # let another worker take it first
+        return True
 
     def execute_job(self, job: Job, queue: Queue) -> None:
         """Run the job in this process when ``worker.process.placement`` says so; fork a horse for the rest.
@@ -168,6 +221,9 @@ class SealfoldWorker(OutageTolerantWorker):
             queue.enqueue_job(job, at_front=True)
             self.data_problem = problem
             self.request_stop(0, None)
+            return
+        if self.leave_to_another(job, queue):
+            self.set_state(WorkerStatus.IDLE)
             return
         job_tallies.record(self.connection, _func_name(job), "started")
         if self.settings is not None:  # this worker's timeout for the kind, whatever the enqueuer said
@@ -186,7 +242,11 @@ class SealfoldWorker(OutageTolerantWorker):
             execution = self.prepare_execution(job)
             if isinstance(job, AllowListedJob):
                 job.keepalive = lambda: self.heartbeats_while(job, execution)
-            self.perform_job(job, queue, execution)
+            self.in_process_job = job.id
+            try:
+                self.perform_job(job, queue, execution)
+            finally:
+                self.in_process_job = None
             self.set_state(WorkerStatus.IDLE)
         self.enqueue_ready_dependents()
 
@@ -268,10 +328,13 @@ def limit_threads() -> None:
     threadpool_limits(limits=1)
 
 
-def build_worker(settings: Settings, redis: Redis[Any], name: str | None = None) -> SealfoldWorker:
-    """Return a worker on the check queue (served first) and the work queue, applying ``settings``' job timeouts."""
+def build_worker(
+    settings: Settings, redis: Redis[Any], name: str | None = None, *, checker: bool = False
+) -> SealfoldWorker:
+    """Return a worker on the check queue (served first) and the work queue; a checker serves checks only."""
+    queues = [settings.check_queue_name] if checker else [settings.check_queue_name, settings.queue_name]
     worker = SealfoldWorker(
-        [settings.check_queue_name, settings.queue_name],
+        queues,
         connection=redis,
         name=name,
         serializer=JSONSerializer,
@@ -286,8 +349,11 @@ def build_worker(settings: Settings, redis: Redis[Any], name: str | None = None)
     return worker
 
 
-def run_worker(settings: Settings, *, burst: bool = False, name: str | None = None) -> None:
+def run_worker(settings: Settings, *, burst: bool = False, name: str | None = None, checker: bool = False) -> None:
     """Install the worker context, preload, and work until stopped (or until the queues are empty).
+
+    A checker (``checker``) serves only the check queue and never runs a fold, so a submission's check
+    is answered while every fold worker is busy; it has no fold process.
 
     Raises ``SchemaOutOfDate`` before loading anything when the records database is not at this code's revision,
     and ``DataNotShared`` when the data dir is not the deployment's (at start, or later before a job: the job
@@ -307,10 +373,11 @@ def run_worker(settings: Settings, *, burst: bool = False, name: str | None = No
     runtime.install(runtime.WorkerContext(settings=settings, engine=engine))
     warm_up(runtime.current())
     folds = FoldProcess()
-    folds.start()  # forked now, warm and before any thread exists
-    runtime.install_fold_runner(folds)
+    if not checker:
+        folds.start()  # forked now, warm and before any thread exists
+        runtime.install_fold_runner(folds)
     redis = Redis.from_url(settings.redis_url)
-    worker = build_worker(settings, redis, name)
+    worker = build_worker(settings, redis, name, checker=checker)
     worker.data_check = lambda: data_identity.mismatch(
         recorded, data_identity.read_marker(settings.data_dir), settings.data_dir)
     try:

@@ -380,9 +380,9 @@ def test_up_no_demo_side_by_side_and_clean_sigterm(tmp_path: Path, up_processes:
     assert clash.proc.wait(timeout=60) == 1
     assert "another sealfold stack" in clash.stderr()
 
-    # SIGTERM: exit 0, every child (redis, API, worker) gone, the port closed, the socket removed.
+    # SIGTERM: exit 0, every child (redis, API, worker, checker) gone, the port closed, the socket removed.
     children = _children_of(first.proc.pid)
-    assert len(children) == 3, children
+    assert len(children) == 4, children
     assert first.stop() == 0, first.stderr()
     assert not [pid for pid in children if Path(f"/proc/{pid}").exists()]
     assert not (first.data_dir / "redis.sock").exists()

@@ -336,3 +336,31 @@ def test_who_may_cancel(
     assert submissions.transition(records, done["id"], "succeeded", LIVE_STATES)
     with pytest.raises(Conflict, match="already succeeded"):
         intake.cancel(records, redis, settings, keys["owner"], done["id"])
+
+
+# -- per-team limit ---------------------------------------------------------------------------------
+
+
+def test_a_team_at_its_live_limit_gets_429_and_other_teams_do_not(
+    records: Engine, redis: Redis, settings: Settings, keys: dict[str, KeyInfo], dataset: dict[str, Any],
+    asked: list[dict[str, Any]],
+) -> None:
+    from dataclasses import replace
+
+    from service.errors import TeamLimitReached
+
+    limited = replace(settings, team_max_live_submissions=2)
+    for alpha in (1.0, 2.0):
+        assert intake.submit(records, redis, limited, keys["owner"], ridge(dataset, alpha))[1] is True
+    with pytest.raises(TeamLimitReached) as caught:
+        intake.submit(records, redis, limited, keys["colleague"], ridge(dataset, 3.0))
+    assert caught.value.status == 429 and "team fleet has 2 submissions queued or running" in caught.value.detail
+    assert count_submissions(records) == 2 and len(asked) == 2  # refused before the check, nothing written
+    # Another team is not held up by this one's; a replay is still answered; a finished one frees a place.
+    rival_data = add_dataset_row(records, diabetes_frame(), "target", "regression", folds=5,
+                                 created_by=create_key(records, "rivals", "steward", "rs")[0].id, team="rivals")
+    assert intake.submit(records, redis, limited, keys["rival"], ridge(rival_data, 3.0))[1] is True
+    assert intake.submit(records, redis, limited, keys["owner"], ridge(dataset, 1.0))[1] is False
+    oldest = submissions.list_for_team(records, "fleet")[-1]
+    assert submissions.transition(records, oldest["id"], "canceled", LIVE_STATES)
+    assert intake.submit(records, redis, limited, keys["colleague"], ridge(dataset, 3.0))[1] is True

@@ -78,6 +78,10 @@ def test_forced_n_jobs_cannot_be_changed(diabetes: dict[str, Any]) -> None:
     ("MLPRegressor", {"hidden_layer_sizes": [600, 600]}, "/model/params/hidden_layer_sizes", "1024 units"),
     ("MLPRegressor", {"hidden_layer_sizes": [8, 8, 8, 8, 8]}, "/model/params/hidden_layer_sizes", "4 layers"),
     ("SVR", {"cache_size": 4096}, "/model/params/cache_size", "at most 1024"),
+    ("KNeighborsRegressor", {"n_neighbors": 1001}, "/model/params/n_neighbors", "at most 1000"),
+    ("MLPRegressor", {"max_fun": 50_001}, "/model/params/max_fun", "at most 50000"),
+    ("SVR", {"kernel": "r" * 257}, "/model/params/kernel", "at most 256 characters"),
+    ("MLPRegressor", {"hidden_layer_sizes": [1] * 10_001}, "/model/params/hidden_layer_sizes", "at most 10000 items"),
 ])
 def test_caps(diabetes: dict[str, Any], estimator: str, params: dict[str, Any], pointer: str, words: str) -> None:
     found = pointers(check(diabetes, estimator, params=params))
@@ -109,6 +113,22 @@ def test_transformer_parameters(diabetes: dict[str, Any]) -> None:
     assert "'with_mean' parameter of StandardScaler" in found["/model/preprocess/0/params/with_mean"]
     assert "at most 3" in found["/model/preprocess/1/params/degree"]
     assert "accepted: add_indicator, copy" in found["/model/preprocess/2/params/strategi"]
+
+
+@pytest.mark.parametrize("dtype", ["U100000", "<U100000", "object", "complex128", "S9", "float128"])
+def test_encoder_dtypes_are_numeric_and_small(ctx: WorkerContext, dtype: str) -> None:
+    # A 100,000-character unicode dtype makes the encoder's output 400,000 bytes per cell (numpy's
+    # dtype("U100000").itemsize); only numeric types of at most 8 bytes are allowed.
+    frame = load_diabetes(as_frame=True).frame
+    frame["sex"] = pd.Series(["f" if v > 0 else "m" for v in frame["sex"]], dtype="str")
+    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression")
+    for encoder in ("OneHotEncoder", "OrdinalEncoder"):
+        steps = [{"transformer": encoder, "columns": ["sex"], "params": {"dtype": dtype}}]
+        found = pointers(check(dataset, "Ridge", preprocess=steps))
+        assert list(found) == ["/model/preprocess/0/params/dtype"]
+        assert "numeric type" in found["/model/preprocess/0/params/dtype"]
+    fine = [{"transformer": "OneHotEncoder", "columns": ["sex"], "params": {"dtype": "float32"}}]
+    assert check(dataset, "Ridge", preprocess=fine)["ok"] is True
 
 
 def test_a_document_the_api_never_resolved_is_refused_before_any_import(diabetes: dict[str, Any]) -> None:
@@ -248,3 +268,71 @@ def test_values_that_cannot_work_here_are_refused_up_front(diabetes: dict[str, A
     withheld = pointers(check(diabetes, "Ridge", preprocess=[
         {"transformer": "IterativeImputer", "columns": ["bmi"], "params": {"estimator": "Ridge"}}]))
     assert "not expressible in JSON" in withheld["/model/preprocess/0/params/estimator"]
+
+
+# -- the trial fit: a configuration that cannot fit at all is refused, naming the step ----------------------
+
+def _sklearn_error(fit: Any) -> str:
+    with pytest.raises(Exception) as raised:
+        fit()
+    return f"{type(raised.value).__name__}: {raised.value}"
+
+
+def test_missing_values_fed_to_an_estimator_that_refuses_them(ctx: WorkerContext) -> None:
+    # Five missing bmi values among 420 development rows, at the end of them: the sample still sees them.
+    frame = load_diabetes(as_frame=True).frame.sort_values("bmi").reset_index(drop=True)
+    frame.loc[415:419, "bmi"] = np.nan
+    dataset = add_dataset(ctx, frame.iloc[:420], frame.iloc[420:], "target", "regression")
+    dev = frame.iloc[:420]
+    # scikit-learn's own words for the same fit (Ridge refuses NaN in X):
+    words = _sklearn_error(lambda: Ridge().fit(dev.drop(columns="target").to_numpy(), dev["target"].to_numpy()))
+    found = pointers(check(dataset, "Ridge"))
+    assert list(found) == ["/model/estimator"]
+    assert "Ridge" in found["/model/estimator"] and words.split(".")[0] in found["/model/estimator"]
+    imputed = [{"transformer": "SimpleImputer", "columns": ["bmi"], "params": {"strategy": "median"}}]
+    assert check(dataset, "Ridge", preprocess=imputed)["ok"] is True
+
+
+def test_a_mean_imputer_on_a_text_column_names_its_step(ctx: WorkerContext) -> None:
+    from sklearn.impute import SimpleImputer
+
+    frame = load_diabetes(as_frame=True).frame
+    frame["sex"] = pd.Series(["f" if v > 0 else "m" for v in frame["sex"]], dtype="str")
+    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression")
+    words = _sklearn_error(lambda: SimpleImputer(strategy="mean").fit(frame[["sex"]].astype(object)))
+    steps = [{"transformer": "StandardScaler", "columns": ["age"], "params": {}},
+             {"transformer": "SimpleImputer", "columns": ["sex"], "params": {"strategy": "mean"}},
+             {"transformer": "OneHotEncoder", "columns": ["sex"], "params": {}}]
+    found = pointers(check(dataset, "Ridge", preprocess=steps))
+    assert list(found) == ["/model/preprocess/1"]
+    assert "SimpleImputer on sex" in found["/model/preprocess/1"]
+    assert words.split(":")[0] in found["/model/preprocess/1"] and "non-numeric" in found["/model/preprocess/1"]
+
+
+def test_an_incompatible_solver_and_penalty_is_refused(cancer: dict[str, Any]) -> None:
+    from sklearn.linear_model import LogisticRegression
+
+    X, y = load_breast_cancer(return_X_y=True)
+    with pytest.warns(FutureWarning):  # scikit-learn 1.8 deprecated penalty; it still refuses the pair
+        words = _sklearn_error(lambda: LogisticRegression(penalty="l1", solver="lbfgs").fit(X, y))
+    found = pointers(check(cancer, "LogisticRegression", params={"penalty": "l1", "solver": "lbfgs"},
+                           metrics=["accuracy"]))
+    assert list(found) == ["/model/estimator"]
+    assert words in found["/model/estimator"]
+
+
+def test_a_class_sorted_table_is_sampled_with_every_class(ctx: WorkerContext) -> None:
+    # scikit-learn's breast cancer table sorted by class: a prefix would hold one class only, and
+    # LogisticRegression refuses a single class; the seeded sample (plus rows of each class) holds both.
+    from worker.jobs.trial_fit import sample_rows
+    from worker.learning.development import load_development
+
+    frame = load_breast_cancer(as_frame=True).frame.sort_values("target", kind="stable")
+    frame.columns = [c.replace(" ", "_") for c in frame.columns]
+    dataset = add_dataset(ctx, frame.iloc[:500], frame.iloc[500:], "target", "classification", scheme="stratified")
+    assert check(dataset, "LogisticRegression", params={"max_iter": 5000}, metrics=["accuracy"])["ok"] is True
+    features = [c["name"] for c in dataset["columns"] if c["name"] != "target"]
+    data, _ = load_development(ctx.settings, dataset, features)
+    rows = sample_rows(data, "classification", 20)
+    assert set(np.unique(data.y[rows])) == set(np.unique(data.y))
+    assert np.array_equal(rows, sample_rows(data, "classification", 20))  # seeded: the same every time

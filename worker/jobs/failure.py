@@ -1,0 +1,162 @@
+"""Tell the model's own errors from work that did not happen, and end a submission on lost work.
+
+A fold's estimator raising is the submission's result (``worker.jobs.fold`` records it). Anything
+else that stops a fold or holdout job is lost work, and no verdict is given on a partial plan:
+
+- a bound exceeded -- the job's timeout, the memory limit -- is deterministic: the job is not
+  retried, and the submission fails at once naming the bound;
+- data this worker could not read, a crashed fold process, anything else: RQ retries the job (a
+  worker that could not read the data is asked to leave the retry to another one,
+  ``worker.process.main``); when the last attempt is lost too, the submission fails naming the cause.
+
+Either way the submission's remaining jobs are stopped (``service.submission.dispatch.stop_jobs``).
+"""
+
+from __future__ import annotations
+
+import logging
+import resource
+from dataclasses import dataclass
+
+from redis import Redis
+from rq.job import Job
+from rq.timeouts import JobTimeoutException
+
+from service.errors import NotFound, SealBroken
+from service.records import submissions
+from service.submission import dispatch
+from service.submission.resolved import ValidationPlan
+from service.vocabulary import LIVE_STATES
+from worker.jobs.runtime import WorkerContext
+
+log = logging.getLogger(__name__)
+
+AVOID_WORKERS = "sealfold_avoid_workers"  # job.meta key: workers that could not read the job's data
+LEFT_COUNT = "sealfold_left"  # job.meta key: how often a worker on that list handed the job back
+
+
+class MemoryLimitExceeded(Exception):
+    """A fold or holdout process needed more memory than the limit allows."""
+
+
+@dataclass(frozen=True)
+class Loss:
+    """Why a job's work was lost: a ``FAILURE_CAUSES`` word, the words a submitter reads, and whether to retry."""
+
+    cause: str
+    detail: str
+    retry: bool
+
+
+def classify(
+    exc: BaseException, what: str, timeout_seconds: int, memory_limit_mib: int, *, sealed: bool = False
+) -> Loss:
+    """Name the loss of ``what`` ("fold 3 of repeat 0", "the holdout refit") that ``exc`` caused.
+
+    ``sealed``: the job had the holdout open, so an error's own message is left out (it could quote
+    sealed values); its class name is kept.
+    """
+    if isinstance(exc, SealBroken):
+        return Loss("data", exc.detail, False)
+    if isinstance(exc, JobTimeoutException):
+        return Loss("timeout", f"{what} exceeded the {_bound_name(what)} timeout of {timeout_seconds} s", False)
+    if isinstance(exc, MemoryLimitExceeded | MemoryError) or "MemoryError" in str(exc).split(":", 1)[0]:
+        if memory_limit_mib <= 0:
+            return Loss("memory_limit", f"{what} ran out of memory (no memory limit is set)", False)
+        return Loss("memory_limit", f"{what}: memory limit {memory_limit_mib} MiB exceeded", False)
+    if isinstance(exc, NotFound | OSError) or _names_missing_data(exc):
+        # our own messages and the OS's name a path, never a value
+        return Loss("missing_data", f"{what} could not read the dataset's files on the worker(s) that tried: "
+                                    f"{_short(exc, False)}", True)
+    return Loss("crash", f"{what} was lost: {_short(exc, sealed)}", True)
+
+
+def handle_lost_work(
+    ctx: WorkerContext, job: Job | None, submission_id: str, loss: Loss
+) -> None:
+    """Retry the job if the loss allows and attempts remain; otherwise fail the submission with the cause.
+
+    A worker that could not read the data is added to the job's avoid list, so a retry goes to another
+    worker where there is one.
+    """
+    if job is not None:
+        if not loss.retry:
+            job.retries_left = 0
+        elif loss.cause == "missing_data" and job.worker_name:
+            avoided = list(job.meta.get(AVOID_WORKERS, []))
+            if job.worker_name not in avoided:
+                job.meta[AVOID_WORKERS] = [*avoided, job.worker_name]
+                job.save_meta()
+        if job.retries_left:
+            log.warning("%s; retrying (%d attempt(s) left)", loss.detail, job.retries_left)
+            return
+    fail_submission(ctx, job.connection if job is not None else None, submission_id, loss.cause, loss.detail,
+                    spare=job.id if job is not None else None)
+
+
+def fail_submission(
+    ctx: WorkerContext, redis: Redis | None, submission_id: str, cause: str, detail: str, *, spare: str | None = None
+) -> bool:
+    """Fail a live submission with ``cause`` and stop its remaining jobs; return whether it moved."""
+    moved = submissions.transition(ctx.engine, submission_id, "failed", LIVE_STATES, error=detail, cause=cause)
+    if moved and redis is not None:
+        sub = submissions.get(ctx.engine, submission_id)
+        if sub is not None:
+            plan = ValidationPlan.from_document(sub["config"]["validation"])
+            dispatch.stop_jobs(redis, ctx.settings, submission_id, plan, spare=spare)
+    return moved
+
+
+def limit_memory(limit_mib: int) -> None:
+    """Let this process's address space grow by at most ``limit_mib`` MiB beyond its current size (0: no limit).
+
+    Counted from the process's size when the limit is set (a worker's preloaded libraries are some
+    hundreds of MiB of address space), so the setting is what a fold or holdout may add: its copies of
+    the rows, the fitted model, scikit-learn's temporaries. Beyond it an allocation fails with
+    MemoryError, which ends the job as "memory limit N MiB exceeded".
+    """
+    if limit_mib <= 0:
+        return
+    current = _address_space_bytes()
+    if current is None:
+        return
+    _soft, hard = resource.getrlimit(resource.RLIMIT_AS)
+    soft = current + (limit_mib << 20)
+    if hard != resource.RLIM_INFINITY:
+        soft = min(soft, hard)
+    resource.setrlimit(resource.RLIMIT_AS, (soft, hard))
+
+
+def lift_memory_limit() -> None:
+    """Remove the soft limit again (as far as the hard limit allows)."""
+    _soft, hard = resource.getrlimit(resource.RLIMIT_AS)
+    resource.setrlimit(resource.RLIMIT_AS, (hard, hard))
+
+
+def _address_space_bytes() -> int | None:
+    try:
+        with open("/proc/self/status", encoding="ascii") as status:
+            for line in status:
+                if line.startswith("VmSize:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError):
+        return None
+    return None
+
+
+def _bound_name(what: str) -> str:
+    return "holdout" if "holdout" in what else "fold"
+
+
+def _names_missing_data(exc: BaseException) -> bool:
+    head = str(exc).split(":", 1)[0]
+    return head in ("NotFound", "FileNotFoundError", "PermissionError", "OSError", "IsADirectoryError")
+
+
+def _short(exc: BaseException, sealed: bool, limit: int = 300) -> str:
+    if sealed:
+        return f"{type(exc).__name__} (its message is withheld: the job had the sealed holdout open)"
+    text = str(exc).split("\n--- in the fold process:", 1)[0] if str(exc) else type(exc).__name__
+    if not text.startswith(type(exc).__name__) and "Error" not in text.split(":", 1)[0]:
+        text = f"{type(exc).__name__}: {text}"
+    return text if len(text) <= limit else text[:limit] + "..."
