@@ -244,7 +244,7 @@ def start_stack(sup: Supervisor, options: StackOptions) -> Stack:
     ]
     checker_name = f"{prefix}-checker"
     checker = sup.start("checker", [sys.executable, "-m", "worker", "--checker", "--name", checker_name], env,
-                        log_dir)
+                        log_dir, restartable=True)
     base_url = f"http://{url_host(options.host)}:{port}"
     wait_for_ready(sup, base_url, options.ready_timeout_seconds)
     wait_for_workers(sup, redis_url, [*names, checker_name], options.ready_timeout_seconds)
