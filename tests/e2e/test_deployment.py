@@ -81,6 +81,9 @@ def test_a_fresh_postgresql_database_serves_200_requests_from_4_gunicorn_workers
         argv = [str(GUNICORN), "-c", "python:service.api.gunicorn_conf", "--workers", str(WORKERS),
                 "--bind", f"127.0.0.1:{port}", "--timeout", "60",
                 *(["--preload"] if preload else []), "service.app:create_app()"]
+        # /readyz needs a live worker: register one in Redis as a started `sealfold worker` does.
+        stand_in = Worker(["sealfold"], connection=Redis.from_url(redis_url), name=f"w-{port}")
+        stand_in.register_birth()
         with log.open("wb") as out:
             proc = subprocess.Popen(argv, env=env, stdout=out, stderr=subprocess.STDOUT, start_new_session=True)
         try:
@@ -90,8 +93,6 @@ def test_a_fresh_postgresql_database_serves_200_requests_from_4_gunicorn_workers
             boot_seconds = time.perf_counter() - started
             workers_at_boot = sorted(_children(proc.pid))
 
-            # /readyz needs a live worker: register one in Redis as a started `sealfold worker` does.
-            Worker(["sealfold"], connection=Redis.from_url(redis_url), name=f"w-{port}").register_birth()
             clients = {None: ServiceClient(base), **{r: ServiceClient(base, key=t) for r, t in tokens.items()}}
             calls = [(None, "/readyz"), ("steward", "/v1/datasets"), ("submitter", "/v1/catalog"),
                      ("submitter", "/v1/submissions")]
@@ -122,3 +123,4 @@ def test_a_fresh_postgresql_database_serves_200_requests_from_4_gunicorn_workers
         finally:
             proc.terminate()
             proc.wait(timeout=30)
+            stand_in.register_death()  # the session's Redis is shared with later tests

@@ -96,7 +96,10 @@ def test_verdicts_baseline_champion_and_overridden_plan(stack: Stack, cancer: di
     on_cv = _rule(other_plan, "champion")
     assert on_cv["figures"]["champion_on_candidate_plan"] is True and on_cv["figures"]["cells"] == 3, on_cv
     assert on_cv["outcome"] == "inconclusive"
-    assert other_plan["result"]["verdict"]["decision"] == "inconclusive", other_plan["result"]["verdict"]["reasons"]
+    # The comparison on the sealed rows decides beside it (champion_rule "both"): at this dataset's LORD++ level
+    # a model this close is shown non-inferior on some seals and not on others, so the decision is never a pass.
+    assert other_plan["result"]["verdict"]["decision"] in ("inconclusive", "fail"), \
+        other_plan["result"]["verdict"]["reasons"]
 
     board = stack.client().get(f"/v1/datasets/{ds}/board").json()
     marked = [row for row in board["entries"] if row["champion"]]

@@ -118,7 +118,9 @@ def wait_ready(
         dead = [w for w in workers if w.poll() is not None]
         if dead:
             pytest.fail(f"a worker exited with {dead[0].returncode}:\n{log_path.read_text(errors='replace')[-3000:]}")
-        if client.get("/readyz").status == 200 and Worker.count(connection=redis) >= len(workers):
+        # Each of these workers by its pid: the session's Redis may also hold other tests' registrations.
+        registered = {w.pid for w in Worker.all(connection=redis)}
+        if client.get("/readyz").status == 200 and {w.pid for w in workers} <= registered:
             return
         time.sleep(0.1)
     pytest.fail(f"stack not ready within {timeout} s:\n{log_path.read_text(errors='replace')[-3000:]}")
