@@ -90,16 +90,15 @@ def test_verdicts_baseline_champion_and_overridden_plan(stack: Stack, cancer: di
     assert stump["result"]["verdict"]["decision"] == "fail"
 
     # Overriding the fold plan: the champion's configuration is scored on the submission's 3 folds in jobs of
-    # its own, so the comparison is paired; a model this close to the champion cannot be told apart on 3 folds.
+    # its own, so the comparison is paired.
     other_plan = _judged(stack, {"dataset": ds, "model": {**SOUND, "params": {"C": 0.5, "max_iter": 3000}},
                                  "validation": {"folds": 3}, "label": "own folds"})
     on_cv = _rule(other_plan, "champion")
     assert on_cv["figures"]["champion_on_candidate_plan"] is True and on_cv["figures"]["cells"] == 3, on_cv
-    assert on_cv["outcome"] == "inconclusive"
-    # The comparison on the sealed rows decides beside it (champion_rule "both"): at this dataset's LORD++ level
-    # a model this close is shown non-inferior on some seals and not on others, so the decision is never a pass.
-    assert other_plan["result"]["verdict"]["decision"] in ("inconclusive", "fail"), \
-        other_plan["result"]["verdict"]["reasons"]
+    # Whether a model this close is shown within the margin on 3 folds depends on the seal (the server draws
+    # it at random), and so does the comparison on the sealed rows that decides beside it; what holds on every
+    # seal is that the test is paired on the candidate's folds and never finds the near-copy worse.
+    assert on_cv["outcome"] in ("pass", "inconclusive"), on_cv
 
     board = stack.client().get(f"/v1/datasets/{ds}/board").json()
     marked = [row for row in board["entries"] if row["champion"]]

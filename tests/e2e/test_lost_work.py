@@ -7,6 +7,7 @@ make_regression for folds slow enough to be caught mid-run.
 from __future__ import annotations
 
 import os
+import shutil
 import signal
 import time
 from collections.abc import Iterator
@@ -22,6 +23,7 @@ from rq.registry import StartedJobRegistry
 from rq.serializers import JSONSerializer
 from sklearn.datasets import make_regression
 
+from service.ops.data_identity import marker_path
 from service.submission.dispatch import fold_job_id, holdout_job_id
 from tests.support.datasets import diabetes_frame, register
 from tests.support.servers import redis_server, start_worker, stop_processes
@@ -39,9 +41,12 @@ def _submit(stack: Stack, ds_id: str, estimator: str, params: dict[str, Any]) ->
 
 
 def _blind_worker(stack: Stack, tmp_path: Path, name: str) -> Any:
-    """Start a worker on the same records DB and Redis whose data dir has no datasets (a failed mount)."""
+    """Start a worker on the same records DB and Redis whose data dir has no datasets: a stale copy of the
+    volume that still carries the deployment's identity marker (an empty or foreign dir is refused at start,
+    tests/worker/process/test_data_refusal.py), so the worker starts and then cannot read the files."""
     blind = tmp_path / f"{name}-data"
     blind.mkdir()
+    shutil.copy2(marker_path(stack.data_dir), marker_path(blind))
     env = {**stack.env, "SEALFOLD_DATA_DIR": str(blind), "DATABASE_URL": stack.settings.effective_database_url}
     return start_worker(env, name, stack.log_path)
 

@@ -169,5 +169,6 @@ def test_every_fold_lost_is_the_infrastructures_failure_and_the_configuration_ma
     sub_id = add_submission(ctx, dataset, config_document(dataset, "Ridge"))
     assert jobs.summarize(sub_id)["folds_ok"] == 0  # no fold job ever recorded a result
     sub = submissions.get(ctx.engine, sub_id)
-    assert sub is not None and sub["state"] == "failed" and "crashed or was lost" in sub["error"]
+    assert sub is not None and sub["state"] == "failed" and sub["failure_cause"] == "crash"
+    assert "3 of 3 folds were lost" in sub["error"] and "no verdict is given on a partial plan" in sub["error"]
     assert sub["config_key"] == f"reopened:{sub_id}"
