@@ -8,6 +8,8 @@ off unless ``SEALFOLD_WORKER_SECRET`` is set: then every request must carry ``Au
     GET /internal/v1/datasets/<id>/manifest            name, size and sha256 of each development file
     GET /internal/v1/datasets/<id>/files/<name>        one development file's bytes (names: DEVELOPMENT_FILES)
     GET /internal/v1/datasets/<id>/sealed              the sealed holdout's bytes (sha256 in a header)
+    PUT /internal/v1/datasets/<id>/per-example/<sub>   the holdout job's per-example values of a submission
+    GET /internal/v1/datasets/<id>/per-example/<sub>   the same, for the verdict job (which may run elsewhere)
 
 The sealed path is separate so that only the worker's holdout job ever asks for it; the secret is what
 guards it, as the shared volume's permissions guard the file on a shared disk. Ids are checked by
@@ -18,15 +20,18 @@ from __future__ import annotations
 
 import hashlib
 import hmac
+import os
+import tempfile
 import threading
 from pathlib import Path
 
 from flask import Blueprint, Flask, Response, request, send_file
 
 from service.api import json_response, service_context
-from service.errors import NotFound, Unauthenticated
+from service.errors import InputError, NotFound, Unauthenticated
 from service.ops import data_identity
-from service.vault.store import DatasetPaths, dataset_paths
+from service.records import submissions
+from service.vault.store import DatasetPaths, dataset_paths, per_example_path
 
 PREFIX = "/internal/v1"
 SHA256_HEADER = "X-Sealfold-Sha256"
@@ -124,6 +129,52 @@ def sealed(ds_id: str) -> Response:
     if not path.is_file():
         raise NotFound(f"no dataset {ds_id!r}")
     return _send(path)
+
+
+@blp.get("/datasets/<ds_id>/per-example/<sub_id>")
+def per_example(ds_id: str, sub_id: str) -> Response:
+    """A submission's per-example holdout values, as its holdout job sent them (404: none were kept)."""
+    path = _per_example_path(ds_id, sub_id)
+    if not path.is_file():
+        raise NotFound(f"no per-example values kept for submission {sub_id!r}")
+    return _send(path)
+
+
+@blp.put("/datasets/<ds_id>/per-example/<sub_id>")
+def keep_per_example(ds_id: str, sub_id: str) -> Response:
+    """Keep the per-example holdout values a fetching worker's holdout job computed (0600, sealed directory).
+
+    Written whole under a temporary name, checked against the sha256 header, then renamed into place.
+    """
+    path = _per_example_path(ds_id, sub_id)
+    expected = request.headers.get(SHA256_HEADER, "")
+    limit = service_context().settings.max_upload_bytes
+    if request.content_length is None or request.content_length > limit:
+        raise InputError(f"the body must declare its Content-Length, at most {limit} bytes")
+    path.parent.mkdir(mode=0o700, exist_ok=True)
+    handle, temporary = tempfile.mkstemp(prefix=f".{sub_id}-", suffix=".partial", dir=path.parent)  # 0600
+    try:
+        digest = hashlib.sha256()
+        with os.fdopen(handle, "wb") as out:
+            while chunk := request.stream.read(CHUNK_BYTES):
+                digest.update(chunk)
+                out.write(chunk)
+        if not hmac.compare_digest(digest.hexdigest(), expected):
+            raise InputError(f"the body does not match its {SHA256_HEADER} header")
+        os.replace(temporary, path)
+    finally:
+        Path(temporary).unlink(missing_ok=True)
+    return Response(status=204)
+
+
+def _per_example_path(ds_id: str, sub_id: str) -> Path:
+    """The kept file of ``sub_id``, which must be a submission of dataset ``ds_id`` whose seal exists."""
+    ctx = service_context()
+    sub = submissions.get(ctx.engine, sub_id)
+    paths = dataset_paths(ctx.settings, ds_id)
+    if sub is None or sub["dataset_id"] != ds_id or not paths.sealed_holdout.is_file():
+        raise NotFound(f"no submission {sub_id!r} of dataset {ds_id!r}")
+    return per_example_path(ctx.settings, ds_id, sub_id)
 
 
 def _send(path: Path) -> Response:

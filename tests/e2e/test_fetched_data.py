@@ -24,6 +24,7 @@ from service.vault.store import dataset_paths
 from tests.support.datasets import diabetes_frame, register
 from tests.support.servers import start_worker, stop_processes
 from tests.support.stack import Stack, running_stack
+from worker.process.fetched_data import DataFetcher
 
 SECRET = "e2e-worker-secret"
 MODEL = {"estimator": "Ridge", "params": {"alpha": 1.0}, "features": ["age", "bmi", "bp", "s5"],
@@ -93,6 +94,24 @@ def test_a_worker_without_the_shared_disk_fetches_verifies_and_scores_the_same(
             # The holdout job alone fetched the sealed file: private, and the same bytes.
             assert stat.S_IMODE(os.stat(theirs.sealed_holdout).st_mode) == 0o600
             assert _sha(theirs.sealed_holdout) == _sha(mine.sealed_holdout)
+
+            # Its per-example holdout values went to the API, for a verdict that may run on another worker.
+            kept = Path(str(mine.sealed_holdout.parent / "per_example" / f"{fetched['id']}.npz"))
+            cached = theirs.sealed_holdout.parent / "per_example" / f"{fetched['id']}.npz"
+            assert _sha(kept) == _sha(cached)
+            assert stat.S_IMODE(os.stat(cached).st_mode) == 0o600
+            assert stat.S_IMODE(os.stat(cached.parent).st_mode) == 0o700
+            # A verdict on another fetching worker reads the API's copy (and none where the API has none).
+            other = DataFetcher(stack.settings.__class__.load(
+                {"data_dir": tmp_path / "other-cache", "data_source": "api", "api_url": stack.url,
+                 "worker_secret": SECRET, "database_url": "sqlite:///unused"}, environ={}))
+            elsewhere = tmp_path / "other-cache" / cached.relative_to(cache)
+            other.per_example(ds["id"], fetched["id"], elsewhere)
+            assert _sha(elsewhere) == _sha(kept) and stat.S_IMODE(os.stat(elsewhere).st_mode) == 0o600
+            stray = elsewhere.with_name("sub_none.npz")
+            stray.write_bytes(b"not the API's")
+            other.per_example(ds["id"], "sub_none", stray)
+            assert not stray.exists()
 
             damaged = bytearray(theirs.numeric.read_bytes())
             damaged[-8:] = b"\xff" * 8  # the last row's last value, same size

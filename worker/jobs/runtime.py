@@ -50,6 +50,10 @@ class DataSource(Protocol):
 
     def sealed(self, ds_id: str) -> Path: ...
 
+    def per_example(self, ds_id: str, submission_id: str, path: Path) -> None: ...
+
+    def publish_per_example(self, ds_id: str, submission_id: str, path: Path) -> None: ...
+
 
 def install_data_source(source: DataSource | None) -> None:
     """Make ``source`` fetch dataset files before jobs open them (None: the data dir is the shared volume)."""
@@ -66,6 +70,19 @@ def ensure_sealed(ds_id: str) -> None:
     """Make the sealed holdout of ``ds_id`` readable here; the holdout job alone calls this."""
     if _Slot.data_source is not None:
         _Slot.data_source.sealed(ds_id)
+
+
+def fetch_per_example(ds_id: str, submission_id: str, path: Path) -> None:
+    """Bring the API's copy of a submission's per-example holdout values to ``path`` (or remove ``path``
+    when the API has none); a no-op on a shared data dir."""
+    if _Slot.data_source is not None:
+        _Slot.data_source.per_example(ds_id, submission_id, path)
+
+
+def publish_per_example(ds_id: str, submission_id: str, path: Path) -> None:
+    """Give the API the per-example holdout values just written at ``path``; a no-op on a shared data dir."""
+    if _Slot.data_source is not None:
+        _Slot.data_source.publish_per_example(ds_id, submission_id, path)
 
 
 def install(ctx: WorkerContext) -> None:

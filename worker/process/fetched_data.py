@@ -41,6 +41,19 @@ class FetchFailed(OSError):
     """
 
 
+class _Absent(FetchFailed):
+    """The API has no such per-example file (no holdout values were kept for the submission)."""
+
+
+def _private_dirs(data_dir: Path, folder: Path) -> None:
+    """Make every directory from ``data_dir/sealed`` down to ``folder`` exist, each 0700."""
+    sealed_root = data_dir / "sealed"
+    chain = [folder, *[p for p in folder.parents if p.is_relative_to(sealed_root)]]
+    for each in reversed(chain):
+        each.mkdir(mode=0o700, parents=True, exist_ok=True)
+        os.chmod(each, 0o700)
+
+
 class DataFetcher:
     """Fetches and verifies dataset files from ``settings.api_url`` into ``settings.data_dir``."""
 
@@ -48,14 +61,16 @@ class DataFetcher:
         self.settings = settings
         self.base = settings.api_url.rstrip("/") + INTERNAL_PREFIX
 
-    def _open(self, path: str) -> Any:
-        req = urllib.request.Request(self.base + path, headers={
-            "Authorization": f"Bearer {self.settings.worker_secret}", "Accept": "*/*"})
+    def _open(self, path: str, *, data: bytes | None = None, headers: dict[str, str] | None = None) -> Any:
+        all_headers = {"Authorization": f"Bearer {self.settings.worker_secret}", "Accept": "*/*", **(headers or {})}
+        req = urllib.request.Request(self.base + path, data=data, headers=all_headers,
+                                     method="GET" if data is None else "PUT")
         try:
             return urllib.request.urlopen(req, timeout=TIMEOUT_SECONDS)
         except urllib.error.HTTPError as err:
             with err:
-                raise FetchFailed(f"the API refused {INTERNAL_PREFIX}{path}: HTTP {err.code}") from None
+                cls = _Absent if err.code == 404 and "/per-example/" in path else FetchFailed
+                raise cls(f"the API refused {INTERNAL_PREFIX}{path}: HTTP {err.code}") from None
         except (OSError, ValueError) as exc:
             raise FetchFailed(f"cannot fetch {INTERNAL_PREFIX}{path} from {self.settings.api_url}: {exc}") from exc
 
@@ -101,11 +116,31 @@ class DataFetcher:
         the caller (``store.open_sealed_holdout``).
         """
         target = dataset_paths(self.settings, ds_id).sealed_holdout
-        for folder in (target.parent.parent, target.parent):
-            folder.mkdir(mode=0o700, parents=True, exist_ok=True)
-            os.chmod(folder, 0o700)
+        _private_dirs(self.settings.data_dir, target.parent)
         self._download(f"/datasets/{urllib.parse.quote(ds_id, safe='')}/sealed", target, None, mode=0o600)
         return target
+
+    def per_example(self, ds_id: str, submission_id: str, path: Path) -> None:
+        """Replace ``path`` with the API's copy of a submission's per-example holdout values, or remove it
+        when the API has none: the API's copy is the one written before the stored score."""
+        _private_dirs(self.settings.data_dir, path.parent)
+        try:
+            self._download(self._per_example_url(ds_id, submission_id), path, None, mode=0o600)
+        except _Absent:
+            path.unlink(missing_ok=True)
+
+    def publish_per_example(self, ds_id: str, submission_id: str, path: Path) -> None:
+        """Send the per-example values the holdout job just wrote to the API (the verdict may run elsewhere)."""
+        data = path.read_bytes()
+        url = self._per_example_url(ds_id, submission_id)
+        with self._open(url, data=data, headers={SHA256_HEADER: hashlib.sha256(data).hexdigest(),
+                                                 "Content-Type": "application/octet-stream"}):
+            pass
+
+    @staticmethod
+    def _per_example_url(ds_id: str, submission_id: str) -> str:
+        return (f"/datasets/{urllib.parse.quote(ds_id, safe='')}/per-example/"
+                f"{urllib.parse.quote(submission_id, safe='')}")
 
     def _download(self, path: str, target: Path, sha: str | None, *, mode: int) -> None:
         """Stream ``path`` into a temporary file beside ``target``, check its sha256, rename it into place."""

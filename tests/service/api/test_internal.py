@@ -101,3 +101,22 @@ def test_the_internal_endpoint_is_not_in_the_public_spec(served: tuple[Api, dict
     api, _ = served
     spec = api.client.get("/openapi.json").get_json()
     assert not [p for p in spec["paths"] if p.startswith("/internal")]
+
+
+@pytest.mark.parametrize("sub_id", ["sub_none", "..", ".hidden", "sub%2F..%2F..%2Fx"])
+def test_per_example_values_of_no_submission_are_not_found_nor_written(
+    served: tuple[Api, dict[str, Any]], sub_id: str,
+) -> None:
+    api, ds = served
+    path = f"/internal/v1/datasets/{ds['id']}/per-example/{sub_id}"
+    assert api.client.get(path, headers=BEARER).status_code == 404
+    body = b"values"
+    put = api.client.put(path, data=body, headers={**BEARER, "X-Sealfold-Sha256": hashlib.sha256(body).hexdigest()})
+    assert put.status_code == 404
+    kept = dataset_paths(api.settings, ds["id"]).sealed_holdout.parent / "per_example"
+    assert not kept.exists() or not list(kept.iterdir())
+
+
+def test_writing_per_example_values_needs_the_secret(served: tuple[Api, dict[str, Any]]) -> None:
+    api, ds = served
+    _problem(api.client.put(f"/internal/v1/datasets/{ds['id']}/per-example/sub_none", data=b"x"), 401)
