@@ -8,7 +8,9 @@ and recorded sha256 match it, and fetches the others into a temporary name, chec
 bytes received and renames them into place. A file whose size or modification time changed since it was
 checked is hashed again before it is trusted. The sealed holdout is fetched only by the holdout job
 (``DataFetcher.sealed``), kept 0600 in a 0700 ``sealed/`` directory, and the job's fingerprint check
-still runs on it.
+still runs on it. The per-example holdout values the holdout job keeps are sent to the API
+(``publish_per_example``), and jobs that read them take the API's copy (``per_example``), so the verdict
+may run on another worker.
 """
 
 from __future__ import annotations
