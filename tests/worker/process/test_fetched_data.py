@@ -7,6 +7,9 @@ import dataclasses
 import hashlib
 import os
 import stat
+import subprocess
+import sys
+import uuid
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -18,10 +21,12 @@ from service.settings import Settings
 from service.vault.store import dataset_paths
 from tests.support.api import Api, open_api
 from tests.support.datasets import csv_bytes, diabetes_frame
+from tests.support.records import upgraded_engine
 from tests.support.servers import ServedApp
 from worker.process.fetched_data import DataFetcher, FetchFailed
 
 SECRET = "fetch-test-secret"
+ROOT = Path(__file__).resolve().parents[3]
 
 
 @pytest.fixture
@@ -117,3 +122,31 @@ def test_data_source_is_shared_or_api() -> None:
     assert Settings.load({}, environ={}).data_source == "shared"
     with pytest.raises(SettingsError, match="data_source"):
         Settings.load({"data_source": "s3"}, environ={})
+
+
+def _start_fetching_worker(tmp_path: Path, url: str, database_url: str, redis_url: str,
+                           secret: str = SECRET) -> subprocess.CompletedProcess[str]:
+    env = {**os.environ, "SEALFOLD_DATA_DIR": str(tmp_path / "cache"), "SEALFOLD_DATA_SOURCE": "api",
+           "SEALFOLD_API_URL": url, "SEALFOLD_WORKER_SECRET": secret, "DATABASE_URL": database_url,
+           "REDIS_URL": redis_url, "SEALFOLD_QUEUE": f"q{uuid.uuid4().hex[:8]}"}
+    return subprocess.run([sys.executable, "-m", "worker", "--burst"], env=env, cwd=ROOT, capture_output=True,
+                          text=True, timeout=120)
+
+
+def test_a_fetching_worker_refuses_another_deployments_api(api_with_dataset: tuple[Api, str, str],
+                                                           tmp_path: Path, redis_url: str) -> None:
+    _, url, _ = api_with_dataset
+    other = Settings.load({"data_dir": tmp_path / "other", "database_url": ""}, environ={})
+    upgraded_engine(other).dispose()  # a records DB with an identity of its own
+    done = _start_fetching_worker(tmp_path, url, other.effective_database_url, redis_url)
+    assert done.returncode == 3, done.stderr[-2000:]
+    assert "serves another deployment's data" in done.stderr
+
+
+def test_a_fetching_worker_with_a_wrong_secret_refuses_to_start(api_with_dataset: tuple[Api, str, str],
+                                                                tmp_path: Path, redis_url: str) -> None:
+    api, url, _ = api_with_dataset
+    done = _start_fetching_worker(tmp_path, url, api.settings.effective_database_url, redis_url, secret="wrong")
+    assert done.returncode == 3, done.stderr[-2000:]
+    assert "cannot ask the API for its data identity" in done.stderr and "HTTP 401" in done.stderr
+    assert not (tmp_path / "cache").exists() or not any((tmp_path / "cache").rglob("*.parquet"))
