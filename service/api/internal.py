@@ -159,7 +159,7 @@ def keep_per_example(ds_id: str, sub_id: str) -> Response:
             while chunk := request.stream.read(CHUNK_BYTES):
                 digest.update(chunk)
                 out.write(chunk)
-        if not hmac.compare_digest(digest.hexdigest(), expected):
+        if not hmac.compare_digest(digest.hexdigest().encode(), expected.encode("utf-8", "replace")):
             raise InputError(f"the body does not match its {SHA256_HEADER} header")
         os.replace(temporary, path)
     finally:

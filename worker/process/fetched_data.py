@@ -16,6 +16,7 @@ may run on another worker.
 from __future__ import annotations
 
 import hashlib
+import http.client
 import json
 import os
 import tempfile
@@ -80,8 +81,8 @@ class DataFetcher:
         with self._open(path) as resp:
             try:
                 return json.loads(resp.read())
-            except ValueError as exc:
-                raise FetchFailed(f"{INTERNAL_PREFIX}{path} did not answer JSON") from exc
+            except (ValueError, http.client.HTTPException) as exc:
+                raise FetchFailed(f"{INTERNAL_PREFIX}{path} did not answer whole JSON: {exc!r}") from exc
 
     def identity(self) -> str | None:
         """The data identity the API reports (its records DB's); raises FetchFailed when it cannot be asked."""
@@ -151,9 +152,12 @@ class DataFetcher:
         try:
             with self._open(path) as resp, os.fdopen(handle, "wb") as out:
                 expected = sha or resp.headers.get(SHA256_HEADER)
-                while chunk := resp.read(CHUNK_BYTES):
-                    digest.update(chunk)
-                    out.write(chunk)
+                try:
+                    while chunk := resp.read(CHUNK_BYTES):
+                        digest.update(chunk)
+                        out.write(chunk)
+                except http.client.HTTPException as exc:  # a connection cut mid-body (IncompleteRead)
+                    raise FetchFailed(f"{INTERNAL_PREFIX}{path}: the transfer broke off: {exc!r}") from exc
             if not expected or digest.hexdigest() != expected:
                 raise FetchFailed(f"{INTERNAL_PREFIX}{path}: the bytes received do not match their sha256")
             os.chmod(temporary, mode)

@@ -6,6 +6,7 @@ import dataclasses
 import hashlib
 from collections.abc import Iterator
 from pathlib import Path
+from types import SimpleNamespace
 from typing import Any
 
 import pytest
@@ -14,6 +15,7 @@ from service.ops.data_identity import recorded_identity
 from service.vault.store import dataset_paths
 from tests.support.api import Api, open_api
 from tests.support.datasets import csv_bytes, diabetes_frame
+from tests.support.worker_records import add_submission
 
 SECRET = "internal-test-secret"
 BEARER = {"Authorization": f"Bearer {SECRET}"}
@@ -120,3 +122,27 @@ def test_per_example_values_of_no_submission_are_not_found_nor_written(
 def test_writing_per_example_values_needs_the_secret(served: tuple[Api, dict[str, Any]]) -> None:
     api, ds = served
     _problem(api.client.put(f"/internal/v1/datasets/{ds['id']}/per-example/sub_none", data=b"x"), 401)
+
+
+def test_per_example_values_are_kept_whole_and_checked(served: tuple[Api, dict[str, Any]]) -> None:
+    api, ds = served
+    sub_id = add_submission(SimpleNamespace(engine=api.engine), ds,  # type: ignore[arg-type]
+                            {"validation": {"folds": 5, "repeats": 1}})
+    path = f"/internal/v1/datasets/{ds['id']}/per-example/{sub_id}"
+    assert api.client.get(path, headers=BEARER).status_code == 404  # none kept yet
+    body = b"per-example values"
+    for wrong in ("0" * 64, "\u00e9" * 64, ""):
+        refused = api.client.put(path, data=body, headers={**BEARER, "X-Sealfold-Sha256": wrong})
+        assert _problem(refused, 422)["detail"].startswith("the body does not match")
+    kept = dataset_paths(api.settings, ds["id"]).sealed_holdout.parent / "per_example"
+    assert not kept.exists() or not list(kept.iterdir())  # nothing half-written
+    sha = hashlib.sha256(body).hexdigest()
+    assert api.client.put(path, data=body, headers={**BEARER, "X-Sealfold-Sha256": sha}).status_code == 204
+    assert [p.name for p in kept.iterdir()] == [f"{sub_id}.npz"]
+    assert oct((kept / f"{sub_id}.npz").stat().st_mode & 0o777) == oct(0o600)
+    served_back = api.client.get(path, headers=BEARER)
+    assert served_back.status_code == 200 and served_back.data == body
+    assert served_back.headers["X-Sealfold-Sha256"] == sha
+    other = api.upload("steward", csv_bytes(diabetes_frame()), name="another", target="target", task="regression")
+    assert api.client.get(f"/internal/v1/datasets/{other.get_json()['id']}/per-example/{sub_id}",
+                          headers=BEARER).status_code == 404  # the submission is not that dataset's
