@@ -3,7 +3,9 @@
 The parameter-free ladder compares a new submission with the best so far by the standard error of
 their per-example loss differences, so those values must outlive the holdout job. They are derived
 from holdout rows, so they live beside the sealed file (directory 0700, files 0600) and never leave
-the service.
+the service. A worker without the shared disk sends them to the API when it writes them and reads the
+API's copy (``worker.jobs.runtime.publish_per_example``, ``fetch_per_example``), over the internal
+endpoint only workers hold the secret of.
 A file that cannot be read raises ``DamagedLosses``, whose message names the submission and the error
 class only, so the verdict job can fail the submission plainly instead of retrying forever.
 """
