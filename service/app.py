@@ -20,6 +20,7 @@ from redis import Redis
 
 from service import __version__
 from service.api import EXTENSION_KEY, SealfoldApi, ServiceContext, register_blueprints
+from service.api.internal import register_internal
 from service.api.telemetry import HttpMetrics, install
 from service.logs import configure_logging
 from service.ops import data_identity
@@ -61,6 +62,7 @@ def create_app(overrides: Mapping[str, Any] | None = None) -> Flask:
     )
     api = SealfoldApi(app)
     register_blueprints(api)
+    register_internal(app)
     register_desk(app)
     install(app, app.extensions[EXTENSION_KEY].http_metrics)
     return app

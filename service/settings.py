@@ -34,7 +34,11 @@ _ENV_NAMES: dict[str, str] = {
     "log_format": "SEALFOLD_LOG_FORMAT",
     "metrics_token": "SEALFOLD_METRICS_TOKEN",
     "min_free_disk_mb": "SEALFOLD_MIN_FREE_DISK_MB",
+    "data_source": "SEALFOLD_DATA_SOURCE",
+    "api_url": "SEALFOLD_API_URL",
+    "worker_secret": "SEALFOLD_WORKER_SECRET",
 }
+DATA_SOURCES = ("shared", "api")
 
 
 @dataclass(frozen=True)
@@ -68,6 +72,13 @@ class Settings:
     metrics_token: str = ""
     # /readyz fails when the data dir's file system has less free space than this.
     min_free_disk_mb: int = 512
+    # Where a worker finds dataset files: "shared" (data_dir is the deployment's shared volume) or "api"
+    # (data_dir is this worker's own cache, filled from the API at api_url, authenticated by worker_secret).
+    data_source: str = "shared"
+    api_url: str = ""
+    # Held by the API and every worker: the internal data endpoint answers only "Bearer <worker_secret>",
+    # and is off (404) when the API has none.
+    worker_secret: str = ""
     extra: Mapping[str, Any] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
@@ -89,6 +100,14 @@ class Settings:
                                 f"{self.team_max_live_submissions}")
         if not 0 <= self.job_nice <= 19:
             raise SettingsError(f"job_nice must be between 0 and 19, got {self.job_nice}")
+        if self.data_source not in DATA_SOURCES:
+            raise SettingsError(f"data_source must be one of {', '.join(DATA_SOURCES)}, got {self.data_source!r}")
+        if self.data_source == "api":
+            missing = [n for n in ("api_url", "worker_secret", "database_url") if not getattr(self, n)]
+            if missing:
+                raise SettingsError(f"data_source 'api' needs {', '.join(missing)} (SEALFOLD_API_URL, "
+                                    "SEALFOLD_WORKER_SECRET, DATABASE_URL: the data dir is then a local cache, "
+                                    "so the records database cannot live in it)")
         if self.min_rows < 10:
             raise SettingsError(f"min_rows must be at least 10, got {self.min_rows}")
 

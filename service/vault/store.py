@@ -71,6 +71,13 @@ def dataset_paths(settings: Settings, ds_id: str) -> DatasetPaths:
     )
 
 
+def per_example_path(settings: Settings, ds_id: str, submission_id: str) -> Path:
+    """Where the holdout job keeps a submission's per-example holdout values (inside the sealed directory)."""
+    if not _SAFE_ID.match(submission_id):
+        raise NotFound(f"no submission {submission_id!r}")
+    return dataset_paths(settings, ds_id).sealed_holdout.parent / "per_example" / f"{submission_id}.npz"
+
+
 def write_dataset(
     settings: Settings,
     ds_id: str,

@@ -26,6 +26,7 @@ from service.errors import FieldProblem
 from service.records import datasets
 from service.submission.resolved import ResolvedConfig, SearchSpec
 from service.vault import store
+from worker.jobs import runtime
 from worker.jobs.runtime import WorkerContext
 from worker.jobs.trial_fit import trial_fit_problems
 from worker.learning.development import target_values
@@ -46,6 +47,7 @@ def check_config(ctx: WorkerContext, config_doc: Mapping[str, Any], dataset_id: 
     dataset = datasets.get_internal(ctx.engine, dataset_id)
     if dataset is None:
         return _rejected([FieldProblem("/dataset", f"no dataset {dataset_id!r}")])
+    runtime.ensure_development(dataset_id)
     catalog = load_catalog()
     config = ResolvedConfig.from_document(config_doc)
     model = config.model

@@ -32,6 +32,7 @@ from service.ids import new_id
 from service.records import holdout_claims, submissions
 from service.submission.resolved import ResolvedConfig
 from service.vault import store
+from worker.jobs import runtime
 from worker.jobs.losses import save_per_example, scoring_rows
 from worker.jobs.runtime import Skip, WorkerContext, repeating, submission_to_work_on
 from worker.learning.development import column_kinds, load_development, model_frame, model_matrix, target_values
@@ -105,6 +106,7 @@ def _score(
     if not holdout_claims.beat(engine, submission_id, token):
         # This job stalled past the stale limit and another took the claim over: that one scores.
         return {"submission_id": submission_id, "holdout": "claim lost"}
+    runtime.ensure_sealed(str(dataset["id"]))  # a worker without the shared disk fetches it only here
     try:
         holdout = store.open_sealed_holdout(ctx.settings, dataset["id"], dataset["holdout_fingerprint"])
     except SealBroken:

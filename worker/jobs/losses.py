@@ -3,7 +3,9 @@
 The parameter-free ladder compares a new submission with the best so far by the standard error of
 their per-example loss differences, so those values must outlive the holdout job. They are derived
 from holdout rows, so they live beside the sealed file (directory 0700, files 0600) and never leave
-the service.
+the service. A worker without the shared disk sends them to the API when it writes them and reads the
+API's copy (``worker.jobs.runtime.publish_per_example``, ``fetch_per_example``), over the internal
+endpoint only workers hold the secret of.
 A file that cannot be read raises ``DamagedLosses``, whose message names the submission and the error
 class only, so the verdict job can fail the submission plainly instead of retrying forever.
 """
@@ -20,7 +22,8 @@ from typing import Any
 import numpy as np
 
 from service.settings import Settings
-from service.vault.store import dataset_paths
+from service.vault.store import per_example_path
+from worker.jobs import runtime
 
 
 class DamagedLosses(Exception):
@@ -28,7 +31,14 @@ class DamagedLosses(Exception):
 
 
 def _path(settings: Settings, dataset_id: str, submission_id: str) -> Path:
-    return dataset_paths(settings, dataset_id).sealed_holdout.parent / "per_example" / f"{submission_id}.npz"
+    return per_example_path(settings, dataset_id, submission_id)
+
+
+def _fetched(settings: Settings, dataset_id: str, submission_id: str) -> Path:
+    """The kept file's path, brought from the API first by a worker without the shared disk."""
+    path = _path(settings, dataset_id, submission_id)
+    runtime.fetch_per_example(dataset_id, submission_id, path)
+    return path
 
 
 def save_per_example(
@@ -53,6 +63,7 @@ def save_per_example(
     except BaseException:
         Path(partial).unlink(missing_ok=True)
         raise
+    runtime.publish_per_example(dataset_id, submission_id, path)  # to the API, for workers without the disk
 
 
 # Keys of the arrays that score a metric on any subset of the sealed rows (no metric is named so).
@@ -77,7 +88,7 @@ def load_scoring_rows(settings: Settings, dataset_id: str, submission_id: str) -
 
     Raises ``DamagedLosses`` when the file is there but cannot be read.
     """
-    path = _path(settings, dataset_id, submission_id)
+    path = _fetched(settings, dataset_id, submission_id)
     if not path.exists():
         return None
     try:
@@ -95,7 +106,7 @@ def load_per_example(settings: Settings, dataset_id: str, submission_id: str, me
 
     Raises ``DamagedLosses`` when the file is there but cannot be read.
     """
-    path = _path(settings, dataset_id, submission_id)
+    path = _fetched(settings, dataset_id, submission_id)
     if not path.exists():
         return None
     try:

@@ -10,6 +10,7 @@ import threading
 from collections.abc import Callable, Collection, Iterator, Mapping
 from contextlib import contextmanager, suppress
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any, Protocol
 
 from sqlalchemy import Engine
@@ -33,12 +34,55 @@ class _Slot:
 
     context: WorkerContext | None = None
     fold_runner: FoldRunner | None = None
+    data_source: DataSource | None = None
 
 
 class FoldRunner(Protocol):
     """Runs a fold job elsewhere and returns its answer (``worker.process.fold_process.FoldProcess``)."""
 
     def run_fold(self, submission_id: str, repeat: int, fold: int) -> dict[str, Any]: ...
+
+
+class DataSource(Protocol):
+    """Brings a dataset's files into this worker's data dir (``worker.process.fetched_data.DataFetcher``)."""
+
+    def development(self, ds_id: str) -> list[str]: ...
+
+    def sealed(self, ds_id: str) -> Path: ...
+
+    def per_example(self, ds_id: str, submission_id: str, path: Path) -> None: ...
+
+    def publish_per_example(self, ds_id: str, submission_id: str, path: Path) -> None: ...
+
+
+def install_data_source(source: DataSource | None) -> None:
+    """Make ``source`` fetch dataset files before jobs open them (None: the data dir is the shared volume)."""
+    _Slot.data_source = source
+
+
+def ensure_development(ds_id: str) -> None:
+    """Make the development files of ``ds_id`` readable here (a no-op on a shared data dir)."""
+    if _Slot.data_source is not None:
+        _Slot.data_source.development(ds_id)
+
+
+def ensure_sealed(ds_id: str) -> None:
+    """Make the sealed holdout of ``ds_id`` readable here; the holdout job alone calls this."""
+    if _Slot.data_source is not None:
+        _Slot.data_source.sealed(ds_id)
+
+
+def fetch_per_example(ds_id: str, submission_id: str, path: Path) -> None:
+    """Bring the API's copy of a submission's per-example holdout values to ``path`` (or remove ``path``
+    when the API has none); a no-op on a shared data dir."""
+    if _Slot.data_source is not None:
+        _Slot.data_source.per_example(ds_id, submission_id, path)
+
+
+def publish_per_example(ds_id: str, submission_id: str, path: Path) -> None:
+    """Give the API the per-example holdout values just written at ``path``; a no-op on a shared data dir."""
+    if _Slot.data_source is not None:
+        _Slot.data_source.publish_per_example(ds_id, submission_id, path)
 
 
 def install(ctx: WorkerContext) -> None:
@@ -50,6 +94,7 @@ def uninstall() -> None:
     """Forget the installed context and fold runner (tests)."""
     _Slot.context = None
     _Slot.fold_runner = None
+    _Slot.data_source = None
 
 
 def install_fold_runner(runner: FoldRunner | None) -> None:
@@ -118,6 +163,7 @@ def submission_to_work_on(
     dataset = datasets.get_internal(ctx.engine, sub["dataset_id"])
     if dataset is None:
         raise LookupError(f"submission {submission_id} refers to dataset {sub['dataset_id']!r}, which is gone")
+    ensure_development(str(dataset["id"]))
     return Work(sub, dataset)
 
 

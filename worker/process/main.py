@@ -43,6 +43,8 @@ from worker.jobs import ALLOWED_JOBS, runtime
 from worker.jobs.failure import AVOID_WORKERS, LEFT_COUNT, limit_memory
 from worker.jobs.runtime import repeating
 from worker.process import placement
+from worker.process.data_check import data_checker
+from worker.process.fetched_data import DataFetcher
 from worker.process.fold_process import FoldProcess
 from worker.process.outages import OutageTolerantWorker, outage_tolerated
 from worker.process.warmup import warm_up
@@ -360,10 +362,12 @@ def run_worker(settings: Settings, *, burst: bool = False, name: str | None = No
     goes back to the queue for another worker and this one stops).
     """
     engine = make_engine(settings)
+    fetcher = DataFetcher(settings) if settings.data_source == "api" else None
     try:
         require_current(engine)
         recorded = data_identity.recorded_identity(engine)
-        problem = data_identity.mismatch(recorded, data_identity.read_marker(settings.data_dir), settings.data_dir)
+        data_check = data_checker(settings, recorded, fetcher)
+        problem = data_check(True)
     finally:
         engine.dispose()  # nothing open crosses the fold process's fork
     if problem is not None or recorded is None:
@@ -371,6 +375,7 @@ def run_worker(settings: Settings, *, burst: bool = False, name: str | None = No
     preload()
     limit_threads()
     runtime.install(runtime.WorkerContext(settings=settings, engine=engine))
+    runtime.install_data_source(fetcher)
     warm_up(runtime.current())
     folds = FoldProcess()
     if not checker:
@@ -378,8 +383,7 @@ def run_worker(settings: Settings, *, burst: bool = False, name: str | None = No
         runtime.install_fold_runner(folds)
     redis = Redis.from_url(settings.redis_url)
     worker = build_worker(settings, redis, name, checker=checker)
-    worker.data_check = lambda: data_identity.mismatch(
-        recorded, data_identity.read_marker(settings.data_dir), settings.data_dir)
+    worker.data_check = lambda: data_check(False)
     try:
         worker.work(burst=burst, logging_level=settings.log_level, with_scheduler=False)
         if worker.data_problem is not None:

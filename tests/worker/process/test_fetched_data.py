@@ -1,0 +1,152 @@
+"""A worker's cache of dataset files fetched from a real served API: verified, re-fetched when damaged, and
+the sealed file only on the holdout job's request."""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import os
+import stat
+import subprocess
+import sys
+import uuid
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+from service.errors import SettingsError
+from service.settings import Settings
+from service.vault.store import dataset_paths
+from tests.support.api import Api, open_api
+from tests.support.datasets import csv_bytes, diabetes_frame
+from tests.support.records import upgraded_engine
+from tests.support.servers import ServedApp
+from worker.process.fetched_data import DataFetcher, FetchFailed
+
+SECRET = "fetch-test-secret"
+ROOT = Path(__file__).resolve().parents[3]
+
+
+@pytest.fixture
+def api_with_dataset(tmp_path: Path) -> Iterator[tuple[Api, str, str]]:
+    """A served API (real HTTP) with a worker secret and one registered dataset: (api, url, dataset id)."""
+    (tmp_path / "api").mkdir()
+    with open_api(tmp_path / "api") as api:
+        reply = api.upload("steward", csv_bytes(diabetes_frame()), name="diabetes", target="target",
+                           task="regression")
+        assert reply.status_code == 201, reply.get_data(as_text=True)
+        ctx = api.app.extensions["sealfold"]
+        api.app.extensions["sealfold"] = dataclasses.replace(
+            ctx, settings=dataclasses.replace(ctx.settings, worker_secret=SECRET))
+        with ServedApp(api.app) as served:
+            yield api, served.url, reply.get_json()["id"]
+
+
+def _fetcher(cache: Path, url: str, secret: str = SECRET) -> DataFetcher:
+    return DataFetcher(Settings.load({"data_dir": cache, "data_source": "api", "api_url": url,
+                                      "worker_secret": secret, "database_url": "sqlite:///unused"}, environ={}))
+
+
+def _same_bytes(a: Path, b: Path) -> bool:
+    return hashlib.sha256(a.read_bytes()).digest() == hashlib.sha256(b.read_bytes()).digest()
+
+
+def test_development_files_are_fetched_verified_and_kept(api_with_dataset: tuple[Api, str, str],
+                                                         tmp_path: Path) -> None:
+    api, url, ds_id = api_with_dataset
+    fetcher = _fetcher(tmp_path / "cache", url)
+    assert sorted(fetcher.development(ds_id)) == ["development.parquet", "manifest.json", "numeric.npy"]
+    mine, theirs = dataset_paths(fetcher.settings, ds_id), dataset_paths(api.settings, ds_id)
+    for name in ("development", "numeric", "manifest"):
+        assert _same_bytes(getattr(mine, name), getattr(theirs, name))
+    assert fetcher.development(ds_id) == []  # warm: nothing fetched again
+    # Fold jobs only: the sealed file is nowhere in the cache.
+    assert not (tmp_path / "cache" / "sealed").exists()
+    assert not [p for p in (tmp_path / "cache").rglob("*") if p.name == theirs.sealed_holdout.name]
+
+
+def test_a_damaged_cached_file_is_fetched_again(api_with_dataset: tuple[Api, str, str], tmp_path: Path) -> None:
+    api, url, ds_id = api_with_dataset
+    fetcher = _fetcher(tmp_path / "cache", url)
+    fetcher.development(ds_id)
+    mine, theirs = dataset_paths(fetcher.settings, ds_id), dataset_paths(api.settings, ds_id)
+    data = bytearray(mine.numeric.read_bytes())
+    data[-1] ^= 0xFF  # same size, one byte changed
+    mine.numeric.write_bytes(bytes(data))
+    mine.development.write_bytes(mine.development.read_bytes()[:-10])  # truncated
+    assert sorted(fetcher.development(ds_id)) == ["development.parquet", "numeric.npy"]
+    assert _same_bytes(mine.numeric, theirs.numeric) and _same_bytes(mine.development, theirs.development)
+
+
+def test_the_sealed_file_is_fetched_only_on_request_and_kept_private(api_with_dataset: tuple[Api, str, str],
+                                                                    tmp_path: Path) -> None:
+    api, url, ds_id = api_with_dataset
+    fetcher = _fetcher(tmp_path / "cache", url)
+    path = fetcher.sealed(ds_id)
+    assert _same_bytes(path, dataset_paths(api.settings, ds_id).sealed_holdout)
+    assert stat.S_IMODE(os.stat(path).st_mode) == 0o600
+    assert stat.S_IMODE(os.stat(path.parent).st_mode) == 0o700
+    assert stat.S_IMODE(os.stat(path.parent.parent).st_mode) == 0o700
+    assert not [p for p in path.parent.iterdir() if p != path]  # no temporary file left behind
+
+
+def test_a_wrong_secret_fetches_nothing(api_with_dataset: tuple[Api, str, str], tmp_path: Path) -> None:
+    _, url, ds_id = api_with_dataset
+    fetcher = _fetcher(tmp_path / "cache", url, secret="not-the-secret")
+    with pytest.raises(FetchFailed, match="HTTP 401"):
+        fetcher.development(ds_id)
+    with pytest.raises(FetchFailed, match="HTTP 401"):
+        fetcher.sealed(ds_id)
+    assert not [p for p in (tmp_path / "cache").rglob("*") if p.is_file()]
+
+
+def test_an_unknown_dataset_fails_as_unreadable_data(api_with_dataset: tuple[Api, str, str], tmp_path: Path) -> None:
+    _, url, _ = api_with_dataset
+    with pytest.raises(FetchFailed, match="HTTP 404") as raised:
+        _fetcher(tmp_path / "cache", url).development("no-such-dataset")
+    assert isinstance(raised.value, OSError)  # worker.jobs.failure retries it as data this worker could not read
+
+
+@pytest.mark.parametrize("missing", ["api_url", "worker_secret", "database_url"])
+def test_data_source_api_needs_its_settings(missing: str) -> None:
+    values: dict[str, Any] = {"data_source": "api", "api_url": "http://127.0.0.1:1", "worker_secret": "s",
+                              "database_url": "sqlite:///x"}
+    values[missing] = ""
+    with pytest.raises(SettingsError, match=missing):
+        Settings.load(values, environ={})
+
+
+def test_data_source_is_shared_or_api() -> None:
+    assert Settings.load({}, environ={}).data_source == "shared"
+    with pytest.raises(SettingsError, match="data_source"):
+        Settings.load({"data_source": "s3"}, environ={})
+
+
+def _start_fetching_worker(tmp_path: Path, url: str, database_url: str, redis_url: str,
+                           secret: str = SECRET) -> subprocess.CompletedProcess[str]:
+    env = {**os.environ, "SEALFOLD_DATA_DIR": str(tmp_path / "cache"), "SEALFOLD_DATA_SOURCE": "api",
+           "SEALFOLD_API_URL": url, "SEALFOLD_WORKER_SECRET": secret, "DATABASE_URL": database_url,
+           "REDIS_URL": redis_url, "SEALFOLD_QUEUE": f"q{uuid.uuid4().hex[:8]}"}
+    return subprocess.run([sys.executable, "-m", "worker", "--burst"], env=env, cwd=ROOT, capture_output=True,
+                          text=True, timeout=120)
+
+
+def test_a_fetching_worker_refuses_another_deployments_api(api_with_dataset: tuple[Api, str, str],
+                                                           tmp_path: Path, redis_url: str) -> None:
+    _, url, _ = api_with_dataset
+    other = Settings.load({"data_dir": tmp_path / "other", "database_url": ""}, environ={})
+    upgraded_engine(other).dispose()  # a records DB with an identity of its own
+    done = _start_fetching_worker(tmp_path, url, other.effective_database_url, redis_url)
+    assert done.returncode == 3, done.stderr[-2000:]
+    assert "serves another deployment's data" in done.stderr
+
+
+def test_a_fetching_worker_with_a_wrong_secret_refuses_to_start(api_with_dataset: tuple[Api, str, str],
+                                                                tmp_path: Path, redis_url: str) -> None:
+    api, url, _ = api_with_dataset
+    done = _start_fetching_worker(tmp_path, url, api.settings.effective_database_url, redis_url, secret="wrong")
+    assert done.returncode == 3, done.stderr[-2000:]
+    assert "cannot ask the API for its data identity" in done.stderr and "HTTP 401" in done.stderr
+    assert not (tmp_path / "cache").exists() or not any((tmp_path / "cache").rglob("*.parquet"))
