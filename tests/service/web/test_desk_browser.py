@@ -27,6 +27,29 @@ pytestmark = [pytest.mark.browser, pytest.mark.slow]
 PHONE_WIDTH = 390
 
 
+
+def _gone(element: Any) -> bool:
+    """Whether ``element``'s page has been replaced (chromium reports it either way while swapping)."""
+    try:
+        element.is_enabled()
+    except _page_in_flux():
+        return True
+    return False
+
+
+def _settled(driver: Any) -> Any:
+    """A 30 s wait that rides over the moment a page is swapped for the next one."""
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    return WebDriverWait(driver, 30, ignored_exceptions=_page_in_flux())
+
+
+def _page_in_flux() -> tuple[type[Exception], ...]:
+    """What a wait may meet while the browser swaps one page for the next: an element of the old document."""
+    from selenium.common.exceptions import StaleElementReferenceException, WebDriverException
+
+    return (StaleElementReferenceException, WebDriverException)
+
 def _binary(name: str, *others: str) -> str:
     for candidate in (name, *others):
         found = shutil.which(candidate) or (f"/usr/bin/{candidate}" if Path(f"/usr/bin/{candidate}").is_file()
@@ -77,13 +100,19 @@ class Shots:
 
 
 def _click(driver: Any, element: Any, url_part: str) -> None:
-    """Click a link or button and wait for the page it leads to (form posts return before it loads)."""
+    """Click a link or button and wait for the page it leads to (form posts return before it loads).
+
+    The page clicked on may itself carry ``url_part`` (a sign-in page's ``next``), so the wait is for the
+    old page to be gone as well.
+    """
     from selenium.webdriver.support import expected_conditions
     from selenium.webdriver.support.ui import WebDriverWait
 
     element.click()
+    WebDriverWait(driver, 30).until(lambda _d: _gone(element))
     WebDriverWait(driver, 30).until(expected_conditions.url_contains(url_part))
-    WebDriverWait(driver, 30).until(lambda d: d.execute_script("return document.readyState") == "complete")
+    WebDriverWait(driver, 30, ignored_exceptions=_page_in_flux()).until(
+        lambda d: d.execute_script("return document.readyState") == "complete")
 
 
 def _sign_in(driver: Any, token: str, lands_on: str) -> None:
@@ -109,7 +138,6 @@ def _board_rows(driver: Any) -> list[Any]:
 
 def test_the_desk_in_a_real_browser(api: Api, dataset: dict[str, Any], browser: Any, tmp_path: Path) -> None:
     from selenium.webdriver.common.by import By
-    from selenium.webdriver.support.ui import WebDriverWait
 
     folder = Path(os.environ.get("SEALFOLD_SCREENSHOTS") or tmp_path / "screenshots")
     shots = Shots(browser, folder)
@@ -199,7 +227,7 @@ def test_the_desk_in_a_real_browser(api: Api, dataset: dict[str, Any], browser: 
         margin.clear()
         margin.send_keys("-1")
         browser.find_element(By.XPATH, "//button[text()='Save as a new version']").click()
-        WebDriverWait(browser, 30).until(lambda d: d.find_elements(By.ID, "f-champion_margin-error"))
+        _settled(browser).until(lambda d: d.find_elements(By.ID, "f-champion_margin-error"))
         message = api.problem(api.call("steward", "PUT", f"/v1/datasets/{ds_id}/policy",
                                        json={"champion_margin": -1}), 422)["errors"][0]["detail"]
         assert message in browser.find_element(By.ID, "f-champion_margin-error").text
@@ -231,12 +259,12 @@ def test_the_desk_in_a_real_browser(api: Api, dataset: dict[str, Any], browser: 
         _sign_in(browser, api.tokens["admin"], "/desk/keys")
         browser.find_element(By.ID, "key-name").send_keys("night shift")
         browser.find_element(By.XPATH, "//button[text()='Create the key']").click()
-        WebDriverWait(browser, 30).until(lambda d: d.find_elements(By.CSS_SELECTOR, ".done code"))
+        _settled(browser).until(lambda d: d.find_elements(By.CSS_SELECTOR, ".done code"))
         token = browser.find_element(By.CSS_SELECTOR, ".done code").text
         assert api.get(token, "/v1/datasets").status_code == 200
         shots.take("key-created")
         browser.find_element(By.CSS_SELECTOR, "button[aria-label='revoke night shift']").click()
-        WebDriverWait(browser, 30).until(lambda d: "revoked" in d.find_element(By.TAG_NAME, "main").text)
+        _settled(browser).until(lambda d: "revoked" in d.find_element(By.TAG_NAME, "main").text)
         assert api.get(token, "/v1/datasets").status_code == 401
         shots.take("keys")
         _sign_out(browser)
