@@ -20,7 +20,7 @@ import random
 import signal
 import time
 from collections.abc import Callable, Iterator
-from contextlib import AbstractContextManager, contextmanager
+from contextlib import contextmanager
 from typing import Any
 
 from redis import Redis
@@ -29,7 +29,6 @@ from rq.executions import Execution
 from rq.job import Job
 from rq.queue import Queue
 from rq.serializers import JSONSerializer
-from rq.utils import import_attribute
 from rq.worker import Worker, WorkerStatus
 
 from service.catalog import load_catalog
@@ -39,10 +38,11 @@ from service.records.engine import make_engine
 from service.records.schema import require_current
 from service.settings import Settings
 from service.submission import dispatch
-from worker.jobs import ALLOWED_JOBS, runtime
+from worker.jobs import runtime
 from worker.jobs.failure import AVOID_WORKERS, LEFT_COUNT, limit_memory
 from worker.jobs.runtime import repeating
 from worker.process import placement
+from worker.process.allowlist import ALLOWED_CALLBACKS, AllowListedJob, RefusedJob, func_name, request_id
 from worker.process.data_check import data_checker
 from worker.process.fetched_data import DataFetcher
 from worker.process.fold_process import FoldProcess
@@ -50,91 +50,11 @@ from worker.process.outages import OutageTolerantWorker, outage_tolerated
 from worker.process.warmup import warm_up
 
 log = logging.getLogger(__name__)
+__all__ = ["ALLOWED_CALLBACKS", "AllowListedJob", "RefusedJob", "SealfoldWorker", "build_worker", "run_worker"]
 
 JOB_MONITORING_INTERVAL = 10
 MAINTENANCE_INTERVAL = 30
 RECONCILE_TICK = "sealfold:reconcile-tick"
-# Callbacks a job may name; sealfold's own jobs use none, so any name is refused.
-ALLOWED_CALLBACKS: frozenset[str] = frozenset()
-
-
-class RefusedJob(Exception):
-    """A job named a function or callback this worker does not run."""
-
-
-class AllowListedJob(Job):
-    """An RQ job that resolves only allow-listed function names, never an instance method.
-
-    ``keepalive``, set by the worker for a job it runs in its own process, wraps the job function's
-    run (``perform``) and nothing after it.
-    """
-
-    keepalive: Callable[[], AbstractContextManager[None]] | None = None
-
-    def perform(self) -> Any:
-        if self.keepalive is None:
-            return super().perform()
-        with self.keepalive():
-            return super().perform()
-
-    @property
-    def func(self) -> Callable[..., Any]:
-        name = self.func_name
-        refused = self.instance is not None or name not in ALLOWED_JOBS
-        callbacks = [n for n in (self._success_callback_name, self._failure_callback_name,
-                                 self._stopped_callback_name) if n and n not in ALLOWED_CALLBACKS]
-        if refused or callbacks:
-            self.retries_left = 0  # a retry would be refused the same way
-            what = f"callback(s) {callbacks!r}" if not refused else f"function {name!r}"
-            raise RefusedJob(f"job {self.id} names {what}, which this worker does not run; it runs only "
-                             f"{', '.join(sorted(ALLOWED_JOBS))}")
-        assert name is not None
-        function: Callable[..., Any] = import_attribute(name)
-        return function
-
-    @property
-    def success_callback(self) -> Any:
-        return self._allowed_callback(self._success_callback_name, lambda: super(AllowListedJob, self)
-                                      .success_callback)
-
-    @property
-    def failure_callback(self) -> Any:
-        return self._allowed_callback(self._failure_callback_name, lambda: super(AllowListedJob, self)
-                                      .failure_callback)
-
-    @property
-    def stopped_callback(self) -> Any:
-        return self._allowed_callback(self._stopped_callback_name, lambda: super(AllowListedJob, self)
-                                      .stopped_callback)
-
-    @staticmethod
-    def _allowed_callback(name: str | None, resolve: Callable[[], Any]) -> Any:
-        if not name:
-            return None
-        if name not in ALLOWED_CALLBACKS:
-            log.warning("ignoring callback %r: not on the worker's allow-list", name)
-            return None
-        return resolve()
-
-
-def _func_name(job: Job) -> str | None:
-    """The job's function name, or None when its data cannot be read (a job not written by sealfold)."""
-    try:
-        return job.func_name
-    except DeserializationError:
-        return None
-
-
-def _request_id(job: Job) -> str | None:
-    """The id of the API request that enqueued ``job``, when its meta names one and can be read."""
-    try:
-        meta = job.meta
-    except DeserializationError:
-        return None
-    value = meta.get("request_id") if isinstance(meta, dict) else None
-    return value if isinstance(value, str) else None
-
-
 class SealfoldWorker(OutageTolerantWorker):
     """RQ's forking worker, plus a fresh DB pool in each work horse and the reconciler in maintenance.
 
@@ -162,14 +82,14 @@ class SealfoldWorker(OutageTolerantWorker):
         super().main_work_horse(job, queue)
 
     def handle_job_success(self, job: Job, queue: Queue, started_job_registry: Any, execution: Any) -> None:
-        job_tallies.record(self.connection, _func_name(job), "finished")
+        job_tallies.record(self.connection, func_name(job), "finished")
         super().handle_job_success(job, queue, started_job_registry, execution)
 
     def handle_job_failure(self, job: Job, queue: Queue, started_job_registry: Any = None, exc_string: str = "",
                            execution: Execution | None = None) -> None:
         timed_out = "JobTimeoutException" in exc_string
         outcome = "retried" if job.should_retry else "timed_out" if timed_out else "failed"
-        job_tallies.record(self.connection, _func_name(job), outcome)
+        job_tallies.record(self.connection, func_name(job), outcome)
         super().handle_job_failure(job, queue, started_job_registry, exc_string, execution)
 
     def kill_horse(self, sig: signal.Signals = signal.SIGKILL) -> None:
@@ -227,10 +147,10 @@ class SealfoldWorker(OutageTolerantWorker):
         if self.leave_to_another(job, queue):
             self.set_state(WorkerStatus.IDLE)
             return
-        job_tallies.record(self.connection, _func_name(job), "started")
+        job_tallies.record(self.connection, func_name(job), "started")
         if self.settings is not None:  # this worker's timeout for the kind, whatever the enqueuer said
-            job.timeout = self.settings.job_timeout_seconds(job_tallies.kind_of(_func_name(job)))
-        with request_scope(_request_id(job)):
+            job.timeout = self.settings.job_timeout_seconds(job_tallies.kind_of(func_name(job)))
+        with request_scope(request_id(job)):
             self._execute(job, queue)
 
     def _execute(self, job: Job, queue: Queue) -> None:
