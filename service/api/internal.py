@@ -31,6 +31,7 @@ from service.api import json_response, service_context
 from service.errors import InputError, NotFound, Unauthenticated
 from service.ops import data_identity
 from service.records import submissions
+from service.vault.fingerprint import file_sha256
 from service.vault.store import DatasetPaths, dataset_paths, per_example_path
 
 PREFIX = "/internal/v1"
@@ -68,15 +69,6 @@ class _Digests:
 
 
 _DIGESTS = _Digests()
-
-
-def file_sha256(path: Path) -> str:
-    """The sha256 of a file's bytes, read in chunks."""
-    digest = hashlib.sha256()
-    with path.open("rb") as handle:
-        while chunk := handle.read(CHUNK_BYTES):
-            digest.update(chunk)
-    return digest.hexdigest()
 
 
 @blp.before_request

@@ -30,6 +30,7 @@ from __future__ import annotations
 import hashlib
 import hmac
 import struct
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -38,6 +39,18 @@ import pyarrow as pa
 
 _TAG = b"sealfold-frame-v1"
 _INT64_MAX = np.iinfo(np.int64).max
+
+
+FILE_CHUNK_BYTES = 1024 * 1024
+
+
+def file_sha256(path: Path) -> str:
+    """The sha256 of a file's bytes, read in chunks (what the API serves a fetching worker is checked by it)."""
+    digest = hashlib.sha256()
+    with path.open("rb") as handle:
+        while chunk := handle.read(FILE_CHUNK_BYTES):
+            digest.update(chunk)
+    return digest.hexdigest()
 
 
 def fingerprint_frame(df: pd.DataFrame) -> str:

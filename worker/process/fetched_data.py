@@ -27,6 +27,7 @@ from pathlib import Path
 from typing import Any
 
 from service.settings import Settings
+from service.vault.fingerprint import file_sha256
 from service.vault.store import dataset_paths
 
 INTERNAL_PREFIX = "/internal/v1"  # service.api.internal.PREFIX (the worker does not import Flask code)
@@ -185,15 +186,6 @@ def _verified(path: Path, recorded: Any, size: int, sha: str) -> bool:
             and recorded.get("mtime_ns") == stat.st_mtime_ns):
         return True
     return file_sha256(path) == sha
-
-
-def file_sha256(path: Path) -> str:
-    """The sha256 of a file's bytes, read in chunks."""
-    digest = hashlib.sha256()
-    with path.open("rb") as handle:
-        while chunk := handle.read(CHUNK_BYTES):
-            digest.update(chunk)
-    return digest.hexdigest()
 
 
 def _read_record(path: Path) -> dict[str, Any]:
