@@ -7,6 +7,7 @@ stays whole under several API processes, is ``service.api.ops_metrics``'s.
 from __future__ import annotations
 
 import hmac
+import ipaddress
 import shutil
 from pathlib import Path
 
@@ -18,7 +19,7 @@ from sqlalchemy.exc import SQLAlchemyError
 from service.api import SealfoldBlueprint, json_response, service_context
 from service.api.ops_metrics import exposition
 from service.api.schemas import HealthSchema, ReadinessSchema
-from service.errors import Unauthenticated, Unavailable
+from service.errors import Forbidden, Unauthenticated, Unavailable
 from service.ops import data_identity
 from service.ops.workers import live_workers
 
@@ -90,10 +91,13 @@ def _free_mb(path: Path) -> int:
 @blp.doc(**_OPEN, responses={"200": {"description": "Prometheus text exposition format",
                                      "content": {"text/plain": {"schema": {"type": "string"}}}}})
 @blp.problem(401, "SEALFOLD_METRICS_TOKEN is set and the request did not carry it")
+@blp.problem(403, "SEALFOLD_METRICS_TOKEN is unset and the request came from another host")
 def metrics() -> Response:
     """Expose HTTP, queue, worker, job, submission, fold and holdout-query figures for Prometheus.
 
-    Open to anyone unless ``SEALFOLD_METRICS_TOKEN`` is set; then only ``Authorization: Bearer <that token>``.
+    With ``SEALFOLD_METRICS_TOKEN`` set, only ``Authorization: Bearer <that token>``; unset, only callers on
+    this host (loopback). The figures are sums over every team: a team that could read them could subtract its
+    own counts and learn another's, so they are for operators.
     """
     ctx = service_context()
     token = ctx.settings.metrics_token
@@ -101,4 +105,14 @@ def metrics() -> Response:
         sent = request.headers.get("Authorization", "")
         if not hmac.compare_digest(sent.encode(), f"Bearer {token}".encode()):
             raise Unauthenticated("/metrics needs the operators' token: Authorization: Bearer <SEALFOLD_METRICS_TOKEN>")
+    elif not _loopback(request.remote_addr):
+        raise Forbidden("/metrics answers callers on this host only while SEALFOLD_METRICS_TOKEN is unset; set it "
+                        "and scrape with Authorization: Bearer <token>")
     return Response(exposition(ctx), mimetype=None, content_type=PROMETHEUS_MIMETYPE)
+
+
+def _loopback(address: str | None) -> bool:
+    try:
+        return address is not None and ipaddress.ip_address(address).is_loopback
+    except ValueError:
+        return False

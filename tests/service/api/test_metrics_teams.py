@@ -34,3 +34,14 @@ def test_metrics_carry_no_team_key_dataset_or_submission(
     routes = {value for line in text.splitlines() for name, value in LABEL.findall(line) if name == "route"}
     assert any("<" in r for r in routes)  # a path with an id is counted under its template
     assert all(not re.search(r"(sub|ds|key)_[0-9a-f]{20}", r) for r in routes)
+
+
+def test_without_a_token_metrics_answer_only_callers_on_this_host(api: Api) -> None:
+    # The figures are sums over every team; from another host they would let a team subtract its own counts.
+    assert api.client.get("/metrics", environ_base={"REMOTE_ADDR": "127.0.0.1"}).status_code == 200
+    assert api.client.get("/metrics", environ_base={"REMOTE_ADDR": "::1"}).status_code == 200
+    for remote in ("10.1.2.3", "192.0.2.7", "2001:db8::1"):
+        reply = api.client.get("/metrics", environ_base={"REMOTE_ADDR": remote})
+        assert reply.status_code == 403
+        assert reply.content_type == "application/problem+json"
+        assert "SEALFOLD_METRICS_TOKEN" in reply.get_json()["detail"]
