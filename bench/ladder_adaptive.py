@@ -1,9 +1,10 @@
 """The default ladder against many random submissions on coin-flip labels, and beside an honest team.
 
 Runs the service's own release code (service.gate.release.release, default policy for accuracy,
-parameter-free ladder) with its threshold multiplied by ``ladder_threshold_se`` (the policy field),
-for several multiples, and prints in holdout standard errors (SE = sqrt(p (1 - p) / n) of one
-holdout accuracy):
+parameter-free ladder) for several pairs of the policy fields ``ladder_threshold_se`` (how many
+standard errors of its gain a new best needs) and ``ladder_shrink_se`` (how many standard errors its
+released figure is shrunk by), and prints in holdout standard errors (SE = sqrt(p (1 - p) / n) of
+one holdout accuracy):
 
 - attack: labels are coin flips (chance = 0.5); ``--submissions`` seeded random models from 4 keys
   (their predictions are coin flips too, so every per-row correctness is an independent coin), then
@@ -100,17 +101,19 @@ def main() -> None:
     parser.add_argument("--rows", type=int, default=1000, help="holdout rows")
     parser.add_argument("--submissions", type=int, default=120)
     parser.add_argument("--seeds", type=int, default=200)
-    parser.add_argument("--multiples", type=float, nargs="*", default=[1.0, 1.5, 2.0, 2.5, 3.0])
+    parser.add_argument("--pairs", nargs="*", default=["1:0", "2:0", "2.5:0", "3:0", "1.5:1", "2:1", "2.5:1", "2:0.5"],
+                        help="THRESHOLD:SHRINK, in standard errors")
     args = parser.parse_args()
     se_chance = 0.5 / np.sqrt(args.rows)
     base = default_policy("classification", ["accuracy"])
     print(f"holdout {args.rows} rows, SE at chance {se_chance:.4f}; attack: {args.submissions} random models "
           f"from {KEYS} keys + 1 majority vote of the new-best models; {args.seeds} seeds; honest: 30 models "
           "0.70 -> 0.85")
-    print(f"{'threshold x SE':>14} {'best over chance':>17} {'p90':>6} {'vote own score':>15} {'vote moved':>11} "
+    print(f"{'threshold:shrink':>16} {'best over chance':>17} {'p90':>6} {'vote own score':>15} {'vote moved':>11} "
           f"{'honest |error|':>15} {'honest error':>13} {'honest lag':>11} {'|lag| > 1 SE':>13}")
-    for multiple in args.multiples:
-        policy = replace(base, release=replace(base.release, ladder_threshold_se=multiple))
+    for pair in args.pairs:
+        threshold, shrink = (float(x) for x in pair.split(":"))
+        policy = replace(base, release=replace(base.release, ladder_threshold_se=threshold, ladder_shrink_se=shrink))
         best, vote, vote_moved, errs, lags = [], [], [], [], []
         for seed in range(args.seeds):
             b, v, m = attack(policy, args.rows, args.submissions, seed)
@@ -120,7 +123,7 @@ def main() -> None:
             e, g = honest(policy, args.rows, seed, np.sqrt(0.78 * 0.22 / args.rows))
             errs += e
             lags += g
-        print(f"{multiple:>14.2f} {np.mean(best):>17.2f} {np.quantile(best, 0.9):>6.2f} {np.mean(vote):>15.2f} "
+        print(f"{pair:>16} {np.mean(best):>17.2f} {np.quantile(best, 0.9):>6.2f} {np.mean(vote):>15.2f} "
               f"{np.mean(vote_moved):>11.2f} "
               f"{np.mean(np.abs(errs)):>15.2f} {np.mean(errs):>13.2f} {np.mean(lags):>11.2f} "
               f"{np.mean(np.abs(lags) > 1):>13.2f}")

@@ -44,7 +44,12 @@ class ReleaseSchema(Schema):
     ladder_threshold_se = fields.Float(metadata={
         "exclusiveMinimum": True, "minimum": 0, "maximum": 10,
         "description": "parameter-free ladder: the threshold in standard errors of the per-row differences "
-                       "from the best (default 2.5, measured in bench/ladder_adaptive.py)"})
+                       "from the best (default 2, measured in bench/ladder_adaptive.py)"})
+    ladder_shrink_se = fields.Float(metadata={
+        "minimum": 0, "maximum": 10,
+        "description": "parameter-free ladder: a new best after the first is released as its score less this many "
+                       "standard errors of its gain over the previous best; smaller than ladder_threshold_se "
+                       "(default 1, measured in bench/ladder_adaptive.py)"})
     thresholdout = fields.Nested(ThresholdoutSchema, allow_none=True, metadata={
         "description": "null: none (the default for metrics in the target's units, which have no default)"})
 

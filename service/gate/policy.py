@@ -92,7 +92,8 @@ class ReleaseParams:
     window_hours: float = 24.0
     team_budget: int | None = None  # per team per dataset per window; None: TEAM_BUDGET_MULTIPLE * budget
     ladder_step: float | None = None  # None: the parameter-free ladder
-    ladder_threshold_se: float = 2.5  # parameter-free ladder: threshold in standard errors (bench/ladder_adaptive.py)
+    ladder_threshold_se: float = 2.0  # parameter-free ladder: threshold in standard errors (bench/ladder_adaptive.py)
+    ladder_shrink_se: float = 1.0  # parameter-free ladder: a new best's figure is its score less this many SE
     thresholdout: ThresholdoutParams | None = None
 
     @property
@@ -131,7 +132,7 @@ class Policy:
             "release": {
                 "mode": r.mode, "digits": r.digits, "budget": r.budget, "window_hours": r.window_hours,
                 "team_budget": r.team_budget, "ladder_step": r.ladder_step,
-                "ladder_threshold_se": r.ladder_threshold_se,
+                "ladder_threshold_se": r.ladder_threshold_se, "ladder_shrink_se": r.ladder_shrink_se,
                 "thresholdout": None if r.thresholdout is None else {
                     "threshold": r.thresholdout.threshold, "sigma": r.thresholdout.sigma,
                     "budget": r.thresholdout.budget},
@@ -206,7 +207,7 @@ def parse_policy(
 _TOP_FIELDS = ("primary_metric", "greater_is_better", "bar", "baseline_alpha", "champion_margin",
                "champion_alpha", "holdout_gap", "max_fold_std", "release", "champion_rule", "champion_online")
 _RELEASE_FIELDS = {"mode", "digits", "budget", "window_hours", "team_budget", "ladder_step", "ladder_threshold_se",
-                   "thresholdout"}
+                   "ladder_shrink_se", "thresholdout"}
 
 
 def _primary_key(
@@ -245,6 +246,11 @@ def _parse_release(p: _Reader, base: ReleaseParams, metric: str) -> ReleaseParam
         else r.integer("team_budget", base.team_budget, 1, MAX_BUDGET)
     step = r.number("ladder_step", base.ladder_step, nullable=True, positive=True)
     threshold_se = r.number("ladder_threshold_se", base.ladder_threshold_se, positive=True, maximum=10.0)
+    shrink_se = r.number("ladder_shrink_se", base.ladder_shrink_se, minimum=0.0, maximum=10.0)
+    if threshold_se is not None and shrink_se is not None and shrink_se >= threshold_se:
+        r.problem("ladder_shrink_se", f"ladder_shrink_se must be smaller than ladder_threshold_se ({threshold_se:g}), "
+                                      f"so that a new best always improves the released figure; got {shrink_se:g}")
+        shrink_se = None
     thresholdout = base.thresholdout
     if "thresholdout" in r.doc and r.doc["thresholdout"] is None:
         thresholdout = None
@@ -265,7 +271,8 @@ def _parse_release(p: _Reader, base: ReleaseParams, metric: str) -> ReleaseParam
                                   f"budget) in {metric} units; got none")
     return replace(base, mode=mode, digits=_req(digits, base.digits), budget=_req(budget, base.budget),
                    window_hours=_req(window, base.window_hours), team_budget=team_budget, ladder_step=step,
-                   ladder_threshold_se=_req(threshold_se, base.ladder_threshold_se), thresholdout=thresholdout)
+                   ladder_threshold_se=_req(threshold_se, base.ladder_threshold_se),
+                   ladder_shrink_se=_req(shrink_se, base.ladder_shrink_se), thresholdout=thresholdout)
 
 
 def _gap_width(g: _Reader, default: float) -> float | None:

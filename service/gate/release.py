@@ -6,7 +6,10 @@ often, it lets an adaptive submitter fit the holdout itself. Three mechanisms:
 - exact: every holdout metric, rounded to ``digits`` significant digits. No protection beyond that.
 - ladder (Blum & Hardt 2015): release the best-so-far holdout score of the dataset; it moves only when
   a submission beats it by more than a threshold. Fixed step eta: threshold eta, released value
-  rounded to a multiple of eta. Parameter-free: threshold = standard error of the per-example loss
+  rounded to a multiple of eta. Parameter-free: the threshold is ``ladder_threshold_se`` standard
+  errors of the improvement, and a new best after the first is released as its score less
+  ``ladder_shrink_se`` of those standard errors (a conservative figure: the winner of many tries is
+  lucky by about that much; bench/ladder_adaptive.py measures both). The standard error is that of the per-example loss
   differences between the submission and the current best (rmse: of the squared errors, divided by
   rmse_new + rmse_best, since sqrt(a) - sqrt(b) = (a - b) / (sqrt(a) + sqrt(b))); without per-example
   values it falls back to the standard error of one holdout score estimated from the folds,
@@ -169,19 +172,32 @@ def _ladder(policy: Policy, params: ReleaseParams, h: HoldoutScores, old: dict[s
         ladder = {"metric": metric, "step": params.ladder_step, "released_loss": None, "best_submission": None}
     loss = sign * float(h.scores[metric])
     level = ladder["released_loss"]
-    threshold, how = _ladder_threshold(params, metric, h, best_per_example, ladder["best_submission"])
-    if params.ladder_step is None:  # parameter-free: a multiple of the standard error (policy default 2.5)
-        threshold, how = threshold * params.ladder_threshold_se, f"{params.ladder_threshold_se:g} x {how}"
-    moved = level is None or loss < level - threshold
+    # What a new best must beat: the released level for the fixed step (Blum & Hardt 2015, Algorithm 1); for the
+    # parameter-free ladder the best's own loss, since its figure is shrunk (states from before held only the level).
+    best_loss = level if params.ladder_step is not None else ladder.get("best_loss", level)
+    se, how = _ladder_threshold(params, metric, h, best_per_example, ladder["best_submission"])
+    threshold, shrink = se, 0.0
+    if params.ladder_step is None:  # parameter-free: multiples of the standard error (policy defaults 2 and 1)
+        threshold, how = se * params.ladder_threshold_se, f"{params.ladder_threshold_se:g} x {how}"
+        shrink = se * params.ladder_shrink_se if level is not None else 0.0  # the first release is exact
+    moved = level is None or best_loss is None or loss < best_loss - threshold
     if moved:
         step = params.ladder_step
-        level = round(loss / step) * step if step is not None else _round(loss, params.digits)
-        ladder.update(released_loss=level, best_submission=h.submission_id)
+        if step is not None:
+            level = round(loss / step) * step
+        else:  # threshold > shrink (parse_policy), so a new best always improves the figure; min() to be sure
+            level = _round(loss + shrink if level is None else min(level, loss + shrink), params.digits)
+        ladder.update(released_loss=level, best_loss=loss, best_submission=h.submission_id)
     assert level is not None
     figure = _round(sign * level, 12)  # already at the step or at ``digits``; 12 only clears float noise
-    note = (f"Ladder: the best holdout {metric} on this dataset so far; this submission "
-            + ("set it." if moved else "did not beat it by more than the threshold, so it did not move.")
-            + f" Threshold: {how}.")
+    if not moved:
+        told = "did not beat it by more than the threshold, so it did not move."
+    elif shrink > 0:
+        told = (f"set it; the figure is its holdout {metric} less {params.ladder_shrink_se:g} standard error of its "
+                "gain over the previous best, because the best of many tries is lucky by about that much.")
+    else:
+        told = "set it."
+    note = f"Ladder: the best holdout {metric} on this dataset so far; this submission {told} Threshold: {how}."
     return Release("ladder", {metric: figure}, 1, {**old, "ladder": ladder}, None, note, new_best=moved)
 
 

@@ -52,6 +52,10 @@ FIELDS: tuple[Field, ...] = (
     Field(("release", "window_hours"), "Window, in hours", "the rolling window of the budget"),
     Field(("release", "ladder_step"), "Ladder step", "how much a submission must beat the best by; empty for "
           "the parameter-free ladder", nullable=True),
+    Field(("release", "ladder_threshold_se"), "Ladder threshold, in standard errors", "parameter-free ladder: how "
+          "many standard errors of its gain a submission must beat the best by, e.g. 2"),
+    Field(("release", "ladder_shrink_se"), "Ladder shrink, in standard errors", "parameter-free ladder: a new best "
+          "is shown as its score less this many standard errors; smaller than the threshold, e.g. 1"),
     Field((*THRESHOLDOUT, "threshold"), "Thresholdout threshold", "in the metric's units; leave all three "
           "thresholdout fields empty for none"),
     Field((*THRESHOLDOUT, "sigma"), "Thresholdout noise", "in the metric's units"),

@@ -44,7 +44,7 @@ def test_document_has_the_served_shape_and_round_trips() -> None:
                         "champion_rule", "champion_online"}
     assert set(doc["holdout_gap"]) == {"k_std", "floor", "false_fail_rate"}
     assert set(doc["release"]) == {"mode", "digits", "budget", "window_hours", "team_budget", "ladder_step",
-                                   "ladder_threshold_se",
+                                   "ladder_threshold_se", "ladder_shrink_se",
                                    "thresholdout"}
     assert set(doc["release"]["thresholdout"]) == {"threshold", "sigma", "budget"}
     assert doc["version"] == 0
