@@ -16,7 +16,8 @@ Defaults and where they come from:
   the three-sigma convention). The rule is a t prediction interval at that rate
   (``service.gate.statistics.holdout_interval``); a steward may give ``false_fail_rate`` instead of k_std.
 - release: mode "ladder" with ladder_step null (the parameter-free ladder, Blum & Hardt 2015), chosen
-  by the measurement in tests/service/gate/test_release_adaptive.py; 3 significant digits; 10 releases per
+  by the measurement in tests/service/gate/test_release_adaptive.py, with a threshold of 2 and a shrink of
+  1 standard errors (bench/ladder_adaptive.py, README); 3 significant digits; 10 releases per
   submitter (a person or CI identity, not a key) per 24 hours (*common practice*); a team at most
   ``team_budget`` per window, by default three submitters' worth (a judgement).
 - champion_rule = "both": a candidate must be shown within the margin of the champion on the
@@ -42,6 +43,7 @@ from service.catalog.metric_keys import MetricRefused, resolve_metric
 from service.catalog.metrics import DEFAULT_METRICS, METRICS, spec_of
 from service.errors import FieldProblem, InputError
 from service.gate.online import LORD_PLUS_PLUS, ONLINE_PROCEDURES
+from service.gate.policy_fields import FieldReader, or_fallback, unknown_fields
 from service.vocabulary import RELEASE_MODES
 
 CHAMPION_RULES = ("cv", "holdout", "both")  # which champion comparison decides
@@ -164,7 +166,7 @@ def parse_policy(
     if not isinstance(doc, Mapping):
         raise InputError(f"a policy must be a JSON object, got {type(doc).__name__}",
                          [FieldProblem("", f"a policy must be a JSON object, got {type(doc).__name__}")])
-    _unknown(doc, {f for f in _TOP_FIELDS} | {"version"}, "", problems)
+    unknown_fields(doc, {f for f in _TOP_FIELDS} | {"version"}, "", problems)
 
     primary = doc.get("primary_metric", allowed[0] if allowed else DEFAULT_METRICS.get(task, ("",))[0])
     key, refused = _primary_key(primary, task, allowed, allowed_metrics is not None, classes)
@@ -180,7 +182,7 @@ def parse_policy(
                                      f"is {'greater' if base.greater_is_better else 'lower'}-is-better "
                                      f"({str(base.greater_is_better).lower()}), got {doc['greater_is_better']!r}"))
 
-    p = _Reader(doc, "", problems)
+    p = FieldReader(doc, "", problems)
     bar = p.number("bar", base.bar, nullable=True)
     baseline_alpha = p.level("baseline_alpha", base.baseline_alpha)
     margin = p.number("champion_margin", base.champion_margin, minimum=0.0,
@@ -191,14 +193,14 @@ def parse_policy(
     gap = base.holdout_gap
     g = p.child("holdout_gap", {"k_std", "floor", "false_fail_rate"})
     if g is not None:
-        gap = HoldoutGap(k_std=_req(_gap_width(g, gap.k_std), gap.k_std),
-                         floor=_req(g.number("floor", gap.floor, minimum=0.0), gap.floor))
+        gap = HoldoutGap(k_std=or_fallback(_gap_width(g, gap.k_std), gap.k_std),
+                         floor=or_fallback(g.number("floor", gap.floor, minimum=0.0), gap.floor))
 
     release = _parse_release(p, base.release, metric)
     champion_rule = p.choice("champion_rule", base.champion_rule, CHAMPION_RULES)
     champion_online = p.choice("champion_online", base.champion_online, ONLINE_PROCEDURES)
-    policy = Policy(metric, base.greater_is_better, bar, _req(baseline_alpha, 0.05), _req(margin, 0.0),
-                    _req(champion_alpha, 0.05), gap, max_fold_std, release, champion_rule, champion_online)
+    policy = Policy(metric, base.greater_is_better, bar, or_fallback(baseline_alpha, 0.05), or_fallback(margin, 0.0),
+                    or_fallback(champion_alpha, 0.05), gap, max_fold_std, release, champion_rule, champion_online)
     if problems:
         raise InputError("; ".join(pr.detail for pr in problems), problems)
     return policy
@@ -231,7 +233,7 @@ def _defaults_for(metric: str) -> Policy:
                   holdout_gap=HoldoutGap(3.0, small), release=ReleaseParams(thresholdout=thresholdout))
 
 
-def _parse_release(p: _Reader, base: ReleaseParams, metric: str) -> ReleaseParams:
+def _parse_release(p: FieldReader, base: ReleaseParams, metric: str) -> ReleaseParams:
     r = p.child("release", _RELEASE_FIELDS)
     if r is None:
         return base
@@ -269,13 +271,13 @@ def _parse_release(p: _Reader, base: ReleaseParams, metric: str) -> ReleaseParam
     if mode == "thresholdout" and thresholdout is None and not r.has_problem_under("/release/thresholdout"):
         r.problem("thresholdout", f"release mode thresholdout needs thresholdout parameters (threshold, sigma, "
                                   f"budget) in {metric} units; got none")
-    return replace(base, mode=mode, digits=_req(digits, base.digits), budget=_req(budget, base.budget),
-                   window_hours=_req(window, base.window_hours), team_budget=team_budget, ladder_step=step,
-                   ladder_threshold_se=_req(threshold_se, base.ladder_threshold_se),
-                   ladder_shrink_se=_req(shrink_se, base.ladder_shrink_se), thresholdout=thresholdout)
+    return replace(base, mode=mode, digits=or_fallback(digits, base.digits), budget=or_fallback(budget, base.budget),
+                   window_hours=or_fallback(window, base.window_hours), team_budget=team_budget, ladder_step=step,
+                   ladder_threshold_se=or_fallback(threshold_se, base.ladder_threshold_se),
+                   ladder_shrink_se=or_fallback(shrink_se, base.ladder_shrink_se), thresholdout=thresholdout)
 
 
-def _gap_width(g: _Reader, default: float) -> float | None:
+def _gap_width(g: FieldReader, default: float) -> float | None:
     """Read k_std, or false_fail_rate in its stead; both given must agree (a policy document has both)."""
     k_std = g.number("k_std", default, positive=True)
     if "false_fail_rate" not in g.doc:
@@ -289,88 +291,3 @@ def _gap_width(g: _Reader, default: float) -> float | None:
                                      f"k_std {k_std:g} was given; give one of them, or both in agreement")
         return None
     return k_std if "k_std" in g.doc else from_rate
-
-
-def _req(value: Any, fallback: Any) -> Any:
-    """Use the fallback where a bad field was reported (the error is raised once all are collected)."""
-    return fallback if value is None else value
-
-
-def _unknown(doc: Mapping[str, Any], known: set[str], base: str, problems: list[FieldProblem]) -> None:
-    for key in doc:
-        if key not in known:
-            problems.append(FieldProblem(f"{base}/{key}", f"unknown policy field {key!r}; accepted: "
-                                         f"{', '.join(sorted(known - {'version'}))}"))
-
-
-class _Reader:
-    """Read typed fields of one JSON object, collecting problems instead of raising."""
-
-    def __init__(self, doc: Mapping[str, Any], base: str, problems: list[FieldProblem]) -> None:
-        self.doc, self.base, self.problems = doc, base, problems
-
-    def problem(self, name: str, detail: str) -> None:
-        self.problems.append(FieldProblem(f"{self.base}/{name}", detail))
-
-    def has_problem_under(self, pointer: str) -> bool:
-        return any(p.pointer.startswith(pointer) for p in self.problems)
-
-    def child(self, name: str, known: set[str]) -> _Reader | None:
-        if name not in self.doc:
-            return None
-        value = self.doc[name]
-        if not isinstance(value, Mapping):
-            self.problem(name, f"{self._label(name)} must be an object, got {value!r}")
-            return None
-        _unknown(value, known, f"{self.base}/{name}", self.problems)
-        return _Reader(value, f"{self.base}/{name}", self.problems)
-
-    def number(self, name: str, default: float | None, *, nullable: bool = False, positive: bool = False,
-               minimum: float | None = None, maximum: float | None = None, hint: str = "") -> float | None:
-        if name not in self.doc:
-            return default
-        value = self.doc[name]
-        label = self._label(name)
-        if value is None and nullable:
-            return None
-        if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
-            self.problem(name, f"{label} must be a finite number{' or null' if nullable else ''}, got {value!r}")
-            return None
-        if positive and not value > 0:
-            self.problem(name, f"{label} must be > 0{hint}, got {value!r}")
-            return None
-        if minimum is not None and value < minimum:
-            self.problem(name, f"{label} must be >= {minimum:g}{hint}, got {value!r}")
-            return None
-        if maximum is not None and value > maximum:
-            self.problem(name, f"{label} must be at most {maximum:g}, got {value!r}")
-            return None
-        return float(value)
-
-    def level(self, name: str, default: float) -> float | None:
-        value = self.number(name, default)
-        if value is not None and not 0.0 < value < 0.5:
-            self.problem(name, f"{self._label(name)} must be a significance level in (0, 0.5), "
-                               f"got {self.doc[name]!r}")
-            return None
-        return value
-
-    def choice(self, name: str, default: str, accepted: Sequence[str]) -> str:
-        value = self.doc.get(name, default)
-        if value not in accepted:
-            self.problem(name, f"{self._label(name)} must be one of {', '.join(accepted)}, got {value!r}")
-            return default
-        return str(value)
-
-    def integer(self, name: str, default: int | None, low: int, high: int) -> int | None:
-        if name not in self.doc:
-            return default
-        value = self.doc[name]
-        integral = isinstance(value, int) or (isinstance(value, float) and value.is_integer())
-        if isinstance(value, bool) or not integral or not low <= value <= high:
-            self.problem(name, f"{self._label(name)} must be an integer between {low} and {high}, got {value!r}")
-            return None
-        return int(value)
-
-    def _label(self, name: str) -> str:
-        return f"{self.base}/{name}".strip("/").replace("/", ".")
