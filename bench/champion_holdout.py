@@ -1,4 +1,4 @@
-"""The champion decision on the sealed rows by simulation: size under the null and power, with and without LORD++.
+"""The champion decision on the sealed rows by simulation: size and power under each online procedure.
 
 A stream is one dataset: one champion, fixed sealed rows, and a sequence of candidates tested one
 after another with the service's own code (service.gate.holdout_champion.decide over a
@@ -162,13 +162,13 @@ def main() -> None:
         base = replace(default_policy("classification" if metric == "accuracy" else "regression", [metric]),
                        champion_margin=margin)
         print(f"\n{metric}: margin {margin}, 'worse' candidates are worse by the margin ({worse})")
-        print(f"{'procedure':<10} {'scenario':<28} {'pass|worse':>10} {'any worse passes':>17} "
+        print(f"{'procedure':<14} {'scenario':<28} {'pass|worse':>10} {'any worse passes':>17} "
               f"{'pass|good':>10} {'1st test pass|good':>19} {'FDR':>6}")
-        for procedure in ("none", "lord++"):
+        for procedure in ("none", "lord++", "alpha-spending"):
             policy = replace(base, champion_online=procedure)
             for name, share in scenarios:
                 f = run_streams(policy, metric, args.rows, args.streams, args.submissions, share, worse, args.seed)
-                print(f"{procedure:<10} {name:<28} {f['pass_rate_bad']:>10.4f} {f['any_bad_pass']:>17.3f} "
+                print(f"{procedure:<14} {name:<28} {f['pass_rate_bad']:>10.4f} {f['any_bad_pass']:>17.3f} "
                       f"{f['pass_rate_good']:>10.3f} {f['first_test_pass_good']:>19.3f} {f['fdr']:>6.3f}")
 
 

@@ -9,6 +9,7 @@ from __future__ import annotations
 from marshmallow import EXCLUDE, Schema, fields, validate
 
 from service.api.submission_schemas import LadderReadingSchema
+from service.gate.online import ONLINE_PROCEDURES
 from service.vocabulary import DECISIONS, HOLDOUT_FIGURES, RELEASE_MODES
 
 _DATETIME = {"format": "date-time"}
@@ -75,9 +76,11 @@ class PolicyBodySchema(Schema):
         "description": "which champion comparison decides: on the shared folds (cv), on the sealed rows "
                        "(holdout, one more holdout query paid from the release budget) or both"})
     champion_online = fields.String(metadata={
-        "enum": ["lord++", "none"],
+        "enum": list(ONLINE_PROCEDURES),
         "description": "error control across the dataset's stream of champion decisions on the sealed rows: "
-                       "LORD++ levels, or every test at champion_alpha"})
+                       "LORD++ levels (false discovery rate, independent tests), alpha-spending (alpha * gamma_t: "
+                       "the chance of any false pass at most champion_alpha under any dependence), or every test "
+                       "at champion_alpha"})
 
 
 class PolicySchema(PolicyBodySchema):

@@ -1,4 +1,4 @@
-"""Online error control across a dataset's stream of holdout champion decisions (LORD++).
+"""Online error control across a dataset's stream of holdout champion decisions (LORD++, alpha-spending).
 
 Each holdout champion decision tests H0 "the candidate is worse than the champion by at least the
 margin"; a pass rejects it. Tested one after another at a fixed level, a stream of worse candidates
@@ -20,6 +20,11 @@ when null p-values are independent of each other and of the others; decisions on
 rows are not independent, so the size under that dependence is measured in
 bench/champion_holdout.py instead of assumed.
 
+Alpha-spending (the t-th test at alpha * gamma_t, the same gamma; Foster & Stine 2008 describe it as
+the simplest alpha-investing rule) needs no independence: by the union bound the chance that any test
+of the stream rejects a true null is at most alpha * sum(gamma_t) <= alpha, whatever the dependence
+between tests on one set of sealed rows. It never earns wealth back, so it has less power than LORD++.
+
 With the procedure "none" every test runs at alpha (no control across the stream).
 
 Pure: the caller keeps the stream (a dataset's earlier tests, in order) in the records.
@@ -32,8 +37,9 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 LORD_PLUS_PLUS = "lord++"
+ALPHA_SPENDING = "alpha-spending"
 NO_CONTROL = "none"
-ONLINE_PROCEDURES = (LORD_PLUS_PLUS, NO_CONTROL)
+ONLINE_PROCEDURES = (LORD_PLUS_PLUS, ALPHA_SPENDING, NO_CONTROL)
 GAMMA_CONSTANT = 0.0722
 
 
@@ -75,4 +81,6 @@ def next_level(stream: Stream, procedure: str, alpha: float) -> float:
         return alpha
     if procedure == LORD_PLUS_PLUS:
         return lord_plus_plus_level(stream.tests + 1, stream.rejections, alpha, alpha / 2.0)
+    if procedure == ALPHA_SPENDING:
+        return alpha * gamma(stream.tests + 1)
     raise ValueError(f"online procedure must be one of {', '.join(ONLINE_PROCEDURES)}, got {procedure!r}")

@@ -24,7 +24,8 @@ Defaults and where they come from:
   shared folds (CV) and on the sealed rows (one more holdout query, service.gate.holdout_champion);
   the folds are public, so after many tries the CV comparison alone is optimistic.
 - champion_online = "lord++": the holdout champion decisions of a dataset are one stream under LORD++
-  (service.gate.online), so many tries do not eventually pass a worse model by chance.
+  (service.gate.online), so many tries do not eventually pass a worse model by chance; "alpha-spending"
+  holds under any dependence between the tests, with less power (bench/champion_holdout.py).
 - thresholdout: threshold 0.04 and sigma 0.01 for unit-free metrics (the values of Dwork et al. 2015's
   illustration, *from memory*), budget 100 (*common practice*); null for metrics in the target's
   units: a steward must give them before choosing the thresholdout mode.

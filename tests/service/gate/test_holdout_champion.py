@@ -132,6 +132,19 @@ def test_lord_plus_plus_levels_follow_the_published_recursion_on_a_worked_sequen
     assert next_level(stream, "none", 0.05) == 0.05
 
 
+def test_alpha_spending_levels_are_alpha_times_gamma_and_ignore_passes() -> None:
+    # Alpha-spending: alpha_t = alpha gamma_t, whatever passed before; by the union bound the chance of any
+    # false pass in the whole stream is at most alpha sum(gamma_t) <= alpha under any dependence (Bonferroni).
+    stream, levels = Stream(), []
+    for rejected in (False, True, False, True, False, False):
+        levels.append(next_level(stream, "alpha-spending", 0.05))
+        stream = stream.after(rejected)
+    assert levels == pytest.approx([0.05 * gamma(t) for t in range(1, 7)], rel=1e-12)
+    assert round(levels[0], 7) == 0.0025023  # 0.05 * 0.0722 * log 2 = 0.05 * 0.0500452, worked by hand
+    assert sum(next_level(Stream(t, ()), "alpha-spending", 0.05) for t in range(200_000)) < 0.05
+    assert parse_policy({"champion_online": "alpha-spending"}, "regression").champion_online == "alpha-spending"
+
+
 def test_lord_wealth_never_goes_negative() -> None:
     # The wealth W0 - sum(alpha_j) + (alpha - W0) [first rejection] + alpha [each later one] stays >= 0:
     # the property that makes LORD++'s levels valid (Ramdas et al. 2017).
