@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from service.cli import demo, embedded, main, supervisor
+from service.cli import demo, embedded, main, stack_up, supervisor
 from service.cli.client import ServiceClient
 from tests.support.servers import free_port, sealfold_argv
 
@@ -98,17 +98,17 @@ def test_demo_keys_without_the_demo_are_created_once_per_records_db(tmp_path: Pa
 
     engine = upgraded_engine(Settings.load({"data_dir": tmp_path, "database_url": ""}, environ={}))
     try:
-        first = main.demo_keys_once(engine)
+        first = stack_up.demo_keys_once(engine)
         assert set(first) == {"steward", "submitter"}
         steward = authenticate(engine, first["steward"])
         assert steward is not None and (steward.team, steward.role) == (demo.DEMO_TEAM, "steward")
-        assert main.demo_keys_once(engine) == {} and _key_count(tmp_path) == 2
+        assert stack_up.demo_keys_once(engine) == {} and _key_count(tmp_path) == 2
         # Once both are revoked, the next start creates a usable pair again.
         for token in first.values():
             info = authenticate(engine, token)
             assert info is not None
             revoke(engine, info.id)
-        again = main.demo_keys_once(engine)
+        again = stack_up.demo_keys_once(engine)
         assert set(again) == {"steward", "submitter"} and _key_count(tmp_path) == 4
     finally:
         engine.dispose()
