@@ -114,7 +114,8 @@ def _children(pid: int) -> set[int]:
     return {int(c) for c in Path(f"/proc/{pid}/task/{pid}/children").read_text().split()}
 
 
-def test_a_fold_killed_on_every_attempt_fails_the_submission_naming_the_crash(own_stack: Stack) -> None:
+def test_a_fold_killed_by_the_system_on_every_attempt_fails_the_submission_naming_memory(own_stack: Stack) -> None:
+    """A SIGKILL the worker did not send -- what the kernel's OOM killer does -- is retried, then a memory failure."""
     stack = own_stack
     ds = _slow_dataset(stack, "killed-folds")
     sub_id = _submit(stack, ds["id"], "GradientBoostingRegressor", {"n_estimators": 400, "max_depth": 4})
@@ -141,8 +142,9 @@ def test_a_fold_killed_on_every_attempt_fails_the_submission_naming_the_crash(ow
         time.sleep(0.02)
     doc = stack.client().get(f"/v1/submissions/{sub_id}").json()
     assert doc["state"] == "failed", doc
-    assert doc["failure_cause"] == "crash", doc
-    assert "fold 0 of repeat 0 was lost" in doc["error"], doc["error"]
+    assert doc["failure_cause"] == "memory_limit", doc
+    assert doc["error"].startswith("fold 0 of repeat 0: the fold process was killed by the operating system "
+                                   "(SIGKILL), most likely out of memory"), doc["error"]
     assert doc["result"] is None or doc["result"]["verdict"] is None
     assert kills == 3  # the first attempt and both retries
 
