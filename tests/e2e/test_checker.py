@@ -52,10 +52,11 @@ def test_posts_are_answered_while_every_fold_worker_is_busy(checked_stack: Stack
     busy = stack.client().post("/v1/submissions", json_body={"dataset": slow["id"], "model": {
         "estimator": "GradientBoostingRegressor", "params": {"n_estimators": 500, "max_depth": 6}}})
     assert busy.status == 202, busy.text
-    def running() -> list[str]:
+
+    def started_now() -> list[str]:  # over every team's queue
         return team_queues.started_job_ids(redis, stack.settings)
 
-    while not running():
+    while not started_now():
         assert time.monotonic() < deadline, "the fold worker never got busy"
         time.sleep(0.02)
 
@@ -66,12 +67,12 @@ def test_posts_are_answered_while_every_fold_worker_is_busy(checked_stack: Stack
         "dataset": quick["id"], "model": {"estimator": "SVR", "params": {"kernel": "precomputed"}}})
     assert refused.status == 422, refused.text
     assert refused.json()["errors"][0]["pointer"] == "/model/estimator"
-    assert running(), "the fold worker finished before the POSTs; the test did not test anything"
+    assert started_now(), "the fold worker finished before the POSTs; the test did not test anything"
 
     # Canceling the busy submission stops the fold it is running (RQ's stop command kills the worker's fold
     # process; the worker lives on), not only its queued jobs.
     deadline = time.monotonic() + 120
-    while not (running := [j for j in running() if j.startswith(f"{busy.json()['id']}-fold")]):
+    while not (running := [j for j in started_now() if j.startswith(f"{busy.json()['id']}-fold")]):
         assert time.monotonic() < deadline, "no fold of the busy submission started"
         time.sleep(0.05)
     canceled = stack.client().delete(f"/v1/submissions/{busy.json()['id']}")

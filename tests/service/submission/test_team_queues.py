@@ -5,9 +5,11 @@ Real redis-server (the session's), a queue name of each test's own.
 
 from __future__ import annotations
 
+import pytest
 from redis import Redis
 from rq.utils import current_timestamp
 
+from service.errors import SettingsError
 from service.settings import Settings
 from service.submission import team_queues
 
@@ -39,3 +41,10 @@ def test_started_jobs_are_read_over_every_work_queue(redis: Redis, settings: Set
         # RQ 3 keeps "<job id>:<execution id>" entries scored by their expiry time.
         redis.zadd(queue.started_job_registry.key, {f"{job_id}:exec1": current_timestamp() + 60})
     assert sorted(team_queues.started_job_ids(redis, settings)) == ["a-fold-0-0", "b-fold-0-0"]
+
+
+def test_the_running_cap_is_read_from_its_environment_variable_and_must_not_be_negative() -> None:
+    assert Settings.load(environ={}).team_max_running_jobs == 0  # off unless set
+    assert Settings.load(environ={"SEALFOLD_TEAM_MAX_RUNNING": "1"}).team_max_running_jobs == 1
+    with pytest.raises(SettingsError, match="team_max_running_jobs must be 0 \\(no limit\\) or positive, got -1"):
+        Settings.load({"team_max_running_jobs": -1}, environ={})
