@@ -3,11 +3,12 @@
 An embedded stack (redis-server, API, 2 fold workers, 1 checker, SQLite) in a temporary directory, with no
 live-submission cap (``SEALFOLD_TEAM_MAX_LIVE=0``) so the whole burst is accepted, and the per-team running
 cap given by ``--running-cap`` (0: none, round robin alone). Two teams each register scikit-learn's diabetes
-table. First, on the idle stack, team B submits ``--probes`` Ridge configurations one after the other and
-each one's POST -> succeeded time is taken. Then team A POSTs ``--burst`` Ridge configurations (5 folds
-each: 8 jobs a submission), and as soon as the last is accepted team B submits its probes again, one after
-the other. Printed: B's latency idle and during the burst (median and max), how many of A's submissions were
-still unfinished when each probe of B succeeded, and when A's burst drained.
+table. First, on the idle stack, team B POSTs ``--probes`` Ridge configurations back to back and each one's
+POST -> succeeded time is taken. Then team A POSTs ``--burst`` Ridge configurations (5 folds each: 8 jobs a
+submission), and as soon as the last is accepted team B POSTs its probes again, back to back. Printed: B's
+latency idle and during the burst (median and max), how many of A's submissions were still unfinished when
+each probe of B succeeded, and when A's burst drained. (One queue in FIFO order would finish B's probes only
+after the whole burst: none of A's left unfinished.)
 
 Run: ``python -m bench.fair_queue`` (``--burst 300``; ``--burst 60`` for a quick run). It asserts nothing;
 figures on a shared machine are noisy.
@@ -23,9 +24,11 @@ from pathlib import Path
 from typing import Any
 
 from sklearn.datasets import load_diabetes
+from sqlalchemy import Engine
 
 from service.cli import embedded, supervisor
 from service.cli.client import ServiceClient
+from service.records import submissions
 from service.records.engine import make_engine
 from service.records.keys import create_key
 from service.settings import Settings
@@ -54,30 +57,37 @@ def _state(client: ServiceClient, sub_id: str) -> str:
     return str(client.get(f"/v1/submissions/{sub_id}").json()["state"])
 
 
-def _probe(client: ServiceClient, dataset_id: str, alpha: float, timeout: float = 1800) -> float:
-    """POST one configuration and poll it until it is finished; return the seconds it took."""
-    began = time.perf_counter()
-    sub_id = _post(client, dataset_id, alpha)
+def _probe(client: ServiceClient, dataset_id: str, alphas: list[float], watch: Engine | None = None,
+           timeout: float = 1800) -> tuple[list[float], list[int]]:
+    """POST one configuration per alpha, back to back; poll until each is finished.
+
+    Returns each one's seconds from its POST to succeeded and, for each, how many of team A's submissions
+    were queued or running at that moment (read from the records DB ``watch``, when given).
+    """
+    posted = [(time.perf_counter(), _post(client, dataset_id, a)) for a in alphas]
+    seconds: dict[str, float] = {}
+    behind: dict[str, int] = {}
     deadline = time.monotonic() + timeout
-    while (state := _state(client, sub_id)) not in FINISHED:
+    while len(seconds) < len(posted):
+        for began, sub_id in posted:
+            if sub_id in seconds:
+                continue
+            state = _state(client, sub_id)
+            if state in FINISHED:
+                if state != "succeeded":
+                    raise SystemExit(f"probe {sub_id} {state}")
+                seconds[sub_id] = time.perf_counter() - began
+                behind[sub_id] = submissions.count_live(watch, "team-a") if watch is not None else 0
         if time.monotonic() > deadline:
-            raise SystemExit(f"probe {sub_id} still {state} after {timeout} s")
+            raise SystemExit(f"probes unfinished after {timeout} s")
         time.sleep(0.02)
-    if state != "succeeded":
-        raise SystemExit(f"probe {sub_id} {state}")
-    return time.perf_counter() - began
+    return [seconds[s] for _, s in posted], [behind[s] for _, s in posted]
 
 
-def _unfinished(client: ServiceClient, sub_ids: list[str]) -> int:
-    return sum(1 for s in sub_ids if _state(client, s) not in FINISHED)
-
-
-def _clients(base_url: str, env: dict[str, str]) -> dict[str, ServiceClient]:
-    engine = make_engine(Settings.load(environ=env))
+def _clients(base_url: str, engine: Engine) -> dict[str, ServiceClient]:
     keys = {who: create_key(engine, team, role, who)[1] for who, team, role in (
         ("a_steward", "team-a", "steward"), ("a", "team-a", "submitter"),
         ("b_steward", "team-b", "steward"), ("b", "team-b", "submitter"))}
-    engine.dispose()
     return {who: ServiceClient(base_url, token, timeout=120) for who, token in keys.items()}
 
 
@@ -93,27 +103,25 @@ def run(args: argparse.Namespace, tmp: str) -> dict[str, Any]:
         print(f"starting an embedded stack: {args.workers} fold workers and a checker, running cap "
               f"{args.running_cap or 'none'}, in {tmp}", flush=True)
         stack = embedded.start_stack(sup, options)
-        clients = _clients(stack.base_url, stack.env)
+        engine = make_engine(Settings.load(environ=stack.env))
+        clients = _clients(stack.base_url, engine)
         a_data, b_data = _register(clients["a_steward"], "diabetes-a"), _register(clients["b_steward"], "diabetes-b")
-        _probe(clients["b"], b_data, 0.001)  # warm the checker's sample cache and every worker's data cache
-        _probe(clients["a"], a_data, 0.001)
-        idle = [_probe(clients["b"], b_data, 0.01 + i * 0.01) for i in range(args.probes)]
+        _probe(clients["b"], b_data, [0.001])  # warm the checker's sample cache and every worker's data cache
+        _probe(clients["a"], a_data, [0.001])
+        idle, _ = _probe(clients["b"], b_data, [0.01 + i * 0.01 for i in range(args.probes)])
         print(_figures("team B idle", idle), flush=True)
 
         began = time.perf_counter()
         burst = [_post(clients["a"], a_data, 0.1 + i * 0.001) for i in range(args.burst)]
         posted = time.perf_counter() - began
-        print(f"team A posted {args.burst} submissions in {posted:.1f} s; "
-              f"{_unfinished(clients['a'], burst)} unfinished", flush=True)
-        loaded: list[float] = []
-        behind: list[int] = []
-        for i in range(args.probes):
-            loaded.append(_probe(clients["b"], b_data, 5.0 + i * 0.01))
-            behind.append(_unfinished(clients["a"], burst))
+        print(f"team A posted {len(burst)} submissions in {posted:.1f} s; "
+              f"{submissions.count_live(engine, 'team-a')} unfinished", flush=True)
+        loaded, behind = _probe(clients["b"], b_data, [5.0 + i * 0.01 for i in range(args.probes)], engine)
         print(_figures("team B during A's burst", loaded), flush=True)
         print(f"A's submissions still unfinished as each probe of B succeeded: {behind}", flush=True)
-        while (left := _unfinished(clients["a"], burst)) and time.perf_counter() - began < 3600:
-            time.sleep(1.0)
+        while (left := submissions.count_live(engine, "team-a")) and time.perf_counter() - began < 3600:
+            time.sleep(0.5)
+        engine.dispose()
         drained = time.perf_counter() - began
         print(f"A's burst drained {drained:.1f} s after its first POST ({left} left)", flush=True)
     return {"idle": idle, "loaded": loaded, "behind": behind, "drained": drained}
