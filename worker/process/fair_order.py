@@ -29,7 +29,7 @@ from rq.queue import Queue
 
 from service.settings import Settings
 from service.submission import team_queues
-from worker.process.outages import OutageTolerantWorker
+from worker.process.outages import OutageTolerantWorker, outage_tolerated
 
 # How long an idle worker waits on the queues it knows before it reads the registered team queues again:
 # the longest a new team's first job can wait for an idle worker.
@@ -83,8 +83,11 @@ def claim(redis: Redis, queue_name: str, job_id: str, cap: int, now: float, ttl:
 
 
 def renew(redis: Redis, queue_name: str, job_id: str, now: float, ttl: int) -> None:
-    """Extend a running job's claim (with its heartbeat); no-op when the job holds none."""
-    redis.zadd(claims_key(queue_name), {job_id: now + ttl}, xx=True)
+    """Extend a running job's claim (with its heartbeat), and the key's life; no-op when the job holds none."""
+    with redis.pipeline() as pipe:
+        pipe.zadd(claims_key(queue_name), {job_id: now + ttl}, xx=True)
+        pipe.expire(claims_key(queue_name), ttl * 4)
+        pipe.execute()
 
 
 def release(redis: Redis, queue_name: str, job_id: str) -> None:
@@ -127,7 +130,8 @@ class FairQueueWorker(OutageTolerantWorker):
         if not self.fair or max_idle_time is not None:
             return super().dequeue_job_and_maintain_ttl(timeout, max_idle_time)
         while True:
-            self.refresh_queues()
+            with outage_tolerated(self, "reading the team queues"):  # else the last lists; the wait rides it out
+                self.refresh_queues()
             if timeout is None:  # burst: look once
                 return super().dequeue_job_and_maintain_ttl(None)
             wait = min(timeout, REFRESH_SECONDS)
@@ -165,7 +169,8 @@ class FairQueueWorker(OutageTolerantWorker):
     def free_slot(self, job: Job, queue: Queue) -> None:
         """Give the job's running slot back (no-op without a cap)."""
         if self._capped(queue.name):
-            release(self.connection, queue.name, job.id)
+            with outage_tolerated(self, "releasing a running slot"):  # unreleased, the claim lapses with its TTL
+                release(self.connection, queue.name, job.id)
 
     def maintain_heartbeats(self, job: Job, execution: Execution) -> None:
         super().maintain_heartbeats(job, execution)
