@@ -107,11 +107,11 @@ def test_a_job_that_finds_its_teams_slots_taken_goes_back_to_the_front_of_its_qu
     result: Any = worker.dequeue_job_and_maintain_ttl(None)
     job, queue = result
     assert job.id == first and worker.take_slot(job, queue)
-    # A second worker that was already waiting on the queue takes the next job at the same moment.
-    other: Any = worker.dequeue_job_and_maintain_ttl(None)
-    if other is None:  # this worker already skips the capped queue; take the job as the other worker would
-        other = (queue.dequeue_any([queue], None, connection=worker.connection, job_class=worker.job_class,
-                                   serializer=worker.serializer))
+    assert worker.dequeue_job_and_maintain_ttl(None) is None  # this worker now skips the team's queue
+    # A second worker that was already waiting on the queue (its list read before the slot was taken) takes
+    # the next job at the same moment.
+    other: Any = queue.dequeue_any([queue], None, connection=worker.connection, job_class=worker.job_class,
+                                   serializer=worker.serializer)
     assert other[0].id == second and not worker.take_slot(*other)
     assert queue.get_job_ids() == [second]  # back at the front, for when the slot frees
     worker.free_slot(job, queue)
