@@ -238,8 +238,8 @@ def reconcile(engine: Engine, redis: Redis, settings: Settings, min_age_seconds:
         live: set[str] = set()
         for queue in team_queues.work_queues(redis, settings):
             live |= live_job_ids(queue)
-        return sum(_reconcile_one(engine, live, team_queues.team_queue(redis, settings, sub["team"]), settings, sub)
-                   for sub in stale)
+        queues = {team: team_queues.team_queue(redis, settings, team) for team in {sub["team"] for sub in stale}}
+        return sum(_reconcile_one(engine, live, queues[sub["team"]], settings, sub) for sub in stale)
     finally:
         lock.release()
 

@@ -7,6 +7,7 @@ jobs in burst mode, as RQ's work loop does, so the order read back is the order 
 from __future__ import annotations
 
 import dataclasses
+import threading
 import time
 import uuid
 from collections.abc import Iterator
@@ -14,6 +15,8 @@ from typing import Any
 
 import pytest
 from redis import Redis
+from rq import Queue
+from rq.serializers import JSONSerializer
 
 from service.settings import Settings
 from service.submission import team_queues
@@ -86,6 +89,27 @@ def test_a_worker_takes_the_teams_in_turn_and_each_team_in_its_own_order(worker:
     # While both teams have work, they alternate; FIFO over one queue would give the burst first.
     assert [_team(j) for j in taken[:4]] in (["fleet", "rivals"] * 2, ["rivals", "fleet"] * 2)
     assert [j for j in taken if j in burst] == burst and [j for j in taken if j in single] == single
+
+
+def test_a_waiting_worker_serves_a_team_that_appears_while_it_waits(
+    worker: SealfoldWorker, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """No restart: the wait is cut into rounds, and each round reads the registered team queues again."""
+    monkeypatch.setattr(fair_order, "REFRESH_SECONDS", 1)
+    assert worker.settings is not None
+    base = Queue(worker.settings.queue_name, connection=worker.connection, serializer=JSONSerializer)
+    late = threading.Timer(0.5, _enqueue, (worker, "newcomers", 1))
+    # Should the worker never look at the new queue, a job on the base queue ends its wait instead.
+    fallback = threading.Timer(20, base.enqueue_call, ("worker.jobs.summarize", ("sub_base",)),
+                               {"job_id": "sub_base-summary"})
+    late.start()
+    fallback.start()
+    try:
+        result: Any = worker.dequeue_job_and_maintain_ttl(30)  # a waiting (not burst) worker
+    finally:
+        late.cancel()
+        fallback.cancel()
+    assert result[0].id == "sub_newcomers0-summary"
 
 
 def test_a_team_at_its_running_cap_is_skipped_until_a_slot_frees(worker: SealfoldWorker) -> None:
