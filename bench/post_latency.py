@@ -24,8 +24,6 @@ from typing import Any
 import numpy as np
 import pandas as pd
 from redis import Redis
-from rq import Queue
-from rq.registry import StartedJobRegistry
 from sklearn.datasets import load_diabetes, make_regression
 
 from service.cli import embedded, supervisor
@@ -33,6 +31,7 @@ from service.cli.client import ServiceClient
 from service.records.engine import make_engine
 from service.records.keys import create_key
 from service.settings import Settings
+from service.submission import team_queues
 
 
 def _csv(frame: pd.DataFrame) -> bytes:
@@ -94,31 +93,33 @@ def main(argv: list[str] | None = None) -> int:
             submitter.post("/v1/submissions", json_body={"dataset": quick_id, "model": {"estimator": "Ridge"}})
 
             redis = Redis.from_url(stack.redis_url)
-            started = StartedJobRegistry(queue=Queue(settings.queue_name, connection=redis))
             for depth in (8, 7, 6):  # enough slow work to keep every fold worker busy throughout
                 reply = submitter.post("/v1/submissions", json_body={"dataset": slow_id, "model": {
                     "estimator": "GradientBoostingRegressor", "params": {"n_estimators": 500, "max_depth": depth}}})
                 if reply.status != 202:
                     raise SystemExit(f"a slow submission answered {reply.status}: {reply.text}")
+            def running() -> int:  # jobs running now, over every team's queue
+                return len(team_queues.started_job_ids(redis, settings))
+
             deadline = time.monotonic() + 120
-            while len(started.get_job_ids()) < args.workers:
+            while running() < args.workers:
                 if time.monotonic() > deadline:
                     raise SystemExit("the fold workers never all got busy")
                 time.sleep(0.05)
-            print(f"every fold worker busy ({len(started.get_job_ids())} jobs running); timing {args.posts} POSTs",
+            print(f"every fold worker busy ({running()} jobs running); timing {args.posts} POSTs",
                   flush=True)
 
             times: dict[str, list[float]] = {"valid": [], "refused": []}
             statuses: dict[int, int] = {}
             all_busy = 0
             for kind, body in _bodies(quick_id, args.posts):
-                all_busy += len(started.get_job_ids()) >= args.workers
+                all_busy += running() >= args.workers
                 began = time.perf_counter()
                 reply = submitter.post("/v1/submissions", json_body=body)
                 elapsed = time.perf_counter() - began
                 statuses[reply.status] = statuses.get(reply.status, 0) + 1
                 times[kind].append(elapsed)
-            still_busy = len(started.get_job_ids())
+            still_busy = running()
 
     every = times["valid"] + times["refused"]
     print(f"\nPOST /v1/submissions with {args.workers} fold workers busy ({all_busy} of {args.posts} POSTs sent "

@@ -29,6 +29,7 @@ _ENV_NAMES: dict[str, str] = {
     "memory_limit_mib": "SEALFOLD_MEMORY_LIMIT_MIB",
     "job_nice": "SEALFOLD_JOB_NICE",
     "team_max_live_submissions": "SEALFOLD_TEAM_MAX_LIVE",
+    "team_max_running_jobs": "SEALFOLD_TEAM_MAX_RUNNING",
     "min_rows": "SEALFOLD_MIN_ROWS",
     "log_level": "SEALFOLD_LOG_LEVEL",
     "log_format": "SEALFOLD_LOG_FORMAT",
@@ -65,6 +66,10 @@ class Settings:
     # Submissions one team may have queued or running at once (0: no limit); beyond it a POST answers 429,
     # so one team's burst cannot fill the queue ahead of every other team.
     team_max_live_submissions: int = 100
+    # Jobs of one team that may run at once over every worker (0: no limit). Workers already take the teams'
+    # queues in turn; this cap also keeps workers free for other teams while one team's long jobs run, at the
+    # price of idle workers when only that team has work.
+    team_max_running_jobs: int = 0
     min_rows: int = 50
     log_level: str = "INFO"
     log_format: str = "json"  # "text" for reading in a terminal
@@ -98,6 +103,9 @@ class Settings:
         if self.team_max_live_submissions < 0:
             raise SettingsError("team_max_live_submissions must be 0 (no limit) or positive, got "
                                 f"{self.team_max_live_submissions}")
+        if self.team_max_running_jobs < 0:
+            raise SettingsError("team_max_running_jobs must be 0 (no limit) or positive, got "
+                                f"{self.team_max_running_jobs}")
         if not 0 <= self.job_nice <= 19:
             raise SettingsError(f"job_nice must be between 0 and 19, got {self.job_nice}")
         if self.data_source not in DATA_SOURCES:

@@ -27,6 +27,7 @@ from service.api.telemetry import multiprocess_dir
 from service.ops import job_tallies
 from service.ops.workers import live_workers
 from service.records import ops_figures, submissions
+from service.submission import team_queues
 from service.vocabulary import STATES
 
 log = logging.getLogger(__name__)
@@ -76,13 +77,16 @@ class DeploymentCollector(Collector):
 
     def _from_redis(self) -> Iterator[Metric]:
         redis, settings = self.ctx.redis, self.ctx.settings
-        depth = GaugeMetricFamily("sealfold_queue_jobs", "Jobs per queue and state.", labels=["queue", "state"])
-        for name in (settings.queue_name, settings.check_queue_name):
-            queue = Queue(name, connection=redis)
-            depth.add_metric([name, "queued"], queue.count)
+        depth = GaugeMetricFamily("sealfold_queue_jobs", "Jobs per queue and state; the work queue's figures are "
+                                  "totals over every team's queue.", labels=["queue", "state"])
+        # One series for all teams' work: a per-team series would show every team the others' load.
+        work = team_queues.work_queues(redis, settings)
+        for name, queues in ((settings.queue_name, work), (settings.check_queue_name, [Queue(
+                settings.check_queue_name, connection=redis)])):
+            depth.add_metric([name, "queued"], sum(q.count for q in queues))
             for state, registry in (("started", StartedJobRegistry), ("deferred", DeferredJobRegistry),
                                     ("scheduled", ScheduledJobRegistry), ("failed", FailedJobRegistry)):
-                depth.add_metric([name, state], registry(queue=queue).count)
+                depth.add_metric([name, state], sum(registry(queue=q).count for q in queues))
         yield depth
         yield GaugeMetricFamily("sealfold_workers_alive", "Workers registered in Redis with a recent heartbeat.",
                                 value=live_workers(redis))

@@ -50,6 +50,7 @@ from service.logs import request_id_var
 from service.records import champion_folds, champions, submissions
 from service.records.engine import as_utc, utcnow
 from service.settings import Settings
+from service.submission import team_queues
 from service.submission.resolved import ValidationPlan
 
 log = logging.getLogger(__name__)
@@ -106,26 +107,21 @@ def champion_to_replay(engine: Engine, dataset_id: str, validation: ValidationPl
     return None if set(fold_cells(validation)) <= stored else str(champion_id)
 
 
-def work_queue(redis: Redis, settings: Settings) -> Queue:
-    """Return the queue fold, summary and holdout jobs go to."""
-    return Queue(settings.queue_name, connection=redis, serializer=JSONSerializer)
-
-
 def fold_cells(validation: ValidationPlan) -> list[tuple[int, int]]:
     """Return every (repeat, fold) pair a validation plan runs."""
     return [(r, f) for r in range(validation.repeats) for f in range(validation.folds)]
 
 
 def enqueue_submission(
-    redis: Redis, settings: Settings, sub_id: str, validation: ValidationPlan, champion: str | None = None,
+    redis: Redis, settings: Settings, team: str, sub_id: str, validation: ValidationPlan, champion: str | None = None,
 ) -> None:
-    """Enqueue the whole job chain of a new submission.
+    """Enqueue the whole job chain of a new submission, on its team's queue (``team_queues``).
 
     ``champion`` (``champion_to_replay``): score that champion's configuration on this plan's folds
     too, in jobs the verdict waits for, so the CV comparison with it is paired.
     """
     try:
-        queue = work_queue(redis, settings)
+        queue = team_queues.team_queue(redis, settings, team)
         _enqueue_holdout(queue, settings, sub_id)
         fold_ids = [_enqueue_fold(queue, settings, sub_id, r, f) for r, f in fold_cells(validation)]
         replay = [] if champion is None else [
@@ -227,7 +223,6 @@ def reconcile(engine: Engine, redis: Redis, settings: Settings, min_age_seconds:
     its piece of work -- after a Redis flush or restart, for instance. Submissions touched in the
     last ``min_age_seconds`` are left alone so a POST that is still enqueueing is not raced.
     """
-    queue = work_queue(redis, settings)
     cutoff = utcnow() - timedelta(seconds=min_age_seconds)
     stale = [s for s in submissions.unfinished(engine) if (as_utc(s["updated_at"]) or cutoff) <= cutoff]
     if not stale:
@@ -236,18 +231,21 @@ def reconcile(engine: Engine, redis: Redis, settings: Settings, min_age_seconds:
     # two that both read before either writes would each push every missing job id onto the queue,
     # and RQ runs a job once per queue entry. A second reconciler finds the lock held and leaves the
     # work to the first.
-    lock = redis.lock(f"{RECONCILE_LOCK}:{queue.name}", timeout=RECONCILE_LOCK_SECONDS, blocking=False)
+    lock = redis.lock(f"{RECONCILE_LOCK}:{settings.queue_name}", timeout=RECONCILE_LOCK_SECONDS, blocking=False)
     if not lock.acquire():
         return 0
     try:
-        live = live_job_ids(queue)
-        return sum(_reconcile_one(engine, live, queue, settings, sub) for sub in stale)
+        live: set[str] = set()
+        for queue in team_queues.work_queues(redis, settings):
+            live |= live_job_ids(queue)
+        queues = {team: team_queues.team_queue(redis, settings, team) for team in {sub["team"] for sub in stale}}
+        return sum(_reconcile_one(engine, live, queues[sub["team"]], settings, sub) for sub in stale)
     finally:
         lock.release()
 
 
 def live_job_ids(queue: Queue) -> set[str]:
-    """Return the ids of the jobs that will still run or are running: queued, in flight, deferred.
+    """Return the ids of one queue's jobs that will still run or are running: queued, in flight, deferred.
 
     A job's status alone is not enough: a worker killed between taking a job and starting it leaves
     the job "queued" in no queue, and RQ's clean-up drops a "started" entry whose job never started.

@@ -112,7 +112,7 @@ def submit(
         if same is None:
             raise
         return same, False
-    dispatch.enqueue_submission(redis, settings, sub_id, validation,
+    dispatch.enqueue_submission(redis, settings, key.team, sub_id, validation,
                                 dispatch.champion_to_replay(engine, dataset["id"], validation))
     stored = submissions.get(engine, sub_id)
     assert stored is not None

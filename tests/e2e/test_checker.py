@@ -13,12 +13,11 @@ from pathlib import Path
 import pandas as pd
 import pytest
 from redis import Redis
-from rq import Queue
 from rq.job import Job, JobStatus
-from rq.registry import StartedJobRegistry
 from rq.serializers import JSONSerializer
 from sklearn.datasets import make_regression
 
+from service.submission import team_queues
 from service.submission.dispatch import fold_job_id
 from tests.support.datasets import diabetes_frame, register
 from tests.support.servers import redis_server, start_worker
@@ -53,8 +52,11 @@ def test_posts_are_answered_while_every_fold_worker_is_busy(checked_stack: Stack
     busy = stack.client().post("/v1/submissions", json_body={"dataset": slow["id"], "model": {
         "estimator": "GradientBoostingRegressor", "params": {"n_estimators": 500, "max_depth": 6}}})
     assert busy.status == 202, busy.text
-    started = StartedJobRegistry(queue=Queue(stack.settings.queue_name, connection=redis))
-    while not started.get_job_ids():
+
+    def started_now() -> list[str]:  # over every team's queue
+        return team_queues.started_job_ids(redis, stack.settings)
+
+    while not started_now():
         assert time.monotonic() < deadline, "the fold worker never got busy"
         time.sleep(0.02)
 
@@ -65,12 +67,12 @@ def test_posts_are_answered_while_every_fold_worker_is_busy(checked_stack: Stack
         "dataset": quick["id"], "model": {"estimator": "SVR", "params": {"kernel": "precomputed"}}})
     assert refused.status == 422, refused.text
     assert refused.json()["errors"][0]["pointer"] == "/model/estimator"
-    assert started.get_job_ids(), "the fold worker finished before the POSTs; the test did not test anything"
+    assert started_now(), "the fold worker finished before the POSTs; the test did not test anything"
 
     # Canceling the busy submission stops the fold it is running (RQ's stop command kills the worker's fold
     # process; the worker lives on), not only its queued jobs.
     deadline = time.monotonic() + 120
-    while not (running := [j for j in started.get_job_ids() if j.startswith(f"{busy.json()['id']}-fold")]):
+    while not (running := [j for j in started_now() if j.startswith(f"{busy.json()['id']}-fold")]):
         assert time.monotonic() < deadline, "no fold of the busy submission started"
         time.sleep(0.05)
     canceled = stack.client().delete(f"/v1/submissions/{busy.json()['id']}")

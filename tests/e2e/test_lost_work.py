@@ -17,13 +17,12 @@ from typing import Any
 import pandas as pd
 import pytest
 from redis import Redis
-from rq import Queue
 from rq.job import Job, JobStatus
-from rq.registry import StartedJobRegistry
 from rq.serializers import JSONSerializer
 from sklearn.datasets import make_regression
 
 from service.ops.data_identity import marker_path
+from service.submission import team_queues
 from service.submission.dispatch import fold_job_id, holdout_job_id
 from tests.support.datasets import diabetes_frame, register
 from tests.support.servers import redis_server, start_worker, stop_processes
@@ -115,19 +114,19 @@ def _children(pid: int) -> set[int]:
     return {int(c) for c in Path(f"/proc/{pid}/task/{pid}/children").read_text().split()}
 
 
-def test_a_fold_killed_on_every_attempt_fails_the_submission_naming_the_crash(own_stack: Stack) -> None:
+def test_a_fold_killed_by_the_system_on_every_attempt_fails_the_submission_naming_memory(own_stack: Stack) -> None:
+    """A SIGKILL the worker did not send -- what the kernel's OOM killer does -- is retried, then a memory failure."""
     stack = own_stack
     ds = _slow_dataset(stack, "killed-folds")
     sub_id = _submit(stack, ds["id"], "GradientBoostingRegressor", {"n_estimators": 400, "max_depth": 4})
     redis = Redis.from_url(stack.settings.redis_url)
-    started = StartedJobRegistry(queue=Queue(stack.settings.queue_name, connection=redis))
     target = fold_job_id(sub_id, 0, 0)
     worker = stack.workers[0]
     kills = 0
     deadline = time.monotonic() + 120
     while stack.client().get(f"/v1/submissions/{sub_id}").json()["state"] in ("queued", "running"):
         assert time.monotonic() < deadline, stack.log_path.read_text(errors="replace")[-3000:]
-        if target in started.get_job_ids():
+        if target in team_queues.started_job_ids(redis, stack.settings):
             fold_processes = _children(worker.pid)
             job = Job.fetch(target, connection=redis, serializer=JSONSerializer)
             if fold_processes and job.get_status() == JobStatus.STARTED:
@@ -143,8 +142,9 @@ def test_a_fold_killed_on_every_attempt_fails_the_submission_naming_the_crash(ow
         time.sleep(0.02)
     doc = stack.client().get(f"/v1/submissions/{sub_id}").json()
     assert doc["state"] == "failed", doc
-    assert doc["failure_cause"] == "crash", doc
-    assert "fold 0 of repeat 0 was lost" in doc["error"], doc["error"]
+    assert doc["failure_cause"] == "memory_limit", doc
+    assert doc["error"].startswith("fold 0 of repeat 0: the fold process was killed by the operating system "
+                                   "(SIGKILL), most likely out of memory"), doc["error"]
     assert doc["result"] is None or doc["result"]["verdict"] is None
     assert kills == 3  # the first attempt and both retries
 

@@ -11,10 +11,9 @@ from pathlib import Path
 import pandas as pd
 import pytest
 from redis import Redis
-from rq import Queue
-from rq.registry import StartedJobRegistry
 from sklearn.datasets import make_regression
 
+from service.submission import team_queues
 from tests.support.datasets import diabetes_frame, register
 from tests.support.servers import redis_server, start_worker
 from tests.support.stack import Stack, running_stack
@@ -89,10 +88,9 @@ def _slow_folds_under_way(stack: Stack, name: str) -> tuple[str, list[str]]:
         "dataset": ds["id"], "model": {"estimator": "GradientBoostingRegressor",
                                        "params": {"n_estimators": 200, "max_depth": 4}}})
     assert reply.status == 202, reply.text
-    started = StartedJobRegistry(queue=Queue(stack.settings.queue_name,
-                                             connection=Redis.from_url(stack.settings.redis_url)))
+    redis = Redis.from_url(stack.settings.redis_url)
     deadline = time.monotonic() + 60
-    while not (in_flight := [j for j in started.get_job_ids() if "-fold-" in j]):
+    while not (in_flight := [j for j in team_queues.started_job_ids(redis, stack.settings) if "-fold-" in j]):
         assert time.monotonic() < deadline, "no fold job started"
         time.sleep(0.02)
     return str(reply.json()["id"]), in_flight

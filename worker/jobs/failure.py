@@ -5,6 +5,9 @@ else that stops a fold or holdout job is lost work, and no verdict is given on a
 
 - a bound exceeded -- the job's timeout, the memory limit -- is deterministic: the job is not
   retried, and the submission fails at once naming the bound;
+- a fold process killed by a SIGKILL the worker did not send (the kernel's OOM killer, most likely) is
+  retried, since the host may have been short for a moment; when the last attempt is killed too, the
+  submission fails as a memory failure naming the likely cause;
 - data this worker could not read, a crashed fold process, anything else: RQ retries the job (a
   worker that could not read the data is asked to leave the retry to another one,
   ``worker.process.main``); when the last attempt is lost too, the submission fails naming the cause.
@@ -39,6 +42,10 @@ class MemoryLimitExceeded(Exception):
     """A fold or holdout process needed more memory than the limit allows."""
 
 
+class KilledBySystem(MemoryError):
+    """A process doing a job's work got a SIGKILL its worker did not send: most likely the kernel's OOM killer."""
+
+
 @dataclass(frozen=True)
 class Loss:
     """Why a job's work was lost: a ``FAILURE_CAUSES`` word, the words a submitter reads, and whether to retry."""
@@ -60,6 +67,14 @@ def classify(
         return Loss("data", exc.detail, False)
     if isinstance(exc, JobTimeoutException):
         return Loss("timeout", f"{what} exceeded the {_bound_name(what)} timeout of {timeout_seconds} s", False)
+    if isinstance(exc, KilledBySystem):
+        # The kernel's OOM killer acts when the host runs out, which can come before the process's own limit.
+        limit = f"; it was under its memory limit of {memory_limit_mib} MiB, so the host ran out first" \
+            if memory_limit_mib > 0 else ""
+        # Retried as a crash is: the host may have been short for a moment (other workers' folds); a fit that
+        # is killed on every attempt fails the submission as a memory failure.
+        return Loss("memory_limit", f"{what}: the fold process was killed by the operating system (SIGKILL), "
+                                    f"most likely out of memory{limit}", True)
     if isinstance(exc, MemoryLimitExceeded | MemoryError) or "MemoryError" in str(exc).split(":", 1)[0]:
         if memory_limit_mib <= 0:
             return Loss("memory_limit", f"{what} ran out of memory (no memory limit is set)", False)

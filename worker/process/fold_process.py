@@ -37,7 +37,7 @@ import traceback
 from typing import Any
 
 from worker.jobs import runtime
-from worker.jobs.failure import lift_memory_limit, limit_memory
+from worker.jobs.failure import KilledBySystem, lift_memory_limit, limit_memory
 from worker.jobs.fold import run_fold
 
 log = logging.getLogger(__name__)
@@ -59,6 +59,15 @@ class FoldProcessDied(FoldProcessError):
     """The fold process ended while it ran a job (killed, crashed)."""
 
 
+class FoldProcessKilled(FoldProcessDied, KilledBySystem):
+    """A SIGKILL this worker did not send ended the fold process: the kernel's OOM killer, most likely.
+
+    Nothing else on a worker host sends SIGKILL to a fold process (the job timeout and RQ's stop command
+    kill it through ``FoldProcess``, which remembers doing so), so the job fails as a memory failure
+    (``worker.jobs.failure.classify``), not as a crash.
+    """
+
+
 class FoldProcess:
     """The parent's handle on the child: start it, run one fold at a time in it, stop it."""
 
@@ -67,6 +76,7 @@ class FoldProcess:
         self._send = -1
         self._receive = -1
         self._settled_rss: int | None = None
+        self._killed_here = False  # this worker sent the SIGKILL that may end the running job
 
     def start(self) -> None:
         """Fork the child unless a live one is there.
@@ -100,6 +110,7 @@ class FoldProcess:
         the fold stops with it; the next job starts a new one.
         """
         self.start()
+        self._killed_here = False
         try:
             _write_message(self._send, {"submission_id": submission_id, "repeat": repeat, "fold": fold})
             answer = _read_message(self._receive)
@@ -110,8 +121,11 @@ class FoldProcess:
             raise
         if answer is None:
             how = self._reap()
-            raise FoldProcessDied(f"the fold process {how} while it ran fold {fold} of repeat {repeat} of "
-                                  f"{submission_id}; the job is retried in a new one")
+            where = f"fold {fold} of repeat {repeat} of {submission_id}"
+            if how == f"was killed by {signal.SIGKILL.name}" and not self._killed_here:
+                raise FoldProcessKilled(f"the fold process was killed by the operating system (SIGKILL), most likely "
+                                        f"out of memory, while it ran {where}")
+            raise FoldProcessDied(f"the fold process {how} while it ran {where}; the job is retried in a new one")
         if answer.get("replace"):
             self.stop()  # it failed an allocation: start the next job in a fresh one
         self._replace_if_grown()
@@ -124,6 +138,7 @@ class FoldProcess:
         """Kill the child from another thread; the thread waiting on it sees it die and reaps it."""
         pid = self.pid
         if pid is not None:
+            self._killed_here = True
             with contextlib.suppress(ProcessLookupError):
                 os.kill(pid, signal.SIGKILL)
 

@@ -16,7 +16,6 @@ from __future__ import annotations
 import importlib
 import logging
 import os
-import random
 import signal
 import time
 from collections.abc import Callable, Iterator
@@ -44,9 +43,10 @@ from worker.jobs.runtime import repeating
 from worker.process import placement
 from worker.process.allowlist import ALLOWED_CALLBACKS, AllowListedJob, RefusedJob, func_name, request_id
 from worker.process.data_check import data_checker
+from worker.process.fair_order import FairQueueWorker
 from worker.process.fetched_data import DataFetcher
 from worker.process.fold_process import FoldProcess
-from worker.process.outages import OutageTolerantWorker, outage_tolerated
+from worker.process.outages import outage_tolerated
 from worker.process.warmup import warm_up
 
 log = logging.getLogger(__name__)
@@ -55,8 +55,10 @@ __all__ = ["ALLOWED_CALLBACKS", "AllowListedJob", "RefusedJob", "SealfoldWorker"
 JOB_MONITORING_INTERVAL = 10
 MAINTENANCE_INTERVAL = 30
 RECONCILE_TICK = "sealfold:reconcile-tick"
-class SealfoldWorker(OutageTolerantWorker):
+class SealfoldWorker(FairQueueWorker):
     """RQ's forking worker, plus a fresh DB pool in each work horse and the reconciler in maintenance.
+
+    It takes the teams' queues in turn, each within its running cap (``worker.process.fair_order``).
 
     It also leaves a job whose data it could not read to another worker (``leave_to_another``), and
     stops an in-process job on RQ's stop command by killing its fold process (``kill_horse``).
@@ -71,7 +73,6 @@ class SealfoldWorker(OutageTolerantWorker):
 
     data_problem: str | None = None  # set when this worker stopped because it lost the deployment's data
     data_check: Callable[[], str | None] | None = None  # why the data dir is unusable now, or None
-    settings: Settings | None = None  # set by build_worker: the job timeouts applied here
 
     def main_work_horse(self, job: Job, queue: Queue) -> None:
         runtime.after_fork()
@@ -116,7 +117,9 @@ class SealfoldWorker(OutageTolerantWorker):
         left = int(job.meta.get(LEFT_COUNT, 0))
         if self.name not in avoided or left >= self.leave_limit:
             return False
-        others = [w for w in Worker.all(queue=queue) if w.name not in avoided and w.name != self.name]
+        # Every fold worker registers on the base queue; a team queue, found at runtime, lists none.
+        base = queue if self.settings is None else Queue(self.settings.queue_name, connection=self.connection)
+        others = [w for w in Worker.all(queue=base) if w.name not in avoided and w.name != self.name]
         if not others:
             return False
         job.meta[LEFT_COUNT] = left + 1
@@ -144,14 +147,17 @@ class SealfoldWorker(OutageTolerantWorker):
             self.data_problem = problem
             self.request_stop(0, None)
             return
-        if self.leave_to_another(job, queue):
+        if self.leave_to_another(job, queue) or not self.take_slot(job, queue):
             self.set_state(WorkerStatus.IDLE)
             return
         job_tallies.record(self.connection, func_name(job), "started")
         if self.settings is not None:  # this worker's timeout for the kind, whatever the enqueuer said
             job.timeout = self.settings.job_timeout_seconds(job_tallies.kind_of(func_name(job)))
-        with request_scope(request_id(job)):
-            self._execute(job, queue)
+        try:
+            with request_scope(request_id(job)):
+                self._execute(job, queue)
+        finally:
+            self.free_slot(job, queue)
 
     def _execute(self, job: Job, queue: Queue) -> None:
         try:
@@ -171,26 +177,6 @@ class SealfoldWorker(OutageTolerantWorker):
                 self.in_process_job = None
             self.set_state(WorkerStatus.IDLE)
         self.enqueue_ready_dependents()
-
-    def enqueue_ready_dependents(self, attempts: int = 4) -> None:
-        """Enqueue the jobs RQ left in the ready registries of this worker's queues.
-
-        When a job's last dependency finishes, RQ 3 moves it to a ready registry and enqueues it
-        at once -- under WATCH, so when two of its dependencies finish at the same moment on two
-        workers, each enqueue attempt can be invalidated by the other and the job waits for the
-        next registry clean-up, up to ``MAINTENANCE_INTERVAL`` later. Fold jobs of a small table
-        finish within milliseconds of each other, which made that wait common (1 submission in 30
-        on breast cancer, two workers), so every worker drains these registries after each job,
-        retrying a contended one a few times.
-        """
-        for queue in self.queues:
-            registry = queue.ready_job_registry
-            for attempt in range(attempts):
-                if not self.connection.zcard(registry.key):
-                    break
-                if attempt:
-                    time.sleep(random.uniform(0.001, 0.005) * attempt)  # step out of the other's way
-                registry.cleanup()
 
     @contextmanager
     def heartbeats_while(self, job: Job, execution: Execution) -> Iterator[None]:
@@ -253,7 +239,7 @@ def limit_threads() -> None:
 def build_worker(
     settings: Settings, redis: Redis[Any], name: str | None = None, *, checker: bool = False
 ) -> SealfoldWorker:
-    """Return a worker on the check queue (served first) and the work queue; a checker serves checks only."""
+    """Return a worker on the check queue (served first) and the work queues in turn; a checker serves checks only."""
     queues = [settings.check_queue_name] if checker else [settings.check_queue_name, settings.queue_name]
     worker = SealfoldWorker(
         queues,
@@ -268,6 +254,7 @@ def build_worker(
         worker_ttl=MAINTENANCE_INTERVAL + 15,
     )
     worker.settings = settings
+    worker.fair = not checker
     return worker
 
 

@@ -21,15 +21,13 @@ from typing import Any
 
 import pytest
 from redis import Redis
-from rq import Queue
-from rq.serializers import JSONSerializer
 from sqlalchemy import func, select
 
 from service.app import create_app
 from service.records.keys import create_key
 from service.records.tables import submissions as submissions_table
 from service.settings import Settings
-from service.submission import dispatch
+from service.submission import dispatch, team_queues
 from tests.support.api import submission_body
 from tests.support.datasets import csv_bytes, diabetes_frame
 from tests.support.records import upgraded_engine
@@ -121,8 +119,8 @@ def test_fifty_identical_posts_make_one_submission_and_one_chain(served: Served,
     with served.engine.connect() as conn:
         assert conn.execute(select(func.count()).select_from(submissions_table)).scalar_one() == 1
     # One chain of jobs, hence one holdout job and at most one holdout query to spend budget on.
-    queue = Queue(served.settings.queue_name, connection=Redis.from_url(redis_url), serializer=JSONSerializer)
-    job_ids = set(queue.job_ids) | set(queue.deferred_job_registry.get_job_ids())
+    queues = team_queues.work_queues(Redis.from_url(redis_url), served.settings)
+    job_ids = {j for queue in queues for j in [*queue.job_ids, *queue.deferred_job_registry.get_job_ids()]}
     (sub_id,) = ids
     assert {j.split("-")[0] for j in job_ids} == {sub_id}
     assert sum(1 for j in job_ids if j.endswith("-holdout")) == 1

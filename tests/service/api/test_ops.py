@@ -10,6 +10,7 @@ from prometheus_client.parser import text_string_to_metric_families
 from redis import Redis
 
 from service.ops.data_identity import marker_path
+from service.submission import team_queues
 from tests.support.servers import register_worker
 
 if TYPE_CHECKING:
@@ -95,6 +96,21 @@ def test_metrics_are_prometheus_text(api: Api) -> None:
     for name in ("sealfold_queue_jobs", "sealfold_workers_alive", "sealfold_jobs", "sealfold_holdout_queries",
                  "sealfold_submission_duration_seconds", "sealfold_fold_duration_seconds"):
         assert name in families, name
+
+
+def test_queue_metrics_total_every_teams_queue_and_name_no_team(api: Api) -> None:
+    ctx = api.app.extensions["sealfold"]
+    fleet = team_queues.team_queue(ctx.redis, ctx.settings, "fleet")
+    rivals = team_queues.team_queue(ctx.redis, ctx.settings, "rivals")
+    for queue, count in ((fleet, 2), (rivals, 1)):
+        for i in range(count):
+            queue.enqueue_call("worker.jobs.summarize", args=(f"sub_{i}",))
+    families = _families(api.get(None, "/metrics").get_data(as_text=True))
+    assert _value(families, "sealfold_queue_jobs", "sealfold_queue_jobs", queue=ctx.settings.queue_name,
+                  state="queued") == 3
+    # One series per queue kind: a team's queue (hence its load) is never a label other teams could read.
+    assert {s.labels["queue"] for s in families["sealfold_queue_jobs"].samples} == {
+        ctx.settings.queue_name, ctx.settings.check_queue_name}
 
 
 def test_metrics_can_be_restricted_to_operators(api: Api) -> None:

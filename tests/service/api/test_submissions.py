@@ -7,14 +7,13 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 import pytest
-from rq import Queue
 from rq.job import Job
 from rq.serializers import JSONSerializer
 from sklearn.model_selection import KFold
 
 from service.api.submission_schemas import SubmissionSchema
 from service.records import holdout_releases, submissions
-from service.submission import dispatch
+from service.submission import dispatch, team_queues
 from service.submission.resolved import ResolvedConfig
 from service.vault.folds import FoldPlan
 from service.vault.store import load_development_frame
@@ -46,8 +45,7 @@ def test_submit_answers_202_with_location_and_the_document(
     assert SubmissionSchema().validate(doc) == {}
     # The worker was asked about the normalised configuration, not the raw body.
     assert worker_says_ok[0]["model"]["estimator"] == "Ridge" and worker_says_ok[0]["metrics"] == ["rmse", "r2"]
-    queue = Queue(api.settings.queue_name, connection=api.app.extensions["sealfold"].redis,
-                  serializer=JSONSerializer)
+    queue = team_queues.team_queue(api.app.extensions["sealfold"].redis, api.settings, "fleet")  # the submitter's
     # The holdout job first (it needs nothing from the folds and is the longest job), then the
     # folds; the summary and the verdict wait (deferred) for what they read.
     assert queue.job_ids == [dispatch.holdout_job_id(doc["id"]),

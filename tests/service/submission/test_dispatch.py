@@ -25,7 +25,7 @@ from service.records import champion_folds, champions, submissions
 from service.records.engine import utcnow
 from service.records.tables import submissions as submissions_table
 from service.settings import Settings
-from service.submission import dispatch
+from service.submission import dispatch, team_queues
 from service.submission.resolved import ValidationPlan
 from service.vocabulary import LIVE_STATES
 from tests.support.frames import diabetes_frame
@@ -76,8 +76,9 @@ def store_summary(engine: Engine, sub_id: str) -> None:
     submissions.store_summary(engine, sub_id, {"summary": {"rmse": {"mean": 55.0}}})
 
 
-def queue_of(redis: Redis, settings: Settings) -> Queue:
-    return Queue(settings.queue_name, connection=redis, serializer=JSONSerializer)
+def queue_of(redis: Redis, settings: Settings, team: str = "fleet") -> Queue:
+    """The work queue of ``team`` (the datasets' team here: add_dataset_row's default)."""
+    return team_queues.team_queue(redis, settings, team)
 
 
 def job(redis: Redis, job_id: str) -> Job:
@@ -118,7 +119,7 @@ def test_the_reconciled_chain_is_the_chain_a_new_submission_gets(
     chain = {i: waits_for(redis, i) for i in (f"{sub}-summary", f"{sub}-verdict")}
     fresh = dataclasses.replace(settings, queue_name=settings.queue_name + "-fresh")
     # A fresh enqueue rewrites the same job ids.
-    dispatch.enqueue_submission(redis, fresh, sub, ValidationPlan("kfold", folds=4, seed=0))
+    dispatch.enqueue_submission(redis, fresh, "fleet", sub, ValidationPlan("kfold", folds=4, seed=0))
     assert queue_of(redis, fresh).get_job_ids() == reconciled and len(reconciled) == 5
     assert {i: waits_for(redis, i) for i in chain} == chain
 
@@ -167,7 +168,7 @@ def test_jobs_redis_still_holds_are_left_alone(
     records: Engine, redis: Redis, settings: Settings, dataset: dict[str, Any]
 ) -> None:
     sub = lost_submission(records, dataset, folds=3)
-    dispatch.enqueue_submission(redis, settings, sub, ValidationPlan("kfold", folds=3, seed=0))
+    dispatch.enqueue_submission(redis, settings, "fleet", sub, ValidationPlan("kfold", folds=3, seed=0))
     queue = queue_of(redis, settings)
     before = queue.get_job_ids()
     assert dispatch.reconcile(records, redis, settings) == 0
@@ -179,7 +180,7 @@ def test_a_job_taken_by_a_worker_that_died_before_starting_it_is_put_back(
     records: Engine, redis: Redis, settings: Settings, dataset: dict[str, Any]
 ) -> None:
     sub = lost_submission(records, dataset, folds=3)
-    dispatch.enqueue_submission(redis, settings, sub, ValidationPlan("kfold", folds=3, seed=0))
+    dispatch.enqueue_submission(redis, settings, "fleet", sub, ValidationPlan("kfold", folds=3, seed=0))
     queue = queue_of(redis, settings)
     # Taken off the queue, never started: the job hash still says "queued", but no list holds it.
     redis.lrem(queue.key, 0, f"{sub}-fold-0-1")
@@ -290,7 +291,7 @@ def test_a_champion_on_another_plan_is_scored_on_this_plan_and_the_verdict_waits
     validation = ValidationPlan("kfold", folds=3, seed=0)
     assert dispatch.champion_to_replay(records, dataset["id"], validation) == champion
     assert dispatch.champion_to_replay(records, dataset["id"], ValidationPlan("kfold", folds=5, seed=0)) is None
-    dispatch.enqueue_submission(redis, settings, sub, validation, champion)
+    dispatch.enqueue_submission(redis, settings, "fleet", sub, validation, champion)
     replay = {f"{sub}-champion-0-{f}" for f in range(3)}
     assert replay <= set(queue_of(redis, settings).get_job_ids())
     assert waits_for(redis, f"{sub}-verdict") == {f"{sub}-summary", f"{sub}-holdout", *replay}

@@ -11,7 +11,6 @@ from typing import Any
 
 import pytest
 from redis import Redis
-from rq import Queue
 from rq.job import Job, JobStatus
 from rq.serializers import JSONSerializer
 from sklearn.svm import SVC
@@ -24,7 +23,7 @@ from service.records.keys import KeyInfo, create_key
 from service.records.tables import audit_events
 from service.records.tables import submissions as submissions_table
 from service.settings import Settings
-from service.submission import dispatch, intake
+from service.submission import dispatch, intake, team_queues
 from service.submission.config import DatasetRef, ModelSpec, SubmissionRequest, ValidationSpec
 from service.vault.fingerprint import fingerprint_frame
 from service.vocabulary import LIVE_STATES
@@ -68,7 +67,8 @@ def ridge(dataset: dict[str, Any], alpha: float = 1.0, **options: Any) -> Submis
 
 
 def queued_ids(redis: Redis, settings: Settings) -> list[str]:
-    return Queue(settings.queue_name, connection=redis, serializer=JSONSerializer).get_job_ids()
+    """Every queued job id, over every work queue (each team's, and the base queue)."""
+    return [i for queue in team_queues.work_queues(redis, settings) for i in queue.get_job_ids()]
 
 
 def count_submissions(engine: Engine) -> int:

@@ -21,9 +21,10 @@ from sklearn.model_selection import KFold
 
 from service.records import submissions
 from tests.support.worker_records import add_dataset, add_submission, config_document
+from worker.jobs.failure import classify
 from worker.jobs.runtime import WorkerContext
 from worker.process import fold_process
-from worker.process.fold_process import FoldFailed, FoldProcess, FoldProcessDied
+from worker.process.fold_process import FoldFailed, FoldProcess, FoldProcessDied, FoldProcessKilled
 
 ROOT = Path(__file__).resolve().parents[3]
 
@@ -98,13 +99,52 @@ def test_a_child_killed_mid_fold_fails_that_job_and_the_next_job_gets_a_new_chil
     sub_id, _dev = diabetes
     monkeypatch.setattr(fold_process, "run_fold", _slow_fold)  # what the child will run
     child = _start(process)
+    # A SIGKILL from outside the worker, as the kernel's OOM killer sends: a memory failure, not a crash.
     threading.Timer(0.3, os.kill, (child, signal.SIGKILL)).start()
-    with pytest.raises(FoldProcessDied, match="killed by SIGKILL"):
+    with pytest.raises(FoldProcessKilled, match=r"killed by the operating system \(SIGKILL\), most likely out of"):
         process.run_fold(sub_id, 0, 0)
     assert process.pid is None and _gone(child)
     monkeypatch.undo()
     assert process.run_fold(sub_id, 0, 0)["status"] == "ok"
     assert process.pid not in (None, child)
+
+
+def _killed_by_the_system(*_args: Any) -> dict[str, Any]:
+    os.kill(os.getpid(), signal.SIGKILL)  # what the OOM killer does to the process using the most memory
+    return {}
+
+
+def test_a_fold_process_killed_by_the_system_is_a_memory_failure_naming_the_likely_cause(
+    process: FoldProcess, diabetes: tuple[str, Any], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    sub_id, _dev = diabetes
+    monkeypatch.setattr(fold_process, "run_fold", _killed_by_the_system)  # what the child will run
+    _start(process)
+    with pytest.raises(FoldProcessKilled) as killed:
+        process.run_fold(sub_id, 0, 0)
+    loss = classify(killed.value, "fold 0 of repeat 0", timeout_seconds=3600, memory_limit_mib=4096)
+    # Retried (the host may have been short for a moment); the last attempt's loss names memory, not a crash.
+    assert (loss.cause, loss.retry) == ("memory_limit", True)
+    assert loss.detail == ("fold 0 of repeat 0: the fold process was killed by the operating system (SIGKILL), "
+                           "most likely out of memory; it was under its memory limit of 4096 MiB, so the host ran "
+                           "out first")
+    assert classify(killed.value, "fold 0 of repeat 0", 3600, 0).detail.endswith("most likely out of memory")
+
+
+def test_a_fold_process_this_worker_kills_is_not_taken_for_the_system(
+    process: FoldProcess, diabetes: tuple[str, Any], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """RQ's stop command kills the fold process through FoldProcess.kill: a stopped job, not a memory failure."""
+    sub_id, _dev = diabetes
+    monkeypatch.setattr(fold_process, "run_fold", _slow_fold)
+    _start(process)
+    threading.Timer(0.3, process.kill).start()
+    with pytest.raises(FoldProcessDied, match="killed by SIGKILL") as died:
+        process.run_fold(sub_id, 0, 0)
+    assert not isinstance(died.value, FoldProcessKilled)
+    assert classify(died.value, "fold 0 of repeat 0", 3600, 4096).cause == "crash"
+    monkeypatch.undo()
+    assert process.run_fold(sub_id, 0, 0)["status"] == "ok"  # the next job runs with no kill pending
 
 
 def test_a_child_that_died_while_idle_is_replaced_before_the_next_job(
