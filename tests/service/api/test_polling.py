@@ -42,7 +42,7 @@ def _fold(api: Api, sub_id: str, fold: int) -> None:
 
 
 def _fold_row_only(api: Api, sub_id: str, fold: int) -> None:
-    # The moment inside record_fold between storing the fold row and touching the submission row.
+    # A fold row stored without touching the submission row: its count alone must move the ETag.
     with api.engine.begin() as conn:
         conn.execute(fold_results.insert().values(
             submission_id=sub_id, repeat=0, fold=fold, status="ok", train_rows=282, test_rows=71,
@@ -58,7 +58,7 @@ def _lifecycle(api: Api, sub_id: str, dataset_id: str) -> list[tuple[str, Callab
     steps: list[tuple[str, Callable[[], object]]] = [
         ("running", lambda: submissions.mark_running(api.engine, sub_id)),
         *((f"fold {f}", lambda f=f: _fold(api, sub_id, f)) for f in range(4)),
-        ("a fold row before the submission row is touched", lambda: _fold_row_only(api, sub_id, 4)),
+        ("a fold row alone", lambda: _fold_row_only(api, sub_id, 4)),
         ("summary", lambda: submissions.store_summary(api.engine, sub_id, summary)),
         # The raw holdout score is stored but not shown: the document does not change.
         ("holdout scored", lambda: submissions.store_holdout_once(api.engine, sub_id, {"rmse": 56.5123}, "h" * 64,
