@@ -10,12 +10,14 @@ the production settings (``polling.py``) and polled by 4 client processes.
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import sys
 import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
 from burst import BurstResult, register_diabetes, report_burst, run_burst
+from cpu_time import by_role, difference
 from polling import PollingResult, bench_polling, report_polling, start_gunicorn
 
 from service.cli import embedded, supervisor
@@ -59,7 +61,12 @@ def run_team_ci(burst_size: int, poll_seconds: float, worker_counts: tuple[int, 
                 submitter = ServiceClient(stack.base_url, submitter_token, timeout=120)
                 dataset_id = register_diabetes(steward, import_root, f"diabetes for {workers} worker(s)")
                 if burst_size:
+                    roles = {"API": [stack.api.pid], "checker": [stack.checker.pid] if stack.checker else [],
+                             "workers (and their holdout horses)": [w.pid for w in stack.workers],
+                             "redis": [stack.redis.pid] if stack.redis else []}
+                    before = by_role(roles)
                     burst = run_burst(submitter, dataset_id, workers, burst_size)
+                    burst = dataclasses.replace(burst, cpu_seconds=difference(by_role(roles), before))
                     print(f"  {workers} worker(s): {burst.per_minute:.0f} submissions/min", flush=True)
                     result.bursts.append(burst)
                 if index == 0 and poll_seconds > 0:
