@@ -14,7 +14,10 @@ what its job added beyond where the process started:
   last few milliseconds.
 
 A forked child's resident size counts the pages it shares with its worker, so its baseline does too;
-the growth is what the job made resident on top.
+the growth is what the job made resident on top. That includes the pages of the development rows'
+memory-mapped file the job touched (file-backed page cache, shared with every process reading the
+file and dropped first under memory pressure), so the private part is reported too: the largest
+RssAnon sampled beyond the one at the baseline (sampled, so a peak between samples can escape it).
 """
 
 from __future__ import annotations
@@ -58,11 +61,17 @@ def reset_peak(pid: int) -> bool:
 class ChildPeak:
     kind: str  # "fold process" (alive when watching started) or "forked during the run"
     baseline_kib: int
+    baseline_anon_kib: int
     peak_kib: int = 0
+    peak_anon_kib: int = 0
 
     @property
     def growth_kib(self) -> int:
         return max(0, self.peak_kib - self.baseline_kib)
+
+    @property
+    def anon_growth_kib(self) -> int:
+        return max(0, self.peak_anon_kib - self.baseline_anon_kib)
 
 
 @dataclass
@@ -87,6 +96,10 @@ class PeakMemory:
         """The largest growth beyond baseline among children of ``kind``, over every watch."""
         return max((c.growth_kib for c in self._all() if c.kind == kind), default=0)
 
+    def anon_growth_kib(self, kind: str) -> int:
+        """The largest private (RssAnon) growth beyond baseline among children of ``kind``."""
+        return max((c.anon_growth_kib for c in self._all() if c.kind == kind), default=0)
+
     def count(self, kind: str) -> int:
         return sum(1 for c in self._all() if c.kind == kind)
 
@@ -96,7 +109,8 @@ class PeakMemory:
         for pid in self.worker_pids:
             for child in children(pid):
                 if reset_peak(child):
-                    self.child_peaks[child] = ChildPeak("fold process", status_kib(child, "VmRSS") or 0)
+                    self.child_peaks[child] = ChildPeak("fold process", status_kib(child, "VmRSS") or 0,
+                                                        status_kib(child, "RssAnon") or 0)
 
     def _sample(self) -> None:
         for pid in self.worker_pids:
@@ -105,8 +119,10 @@ class PeakMemory:
                 peak = self.child_peaks.get(child)
                 if peak is None:
                     baseline = min(status_kib(pid, "VmRSS") or 0, status_kib(child, "VmRSS") or 0)
-                    peak = self.child_peaks[child] = ChildPeak("forked during the run", baseline)
+                    anon = min(status_kib(pid, "RssAnon") or 0, status_kib(child, "RssAnon") or 0)
+                    peak = self.child_peaks[child] = ChildPeak("forked during the run", baseline, anon)
                 peak.peak_kib = max(peak.peak_kib, status_kib(child, "VmHWM") or 0)
+                peak.peak_anon_kib = max(peak.peak_anon_kib, status_kib(child, "RssAnon") or 0)
 
     def _loop(self) -> None:
         while not self._stop.is_set():
