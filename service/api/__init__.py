@@ -21,6 +21,7 @@ from service.settings import Settings
 
 if TYPE_CHECKING:
     from service.api.telemetry import HttpMetrics
+    from service.submission.recent_documents import RecentDocuments
     from service.verified_keys import VerifiedKeys
 
 __all__ = ["EXTENSION_KEY", "SealfoldApi", "SealfoldBlueprint", "ServiceContext", "json_response",
@@ -38,6 +39,7 @@ class ServiceContext:
     redis: Redis[bytes]
     http_metrics: HttpMetrics
     verified_keys: VerifiedKeys
+    recent_documents: RecentDocuments
 
 
 def service_context(app: Flask | None = None) -> ServiceContext:

@@ -13,7 +13,7 @@ import json
 from datetime import datetime
 from typing import Any
 
-from flask import Response, request
+from flask import Response, current_app, request
 from flask.views import MethodView
 from marshmallow import EXCLUDE, Schema, fields, validate
 
@@ -153,13 +153,16 @@ class SubmissionItem(MethodView):
         part, the verdict) gives it a new ETag.
         """
         ctx, caller = service_context(), current_key()
-        if request.if_none_match:  # a poller: tell "unchanged" from one query, without the document
-            version = team_scope.team_submission_version(ctx.engine, caller, sub_id)
-            etag = version_etag(version)
-            if request.if_none_match.contains_weak(etag):
-                return _with_validator(Response(status=304), etag)
-        document, etag = document_and_etag(ctx.engine, team_submission(caller, sub_id))
-        return _with_validator(json_response(document), etag)
+        # One query tells the version: unchanged for a poller (304), or a document this process just built.
+        etag = version_etag(team_scope.team_submission_version(ctx.engine, caller, sub_id))
+        if request.if_none_match.contains_weak(etag):
+            return _with_validator(Response(status=304), etag)
+        body = ctx.recent_documents.get(sub_id, etag)
+        if body is None:
+            document, etag = document_and_etag(ctx.engine, team_submission(caller, sub_id))
+            body = current_app.json.dumps(document) + "\n"
+            ctx.recent_documents.put(sub_id, etag, body)
+        return _with_validator(Response(body, mimetype="application/json"), etag)
 
     @blp.requires("submitter")
     @blp.response(200, SubmissionSchema, description="Canceled")

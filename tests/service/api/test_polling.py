@@ -15,6 +15,8 @@ import pytest
 from service.records import holdout_releases, submissions
 from service.records.engine import utcnow
 from service.records.tables import fold_results
+from service.submission.document import submission_document
+from service.submission.recent_documents import RecentDocuments
 from service.vocabulary import LIVE_STATES
 
 if TYPE_CHECKING:
@@ -82,6 +84,9 @@ def test_every_change_gives_a_new_etag_and_a_304_never_hides_one(api: Api, submi
         change()
         polled = _read(api, sub_id, etag)
         current = _read(api, sub_id)
+        # A full answer (perhaps the process's remembered one) is the document as built from the records now.
+        built = submission_document(api.engine, submissions.get(api.engine, sub_id))  # type: ignore[arg-type]
+        assert current.get_json() == built, step
         if current.get_json() == document:
             # Nothing the client can see changed: no body needs sending.
             assert polled.status_code == 304, step
@@ -134,3 +139,13 @@ def test_no_304_for_a_key_of_another_team(api: Api, submitted: dict[str, Any], w
 
 def test_an_unknown_submission_with_if_none_match_is_404(api: Api) -> None:
     api.problem(api.get("submitter", "/v1/submissions/sub_0000", headers={"If-None-Match": "*"}), 404)
+
+
+def test_the_remembered_documents_are_bounded_oldest_first() -> None:
+    recent = RecentDocuments(max_entries=2)
+    recent.put("sub_a", "1", "a1")
+    recent.put("sub_b", "1", "b1")
+    assert recent.get("sub_a", "1") == "a1"  # now the most recent
+    recent.put("sub_c", "1", "c1")
+    assert recent.get("sub_b", "1") is None and recent.get("sub_a", "1") == "a1" and recent.get("sub_c", "1") == "c1"
+    assert recent.get("sub_a", "2") is None  # another version of a remembered submission is not it
