@@ -32,7 +32,11 @@ The service's time includes what ``cross_validate`` does not do: the configurati
 POST answers, the baseline scored on every fold, the refit on all development rows and the
 one-time holdout score. That is the honest comparison: what a team waits for either way.
 
-Run with ``make bench`` (``make bench ARGS="--rows 1000 --runs 5"`` for a quick one).
+Then, unless ``--burst 0 --poll-seconds 0``, what a team's CI sees (``team_ci.py``): a burst of 100
+small submissions on 2 workers and on 1, and the API under gunicorn answering 4 polling clients.
+
+Run with ``make bench`` (``make bench ARGS="--rows 1000 --runs 5 --burst 20 --poll-seconds 2"`` for a
+quick one).
 """
 
 from __future__ import annotations
@@ -41,20 +45,19 @@ import argparse
 import statistics
 import sys
 import tempfile
-import threading
 import time
-from collections.abc import Iterator
-from contextlib import contextmanager
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
+from peak_memory import PeakMemory
 from sklearn.dummy import DummyRegressor
 from sklearn.linear_model import Ridge
 from sklearn.model_selection import cross_validate
+from team_ci import run_team_ci
 
 from service.cli import embedded, supervisor
 from service.cli.client import ServiceClient
@@ -99,61 +102,6 @@ def warm_memory() -> None:
     """Write and free WARM_BYTES, so the next allocations of any process find memory already backed."""
     block = np.ones(WARM_BYTES // 8)
     del block
-
-
-# --- peak memory of the workers ----------------------------------------------------------------------
-
-
-def _status_kib(pid: int, field_name: str) -> int | None:
-    try:
-        for line in Path(f"/proc/{pid}/status").read_text().splitlines():
-            if line.startswith(field_name + ":"):
-                return int(line.split()[1])
-    except (OSError, ValueError):
-        return None
-    return None
-
-
-def _children(pid: int) -> list[int]:
-    try:
-        return [int(p) for p in Path(f"/proc/{pid}/task/{pid}/children").read_text().split()]
-    except OSError:
-        return []
-
-
-@dataclass
-class PeakMemory:
-    """Highest VmHWM seen among worker processes and, separately, among their forked children."""
-
-    worker_pids: list[int]
-    interval: float = 0.02
-    worker_kib: int = 0
-    horse_kib: int = 0
-    horses_seen: set[int] = field(default_factory=set)
-    _stop: threading.Event = field(default_factory=threading.Event)
-
-    def _sample(self) -> None:
-        for pid in self.worker_pids:
-            self.worker_kib = max(self.worker_kib, _status_kib(pid, "VmHWM") or 0)
-            for child in _children(pid):
-                self.horses_seen.add(child)
-                self.horse_kib = max(self.horse_kib, _status_kib(child, "VmHWM") or 0)
-
-    def _loop(self) -> None:
-        while not self._stop.is_set():
-            self._sample()
-            time.sleep(self.interval)
-
-    @contextmanager
-    def watching(self) -> Iterator[PeakMemory]:
-        thread = threading.Thread(target=self._loop, daemon=True)
-        thread.start()
-        try:
-            yield self
-        finally:
-            self._stop.set()
-            thread.join()
-            self._stop.clear()
 
 
 # --- talking to the service --------------------------------------------------------------------------
@@ -343,22 +291,29 @@ def report(results: list[SizeResult]) -> None:
               f"{POLL_SECONDS * 1000:.0f} ms: [{seen}] s); largest fold-score difference from cross_validate "
               f"{r.max_score_gap:.2e}")
         if r.rows <= 1_000:
-            verdict = "meets" if statistics.median(r.service_seconds) < 0.3 else "MISSES"
-            print(f"{'':>16}median {statistics.median(r.service_seconds):.3f} s {verdict} the < 0.3 s target")
+            verdict = "meets" if statistics.median(r.service_seconds) < 0.15 else "MISSES"
+            print(f"{'':>16}median {statistics.median(r.service_seconds):.3f} s {verdict} the < 0.15 s target")
         if r.rows >= 1_000_000:
             best = min(statistics.median(r.cv_seconds[1]), statistics.median(r.cv_seconds[2]))
             ratio = statistics.median(r.service_seconds) / best
-            verdict = "meets" if ratio <= 1.0 else "MISSES"
-            print(f"{'':>16}{ratio:.2f}x the faster cross_validate: {verdict} the <= 1.0x target")
+            verdict = "meets" if ratio <= 0.8 else "MISSES"
+            print(f"{'':>16}{ratio:.2f}x the faster cross_validate: {verdict} the <= 0.8x target")
             same = statistics.median(r.same_work_seconds)
             print(f"{'':>16}the same work by hand (cross_validate with training scores + the Dummy baseline on "
                   f"the folds + a refit on every development row) {same:.3f} s: service "
                   f"{statistics.median(r.service_seconds) / same:.2f}x that")
         if r.peak is not None:
+            data_kib = r.dev_rows * (N_FEATURES + 1) * 8 // 1024  # the float64 features and target a fold reads
             print(f"{'':>16}peak RSS (VmHWM, sampled every {r.peak.interval * 1000:.0f} ms): worker main "
-                  f"{_mib(r.peak.worker_kib)}, forked children (fold processes, holdout horses) "
-                  f"{_mib(r.peak.horse_kib)} "
-                  f"({len(r.peak.horses_seen)} seen; shared pages included)")
+                  f"{_mib(r.peak.worker_kib)}, forked children {_mib(r.peak.horse_kib)} (shared pages included)")
+            for kind in ("fold process", "forked during the run"):
+                growth = r.peak.growth_kib(kind)
+                verdict = "meets" if growth <= 2 * data_kib else "MISSES"
+                anon = r.peak.anon_growth_kib(kind)
+                print(f"{'':>16}{kind} ({r.peak.count(kind)} seen): peak beyond its baseline {_mib(growth)} = "
+                      f"{growth / data_kib:.2f}x the {_mib(data_kib)} of development rows it reads; "
+                      f"{verdict} the <= 2x target (private memory alone, sampled: {_mib(anon)} = "
+                      f"{anon / data_kib:.2f}x; the rest is pages of the mapped data file)")
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -367,6 +322,10 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--runs", type=int, default=7, help="POST->succeeded runs for sizes under 100k rows")
     parser.add_argument("--big-runs", type=int, default=3, help="runs for sizes from 100k rows")
     parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--burst", type=int, default=100,
+                        help="submissions per burst of small ones, on 2 workers then 1 (0: no burst)")
+    parser.add_argument("--poll-seconds", type=float, default=5.0,
+                        help="seconds per polling figure, API under gunicorn (0: no polling figures)")
     args = parser.parse_args(argv)
     sizes = [int(s.replace("_", "")) for s in args.rows.split(",")]
 
@@ -391,7 +350,10 @@ def main(argv: list[str] | None = None) -> int:
                 results.append(bench_size(service, frame, import_root, runs, worker_pids,
                                           watch_memory=n >= 100_000))
                 del frame
+    team_ci = run_team_ci(args.burst, args.poll_seconds) if args.burst or args.poll_seconds else None
     report(results)
+    if team_ci is not None:
+        team_ci.report()
     return 0
 
 

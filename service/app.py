@@ -27,7 +27,9 @@ from service.ops import data_identity
 from service.records.engine import make_engine
 from service.records.schema import require_current
 from service.settings import Settings
+from service.submission.recent_documents import RecentDocuments
 from service.vault.spool import sweep_spool
+from service.verified_keys import VerifiedKeys
 from service.web import register_desk
 
 REDIS_CONNECT_TIMEOUT_SECONDS = 5.0
@@ -59,6 +61,8 @@ def create_app(overrides: Mapping[str, Any] | None = None) -> Flask:
         engine=engine,
         redis=Redis.from_url(settings.redis_url, socket_connect_timeout=REDIS_CONNECT_TIMEOUT_SECONDS),
         http_metrics=HttpMetrics(),
+        verified_keys=VerifiedKeys(settings.key_cache_seconds),
+        recent_documents=RecentDocuments(),
     )
     api = SealfoldApi(app)
     register_blueprints(api)

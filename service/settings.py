@@ -38,6 +38,7 @@ _ENV_NAMES: dict[str, str] = {
     "data_source": "SEALFOLD_DATA_SOURCE",
     "api_url": "SEALFOLD_API_URL",
     "worker_secret": "SEALFOLD_WORKER_SECRET",
+    "key_cache_seconds": "SEALFOLD_KEY_CACHE_SECONDS",
 }
 DATA_SOURCES = ("shared", "api")
 
@@ -84,6 +85,9 @@ class Settings:
     # Held by the API and every worker: the internal data endpoint answers only "Bearer <worker_secret>",
     # and is off (404) when the API has none.
     worker_secret: str = ""
+    # How long an API process trusts a key it verified before it reads the key's record again (0: every
+    # request reads it). A key revoked elsewhere stops working in every API process within this bound.
+    key_cache_seconds: float = 2.0
     extra: Mapping[str, Any] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
@@ -116,6 +120,8 @@ class Settings:
                 raise SettingsError(f"data_source 'api' needs {', '.join(missing)} (SEALFOLD_API_URL, "
                                     "SEALFOLD_WORKER_SECRET, DATABASE_URL: the data dir is then a local cache, "
                                     "so the records database cannot live in it)")
+        if not 0 <= self.key_cache_seconds <= 60:
+            raise SettingsError(f"key_cache_seconds must be between 0 and 60, got {self.key_cache_seconds}")
         if self.min_rows < 10:
             raise SettingsError(f"min_rows must be at least 10, got {self.min_rows}")
 

@@ -13,8 +13,9 @@ from typing import Any
 from sqlalchemy import Engine
 
 from service.errors import NotFound, SealfoldError, field_error
-from service.records import datasets, keys, submissions
+from service.records import datasets, keys, submission_versions, submissions
 from service.records.keys import KeyInfo
+from service.records.submission_versions import SubmissionVersion
 
 
 def team_dataset(engine: Engine, caller: KeyInfo, ds_id: str, pointer: str | None = None) -> dict[str, Any]:
@@ -35,6 +36,14 @@ def team_submission(engine: Engine, caller: KeyInfo, sub_id: str, pointer: str |
     if row is None or row["team"] != caller.team:
         raise _absent(f"no submission {sub_id!r} in team {caller.team!r}", pointer)
     return row
+
+
+def team_submission_version(engine: Engine, caller: KeyInfo, sub_id: str) -> SubmissionVersion:
+    """Return what one of the caller's team's submissions' document changes with, else NotFound."""
+    version = submission_versions.get(engine, sub_id)
+    if version is None or version.team != caller.team:
+        raise _absent(f"no submission {sub_id!r} in team {caller.team!r}", None)
+    return version
 
 
 def team_key(engine: Engine, caller: KeyInfo, key_id: str) -> KeyInfo:

@@ -21,6 +21,8 @@ from service.settings import Settings
 
 if TYPE_CHECKING:
     from service.api.telemetry import HttpMetrics
+    from service.submission.recent_documents import RecentDocuments
+    from service.verified_keys import VerifiedKeys
 
 __all__ = ["EXTENSION_KEY", "SealfoldApi", "SealfoldBlueprint", "ServiceContext", "json_response",
            "register_blueprints", "service_context"]
@@ -36,6 +38,8 @@ class ServiceContext:
     engine: Engine
     redis: Redis[bytes]
     http_metrics: HttpMetrics
+    verified_keys: VerifiedKeys
+    recent_documents: RecentDocuments
 
 
 def service_context(app: Flask | None = None) -> ServiceContext:

@@ -14,7 +14,7 @@ from service import team_scope
 from service.api import service_context
 from service.api.problems import InvalidToken
 from service.errors import Forbidden, Unauthenticated
-from service.records import datasets, keys
+from service.records import datasets
 from service.records.keys import KeyInfo
 
 _SCHEME = "bearer"
@@ -32,7 +32,8 @@ def current_key() -> KeyInfo:
     if scheme.lower() != _SCHEME:
         raise Unauthenticated(f"the Authorization header must use the Bearer scheme, got {scheme[:20]!r}")
     token = token.strip()
-    info = keys.authenticate(service_context().engine, token) if token else None
+    ctx = service_context()
+    info = ctx.verified_keys.authenticate(ctx.engine, token) if token else None
     if info is None:
         raise InvalidToken("the bearer key is not valid or has been revoked")
     g.sealfold_key = info

@@ -52,8 +52,10 @@ class KeyItem(MethodView):
     @blp.problem(404, "No such key in the caller's team")
     def delete(self, key_id: str) -> Response:
         """Revoke a key; requests with its token are refused from now on."""
-        caller, engine = current_key(), service_context().engine
+        caller, ctx = current_key(), service_context()
+        engine = ctx.engine
         team_scope.team_key(engine, caller, key_id)
         keys.revoke(engine, key_id)
+        ctx.verified_keys.forget(key_id)  # other API processes forget it within key_cache_seconds
         audit.record(engine, caller.id, caller.team, "key.revoked", key_id, {})
         return Response(status=204)

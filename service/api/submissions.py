@@ -9,12 +9,11 @@ from __future__ import annotations
 
 import base64
 import binascii
-import hashlib
 import json
 from datetime import datetime
 from typing import Any
 
-from flask import Response, request
+from flask import Response, current_app, request
 from flask.views import MethodView
 from marshmallow import EXCLUDE, Schema, fields, validate
 
@@ -34,7 +33,7 @@ from service.records import submissions
 from service.records.engine import as_utc, iso
 from service.submission import intake
 from service.submission.config import SubmissionRequest
-from service.submission.document import submission_document
+from service.submission.document import document_and_etag, submission_document, version_etag
 from service.submission.resolved import ValidationPlan
 from service.submission.resubmission import resubmission_note
 from service.vault.folds import fold_splits, split_keys_from_frame
@@ -78,10 +77,15 @@ def decode_cursor(cursor: str) -> tuple[datetime, str]:
     return stamp, sub_id
 
 
-def document_etag(document: dict[str, Any]) -> str:
-    """A strong validator: the SHA-256 of the document's canonical JSON."""
-    canonical = json.dumps(document, sort_keys=True, separators=(",", ":"), default=str)
-    return hashlib.sha256(canonical.encode("utf-8")).hexdigest()
+_VALIDATOR_HEADERS = {"ETag": {"description": "a strong validator of the document; send it back in If-None-Match",
+                               "schema": {"type": "string"}},
+                      "Cache-Control": {"schema": {"type": "string"}}}
+
+
+def _with_validator(response: Response, etag: str) -> Response:
+    response.set_etag(etag)
+    response.headers["Cache-Control"] = "private, no-cache"  # a cache may keep it, but must ask again first
+    return response
 
 
 @blp.route("")
@@ -135,19 +139,30 @@ class SubmissionCollection(MethodView):
 class SubmissionItem(MethodView):
     @blp.requires("submitter")
     @blp.doc(parameters=[{"in": "header", "name": "If-None-Match", "required": False,
+                          "description": "the ETag of the document last read: 304 when it has not changed",
                           "schema": {"type": "string"}}])
-    @blp.response(200, SubmissionSchema, headers={"ETag": {"schema": {"type": "string"}}})
-    @blp.alt_response(304, description="Not modified since the ETag sent in If-None-Match")
+    @blp.response(200, SubmissionSchema, headers=_VALIDATOR_HEADERS)
+    @blp.alt_response(304, description="Not modified since the ETag sent in If-None-Match: no body, the same ETag",
+                      headers=_VALIDATOR_HEADERS)
     @blp.problem(404, "No such submission in the caller's team")
     def get(self, sub_id: str) -> Response:
-        """Read a submission: state, progress and, once computed, its result."""
-        ctx = service_context()
-        document = submission_document(ctx.engine, team_submission(current_key(), sub_id))
-        response = json_response(document)
-        response.set_etag(document_etag(document))
-        response.headers["Cache-Control"] = "private, no-cache"
-        response.make_conditional(request)  # turns the answer into a 304 when If-None-Match matches
-        return response
+        """Read a submission: state, progress and, once computed, its result.
+
+        Poll with the ETag of the last answer in ``If-None-Match``: an unchanged submission is answered
+        304 without a body, and every change to the document (state, a fold, the summary, the holdout
+        part, the verdict) gives it a new ETag.
+        """
+        ctx, caller = service_context(), current_key()
+        # One query tells the version: unchanged for a poller (304), or a document this process just built.
+        etag = version_etag(team_scope.team_submission_version(ctx.engine, caller, sub_id))
+        if request.if_none_match.contains_weak(etag):
+            return _with_validator(Response(status=304), etag)
+        body = ctx.recent_documents.get(sub_id, etag)
+        if body is None:
+            document, etag = document_and_etag(ctx.engine, team_submission(caller, sub_id))
+            body = current_app.json.dumps(document) + "\n"
+            ctx.recent_documents.put(sub_id, etag, body)
+        return _with_validator(Response(body, mimetype="application/json"), etag)
 
     @blp.requires("submitter")
     @blp.response(200, SubmissionSchema, description="Canceled")

@@ -172,12 +172,11 @@ def record_fold(engine: Engine, sub_id: str, repeat: int, fold: int, **fields: A
     """
     values = {"submission_id": sub_id, "repeat": repeat, "fold": fold, "finished_at": utcnow(), **fields}
     try:
-        with engine.begin() as conn:
+        with engine.begin() as conn:  # one write transaction per fold: the row and the submission's version
             conn.execute(fold_results.insert().values(**values))
+            conn.execute(update(submissions).where(submissions.c.id == sub_id).values(updated_at=utcnow()))
     except IntegrityError:
         return False
-    with engine.begin() as conn:
-        conn.execute(update(submissions).where(submissions.c.id == sub_id).values(updated_at=utcnow()))
     return True
 
 

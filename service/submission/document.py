@@ -3,23 +3,62 @@
 One place builds it, from the records alone: the submission row, its fold rows, its stored summary,
 its holdout release and its verdict. The holdout part is what the release policy let out -- never
 the raw score, rows, ids or predictions.
+
+Its ETag is derived from what it is built from (``records.submission_versions``), not from the built
+document, so a client polling with ``If-None-Match`` is answered after one query. The same function
+gives the ETag of a built document (from the reads that built it) and of an unbuilt one (from the
+version query), so the two always agree; the release enters only as the holdout part the document
+shows, never the release mechanism's private state.
 """
 
 from __future__ import annotations
 
+import hashlib
+import json
+from datetime import datetime
 from typing import Any
 
 from sqlalchemy import Engine
 
 from service.gate.review_state import holdout_part
 from service.records import holdout_releases, submissions
-from service.records.engine import iso
+from service.records.engine import as_utc, iso
+from service.records.submission_versions import SubmissionVersion
+
+# Part of every ETag: a release that changes how documents are built changes it, so no client keeps
+# a document of the old shape on a 304.
+DOCUMENT_FORMAT = 1
 
 
 def submission_document(engine: Engine, row: dict[str, Any]) -> dict[str, Any]:
     """Return the document for one submission row."""
+    return document_and_etag(engine, row)[0]
+
+
+def document_and_etag(engine: Engine, row: dict[str, Any]) -> tuple[dict[str, Any], str]:
+    """Return the document for one submission row and its ETag (unquoted)."""
     folds = submissions.fold_rows(engine, row["id"])
     release = holdout_releases.get(engine, row["id"])
+    etag = _etag(row["id"], row["state"], row["updated_at"], len(folds), row.get("policy_version"), release)
+    return _compose(row, folds, release), etag
+
+
+def version_etag(version: SubmissionVersion) -> str:
+    """Return the ETag (unquoted) of the document this version would build, without building it."""
+    return _etag(version.id, version.state, version.updated_at, version.folds_done, version.policy_version,
+                 version.release)
+
+
+def _etag(sub_id: str, state: str, updated_at: datetime, folds_done: int, policy_version: int | None,
+          release: dict[str, Any] | None) -> str:
+    stamp = as_utc(updated_at)
+    parts = [DOCUMENT_FORMAT, sub_id, state, None if stamp is None else stamp.isoformat(), folds_done,
+             holdout_part(release, state, policy_version)]
+    canonical = json.dumps(parts, sort_keys=True, separators=(",", ":"), default=str)
+    return hashlib.sha256(canonical.encode("utf-8")).hexdigest()
+
+
+def _compose(row: dict[str, Any], folds: list[dict[str, Any]], release: dict[str, Any] | None) -> dict[str, Any]:
     config = row["config"]
     return {
         "id": row["id"],

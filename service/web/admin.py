@@ -45,9 +45,11 @@ def key_create(session: DeskSession) -> Response:
 @desk.post("/keys/<key_id>/revoke")
 @signed_in("admin")
 def key_revoke(session: DeskSession, key_id: str) -> Response:
-    engine = service_context().engine
+    ctx = service_context()
+    engine = ctx.engine
     team_scope.team_key(engine, session.key, key_id)
     keys.revoke(engine, key_id)
+    ctx.verified_keys.forget(key_id)  # other API processes forget it within key_cache_seconds
     audit.record(engine, session.key.id, session.key.team, "key.revoked", key_id, {})
     return redirect(url_for("desk.key_list"), 303)
 

@@ -1,0 +1,122 @@
+"""Benchmark: how many ``GET /v1/submissions/{id}`` a deployed API answers per second to polling clients.
+
+The API runs as the production image runs it (docker/Dockerfile: gunicorn with
+``service.api.gunicorn_conf``, 2 workers x 4 threads), beside the embedded stack whose records and
+Redis it shares. ``CLIENTS`` client processes each hold one keep-alive HTTP/1.1 connection and poll
+one finished submission as fast as they can, for a few seconds:
+
+- ``304``: every request sends the document's current ETag in ``If-None-Match`` (a client that
+  polls and finds nothing new);
+- ``200``: no ``If-None-Match``, so every answer is the full document.
+
+The clients share the machine with the API (2 cores here), so the figure is what the API gives with
+its polling clients beside it; the records are SQLite (the embedded stack's), not PostgreSQL.
+"""
+
+from __future__ import annotations
+
+import http.client
+import multiprocessing
+import sys
+import time
+from collections.abc import Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from urllib.parse import urlsplit
+
+from service.cli import embedded, supervisor
+
+CLIENTS = 4
+# The production API's process model (docker/Dockerfile's CMD): gunicorn's gthread workers keep
+# connections alive, which sync workers would not.
+GUNICORN_ARGS = ("--workers", "2", "--threads", "4", "--timeout", "300")
+
+
+@dataclass(frozen=True)
+class PollingResult:
+    """Requests per second answered to all clients together, by what they asked for."""
+
+    not_modified_per_second: float
+    full_per_second: float
+    document_bytes: int
+
+
+def start_gunicorn(sup: supervisor.Supervisor, env: Mapping[str, str], log_dir: Path) -> str:
+    """Start the API under gunicorn with the production settings; return its base URL once ready."""
+    port = embedded.free_port()
+    sup.start("api-gunicorn", [
+        sys.executable, "-m", "gunicorn", "-c", "python:service.api.gunicorn_conf", "--bind",
+        f"127.0.0.1:{port}", *GUNICORN_ARGS, "service.app:create_app()",
+    ], env, log_dir)
+    base_url = f"http://127.0.0.1:{port}"
+    embedded.wait_for_ready(sup, base_url, 60.0)
+    return base_url
+
+
+def _client(base_url: str, path: str, headers: dict[str, str], expect: int, seconds: float,
+            start: multiprocessing.synchronize.Barrier, counts: multiprocessing.queues.Queue[int]) -> None:
+    url = urlsplit(base_url)
+    conn = http.client.HTTPConnection(url.hostname or "127.0.0.1", url.port, timeout=30)
+    conn.connect()
+    start.wait()
+    done, deadline = 0, time.perf_counter() + seconds
+    while time.perf_counter() < deadline:
+        conn.request("GET", path, headers=headers)
+        reply = conn.getresponse()
+        reply.read()
+        if reply.status != expect:
+            raise SystemExit(f"GET {path} answered {reply.status}, expected {expect}")
+        done += 1
+    conn.close()
+    counts.put(done)
+
+
+def requests_per_second(base_url: str, path: str, headers: dict[str, str], expect: int, seconds: float) -> float:
+    """Run ``CLIENTS`` processes polling ``path`` for ``seconds``; return all their answers per second."""
+    context = multiprocessing.get_context("fork")
+    start = context.Barrier(CLIENTS + 1)
+    counts: multiprocessing.queues.Queue[int] = context.Queue()
+    procs = [context.Process(target=_client, args=(base_url, path, headers, expect, seconds, start, counts))
+             for _ in range(CLIENTS)]
+    for proc in procs:
+        proc.start()
+    start.wait()
+    began = time.perf_counter()
+    total = sum(counts.get(timeout=seconds + 60) for _ in procs)
+    elapsed = time.perf_counter() - began
+    for proc in procs:
+        proc.join()
+        if proc.exitcode != 0:
+            raise SystemExit(f"a polling client ended with exit code {proc.exitcode}")
+    return total / elapsed
+
+
+def bench_polling(base_url: str, token: str, submission_id: str, seconds: float) -> PollingResult:
+    """Measure the 304 and the full-document rates on one submission (which should have finished)."""
+    path = f"/v1/submissions/{submission_id}"
+    auth = {"Authorization": f"Bearer {token}"}
+    url = urlsplit(base_url)
+    conn = http.client.HTTPConnection(url.hostname or "127.0.0.1", url.port, timeout=30)
+    conn.request("GET", path, headers=auth)
+    first = conn.getresponse()
+    body = first.read()
+    etag = first.getheader("ETag")
+    conn.close()
+    if first.status != 200 or not etag:
+        raise SystemExit(f"GET {path} answered {first.status} with ETag {etag!r}")
+    requests_per_second(base_url, path, auth | {"If-None-Match": etag}, 304, 1.0)  # warm every thread
+    not_modified = requests_per_second(base_url, path, auth | {"If-None-Match": etag}, 304, seconds)
+    full = requests_per_second(base_url, path, auth, 200, seconds)
+    return PollingResult(not_modified, full, len(body))
+
+
+def report_polling(result: PollingResult, seconds: float) -> None:
+    print()
+    print(f"Polling GET /v1/submissions/{{id}}: gunicorn {' '.join(GUNICORN_ARGS)}, {CLIENTS} keep-alive client "
+          f"processes on the same machine, {seconds:.0f} s each")
+    verdict_304 = "meets" if result.not_modified_per_second >= 1000 else "MISSES"
+    verdict_200 = "meets" if result.full_per_second >= 400 else "MISSES"
+    print(f"  matching If-None-Match (304): {result.not_modified_per_second:8.0f} req/s  "
+          f"{verdict_304} the >= 1,000 req/s target")
+    print(f"  full document (200, {result.document_bytes:,} bytes): {result.full_per_second:8.0f} req/s  "
+          f"{verdict_200} the >= 400 req/s target")
