@@ -38,7 +38,7 @@ from service.records.engine import make_engine
 from service.records.schema import require_current
 from service.settings import Settings
 from service.submission import dispatch
-from worker.jobs import runtime
+from worker.jobs import holdout, runtime
 from worker.jobs.failure import AVOID_WORKERS, LEFT_COUNT, limit_memory
 from worker.jobs.runtime import repeating
 from worker.process import placement
@@ -91,6 +91,19 @@ class SealfoldWorker(OutageTolerantWorker):
         outcome = "retried" if job.should_retry else "timed_out" if timed_out else "failed"
         job_tallies.record(self.connection, func_name(job), outcome)
         super().handle_job_failure(job, queue, started_job_registry, exc_string, execution)
+
+    def handle_work_horse_killed(self, job: Job, retpid: Any, ret_val: Any, rusage: Any) -> None:
+        """A holdout horse that died (a signal, the OOM killer, a segfault, RQ's kill past the timeout) after
+        opening the seal has spent its attempt: store it as failed before RQ retries or fails the job."""
+        super().handle_work_horse_killed(job, retpid, ret_val, rusage)
+        if func_name(job) != f"{dispatch.JOB_MODULE}.score_holdout" or not job.args:
+            return
+        how = (f"its work horse was killed by signal {os.WTERMSIG(ret_val)}" if ret_val and os.WIFSIGNALED(ret_val)
+               else f"its work horse exited with status {ret_val}")
+        try:
+            holdout.settle_lost(runtime.current(), str(job.args[0]), how)
+        except Exception:  # the next attempt settles it from the stale claim
+            log.exception("could not store the lost holdout attempt of job %s", job.id)
 
     def kill_horse(self, sig: signal.Signals = signal.SIGKILL) -> None:
         """Stop the current job: a horse as RQ does, an in-process fold by killing the fold process.
