@@ -9,7 +9,7 @@ update that only one caller can win hands it to the next job. Both hold on SQLit
 
 from __future__ import annotations
 
-from datetime import timedelta
+from datetime import datetime, timedelta
 
 from sqlalchemy import Engine, delete, select, update
 from sqlalchemy.exc import IntegrityError
@@ -52,21 +52,32 @@ def beat(engine: Engine, sub_id: str, token: str) -> bool:
     return bool(result.rowcount)
 
 
-def open_seal(engine: Engine, sub_id: str, token: str) -> bool:
-    """Mark the attempt held by ``token`` spent, just before its first use of the sealed rows.
+def open_seal(engine: Engine, sub_id: str, token: str, deadline_seconds: float | None = None) -> datetime | None:
+    """Mark the attempt held by ``token`` spent, just before its first use of the sealed rows; return the deadline.
 
-    Return False when another job has taken the claim over (this one stalled past the stale limit): the
-    caller must then not touch the seal.
+    The deadline (``service.gate.timing``) is ``deadline_seconds`` from now, or none. Return None when another
+    job has taken the claim over (this one stalled past the stale limit): the caller must then not touch the
+    seal.
     """
     now = utcnow()
+    deadline = None if deadline_seconds is None else now + timedelta(seconds=deadline_seconds)
     with engine.begin() as conn:
         result = conn.execute(
             update(holdout_claims)
             .where(holdout_claims.c.submission_id == sub_id, holdout_claims.c.token == token,
                    holdout_claims.c.opened_at.is_(None))
-            .values(opened_at=now, heartbeat_at=now)
+            .values(opened_at=now, heartbeat_at=now, deadline_at=deadline)
         )
-    return bool(result.rowcount)
+    return (deadline or now) if result.rowcount else None
+
+
+def deadline(engine: Engine, sub_id: str) -> datetime | None:
+    """The deadline fixed for the sealed step of ``sub_id``, or None (none fixed, or the seal never opened)."""
+    with engine.connect() as conn:
+        value = conn.execute(
+            select(holdout_claims.c.deadline_at).where(holdout_claims.c.submission_id == sub_id)
+        ).scalar_one_or_none()
+    return as_utc(value)
 
 
 def is_spent(engine: Engine, sub_id: str) -> bool:

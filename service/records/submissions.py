@@ -100,14 +100,15 @@ def list_for_team(
 
 def transition(
     engine: Engine, sub_id: str, state: str, from_states: tuple[str, ...], error: str | None = None,
-    *, reopen: bool = False, cause: str | None = None,
+    *, reopen: bool = False, cause: str | None = None, published_at: datetime | None = None,
 ) -> bool:
     """Move a submission to ``state`` if it is in one of ``from_states``; return whether it moved.
 
     ``reopen`` (and every cancel, and a failure the infrastructure caused): give up the configuration key,
     so the same configuration may be submitted again -- for a submission that ended through no fault of its
     own or was canceled before any verdict. ``cause`` names why a failed submission failed
-    (``service.vocabulary.FAILURE_CAUSES``).
+    (``service.vocabulary.FAILURE_CAUSES``). ``published_at``: the moment a verdict that read the holdout may
+    be shown (``service.gate.timing``), which is then also its finished time.
     """
     now = utcnow()
     values: dict[str, Any] = {"state": state, "updated_at": now}
@@ -116,7 +117,9 @@ def transition(
     if state == "running":
         values["started_at"] = now
     if state in TERMINAL_STATES:
-        values["finished_at"] = now
+        values["finished_at"] = now if published_at is None else published_at
+    if published_at is not None:
+        values["published_at"] = published_at
     if error is not None:
         values["error"] = error
     if cause is not None:
@@ -145,14 +148,16 @@ def store_summary(engine: Engine, sub_id: str, cv_summary: dict[str, Any]) -> No
 
 def store_verdict(
     engine: Engine, sub_id: str, verdict: dict[str, Any], policy_version: int | None, champion_id: str | None,
-    *, judged_by: str = "system", holdout_spent: int = 0,
+    *, judged_by: str = "system", holdout_spent: int = 0, at: datetime | None = None,
 ) -> None:
     """Store the verdict of a submission with the policy version and champion it was judged against.
 
     The verdict becomes the submission's current one and is appended to its history (``records.verdicts``)
-    in the same transaction; ``holdout_spent`` is the units of the owner's holdout budget it used.
+    in the same transaction; ``holdout_spent`` is the units of the owner's holdout budget it used. ``at``: the
+    time it is recorded under (a verdict on the holdout: its publication time, ``service.gate.timing``).
     """
     now, verdict = utcnow(), verdicts.finite(verdict)
+    judged_at = now if at is None else at
     with engine.begin() as conn:
         owner = conn.execute(select(submissions.c.dataset_id, submissions.c.owner_key_id)
                              .where(submissions.c.id == sub_id)).one()
@@ -161,7 +166,7 @@ def store_verdict(
         verdicts.add(conn, {
             "submission_id": sub_id, "dataset_id": owner.dataset_id, "owner_key_id": owner.owner_key_id,
             "policy_version": policy_version, "champion_id": champion_id, "verdict": verdict,
-            "judged_by": judged_by, "judged_at": now, "holdout_spent": holdout_spent,
+            "judged_by": judged_by, "judged_at": judged_at, "holdout_spent": holdout_spent,
         })
 
 

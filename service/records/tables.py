@@ -162,6 +162,9 @@ holdout_claims = Table(
     # When the holder opened the sealed rows: from then on the one attempt is spent. An attempt that ends
     # without an outcome after this (a crash, a kill, a bound) is stored as failed, never computed again.
     Column("opened_at", DateTime(timezone=True)),
+    # The moment fixed, before opening them, by which the step on the sealed rows must have stored its outcome
+    # (service.gate.timing); the verdict is shown no earlier.
+    Column("deadline_at", DateTime(timezone=True)),
 )
 
 policies = Table(

@@ -11,15 +11,17 @@ from typing import Any
 
 from sqlalchemy import Engine
 
+from service.gate import timing
 from service.gate.review_state import holdout_part
 from service.records import holdout_releases, submissions
-from service.records.engine import iso
+from service.records.engine import iso, utcnow
 
 
 def submission_document(engine: Engine, row: dict[str, Any]) -> dict[str, Any]:
-    """Return the document for one submission row."""
+    """Return the document for one submission row; a verdict not yet to be shown reads as still running."""
+    row = timing.shown_as(row, utcnow())
     folds = submissions.fold_rows(engine, row["id"])
-    release = holdout_releases.get(engine, row["id"])
+    release = None if row["held_back"] else holdout_releases.get(engine, row["id"])
     config = row["config"]
     return {
         "id": row["id"],

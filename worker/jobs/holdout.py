@@ -29,16 +29,22 @@ Before that point nothing sealed was touched: a crash is retried and a bound nam
 from __future__ import annotations
 
 import logging
+import os
+import signal
+import threading
 import time
 import warnings
-from contextlib import AbstractContextManager
+from collections.abc import Iterator
+from contextlib import AbstractContextManager, contextmanager
 from dataclasses import dataclass
 from datetime import timedelta
 from typing import Any
 
+import numpy as np
 from rq.timeouts import JobTimeoutException
 
 from service.errors import SealBroken
+from service.gate import timing
 from service.ids import new_id
 from service.records import datasets, holdout_claims, submissions
 from service.submission.resolved import ResolvedConfig
@@ -46,6 +52,7 @@ from service.vault import store
 from worker.jobs import runtime
 from worker.jobs.losses import save_per_example, scoring_rows
 from worker.jobs.runtime import Skip, WorkerContext, repeating, submission_to_work_on
+from worker.learning import scoring
 from worker.learning.development import column_kinds, load_development, model_frame, model_matrix, target_values
 from worker.learning.per_row import per_example
 from worker.learning.pipeline import build_pipeline, fit_in_place, uses_frame
@@ -60,11 +67,13 @@ LOST_AFTER_SEAL = "the holdout step ended without an outcome after the sealed ro
 CLAIM_STALE_SECONDS = 60.0
 HEARTBEAT_SECONDS = 10.0
 POLL_SECONDS = 0.5  # how often a job that lost the claim looks for the stored outcome
+STORE_SECONDS = 5.0  # kept of the job's timeout for storing the outcome after the deadline
 
 
 def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
     """Score the holdout once and store the outcome; a failed or canceled submission is left alone."""
     engine = ctx.engine
+    job_started = time.monotonic()
     work = submission_to_work_on(ctx, submission_id)
     if isinstance(work, Skip):
         return work.answer
@@ -88,7 +97,7 @@ def score_holdout(ctx: WorkerContext, submission_id: str) -> dict[str, Any]:
             if isinstance(late, Skip):
                 return late.answer
             time.sleep(POLL_SECONDS)
-    attempt = _Attempt(token)
+    attempt = _Attempt(token, job_started)
     try:
         with _heartbeat(ctx, submission_id, token):
             return _score(ctx, submission_id, sub, dataset, attempt)
@@ -111,6 +120,7 @@ class _Attempt:
     """The claim this job holds, and whether it has opened the sealed rows (the attempt is then spent)."""
 
     token: str
+    started: float  # time.monotonic() when the job began: the job's timeout counts from there
     opened: bool = False
 
 
@@ -170,6 +180,15 @@ def _score(
     except Exception as exc:  # development rows only: the estimator's message may be shown
         error = f"refitting on all development rows failed: {type(exc).__name__}: {exc}"
         return _not_scored(ctx, submission_id, dataset, error)
+    try:  # the sealed step's deadline, fixed from the development rows alone (service.gate.timing)
+        dev_seconds = _dev_predict_seconds(pipeline, data, int(dataset["rows_holdout"]), metrics, classes)
+    except MemoryError:
+        raise
+    except Exception as exc:
+        error = f"predicting development rows failed: {type(exc).__name__}: {exc}"
+        return _not_scored(ctx, submission_id, dataset, error)
+    left = ctx.settings.job_timeout_seconds("holdout") - (time.monotonic() - attempt.started) - STORE_SECONDS
+    deadline = timing.deadline_seconds(dev_seconds, ctx.settings.holdout_pad_seconds, left)
 
     if not holdout_claims.beat(engine, submission_id, attempt.token):
         # This job stalled past the stale limit and another took the claim over: that one scores.
@@ -181,9 +200,20 @@ def _score(
         raise  # worker.jobs.failure fails the submission (cause "data") and stops its other jobs
     # Reading our own sealed file (fingerprint checked) depends on no configuration; from here on the
     # submitted pipeline meets the sealed rows, so the attempt is spent whatever ends it.
-    if not holdout_claims.open_seal(engine, submission_id, attempt.token):
+    if holdout_claims.open_seal(engine, submission_id, attempt.token, deadline) is None:
         return {"submission_id": submission_id, "holdout": "claim lost"}
     attempt.opened = True
+    with _deadline_watch(ctx, submission_id, deadline):
+        return _on_the_seal(ctx, submission_id, dataset, pipeline, holdout, features, kinds, metrics, classes,
+                            fit_seconds)
+
+
+def _on_the_seal(
+    ctx: WorkerContext, submission_id: str, dataset: dict[str, Any], pipeline: Any, holdout: Any,
+    features: list[str], kinds: Any, metrics: Any, classes: Any, fit_seconds: float,
+) -> dict[str, Any]:
+    """Score the sealed rows with the refitted pipeline and store the outcome (the attempt is spent)."""
+    engine = ctx.engine
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # warning texts can quote holdout values
@@ -216,6 +246,47 @@ def _score(
     )
     return {"submission_id": submission_id, "holdout": "scored" if created else "already scored",
             "metrics": sorted(scores)}
+
+
+def _dev_predict_seconds(pipeline: Any, data: Any, rows: int, metrics: Any, classes: Any) -> float:
+    """Time the refitted pipeline predicting as many development rows as the holdout holds (all, if fewer).
+
+    Depends on the development rows alone, so the deadline made of it tells nothing of the sealed ones.
+    """
+    n = max(1, min(rows, len(data.y)))
+    X = data.features_of(np.arange(n))
+    started = time.perf_counter()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        scoring.predictions(pipeline, X, metrics, classes)  # not the name used on the sealed rows, below
+    return time.perf_counter() - started
+
+
+@contextmanager
+def _deadline_watch(ctx: WorkerContext, submission_id: str, seconds: float | None) -> Iterator[None]:
+    """Store the attempt as failed if the step on the sealed rows is still running ``seconds`` from now.
+
+    In a work horse (which ends with its job) the step is then stopped by killing the horse; the worker
+    finds the outcome stored. Elsewhere (tests, a job run in-process) the late outcome loses to the stored
+    failure: the first stored outcome is final.
+    """
+    if seconds is None:  # no deadline: the job's timeout bounds the step
+        yield
+        return
+
+    def passed() -> None:
+        settle_lost(ctx, submission_id, f"the step on the sealed rows passed its deadline of {seconds:.0f} s, "
+                                        "fixed from the development rows")
+        if runtime.in_disposable_process():
+            os.kill(os.getpid(), signal.SIGKILL)
+
+    watch = threading.Timer(seconds, passed)
+    watch.daemon = True
+    watch.start()
+    try:
+        yield
+    finally:
+        watch.cancel()
 
 
 def _heartbeat(ctx: WorkerContext, submission_id: str, token: str) -> AbstractContextManager[None]:

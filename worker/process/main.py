@@ -75,6 +75,7 @@ class SealfoldWorker(OutageTolerantWorker):
 
     def main_work_horse(self, job: Job, queue: Queue) -> None:
         runtime.after_fork()
+        runtime.mark_disposable()
         # The horse (the holdout job) ends with its job, so the limit and the priority end with it too.
         settings = runtime.current().settings
         limit_memory(settings.memory_limit_mib)

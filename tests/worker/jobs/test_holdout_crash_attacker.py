@@ -44,8 +44,8 @@ KNOWN = ["north", "south"]
 class _Unspent:
     """The attempt as the job kept it before the seal marked it spent: ``opened`` never turns True."""
 
-    def __init__(self, token: str) -> None:
-        self.token = token
+    def __init__(self, token: str, started: float) -> None:
+        self.token, self.started = token, started
 
     @property
     def opened(self) -> bool:
