@@ -12,7 +12,7 @@ import json
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import Engine, and_, func, select, update
+from sqlalchemy import Engine, and_, case, func, select, update
 from sqlalchemy.exc import IntegrityError
 
 from service.records import audit, verdicts
@@ -265,11 +265,12 @@ def count_live(engine: Engine, team: str) -> int:
 
 
 def count_by_state(engine: Engine) -> dict[str, int]:
-    """Return how many submissions are in each state (for /metrics)."""
+    """Return how many submissions are in each state (for /metrics); a verdict not yet shown counts as running."""
+    now = utcnow()
+    held = submissions.c.published_at.is_not(None) & (submissions.c.published_at > now)
+    state = case((held, "running"), else_=submissions.c.state)
     with engine.connect() as conn:
-        rows = conn.execute(
-            select(submissions.c.state, func.count()).group_by(submissions.c.state)
-        ).all()
+        rows = conn.execute(select(state, func.count()).group_by(state)).all()
     return {state: int(n) for state, n in rows}
 
 

@@ -73,6 +73,11 @@ class SealfoldWorker(OutageTolerantWorker):
     data_check: Callable[[], str | None] | None = None  # why the data dir is unusable now, or None
     settings: Settings | None = None  # set by build_worker: the job timeouts applied here
 
+    @property
+    def metrics_private(self) -> bool:
+        """Whether only operators read /metrics (a token is set), so a holdout job's end may be tallied."""
+        return bool(self.settings is not None and self.settings.metrics_token)
+
     def main_work_horse(self, job: Job, queue: Queue) -> None:
         runtime.after_fork()
         runtime.mark_disposable()
@@ -83,14 +88,14 @@ class SealfoldWorker(OutageTolerantWorker):
         super().main_work_horse(job, queue)
 
     def handle_job_success(self, job: Job, queue: Queue, started_job_registry: Any, execution: Any) -> None:
-        job_tallies.record(self.connection, func_name(job), "finished")
+        job_tallies.record(self.connection, func_name(job), "finished", private=self.metrics_private)
         super().handle_job_success(job, queue, started_job_registry, execution)
 
     def handle_job_failure(self, job: Job, queue: Queue, started_job_registry: Any = None, exc_string: str = "",
                            execution: Execution | None = None) -> None:
         timed_out = "JobTimeoutException" in exc_string
         outcome = "retried" if job.should_retry else "timed_out" if timed_out else "failed"
-        job_tallies.record(self.connection, func_name(job), outcome)
+        job_tallies.record(self.connection, func_name(job), outcome, private=self.metrics_private)
         super().handle_job_failure(job, queue, started_job_registry, exc_string, execution)
 
     def handle_work_horse_killed(self, job: Job, retpid: Any, ret_val: Any, rusage: Any) -> None:
