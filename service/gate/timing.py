@@ -6,8 +6,9 @@ time, a verdict's time, when a budget unit was spent, the moment the state chang
 So the holdout job fixes a deadline before the submitted pipeline meets the sealed rows, from what
 depends on the development rows only (``deadline_seconds``: the same pipeline's prediction time on as
 many development rows, with a margin), and the sealed step's outcome counts only if it is stored by then:
-a step still running at the deadline is stored as a failed attempt (one counted query, told in the same
-fixed words as any failure). The verdict's times are then ``publish_at``: the deadline, or, when the
+a step still running half a pad before the deadline (``step_seconds``) is stopped and stored as a failed
+attempt (one counted query, told in the same fixed words as any failure), leaving the verdict job the
+other half to be given by the deadline. The verdict's times are then ``publish_at``: the deadline, or, when the
 verdict could only be given later (the cross-validation summary still running), the verdict's own time
 rounded up to a grid of the pad from the deadline. Until that moment readers see the submission as running
 (``shown_as``), and every timestamp a submitter reads of the verdict, the release and the budget unit it
@@ -44,6 +45,17 @@ def deadline_seconds(dev_predict_seconds: float, pad_seconds: float, timeout_lef
     wanted = MARGIN * max(dev_predict_seconds, 0.0) + pad_seconds
     wanted = math.ceil(wanted / pad_seconds) * pad_seconds
     return max(1.0, min(wanted, timeout_left_seconds))
+
+
+def step_seconds(deadline_seconds: float | None, pad_seconds: float) -> float | None:
+    """How long the step on the sealed rows may run: up to half a pad before the deadline.
+
+    The other half is the verdict job's, so that a step stopped at its limit is judged before the deadline
+    and shown at it, like any other outcome.
+    """
+    if deadline_seconds is None:
+        return None
+    return max(0.5 * deadline_seconds, deadline_seconds - 0.5 * pad_seconds)
 
 
 def publish_at(deadline: datetime | None, ready: datetime, grid_seconds: float) -> datetime:

@@ -203,7 +203,8 @@ def _score(
     if holdout_claims.open_seal(engine, submission_id, attempt.token, deadline) is None:
         return {"submission_id": submission_id, "holdout": "claim lost"}
     attempt.opened = True
-    with _deadline_watch(ctx, submission_id, deadline):
+    # The step must end half a pad before the deadline, leaving the verdict job time to be given by then.
+    with _deadline_watch(ctx, submission_id, timing.step_seconds(deadline, ctx.settings.holdout_pad_seconds)):
         return _on_the_seal(ctx, submission_id, dataset, pipeline, holdout, features, kinds, metrics, classes,
                             fit_seconds)
 

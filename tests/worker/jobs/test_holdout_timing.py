@@ -1,0 +1,154 @@
+"""A scripted submitter who times the holdout step: what the times it reads tell, with the deadline off and on.
+
+Data: scikit-learn's bundled diabetes table (Efron et al. 2004), with a depot column; the sealed rows hold
+one depot the development rows lack or not (the secret bit). The attacker's pipeline is taken to be slow on
+that depot -- simulated at the boundary: predicting on the sealed rows sleeps when they hold it, standing in
+for a transform slow on some values. It reads only the submission document: its ``finished_at`` (measured
+here from the moment the seal was opened, which the submitter cannot see: that only makes the attacker
+stronger than a real one).
+
+- pad 0 (before): the finished time follows the step, and one submission reads the bit;
+- pad 1 s (after): the finished time is the deadline in both worlds, fixed before the seal was opened; a
+  step that would run past it is stopped and told as a failed attempt, shown at the same moment.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import time
+from collections.abc import Iterator
+from datetime import datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pytest
+from redis import Redis
+from sklearn.datasets import load_diabetes
+from sqlalchemy import select
+
+from service.gate.release import FAILED_NOTE
+from service.records import submissions
+from service.records.engine import as_utc
+from service.records.tables import holdout_claims
+from service.settings import Settings
+from service.submission.document import submission_document
+from tests.support.records import upgraded_engine
+from tests.support.worker_records import add_dataset, add_submission, config_document
+from worker import jobs
+from worker.jobs import holdout, runtime
+from worker.jobs.runtime import WorkerContext
+from worker.jobs.verdict import give_verdict
+
+SLOW_DEPOT = "depot-slow"
+SLOW_SECONDS = 0.4
+
+
+def _context(tmp_path: Path, pad: float) -> Iterator[WorkerContext]:
+    settings = Settings.load({"data_dir": tmp_path, "database_url": "", "holdout_pad_seconds": pad}, environ={})
+    context = WorkerContext(settings=settings, engine=upgraded_engine(settings))
+    runtime.install(context)
+    yield context
+    runtime.uninstall()
+    context.engine.dispose()
+
+
+@pytest.fixture(params=[0.0, 1.0], ids=["pad off", "pad 1 s"])
+def padded(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[WorkerContext]:
+    yield from _context(tmp_path, request.param)
+
+
+@pytest.fixture
+def padded_1s(tmp_path: Path) -> Iterator[WorkerContext]:
+    yield from _context(tmp_path, 1.0)
+
+
+def _slow_on_the_depot(monkeypatch: pytest.MonkeyPatch, ctx: WorkerContext, seconds: float) -> None:
+    """Predicting on sealed rows that hold the depot takes ``seconds``; it stops when an outcome is stored
+    meanwhile, as the work horse is stopped at the step's limit."""
+    real = holdout.predictions
+
+    def slow(pipeline: Any, X: Any, *args: Any, **kwargs: Any) -> Any:
+        if SLOW_DEPOT in set(X["depot"]):
+            until = time.monotonic() + seconds
+            while time.monotonic() < until:
+                time.sleep(0.02)
+                if ctx.settings.holdout_pad_seconds and submissions.get_holdout(ctx.engine, _current[0]):
+                    raise SystemExit("stopped at the step's limit")  # what killing the horse amounts to
+        return real(pipeline, X, *args, **kwargs)
+
+    monkeypatch.setattr(holdout, "predictions", slow)
+
+
+_current: list[str] = [""]
+
+
+def _observe(ctx: WorkerContext, redis_url: str, sealed_slow: bool) -> tuple[float, str | None]:
+    """One submission; return (seconds from the seal's opening to the finished time it reads, holdout note)."""
+    frame = load_diabetes(as_frame=True).frame
+    frame["depot"] = pd.Series(np.where(frame["sex"] > 0, "north", "south"), dtype="str")
+    dev, hold = frame.iloc[:400].copy(), frame.iloc[400:].copy()
+    if sealed_slow:
+        hold.loc[hold.index[0], "depot"] = SLOW_DEPOT
+    dataset = add_dataset(ctx, dev, hold, "target", "regression", folds=3, seed=4)
+    config = config_document(dataset, "Ridge", features=["depot", "age", "bmi"], metrics=["rmse"],
+                             preprocess=[{"transformer": "OneHotEncoder", "columns": ["depot"],
+                                          "params": {"handle_unknown": "ignore"}}])
+    sub_id = add_submission(ctx, dataset, config)
+    _current[0] = sub_id
+    for f in range(3):
+        jobs.run_fold(sub_id, 0, f)
+    jobs.summarize(sub_id)
+    with contextlib.suppress(SystemExit):  # the stopped step: its outcome is stored
+        jobs.score_holdout(sub_id)
+    give_verdict(ctx, Redis.from_url(redis_url), sub_id)
+    deadline = time.monotonic() + 10
+    while True:  # the submitter polls until the verdict is shown
+        sub = submissions.get(ctx.engine, sub_id)
+        assert sub is not None
+        doc = submission_document(ctx.engine, sub)
+        if doc["state"] == "succeeded":
+            break
+        assert time.monotonic() < deadline, doc["state"]
+        time.sleep(0.05)
+    with ctx.engine.connect() as conn:
+        opened = as_utc(conn.execute(select(holdout_claims.c.opened_at)
+                                     .where(holdout_claims.c.submission_id == sub_id)).scalar_one())
+    assert opened is not None
+    finished = datetime.fromisoformat(doc["finished_at"])
+    return (finished - opened).total_seconds(), doc["result"]["holdout"]["note"]
+
+
+def test_the_finished_time_tells_the_step_duration_only_without_a_deadline(
+    padded: WorkerContext, redis_url: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    ctx = padded
+    _slow_on_the_depot(monkeypatch, ctx, SLOW_SECONDS)
+    fast, _ = _observe(ctx, redis_url, sealed_slow=False)
+    slow, _ = _observe(ctx, redis_url, sealed_slow=True)
+    gap = slow - fast
+    pad = ctx.settings.holdout_pad_seconds
+    # One submission per world, a threshold halfway: the bit is read when the gap exceeds the jitter of a
+    # few tens of milliseconds that the rest of the step adds (the attacker sees the seal's opening here).
+    bits = 1.0 if gap > SLOW_SECONDS / 2 else 0.0
+    print(f"\n[timing attacker] pad {pad:g} s: finished {fast:.3f} s after the seal opened (fast world), "
+          f"{slow:.3f} s (slow world) -> {bits:g} bit per submission beyond the counted answer")
+    if pad == 0:
+        assert bits == 1.0
+    else:
+        assert fast == slow  # both shown at the deadline, fixed before the seal was opened
+        assert bits == 0.0
+
+
+def test_a_step_past_its_limit_is_a_failed_attempt_shown_at_the_deadline(
+    padded_1s: WorkerContext, redis_url: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    ctx = padded_1s
+    _slow_on_the_depot(monkeypatch, ctx, 30.0)  # far past the step's limit (1.5 s for a 2 s deadline)
+    fast, fast_note = _observe(ctx, redis_url, sealed_slow=False)
+    slow, slow_note = _observe(ctx, redis_url, sealed_slow=True)
+    assert fast_note != FAILED_NOTE and slow_note == FAILED_NOTE  # the counted answer says it failed
+    assert fast == slow  # and the moment it is shown says nothing more
+    stored = submissions.get_holdout(ctx.engine, _current[0])
+    assert stored is not None and "passed its deadline" in stored["error"]
