@@ -28,9 +28,11 @@ from redis import Redis
 from sklearn.datasets import load_diabetes
 from sqlalchemy import select
 
+from service import team_scope
 from service.gate.release import FAILED_NOTE
-from service.records import submissions
+from service.records import audit, submissions
 from service.records.engine import as_utc
+from service.records.keys import KeyInfo
 from service.records.tables import holdout_claims
 from service.settings import Settings
 from service.submission.document import submission_document
@@ -152,3 +154,36 @@ def test_a_step_past_its_limit_is_a_failed_attempt_shown_at_the_deadline(
     assert fast == slow  # and the moment it is shown says nothing more
     stored = submissions.get_holdout(ctx.engine, _current[0])
     assert stored is not None and "passed its deadline" in stored["error"]
+
+
+def test_before_publication_every_reading_shows_the_submission_running(
+    padded_1s: WorkerContext, redis_url: str
+) -> None:
+    ctx = padded_1s
+    frame = load_diabetes(as_frame=True).frame
+    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression", folds=3)
+    sub_id = add_submission(ctx, dataset, config_document(dataset, "Ridge", metrics=["rmse"]))
+    for f in range(3):
+        jobs.run_fold(sub_id, 0, f)
+    jobs.summarize(sub_id)
+    jobs.score_holdout(sub_id)
+    give_verdict(ctx, Redis.from_url(redis_url), sub_id)
+    caller = KeyInfo(id="key_test", team="fleet", role="submitter", name="t", identity="key_test")
+    row = team_scope.team_submission(ctx.engine, caller, sub_id)
+    doc = submission_document(ctx.engine, submissions.get(ctx.engine, sub_id) or {})
+    assert row["held_back"] and row["verdict"] is None and row["state"] == "running"
+    assert doc["state"] == "running" and doc["finished_at"] is None and doc["result"]["verdict"] is None
+    assert doc["result"]["holdout"]["released"] is False and doc["result"]["holdout"]["mode"] is None
+    assert submissions.count_by_state(ctx.engine).get("succeeded", 0) == 0
+    team_events = [e["action"] for e in audit.recent_for_team(ctx.engine, "fleet")]
+    assert not [a for a in team_events if a.startswith("holdout.")], team_events
+    until = time.monotonic() + 10  # the deadline: 4 x a few ms + the 1 s pad, on the 1 s grid: some 2 s
+    while doc["state"] == "running":
+        assert time.monotonic() < until
+        time.sleep(0.05)
+        doc = submission_document(ctx.engine, submissions.get(ctx.engine, sub_id) or {})
+    assert doc["state"] == "succeeded" and doc["result"]["verdict"] is not None
+    released = [e for e in audit.recent_for_team(ctx.engine, "fleet") if e["action"] == "holdout.released"]
+    assert [e["at"] for e in released] == [doc["finished_at"]]
+    assert [e["action"] for e in audit.recent_for_team(ctx.engine, "fleet")].count("holdout.scored") == 0
+    assert [e["action"] for e in audit.events_for(ctx.engine, sub_id)].count("holdout.scored") == 1  # operators'
