@@ -86,8 +86,11 @@ def shown_as(row: dict[str, Any], now: datetime) -> dict[str, Any]:
     """The submission row as a submitter may read it at ``now``: before publication, still running.
 
     The verdict, the finished time and the state it reached are held back; so is its holdout release,
-    which callers leave out when this returns a row with ``held_back`` set.
+    which callers leave out when this returns a row with ``held_back`` set. A canceled submission's verdict
+    and release, when one was given before the cancel (it read as running then), are never shown.
     """
+    if row.get("state") == "canceled":
+        return {**row, "verdict": None, "held_back": True}
     if not unpublished(row, now):
         return {**row, "held_back": False}
     return {**row, "state": "running", "finished_at": None, "verdict": None, "error": None,

@@ -120,6 +120,8 @@ def transition(
         values["finished_at"] = now if published_at is None else published_at
     if published_at is not None:
         values["published_at"] = published_at
+    if state == "canceled":
+        values["published_at"] = None  # a verdict held back is never shown (service.gate.timing.shown_as)
     if error is not None:
         values["error"] = error
     if cause is not None:

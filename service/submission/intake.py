@@ -22,7 +22,7 @@ from service.catalog.metrics import spec_of
 from service.errors import ConfigRejected, Conflict, FieldProblem, Forbidden, InputError, TeamLimitReached
 from service.gate.review_state import policy_in_force
 from service.ids import new_id
-from service.records import audit, holdout_claims, submissions
+from service.records import audit, submissions
 from service.records.keys import KeyInfo
 from service.settings import Settings
 from service.submission import config, dispatch
@@ -124,12 +124,10 @@ def cancel(engine: Engine, redis: Redis, settings: Settings, key: KeyInfo, sub_i
     row = team_scope.team_submission(engine, key, sub_id)
     if row["owner_key_id"] != key.id and not key.can("steward"):
         raise Forbidden("only the submission's owner or a steward of its team may cancel it")
-    if holdout_claims.is_spent(engine, sub_id):
-        # Refused alike whether the step on the sealed rows still runs or its verdict waits to be shown, so
-        # a cancel tells nothing of when it ended; when it began depends on the development rows alone.
-        raise Conflict(f"submission {sub_id} can no longer be canceled: its holdout step has begun, and the "
-                       "attempt counts as a holdout query whatever happens next")
-    if not submissions.transition(engine, sub_id, "canceled", LIVE_STATES):
+    # A verdict not yet shown reads as running and is canceled like one (service.gate.timing), so a cancel
+    # answers alike whether the holdout step still runs or has ended; nothing of the verdict is ever shown.
+    states = (*LIVE_STATES, "succeeded") if row.get("held_back") else LIVE_STATES
+    if not submissions.transition(engine, sub_id, "canceled", states):
         raise Conflict(f"submission {sub_id} is already {row['state']}; only queued or running ones can be canceled")
     audit.record(engine, key.id, key.team, "submission.canceled", sub_id, {})
     dispatch.cancel_jobs(redis, settings, sub_id, ValidationPlan.from_document(row["config"]["validation"]))

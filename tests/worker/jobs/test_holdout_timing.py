@@ -35,6 +35,7 @@ from service.records.engine import as_utc
 from service.records.keys import KeyInfo
 from service.records.tables import holdout_claims
 from service.settings import Settings
+from service.submission import intake
 from service.submission.document import submission_document
 from tests.support.records import upgraded_engine
 from tests.support.worker_records import add_dataset, add_submission, config_document
@@ -187,3 +188,24 @@ def test_before_publication_every_reading_shows_the_submission_running(
     assert [e["at"] for e in released] == [doc["finished_at"]]
     assert [e["action"] for e in audit.recent_for_team(ctx.engine, "fleet")].count("holdout.scored") == 0
     assert [e["action"] for e in audit.events_for(ctx.engine, sub_id)].count("holdout.scored") == 1  # operators'
+
+
+def test_a_cancel_before_publication_answers_as_for_a_running_submission(
+    padded_1s: WorkerContext, redis_url: str
+) -> None:
+    ctx = padded_1s
+    frame = load_diabetes(as_frame=True).frame
+    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression", folds=3)
+    sub_id = add_submission(ctx, dataset, config_document(dataset, "Ridge", metrics=["rmse"]))
+    for f in range(3):
+        jobs.run_fold(sub_id, 0, f)
+    jobs.summarize(sub_id)
+    jobs.score_holdout(sub_id)
+    give_verdict(ctx, Redis.from_url(redis_url), sub_id)  # judged, not yet shown
+    owner = KeyInfo(id="key_test", team="fleet", role="submitter", name="t", identity="key_test")
+    stored = intake.cancel(ctx.engine, Redis.from_url(redis_url), ctx.settings, owner, sub_id)
+    assert stored["state"] == "canceled"
+    time.sleep(2.5)  # past the deadline: still nothing of the verdict
+    doc = submission_document(ctx.engine, submissions.get(ctx.engine, sub_id) or {})
+    assert doc["state"] == "canceled" and doc["result"]["verdict"] is None
+    assert doc["result"]["holdout"]["released"] is False and doc["result"]["holdout"]["mode"] is None
