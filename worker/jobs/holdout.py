@@ -30,17 +30,13 @@ from __future__ import annotations
 
 import logging
 import os
-import signal
-import threading
 import time
 import warnings
-from collections.abc import Iterator
-from contextlib import AbstractContextManager, contextmanager
+from contextlib import AbstractContextManager
 from dataclasses import dataclass
 from datetime import timedelta
 from typing import Any
 
-import numpy as np
 from rq.timeouts import JobTimeoutException
 
 from service.errors import SealBroken
@@ -49,10 +45,9 @@ from service.ids import new_id
 from service.records import datasets, holdout_claims, submissions
 from service.submission.resolved import ResolvedConfig
 from service.vault import store
-from worker.jobs import runtime
+from worker.jobs import holdout_deadline, runtime
 from worker.jobs.losses import save_per_example, scoring_rows
 from worker.jobs.runtime import Skip, WorkerContext, repeating, submission_to_work_on
-from worker.learning import scoring
 from worker.learning.development import column_kinds, load_development, model_frame, model_matrix, target_values
 from worker.learning.per_row import per_example
 from worker.learning.pipeline import build_pipeline, fit_in_place, uses_frame
@@ -146,6 +141,23 @@ def settle_lost(ctx: WorkerContext, submission_id: str, how: str) -> dict[str, A
     return _not_scored(ctx, submission_id, dataset, error)
 
 
+def _passed(limit: float | None) -> str:
+    return f"the step on the sealed rows passed its limit of {limit or 0:.1f} s, fixed from the development rows"
+
+
+def after_horse_died(ctx: WorkerContext, function: str | None, args: Any, status: Any) -> None:
+    """A holdout work horse died (a signal, the OOM killer, a segfault, RQ's kill past the timeout): when it had
+    opened the seal, its attempt is spent; store it as failed before RQ retries or fails the job."""
+    if not (function or "").endswith(".score_holdout") or not args:
+        return
+    how = (f"its work horse was killed by signal {os.WTERMSIG(status)}" if status and os.WIFSIGNALED(status)
+           else f"its work horse exited with status {status}")
+    try:
+        settle_lost(ctx, str(args[0]), how)
+    except Exception:  # the next attempt settles it from the stale claim
+        log.exception("could not store the lost holdout attempt of %s", args[0])
+
+
 def _ended_by(exc: BaseException, ctx: WorkerContext) -> str:
     """Name, for operators, what ended a spent attempt: a bound, or the exception's class (never its message)."""
     if isinstance(exc, JobTimeoutException):
@@ -181,7 +193,8 @@ def _score(
         error = f"refitting on all development rows failed: {type(exc).__name__}: {exc}"
         return _not_scored(ctx, submission_id, dataset, error)
     try:  # the sealed step's deadline, fixed from the development rows alone (service.gate.timing)
-        dev_seconds = _dev_predict_seconds(pipeline, data, int(dataset["rows_holdout"]), metrics, classes)
+        dev_seconds = holdout_deadline.dev_predict_seconds(pipeline, data, int(dataset["rows_holdout"]), metrics,
+                                                           classes)
     except MemoryError:
         raise
     except Exception as exc:
@@ -204,7 +217,8 @@ def _score(
         return {"submission_id": submission_id, "holdout": "claim lost"}
     attempt.opened = True
     # The step must end half a pad before the deadline, leaving the verdict job time to be given by then.
-    with _deadline_watch(ctx, submission_id, timing.step_seconds(deadline, ctx.settings.holdout_pad_seconds)):
+    limit = timing.step_seconds(deadline, ctx.settings.holdout_pad_seconds)
+    with holdout_deadline.watch(lambda: settle_lost(ctx, submission_id, _passed(limit)), limit):
         return _on_the_seal(ctx, submission_id, dataset, pipeline, holdout, features, kinds, metrics, classes,
                             fit_seconds)
 
@@ -247,47 +261,6 @@ def _on_the_seal(
     )
     return {"submission_id": submission_id, "holdout": "scored" if created else "already scored",
             "metrics": sorted(scores)}
-
-
-def _dev_predict_seconds(pipeline: Any, data: Any, rows: int, metrics: Any, classes: Any) -> float:
-    """Time the refitted pipeline predicting as many development rows as the holdout holds (all, if fewer).
-
-    Depends on the development rows alone, so the deadline made of it tells nothing of the sealed ones.
-    """
-    n = max(1, min(rows, len(data.y)))
-    X = data.features_of(np.arange(n))
-    started = time.perf_counter()
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        scoring.predictions(pipeline, X, metrics, classes)  # not the name used on the sealed rows, below
-    return time.perf_counter() - started
-
-
-@contextmanager
-def _deadline_watch(ctx: WorkerContext, submission_id: str, seconds: float | None) -> Iterator[None]:
-    """Store the attempt as failed if the step on the sealed rows is still running ``seconds`` from now.
-
-    In a work horse (which ends with its job) the step is then stopped by killing the horse; the worker
-    finds the outcome stored. Elsewhere (tests, a job run in-process) the late outcome loses to the stored
-    failure: the first stored outcome is final.
-    """
-    if seconds is None:  # no deadline: the job's timeout bounds the step
-        yield
-        return
-
-    def passed() -> None:
-        settle_lost(ctx, submission_id, f"the step on the sealed rows passed its deadline of {seconds:.0f} s, "
-                                        "fixed from the development rows")
-        if runtime.in_disposable_process():
-            os.kill(os.getpid(), signal.SIGKILL)
-
-    watch = threading.Timer(seconds, passed)
-    watch.daemon = True
-    watch.start()
-    try:
-        yield
-    finally:
-        watch.cancel()
 
 
 def _heartbeat(ctx: WorkerContext, submission_id: str, token: str) -> AbstractContextManager[None]:

@@ -73,11 +73,6 @@ class SealfoldWorker(OutageTolerantWorker):
     data_check: Callable[[], str | None] | None = None  # why the data dir is unusable now, or None
     settings: Settings | None = None  # set by build_worker: the job timeouts applied here
 
-    @property
-    def metrics_private(self) -> bool:
-        """Whether only operators read /metrics (a token is set), so a holdout job's end may be tallied."""
-        return bool(self.settings is not None and self.settings.metrics_token)
-
     def main_work_horse(self, job: Job, queue: Queue) -> None:
         runtime.after_fork()
         runtime.mark_disposable()
@@ -88,28 +83,22 @@ class SealfoldWorker(OutageTolerantWorker):
         super().main_work_horse(job, queue)
 
     def handle_job_success(self, job: Job, queue: Queue, started_job_registry: Any, execution: Any) -> None:
-        job_tallies.record(self.connection, func_name(job), "finished", private=self.metrics_private)
+        job_tallies.record(self.connection, func_name(job), "finished", private=self._metrics_private())
         super().handle_job_success(job, queue, started_job_registry, execution)
 
     def handle_job_failure(self, job: Job, queue: Queue, started_job_registry: Any = None, exc_string: str = "",
                            execution: Execution | None = None) -> None:
         timed_out = "JobTimeoutException" in exc_string
         outcome = "retried" if job.should_retry else "timed_out" if timed_out else "failed"
-        job_tallies.record(self.connection, func_name(job), outcome, private=self.metrics_private)
+        job_tallies.record(self.connection, func_name(job), outcome, private=self._metrics_private())
         super().handle_job_failure(job, queue, started_job_registry, exc_string, execution)
 
     def handle_work_horse_killed(self, job: Job, retpid: Any, ret_val: Any, rusage: Any) -> None:
-        """A holdout horse that died (a signal, the OOM killer, a segfault, RQ's kill past the timeout) after
-        opening the seal has spent its attempt: store it as failed before RQ retries or fails the job."""
         super().handle_work_horse_killed(job, retpid, ret_val, rusage)
-        if func_name(job) != f"{dispatch.JOB_MODULE}.score_holdout" or not job.args:
-            return
-        how = (f"its work horse was killed by signal {os.WTERMSIG(ret_val)}" if ret_val and os.WIFSIGNALED(ret_val)
-               else f"its work horse exited with status {ret_val}")
-        try:
-            holdout.settle_lost(runtime.current(), str(job.args[0]), how)
-        except Exception:  # the next attempt settles it from the stale claim
-            log.exception("could not store the lost holdout attempt of job %s", job.id)
+        holdout.after_horse_died(runtime.current(), func_name(job), job.args, ret_val)
+
+    def _metrics_private(self) -> bool:  # only operators read /metrics: a holdout job's end may be tallied
+        return bool(self.settings is not None and self.settings.metrics_token)
 
     def kill_horse(self, sig: signal.Signals = signal.SIGKILL) -> None:
         """Stop the current job: a horse as RQ does, an in-process fold by killing the fold process.

@@ -154,7 +154,7 @@ def test_a_step_past_its_limit_is_a_failed_attempt_shown_at_the_deadline(
     assert fast_note != FAILED_NOTE and slow_note == FAILED_NOTE  # the counted answer says it failed
     assert fast == slow  # and the moment it is shown says nothing more
     stored = submissions.get_holdout(ctx.engine, _current[0])
-    assert stored is not None and "passed its deadline" in stored["error"]
+    assert stored is not None and "passed its limit" in stored["error"]
 
 
 def test_before_publication_every_reading_shows_the_submission_running(
