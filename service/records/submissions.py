@@ -111,7 +111,9 @@ def transition(
     be shown (``service.gate.timing``), which is then also its finished time.
     """
     now = utcnow()
-    values: dict[str, Any] = {"state": state, "updated_at": now}
+    # A verdict held back until its publication keeps its row's last change where it was: the time a team
+    # reads of it (the desk's last activity) is the publication, once past (``last_activity``).
+    values: dict[str, Any] = {"state": state} if published_at is not None else {"state": state, "updated_at": now}
     if reopen or state == "canceled" or cause in INFRASTRUCTURE_CAUSES:
         values["config_key"] = f"reopened:{sub_id}"
     if state == "running":
@@ -163,8 +165,10 @@ def store_verdict(
     with engine.begin() as conn:
         owner = conn.execute(select(submissions.c.dataset_id, submissions.c.owner_key_id)
                              .where(submissions.c.id == sub_id)).one()
-        conn.execute(update(submissions).where(submissions.c.id == sub_id).values(
-            verdict=verdict, policy_version=policy_version, champion_id=champion_id, updated_at=now))
+        changed: dict[str, Any] = {"verdict": verdict, "policy_version": policy_version, "champion_id": champion_id}
+        if at is None:  # a verdict shown at once (a re-judge); one held back leaves the row's change time alone
+            changed["updated_at"] = now
+        conn.execute(update(submissions).where(submissions.c.id == sub_id).values(**changed))
         verdicts.add(conn, {
             "submission_id": sub_id, "dataset_id": owner.dataset_id, "owner_key_id": owner.owner_key_id,
             "policy_version": policy_version, "champion_id": champion_id, "verdict": verdict,
@@ -277,10 +281,13 @@ def count_by_state(engine: Engine) -> dict[str, int]:
 
 
 def last_activity(engine: Engine, team: str) -> dict[str, datetime]:
-    """Return, per dataset of a team, when one of its submissions last changed."""
+    """Return, per dataset of a team, when one of its submissions last changed (a verdict: once published)."""
+    now = utcnow()
+    shown = submissions.c.published_at.is_not(None) & (submissions.c.published_at <= now)
+    changed = case((shown, submissions.c.published_at), else_=submissions.c.updated_at)
     with engine.connect() as conn:
         rows = conn.execute(
-            select(submissions.c.dataset_id, func.max(submissions.c.updated_at))
+            select(submissions.c.dataset_id, func.max(changed))
             .where(submissions.c.team == team).group_by(submissions.c.dataset_id)
         ).all()
     return {str(ds): at for ds, at in rows if at is not None}

@@ -168,7 +168,9 @@ def test_before_publication_every_reading_shows_the_submission_running(
         jobs.run_fold(sub_id, 0, f)
     jobs.summarize(sub_id)
     jobs.score_holdout(sub_id)
+    active = submissions.last_activity(ctx.engine, "fleet")
     give_verdict(ctx, Redis.from_url(redis_url), sub_id)
+    assert submissions.last_activity(ctx.engine, "fleet") == active  # the desk's "last activity" did not move
     caller = KeyInfo(id="key_test", team="fleet", role="submitter", name="t", identity="key_test")
     row = team_scope.team_submission(ctx.engine, caller, sub_id)
     doc = submission_document(ctx.engine, submissions.get(ctx.engine, sub_id) or {})
@@ -186,6 +188,8 @@ def test_before_publication_every_reading_shows_the_submission_running(
     assert doc["state"] == "succeeded" and doc["result"]["verdict"] is not None
     released = [e for e in audit.recent_for_team(ctx.engine, "fleet") if e["action"] == "holdout.released"]
     assert [e["at"] for e in released] == [doc["finished_at"]]
+    moved = as_utc(submissions.last_activity(ctx.engine, "fleet")[dataset["id"]])
+    assert moved is not None and moved == as_utc(datetime.fromisoformat(doc["finished_at"]))
     assert [e["action"] for e in audit.recent_for_team(ctx.engine, "fleet")].count("holdout.scored") == 0
     assert [e["action"] for e in audit.events_for(ctx.engine, sub_id)].count("holdout.scored") == 1  # operators'
 
