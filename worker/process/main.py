@@ -95,7 +95,9 @@ class SealfoldWorker(OutageTolerantWorker):
 
     def handle_work_horse_killed(self, job: Job, retpid: Any, ret_val: Any, rusage: Any) -> None:
         super().handle_work_horse_killed(job, retpid, ret_val, rusage)
-        holdout.after_horse_died(runtime.current(), func_name(job), job.args, ret_val)
+        name = func_name(job)  # None for a job sealfold did not write: its args are not read
+        if name is not None and name.endswith(".score_holdout"):
+            holdout.after_horse_died(runtime.current(), name, job.args, ret_val)
 
     def _metrics_private(self) -> bool:  # only operators read /metrics: a holdout job's end may be tallied
         return bool(self.settings is not None and self.settings.metrics_token)
