@@ -28,6 +28,7 @@ _ENV_NAMES: dict[str, str] = {
     "check_timeout_seconds": "SEALFOLD_CHECK_TIMEOUT",
     "memory_limit_mib": "SEALFOLD_MEMORY_LIMIT_MIB",
     "job_nice": "SEALFOLD_JOB_NICE",
+    "holdout_pad_seconds": "SEALFOLD_HOLDOUT_PAD",
     "team_max_live_submissions": "SEALFOLD_TEAM_MAX_LIVE",
     "team_max_running_jobs": "SEALFOLD_TEAM_MAX_RUNNING",
     "min_rows": "SEALFOLD_MIN_ROWS",
@@ -64,6 +65,10 @@ class Settings:
     # How much the processes that fit (a worker's fold process, the holdout's horse) lower their CPU priority
     # (nice, 0-19), so the API and the checkers on the same host answer at once while folds run.
     job_nice: int = 10
+    # The holdout step's deadline is 4 x the pipeline's prediction time on as many development rows, plus
+    # this, rounded up to a multiple of it; its verdict is shown no earlier (service.gate.timing). 0 turns
+    # the deadline off: the step's duration can then be read from the times a submitter sees.
+    holdout_pad_seconds: float = 1.0
     # Submissions one team may have queued or running at once (0: no limit); beyond it a POST answers 429,
     # so one team's burst cannot fill the queue ahead of every other team.
     team_max_live_submissions: int = 100
@@ -110,6 +115,9 @@ class Settings:
         if self.team_max_running_jobs < 0:
             raise SettingsError("team_max_running_jobs must be 0 (no limit) or positive, got "
                                 f"{self.team_max_running_jobs}")
+        if self.holdout_pad_seconds < 0:
+            raise SettingsError(f"holdout_pad_seconds must be 0 (no deadline) or positive, got "
+                                f"{self.holdout_pad_seconds}")
         if not 0 <= self.job_nice <= 19:
             raise SettingsError(f"job_nice must be between 0 and 19, got {self.job_nice}")
         if self.data_source not in DATA_SOURCES:

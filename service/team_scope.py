@@ -13,7 +13,9 @@ from typing import Any
 from sqlalchemy import Engine
 
 from service.errors import NotFound, SealfoldError, field_error
+from service.gate import timing
 from service.records import datasets, keys, submission_versions, submissions
+from service.records.engine import utcnow
 from service.records.keys import KeyInfo
 from service.records.submission_versions import SubmissionVersion
 
@@ -31,11 +33,15 @@ def team_dataset(engine: Engine, caller: KeyInfo, ds_id: str, pointer: str | Non
 
 
 def team_submission(engine: Engine, caller: KeyInfo, sub_id: str, pointer: str | None = None) -> dict[str, Any]:
-    """Return the row of one of the caller's team's submissions, else NotFound."""
+    """Return the row of one of the caller's team's submissions as it may be read now, else NotFound.
+
+    A verdict not yet to be shown (``service.gate.timing``) reads as running, with ``held_back`` set: whatever
+    is built on the row then leaves out its verdict, its holdout release and its finished time.
+    """
     row = submissions.get(engine, sub_id)
     if row is None or row["team"] != caller.team:
         raise _absent(f"no submission {sub_id!r} in team {caller.team!r}", pointer)
-    return row
+    return timing.shown_as(row, utcnow())
 
 
 def team_submission_version(engine: Engine, caller: KeyInfo, sub_id: str) -> SubmissionVersion:

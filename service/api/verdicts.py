@@ -38,8 +38,10 @@ def history_document(sub: dict[str, Any], dataset: dict[str, Any]) -> dict[str, 
     """A submission's verdicts oldest first, and whether the newest was judged under the policy in force."""
     version = int(policy_in_force(service_context().engine, dataset)["version"])
     current = None if sub["verdict"] is None else sub["policy_version"] == version
+    # A verdict not yet to be shown (service.gate.timing) has no history to read either.
+    history = [] if sub.get("held_back") else verdicts.history(service_context().engine, sub["id"])
     return {"submission": sub["id"], "policy_version_in_force": version, "judged_under_policy_in_force": current,
-            "history": verdicts.history(service_context().engine, sub["id"])}
+            "history": history}
 
 
 @blp.route("/submissions/<sub_id>/verdicts")

@@ -17,13 +17,13 @@ import json
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import Engine, and_, func, or_, select
+from sqlalchemy import Engine, and_, case, func, or_, select
 from sqlalchemy.sql.elements import ColumnElement
 
 from service.errors import InputError, field_error
 from service.gate.review_state import holdout_summary, ladder_reading, policy_in_force
 from service.records import champions
-from service.records.engine import iso
+from service.records.engine import iso, utcnow
 from service.records.tables import api_keys, holdout_releases, submissions
 from service.vocabulary import HOLDOUT_FIGURES, RELEASE_MODES
 
@@ -85,17 +85,22 @@ def board_page(
     mean = submissions.c.cv_summary[("summary", order.metric, "mean")].as_float()
     released = holdout_releases.c.released[order.metric].as_float()
     holder = holdout_releases.c.state[("ladder", "best_submission")].as_string()
+    # A verdict not yet to be shown (service.gate.timing): the row reads as running, with no release.
+    now = utcnow()
+    held = submissions.c.published_at.is_not(None) & (submissions.c.published_at > now)
     query = (
         select(
-            submissions.c.id, submissions.c.label, submissions.c.state, submissions.c.created_at,
-            submissions.c.owner_key_id, submissions.c.verdict["decision"].as_string().label("decision"),
+            submissions.c.id, submissions.c.label, case((held, "running"), else_=submissions.c.state).label("state"),
+            submissions.c.created_at, submissions.c.owner_key_id,
+            case((held, None), else_=submissions.c.verdict["decision"].as_string()).label("decision"),
             submissions.c.policy_version, mean.label("mean"), summary.label("summary"),
             holdout_releases.c.submission_id.label("release_of"), holdout_releases.c.mode,
             released.label("released"), holdout_releases.c.withheld_until, api_keys.c.name.label("key_name"),
             _release_version().label("release_version"), holder.label("holder"),
         )
         .select_from(submissions)
-        .outerjoin(holdout_releases, holdout_releases.c.submission_id == submissions.c.id)
+        .outerjoin(holdout_releases, (holdout_releases.c.submission_id == submissions.c.id)
+                   & (holdout_releases.c.released_at <= now))
         .outerjoin(api_keys, api_keys.c.id == submissions.c.owner_key_id)
         .where(*_on_board(dataset, mean))
     )

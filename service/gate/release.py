@@ -78,9 +78,11 @@ class Budget:
 
 
 # What a submitter is told of a failed holdout attempt: the same words whatever failed (refit, transform,
-# scoring) and whatever the exception said, which stays in the records for operators.
+# scoring, or the step's process crashing, killed or past a bound once it had the sealed rows) and whatever
+# the exception or bound was, which stays in the records for operators.
 FAILED_NOTE = ("The holdout step did not produce a figure: the model could not be refitted on the development "
-               "rows or could not score the sealed rows. The attempt counted as one holdout query.")
+               "rows or could not score the sealed rows (an error, a crash or a resource bound). The attempt "
+               "counted as one holdout query.")
 RELEASED, WITHHELD, FAILED = "released", "withheld", "failed"
 
 

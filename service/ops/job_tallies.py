@@ -30,10 +30,17 @@ def kind_of(func_name: str | None) -> str:
     return KINDS.get((func_name or "").rsplit(".", 1)[-1], "other")
 
 
-def record(redis: Redis, func_name: str | None, outcome: str) -> None:
-    """Add one job outcome; a Redis error is swallowed (a tally must never fail a job)."""
+def record(redis: Redis, func_name: str | None, outcome: str, *, private: bool = True) -> None:
+    """Add one job outcome; a Redis error is swallowed (a tally must never fail a job).
+
+    ``private``: only operators can read ``/metrics`` (``SEALFOLD_METRICS_TOKEN`` is set). When anyone can,
+    a holdout job's end is not tallied: when and how it ended (finished, failed, timed out, retried) can
+    depend on the sealed rows, and a scrape every second would time it (``service.gate.timing``).
+    """
     if outcome not in OUTCOMES:
         raise ValueError(f"unknown job outcome {outcome!r}")
+    if not private and outcome != "started" and kind_of(func_name) == "holdout":
+        return
     with contextlib.suppress(RedisError):
         redis.hincrby(TALLY_KEY, f"{kind_of(func_name)}|{outcome}", 1)
 

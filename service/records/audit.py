@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from datetime import datetime
 from typing import Any
 
 from sqlalchemy import Connection, Engine, select
@@ -9,13 +10,20 @@ from sqlalchemy import Connection, Engine, select
 from service.records.engine import iso, utcnow
 from service.records.tables import audit_events
 
+# Events of the step on the sealed rows, kept for operators and not listed to a team.
+SEALED_STEP = ("holdout.scored", "holdout.failed")
+
 
 def record(
-    target: Engine | Connection, actor: str, team: str, action: str, subject: str, detail: dict[str, Any]
+    target: Engine | Connection, actor: str, team: str, action: str, subject: str, detail: dict[str, Any],
+    *, at: datetime | None = None,
 ) -> None:
-    """Append one event; pass a Connection to make it part of the caller's transaction."""
+    """Append one event; pass a Connection to make it part of the caller's transaction.
+
+    ``at``: the time it is recorded under (a holdout release: its publication time, ``service.gate.timing``).
+    """
     statement = audit_events.insert().values(
-        at=utcnow(), actor=actor, team=team, action=action, subject=subject, detail=detail
+        at=utcnow() if at is None else at, actor=actor, team=team, action=action, subject=subject, detail=detail
     )
     if isinstance(target, Connection):
         target.execute(statement)
@@ -37,10 +45,16 @@ def events_for(engine: Engine, subject: str) -> list[dict[str, Any]]:
 
 
 def recent_for_team(engine: Engine, team: str, limit: int = 200) -> list[dict[str, Any]]:
-    """Return a team's newest events first, at most ``limit`` of them."""
+    """Return a team's newest events first, at most ``limit`` of them, as the team may read them now.
+
+    The holdout step's own events (when it ended, and whether it failed) stay with the operators: the team
+    learns the outcome from the release, which is listed once published (``service.gate.timing``).
+    """
     with engine.connect() as conn:
         rows = conn.execute(
-            select(audit_events).where(audit_events.c.team == team).order_by(audit_events.c.id.desc()).limit(limit)
+            select(audit_events).where(audit_events.c.team == team, audit_events.c.action.not_in(SEALED_STEP),
+                                       audit_events.c.at <= utcnow())
+            .order_by(audit_events.c.id.desc()).limit(limit)
         ).all()
     return [
         {"at": iso(r.at), "actor": r.actor, "action": r.action, "subject": r.subject, "detail": r.detail}

@@ -9,12 +9,12 @@ update that only one caller can win hands it to the next job. Both hold on SQLit
 
 from __future__ import annotations
 
-from datetime import timedelta
+from datetime import datetime, timedelta
 
-from sqlalchemy import Engine, delete, update
+from sqlalchemy import Engine, delete, select, update
 from sqlalchemy.exc import IntegrityError
 
-from service.records.engine import utcnow
+from service.records.engine import as_utc, utcnow
 from service.records.tables import holdout_claims
 
 
@@ -34,7 +34,8 @@ def claim(engine: Engine, sub_id: str, token: str, stale_after: timedelta) -> bo
     with engine.begin() as conn:
         result = conn.execute(
             update(holdout_claims)
-            .where(holdout_claims.c.submission_id == sub_id, holdout_claims.c.heartbeat_at < now - stale_after)
+            .where(holdout_claims.c.submission_id == sub_id, holdout_claims.c.heartbeat_at < now - stale_after,
+                   holdout_claims.c.opened_at.is_(None))
             .values(token=token, heartbeat_at=now)
         )
     return bool(result.rowcount)
@@ -51,11 +52,62 @@ def beat(engine: Engine, sub_id: str, token: str) -> bool:
     return bool(result.rowcount)
 
 
+def open_seal(engine: Engine, sub_id: str, token: str, deadline_seconds: float | None = None) -> datetime | None:
+    """Mark the attempt held by ``token`` spent, just before its first use of the sealed rows; return the deadline.
+
+    The deadline (``service.gate.timing``) is ``deadline_seconds`` from now, or none. Return None when another
+    job has taken the claim over (this one stalled past the stale limit): the caller must then not touch the
+    seal.
+    """
+    now = utcnow()
+    deadline = None if deadline_seconds is None else now + timedelta(seconds=deadline_seconds)
+    with engine.begin() as conn:
+        result = conn.execute(
+            update(holdout_claims)
+            .where(holdout_claims.c.submission_id == sub_id, holdout_claims.c.token == token,
+                   holdout_claims.c.opened_at.is_(None))
+            .values(opened_at=now, heartbeat_at=now, deadline_at=deadline)
+        )
+    return (deadline or now) if result.rowcount else None
+
+
+def deadline(engine: Engine, sub_id: str) -> datetime | None:
+    """The deadline fixed for the sealed step of ``sub_id``, or None (none fixed, or the seal never opened)."""
+    with engine.connect() as conn:
+        value = conn.execute(
+            select(holdout_claims.c.deadline_at).where(holdout_claims.c.submission_id == sub_id)
+        ).scalar_one_or_none()
+    return as_utc(value)
+
+
+def is_spent(engine: Engine, sub_id: str) -> bool:
+    """Whether a job has opened the sealed rows for ``sub_id`` (its one attempt is spent)."""
+    with engine.connect() as conn:
+        opened = conn.execute(
+            select(holdout_claims.c.opened_at).where(holdout_claims.c.submission_id == sub_id)
+        ).scalar_one_or_none()
+    return opened is not None
+
+
+def spent_and_stale(engine: Engine, sub_id: str, stale_after: timedelta) -> bool:
+    """Whether the attempt is spent and its holder's heartbeat stopped: it ended without storing an outcome."""
+    with engine.connect() as conn:
+        row = conn.execute(
+            select(holdout_claims.c.opened_at, holdout_claims.c.heartbeat_at)
+            .where(holdout_claims.c.submission_id == sub_id)
+        ).first()
+    if row is None or row.opened_at is None:
+        return False
+    beat_at = as_utc(row.heartbeat_at)
+    return beat_at is None or beat_at < utcnow() - stale_after
+
+
 def release(engine: Engine, sub_id: str, token: str) -> None:
     """Give up the claim held by ``token`` (its job failed before storing an outcome), so a retry need not wait.
 
-    Only the holder's row goes; a claim another job took over is left alone.
+    Only the holder's row goes, and only while unspent; a claim another job took over is left alone.
     """
     with engine.begin() as conn:
         conn.execute(delete(holdout_claims).where(holdout_claims.c.submission_id == sub_id,
-                                                  holdout_claims.c.token == token))
+                                                  holdout_claims.c.token == token,
+                                                  holdout_claims.c.opened_at.is_(None)))

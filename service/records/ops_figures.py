@@ -10,6 +10,7 @@ from typing import Any
 
 from sqlalchemy import Engine, Text, case, cast, func, literal, or_, select
 
+from service.records.engine import utcnow
 from service.records.tables import fold_results, holdout_releases, submissions
 from service.vocabulary import TERMINAL_STATES
 
@@ -37,7 +38,9 @@ def _bucketed(engine: Engine, duration: Any, where: Any, group: Any, buckets: Se
 def submission_durations(engine: Engine, buckets: Sequence[float]) -> dict[str, Any]:
     """Created -> finished seconds of finished submissions, by final state."""
     duration = _seconds_between(engine, submissions.c.created_at, submissions.c.finished_at)
-    where = submissions.c.state.in_(TERMINAL_STATES) & submissions.c.finished_at.is_not(None)
+    # A verdict not yet shown (service.gate.timing) is left out until its finished time, its publication.
+    where = (submissions.c.state.in_(TERMINAL_STATES) & submissions.c.finished_at.is_not(None)
+             & (submissions.c.finished_at <= utcnow()))
     return _bucketed(engine, duration, where, submissions.c.state, buckets)
 
 
@@ -50,7 +53,8 @@ def fold_durations(engine: Engine, buckets: Sequence[float]) -> dict[str, Any]:
 def holdout_queries(engine: Engine) -> dict[str, int]:
     """How many holdout queries were answered with a figure (``released``) and without one (``withheld``)."""
     withheld = or_(holdout_releases.c.released.is_(None), cast(holdout_releases.c.released, Text) == "null")
-    query = select(func.sum(case((withheld, 1), else_=0)), func.count()).select_from(holdout_releases)
+    query = (select(func.sum(case((withheld, 1), else_=0)), func.count()).select_from(holdout_releases)
+             .where(holdout_releases.c.released_at <= utcnow()))  # counted once shown (service.gate.timing)
     with engine.connect() as conn:
         none, total = conn.execute(query).one()
     return {"released": int(total or 0) - int(none or 0), "withheld": int(none or 0)}

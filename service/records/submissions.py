@@ -12,7 +12,7 @@ import json
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import Engine, and_, func, select, update
+from sqlalchemy import Engine, and_, case, func, select, update
 from sqlalchemy.exc import IntegrityError
 
 from service.records import audit, verdicts
@@ -100,23 +100,30 @@ def list_for_team(
 
 def transition(
     engine: Engine, sub_id: str, state: str, from_states: tuple[str, ...], error: str | None = None,
-    *, reopen: bool = False, cause: str | None = None,
+    *, reopen: bool = False, cause: str | None = None, published_at: datetime | None = None,
 ) -> bool:
     """Move a submission to ``state`` if it is in one of ``from_states``; return whether it moved.
 
     ``reopen`` (and every cancel, and a failure the infrastructure caused): give up the configuration key,
     so the same configuration may be submitted again -- for a submission that ended through no fault of its
     own or was canceled before any verdict. ``cause`` names why a failed submission failed
-    (``service.vocabulary.FAILURE_CAUSES``).
+    (``service.vocabulary.FAILURE_CAUSES``). ``published_at``: the moment a verdict that read the holdout may
+    be shown (``service.gate.timing``), which is then also its finished time.
     """
     now = utcnow()
-    values: dict[str, Any] = {"state": state, "updated_at": now}
+    # A verdict held back until its publication keeps its row's last change where it was: the time a team
+    # reads of it (the desk's last activity) is the publication, once past (``last_activity``).
+    values: dict[str, Any] = {"state": state} if published_at is not None else {"state": state, "updated_at": now}
     if reopen or state == "canceled" or cause in INFRASTRUCTURE_CAUSES:
         values["config_key"] = f"reopened:{sub_id}"
     if state == "running":
         values["started_at"] = now
     if state in TERMINAL_STATES:
-        values["finished_at"] = now
+        values["finished_at"] = now if published_at is None else published_at
+    if published_at is not None:
+        values["published_at"] = published_at
+    if state == "canceled":
+        values["published_at"] = None  # a verdict held back is never shown (service.gate.timing.shown_as)
     if error is not None:
         values["error"] = error
     if cause is not None:
@@ -145,23 +152,27 @@ def store_summary(engine: Engine, sub_id: str, cv_summary: dict[str, Any]) -> No
 
 def store_verdict(
     engine: Engine, sub_id: str, verdict: dict[str, Any], policy_version: int | None, champion_id: str | None,
-    *, judged_by: str = "system", holdout_spent: int = 0,
+    *, judged_by: str = "system", holdout_spent: int = 0, at: datetime | None = None,
 ) -> None:
     """Store the verdict of a submission with the policy version and champion it was judged against.
 
     The verdict becomes the submission's current one and is appended to its history (``records.verdicts``)
-    in the same transaction; ``holdout_spent`` is the units of the owner's holdout budget it used.
+    in the same transaction; ``holdout_spent`` is the units of the owner's holdout budget it used. ``at``: the
+    time it is recorded under (a verdict on the holdout: its publication time, ``service.gate.timing``).
     """
     now, verdict = utcnow(), verdicts.finite(verdict)
+    judged_at = now if at is None else at
     with engine.begin() as conn:
         owner = conn.execute(select(submissions.c.dataset_id, submissions.c.owner_key_id)
                              .where(submissions.c.id == sub_id)).one()
-        conn.execute(update(submissions).where(submissions.c.id == sub_id).values(
-            verdict=verdict, policy_version=policy_version, champion_id=champion_id, updated_at=now))
+        changed: dict[str, Any] = {"verdict": verdict, "policy_version": policy_version, "champion_id": champion_id}
+        if at is None:  # a verdict shown at once (a re-judge); one held back leaves the row's change time alone
+            changed["updated_at"] = now
+        conn.execute(update(submissions).where(submissions.c.id == sub_id).values(**changed))
         verdicts.add(conn, {
             "submission_id": sub_id, "dataset_id": owner.dataset_id, "owner_key_id": owner.owner_key_id,
             "policy_version": policy_version, "champion_id": champion_id, "verdict": verdict,
-            "judged_by": judged_by, "judged_at": now, "holdout_spent": holdout_spent,
+            "judged_by": judged_by, "judged_at": judged_at, "holdout_spent": holdout_spent,
         })
 
 
@@ -259,19 +270,23 @@ def count_live(engine: Engine, team: str) -> int:
 
 
 def count_by_state(engine: Engine) -> dict[str, int]:
-    """Return how many submissions are in each state (for /metrics)."""
+    """Return how many submissions are in each state (for /metrics); a verdict not yet shown counts as running."""
+    now = utcnow()
+    held = submissions.c.published_at.is_not(None) & (submissions.c.published_at > now)
+    state = case((held, "running"), else_=submissions.c.state)
     with engine.connect() as conn:
-        rows = conn.execute(
-            select(submissions.c.state, func.count()).group_by(submissions.c.state)
-        ).all()
+        rows = conn.execute(select(state, func.count()).group_by(state)).all()
     return {state: int(n) for state, n in rows}
 
 
 def last_activity(engine: Engine, team: str) -> dict[str, datetime]:
-    """Return, per dataset of a team, when one of its submissions last changed."""
+    """Return, per dataset of a team, when one of its submissions last changed (a verdict: once published)."""
+    now = utcnow()
+    shown = submissions.c.published_at.is_not(None) & (submissions.c.published_at <= now)
+    changed = case((shown, submissions.c.published_at), else_=submissions.c.updated_at)
     with engine.connect() as conn:
         rows = conn.execute(
-            select(submissions.c.dataset_id, func.max(submissions.c.updated_at))
+            select(submissions.c.dataset_id, func.max(changed))
             .where(submissions.c.team == team).group_by(submissions.c.dataset_id)
         ).all()
     return {str(ds): at for ds, at in rows if at is not None}

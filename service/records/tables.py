@@ -96,6 +96,9 @@ submissions = Table(
     Column("created_at", DateTime(timezone=True), nullable=False),
     Column("started_at", DateTime(timezone=True)),
     Column("finished_at", DateTime(timezone=True)),
+    # When a verdict that read the holdout may be shown: a time fixed from public figures (service.gate.timing),
+    # so what a submitter reads does not tell how long the holdout step took. Null: shown when finished.
+    Column("published_at", DateTime(timezone=True)),
     Column("updated_at", DateTime(timezone=True), nullable=False),
     # sha256 of (team, dataset, configuration fingerprint, policy version): one submission per key under
     # any concurrency. A canceled submission or one failed by the infrastructure gets "reopened:<id>",
@@ -156,6 +159,12 @@ holdout_claims = Table(
     Column("submission_id", ForeignKey("submissions.id"), primary_key=True),
     Column("token", String(40), nullable=False),
     Column("heartbeat_at", DateTime(timezone=True), nullable=False),
+    # When the holder opened the sealed rows: from then on the one attempt is spent. An attempt that ends
+    # without an outcome after this (a crash, a kill, a bound) is stored as failed, never computed again.
+    Column("opened_at", DateTime(timezone=True)),
+    # The moment fixed, before opening them, by which the step on the sealed rows must have stored its outcome
+    # (service.gate.timing); the verdict is shown no earlier.
+    Column("deadline_at", DateTime(timezone=True)),
 )
 
 policies = Table(

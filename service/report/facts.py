@@ -77,7 +77,8 @@ def gather(engine: Engine, row: dict[str, Any]) -> ReportFacts:
         greater_is_better=bool(spec.greater_is_better) if spec is not None else bool(policy["greater_is_better"]),
         policy=policy,
         policy_matches_verdict=verdict is not None and row.get("policy_version") == policy["version"],
-        holdout=holdout_part(holdout_releases.get(engine, row["id"]), row["state"], row.get("policy_version")),
+        holdout=holdout_part(None if row.get("held_back") else holdout_releases.get(engine, row["id"]), row["state"],
+                             row.get("policy_version")),
         champion=_champion(engine, row, primary),
         metrics=list(row["config"].get("metrics", [])),
     )

@@ -20,9 +20,10 @@ from typing import Any
 
 from sqlalchemy import Engine
 
+from service.gate import timing
 from service.gate.review_state import holdout_part
 from service.records import holdout_releases, submissions
-from service.records.engine import as_utc, iso
+from service.records.engine import as_utc, iso, utcnow
 from service.records.submission_versions import SubmissionVersion
 
 # Part of every ETag: a release that changes how documents are built changes it, so no client keeps
@@ -36,15 +37,26 @@ def submission_document(engine: Engine, row: dict[str, Any]) -> dict[str, Any]:
 
 
 def document_and_etag(engine: Engine, row: dict[str, Any]) -> tuple[dict[str, Any], str]:
-    """Return the document for one submission row and its ETag (unquoted)."""
+    """Return the document for one submission row and its ETag (unquoted).
+
+    A verdict not yet to be shown reads as still running (``service.gate.timing``), with no holdout part;
+    its row's ``updated_at`` stayed where it was, so the ETag is the one the document had before.
+    """
+    row = timing.shown_as(row, utcnow())
     folds = submissions.fold_rows(engine, row["id"])
-    release = holdout_releases.get(engine, row["id"])
+    release = None if row["held_back"] else holdout_releases.get(engine, row["id"])
     etag = _etag(row["id"], row["state"], row["updated_at"], len(folds), row.get("policy_version"), release)
     return _compose(row, folds, release), etag
 
 
 def version_etag(version: SubmissionVersion) -> str:
-    """Return the ETag (unquoted) of the document this version would build, without building it."""
+    """Return the ETag (unquoted) of the document this version would build, without building it.
+
+    Masked as the document is: a verdict not yet to be shown gives the ETag of the running document it
+    replaced, so the moment it was stored (which can depend on the sealed rows) does not show as a change.
+    """
+    if timing.unpublished({"published_at": version.published_at}, utcnow()):
+        return _etag(version.id, "running", version.updated_at, version.folds_done, None, None)
     return _etag(version.id, version.state, version.updated_at, version.folds_done, version.policy_version,
                  version.release)
 

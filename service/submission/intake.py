@@ -124,7 +124,10 @@ def cancel(engine: Engine, redis: Redis, settings: Settings, key: KeyInfo, sub_i
     row = team_scope.team_submission(engine, key, sub_id)
     if row["owner_key_id"] != key.id and not key.can("steward"):
         raise Forbidden("only the submission's owner or a steward of its team may cancel it")
-    if not submissions.transition(engine, sub_id, "canceled", LIVE_STATES):
+    # A verdict not yet shown reads as running and is canceled like one (service.gate.timing), so a cancel
+    # answers alike whether the holdout step still runs or has ended; nothing of the verdict is ever shown.
+    states = (*LIVE_STATES, "succeeded") if row.get("held_back") else LIVE_STATES
+    if not submissions.transition(engine, sub_id, "canceled", states):
         raise Conflict(f"submission {sub_id} is already {row['state']}; only queued or running ones can be canceled")
     audit.record(engine, key.id, key.team, "submission.canceled", sub_id, {})
     dispatch.cancel_jobs(redis, settings, sub_id, ValidationPlan.from_document(row["config"]["validation"]))

@@ -61,7 +61,8 @@ def _mean(row: dict[str, Any], metric: str) -> str:
 
 def _holdout(row: dict[str, Any]) -> str:
     engine = service_context().engine
-    part = holdout_part(holdout_releases.get(engine, row["id"]), row["state"], row.get("policy_version"))
+    release = None if row.get("held_back") else holdout_releases.get(engine, row["id"])  # service.gate.timing
+    part = holdout_part(release, row["state"], row.get("policy_version"))
     return str(part["summary"])
 
 

@@ -35,6 +35,7 @@ class _Slot:
     context: WorkerContext | None = None
     fold_runner: FoldRunner | None = None
     data_source: DataSource | None = None
+    disposable: bool = False  # this process is a work horse that ends with its job
 
 
 class FoldRunner(Protocol):
@@ -113,6 +114,16 @@ def current() -> WorkerContext:
         raise RuntimeError("no worker context installed; start the worker with worker.process.main.run_worker "
                            "or call worker.jobs.runtime.install() first")
     return _Slot.context
+
+
+def mark_disposable() -> None:
+    """Say that this process ends with its one job (a work horse): a job may then kill it to stop its work."""
+    _Slot.disposable = True
+
+
+def in_disposable_process() -> bool:
+    """Whether this process ends with its job (``mark_disposable``)."""
+    return _Slot.disposable
 
 
 def after_fork() -> None:

@@ -18,19 +18,20 @@ only here, so a client that sees ``succeeded`` always finds its verdict.
 from __future__ import annotations
 
 from collections.abc import Mapping
+from datetime import datetime, timedelta
 from typing import Any
 
 import numpy as np
 from redis import Redis
 
-from service.gate import review_state
+from service.gate import review_state, timing
 from service.gate.evidence import gather, holdout_reading
 from service.gate.policy import Policy, parse_policy
 from service.gate.rejudge import release_lock_name
 from service.gate.release import HoldoutScores, budget_status, release
 from service.gate.statistics import without_largest
 from service.gate.verdict import TRIMMABLE_FORMS, TrimmedHoldout, judge, trimmed_rows
-from service.records import champions, holdout_releases, keys, submissions
+from service.records import champions, holdout_claims, holdout_releases, keys, submissions
 from service.records.engine import as_utc, utcnow
 from service.vocabulary import LIVE_STATES
 from worker.jobs import sealed_champion
@@ -64,12 +65,15 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
     evidence = gather(engine, sub, dataset, metric)
     candidate, folds = evidence.candidate, evidence.folds
     champion_id = champions.current(engine, dataset["id"])
+    # Shown no earlier than the sealed step's deadline, so no time a submitter reads tells its duration.
+    published = timing.publish_at(holdout_claims.deadline(engine, submission_id), utcnow(),
+                                  ctx.settings.holdout_pad_seconds)
 
     try:
         with redis.lock(release_lock_name(str(dataset["id"])), timeout=120, blocking_timeout=60):
             told = holdout_releases.get(engine, submission_id)
             if told is None:
-                told = _release(ctx, sub, dataset, policy, version, raw, candidate, folds, champion_id)
+                told = _release(ctx, sub, dataset, policy, version, raw, candidate, folds, champion_id, published)
     except DamagedLosses as exc:
         # A retry would find the same file: fail now, with nothing released, rather than stay running.
         error = f"{exc}; nothing about the holdout was released"
@@ -83,8 +87,11 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
     verdict = judge(policy, candidate, evidence.baseline, evidence.champion, figure, evidence.plan,
                     policy_version=version, holdout_hidden=hidden, holdout_failed=failed,
                     champion_holdout=sealed_champion.recorded_entry(ctx, submission_id), holdout_trimmed=trimmed)
-    submissions.store_verdict(engine, submission_id, verdict, version, evidence.champion_id)
-    submissions.transition(engine, submission_id, "succeeded", LIVE_STATES)
+    # Publication follows the release order on the dataset (a later release must not show an earlier one's
+    # effect, a ladder's best, before that one is shown): the release row carries the moment.
+    published = as_utc(told["released_at"]) or published
+    submissions.store_verdict(engine, submission_id, verdict, version, evidence.champion_id, at=published)
+    submissions.transition(engine, submission_id, "succeeded", LIVE_STATES, published_at=published)
     return {"submission_id": submission_id, "decision": verdict["decision"]}
 
 
@@ -106,6 +113,7 @@ def _trimmed(ctx: WorkerContext, dataset: Mapping[str, Any], submission_id: str,
 def _release(
     ctx: WorkerContext, sub: Mapping[str, Any], dataset: Mapping[str, Any], policy: Policy, version: int,
     raw: Mapping[str, Any], candidate: Mapping[Cell, float], folds: list[dict[str, Any]], champion_id: str | None,
+    published: datetime,
 ) -> dict[str, Any]:
     """Release the stored outcome under the policy, counted against the submitter's and the team's budget,
     then make the champion decision on the sealed rows when the budget still allows one more query."""
@@ -113,6 +121,9 @@ def _release(
     values = np.array(list(candidate.values()), dtype=float)
     last = holdout_releases.latest(engine, dataset["id"])
     state: dict[str, Any] = dict(last["state"]) if last else {}
+    # Strictly after the dataset's latest release: the mechanisms' state is read from the latest one.
+    after_last = as_utc(last["released_at"]) if last else None
+    published = published if after_last is None else max(published, after_last + timedelta(microseconds=1))
     owner = keys.get_key(engine, str(sub["owner_key_id"]))
     identity = owner.budget_identity if owner is not None else str(sub["owner_key_id"])
     spent_at = [as_utc(t) or utcnow() for t in holdout_releases.spent_times(engine, dataset["id"], identity)]
@@ -145,6 +156,6 @@ def _release(
         "identity": identity, "mode": outcome.mode, "released": outcome.released,
         "spent": outcome.spent + queried,
         "state": outcome.state, "withheld_until": outcome.withheld_until, "policy_version": version,
-        "outcome": outcome.outcome,
+        "outcome": outcome.outcome, "released_at": published,  # the unit is spent when the answer is shown
     })
     return row

@@ -37,7 +37,7 @@ from service.records.engine import make_engine
 from service.records.schema import require_current
 from service.settings import Settings
 from service.submission import dispatch
-from worker.jobs import runtime
+from worker.jobs import holdout, runtime
 from worker.jobs.failure import AVOID_WORKERS, LEFT_COUNT, limit_memory
 from worker.jobs.runtime import repeating
 from worker.process import placement
@@ -76,6 +76,7 @@ class SealfoldWorker(FairQueueWorker):
 
     def main_work_horse(self, job: Job, queue: Queue) -> None:
         runtime.after_fork()
+        runtime.mark_disposable()
         # The horse (the holdout job) ends with its job, so the limit and the priority end with it too.
         settings = runtime.current().settings
         limit_memory(settings.memory_limit_mib)
@@ -83,15 +84,24 @@ class SealfoldWorker(FairQueueWorker):
         super().main_work_horse(job, queue)
 
     def handle_job_success(self, job: Job, queue: Queue, started_job_registry: Any, execution: Any) -> None:
-        job_tallies.record(self.connection, func_name(job), "finished")
+        job_tallies.record(self.connection, func_name(job), "finished", private=self._metrics_private())
         super().handle_job_success(job, queue, started_job_registry, execution)
 
     def handle_job_failure(self, job: Job, queue: Queue, started_job_registry: Any = None, exc_string: str = "",
                            execution: Execution | None = None) -> None:
         timed_out = "JobTimeoutException" in exc_string
         outcome = "retried" if job.should_retry else "timed_out" if timed_out else "failed"
-        job_tallies.record(self.connection, func_name(job), outcome)
+        job_tallies.record(self.connection, func_name(job), outcome, private=self._metrics_private())
         super().handle_job_failure(job, queue, started_job_registry, exc_string, execution)
+
+    def handle_work_horse_killed(self, job: Job, retpid: Any, ret_val: Any, rusage: Any) -> None:
+        super().handle_work_horse_killed(job, retpid, ret_val, rusage)
+        name = func_name(job)  # None for a job sealfold did not write: its args are not read
+        if name is not None and name.endswith(".score_holdout"):
+            holdout.after_horse_died(runtime.current(), name, job.args, ret_val)
+
+    def _metrics_private(self) -> bool:  # only operators read /metrics: a holdout job's end may be tallied
+        return bool(self.settings is not None and self.settings.metrics_token)
 
     def kill_horse(self, sig: signal.Signals = signal.SIGKILL) -> None:
         """Stop the current job: a horse as RQ does, an in-process fold by killing the fold process.

@@ -1,0 +1,70 @@
+"""Through real workers and HTTP, the verdict is shown at the deadline fixed before the seal was opened.
+
+Real stack (own redis-server, two real forking workers, SQLite records), with the holdout pad on (2 s).
+Data: scikit-learn's bundled diabetes table (Efron et al. 2004). What the submitter reads by polling --
+the state, the finished time, the verdict history's time -- is the deadline, not the moment the step
+on the sealed rows ended.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Iterator
+from datetime import datetime
+from pathlib import Path
+
+import pytest
+from sqlalchemy import select
+
+from service.records import submissions
+from service.records.engine import as_utc
+from service.records.tables import holdout_claims
+from tests.support.datasets import diabetes_frame, register
+from tests.support.servers import redis_server
+from tests.support.stack import Stack, running_stack
+
+pytestmark = pytest.mark.slow
+
+
+@pytest.fixture
+def padded_stack(tmp_path: Path) -> Iterator[Stack]:
+    with redis_server(tmp_path) as url, running_stack(
+        tmp_path / "data", url, "timing", workers=2, settings={"holdout_pad_seconds": 2.0},
+    ) as live:
+        yield live
+
+
+def test_the_verdict_is_shown_at_the_deadline_and_every_time_read_is_it(padded_stack: Stack) -> None:
+    stack = padded_stack
+    ds = register(stack.client("steward"), diabetes_frame(), name="timed", target="target", task="regression")
+    reply = stack.client().post("/v1/submissions", json_body={"dataset": ds["id"], "model": {"estimator": "Ridge"}})
+    assert reply.status == 202, reply.text
+    sub_id = str(reply.json()["id"])
+    client = stack.client()
+    deadline = time.monotonic() + 120
+    seen_running_after_scoring = False
+    while True:
+        doc = client.get(f"/v1/submissions/{sub_id}").json()
+        if doc["state"] == "succeeded":
+            break
+        assert doc["state"] in ("queued", "running"), doc
+        assert doc["result"] is None or doc["result"]["verdict"] is None
+        if submissions.get(stack.engine, sub_id)["verdict"] is not None:  # type: ignore[index]
+            seen_running_after_scoring = True  # judged in the records, still shown as running
+            assert client.get(f"/v1/submissions/{sub_id}/verdicts").json()["history"] == []
+        assert time.monotonic() < deadline, stack.log_path.read_text(errors="replace")[-3000:]
+        time.sleep(0.05)
+    with stack.engine.connect() as conn:
+        claim = conn.execute(select(holdout_claims).where(holdout_claims.c.submission_id == sub_id)).mappings().one()
+    stored = submissions.get_holdout(stack.engine, sub_id)
+    assert stored is not None and stored["error"] is None
+    opened, fixed = as_utc(claim["opened_at"]), as_utc(claim["deadline_at"])
+    scored = as_utc(stored["scored_at"])
+    assert opened is not None and fixed is not None and scored is not None
+    assert scored < fixed  # the step ended well before its deadline ...
+    finished = datetime.fromisoformat(doc["finished_at"])
+    history = client.get(f"/v1/submissions/{sub_id}/verdicts").json()["history"]
+    # ... and what is read is the deadline (or, were the summary later, a grid step after it), never the end.
+    assert finished >= fixed and (finished - fixed).total_seconds() % 2.0 == pytest.approx(0.0, abs=1e-3)
+    assert [datetime.fromisoformat(h["judged_at"]) for h in history] == [finished]
+    assert seen_running_after_scoring or finished > fixed  # the hold was seen (about 2 s here, less if late)
