@@ -85,6 +85,7 @@ def running_stack(
     log_path = data_dir / "workers.log"
     procs = [start_worker(env, f"{queue}-{i}", log_path) for i in range(workers)]
     app = create_app(overrides)
+    stack: Stack | None = None
     try:
         with ServedApp(app) as served:
             wait_ready(ServiceClient(served.url), redis_url, procs, log_path)
@@ -93,7 +94,9 @@ def running_stack(
             stack.env = env
             yield stack
     finally:
-        stop_processes(procs)
+        # A test may replace or add workers (stack.workers); every one it leaves is stopped with the stack.
+        later = [] if stack is None else [w for w in stack.workers if w not in procs]
+        stop_processes(procs + later)
         engine.dispose()
 
 
