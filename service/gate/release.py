@@ -107,9 +107,13 @@ class Release:
 
 
 def budget_status(spent_at: Sequence[datetime], now: datetime, budget: int, window_hours: float) -> Budget:
-    """Count a submitter's releases in the window ending now; say when budget returns if none is left."""
+    """Count a submitter's releases in the window ending now; say when budget returns if none is left.
+
+    A release dated after ``now`` is a verdict stored but not yet published (``service.gate.timing``): its
+    unit is already spent, so it counts, else a burst judged within one pad would all find the budget whole.
+    """
     window = timedelta(hours=window_hours)
-    recent = sorted(t for t in spent_at if now - window < t <= now)
+    recent = sorted(t for t in spent_at if now - window < t)
     remaining = budget - len(recent)
     if remaining > 0:
         return Budget(remaining, None)

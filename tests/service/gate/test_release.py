@@ -57,6 +57,15 @@ def test_budget_status_in_a_rolling_window() -> None:
     assert tight.returns_at == NOW + timedelta(hours=14)  # two must leave: the second oldest at 10 h ago
 
 
+def test_a_release_dated_after_now_is_spent_already() -> None:
+    # A verdict held back until its publication carries that later moment; two of them stored within one pad
+    # must not each find the whole budget.
+    held = [NOW + timedelta(seconds=2), NOW + timedelta(seconds=3)]
+    assert budget_status(held, NOW, 3, 24).remaining == 1
+    spent = budget_status(held, NOW, 2, 24)
+    assert spent.remaining == 0 and spent.returns_at == NOW + timedelta(hours=24, seconds=2)
+
+
 def test_beyond_the_budget_the_figure_is_withheld_and_nothing_changes() -> None:
     policy = _policy(RMSE, mode="exact", budget=2, window_hours=24)
     spent = [NOW - timedelta(hours=5), NOW - timedelta(hours=2)]
