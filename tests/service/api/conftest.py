@@ -61,3 +61,11 @@ def fuzz_target(tmp_path_factory: pytest.TempPathFactory, redis_url: str) -> Ite
             yield FuzzTarget(api, (dataset["id"],), (queued.get_json()["id"], finished))
         finally:
             worker.register_death()
+
+
+@pytest.fixture
+def submitted(api: Api, dataset: dict[str, Any], worker_says_ok: list[dict[str, Any]]) -> dict[str, Any]:
+    """One accepted submission (the worker's configuration check answers "ok"), as the POST answered it."""
+    reply = api.post("submitter", "/v1/submissions", json=submission_body(dataset))
+    assert reply.status_code == 202, reply.get_data(as_text=True)
+    return dict(reply.get_json())

@@ -23,15 +23,6 @@ if TYPE_CHECKING:
     from tests.support.api import Api
 
 
-@pytest.fixture
-def submitted(api: Api, dataset: dict[str, Any], worker_says_ok: list[dict[str, Any]]) -> dict[str, Any]:
-    from tests.support.api import submission_body
-
-    reply = api.post("submitter", "/v1/submissions", json=submission_body(dataset))
-    assert reply.status_code == 202, reply.get_data(as_text=True)
-    return dict(reply.get_json())
-
-
 def _read(api: Api, sub_id: str, etag: str | None = None) -> Any:
     headers = {} if etag is None else {"If-None-Match": etag}
     return api.get("submitter", f"/v1/submissions/{sub_id}", headers=headers)

@@ -25,13 +25,6 @@ if TYPE_CHECKING:
 
 
 
-@pytest.fixture
-def submitted(api: Api, dataset: dict[str, Any], worker_says_ok: list[dict[str, Any]]) -> dict[str, Any]:
-    reply = api.post("submitter", "/v1/submissions", json=submission_body(dataset))
-    assert reply.status_code == 202, reply.get_data(as_text=True)
-    return dict(reply.get_json())
-
-
 def test_submit_answers_202_with_location_and_the_document(
     api: Api, dataset: dict[str, Any], worker_says_ok: list[dict[str, Any]]
 ) -> None:

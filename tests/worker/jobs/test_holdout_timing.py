@@ -157,6 +157,17 @@ def test_a_step_past_its_limit_is_a_failed_attempt_shown_at_the_deadline(
     assert stored is not None and "passed its limit" in stored["error"]
 
 
+def _cross_validated(ctx: WorkerContext) -> tuple[dict[str, Any], str]:
+    """A diabetes Ridge submission whose 3 folds and summary are done, its holdout step not yet begun."""
+    frame = load_diabetes(as_frame=True).frame
+    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression", folds=3)
+    sub_id = add_submission(ctx, dataset, config_document(dataset, "Ridge", metrics=["rmse"]))
+    for f in range(3):
+        jobs.run_fold(sub_id, 0, f)
+    jobs.summarize(sub_id)
+    return dataset, sub_id
+
+
 def _etags(ctx: WorkerContext, sub_id: str) -> str:
     """The submission's ETag as the poll path reads it and as the built document carries it; they agree."""
     version = submission_versions.get(ctx.engine, sub_id)
@@ -170,12 +181,7 @@ def test_before_publication_every_reading_shows_the_submission_running(
     padded_1s: WorkerContext, redis_url: str
 ) -> None:
     ctx = padded_1s
-    frame = load_diabetes(as_frame=True).frame
-    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression", folds=3)
-    sub_id = add_submission(ctx, dataset, config_document(dataset, "Ridge", metrics=["rmse"]))
-    for f in range(3):
-        jobs.run_fold(sub_id, 0, f)
-    jobs.summarize(sub_id)
+    dataset, sub_id = _cross_validated(ctx)
     etag = _etags(ctx, sub_id)
     jobs.score_holdout(sub_id)
     active = submissions.last_activity(ctx.engine, "fleet")
@@ -212,12 +218,7 @@ def test_a_cancel_before_publication_answers_as_for_a_running_submission(
     padded_1s: WorkerContext, redis_url: str
 ) -> None:
     ctx = padded_1s
-    frame = load_diabetes(as_frame=True).frame
-    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression", folds=3)
-    sub_id = add_submission(ctx, dataset, config_document(dataset, "Ridge", metrics=["rmse"]))
-    for f in range(3):
-        jobs.run_fold(sub_id, 0, f)
-    jobs.summarize(sub_id)
+    _, sub_id = _cross_validated(ctx)
     jobs.score_holdout(sub_id)
     give_verdict(ctx, Redis.from_url(redis_url), sub_id)  # judged, not yet shown
     owner = KeyInfo(id="key_test", team="fleet", role="submitter", name="t", identity="key_test")
