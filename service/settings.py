@@ -29,6 +29,7 @@ _ENV_NAMES: dict[str, str] = {
     "memory_limit_mib": "SEALFOLD_MEMORY_LIMIT_MIB",
     "job_nice": "SEALFOLD_JOB_NICE",
     "holdout_pad_seconds": "SEALFOLD_HOLDOUT_PAD",
+    "holdout_prompt_seconds": "SEALFOLD_HOLDOUT_PROMPT",
     "team_max_live_submissions": "SEALFOLD_TEAM_MAX_LIVE",
     "team_max_running_jobs": "SEALFOLD_TEAM_MAX_RUNNING",
     "min_rows": "SEALFOLD_MIN_ROWS",
@@ -69,6 +70,11 @@ class Settings:
     # this, rounded up to a multiple of it; its verdict is shown no earlier (service.gate.timing). 0 turns
     # the deadline off: the step's duration can then be read from the times a submitter sees.
     holdout_pad_seconds: float = 1.0
+    # Seconds added to the holdout step's prompt time (twice its development-row prediction time, plus this):
+    # a verdict given by then is shown then; one that came later because of the sealed step is shown as
+    # without it and counted as one more holdout query (service.gate.timing). 0: every verdict that read the
+    # holdout waits for the deadline.
+    holdout_prompt_seconds: float = 0.1
     # Submissions one team may have queued or running at once (0: no limit); beyond it a POST answers 429,
     # so one team's burst cannot fill the queue ahead of every other team.
     team_max_live_submissions: int = 100
@@ -118,6 +124,9 @@ class Settings:
         if self.holdout_pad_seconds < 0:
             raise SettingsError(f"holdout_pad_seconds must be 0 (no deadline) or positive, got "
                                 f"{self.holdout_pad_seconds}")
+        if self.holdout_prompt_seconds < 0:
+            raise SettingsError(f"holdout_prompt_seconds must be 0 (no prompt time) or positive, got "
+                                f"{self.holdout_prompt_seconds}")
         if not 0 <= self.job_nice <= 19:
             raise SettingsError(f"job_nice must be between 0 and 19, got {self.job_nice}")
         if self.data_source not in DATA_SOURCES:

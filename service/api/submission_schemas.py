@@ -274,6 +274,9 @@ class HoldoutResultSchema(Schema):
     ladder = fields.Nested(LadderReadingSchema, allow_none=True, metadata={
         "description": "under the ladder: the figure is the dataset's best so far, which this submission may not hold"})
     summary = fields.String(metadata={"description": "one plain sentence on what the holdout figure is"})
+    late = fields.Boolean(metadata={"description": (
+        "true when the verdict came after its prompt time because of the step on the holdout rows: that it came "
+        "late is itself an answer about those rows, so it spent one more unit of the holdout budget")})
 
 
 class VerdictRuleSchema(Schema):

@@ -50,7 +50,8 @@ def holdout_part(release: dict[str, Any] | None, state: str | None = None,
         if state in ("failed", "canceled"):
             waiting = f"not scored on the holdout: the submission {state}"
         return {"released": False, "mode": None, "scores": None, "withheld_until": None, "note": waiting,
-                "policy_version": None, "ladder": None, "summary": waiting}
+                "policy_version": None, "ladder": None, "summary": waiting, "late": False}
+    late = bool(release.get("late"))
     released = release["released"]
     withheld_until = iso(release["withheld_until"])
     note = None
@@ -58,7 +59,8 @@ def holdout_part(release: dict[str, Any] | None, state: str | None = None,
         # Told only because the budget allowed it, in the same words whatever failed.
         return {"released": False, "mode": release["mode"], "scores": None, "withheld_until": None,
                 "note": FAILED_NOTE, "policy_version": release.get("policy_version") or policy_version,
-                "ladder": None, "summary": "no holdout figure: " + FAILED_NOTE[0].lower() + FAILED_NOTE[1:]}
+                "ladder": None, "summary": "no holdout figure: " + FAILED_NOTE[0].lower() + FAILED_NOTE[1:],
+                "late": late}
     if released is None:
         note = ("withheld: the submitter's or the team's holdout queries on this dataset are used up for now"
                 + (f"; more are available from {withheld_until}" if withheld_until else ""))
@@ -71,7 +73,7 @@ def holdout_part(release: dict[str, Any] | None, state: str | None = None,
     return {"released": released is not None, "mode": release["mode"], "scores": released,
             "withheld_until": withheld_until, "note": note,
             "policy_version": policy_version if version is None else version, "ladder": ladder,
-            "summary": holdout_summary(release["mode"], released, ladder, note)}
+            "summary": holdout_summary(release["mode"], released, ladder, note), "late": late}
 
 
 def ladder_reading(mode: str | None, released: dict[str, float] | None, holder: str | None,

@@ -14,6 +14,16 @@ rounded up to a grid of the pad from the deadline. Until that moment readers see
 (``shown_as``), and every timestamp a submitter reads of the verdict, the release and the budget unit it
 spent is that moment.
 
+A deadline generous enough that an honest step on a busy host meets it is long for a small table (a pad
+of a second). So the holdout job also fixes a *prompt time*, the same way but tighter (``prompt_seconds``:
+twice the development-row prediction time plus ``holdout_prompt_seconds``, a tenth of a second by default),
+and ``moment`` decides when a verdict is shown: at the prompt time when it is given by then (half a prompt
+pad before it); at its own time on the prompt's grid when it waited on the cross-validation summary, stored
+after the holdout outcome (a time the sealed rows do not set, however long the step took); and otherwise --
+the verdict waited on the sealed step and missed the prompt time -- as without a prompt time (the deadline,
+or its grid), the lateness counted as one more holdout query against the submitter's and the team's budget.
+Being late tells one bit, and that bit is counted like any other answer.
+
 What remains: the verdict's time still depends on the summary and on queueing, which the sealed rows do
 not set (save that the holdout process shares the machine with the folds); and an attempt killed with its
 whole worker (no deadline watchdog left) is settled when the next job finds its claim stale, at most once
@@ -23,6 +33,7 @@ per submission, after the attempt was already counted. See README.md, "Timing".
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 from datetime import datetime, timedelta
 from typing import Any
 
@@ -45,6 +56,55 @@ def deadline_seconds(dev_predict_seconds: float, pad_seconds: float, timeout_lef
     wanted = MARGIN * max(dev_predict_seconds, 0.0) + pad_seconds
     wanted = math.ceil(wanted / pad_seconds) * pad_seconds
     return max(1.0, min(wanted, timeout_left_seconds))
+
+
+# The prompt time is this many times the development-row prediction time plus ``holdout_prompt_seconds``:
+# tighter than the deadline's margin, because missing it costs one counted query and a later answer, not a
+# failed attempt. The factor is ours.
+PROMPT_MARGIN = 2.0
+
+
+def prompt_seconds(dev_predict_seconds: float, prompt_pad_seconds: float,
+                   deadline_seconds: float | None) -> float | None:
+    """Seconds after opening the seal at which a verdict given by then is shown; None: no prompt time.
+
+    None when the deadline is off or ``prompt_pad_seconds`` is 0 (every verdict waits for the deadline).
+    Never later than the deadline.
+    """
+    if deadline_seconds is None or prompt_pad_seconds <= 0:
+        return None
+    return min(PROMPT_MARGIN * max(dev_predict_seconds, 0.0) + prompt_pad_seconds, deadline_seconds)
+
+
+@dataclass(frozen=True)
+class Moment:
+    """When a verdict is shown, and whether showing it then is one more counted answer (it came late)."""
+
+    at: datetime
+    late: bool
+
+
+def moment(*, prompt: datetime | None, deadline: datetime | None, ready: datetime, scored: datetime | None,
+           summarized: datetime | None, pad_seconds: float, prompt_pad_seconds: float) -> Moment:
+    """The moment a verdict given at ``ready`` is shown, from the times fixed before the seal was opened.
+
+    ``scored``: when the holdout outcome was stored; ``summarized``: when the cross-validation summary was.
+    With no prompt time, ``publish_at`` the deadline, never late. With one:
+
+    - given half a prompt pad before it: the prompt time, whatever the step took;
+    - the summary stored after the holdout outcome (the verdict waited on the folds, not on the sealed
+      step): ``ready`` on the prompt's grid, a time set by the summary and the queues;
+    - otherwise (the step, or the verdict waiting on it, past the prompt time): as without a prompt time,
+      and late: that it came late depends on the sealed step, so it is counted as one more query.
+    """
+    if prompt is None:
+        return Moment(publish_at(deadline, ready, pad_seconds), False)
+    allowance = timedelta(seconds=0.5 * prompt_pad_seconds)
+    if ready <= prompt - allowance:
+        return Moment(prompt, False)
+    if scored is not None and summarized is not None and summarized > scored:
+        return Moment(publish_at(prompt, ready, prompt_pad_seconds), False)
+    return Moment(publish_at(deadline, ready, pad_seconds), True)
 
 
 def step_seconds(deadline_seconds: float | None, pad_seconds: float) -> float | None:

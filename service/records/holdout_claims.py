@@ -52,32 +52,37 @@ def beat(engine: Engine, sub_id: str, token: str) -> bool:
     return bool(result.rowcount)
 
 
-def open_seal(engine: Engine, sub_id: str, token: str, deadline_seconds: float | None = None) -> datetime | None:
+def open_seal(engine: Engine, sub_id: str, token: str, deadline_seconds: float | None = None,
+              prompt_seconds: float | None = None) -> datetime | None:
     """Mark the attempt held by ``token`` spent, just before its first use of the sealed rows; return the deadline.
 
-    The deadline (``service.gate.timing``) is ``deadline_seconds`` from now, or none. Return None when another
+    The deadline and the prompt time (``service.gate.timing``) are ``deadline_seconds`` and ``prompt_seconds``
+    from now, or none. Return None when another
     job has taken the claim over (this one stalled past the stale limit): the caller must then not touch the
     seal.
     """
     now = utcnow()
     deadline = None if deadline_seconds is None else now + timedelta(seconds=deadline_seconds)
+    prompt = None if prompt_seconds is None else now + timedelta(seconds=prompt_seconds)
     with engine.begin() as conn:
         result = conn.execute(
             update(holdout_claims)
             .where(holdout_claims.c.submission_id == sub_id, holdout_claims.c.token == token,
                    holdout_claims.c.opened_at.is_(None))
-            .values(opened_at=now, heartbeat_at=now, deadline_at=deadline)
+            .values(opened_at=now, heartbeat_at=now, deadline_at=deadline, prompt_at=prompt)
         )
     return (deadline or now) if result.rowcount else None
 
 
-def deadline(engine: Engine, sub_id: str) -> datetime | None:
-    """The deadline fixed for the sealed step of ``sub_id``, or None (none fixed, or the seal never opened)."""
+def times(engine: Engine, sub_id: str) -> tuple[datetime | None, datetime | None]:
+    """The prompt time and the deadline fixed for the sealed step of ``sub_id``; None where none was fixed
+    (turned off, a claim from before the column, or the seal never opened)."""
     with engine.connect() as conn:
-        value = conn.execute(
-            select(holdout_claims.c.deadline_at).where(holdout_claims.c.submission_id == sub_id)
-        ).scalar_one_or_none()
-    return as_utc(value)
+        row = conn.execute(
+            select(holdout_claims.c.prompt_at, holdout_claims.c.deadline_at)
+            .where(holdout_claims.c.submission_id == sub_id)
+        ).first()
+    return (None, None) if row is None else (as_utc(row.prompt_at), as_utc(row.deadline_at))
 
 
 def is_spent(engine: Engine, sub_id: str) -> bool:

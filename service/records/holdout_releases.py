@@ -27,7 +27,8 @@ def record(engine: Engine, row: dict[str, Any]) -> tuple[dict[str, Any], bool]:
                 select(submissions.c.team).where(submissions.c.id == values["submission_id"])).scalar_one()
             audit.record(conn, "system", team, "holdout.released", values["submission_id"],
                          {"mode": values["mode"], "released": values["released"] is not None,
-                          "spent": values["spent"], "outcome": values.get("outcome")}, at=values["released_at"])
+                          "spent": values["spent"], "outcome": values.get("outcome"),
+                          "late": bool(values.get("late"))}, at=values["released_at"])
     except IntegrityError:
         existing = get(engine, values["submission_id"])
         if existing is None:

@@ -143,10 +143,12 @@ def mark_running(engine: Engine, sub_id: str) -> None:
 
 
 def store_summary(engine: Engine, sub_id: str, cv_summary: dict[str, Any]) -> None:
-    """Store the cross-validation summary document (everything but the holdout score)."""
+    """Store the cross-validation summary document (everything but the holdout score), and when."""
+    now = utcnow()
     with engine.begin() as conn:
         conn.execute(
-            update(submissions).where(submissions.c.id == sub_id).values(cv_summary=cv_summary, updated_at=utcnow())
+            update(submissions).where(submissions.c.id == sub_id).values(cv_summary=cv_summary, summarized_at=now,
+                                                                      updated_at=now)
         )
 
 

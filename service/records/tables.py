@@ -90,6 +90,7 @@ submissions = Table(
     Column("failure_cause", String(20)),  # why a failed submission failed (service.vocabulary.FAILURE_CAUSES)
     Column("warnings", JSON),  # what the submitter was warned of at submission, e.g. folds that lack a class
     Column("cv_summary", JSON),  # the cross-validation summary once computed (without holdout scores)
+    Column("summarized_at", DateTime(timezone=True)),  # when cv_summary was stored
     Column("verdict", JSON),  # the review gate's decision, reasons and rule figures
     Column("policy_version", Integer),  # the policy version the verdict was judged under
     Column("champion_id", String(40)),  # the champion in force when judged (None: there was none)
@@ -165,6 +166,9 @@ holdout_claims = Table(
     # The moment fixed, before opening them, by which the step on the sealed rows must have stored its outcome
     # (service.gate.timing); the verdict is shown no earlier.
     Column("deadline_at", DateTime(timezone=True)),
+    # The earlier moment, fixed the same way, at which a verdict given by then is shown; one given later
+    # because of the sealed step is shown as if there were none, and counted once more.
+    Column("prompt_at", DateTime(timezone=True)),
 )
 
 policies = Table(
@@ -226,6 +230,8 @@ holdout_releases = Table(
     Column("policy_version", Integer),  # the policy released under; null on rows from before it was kept
     Column("identity", String(100)),  # whose budget the query spent; null on older rows: owner_key_id's
     Column("outcome", String(20)),  # released | withheld | failed; null on older rows (read from released)
+    # Shown later than its prompt time because of the sealed step: that bit was one of the units spent.
+    Column("late", Boolean),
     Index("ix_releases_owner", "dataset_id", "owner_key_id", "released_at"),
     Index("ix_releases_identity", "dataset_id", "identity", "released_at"),
 )

@@ -202,6 +202,7 @@ def _score(
         return _not_scored(ctx, submission_id, dataset, error)
     left = ctx.settings.job_timeout_seconds("holdout") - (time.monotonic() - attempt.started) - STORE_SECONDS
     deadline = timing.deadline_seconds(dev_seconds, ctx.settings.holdout_pad_seconds, left)
+    prompt = timing.prompt_seconds(dev_seconds, ctx.settings.holdout_prompt_seconds, deadline)
 
     if not holdout_claims.beat(engine, submission_id, attempt.token):
         # This job stalled past the stale limit and another took the claim over: that one scores.
@@ -213,7 +214,7 @@ def _score(
         raise  # worker.jobs.failure fails the submission (cause "data") and stops its other jobs
     # Reading our own sealed file (fingerprint checked) depends on no configuration; from here on the
     # submitted pipeline meets the sealed rows, so the attempt is spent whatever ends it.
-    if holdout_claims.open_seal(engine, submission_id, attempt.token, deadline) is None:
+    if holdout_claims.open_seal(engine, submission_id, attempt.token, deadline, prompt) is None:
         return {"submission_id": submission_id, "holdout": "claim lost"}
     attempt.opened = True
     # The step must end half a pad before the deadline, leaving the verdict job time to be given by then.

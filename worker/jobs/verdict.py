@@ -18,7 +18,7 @@ only here, so a client that sees ``succeeded`` always finds its verdict.
 from __future__ import annotations
 
 from collections.abc import Mapping
-from datetime import datetime, timedelta
+from datetime import timedelta
 from typing import Any
 
 import numpy as np
@@ -65,15 +65,19 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
     evidence = gather(engine, sub, dataset, metric)
     candidate, folds = evidence.candidate, evidence.folds
     champion_id = champions.current(engine, dataset["id"])
-    # Shown no earlier than the sealed step's deadline, so no time a submitter reads tells its duration.
-    published = timing.publish_at(holdout_claims.deadline(engine, submission_id), utcnow(),
-                                  ctx.settings.holdout_pad_seconds)
+    # Shown at a time fixed before the seal was opened, so no time a submitter reads tells the sealed step's
+    # duration; a verdict late because of that step is counted as one more query (service.gate.timing).
+    prompt, deadline = holdout_claims.times(engine, submission_id)
+    shown = timing.moment(prompt=prompt, deadline=deadline, ready=utcnow(), scored=as_utc(raw["scored_at"]),
+                          summarized=as_utc(sub.get("summarized_at")), pad_seconds=ctx.settings.holdout_pad_seconds,
+                          prompt_pad_seconds=ctx.settings.holdout_prompt_seconds)
+    published = shown.at
 
     try:
         with redis.lock(release_lock_name(str(dataset["id"])), timeout=120, blocking_timeout=60):
             told = holdout_releases.get(engine, submission_id)
             if told is None:
-                told = _release(ctx, sub, dataset, policy, version, raw, candidate, folds, champion_id, published)
+                told = _release(ctx, sub, dataset, policy, version, raw, candidate, folds, champion_id, shown)
     except DamagedLosses as exc:
         # A retry would find the same file: fail now, with nothing released, rather than stay running.
         error = f"{exc}; nothing about the holdout was released"
@@ -113,11 +117,15 @@ def _trimmed(ctx: WorkerContext, dataset: Mapping[str, Any], submission_id: str,
 def _release(
     ctx: WorkerContext, sub: Mapping[str, Any], dataset: Mapping[str, Any], policy: Policy, version: int,
     raw: Mapping[str, Any], candidate: Mapping[Cell, float], folds: list[dict[str, Any]], champion_id: str | None,
-    published: datetime,
+    shown: timing.Moment,
 ) -> dict[str, Any]:
     """Release the stored outcome under the policy, counted against the submitter's and the team's budget,
-    then make the champion decision on the sealed rows when the budget still allows one more query."""
+    then make the champion decision on the sealed rows when the budget still allows one more query.
+
+    A late answer (``shown.late``: its time tells that the sealed step ran past the prompt time) spends one
+    more unit, before the champion decision is weighed against what is left."""
     engine = ctx.engine
+    published, late = shown.at, int(shown.late)
     values = np.array(list(candidate.values()), dtype=float)
     last = holdout_releases.latest(engine, dataset["id"])
     state: dict[str, Any] = dict(last["state"]) if last else {}
@@ -148,13 +156,13 @@ def _release(
                       rng=np.random.default_rng(), best_per_example=best, team_spent_at=team_spent_at)
     window = policy.release.window_hours
     left = min(budget_status(spent_at, now, policy.release.budget, window).remaining,
-               budget_status(team_spent_at, now, policy.release.team_limit, window).remaining) - outcome.spent
+               budget_status(team_spent_at, now, policy.release.team_limit, window).remaining) - outcome.spent - late
     # The champion decision on the sealed rows is one more holdout query, paid from the same budgets.
     queried = 0 if failed else sealed_champion.decide_once(ctx, sub, dataset, policy, champion_id, left)
     row, _created = holdout_releases.record(engine, {
         "submission_id": sub["id"], "dataset_id": dataset["id"], "owner_key_id": sub["owner_key_id"],
         "identity": identity, "mode": outcome.mode, "released": outcome.released,
-        "spent": outcome.spent + queried,
+        "spent": outcome.spent + queried + late, "late": bool(late),
         "state": outcome.state, "withheld_until": outcome.withheld_until, "policy_version": version,
         "outcome": outcome.outcome, "released_at": published,  # the unit is spent when the answer is shown
     })

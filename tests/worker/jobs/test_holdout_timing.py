@@ -8,8 +8,11 @@ here from the moment the seal was opened, which the submitter cannot see: that o
 stronger than a real one).
 
 - pad 0 (before): the finished time follows the step, and one submission reads the bit;
-- pad 1 s (after): the finished time is the deadline in both worlds, fixed before the seal was opened; a
-  step that would run past it is stopped and told as a failed attempt, shown at the same moment.
+- pad 1 s, no prompt time: the finished time is the deadline in both worlds, fixed before the seal was
+  opened; a step that would run past it is stopped and told as a failed attempt, shown at the same moment;
+- pad 1 s and a prompt time of 0.1 s (the defaults): the fast world is shown at the prompt time, the slow
+  world at the deadline -- the attacker reads the bit, and that bit spent one more unit of the budget and
+  says so (``late``): counted, like any other answer.
 """
 
 from __future__ import annotations
@@ -17,6 +20,7 @@ from __future__ import annotations
 import contextlib
 import time
 from collections.abc import Iterator
+from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
 from typing import Any
@@ -30,7 +34,7 @@ from sqlalchemy import select
 
 from service import team_scope
 from service.gate.release import FAILED_NOTE
-from service.records import audit, submission_versions, submissions
+from service.records import audit, holdout_releases, submission_versions, submissions
 from service.records.engine import as_utc
 from service.records.keys import KeyInfo
 from service.records.tables import holdout_claims
@@ -48,8 +52,9 @@ SLOW_DEPOT = "depot-slow"
 SLOW_SECONDS = 0.4
 
 
-def _context(tmp_path: Path, pad: float) -> Iterator[WorkerContext]:
-    settings = Settings.load({"data_dir": tmp_path, "database_url": "", "holdout_pad_seconds": pad}, environ={})
+def _context(tmp_path: Path, pad: float, prompt: float = 0.0) -> Iterator[WorkerContext]:
+    settings = Settings.load({"data_dir": tmp_path, "database_url": "", "holdout_pad_seconds": pad,
+                              "holdout_prompt_seconds": prompt}, environ={})
     context = WorkerContext(settings=settings, engine=upgraded_engine(settings))
     runtime.install(context)
     yield context
@@ -57,13 +62,14 @@ def _context(tmp_path: Path, pad: float) -> Iterator[WorkerContext]:
     context.engine.dispose()
 
 
-@pytest.fixture(params=[0.0, 1.0], ids=["pad off", "pad 1 s"])
+@pytest.fixture(params=[(0.0, 0.0), (1.0, 0.0), (1.0, 0.1)], ids=["pad off", "pad 1 s", "pad 1 s, prompt 0.1 s"])
 def padded(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[WorkerContext]:
-    yield from _context(tmp_path, request.param)
+    yield from _context(tmp_path, *request.param)
 
 
 @pytest.fixture
 def padded_1s(tmp_path: Path) -> Iterator[WorkerContext]:
+    """The deadline alone (no prompt time): every verdict that read the holdout is shown at it."""
     yield from _context(tmp_path, 1.0)
 
 
@@ -87,8 +93,18 @@ def _slow_on_the_depot(monkeypatch: pytest.MonkeyPatch, ctx: WorkerContext, seco
 _current: list[str] = [""]
 
 
-def _observe(ctx: WorkerContext, redis_url: str, sealed_slow: bool) -> tuple[float, str | None]:
-    """One submission; return (seconds from the seal's opening to the finished time it reads, holdout note)."""
+@dataclass(frozen=True)
+class Seen:
+    """What one submission showed its submitter, and what it cost."""
+
+    seconds: float  # from the seal's opening to the finished time it reads
+    note: str | None  # the holdout part's note
+    late: bool  # the holdout part says the verdict came late
+    spent: int  # units of the budget its release spent
+
+
+def _observe(ctx: WorkerContext, redis_url: str, sealed_slow: bool) -> Seen:
+    """One submission, polled as its submitter would until its verdict is shown."""
     frame = load_diabetes(as_frame=True).frame
     frame["depot"] = pd.Series(np.where(frame["sex"] > 0, "north", "south"), dtype="str")
     dev, hold = frame.iloc[:400].copy(), frame.iloc[400:].copy()
@@ -120,7 +136,10 @@ def _observe(ctx: WorkerContext, redis_url: str, sealed_slow: bool) -> tuple[flo
                                      .where(holdout_claims.c.submission_id == sub_id)).scalar_one())
     assert opened is not None
     finished = datetime.fromisoformat(doc["finished_at"])
-    return (finished - opened).total_seconds(), doc["result"]["holdout"]["note"]
+    told = holdout_releases.get(ctx.engine, sub_id)
+    assert told is not None
+    part = doc["result"]["holdout"]
+    return Seen((finished - opened).total_seconds(), part["note"], part["late"], int(told["spent"]))
 
 
 def test_the_finished_time_tells_the_step_duration_only_without_a_deadline(
@@ -128,20 +147,27 @@ def test_the_finished_time_tells_the_step_duration_only_without_a_deadline(
 ) -> None:
     ctx = padded
     _slow_on_the_depot(monkeypatch, ctx, SLOW_SECONDS)
-    fast, _ = _observe(ctx, redis_url, sealed_slow=False)
-    slow, _ = _observe(ctx, redis_url, sealed_slow=True)
-    gap = slow - fast
-    pad = ctx.settings.holdout_pad_seconds
+    fast = _observe(ctx, redis_url, sealed_slow=False)
+    slow = _observe(ctx, redis_url, sealed_slow=True)
+    gap = slow.seconds - fast.seconds
+    pad, prompt = ctx.settings.holdout_pad_seconds, ctx.settings.holdout_prompt_seconds
     # One submission per world, a threshold halfway: the bit is read when the gap exceeds the jitter of a
     # few tens of milliseconds that the rest of the step adds (the attacker sees the seal's opening here).
     bits = 1.0 if gap > SLOW_SECONDS / 2 else 0.0
-    print(f"\n[timing attacker] pad {pad:g} s: finished {fast:.3f} s after the seal opened (fast world), "
-          f"{slow:.3f} s (slow world) -> {bits:g} bit per submission beyond the counted answer")
+    counted = slow.spent - fast.spent  # what reading it cost, beyond the answer both worlds paid for
+    print(f"\n[timing attacker] pad {pad:g} s, prompt {prompt:g} s: finished {fast.seconds:.3f} s after the seal "
+          f"opened (fast world), {slow.seconds:.3f} s (slow world) -> {bits:g} bit per submission, "
+          f"{counted} more unit(s) counted for it")
+    assert not fast.late
     if pad == 0:
-        assert bits == 1.0
+        assert bits == 1.0 and counted == 0 and not slow.late  # read for free
+    elif prompt == 0:
+        assert slow.seconds == fast.seconds  # both shown at the deadline, fixed before the seal was opened
+        assert bits == 0.0 and counted == 0
     else:
-        assert fast == slow  # both shown at the deadline, fixed before the seal was opened
-        assert bits == 0.0
+        assert fast.seconds < 0.5  # the prompt time: twice a few ms + 0.1 s
+        assert slow.seconds >= 1.0  # the deadline, as with no prompt time
+        assert bits == 1.0 and counted == 1 and slow.late  # read, and counted as one more query
 
 
 def test_a_step_past_its_limit_is_a_failed_attempt_shown_at_the_deadline(
@@ -149,10 +175,10 @@ def test_a_step_past_its_limit_is_a_failed_attempt_shown_at_the_deadline(
 ) -> None:
     ctx = padded_1s
     _slow_on_the_depot(monkeypatch, ctx, 30.0)  # far past the step's limit (1.5 s for a 2 s deadline)
-    fast, fast_note = _observe(ctx, redis_url, sealed_slow=False)
-    slow, slow_note = _observe(ctx, redis_url, sealed_slow=True)
-    assert fast_note != FAILED_NOTE and slow_note == FAILED_NOTE  # the counted answer says it failed
-    assert fast == slow  # and the moment it is shown says nothing more
+    fast = _observe(ctx, redis_url, sealed_slow=False)
+    slow = _observe(ctx, redis_url, sealed_slow=True)
+    assert fast.note != FAILED_NOTE and slow.note == FAILED_NOTE  # the counted answer says it failed
+    assert fast.seconds == slow.seconds  # and the moment it is shown says nothing more
     stored = submissions.get_holdout(ctx.engine, _current[0])
     assert stored is not None and "passed its limit" in stored["error"]
 
