@@ -57,7 +57,9 @@ from peak_memory import PeakMemory
 from sklearn.dummy import DummyRegressor
 from sklearn.linear_model import Ridge
 from sklearn.model_selection import cross_validate
+from sqlalchemy import Engine
 from team_ci import run_team_ci
+from timeline import timeline
 
 from service.cli import embedded, supervisor
 from service.cli.client import ServiceClient
@@ -158,7 +160,7 @@ class Service:
         if doc["state"] != "succeeded":
             raise SystemExit(f"submission {doc['id']} ended {doc['state']}: {doc.get('error')}")
         finished = datetime.fromisoformat(doc["finished_at"].replace("Z", "+00:00")).timestamp()
-        return doc, Timing(finished - posted_wall, seen)
+        return doc, Timing(finished - posted_wall, seen, posted_wall)
 
     def folds(self, submission_id: str) -> list[dict[str, Any]]:
         reply = self.submitter.get(f"/v1/submissions/{submission_id}/folds", timeout=600)
@@ -178,6 +180,7 @@ class Timing:
 
     recorded: float
     seen: float
+    posted_wall: float  # time.time() just before the POST
 
 
 def same_plan(frame: pd.DataFrame, folds: list[dict[str, Any]]) -> tuple[np.ndarray, np.ndarray, Splits]:
@@ -209,7 +212,7 @@ class SizeResult:
 
 
 def bench_size(service: Service, frame: pd.DataFrame, import_root: Path, runs: int,
-               worker_pids: list[int], watch_memory: bool) -> SizeResult:
+               worker_pids: list[int], watch_memory: bool, engine: Engine) -> SizeResult:
     n = len(frame)
     path = import_root / f"bench-{n}.parquet"
     frame.to_parquet(path, index=False)
@@ -234,6 +237,7 @@ def bench_size(service: Service, frame: pd.DataFrame, import_root: Path, runs: i
         docs.append(doc)
         print(f"  {n:>9,} rows  run {run + 1}/{runs}: POST -> succeeded {timing.recorded:7.3f} s "
               f"(seen by the polling client after {timing.seen:.3f} s)", flush=True)
+        print(f"{'':>26}{timeline(engine, doc['id'], timing.posted_wall)}", flush=True)
 
     x_dev, y_dev, splits = same_plan(frame, service.folds(docs[0]["id"]))
     cv_seconds: dict[int, list[float]] = {1: [], 2: []}
@@ -341,15 +345,15 @@ def main(argv: list[str] | None = None) -> int:
             engine = make_engine(Settings.load(environ=stack.env))
             service = Service(stack.base_url, create_key(engine, "bench", "steward", "bench")[1],
                               create_key(engine, "bench", "submitter", "bench")[1])
-            engine.dispose()
             worker_pids = [w.pid for w in stack.workers]
             results = []
             for n in sizes:
                 frame = make_table(n)
                 runs = args.runs if n < 100_000 else args.big_runs
                 results.append(bench_size(service, frame, import_root, runs, worker_pids,
-                                          watch_memory=n >= 100_000))
+                                          watch_memory=n >= 100_000, engine=engine))
                 del frame
+            engine.dispose()
     team_ci = run_team_ci(args.burst, args.poll_seconds) if args.burst or args.poll_seconds else None
     report(results)
     if team_ci is not None:

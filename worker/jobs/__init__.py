@@ -11,6 +11,7 @@ from typing import Any
 from rq import get_current_job
 
 from worker.jobs import champion_fold, check, holdout, summary, verdict
+from worker.jobs.early_verdict import judge_if_last
 from worker.jobs.failure import classify, handle_lost_work
 from worker.jobs.fold import run_fold as _run_fold
 from worker.jobs.runtime import current, fold_runner
@@ -49,7 +50,10 @@ def run_champion_fold(submission_id: str, champion_id: str, repeat: int, fold: i
 def summarize(submission_id: str) -> dict[str, Any]:
     """Summarise a submission's folds (fan-in) and store the summary."""
     job = get_current_job()
-    return summary.summarize(current(), submission_id, job.connection if job is not None else None)
+    answer = summary.summarize(current(), submission_id, job.connection if job is not None else None)
+    if job is not None:
+        judge_if_last(current(), job.connection, job.id, submission_id)
+    return answer
 
 
 def score_holdout(submission_id: str) -> dict[str, Any]:
@@ -60,12 +64,16 @@ def score_holdout(submission_id: str) -> dict[str, Any]:
     """
     ctx = current()
     try:
-        return holdout.score_holdout(ctx, submission_id)
+        answer = holdout.score_holdout(ctx, submission_id)
     except Exception as exc:
         loss = classify(exc, "the holdout refit and scoring", ctx.settings.fold_timeout_seconds * 2,
                         ctx.settings.memory_limit_mib, sealed=True)
         handle_lost_work(ctx, get_current_job(), submission_id, loss)
         raise
+    job = get_current_job()
+    if job is not None:  # the holdout step's watch has ended: this is the verdict's own work
+        judge_if_last(ctx, job.connection, job.id, submission_id)
+    return answer
 
 
 def give_verdict(submission_id: str) -> dict[str, Any]:
