@@ -38,6 +38,11 @@ def champion_state(engine: Engine, dataset_id: str) -> dict[str, Any]:
     return {"dataset": dataset_id, "champion": champion, "history": history}
 
 
+# Said of a verdict shown after its prompt time because of the step on the sealed rows (service.gate.timing).
+LATE_NOTE = ("; the verdict came after its prompt time because of the step on the holdout rows, which told "
+             "something of them and so counted as one more holdout query")
+
+
 def holdout_part(release: dict[str, Any] | None, state: str | None = None,
                  policy_version: int | None = None) -> dict[str, Any]:
     """Shape a release row as the ``result.holdout`` part: what the submitter may see, and why.
@@ -59,8 +64,8 @@ def holdout_part(release: dict[str, Any] | None, state: str | None = None,
         # Told only because the budget allowed it, in the same words whatever failed.
         return {"released": False, "mode": release["mode"], "scores": None, "withheld_until": None,
                 "note": FAILED_NOTE, "policy_version": release.get("policy_version") or policy_version,
-                "ladder": None, "summary": "no holdout figure: " + FAILED_NOTE[0].lower() + FAILED_NOTE[1:],
-                "late": late}
+                "ladder": None, "summary": "no holdout figure: " + FAILED_NOTE[0].lower() + FAILED_NOTE[1:]
+                + (LATE_NOTE if late else ""), "late": late}
     if released is None:
         note = ("withheld: the submitter's or the team's holdout queries on this dataset are used up for now"
                 + (f"; more are available from {withheld_until}" if withheld_until else ""))
@@ -73,7 +78,8 @@ def holdout_part(release: dict[str, Any] | None, state: str | None = None,
     return {"released": released is not None, "mode": release["mode"], "scores": released,
             "withheld_until": withheld_until, "note": note,
             "policy_version": policy_version if version is None else version, "ladder": ladder,
-            "summary": holdout_summary(release["mode"], released, ladder, note), "late": late}
+            "summary": holdout_summary(release["mode"], released, ladder, note) + (LATE_NOTE if late else ""),
+            "late": late}
 
 
 def ladder_reading(mode: str | None, released: dict[str, float] | None, holder: str | None,

@@ -34,6 +34,7 @@ from sqlalchemy import select
 
 from service import team_scope
 from service.gate.release import FAILED_NOTE
+from service.gate.review_state import LATE_NOTE
 from service.records import audit, holdout_releases, submission_versions, submissions
 from service.records.engine import as_utc
 from service.records.keys import KeyInfo
@@ -100,6 +101,7 @@ class Seen:
     seconds: float  # from the seal's opening to the finished time it reads
     note: str | None  # the holdout part's note
     late: bool  # the holdout part says the verdict came late
+    summary: str  # the holdout part's plain sentence
     spent: int  # units of the budget its release spent
 
 
@@ -139,7 +141,7 @@ def _observe(ctx: WorkerContext, redis_url: str, sealed_slow: bool) -> Seen:
     told = holdout_releases.get(ctx.engine, sub_id)
     assert told is not None
     part = doc["result"]["holdout"]
-    return Seen((finished - opened).total_seconds(), part["note"], part["late"], int(told["spent"]))
+    return Seen((finished - opened).total_seconds(), part["note"], part["late"], part["summary"], int(told["spent"]))
 
 
 def test_the_finished_time_tells_the_step_duration_only_without_a_deadline(
@@ -168,6 +170,7 @@ def test_the_finished_time_tells_the_step_duration_only_without_a_deadline(
         assert fast.seconds < 0.5  # the prompt time: twice a few ms + 0.1 s
         assert slow.seconds >= 1.0  # the deadline, as with no prompt time
         assert bits == 1.0 and counted == 1 and slow.late  # read, and counted as one more query
+        assert slow.summary.endswith(LATE_NOTE) and not fast.summary.endswith(LATE_NOTE)  # and told so
 
 
 def test_a_step_past_its_limit_is_a_failed_attempt_shown_at_the_deadline(
