@@ -16,27 +16,35 @@ from redis import Redis
 from rq.exceptions import NoSuchJobError
 from rq.job import Job, JobStatus
 
-from service.submission.dispatch import verdict_job_id
+from service.records import submissions
+from service.submission.dispatch import holdout_job_id, summary_job_id, verdict_job_id
 from worker.jobs import verdict
 from worker.jobs.runtime import WorkerContext
 
 log = logging.getLogger(__name__)
 
+KEY_PREFIX = "sealfold:early-verdict:"  # set once per submission by the job that gives its verdict
+KEY_SECONDS = 3600
+
 
 def judge_if_last(ctx: WorkerContext, connection: Redis, job_id: str, submission_id: str) -> bool:
-    """Give the verdict now when every other job the verdict job waits on has finished; return whether given.
+    """Give the verdict now when everything the verdict job waits on is done; return whether this call gave it.
 
-    ``job_id`` is the job that is ending (its own status is not yet finished). Two jobs ending at once may
-    both see the other still running: neither gives it, and the verdict job does.
+    ``job_id`` is the job that is ending (its own status is not yet finished). The summary and the holdout
+    job count as done once their outcome is stored (the other may be ending at this very moment, its RQ
+    status not yet finished); anything else (a champion's folds) once RQ says it finished. Of two jobs that
+    both find everything done, one gives the verdict (a key set once in Redis); the verdict job, queued
+    only after both have ended, finds it given.
     """
     try:
         waiting = Job.fetch(verdict_job_id(submission_id), connection=connection)
         if waiting.get_status() != JobStatus.DEFERRED:
             return False  # already queued or run: the verdict job is on its way
         others = [d for d in waiting.dependency_ids if d != job_id]
-        ended = Job.fetch_many(others, connection=connection)
-        if any(j is None or j.get_status(refresh=False) != JobStatus.FINISHED for j in ended):
+        if not all(_done(ctx, submission_id, j) for j in Job.fetch_many(others, connection=connection)):
             return False
+        if not connection.set(f"{KEY_PREFIX}{submission_id}", job_id, nx=True, ex=KEY_SECONDS):
+            return False  # the other job is giving it
         verdict.give_verdict(ctx, connection, submission_id)
         return True
     except NoSuchJobError:
@@ -44,3 +52,16 @@ def judge_if_last(ctx: WorkerContext, connection: Redis, job_id: str, submission
     except Exception:  # the verdict job gives it, with its own retries
         log.exception("giving the verdict of %s at the end of %s failed; the verdict job will", submission_id, job_id)
         return False
+
+
+def _done(ctx: WorkerContext, submission_id: str, job: Job | None) -> bool:
+    if job is None:
+        return False
+    if job.get_status(refresh=False) == JobStatus.FINISHED:
+        return True
+    if job.id == summary_job_id(submission_id):
+        row = submissions.get(ctx.engine, submission_id)
+        return row is not None and row["cv_summary"] is not None
+    if job.id == holdout_job_id(submission_id):
+        return submissions.get_holdout(ctx.engine, submission_id) is not None
+    return False

@@ -1,0 +1,76 @@
+"""The summary or holdout job that ends last gives the verdict itself, once, and only when all it waits on is done.
+
+Real Redis (the session's private redis-server) and RQ job records from the service's own enqueueing; the
+jobs themselves run in this process. Data: scikit-learn's bundled diabetes table (Efron et al. 2004).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+from redis import Redis
+from rq.job import Job
+from sklearn.datasets import load_diabetes
+
+from service.records import submissions, verdicts
+from service.settings import Settings
+from service.submission import dispatch
+from service.submission.resolved import ValidationPlan
+from tests.support.records import upgraded_engine
+from tests.support.worker_records import add_dataset, add_submission, config_document
+from worker import jobs
+from worker.jobs import runtime
+from worker.jobs.early_verdict import judge_if_last
+from worker.jobs.runtime import WorkerContext
+
+
+@pytest.fixture
+def ctx(tmp_path: Path, redis_url: str) -> Iterator[WorkerContext]:
+    settings = Settings.load({"data_dir": tmp_path, "database_url": "", "redis_url": redis_url,
+                              "queue_name": f"early-{tmp_path.name}"}, environ={})
+    context = WorkerContext(settings=settings, engine=upgraded_engine(settings))
+    runtime.install(context)
+    yield context
+    runtime.uninstall()
+    context.engine.dispose()
+
+
+def _enqueued(ctx: WorkerContext, redis: Redis) -> str:
+    frame = load_diabetes(as_frame=True).frame
+    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression", folds=3)
+    sub_id = add_submission(ctx, dataset, config_document(dataset, "Ridge", metrics=["rmse"]))
+    dispatch.enqueue_submission(redis, ctx.settings, "fleet", sub_id, ValidationPlan("kfold", folds=3, seed=0))
+    for f in range(3):
+        jobs.run_fold(sub_id, 0, f)
+    return sub_id
+
+
+def test_the_last_job_to_end_gives_the_verdict_once(ctx: WorkerContext, redis_url: str) -> None:
+    redis = Redis.from_url(redis_url)
+    sub_id = _enqueued(ctx, redis)
+    jobs.summarize(sub_id)  # outside RQ: no job of its own, so it leaves the verdict to the others
+    holdout, summary = dispatch.holdout_job_id(sub_id), dispatch.summary_job_id(sub_id)
+    # The holdout outcome is not stored yet: the summary's job cannot give it.
+    assert not judge_if_last(ctx, redis, summary, sub_id)
+    assert submissions.get(ctx.engine, sub_id)["verdict"] is None  # type: ignore[index]
+    jobs.score_holdout(sub_id)
+    # Both outcomes stored (RQ still has both jobs running): the job ending now gives it, and the other,
+    # ending at the same moment, finds it being given.
+    assert judge_if_last(ctx, redis, holdout, sub_id)
+    assert not judge_if_last(ctx, redis, summary, sub_id)
+    row = submissions.get(ctx.engine, sub_id)
+    assert row is not None and row["verdict"] is not None and row["state"] == "succeeded"
+    assert len(verdicts.history(ctx.engine, sub_id)) == 1
+
+
+def test_a_verdict_job_already_queued_is_left_to_give_it(ctx: WorkerContext, redis_url: str) -> None:
+    redis = Redis.from_url(redis_url)
+    sub_id = _enqueued(ctx, redis)
+    jobs.summarize(sub_id)
+    jobs.score_holdout(sub_id)
+    # The verdict job, queued by RQ once both jobs ended.
+    Job.fetch(dispatch.verdict_job_id(sub_id), connection=redis).set_status("queued")
+    assert not judge_if_last(ctx, redis, dispatch.holdout_job_id(sub_id), sub_id)
+    assert submissions.get(ctx.engine, sub_id)["verdict"] is None  # type: ignore[index]
