@@ -32,6 +32,7 @@ class BurstResult:
     post_seconds: float  # until the last POST was answered
     total_seconds: float  # until the last finished_at
     cpu_seconds: dict[str, float] = field(default_factory=dict)  # by the stack's process roles, when measured
+    redis_calls: dict[str, float] = field(default_factory=dict)  # Redis commands served, by name, when counted
 
     @property
     def per_minute(self) -> float:
@@ -117,3 +118,7 @@ def report_burst(results: list[BurstResult]) -> None:
             spent = ", ".join(f"{role} {seconds * 1000 / r.submissions:.0f}" for role, seconds in r.cpu_seconds.items())
             print(f"{'':>13}CPU ms per submission: {spent} (total {sum(r.cpu_seconds.values()):.1f} s "
                   f"on {os.cpu_count()} cores)")
+        if r.redis_calls:
+            per = {name: calls / r.submissions for name, calls in r.redis_calls.items() if calls}
+            top = ", ".join(f"{name} {n:.0f}" for name, n in sorted(per.items(), key=lambda kv: -kv[1])[:8])
+            print(f"{'':>13}Redis commands per submission: {sum(per.values()):.0f} ({top}, ...)")

@@ -17,8 +17,9 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from burst import BurstResult, register_diabetes, report_burst, run_burst
-from cpu_time import by_role, difference
+from cpu_time import WORKERS, by_role, difference
 from polling import PollingResult, bench_polling, report_polling, start_gunicorn
+from redis import Redis
 
 from service.cli import embedded, supervisor
 from service.cli.client import ServiceClient
@@ -62,11 +63,14 @@ def run_team_ci(burst_size: int, poll_seconds: float, worker_counts: tuple[int, 
                 dataset_id = register_diabetes(steward, import_root, f"diabetes for {workers} worker(s)")
                 if burst_size:
                     roles = {"API": [stack.api.pid], "checker": [stack.checker.pid] if stack.checker else [],
-                             "workers (and their holdout horses)": [w.pid for w in stack.workers],
+                             WORKERS: [w.pid for w in stack.workers],
                              "redis": [stack.redis.pid] if stack.redis else []}
-                    before = by_role(roles)
+                    redis = Redis.from_url(stack.redis_url)
+                    before, calls_before = by_role(roles), command_calls(redis)
                     burst = run_burst(submitter, dataset_id, workers, burst_size)
-                    burst = dataclasses.replace(burst, cpu_seconds=difference(by_role(roles), before))
+                    burst = dataclasses.replace(burst, cpu_seconds=difference(by_role(roles), before),
+                                                redis_calls=difference(command_calls(redis), calls_before))
+                    redis.close()
                     print(f"  {workers} worker(s): {burst.per_minute:.0f} submissions/min", flush=True)
                     result.bursts.append(burst)
                 if index == 0 and poll_seconds > 0:
@@ -76,6 +80,12 @@ def run_team_ci(burst_size: int, poll_seconds: float, worker_counts: tuple[int, 
                     base_url = start_gunicorn(sup, stack.env, data_dir / "logs")
                     result.polling = bench_polling(base_url, submitter_token, page[0]["id"], poll_seconds)
     return result
+
+
+def command_calls(redis: Redis) -> dict[str, float]:
+    """How many times each Redis command was called since the server started (``INFO commandstats``)."""
+    stats = redis.info("commandstats")
+    return {name.removeprefix("cmdstat_"): float(entry["calls"]) for name, entry in stats.items()}
 
 
 def _one_submission(submitter: ServiceClient, dataset_id: str) -> dict[str, object]:

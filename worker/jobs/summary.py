@@ -16,6 +16,7 @@ from __future__ import annotations
 import math
 import platform
 from collections.abc import Mapping, Sequence
+from functools import lru_cache
 from typing import Any
 
 import numpy as np
@@ -131,10 +132,17 @@ def describe(values: Sequence[float | None]) -> dict[str, Any]:
     std = float(x.std(ddof=1)) if n > 1 else None
     interval = None
     if std is not None:
-        half = float(stats.t.ppf(0.975, n - 1)) * std / math.sqrt(n)
+        half = t_975(n - 1) * std / math.sqrt(n)
         interval = [mean - half, mean + half]
     return {"n": n, "mean": mean, "std": std, "min": float(x.min()), "max": float(x.max()),
             "naive_interval_95": interval}
+
+
+@lru_cache(maxsize=256)
+def t_975(df: int) -> float:
+    """t(0.975, df): the same few degrees of freedom come back for every term of every summary, and scipy's
+    ``ppf`` costs some 0.1 ms a call (a summary of 10 coefficients makes 15 calls)."""
+    return float(stats.t.ppf(0.975, df))
 
 
 def within(described: dict[str, Any], bounds: Bounds) -> dict[str, Any]:

@@ -42,6 +42,7 @@ from worker.jobs.failure import AVOID_WORKERS, LEFT_COUNT, limit_memory
 from worker.jobs.runtime import repeating
 from worker.process import placement
 from worker.process.allowlist import ALLOWED_CALLBACKS, AllowListedJob, RefusedJob, func_name, request_id
+from worker.process.connection import worker_redis
 from worker.process.data_check import data_checker
 from worker.process.fair_order import FairQueueWorker
 from worker.process.fetched_data import DataFetcher
@@ -298,7 +299,7 @@ def run_worker(settings: Settings, *, burst: bool = False, name: str | None = No
     if not checker:
         folds.start()  # forked now, warm and before any thread exists
         runtime.install_fold_runner(folds)
-    redis = Redis.from_url(settings.redis_url)
+    redis = worker_redis(settings.redis_url)
     worker = build_worker(settings, redis, name, checker=checker)
     worker.data_check = lambda: data_check(False)
     try:

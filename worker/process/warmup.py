@@ -11,9 +11,12 @@ copy-on-write of the pages it touches (some 3,500 for such a fold).
 
 What the warm-up touches, and why that is safe:
 - files: only a temporary data dir of its own, removed afterwards;
-- the records DB: reads, and updates whose WHERE matches no row (an id ``new_id`` never makes),
-  never an insert; then the engine's pool is disposed, so no connection opened here exists when
-  the first horse forks (each horse also gets a fresh pool from ``runtime.after_fork``);
+- the records DB: reads, updates whose WHERE matches no row (an id ``new_id`` never makes), inserts
+  the foreign key refuses (a submission of that id does not exist) and one insert inside a transaction
+  rolled back: nothing is written. The holdout job's writes are among them, because every holdout job
+  runs in a fresh horse, which would compile them again each time. Then the engine's pool is disposed,
+  so no connection opened here exists when the first horse forks (each horse also gets a fresh pool
+  from ``runtime.after_fork``);
 - Redis: nothing (the worker's connection is made after the warm-up).
 A failing warm-up is logged and the worker starts anyway: it only saves time.
 """
@@ -24,15 +27,20 @@ import dataclasses
 import gc
 import logging
 import tempfile
+from contextlib import suppress
+from datetime import timedelta
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
+from sqlalchemy import Engine, select
+from sqlalchemy.exc import IntegrityError
 
 from service.catalog import load_catalog
 from service.catalog.metrics import METRICS
-from service.records import datasets, submissions
+from service.records import audit, datasets, holdout_claims, submissions
+from service.records.tables import submissions as submissions_table
 from service.settings import Settings
 from service.submission.resolved import ResolvedModel, ValidationPlan
 from service.vault import store
@@ -139,3 +147,21 @@ def _warm_records(ctx: WorkerContext) -> None:
     submissions.transition(engine, NO_SUCH_ID, "succeeded", LIVE_STATES)
     submissions.transition(engine, NO_SUCH_ID, "failed", LIVE_STATES, error="")
     submissions.store_summary(engine, NO_SUCH_ID, {})
+    _warm_holdout_writes(engine)
+
+
+def _warm_holdout_writes(engine: Engine) -> None:
+    """Compile the holdout job's writes without writing: the claim's insert and the outcome's are refused by
+    their foreign key (no submission has this id), the updates match no row, the audit event is rolled back."""
+    holdout_claims.claim(engine, NO_SUCH_ID, NO_SUCH_ID, timedelta(0))
+    holdout_claims.beat(engine, NO_SUCH_ID, NO_SUCH_ID)
+    holdout_claims.open_seal(engine, NO_SUCH_ID, NO_SUCH_ID, 1.0)
+    with suppress(IntegrityError):
+        submissions.store_holdout_once(engine, NO_SUCH_ID, {"rmse": 0.0}, "", 0.0)
+    with engine.connect() as conn:  # what store_holdout_once runs after its insert, in its transaction
+        transaction = conn.begin()
+        try:
+            conn.execute(select(submissions_table.c.team).where(submissions_table.c.id == NO_SUCH_ID)).all()
+            audit.record(conn, "system", "", "holdout.scored", NO_SUCH_ID, {"metrics": []})
+        finally:
+            transaction.rollback()

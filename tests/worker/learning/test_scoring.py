@@ -126,6 +126,16 @@ def test_non_finite_values_become_none() -> None:
         assert compute("r2", [1.0], [2.0]) is None
 
 
+@pytest.mark.parametrize("name", ["rmse", "r2", "mae", "pinball_loss(alpha=0.9)"])
+def test_values_scikit_learn_rejects_are_still_rejected(name: str) -> None:
+    # Without options a regression metric skips scikit-learn's parameter validation; its checks of the values
+    # themselves (here: as many predictions as targets, all finite) must still run, as they do with options.
+    with pytest.raises(ValueError, match="inconsistent numbers of samples"):
+        compute(name, [1.0, 2.0, 3.0], [1.0, 2.0])
+    with pytest.raises(ValueError, match="NaN"):
+        compute(name, [1.0, 2.0, 3.0], [1.0, float("nan"), 3.0])
+
+
 @pytest.mark.parametrize("name", ["wine", "iris"])
 def test_folds_missing_a_class_score_on_the_dataset_classes_like_sklearn_with_labels(name: str) -> None:
     # Reference: sklearn.metrics called with explicit labels= (the dataset's classes) on the fold

@@ -15,6 +15,7 @@ from sqlalchemy import QueuePool, func, select
 from service.records import submissions
 from service.records.tables import metadata
 from tests.support.worker_records import add_dataset, add_submission, config_document
+from worker.jobs import holdout
 from worker.jobs.runtime import WorkerContext
 from worker.process import warmup
 
@@ -64,3 +65,21 @@ def test_a_failing_warm_up_is_logged_not_raised(
     with caplog.at_level(logging.WARNING, logger="worker.process.warmup"):
         warmup.warm_up(ctx)
     assert "warm-up failed" in caplog.text
+
+
+def test_the_holdout_job_compiles_no_statement_after_the_warm_up(ctx: WorkerContext) -> None:
+    """Each holdout job runs in a fresh fork: a statement first compiled there is compiled again in every one."""
+    frame = load_diabetes(as_frame=True).frame
+    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression")
+    sub_id = add_submission(ctx, dataset, config_document(dataset, "Ridge", metrics=("rmse", "r2")))
+    cache = ctx.engine._compiled_cache
+    assert cache is not None
+    cache.clear()  # as in a worker just started: what the set-up above compiled is not there
+    warmup.warm_up(ctx)
+    before = set(cache.keys())
+
+    answer = holdout.score_holdout(ctx, sub_id)
+
+    assert answer["holdout"] == "scored"
+    compiled_here = [str(compiled) for key, compiled in cache.items() if key not in before]
+    assert compiled_here == [], "\n".join(compiled_here)
