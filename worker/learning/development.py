@@ -182,7 +182,7 @@ def gather_rows(matrix: np.ndarray, rows: np.ndarray | None, columns: slice | np
 
     def take(part: np.ndarray) -> np.ndarray:
         if records is not None:
-            return records[part].view(matrix.dtype).reshape(len(part), -1)
+            return records[part].view(matrix.dtype).reshape(len(part), out.shape[1])
         return matrix[part, columns] if isinstance(columns, slice) else matrix[np.ix_(part, columns)]
 
     step = max(1, CHUNK_BYTES // max(1, matrix.strides[0]))

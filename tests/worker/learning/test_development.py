@@ -30,7 +30,8 @@ def test_gather_rows_copies_what_numpy_indexing_gives(
     matrix = np.load(tmp_path / "m.npy", mmap_mode="r")
     index = (lambda r: np.ix_(r, columns)) if isinstance(columns, np.ndarray) else (lambda r: (r, columns))
     for rows in (np.concatenate([rng.integers(0, 500, 200), [499, 0, 0, -1]]), np.arange(500), np.arange(0),
-                 np.concatenate([np.arange(3, 500, 4), np.arange(0, 500, 3)]), np.array([-3, -1, 2, 2, 9])):
+                 np.concatenate([np.arange(3, 500, 4), np.arange(0, 500, 3)]), np.array([-3, -1, 2, 2, 9]),
+                 np.array([3, 40, 41, 400]), np.array([7])):  # chunks without a row of them too
         got = gather_rows(matrix, rows, columns)
         expected = matrix[index(rows)]
         assert np.array_equal(got, expected) and got.shape == expected.shape
