@@ -146,9 +146,10 @@ def load_development(
                          f"numeric columns: {', '.join(names)}")
     positions = tuple(names.index(f) for f in features)
     if dataset["task"] == "regression" and keys == [target] and target in names:
-        # This maps every page of the file; the features' gather that follows finds them mapped and
-        # drops them from memory as it goes.
-        y = np.array(matrix[:, names.index(target)], dtype=np.float64)
+        # Gathered, not read whole: that would map every page of the file beside what a fold process
+        # kept of its previous fold's memory (``worker.process.fold_process``).
+        column = names.index(target)
+        y = gather_rows(matrix, None, slice(column, column + 1)).ravel()
         return DevelopmentData(tuple(features), y, None, matrix, positions), pd.DataFrame({target: y}, copy=False)
     frame = store.load_development_frame(settings, dataset["id"], columns=keys)
     if len(frame) != matrix.shape[0]:
