@@ -185,7 +185,7 @@ def _score(
     pipeline = fit_in_place(build_model(build_pipeline(config.model, kinds), config, classes, inner), config.model)
     try:
         started = time.perf_counter()
-        pipeline.fit(data.features_of(), data.target_of())
+        pipeline.fit(data.copied_features(), data.target_of())
         fit_seconds = time.perf_counter() - started
     except MemoryError:
         raise

@@ -1,16 +1,18 @@
 """Load a dataset's development rows and fold splits the way a fold job needs them.
 
-All-numeric features come from the memory-mapped ``numeric.npy``: a fold gathers its rows once,
-and features that are a run of adjacent columns (the usual case: every feature, in stored order)
-are taken as a column slice, so all rows of them are a view of the map, never a copy. Features
-with a categorical column come from ``development.parquet`` as a frame. The fold keys (target,
-group, time) come from the parquet file too, except for a regression with no group or time
-column, whose numeric target is read from the memory map.
+All-numeric features come from the memory-mapped ``numeric.npy``: a job copies the rows it needs
+out of the map a chunk at a time, dropping each chunk's pages of the file from its resident memory
+once copied (``gather_rows``), so it holds its private copy and one chunk of the file, never both
+the copy and the whole file. Features with a categorical column come from ``development.parquet``
+as a frame. The fold keys (target, group, time) come from the parquet file too, except for a
+regression with no group or time column, whose numeric target is read from the memory map.
 """
 
 from __future__ import annotations
 
+import itertools
 import logging
+import mmap
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -33,6 +35,13 @@ from service.vault.folds import (
 from worker.learning.pipeline import uses_frame
 
 log = logging.getLogger(__name__)
+
+CHUNK_BYTES = 2 << 20  # of matrix rows copied between two releases of their pages (``gather_rows``)
+# Reading a page of a file map also maps cached pages of the file around it (fault-around, a whole
+# large folio), though never outside its page table's 2 MiB: a release reaches that far back too, over
+# pages the chunk before released that this chunk's first reads may have mapped again.
+REMAPPED_BYTES = 2 << 20
+MAX_RUNS = 8  # ascending runs of rows that ``gather_rows`` reads together in file order
 
 
 def column_kinds(dataset: Mapping[str, Any]) -> dict[str, str]:
@@ -77,22 +86,31 @@ class DevelopmentData:
         return int(self.y.shape[0])
 
     def features_of(self, rows: np.ndarray | None = None) -> np.ndarray | pd.DataFrame:
-        """Return the feature rows at ``rows`` (all when None) in the pipeline's input form."""
+        """Return the feature rows at ``rows`` in the pipeline's input form, as a private copy.
+
+        None: every row, as a read-only view of the map when the features are adjacent columns (for
+        a look that copies nothing); ``copied_features`` gives them to a fit.
+        """
         if self.frame is not None:
             return self.frame if rows is None else self.frame.iloc[rows]
         assert self.matrix is not None
         columns = column_selector(self.positions)
         if rows is None:
             return np.asarray(self.matrix[:, columns])  # a view of the map when columns is a slice
-        if isinstance(columns, slice):
-            return gather_rows(self.matrix, rows, columns)
-        return np.asarray(self.matrix[np.ix_(rows, columns)])
+        return gather_rows(self.matrix, rows, columns)
+
+    def copied_features(self) -> np.ndarray | pd.DataFrame:
+        """Return every row's features for a fit that may overwrite them (``fit_in_place``): a private copy."""
+        if self.frame is not None:
+            return self.frame
+        assert self.matrix is not None
+        return gather_rows(self.matrix, None, column_selector(self.positions))
 
     def split_features(self, train: np.ndarray, test: np.ndarray) -> tuple[Any, Any]:
-        """Return the feature rows of a fold's train and test indices, reading the memory map once.
+        """Return the feature rows of a fold's train and test indices, gathered together.
 
-        One gather of train-then-test rows, cut into two C-contiguous views: the same values as two
-        ``features_of`` calls, in one pass over the map instead of two.
+        One gather of train-then-test rows, cut into two C-contiguous views of one array: the same
+        values as two ``features_of`` calls.
         """
         if self.frame is not None:
             return self.frame.iloc[train], self.frame.iloc[test]
@@ -128,7 +146,10 @@ def load_development(
                          f"numeric columns: {', '.join(names)}")
     positions = tuple(names.index(f) for f in features)
     if dataset["task"] == "regression" and keys == [target] and target in names:
-        y = np.array(matrix[:, names.index(target)], dtype=np.float64)
+        # Gathered, not read whole: that would map every page of the file beside what a fold process
+        # kept of its previous fold's memory (``worker.process.fold_process``).
+        column = names.index(target)
+        y = gather_rows(matrix, None, slice(column, column + 1)).ravel()
         return DevelopmentData(tuple(features), y, None, matrix, positions), pd.DataFrame({target: y}, copy=False)
     frame = store.load_development_frame(settings, dataset["id"], columns=keys)
     if len(frame) != matrix.shape[0]:
@@ -145,21 +166,79 @@ def column_selector(positions: Sequence[int]) -> slice | np.ndarray:
     return np.asarray(positions, dtype=np.intp)
 
 
-def gather_rows(matrix: np.ndarray, rows: np.ndarray, columns: slice) -> np.ndarray:
-    """Return ``matrix[rows, columns]`` (a new C-ordered array) for a run of adjacent columns.
+def gather_rows(matrix: np.ndarray, rows: np.ndarray | None, columns: slice | np.ndarray) -> np.ndarray:
+    """Return ``matrix[rows, columns]`` (every row when ``rows`` is None) as a new C-ordered array.
 
-    The run's values in one row are adjacent bytes, so each row's run is viewed as one opaque
-    record and the records are taken with a single fancy index: a copy of a whole record per row
-    where numpy's mixed (array, slice) indexing copies value by value -- 20-30 % less time for a
-    million rows of 20 columns, and the same bytes.
+    Copied ``CHUNK_BYTES`` of matrix rows at a time, each chunk's pages of a memory map then dropped
+    from this process's resident memory (``release_rows``): a job holds its private copy and about
+    one chunk of the file, not the copy and every page of the file it touched. Rows that are a few
+    ascending runs (every row; a fold's train-then-test rows) are read in file order, every run's
+    rows of one block of the file at a time, so each page is mapped once; other rows in their order.
+    A run of adjacent columns is taken as one opaque record per row: numpy's mixed (array, slice)
+    indexing copies value by value, 20-30 % slower for a million rows of 20 columns.
     """
+    count, size = (matrix.shape[0] if rows is None else len(rows)), matrix.shape[0]
+    out = np.empty((count, np.arange(matrix.shape[1])[columns].size), dtype=matrix.dtype)
+    records = _records(matrix, columns)
+
+    def take(part: np.ndarray) -> np.ndarray:
+        if records is not None:
+            return records[part].view(matrix.dtype).reshape(len(part), out.shape[1])
+        return matrix[part, columns] if isinstance(columns, slice) else matrix[np.ix_(part, columns)]
+
+    step = max(1, CHUNK_BYTES // max(1, matrix.strides[0]))
+    if rows is None:
+        for low in range(0, count, step):
+            out[low:low + step] = matrix[low:low + step][:, columns]
+            release_rows(matrix, low, low + step)
+        return out
+    bounds = np.concatenate([[0], np.flatnonzero(np.diff(rows) < 0) + 1, [count]])  # of the ascending runs
+    if count > 0 and len(bounds) <= MAX_RUNS + 1 and rows[bounds[:-1]].min() >= 0 and rows[bounds[1:] - 1].max() < size:
+        for low in range(0, size, step):
+            for first, stop in itertools.pairwise(bounds):
+                i, j = first + np.searchsorted(rows[first:stop], [low, low + step])
+                out[i:j] = take(rows[i:j])
+            release_rows(matrix, low, low + step)
+        return out
+    for start in range(0, count, step):
+        part = rows[start:start + step]
+        out[start:start + len(part)] = take(part)
+        release_rows(matrix, int(part.min()), int(part.max()) + 1)
+    return out
+
+
+def _records(matrix: np.ndarray, columns: slice | np.ndarray) -> np.ndarray | None:
+    """View each row's run of adjacent ``columns`` as one opaque record, or None when they are no such run."""
+    if not isinstance(columns, slice) or not matrix.flags.c_contiguous:
+        return None
     start, stop, step = columns.indices(matrix.shape[1])
-    if step != 1 or stop <= start or not matrix.flags.c_contiguous:
-        return np.asarray(matrix[rows, columns])
+    if step != 1 or stop <= start:
+        return None
     width = (stop - start) * matrix.itemsize
-    records = np.ndarray((matrix.shape[0],), dtype=np.dtype((np.void, width)), buffer=matrix,
-                         offset=start * matrix.itemsize, strides=(matrix.strides[0],))
-    return records[rows].view(matrix.dtype).reshape(len(rows), stop - start)
+    return np.ndarray((matrix.shape[0],), dtype=np.dtype((np.void, width)), buffer=matrix,
+                      offset=start * matrix.itemsize, strides=(matrix.strides[0],))
+
+
+def release_rows(matrix: np.ndarray, first: int, stop: int) -> None:
+    """Drop the pages holding rows [first, stop) of a read-only memory map from this process's resident memory.
+
+    ``MADV_DONTNEED`` on a read-only shared file mapping only unmaps the pages: the file's page cache
+    keeps them, and reading those rows again maps them again, unchanged. Anything else -- an array
+    in memory, a writeable or copy-on-write map -- is left alone.
+    """
+    if not isinstance(matrix, np.memmap) or matrix.mode != "r" or stop <= first:
+        return
+    mapping: Any = matrix
+    while isinstance(mapping, np.ndarray):
+        mapping = mapping.base
+    if not isinstance(mapping, mmap.mmap):
+        return
+    offset = matrix.ctypes.data - np.frombuffer(mapping, dtype=np.uint8).ctypes.data  # of row 0 in the mapping
+    low = max(0, offset + max(0, first) * matrix.strides[0] - REMAPPED_BYTES)
+    high = offset + min(stop, matrix.shape[0]) * matrix.strides[0]
+    low -= low % mmap.PAGESIZE
+    if high > low:
+        mapping.madvise(mmap.MADV_DONTNEED, low, high - low)
 
 
 def split_for(

@@ -199,14 +199,13 @@ def fit_in_place(model: BaseEstimator, spec: ResolvedModel) -> BaseEstimator:
     """Return a copy of ``model`` whose final estimator may overwrite its training matrix (``copy_X=False``).
 
     Only for a fit whose input the service never reads again and that scikit-learn hands the
-    estimator as a private array: the holdout refit, whose rows are the read-only memory map
-    (copied by scikit-learn's validation into a writeable array before the estimator sees them)
-    or the fresh output of the preprocessing, and a fold whose training scores come from a copied
-    sample. Linear models then centre that array in place instead of copying it once more -- some
-    25 ms and 160 MB at a million rows of 20 features -- and their coefficients are the same to the
-    last bit (a test checks). ``model`` itself is left as it is (a learning curve clones it and
-    scores its own input). A nested search, an estimator without ``copy_X`` and a submission that
-    set ``copy_X`` get ``model`` back unchanged.
+    estimator as a private array: the holdout refit, whose rows are a private copy of the memory
+    map's (``DevelopmentData.copied_features``) or the fresh output of the preprocessing, and a
+    fold whose training scores come from a copied sample. Linear models then centre that array in
+    place instead of copying it once more -- some 25 ms and 160 MB at a million rows of 20 features
+    -- and their coefficients are the same to the last bit (a test checks). ``model`` itself is
+    left as it is (a learning curve clones it and scores its own input). A nested search, an
+    estimator without ``copy_X`` and a submission that set ``copy_X`` get ``model`` back unchanged.
     """
     if not isinstance(model, Pipeline) or "copy_X" in spec.params:
         return model
