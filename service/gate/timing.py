@@ -16,9 +16,9 @@ spent is that moment.
 
 A deadline generous enough that an honest step on a busy host meets it is long for a small table (a pad
 of a second). So the holdout job also fixes a *prompt time*, the same way but tighter (``prompt_seconds``:
-twice the development-row prediction time plus ``holdout_prompt_seconds``, a tenth of a second by default),
+twice the development-row prediction time plus ``holdout_prompt_seconds``, a twentieth of a second by default),
 and ``moment`` decides when a verdict is shown: at the prompt time when it is given by then (half a prompt
-pad before it); at its own time on the prompt's grid when it waited on the cross-validation summary, stored
+pad before it); half a prompt pad after its own time when it waited on the cross-validation summary, stored
 after the holdout outcome (a time the sealed rows do not set, however long the step took); and otherwise --
 the verdict waited on the sealed step and missed the prompt time -- as without a prompt time (the deadline,
 or its grid), the lateness counted as one more holdout query against the submitter's and the team's budget.
@@ -93,7 +93,8 @@ def moment(*, prompt: datetime | None, deadline: datetime | None, ready: datetim
 
     - given half a prompt pad before it: the prompt time, whatever the step took;
     - the summary stored after the holdout outcome (the verdict waited on the folds, not on the sealed
-      step): ``ready`` on the prompt's grid, a time set by the summary and the queues;
+      step): half a prompt pad after ``ready``, a time set by the summary and the queues, the half pad
+      leaving the verdict's own work time to be stored by then;
     - otherwise (the step, or the verdict waiting on it, past the prompt time): as without a prompt time,
       and late: that it came late depends on the sealed step, so it is counted as one more query.
     """
@@ -103,7 +104,7 @@ def moment(*, prompt: datetime | None, deadline: datetime | None, ready: datetim
     if ready <= prompt - allowance:
         return Moment(prompt, False)
     if scored is not None and summarized is not None and summarized > scored:
-        return Moment(publish_at(prompt, ready, prompt_pad_seconds), False)
+        return Moment(ready + allowance, False)
     return Moment(publish_at(deadline, ready, pad_seconds), True)
 
 

@@ -56,8 +56,12 @@ def _judged(stack: Stack) -> tuple[str, dict[str, Any]]:
         assert doc["state"] in ("queued", "running"), doc
         assert doc["result"] is None or doc["result"]["verdict"] is None
         if submissions.get(stack.engine, sub_id)["verdict"] is not None:  # type: ignore[index]
-            seen_running_after_scoring = True  # judged in the records, still shown as running
-            assert client.get(f"/v1/submissions/{sub_id}/verdicts").json()["history"] == []
+            # Judged in the records: the history read now must be empty if the submission still reads as
+            # running after it (read in that order, so a publication in between is not taken for a leak).
+            history = client.get(f"/v1/submissions/{sub_id}/verdicts").json()["history"]
+            if client.get(f"/v1/submissions/{sub_id}").json()["state"] == "running":
+                seen_running_after_scoring = True
+                assert history == []
         assert time.monotonic() < deadline, stack.log_path.read_text(errors="replace")[-3000:]
         time.sleep(0.05)
     return sub_id, {**doc, "seen_held": seen_running_after_scoring}
@@ -94,9 +98,8 @@ def test_the_verdict_is_shown_at_a_time_fixed_in_advance_and_every_time_read_is_
         assert prompt - opened < fixed - opened  # shown at the prompt time, whatever the step took
     else:
         # Later than the prompt time, not late: the verdict waited on the summary, stored after the outcome,
-        # and is shown on the prompt's grid.
+        # and is shown half a prompt pad after it was given.
         assert summarized > scored and finished > prompt
-        steps = (finished - prompt).total_seconds() / PROMPT_PAD
-        assert steps == pytest.approx(round(steps), abs=1e-3)
+        assert (finished - summarized).total_seconds() >= PROMPT_PAD / 2
     print(f"\n[timing e2e] prompt {prompt is not None}: shown {(finished - opened).total_seconds():.3f} s after "
           f"the seal opened, late {late}")

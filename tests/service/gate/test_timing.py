@@ -72,7 +72,7 @@ def test_the_prompt_time_is_a_tighter_margin_never_past_the_deadline() -> None:
     assert timing.prompt_seconds(0.01, 0.1, None) is None  # no deadline, no prompt time
 
 
-def test_a_verdict_is_shown_at_the_prompt_time_on_its_grid_or_as_without_one_and_then_counted() -> None:
+def test_a_verdict_is_shown_at_the_prompt_time_or_after_the_summary_or_as_without_one_and_then_counted() -> None:
     prompt, deadline = T0 + timedelta(seconds=0.2), T0 + timedelta(seconds=2)
 
     def shown(ready: float, scored: float, summarized: float) -> timing.Moment:
@@ -83,12 +83,12 @@ def test_a_verdict_is_shown_at_the_prompt_time_on_its_grid_or_as_without_one_and
     # Given half a prompt pad before it (0.15 s): at the prompt time, whatever the step took.
     assert shown(0.15, 0.1, 0.05) == timing.Moment(prompt, False)
     assert shown(0.12, 0.01, 0.1) == timing.Moment(prompt, False)
-    # The verdict waited on the summary, stored after the holdout outcome: its own time on the 0.1 s grid.
-    assert shown(0.93, 0.05, 0.9) == timing.Moment(T0 + timedelta(seconds=1.0), False)
+    # The verdict waited on the summary, stored after the holdout outcome: half a prompt pad after its own time.
+    assert shown(0.93, 0.05, 0.9) == timing.Moment(T0 + timedelta(seconds=0.98), False)
     # It waited on the sealed step, past the prompt time: as with the deadline alone, and late.
     assert shown(0.31, 0.3, 0.05) == timing.Moment(deadline, True)
     # However long the step took, when the summary came after it: set by the summary.
-    assert shown(0.93, 0.3, 0.9) == timing.Moment(T0 + timedelta(seconds=1.0), False)
+    assert shown(0.93, 0.3, 0.9) == timing.Moment(T0 + timedelta(seconds=0.98), False)
     assert shown(2.3, 2.2, 0.05) == timing.Moment(T0 + timedelta(seconds=3), True)  # the deadline's grid
     # No prompt time fixed (turned off, or an older claim): the deadline as before, never late.
     assert timing.moment(prompt=None, deadline=deadline, ready=T0, scored=T0, summarized=None, pad_seconds=1.0,
