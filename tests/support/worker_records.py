@@ -28,7 +28,8 @@ def add_dataset(
     dev = development.reset_index(drop=True)
     dev.insert(0, "row_id", [f"d{i + 1:06d}" for i in range(len(dev))])
     hold = holdout.reset_index(drop=True)
-    kinds = column_kinds(development)
+    # As registration records them: each column's missing values among the development rows.
+    kinds = [{**c, "missing": int(dev[c["name"]].isna().sum())} for c in column_kinds(development)]
     manifest = {"columns": kinds, "numeric_columns": [c["name"] for c in kinds if c["kind"] == "numeric"],
                 "target": target, "task": task}
     store.write_dataset(ctx.settings, ds_id, dev, hold, manifest)

@@ -13,6 +13,7 @@ from sklearn.utils._param_validation import InvalidParameterError
 
 from tests.support.worker_records import add_dataset, config_document
 from worker import jobs
+from worker.jobs import trial_fit
 from worker.jobs.runtime import WorkerContext
 
 
@@ -291,6 +292,21 @@ def test_missing_values_fed_to_an_estimator_that_refuses_them(ctx: WorkerContext
     assert "Ridge" in found["/model/estimator"] and words.split(".")[0] in found["/model/estimator"]
     imputed = [{"transformer": "SimpleImputer", "columns": ["bmi"], "params": {"strategy": "median"}}]
     assert check(dataset, "Ridge", preprocess=imputed)["ok"] is True
+
+
+def test_features_registered_without_missing_values_are_not_scanned_for_them(
+    ctx: WorkerContext, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    frame = load_diabetes(as_frame=True).frame
+    frame.loc[5, "bmi"] = np.nan  # one missing bmi among the development rows, none in the other columns
+    dataset = add_dataset(ctx, frame.iloc[:420], frame.iloc[420:], "target", "regression")
+    scanned: list[int] = []
+    real = trial_fit._rows_missing_each_feature
+    monkeypatch.setattr(trial_fit, "_rows_missing_each_feature", lambda data: scanned.append(1) or real(data))
+    assert check(dataset, "Ridge", features=["age", "bp"])["ok"] is True  # recorded complete: no scan
+    assert scanned == []
+    found = pointers(check(dataset, "Ridge", features=["age", "bmi"]))  # bmi has one: scanned, and found
+    assert scanned == [1] and list(found) == ["/model/estimator"]
 
 
 def test_a_mean_imputer_on_a_text_column_names_its_step(ctx: WorkerContext) -> None:
