@@ -25,6 +25,7 @@ _ENV_NAMES: dict[str, str] = {
     "db_lock_timeout_seconds": "SEALFOLD_DB_LOCK_TIMEOUT",
     "queue_name": "SEALFOLD_QUEUE",
     "fold_timeout_seconds": "SEALFOLD_FOLD_TIMEOUT",
+    "fold_batch_max_rows": "SEALFOLD_FOLD_BATCH_ROWS",
     "check_timeout_seconds": "SEALFOLD_CHECK_TIMEOUT",
     "memory_limit_mib": "SEALFOLD_MEMORY_LIMIT_MIB",
     "job_nice": "SEALFOLD_JOB_NICE",
@@ -59,6 +60,11 @@ class Settings:
     db_lock_timeout_seconds: float = 2.0
     queue_name: str = "sealfold"
     fold_timeout_seconds: int = 3600
+    # A submission on a dataset of at most this many development rows runs its folds one after another in a
+    # single job (each fold still under the fold timeout), instead of a job per fold: on small tables a job's
+    # bookkeeping costs more than its fit. Larger tables keep a job per fold, spread over the workers (0: a
+    # job per fold always). Set it the same on the API and the workers.
+    fold_batch_max_rows: int = 5000
     check_timeout_seconds: float = 10.0
     # What a fold or holdout process may add to its address space (RLIMIT_AS) while it runs a job, in MiB
     # (0: no limit); beyond it the job fails with "memory limit N MiB exceeded" and is not retried.
@@ -109,6 +115,9 @@ class Settings:
                 raise SettingsError(f"{name} must be 0 (no limit) or positive, got {getattr(self, name)}")
         if self.fold_timeout_seconds < 1:
             raise SettingsError(f"fold_timeout_seconds must be positive, got {self.fold_timeout_seconds}")
+        if self.fold_batch_max_rows < 0:
+            raise SettingsError(f"fold_batch_max_rows must be 0 (a job per fold) or positive, got "
+                                f"{self.fold_batch_max_rows}")
         if self.log_format not in ("json", "text"):
             raise SettingsError(f"log_format must be json or text, got {self.log_format!r}")
         if self.min_free_disk_mb < 0:

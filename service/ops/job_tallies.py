@@ -19,6 +19,7 @@ OUTCOMES = ("started", "finished", "failed", "timed_out", "retried")
 KINDS = {
     "check_config": "check",
     "run_fold": "fold",
+    "run_folds": "fold",
     "summarize": "summary",
     "score_holdout": "holdout",
     "give_verdict": "verdict",

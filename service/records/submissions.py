@@ -203,6 +203,14 @@ def fold_rows(engine: Engine, sub_id: str) -> list[dict[str, Any]]:
     return [dict(r) for r in rows]
 
 
+def recorded_cells(engine: Engine, sub_id: str) -> set[tuple[int, int]]:
+    """Return the (repeat, fold) cells of a submission that have a fold record."""
+    with engine.connect() as conn:
+        rows = conn.execute(select(fold_results.c.repeat, fold_results.c.fold)
+                            .where(fold_results.c.submission_id == sub_id))
+        return {(int(r), int(f)) for r, f in rows}
+
+
 def folds_done(engine: Engine, sub_id: str) -> int:
     """Count the folds with a stored outcome."""
     with engine.connect() as conn:

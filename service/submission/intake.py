@@ -113,7 +113,8 @@ def submit(
             raise
         return same, False
     dispatch.enqueue_submission(redis, settings, key.team, sub_id, validation,
-                                dispatch.champion_to_replay(engine, dataset["id"], validation))
+                                dispatch.champion_to_replay(engine, dataset["id"], validation),
+                                together=dispatch.folds_together(settings, int(dataset["rows_development"])))
     stored = submissions.get(engine, sub_id)
     assert stored is not None
     return stored, True

@@ -18,7 +18,7 @@ from rq.serializers import JSONSerializer
 from sklearn.datasets import make_regression
 
 from service.submission import team_queues
-from service.submission.dispatch import fold_job_id
+from service.submission.dispatch import fold_job_id, folds_job_id
 from tests.support.datasets import diabetes_frame, register
 from tests.support.servers import redis_server, start_worker
 from tests.support.stack import Stack, running_stack
@@ -87,6 +87,7 @@ def test_posts_are_answered_while_every_fold_worker_is_busy(checked_stack: Stack
     for sub in accepted:
         assert stack.wait_for(sub.json()["id"])["state"] == "succeeded"
     assert stack.workers[0].poll() is None  # the fold worker survived the stop
-    jobs = Job.fetch_many([fold_job_id(s.json()["id"], 0, f) for s in accepted for f in range(5)],
-                          connection=redis, serializer=JSONSerializer)
+    ids = [i for s in accepted for i in (folds_job_id(s.json()["id"]),
+                                         *(fold_job_id(s.json()["id"], 0, f) for f in range(5)))]
+    jobs = Job.fetch_many(ids, connection=redis, serializer=JSONSerializer)
     assert all(j is None or j.worker_name in (None, "checked-0") for j in jobs)

@@ -23,7 +23,7 @@ from sklearn.datasets import make_regression
 
 from service.ops.data_identity import marker_path
 from service.submission import team_queues
-from service.submission.dispatch import fold_job_id, holdout_job_id
+from service.submission.dispatch import fold_job_id, folds_job_id, holdout_job_id
 from tests.support.datasets import diabetes_frame, register
 from tests.support.servers import redis_server, start_worker, stop_processes
 from tests.support.stack import Stack, running_stack
@@ -82,7 +82,7 @@ def test_a_worker_without_the_data_leaves_the_folds_to_a_worker_with_it(own_stac
         assert doc["result"]["cv"]["failures"] == []
     # The blind worker did take work, failed to read it, and left the retries to the good one.
     redis = Redis.from_url(stack.settings.redis_url)
-    ids = [fold_job_id(s, 0, f) for s in subs for f in range(5)] + [holdout_job_id(s) for s in subs]
+    ids = [i for s in subs for i in fold_ids(s)] + [holdout_job_id(s) for s in subs]
     avoided = [j.meta.get(AVOID_WORKERS) for j in Job.fetch_many(ids, connection=redis, serializer=JSONSerializer)
                if j is not None]
     assert ["lost-blind"] in avoided, avoided
@@ -103,6 +103,20 @@ def test_folds_no_worker_can_read_fail_the_submission_naming_missing_data(
     assert doc["result"] is None or doc["result"]["verdict"] is None  # no verdict on work that did not happen
 
 
+def fold_ids(sub_id: str) -> list[str]:
+    """The ids of a 5-fold submission's fold work in either shape: one job for every fold, or a job per fold."""
+    return [folds_job_id(sub_id), *(fold_job_id(sub_id, 0, f) for f in range(5))]
+
+
+@pytest.fixture(params=["one job for every fold", "a job per fold"])
+def shaped_stack(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[Stack]:
+    """A stack of its own with one good worker, running a small table's folds in one job or a job per fold."""
+    settings = {} if request.param == "one job for every fold" else {"fold_batch_max_rows": 0}
+    with redis_server(tmp_path) as url, running_stack(tmp_path / "data", url, "lost", workers=1,
+                                                      settings=settings) as live:
+        yield live
+
+
 def _slow_dataset(stack: Stack, name: str) -> dict[str, Any]:
     """2,000 rows of scikit-learn's make_regression: a GradientBoostingRegressor of 200 trees takes ~1 s a fold."""
     X, y = make_regression(n_samples=2000, n_features=8, noise=1.0, random_state=5)
@@ -114,13 +128,14 @@ def _children(pid: int) -> set[int]:
     return {int(c) for c in Path(f"/proc/{pid}/task/{pid}/children").read_text().split()}
 
 
-def test_a_fold_killed_by_the_system_on_every_attempt_fails_the_submission_naming_memory(own_stack: Stack) -> None:
+def test_a_fold_killed_by_the_system_on_every_attempt_fails_the_submission_naming_memory(shaped_stack: Stack) -> None:
     """A SIGKILL the worker did not send -- what the kernel's OOM killer does -- is retried, then a memory failure."""
-    stack = own_stack
+    stack = shaped_stack
     ds = _slow_dataset(stack, "killed-folds")
     sub_id = _submit(stack, ds["id"], "GradientBoostingRegressor", {"n_estimators": 400, "max_depth": 4})
     redis = Redis.from_url(stack.settings.redis_url)
-    target = fold_job_id(sub_id, 0, 0)
+    # The 1,600 development rows are a small table: by default its folds run in one job.
+    target = fold_job_id(sub_id, 0, 0) if stack.settings.fold_batch_max_rows == 0 else folds_job_id(sub_id)
     worker = stack.workers[0]
     kills = 0
     deadline = time.monotonic() + 120
@@ -168,7 +183,7 @@ def test_a_fold_over_its_timeout_fails_the_submission_naming_the_bound_without_r
     assert "exceeded the" in doc["error"] and "timeout of" in doc["error"], doc["error"]
     assert ("timeout of 2 s" in doc["error"]) or ("timeout of 4 s" in doc["error"])  # a fold's, or the holdout's
     redis = Redis.from_url(stack.settings.redis_url)
-    ids = [fold_job_id(sub_id, 0, f) for f in range(5)] + [holdout_job_id(sub_id)]
+    ids = [*fold_ids(sub_id), holdout_job_id(sub_id)]
     ended = (JobStatus.FINISHED, JobStatus.FAILED, JobStatus.STOPPED, JobStatus.CANCELED)
     deadline = time.monotonic() + 30
     while True:  # the rest of the chain is stopped: nothing stays queued or running
@@ -180,7 +195,11 @@ def test_a_fold_over_its_timeout_fails_the_submission_naming_the_bound_without_r
     # Not retried: the job that timed out failed with its retries unused; the folds behind it never ran.
     timed_out = [j for j in jobs if j.get_status() == JobStatus.FAILED]
     assert len(timed_out) == 1 and timed_out[0].retries_left in (0, None), [(j.id, j.retries_left) for j in jobs]
-    assert any(j.get_status() == JobStatus.CANCELED for j in jobs)
+    if timed_out[0].id == folds_job_id(sub_id):  # one job for every fold: it stopped at its first, the one timed out
+        assert doc["error"].startswith("fold 0 of repeat 0 exceeded the fold timeout of 2 s"), doc["error"]
+        assert stack.client().get(f"/v1/submissions/{sub_id}").json()["progress"]["folds_done"] == 0
+    else:
+        assert any(j.get_status() == JobStatus.CANCELED for j in jobs)
 
 
 def test_a_fold_over_the_memory_limit_fails_naming_the_limit(tight_stack: Stack) -> None:

@@ -90,7 +90,8 @@ def _slow_folds_under_way(stack: Stack, name: str) -> tuple[str, list[str]]:
     assert reply.status == 202, reply.text
     redis = Redis.from_url(stack.settings.redis_url)
     deadline = time.monotonic() + 60
-    while not (in_flight := [j for j in team_queues.started_job_ids(redis, stack.settings) if "-fold-" in j]):
+    # A job per fold, or one for every fold of a small table (<sub>-folds)
+    while not (in_flight := [j for j in team_queues.started_job_ids(redis, stack.settings) if "-fold" in j]):
         assert time.monotonic() < deadline, "no fold job started"
         time.sleep(0.02)
     return str(reply.json()["id"]), in_flight

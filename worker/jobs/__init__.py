@@ -10,9 +10,10 @@ from typing import Any
 
 from rq import get_current_job
 
+from service.records import submissions
 from worker.jobs import champion_fold, check, holdout, summary, verdict
 from worker.jobs.early_verdict import judge_if_last
-from worker.jobs.failure import classify, handle_lost_work
+from worker.jobs.failure import classify, fold_bound, handle_lost_work
 from worker.jobs.fold import run_fold as _run_fold
 from worker.jobs.runtime import current, fold_runner
 
@@ -40,6 +41,28 @@ def run_fold(submission_id: str, repeat: int, fold: int) -> dict[str, Any]:
                         ctx.settings.memory_limit_mib)
         handle_lost_work(ctx, get_current_job(), submission_id, loss)
         raise
+
+
+def run_folds(submission_id: str, cells: list[list[int]]) -> dict[str, Any]:
+    """Run several folds of a submission one after another, each as ``run_fold`` does (a small table's,
+    ``service.submission.dispatch.folds_together``).
+
+    Each fold gets a whole fold timeout of its own (``fold_bound``), so a fold is bounded as in a job of its
+    own. A fold an earlier attempt of this job recorded is not run again; a fold whose work is lost ends the
+    job the way ``run_fold`` ends it (retried, or the submission fails naming that fold).
+    """
+    ctx = current()
+    recorded = submissions.recorded_cells(ctx.engine, submission_id)
+    answers: list[dict[str, Any]] = []
+    for repeat, fold in cells:
+        if (repeat, fold) in recorded:
+            continue
+        with fold_bound(ctx.settings.fold_timeout_seconds):
+            answer = run_fold(submission_id, repeat, fold)
+        answers.append(answer)
+        if "skipped" in answer:  # the submission ended meanwhile: so do the folds left
+            break
+    return {"submission_id": submission_id, "folds": answers}
 
 
 def run_champion_fold(submission_id: str, champion_id: str, repeat: int, fold: int) -> dict[str, Any]:
@@ -86,6 +109,6 @@ def give_verdict(submission_id: str) -> dict[str, Any]:
 
 # The dotted names a sealfold worker agrees to run; nothing else in Redis is ever imported.
 ALLOWED_JOBS: frozenset[str] = frozenset(
-    f"{__name__}.{job.__name__}" for job in (check_config, run_fold, run_champion_fold, summarize, score_holdout,
-                                              give_verdict)
+    f"{__name__}.{job.__name__}" for job in (check_config, run_fold, run_folds, run_champion_fold, summarize,
+                                              score_holdout, give_verdict)
 )

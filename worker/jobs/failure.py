@@ -19,11 +19,14 @@ from __future__ import annotations
 
 import logging
 import resource
+import threading
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 
 from redis import Redis
 from rq.job import Job
-from rq.timeouts import JobTimeoutException
+from rq.timeouts import JobTimeoutException, UnixSignalDeathPenalty
 
 from service.errors import NotFound, SealBroken
 from service.records import submissions
@@ -120,6 +123,22 @@ def fail_submission(
             plan = ValidationPlan.from_document(sub["config"]["validation"])
             dispatch.stop_jobs(redis, ctx.settings, submission_id, plan, spare=spare)
     return moved
+
+
+@contextmanager
+def fold_bound(timeout_seconds: int) -> Iterator[None]:
+    """Stop the work inside after ``timeout_seconds`` with RQ's ``JobTimeoutException``, as a job's own timeout does.
+
+    For a job that runs several folds (``worker.jobs.run_folds``): each fold gets the fold timeout. The alarm
+    replaces the job's (a process has one), so the job is bounded by the sum of its folds' timeouts, which
+    is what its own timeout is set to. Outside the main thread, where no signal handler runs, the job's own
+    timeout alone applies.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    with UnixSignalDeathPenalty(timeout_seconds, JobTimeoutException):
+        yield
 
 
 def limit_memory(limit_mib: int) -> None:

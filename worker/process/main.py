@@ -163,7 +163,9 @@ class SealfoldWorker(FairQueueWorker):
             return
         job_tallies.record(self.connection, func_name(job), "started")
         if self.settings is not None:  # this worker's timeout for the kind, whatever the enqueuer said
-            job.timeout = self.settings.job_timeout_seconds(job_tallies.kind_of(func_name(job)))
+            name = func_name(job)  # None for a job sealfold did not write: its args are not read
+            folds = 1 if name is None else placement.folds_in(name, job.args)
+            job.timeout = self.settings.job_timeout_seconds(job_tallies.kind_of(name)) * folds
         try:
             with request_scope(request_id(job)):
                 self._execute(job, queue)

@@ -26,16 +26,24 @@ from __future__ import annotations
 
 from typing import Any
 
-from worker.jobs import check_config, give_verdict, run_fold, summarize
+from worker.jobs import check_config, give_verdict, run_fold, run_folds, summarize
 
 
 def _dotted(job: Any) -> str:
     return f"{job.__module__}.{job.__name__}"
 
 
-IN_PROCESS_JOBS: frozenset[str] = frozenset(_dotted(job) for job in (check_config, summarize, give_verdict, run_fold))
+IN_PROCESS_JOBS: frozenset[str] = frozenset(
+    _dotted(job) for job in (check_config, summarize, give_verdict, run_fold, run_folds))
 
 
 def runs_in_process(func_name: str | None) -> bool:
     """Return True when the job runs in the worker's own process rather than in a forked horse."""
     return func_name in IN_PROCESS_JOBS
+
+
+def folds_in(func_name: str | None, args: Any) -> int:
+    """How many folds a job runs: the cells of a ``run_folds`` job, else 1 (its timeout is this many fold timeouts)."""
+    if func_name == _dotted(run_folds) and isinstance(args, list | tuple) and len(args) > 1:
+        return max(1, len(args[1]))
+    return 1

@@ -40,9 +40,8 @@ def test_submit_answers_202_with_location_and_the_document(
     assert worker_says_ok[0]["model"]["estimator"] == "Ridge" and worker_says_ok[0]["metrics"] == ["rmse", "r2"]
     queue = team_queues.team_queue(api.app.extensions["sealfold"].redis, api.settings, "fleet")  # the submitter's
     # The holdout job first (it needs nothing from the folds and is the longest job), then the
-    # folds; the summary and the verdict wait (deferred) for what they read.
-    assert queue.job_ids == [dispatch.holdout_job_id(doc["id"]),
-                             *(dispatch.fold_job_id(doc["id"], 0, f) for f in range(5))]
+    # folds (a small table's: one job for all five); the summary and the verdict wait (deferred) for what they read.
+    assert queue.job_ids == [dispatch.holdout_job_id(doc["id"]), dispatch.folds_job_id(doc["id"])]
     jobs = {j.id: j for j in Job.fetch_many([dispatch.holdout_job_id(doc["id"]), dispatch.summary_job_id(doc["id"]),
                                              dispatch.verdict_job_id(doc["id"])], connection=queue.connection,
                                             serializer=JSONSerializer) if j is not None}

@@ -176,6 +176,53 @@ def test_jobs_redis_still_holds_are_left_alone(
                                              f"{sub}-fold-0-2"]
 
 
+def test_a_live_job_running_every_fold_covers_the_folds_not_recorded(
+    records: Engine, redis: Redis, settings: Settings, dataset: dict[str, Any]
+) -> None:
+    sub = lost_submission(records, dataset, folds=3)
+    dispatch.enqueue_submission(redis, settings, "fleet", sub, ValidationPlan("kfold", folds=3, seed=0), together=True)
+    record_folds(records, sub, [(0, 0)])  # its first fold is done; it still runs the other two
+    touch(records, sub, timedelta(hours=1))
+    queue = queue_of(redis, settings)
+    assert queue.get_job_ids() == [f"{sub}-holdout", f"{sub}-folds"]
+    assert (job(redis, f"{sub}-folds").func_name, job(redis, f"{sub}-folds").args) == (
+        "worker.jobs.run_folds", [sub, [[0, 0], [0, 1], [0, 2]]])
+    assert waits_for(redis, f"{sub}-summary") == {f"{sub}-folds"}
+    assert dispatch.reconcile(records, redis, settings) == 0
+    assert queue.get_job_ids() == [f"{sub}-holdout", f"{sub}-folds"]
+
+
+def test_a_lost_job_running_every_fold_is_replaced_by_a_job_per_missing_fold(
+    records: Engine, redis: Redis, settings: Settings, dataset: dict[str, Any]
+) -> None:
+    sub = lost_submission(records, dataset, folds=3)
+    dispatch.enqueue_submission(redis, settings, "fleet", sub, ValidationPlan("kfold", folds=3, seed=0), together=True)
+    record_folds(records, sub, [(0, 1)])
+    touch(records, sub, timedelta(hours=1))
+    redis.flushdb()  # Redis lost every job
+    # the holdout, the 2 missing folds, the summary and the verdict
+    assert dispatch.reconcile(records, redis, settings) == 1 + 2 + 1 + 1
+    assert queue_of(redis, settings).get_job_ids() == [f"{sub}-holdout", f"{sub}-fold-0-0", f"{sub}-fold-0-2"]
+    assert waits_for(redis, f"{sub}-summary") == {f"{sub}-fold-0-0", f"{sub}-fold-0-2"}
+
+
+def test_stopping_a_submission_stops_its_job_of_every_fold(
+    records: Engine, redis: Redis, settings: Settings, dataset: dict[str, Any]
+) -> None:
+    sub = lost_submission(records, dataset, folds=3)
+    validation = ValidationPlan("kfold", folds=3, seed=0)
+    dispatch.enqueue_submission(redis, settings, "fleet", sub, validation, together=True)
+    assert dispatch.stop_jobs(redis, settings, sub, validation) == 4  # holdout, folds, summary, verdict
+    assert job(redis, f"{sub}-folds").get_status() == JobStatus.CANCELED
+
+
+def test_folds_run_together_on_tables_up_to_the_batch_size(settings: Settings) -> None:
+    assert settings.fold_batch_max_rows == 5000  # the default
+    assert dispatch.folds_together(settings, 5000) and dispatch.folds_together(settings, 1)
+    assert not dispatch.folds_together(settings, 5001)
+    assert not dispatch.folds_together(dataclasses.replace(settings, fold_batch_max_rows=0), 10)
+
+
 def test_a_job_taken_by_a_worker_that_died_before_starting_it_is_put_back(
     records: Engine, redis: Redis, settings: Settings, dataset: dict[str, Any]
 ) -> None:

@@ -7,6 +7,7 @@ configuration check answered in-process.
 
 from __future__ import annotations
 
+import dataclasses
 from typing import Any
 
 import pytest
@@ -123,13 +124,31 @@ def test_submit_stores_the_row_then_enqueues_its_chain(
                                            "features": [c for c in diabetes_frame().columns if c != "target"],
                                            "preprocess": []}]
     sub = row["id"]
-    assert queued_ids(redis, settings) == [f"{sub}-holdout", *(f"{sub}-fold-{r}-{f}" for r in range(2)
-                                                                for f in range(5))]
+    # Diabetes' development rows are under fold_batch_max_rows: its ten folds run in one job, in plan order.
+    assert settings.fold_batch_max_rows >= dataset["rows_development"]
+    assert queued_ids(redis, settings) == [f"{sub}-holdout", f"{sub}-folds"]
+    folds = Job.fetch(f"{sub}-folds", connection=redis, serializer=JSONSerializer)
+    assert folds.func_name == "worker.jobs.run_folds"
+    assert folds.args == [sub, [[r, f] for r in range(2) for f in range(5)]]
+    summary = Job.fetch(f"{sub}-summary", connection=redis, serializer=JSONSerializer)
+    assert summary.dependency_ids == [f"{sub}-folds"]
     verdict = Job.fetch(f"{sub}-verdict", connection=redis, serializer=JSONSerializer)
     assert set(verdict.dependency_ids) == {f"{sub}-summary", f"{sub}-holdout"}
     with records.connect() as conn:
         actions = conn.execute(select(audit_events.c.action).where(audit_events.c.subject == sub)).scalars().all()
     assert actions == ["submission.created"]
+
+
+def test_a_table_over_the_batch_size_gets_a_job_per_fold(
+    records: Engine, redis: Redis, settings: Settings, keys: dict[str, KeyInfo], dataset: dict[str, Any],
+    asked: list[dict[str, Any]],
+) -> None:
+    per_fold = dataclasses.replace(settings, fold_batch_max_rows=int(dataset["rows_development"]) - 1)
+    row, _ = intake.submit(records, redis, per_fold, keys["owner"], ridge(dataset))
+    sub = row["id"]
+    assert queued_ids(redis, settings) == [f"{sub}-holdout", *(f"{sub}-fold-0-{f}" for f in range(5))]
+    summary = Job.fetch(f"{sub}-summary", connection=redis, serializer=JSONSerializer)
+    assert set(summary.dependency_ids) == {f"{sub}-fold-0-{f}" for f in range(5)}
 
 
 @pytest.mark.parametrize(("asked_for", "expected"), [(("mae",), ["mae", "r2"]), (("r2", "mae"), ["r2", "mae"])])
@@ -306,7 +325,7 @@ def test_the_owner_cancels_and_the_queued_jobs_are_canceled(
     sub = row["id"]
     canceled = intake.cancel(records, redis, settings, keys["owner"], sub)
     assert canceled["state"] == "canceled" and canceled["finished_at"] is not None
-    ids = [f"{sub}-holdout", *(f"{sub}-fold-0-{f}" for f in range(5)), f"{sub}-summary", f"{sub}-verdict"]
+    ids = [f"{sub}-holdout", f"{sub}-folds", f"{sub}-summary", f"{sub}-verdict"]
     statuses = {i: Job.fetch(i, connection=redis, serializer=JSONSerializer).get_status() for i in ids}
     assert set(statuses.values()) == {JobStatus.CANCELED}
     assert queued_ids(redis, settings) == []
