@@ -135,19 +135,22 @@ def enqueue_submission(
 
     ``champion`` (``champion_to_replay``): score that champion's configuration on this plan's folds
     too, in jobs the verdict waits for, so the CV comparison with it is paired. ``together``
-    (``folds_together``): every fold in one job instead of a job per fold.
+    (``folds_together``): every fold in one job instead of a job per fold, which also does the summary
+    job's work (the verdict job waits on it instead).
     """
     try:
         queue = team_queues.team_queue(redis, settings, team)
         _enqueue_holdout(queue, settings, sub_id)
-        if together:
-            fold_ids = [_enqueue_folds(queue, settings, sub_id, fold_cells(validation))]
+        if together:  # one job runs the folds, then summarises them
+            summarized_by = _enqueue_folds(queue, settings, sub_id, fold_cells(validation))
         else:
             fold_ids = [_enqueue_fold(queue, settings, sub_id, r, f) for r, f in fold_cells(validation)]
         replay = [] if champion is None else [
             _enqueue_champion_fold(queue, settings, sub_id, champion, r, f) for r, f in fold_cells(validation)]
-        _enqueue_summary(queue, settings, sub_id, fold_ids)
-        _enqueue_verdict(queue, sub_id, [summary_job_id(sub_id), holdout_job_id(sub_id), *replay])
+        if not together:
+            _enqueue_summary(queue, settings, sub_id, fold_ids)
+            summarized_by = summary_job_id(sub_id)
+        _enqueue_verdict(queue, sub_id, [summarized_by, holdout_job_id(sub_id), *replay])
     except RedisError as exc:
         # The submission row exists and the reconciler will enqueue it once Redis is back.
         log.warning("could not enqueue %s: %s", sub_id, exc)
@@ -319,7 +322,9 @@ def _reconcile_one(engine: Engine, live: set[str], queue: Queue, settings: Setti
                 _enqueue_champion_fold(queue, settings, sub_id, champion, r, f)
                 enqueued += 1
             waits_for.append(job_id)
-    if sub["cv_summary"] is None:
+    if sub["cv_summary"] is None and together in live:  # it summarises once its folds are recorded
+        waits_for.append(together)
+    elif sub["cv_summary"] is None:
         if summary_job_id(sub_id) not in live:
             _enqueue_summary(queue, settings, sub_id, live_folds)
             enqueued += 1

@@ -49,7 +49,8 @@ def run_folds(submission_id: str, cells: list[list[int]]) -> dict[str, Any]:
 
     Each fold gets a whole fold timeout of its own (``fold_bound``), so a fold is bounded as in a job of its
     own. A fold an earlier attempt of this job recorded is not run again; a fold whose work is lost ends the
-    job the way ``run_fold`` ends it (retried, or the submission fails naming that fold).
+    job the way ``run_fold`` ends it (retried, or the submission fails naming that fold). Then it does the
+    summary job's work, in its place.
     """
     ctx = current()
     recorded = submissions.recorded_cells(ctx.engine, submission_id)
@@ -61,8 +62,14 @@ def run_folds(submission_id: str, cells: list[list[int]]) -> dict[str, Any]:
             answer = run_fold(submission_id, repeat, fold)
         answers.append(answer)
         if "skipped" in answer:  # the submission ended meanwhile: so do the folds left
-            break
-    return {"submission_id": submission_id, "folds": answers}
+            return {"submission_id": submission_id, "folds": answers}
+    # Every fold is recorded: the job summarises them itself (no summary job waits on it), and gives the
+    # verdict when the holdout job has ended too.
+    job = get_current_job()
+    summarized = summary.summarize(ctx, submission_id, job.connection if job is not None else None)
+    if job is not None:
+        judge_if_last(ctx, job.connection, job.id, submission_id)
+    return {"submission_id": submission_id, "folds": answers, "summary": summarized}
 
 
 def run_champion_fold(submission_id: str, champion_id: str, repeat: int, fold: int) -> dict[str, Any]:

@@ -4,8 +4,9 @@ The verdict job runs once the summary, the holdout job and any champion folds ha
 queues it and a worker picks it up, a hop that costs tens of milliseconds on a busy host. A verdict that
 read the holdout is shown at its prompt time only when it is given by then (``service.gate.timing``), so
 that hop decides, for a small table, whether the answer is prompt or late (one more counted query). So
-the summary job and the holdout job, when they end last, give the verdict themselves; the verdict job
-then finds it given. Anything that goes wrong here is left to the verdict job, which runs as before.
+the summary job (or a small table's job of every fold, which does the summary's work) and the holdout job,
+when they end last, give the verdict themselves; the verdict job then finds it given. Anything that goes
+wrong here is left to the verdict job, which runs as before.
 """
 
 from __future__ import annotations
@@ -17,7 +18,7 @@ from rq.exceptions import NoSuchJobError
 from rq.job import Job, JobStatus
 
 from service.records import submissions
-from service.submission.dispatch import holdout_job_id, summary_job_id, verdict_job_id
+from service.submission.dispatch import folds_job_id, holdout_job_id, summary_job_id, verdict_job_id
 from worker.jobs import verdict
 from worker.jobs.runtime import WorkerContext
 
@@ -30,11 +31,11 @@ KEY_SECONDS = 3600
 def judge_if_last(ctx: WorkerContext, connection: Redis, job_id: str, submission_id: str) -> bool:
     """Give the verdict now when everything the verdict job waits on is done; return whether this call gave it.
 
-    ``job_id`` is the job that is ending (its own status is not yet finished). The summary and the holdout
-    job count as done once their outcome is stored (the other may be ending at this very moment, its RQ
-    status not yet finished); anything else (a champion's folds) once RQ says it finished. Of two jobs that
-    both find everything done, one gives the verdict (a key set once in Redis); the verdict job, queued
-    only after both have ended, finds it given.
+    ``job_id`` is the job that is ending (its own status is not yet finished). The summary (or the job of
+    every fold, which summarises them) and the holdout job count as done once their outcome is stored (the
+    other may be ending at this very moment, its RQ status not yet finished); anything else (a champion's
+    folds) once RQ says it finished. Of two jobs that both find everything done, one gives the verdict (a key
+    set once in Redis); the verdict job, queued only after both have ended, finds it given.
     """
     try:
         waiting = Job.fetch(verdict_job_id(submission_id), connection=connection)
@@ -59,7 +60,7 @@ def _done(ctx: WorkerContext, submission_id: str, job: Job | None) -> bool:
         return False
     if job.get_status(refresh=False) == JobStatus.FINISHED:
         return True
-    if job.id == summary_job_id(submission_id):
+    if job.id in (summary_job_id(submission_id), folds_job_id(submission_id)):  # the latter summarises too
         row = submissions.get(ctx.engine, submission_id)
         return row is not None and row["cv_summary"] is not None
     if job.id == holdout_job_id(submission_id):

@@ -187,7 +187,8 @@ def test_a_live_job_running_every_fold_covers_the_folds_not_recorded(
     assert queue.get_job_ids() == [f"{sub}-holdout", f"{sub}-folds"]
     assert (job(redis, f"{sub}-folds").func_name, job(redis, f"{sub}-folds").args) == (
         "worker.jobs.run_folds", [sub, [[0, 0], [0, 1], [0, 2]]])
-    assert waits_for(redis, f"{sub}-summary") == {f"{sub}-folds"}
+    assert not Job.exists(f"{sub}-summary", connection=redis)  # it summarises the folds itself
+    assert waits_for(redis, f"{sub}-verdict") == {f"{sub}-folds", f"{sub}-holdout"}
     assert dispatch.reconcile(records, redis, settings) == 0
     assert queue.get_job_ids() == [f"{sub}-holdout", f"{sub}-folds"]
 
@@ -212,7 +213,7 @@ def test_stopping_a_submission_stops_its_job_of_every_fold(
     sub = lost_submission(records, dataset, folds=3)
     validation = ValidationPlan("kfold", folds=3, seed=0)
     dispatch.enqueue_submission(redis, settings, "fleet", sub, validation, together=True)
-    assert dispatch.stop_jobs(redis, settings, sub, validation) == 4  # holdout, folds, summary, verdict
+    assert dispatch.stop_jobs(redis, settings, sub, validation) == 3  # the holdout, the folds and the verdict
     assert job(redis, f"{sub}-folds").get_status() == JobStatus.CANCELED
 
 

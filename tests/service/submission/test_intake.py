@@ -130,10 +130,10 @@ def test_submit_stores_the_row_then_enqueues_its_chain(
     folds = Job.fetch(f"{sub}-folds", connection=redis, serializer=JSONSerializer)
     assert folds.func_name == "worker.jobs.run_folds"
     assert folds.args == [sub, [[r, f] for r in range(2) for f in range(5)]]
-    summary = Job.fetch(f"{sub}-summary", connection=redis, serializer=JSONSerializer)
-    assert summary.dependency_ids == [f"{sub}-folds"]
+    # It summarises the folds itself: no summary job; the verdict waits for it and the holdout.
+    assert Job.exists(f"{sub}-summary", connection=redis) is False
     verdict = Job.fetch(f"{sub}-verdict", connection=redis, serializer=JSONSerializer)
-    assert set(verdict.dependency_ids) == {f"{sub}-summary", f"{sub}-holdout"}
+    assert set(verdict.dependency_ids) == {f"{sub}-folds", f"{sub}-holdout"}
     with records.connect() as conn:
         actions = conn.execute(select(audit_events.c.action).where(audit_events.c.subject == sub)).scalars().all()
     assert actions == ["submission.created"]
@@ -325,7 +325,7 @@ def test_the_owner_cancels_and_the_queued_jobs_are_canceled(
     sub = row["id"]
     canceled = intake.cancel(records, redis, settings, keys["owner"], sub)
     assert canceled["state"] == "canceled" and canceled["finished_at"] is not None
-    ids = [f"{sub}-holdout", f"{sub}-folds", f"{sub}-summary", f"{sub}-verdict"]
+    ids = [f"{sub}-holdout", f"{sub}-folds", f"{sub}-verdict"]
     statuses = {i: Job.fetch(i, connection=redis, serializer=JSONSerializer).get_status() for i in ids}
     assert set(statuses.values()) == {JobStatus.CANCELED}
     assert queued_ids(redis, settings) == []

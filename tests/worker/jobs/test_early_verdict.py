@@ -74,3 +74,26 @@ def test_a_verdict_job_already_queued_is_left_to_give_it(ctx: WorkerContext, red
     Job.fetch(dispatch.verdict_job_id(sub_id), connection=redis).set_status("queued")
     assert not judge_if_last(ctx, redis, dispatch.holdout_job_id(sub_id), sub_id)
     assert submissions.get(ctx.engine, sub_id)["verdict"] is None  # type: ignore[index]
+
+
+def test_a_small_tables_job_of_every_fold_counts_as_done_once_it_summarised(ctx: WorkerContext, redis_url: str) -> None:
+    redis = Redis.from_url(redis_url)
+    frame = load_diabetes(as_frame=True).frame
+    dataset = add_dataset(ctx, frame.iloc[:400], frame.iloc[400:], "target", "regression", folds=3)
+    sub_id = add_submission(ctx, dataset, config_document(dataset, "Ridge", metrics=["rmse"]))
+    dispatch.enqueue_submission(redis, ctx.settings, "fleet", sub_id, ValidationPlan("kfold", folds=3, seed=0),
+                                together=True)
+    folds = dispatch.folds_job_id(sub_id)
+    jobs.score_holdout(sub_id)
+    # Its folds are not summarised yet: the holdout job cannot give the verdict.
+    assert not judge_if_last(ctx, redis, dispatch.holdout_job_id(sub_id), sub_id)
+    answer = jobs.run_folds(sub_id, [[0, f] for f in range(3)])  # outside RQ: it summarises, leaves the verdict
+    assert answer["summary"]["folds_ok"] == 3
+    assert submissions.get(ctx.engine, sub_id)["cv_summary"] is not None  # type: ignore[index]
+    assert submissions.get(ctx.engine, sub_id)["verdict"] is None  # type: ignore[index]
+    # Ending last, with the holdout outcome stored: it gives the verdict, once.
+    assert judge_if_last(ctx, redis, folds, sub_id)
+    assert not judge_if_last(ctx, redis, dispatch.holdout_job_id(sub_id), sub_id)
+    row = submissions.get(ctx.engine, sub_id)
+    assert row is not None and row["verdict"] is not None and row["state"] == "succeeded"
+    assert len(verdicts.history(ctx.engine, sub_id)) == 1

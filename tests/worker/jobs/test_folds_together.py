@@ -41,13 +41,18 @@ def without_times(rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
 def test_one_job_records_the_folds_a_job_per_fold_records(ctx: WorkerContext) -> None:
     # Reference: scikit-learn's cross_validate on the vault's folds (KFold(5, shuffle=True, random_state=11)),
     # through ridge_on_diabetes, which runs a job per fold.
-    _, per_fold, reference, _, (X, y, cv) = ridge_on_diabetes(ctx)
+    per_fold_sub, per_fold, reference, _, (X, y, cv) = ridge_on_diabetes(ctx)
     sub = ridge_submission(ctx)
     answer = jobs.run_folds(sub, FIVE)
     assert [(a["repeat"], a["fold"], a["status"], a["stored"]) for a in answer["folds"]] == [
         (0, f, "ok", True) for f in range(5)]
     together = submissions.fold_rows(ctx.engine, sub)
     assert without_times(together) == without_times(per_fold)
+    # Then it does the summary job's work: the same summary a summary job stores.
+    assert answer["summary"] == {"submission_id": sub, "folds_ok": 5, "folds_failed": 0}
+    jobs.summarize(per_fold_sub)
+    summaries = [submissions.get(ctx.engine, s)["cv_summary"] for s in (sub, per_fold_sub)]  # type: ignore[index]
+    assert summaries[0]["summary"] == summaries[1]["summary"] and summaries[0]["summary"]["rmse"]["mean"] > 0
     baseline = cross_validate(DummyRegressor(strategy="mean"), X, y, cv=cv, scoring=REGRESSION_SCORING)
     for k, row in enumerate(together):
         for name in REGRESSION_SCORING:
