@@ -77,8 +77,9 @@ def folds_together(settings: Settings, development_rows: int) -> bool:
     """Whether a submission on a dataset of ``development_rows`` runs its folds in one job (``folds_job_id``).
 
     On a small table a fold job's bookkeeping (RQ's, the records') costs more than its fit: one job for
-    every fold took a burst of small submissions from about 550 to about 680 a minute on two workers.
-    A larger table keeps a job per fold, so its folds spread over the workers.
+    every fold, which also summarises them, took ``make bench``'s burst of 100 diabetes submissions on two
+    workers from 579, 528 and 571 to 625, 653 and 664 a minute (three pairs of runs). A larger table keeps
+    a job per fold, so its folds spread over the workers.
     """
     return 0 < development_rows <= settings.fold_batch_max_rows
 
