@@ -80,7 +80,7 @@ class Settings:
     # a verdict given by then is shown then; one that came later because of the sealed step is shown as
     # without it and counted as one more holdout query (service.gate.timing). 0: every verdict that read the
     # holdout waits for the deadline.
-    holdout_prompt_seconds: float = 0.05
+    holdout_prompt_seconds: float = 0.075
     # Submissions one team may have queued or running at once (0: no limit); beyond it a POST answers 429,
     # so one team's burst cannot fill the queue ahead of every other team.
     team_max_live_submissions: int = 100

@@ -16,7 +16,7 @@ spent is that moment.
 
 A deadline generous enough that an honest step on a busy host meets it is long for a small table (a pad
 of a second). So the holdout job also fixes a *prompt time*, the same way but tighter (``prompt_seconds``:
-twice the development-row prediction time plus ``holdout_prompt_seconds``, a twentieth of a second by default),
+twice the development-row prediction time plus ``holdout_prompt_seconds``, 75 ms by default),
 and ``moment`` decides when a verdict is shown: at the prompt time when it is given by then (half a prompt
 pad before it); half a prompt pad after its own time when it waited on the cross-validation summary, stored
 after the holdout outcome (a time the sealed rows do not set, however long the step took); and otherwise --
