@@ -37,6 +37,18 @@ def diabetes_parts() -> tuple[pd.DataFrame, pd.DataFrame]:
     return frame.iloc[:400], frame.iloc[400:]
 
 
+def ridge_diabetes_submission(ctx: WorkerContext) -> str:
+    """Store diabetes (its 5-fold plan: KFold(5, shuffle=True, random_state=11)) and a queued submission of
+    scaled Ridge(alpha=0.3) scored on ``REGRESSION_SCORING``'s metrics; return the submission's id."""
+    dev, hold = diabetes_parts()
+    dataset = add_dataset(ctx, dev, hold, "target", "regression", scheme="kfold", folds=5, seed=11)
+    features = [c for c in dev.columns if c != "target"]
+    config = config_document(dataset, "Ridge", params={"alpha": 0.3}, features=features,
+                             preprocess=[{"transformer": "StandardScaler", "columns": features}],
+                             metrics=list(REGRESSION_SCORING))
+    return add_submission(ctx, dataset, config)
+
+
 def ridge_on_diabetes(
     ctx: WorkerContext,
 ) -> tuple[str, list[dict[str, Any]], dict[str, Any], list[str], Any]:
@@ -46,14 +58,10 @@ def ridge_on_diabetes(
     random_state=11) (the vault's "kfold" plan is defined to be exactly that split), with train
     scores and fitted estimators.
     """
-    dev, hold = diabetes_parts()
-    dataset = add_dataset(ctx, dev, hold, "target", "regression", scheme="kfold", folds=5, seed=11)
-    features = [c for c in dev.columns if c != "target"]
-    config = config_document(dataset, "Ridge", params={"alpha": 0.3}, features=features,
-                             preprocess=[{"transformer": "StandardScaler", "columns": features}],
-                             metrics=list(REGRESSION_SCORING))
-    sub_id = add_submission(ctx, dataset, config)
+    sub_id = ridge_diabetes_submission(ctx)
     rows = run_all_folds(sub_id, 5)
+    dev, _ = diabetes_parts()
+    features = [c for c in dev.columns if c != "target"]
     X, y = dev[features].to_numpy(), dev["target"].to_numpy()
     cv = list(KFold(5, shuffle=True, random_state=11).split(X))
     reference = cross_validate(make_pipeline(StandardScaler(), Ridge(alpha=0.3)), X, y, cv=cv,

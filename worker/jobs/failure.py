@@ -19,7 +19,9 @@ from __future__ import annotations
 
 import logging
 import resource
+import signal
 import threading
+import time
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -129,16 +131,23 @@ def fail_submission(
 def fold_bound(timeout_seconds: int) -> Iterator[None]:
     """Stop the work inside after ``timeout_seconds`` with RQ's ``JobTimeoutException``, as a job's own timeout does.
 
-    For a job that runs several folds (``worker.jobs.run_folds``): each fold gets the fold timeout. The alarm
-    replaces the job's (a process has one), so the job is bounded by the sum of its folds' timeouts, which
-    is what its own timeout is set to. Outside the main thread, where no signal handler runs, the job's own
-    timeout alone applies.
+    For a job that runs several folds (``worker.jobs.run_folds``): each fold gets the fold timeout. A process
+    has one alarm, so the job's own (RQ's, the sum of its folds' timeouts) is set aside meanwhile and put
+    back afterwards, less the time spent: what the job does after its folds (the summary, the verdict) stays
+    bounded. Outside the main thread, where no signal handler runs, the job's own timeout alone applies.
     """
     if threading.current_thread() is not threading.main_thread():
         yield
         return
-    with UnixSignalDeathPenalty(timeout_seconds, JobTimeoutException):
-        yield
+    outer_handler, outer_left = signal.getsignal(signal.SIGALRM), signal.alarm(0)
+    started = time.monotonic()
+    try:
+        with UnixSignalDeathPenalty(timeout_seconds, JobTimeoutException):
+            yield
+    finally:
+        if outer_left:
+            signal.signal(signal.SIGALRM, outer_handler)
+            signal.alarm(max(1, outer_left - round(time.monotonic() - started)))
 
 
 def limit_memory(limit_mib: int) -> None:

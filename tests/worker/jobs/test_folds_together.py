@@ -4,34 +4,25 @@ fold under the fold timeout of its own, and a retried job resumes at the first f
 from __future__ import annotations
 
 import dataclasses
+import signal
 import time
 from typing import Any
 
 import pytest
-from rq.timeouts import JobTimeoutException
+from rq.timeouts import JobTimeoutException, UnixSignalDeathPenalty
 from sklearn.dummy import DummyRegressor
 from sklearn.model_selection import cross_validate
 
 from service.records import submissions
-from tests.support.folds import REGRESSION_SCORING, SIGN, diabetes_parts, ridge_on_diabetes
-from tests.support.worker_records import add_dataset, add_submission, config_document
+from tests.support.folds import REGRESSION_SCORING, SIGN, ridge_diabetes_submission, ridge_on_diabetes
 from worker import jobs
 from worker.jobs import runtime
+from worker.jobs.failure import fold_bound
 from worker.jobs.runtime import WorkerContext
 
 FIVE = [[0, f] for f in range(5)]
 # What differs between two runs of one fold: the clock.
 TIMES = ("finished_at", "fit_seconds", "score_seconds")
-
-
-def ridge_submission(ctx: WorkerContext) -> str:
-    dev, hold = diabetes_parts()
-    dataset = add_dataset(ctx, dev, hold, "target", "regression", scheme="kfold", folds=5, seed=11)
-    features = [c for c in dev.columns if c != "target"]
-    config = config_document(dataset, "Ridge", params={"alpha": 0.3}, features=features,
-                             preprocess=[{"transformer": "StandardScaler", "columns": features}],
-                             metrics=list(REGRESSION_SCORING))
-    return add_submission(ctx, dataset, config)
 
 
 def without_times(rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
@@ -42,7 +33,7 @@ def test_one_job_records_the_folds_a_job_per_fold_records(ctx: WorkerContext) ->
     # Reference: scikit-learn's cross_validate on the vault's folds (KFold(5, shuffle=True, random_state=11)),
     # through ridge_on_diabetes, which runs a job per fold.
     per_fold_sub, per_fold, reference, _, (X, y, cv) = ridge_on_diabetes(ctx)
-    sub = ridge_submission(ctx)
+    sub = ridge_diabetes_submission(ctx)
     answer = jobs.run_folds(sub, FIVE)
     assert [(a["repeat"], a["fold"], a["status"], a["stored"]) for a in answer["folds"]] == [
         (0, f, "ok", True) for f in range(5)]
@@ -62,7 +53,7 @@ def test_one_job_records_the_folds_a_job_per_fold_records(ctx: WorkerContext) ->
 
 
 def test_a_retried_job_runs_only_the_folds_not_recorded(ctx: WorkerContext) -> None:
-    sub = ridge_submission(ctx)
+    sub = ridge_diabetes_submission(ctx)
     jobs.run_fold(sub, 0, 1)  # the attempt before was lost after its second fold
     jobs.run_fold(sub, 0, 0)
     first = {(r["repeat"], r["fold"]): r["finished_at"] for r in submissions.fold_rows(ctx.engine, sub)}
@@ -75,7 +66,7 @@ def test_a_retried_job_runs_only_the_folds_not_recorded(ctx: WorkerContext) -> N
 
 
 def test_a_job_stops_at_a_submission_that_ended(ctx: WorkerContext) -> None:
-    sub = ridge_submission(ctx)
+    sub = ridge_diabetes_submission(ctx)
     jobs.run_fold(sub, 0, 0)
     assert submissions.transition(ctx.engine, sub, "canceled", ("queued", "running"))
     answer = jobs.run_folds(sub, FIVE)
@@ -102,7 +93,7 @@ def slow_folds(monkeypatch: pytest.MonkeyPatch, seconds: dict[int, float]) -> No
 
 
 def test_each_fold_has_a_fold_timeout_of_its_own(one_second: WorkerContext, monkeypatch: pytest.MonkeyPatch) -> None:
-    sub = ridge_submission(one_second)
+    sub = ridge_diabetes_submission(one_second)
     slow_folds(monkeypatch, {f: 0.6 for f in range(5)})  # 3 s in all, each fold well within 1 s
     answer = jobs.run_folds(sub, FIVE)
     assert [a["status"] for a in answer["folds"]] == ["ok"] * 5
@@ -111,7 +102,7 @@ def test_each_fold_has_a_fold_timeout_of_its_own(one_second: WorkerContext, monk
 def test_a_fold_over_the_fold_timeout_fails_the_submission_naming_that_fold(
     one_second: WorkerContext, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    sub = ridge_submission(one_second)
+    sub = ridge_diabetes_submission(one_second)
     slow_folds(monkeypatch, {2: 3.0})
     started = time.monotonic()
     with pytest.raises(JobTimeoutException):
@@ -121,3 +112,15 @@ def test_a_fold_over_the_fold_timeout_fails_the_submission_naming_that_fold(
     assert row is not None and row["state"] == "failed" and row["failure_cause"] == "timeout"
     assert row["error"] == "fold 2 of repeat 0 exceeded the fold timeout of 1 s"
     assert [(r["repeat"], r["fold"]) for r in submissions.fold_rows(one_second.engine, sub)] == [(0, 0), (0, 1)]
+
+
+def test_the_jobs_own_timeout_is_put_back_after_each_fold() -> None:
+    # What a worker runs the job under: RQ's alarm for the whole job (here 30 s).
+    job_penalty = UnixSignalDeathPenalty(30, JobTimeoutException)
+    with job_penalty:
+        with fold_bound(1):
+            assert 0 < signal.alarm(1) <= 1  # the fold's own alarm is the one set meanwhile
+        left = signal.alarm(0)
+        assert 28 <= left <= 30, left  # then the job's, less the time spent
+        assert signal.getsignal(signal.SIGALRM) == job_penalty.handle_death_penalty
+        signal.alarm(left)
