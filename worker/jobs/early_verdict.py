@@ -5,8 +5,10 @@ queues it and a worker picks it up, a hop that costs tens of milliseconds on a b
 read the holdout is shown at its prompt time only when it is given by then (``service.gate.timing``), so
 that hop decides, for a small table, whether the answer is prompt or late (one more counted query). So
 the summary job (or a small table's job of every fold, which does the summary's work) and the holdout job,
-when they end last, give the verdict themselves; the verdict job then finds it given. Anything that goes
-wrong here is left to the verdict job, which runs as before.
+when they end last, give the verdict themselves. The verdict job, still waiting on the job that gives it, then
+has nothing left to do: it is retired (``retire``) before RQ would queue it, which spares a burst of small
+submissions a whole RQ job each -- its enqueueing, a worker taking it and running it to find the verdict given.
+Anything that goes wrong here is left to the verdict job, which runs as before.
 """
 
 from __future__ import annotations
@@ -47,6 +49,7 @@ def judge_if_last(ctx: WorkerContext, connection: Redis, job_id: str, submission
         if not connection.set(f"{KEY_PREFIX}{submission_id}", job_id, nx=True, ex=KEY_SECONDS):
             return False  # the other job is giving it
         verdict.give_verdict(ctx, connection, submission_id)
+        retire(connection, waiting)
         return True
     except NoSuchJobError:
         return False
@@ -66,3 +69,21 @@ def _done(ctx: WorkerContext, submission_id: str, job: Job | None) -> bool:
     if job.id == holdout_job_id(submission_id):
         return submissions.get_holdout(ctx.engine, submission_id) is not None
     return False
+
+
+def retire(connection: Redis, waiting: Job) -> None:
+    """Delete the deferred verdict job of a submission whose verdict was just given here.
+
+    Called from inside a job the verdict job depends on, so RQ cannot have queued it yet: it is still
+    deferred until that job ends. It leaves the deferred registry and the dependents of each job it
+    waited on, so their ends find nothing to queue. Should this fail, the verdict job runs and finds the
+    verdict given, as before.
+    """
+    try:
+        with connection.pipeline() as pipe:
+            for parent in waiting.dependency_ids:
+                pipe.srem(Job.dependents_key_for(parent), waiting.id)
+            waiting.delete(pipeline=pipe, remove_from_queue=False)
+            pipe.execute()
+    except Exception:
+        log.exception("could not retire the verdict job %s; it will run and find the verdict given", waiting.id)

@@ -11,7 +11,9 @@ from pathlib import Path
 
 import pytest
 from redis import Redis
-from rq.job import Job
+from rq import Queue
+from rq.job import Job, JobStatus
+from rq.registry import DeferredJobRegistry
 from sklearn.datasets import load_diabetes
 
 from service.records import submissions, verdicts
@@ -24,6 +26,7 @@ from worker import jobs
 from worker.jobs import runtime
 from worker.jobs.early_verdict import judge_if_last
 from worker.jobs.runtime import WorkerContext
+from worker.jobs.verdict import give_verdict
 
 
 @pytest.fixture
@@ -97,3 +100,46 @@ def test_a_small_tables_job_of_every_fold_counts_as_done_once_it_summarised(ctx:
     row = submissions.get(ctx.engine, sub_id)
     assert row is not None and row["verdict"] is not None and row["state"] == "succeeded"
     assert len(verdicts.history(ctx.engine, sub_id)) == 1
+
+
+def test_the_verdict_job_is_retired_once_the_verdict_is_given_early(ctx: WorkerContext, redis_url: str) -> None:
+    redis = Redis.from_url(redis_url)
+    sub_id = _enqueued(ctx, redis)
+    verdict_id, holdout, summary = (dispatch.verdict_job_id(sub_id), dispatch.holdout_job_id(sub_id),
+                                    dispatch.summary_job_id(sub_id))
+    queue = Job.fetch(verdict_id, connection=redis).origin
+    deferred = DeferredJobRegistry(queue, connection=redis)
+    assert verdict_id in deferred.get_job_ids(cleanup=False)
+    jobs.summarize(sub_id)
+    jobs.score_holdout(sub_id)
+    assert judge_if_last(ctx, redis, holdout, sub_id)
+    # Gone from Redis, from the deferred registry and from the dependents of both jobs it waited on.
+    assert not Job.exists(verdict_id, connection=redis)
+    assert verdict_id not in deferred.get_job_ids(cleanup=False)
+    for parent in (holdout, summary):
+        assert verdict_id.encode() not in redis.smembers(Job.dependents_key_for(parent))
+    # So the ends of those jobs, as RQ handles them, find nothing to queue.
+    rq_queue = Queue(queue, connection=redis)
+    for parent in (summary, holdout):
+        finished = Job.fetch(parent, connection=redis)
+        finished.set_status(JobStatus.FINISHED)
+        assert rq_queue.enqueue_dependents(finished) == {}
+    assert verdict_id not in rq_queue.get_job_ids()
+    row = submissions.get(ctx.engine, sub_id)
+    assert row is not None and row["state"] == "succeeded"
+
+
+def test_a_verdict_job_that_cannot_be_retired_is_left_to_run(ctx: WorkerContext, redis_url: str,
+                                                             monkeypatch: pytest.MonkeyPatch) -> None:
+    redis = Redis.from_url(redis_url)
+    sub_id = _enqueued(ctx, redis)
+    jobs.summarize(sub_id)
+    jobs.score_holdout(sub_id)
+
+    def broken(*_args: object, **_kwargs: object) -> None:
+        raise ConnectionError("redis went away")
+
+    monkeypatch.setattr(Job, "delete", broken)
+    assert judge_if_last(ctx, redis, dispatch.holdout_job_id(sub_id), sub_id)  # the verdict is given all the same
+    assert Job.exists(dispatch.verdict_job_id(sub_id), connection=redis)  # and its job finds it given when it runs
+    assert give_verdict(ctx, redis, sub_id)["verdict"] == "already judged"
