@@ -114,7 +114,12 @@ class SealfoldWorker(FairQueueWorker):
         if thread is None or self.pubsub is None:
             return
         self.log.info("Worker %s: unsubscribing from channel %s", self.name, self.pubsub_channel_name)
-        thread.stop(timeout=0)  # clears its running flag; the reply to UNSUBSCRIBE then ends its loop
+        # Clear its running flag, so the reply to UNSUBSCRIBE ends its loop. redis-py 8's stop() then joins (for at
+        # most ``timeout``); older ones, still within the declared range, take no argument and never join.
+        try:
+            thread.stop(timeout=0)
+        except TypeError:
+            thread.stop()
         with outage_tolerated(self, "unsubscribing"):
             self.pubsub.unsubscribe()
         thread.join(timeout=1)

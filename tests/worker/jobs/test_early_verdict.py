@@ -50,6 +50,15 @@ def _enqueued(ctx: WorkerContext, redis: Redis) -> str:
     return sub_id
 
 
+def _given_once(ctx: WorkerContext, redis: Redis, sub_id: str, *, last: str, other: str) -> None:
+    """The job ending ``last`` gives the verdict; ``other``, ending with it, leaves it; it is given once."""
+    assert judge_if_last(ctx, redis, last, sub_id)
+    assert not judge_if_last(ctx, redis, other, sub_id)
+    row = submissions.get(ctx.engine, sub_id)
+    assert row is not None and row["verdict"] is not None and row["state"] == "succeeded"
+    assert len(verdicts.history(ctx.engine, sub_id)) == 1
+
+
 def test_the_last_job_to_end_gives_the_verdict_once(ctx: WorkerContext, redis_url: str) -> None:
     redis = Redis.from_url(redis_url)
     sub_id = _enqueued(ctx, redis)
@@ -61,11 +70,7 @@ def test_the_last_job_to_end_gives_the_verdict_once(ctx: WorkerContext, redis_ur
     jobs.score_holdout(sub_id)
     # Both outcomes stored (RQ still has both jobs running): the job ending now gives it, and the other,
     # ending at the same moment, finds it being given.
-    assert judge_if_last(ctx, redis, holdout, sub_id)
-    assert not judge_if_last(ctx, redis, summary, sub_id)
-    row = submissions.get(ctx.engine, sub_id)
-    assert row is not None and row["verdict"] is not None and row["state"] == "succeeded"
-    assert len(verdicts.history(ctx.engine, sub_id)) == 1
+    _given_once(ctx, redis, sub_id, last=holdout, other=summary)
 
 
 def test_a_verdict_job_already_queued_is_left_to_give_it(ctx: WorkerContext, redis_url: str) -> None:
@@ -95,11 +100,7 @@ def test_a_small_tables_job_of_every_fold_counts_as_done_once_it_summarised(ctx:
     assert submissions.get(ctx.engine, sub_id)["cv_summary"] is not None  # type: ignore[index]
     assert submissions.get(ctx.engine, sub_id)["verdict"] is None  # type: ignore[index]
     # Ending last, with the holdout outcome stored: it gives the verdict, once.
-    assert judge_if_last(ctx, redis, folds, sub_id)
-    assert not judge_if_last(ctx, redis, dispatch.holdout_job_id(sub_id), sub_id)
-    row = submissions.get(ctx.engine, sub_id)
-    assert row is not None and row["verdict"] is not None and row["state"] == "succeeded"
-    assert len(verdicts.history(ctx.engine, sub_id)) == 1
+    _given_once(ctx, redis, sub_id, last=folds, other=dispatch.holdout_job_id(sub_id))
 
 
 def test_the_verdict_job_is_retired_once_the_verdict_is_given_early(ctx: WorkerContext, redis_url: str) -> None:
