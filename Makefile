@@ -7,6 +7,7 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.install-stamp
 ARGS   ?=
+TEST_PROCS ?= 2
 
 .PHONY: run test lint bench install
 
@@ -23,9 +24,10 @@ $(STAMP): pyproject.toml | $(BIN)/python
 run: $(STAMP)
 	$(BIN)/sealfold up $(ARGS)
 
-## test: the whole suite
+## test: the whole suite, in TEST_PROCS processes (pytest-xdist): most of its time is spent waiting on
+## workers and servers the tests start, so two processes overlap those waits; TEST_PROCS=0 runs it in one
 test: $(STAMP)
-	$(BIN)/pytest -q $(ARGS)
+	$(BIN)/pytest -q -n $(TEST_PROCS) $(ARGS)
 
 ## lint: ruff and mypy
 lint: $(STAMP)
