@@ -134,8 +134,8 @@ def _champion_rules(
     """Mark which champion comparison decides (the policy's champion_rule); the other is shown only."""
     by_cv, by_holdout = policy.champion_rule in ("cv", "both"), policy.champion_rule in ("holdout", "both")
     if champion is None:
-        held = hc.not_decided(policy, None, "No champion is in force on this dataset.", decides=by_holdout,
-                              outcome="skipped")
+        held = hc.not_decided(policy, None, "No champion to compare with on the sealed rows: none is in force.",
+                              decides=by_holdout, outcome="skipped")
     elif on_holdout is None and not by_holdout:
         held = hc.not_decided(policy, champion.submission_id, "Not compared with the champion on the sealed rows: "
                               "the policy decides on the folds (champion_rule cv), so no holdout query was spent.",

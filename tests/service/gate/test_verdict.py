@@ -171,6 +171,7 @@ def test_champion_is_paired_on_shared_cells_only() -> None:
 def test_no_champion_is_skipped() -> None:
     v = _judge(ACCURACY, _scores(np.add(BASE_ACC, D)), _scores(BASE_ACC))
     assert _rule(v, "champion")["outcome"] == "skipped" and v["champion"] is None
+    assert len(set(v["reasons"])) == len(v["reasons"])  # each rule says its own sentence, none twice
 
 
 def _interval_half_width(values: list[float] | np.ndarray, n_train: float, n_test: float, n_holdout: float,
