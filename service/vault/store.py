@@ -226,9 +226,15 @@ def iter_development_csv(settings: Settings, ds_id: str, chunk_rows: int = 50_00
         yield parquet.schema_arrow.empty_table().to_pandas().to_csv(index=False, lineterminator="\n")
 
 
-def open_sealed_holdout(settings: Settings, ds_id: str, expected_fingerprint: str) -> pd.DataFrame:
-    """Read the sealed holdout, refusing it unless it matches ``expected_fingerprint``."""
-    path = dataset_paths(settings, ds_id).sealed_holdout
+def open_sealed_holdout(
+    settings: Settings, ds_id: str, expected_fingerprint: str, path: Path | None = None
+) -> pd.DataFrame:
+    """Read the sealed holdout, refusing it unless it matches ``expected_fingerprint``.
+
+    ``path``: a copy of the sealed file to read instead of the data dir's (a worker without the shared
+    disk reads the copy it fetched for the job); the fingerprint decides all the same.
+    """
+    path = dataset_paths(settings, ds_id).sealed_holdout if path is None else path
     try:
         frame: pd.DataFrame = pq.read_table(path).to_pandas()
     except (OSError, pa.ArrowException) as exc:

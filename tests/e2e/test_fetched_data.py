@@ -2,8 +2,9 @@
 
 A real API (waitress) with a worker secret, a real redis-server and real worker processes: a submission run by
 the usual shared-disk worker, then the same model run by a worker started with ``SEALFOLD_DATA_SOURCE=api`` and
-an empty data dir of its own, give the same fold scores; the worker's cache then holds the API's bytes, and a
-cached file damaged on disk is fetched again before the next job uses it.
+an empty data dir of its own, give the same fold scores; the worker's cache then holds the API's bytes of the
+development files and no copy of the sealed file, and a cached file damaged on disk is fetched again before the
+next job uses it.
 """
 
 from __future__ import annotations
@@ -91,9 +92,11 @@ def test_a_worker_without_the_shared_disk_fetches_verifies_and_scores_the_same(
                 stack.settings.__class__.load({"data_dir": cache}, environ={}), ds["id"])
             for name_ in ("development", "numeric", "manifest"):
                 assert _sha(getattr(theirs, name_)) == _sha(getattr(mine, name_))
-            # The holdout job alone fetched the sealed file: private, and the same bytes.
-            assert stat.S_IMODE(os.stat(theirs.sealed_holdout).st_mode) == 0o600
-            assert _sha(theirs.sealed_holdout) == _sha(mine.sealed_holdout)
+            # The holdout job fetched the sealed file (it scored the holdout from it) and kept no copy of it.
+            assert fetched["result"]["holdout"]["released"] is True
+            sealed_dir = theirs.sealed_holdout.parent
+            assert sealed_dir.is_dir() and stat.S_IMODE(os.stat(sealed_dir).st_mode) == 0o700
+            assert not [p for p in sealed_dir.iterdir() if p.is_file()], list(sealed_dir.iterdir())
 
             # Its per-example holdout values went to the API, for a verdict that may run on another worker.
             kept = Path(str(mine.sealed_holdout.parent / "per_example" / f"{fetched['id']}.npz"))

@@ -207,11 +207,12 @@ def _score(
     if not holdout_claims.beat(engine, submission_id, attempt.token):
         # This job stalled past the stale limit and another took the claim over: that one scores.
         return {"submission_id": submission_id, "holdout": "claim lost"}
-    runtime.ensure_sealed(str(dataset["id"]))  # a worker without the shared disk fetches it only here
-    try:
-        holdout = store.open_sealed_holdout(ctx.settings, dataset["id"], dataset["holdout_fingerprint"])
-    except SealBroken:
-        raise  # worker.jobs.failure fails the submission (cause "data") and stops its other jobs
+    # A worker without the shared disk fetches a copy of the sealed file only here, and removes it once read.
+    with runtime.sealed_file(str(dataset["id"])) as fetched:
+        try:
+            holdout = store.open_sealed_holdout(ctx.settings, dataset["id"], dataset["holdout_fingerprint"], fetched)
+        except SealBroken:
+            raise  # worker.jobs.failure fails the submission (cause "data") and stops its other jobs
     # Reading our own sealed file (fingerprint checked) depends on no configuration; from here on the
     # submitted pipeline meets the sealed rows, so the attempt is spent whatever ends it.
     if holdout_claims.open_seal(engine, submission_id, attempt.token, deadline, prompt) is None:

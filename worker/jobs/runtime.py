@@ -67,10 +67,19 @@ def ensure_development(ds_id: str) -> None:
         _Slot.data_source.development(ds_id)
 
 
-def ensure_sealed(ds_id: str) -> None:
-    """Make the sealed holdout of ``ds_id`` readable here; the holdout job alone calls this."""
-    if _Slot.data_source is not None:
-        _Slot.data_source.sealed(ds_id)
+@contextmanager
+def sealed_file(ds_id: str) -> Iterator[Path | None]:
+    """The sealed holdout of ``ds_id`` for the holdout job alone to read: None on a shared data dir (the
+    store's own file); a worker without it fetches a copy of the job's own and removes it when the block
+    ends, however it ends, so no copy of the sealed rows outlives the job that reads them."""
+    if _Slot.data_source is None:
+        yield None
+        return
+    path = _Slot.data_source.sealed(ds_id)
+    try:
+        yield path
+    finally:
+        path.unlink(missing_ok=True)
 
 
 def fetch_per_example(ds_id: str, submission_id: str, path: Path) -> None:

@@ -7,19 +7,23 @@ API's internal endpoint (``service.api.internal``) for the manifest, keeps each 
 and recorded sha256 match it, and fetches the others into a temporary name, checks the sha256 of the
 bytes received and renames them into place. A file whose size or modification time changed since it was
 checked is hashed again before it is trusted. The sealed holdout is fetched only by the holdout job
-(``DataFetcher.sealed``), kept 0600 in a 0700 ``sealed/`` directory, and the job's fingerprint check
-still runs on it. The per-example holdout values the holdout job keeps are sent to the API
-(``publish_per_example``), and jobs that read them take the API's copy (``per_example``), so the verdict
-may run on another worker.
+(``DataFetcher.sealed``), into a file of that job's own, 0600 in a 0700 ``sealed/`` directory; the job's
+fingerprint check still runs on it, and the job removes it once read (``runtime.sealed_file``), so the
+worker keeps no copy of the sealed rows. A copy left by a work horse killed before it removed its own is
+removed by the next fetch of that dataset's sealed file, once older than the holdout job's timeout. The
+per-example holdout values the holdout job keeps are sent to the API (``publish_per_example``), and jobs
+that read them take the API's copy (``per_example``), so the verdict may run on another worker.
 """
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import http.client
 import json
 import os
 import tempfile
+import time
 import urllib.error
 import urllib.parse
 import urllib.request
@@ -33,6 +37,8 @@ from service.vault.store import dataset_paths
 INTERNAL_PREFIX = "/internal/v1"  # service.api.internal.PREFIX (the worker does not import Flask code)
 SHA256_HEADER = "X-Sealfold-Sha256"
 RECORD_NAME = ".verified.json"
+SEALED_COPY_PREFIX = ".holdout-"  # a holdout job's own copy of the sealed file (DataFetcher.sealed)
+STALE_COPY_MARGIN_SECONDS = 60.0
 CHUNK_BYTES = 1024 * 1024
 TIMEOUT_SECONDS = 60.0
 
@@ -114,15 +120,34 @@ class DataFetcher:
         return fetched
 
     def sealed(self, ds_id: str) -> Path:
-        """Fetch the sealed holdout of ``ds_id`` (0600 in a 0700 directory) and return its path.
+        """Fetch the sealed holdout of ``ds_id`` into a new file of the caller's own (0600 in a 0700 directory)
+        and return its path; the caller reads it once and removes it.
 
-        Fetched on every call: the file is read once per holdout job, and its fingerprint is checked by
-        the caller (``store.open_sealed_holdout``).
+        Fetched on every call, never under a shared name: two holdout jobs on one data dir each read their
+        own copy, so one removing its copy never takes the file from the other. The fingerprint is checked
+        by the caller (``store.open_sealed_holdout``).
         """
-        target = dataset_paths(self.settings, ds_id).sealed_holdout
-        _private_dirs(self.settings.data_dir, target.parent)
-        self._download(f"/datasets/{urllib.parse.quote(ds_id, safe='')}/sealed", target, None, mode=0o600)
+        folder = dataset_paths(self.settings, ds_id).sealed_holdout.parent
+        _private_dirs(self.settings.data_dir, folder)
+        self._remove_stale_copies(folder)
+        handle, name = tempfile.mkstemp(prefix=SEALED_COPY_PREFIX, suffix=".parquet", dir=folder)  # mode 0600
+        os.close(handle)
+        target = Path(name)
+        try:
+            self._download(f"/datasets/{urllib.parse.quote(ds_id, safe='')}/sealed", target, None, mode=0o600)
+        except BaseException:
+            target.unlink(missing_ok=True)
+            raise
         return target
+
+    def _remove_stale_copies(self, folder: Path) -> None:
+        """Remove copies of the sealed file older than the holdout job's timeout: their job is over (a work
+        horse killed before it removed its copy); a younger one may still be read."""
+        oldest = time.time() - self.settings.job_timeout_seconds("holdout") - STALE_COPY_MARGIN_SECONDS
+        for copy in folder.glob(f"{SEALED_COPY_PREFIX}*"):
+            with contextlib.suppress(OSError):
+                if copy.stat().st_mtime < oldest:
+                    copy.unlink()
 
     def per_example(self, ds_id: str, submission_id: str, path: Path) -> None:
         """Replace ``path`` with the API's copy of a submission's per-example holdout values, or remove it

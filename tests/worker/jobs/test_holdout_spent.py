@@ -140,7 +140,7 @@ def test_a_loss_before_the_seal_is_retried_uncounted(ctx: WorkerContext, monkeyp
     def unreachable(dataset_id: str) -> None:
         raise ConnectionError("the API's internal endpoint did not answer")
 
-    monkeypatch.setattr(runtime, "ensure_sealed", unreachable)
+    monkeypatch.setattr(runtime, "sealed_file", unreachable)
     sub_id, _ = _submission(ctx)
     with pytest.raises(ConnectionError):
         holdout.score_holdout(ctx, sub_id)

@@ -9,6 +9,7 @@ import os
 import stat
 import subprocess
 import sys
+import time
 import uuid
 from collections.abc import Iterator
 from pathlib import Path
@@ -23,7 +24,8 @@ from tests.support.api import Api, open_api
 from tests.support.datasets import csv_bytes, diabetes_frame
 from tests.support.records import upgraded_engine
 from tests.support.servers import ServedApp
-from worker.process.fetched_data import DataFetcher, FetchFailed
+from worker.jobs import runtime
+from worker.process.fetched_data import STALE_COPY_MARGIN_SECONDS, DataFetcher, FetchFailed
 
 SECRET = "fetch-test-secret"
 ROOT = Path(__file__).resolve().parents[3]
@@ -90,6 +92,43 @@ def test_the_sealed_file_is_fetched_only_on_request_and_kept_private(api_with_da
     assert stat.S_IMODE(os.stat(path.parent).st_mode) == 0o700
     assert stat.S_IMODE(os.stat(path.parent.parent).st_mode) == 0o700
     assert not [p for p in path.parent.iterdir() if p != path]  # no temporary file left behind
+    # Each call gets a copy of its own, never the shared name: two holdout jobs on one data dir never share it.
+    second = fetcher.sealed(ds_id)
+    assert second != path and _same_bytes(second, path)
+    assert path.name != dataset_paths(api.settings, ds_id).sealed_holdout.name
+    assert not dataset_paths(fetcher.settings, ds_id).sealed_holdout.exists()
+
+
+def test_the_holdout_jobs_copy_of_the_sealed_file_is_removed_however_the_job_ends(
+    api_with_dataset: tuple[Api, str, str], tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    _api, url, ds_id = api_with_dataset
+    fetcher = _fetcher(tmp_path / "cache", url)
+    monkeypatch.setattr(runtime._Slot, "data_source", fetcher)
+    folder = dataset_paths(fetcher.settings, ds_id).sealed_holdout.parent
+    with runtime.sealed_file(ds_id) as fetched:
+        assert fetched is not None and fetched.is_file()
+    assert not fetched.exists() and not list(folder.iterdir())
+    with pytest.raises(RuntimeError), runtime.sealed_file(ds_id) as fetched:
+        assert fetched is not None and fetched.is_file()
+        raise RuntimeError("the pipeline failed on the sealed rows")
+    assert not list(folder.iterdir())
+    monkeypatch.setattr(runtime._Slot, "data_source", None)
+    with runtime.sealed_file(ds_id) as shared:
+        assert shared is None  # a shared data dir: the job reads the store's own file, which stays
+
+
+def test_a_copy_left_by_a_killed_job_is_removed_once_older_than_the_holdout_timeout(
+    api_with_dataset: tuple[Api, str, str], tmp_path: Path
+) -> None:
+    _api, url, ds_id = api_with_dataset
+    fetcher = _fetcher(tmp_path / "cache", url)
+    left, reading = fetcher.sealed(ds_id), fetcher.sealed(ds_id)  # two copies no job removed
+    past = time.time() - fetcher.settings.job_timeout_seconds("holdout") - 2 * STALE_COPY_MARGIN_SECONDS
+    os.utime(left, (past, past))
+    fresh = fetcher.sealed(ds_id)
+    assert not left.exists()  # its job is over: it ended past the holdout timeout
+    assert reading.exists() and fresh.exists()  # may still be read by a job under way
 
 
 def test_a_wrong_secret_fetches_nothing(api_with_dataset: tuple[Api, str, str], tmp_path: Path) -> None:
