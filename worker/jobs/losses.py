@@ -4,14 +4,15 @@ The parameter-free ladder compares a new submission with the best so far by the 
 their per-example loss differences, so those values must outlive the holdout job. They are derived
 from holdout rows, so they live beside the sealed file (directory 0700, files 0600) and never leave
 the service. A worker without the shared disk sends them to the API when it writes them and reads the
-API's copy (``worker.jobs.runtime.publish_per_example``, ``fetch_per_example``), over the internal
-endpoint only workers hold the secret of.
+API's copy (``worker.jobs.runtime.publish_per_example``, ``per_example_source``), over the internal
+endpoint only workers hold the secret of, and keeps no copy of them on its disk.
 A file that cannot be read raises ``DamagedLosses``, whose message names the submission and the error
 class only, so the verdict job can fail the submission plainly instead of retrying forever.
 """
 
 from __future__ import annotations
 
+import io
 import os
 import tempfile
 import zipfile
@@ -34,11 +35,9 @@ def _path(settings: Settings, dataset_id: str, submission_id: str) -> Path:
     return per_example_path(settings, dataset_id, submission_id)
 
 
-def _fetched(settings: Settings, dataset_id: str, submission_id: str) -> Path:
-    """The kept file's path, brought from the API first by a worker without the shared disk."""
-    path = _path(settings, dataset_id, submission_id)
-    runtime.fetch_per_example(dataset_id, submission_id, path)
-    return path
+def _kept(settings: Settings, dataset_id: str, submission_id: str) -> Path | io.BytesIO | None:
+    """The kept file, or the API's copy of it in memory on a worker without the shared disk; None: none kept."""
+    return runtime.per_example_source(dataset_id, submission_id, _path(settings, dataset_id, submission_id))
 
 
 def save_per_example(
@@ -88,11 +87,11 @@ def load_scoring_rows(settings: Settings, dataset_id: str, submission_id: str) -
 
     Raises ``DamagedLosses`` when the file is there but cannot be read.
     """
-    path = _fetched(settings, dataset_id, submission_id)
-    if not path.exists():
+    source = _kept(settings, dataset_id, submission_id)
+    if source is None:
         return None
     try:
-        with np.load(path, allow_pickle=False) as stored:
+        with np.load(source, allow_pickle=False) as stored:
             if "_y" not in stored.files:
                 return None
             return {k: np.asarray(stored[k]) for k in ROW_KEYS if k in stored.files}
@@ -106,11 +105,11 @@ def load_per_example(settings: Settings, dataset_id: str, submission_id: str, me
 
     Raises ``DamagedLosses`` when the file is there but cannot be read.
     """
-    path = _fetched(settings, dataset_id, submission_id)
-    if not path.exists():
+    source = _kept(settings, dataset_id, submission_id)
+    if source is None:
         return None
     try:
-        stored = np.load(path, allow_pickle=False)
+        stored = np.load(source, allow_pickle=False)
         if not isinstance(stored, np.lib.npyio.NpzFile):
             raise ValueError("not an archive of arrays")
         with stored:

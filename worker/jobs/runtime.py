@@ -6,6 +6,7 @@ here. ``run_worker`` installs the context before the first fork; tests install t
 
 from __future__ import annotations
 
+import io
 import threading
 from collections.abc import Callable, Collection, Iterator, Mapping
 from contextlib import contextmanager, suppress
@@ -51,7 +52,7 @@ class DataSource(Protocol):
 
     def sealed(self, ds_id: str) -> Path: ...
 
-    def per_example(self, ds_id: str, submission_id: str, path: Path) -> None: ...
+    def per_example(self, ds_id: str, submission_id: str) -> bytes | None: ...
 
     def publish_per_example(self, ds_id: str, submission_id: str, path: Path) -> None: ...
 
@@ -82,17 +83,23 @@ def sealed_file(ds_id: str) -> Iterator[Path | None]:
         path.unlink(missing_ok=True)
 
 
-def fetch_per_example(ds_id: str, submission_id: str, path: Path) -> None:
-    """Bring the API's copy of a submission's per-example holdout values to ``path`` (or remove ``path``
-    when the API has none); a no-op on a shared data dir."""
-    if _Slot.data_source is not None:
-        _Slot.data_source.per_example(ds_id, submission_id, path)
+def per_example_source(ds_id: str, submission_id: str, path: Path) -> Path | io.BytesIO | None:
+    """Where to read a submission's per-example holdout values: ``path`` on a shared data dir (None when no
+    file is there); on a worker without it, the API's copy in memory (None when the API has none)."""
+    if _Slot.data_source is None:
+        return path if path.exists() else None
+    data = _Slot.data_source.per_example(ds_id, submission_id)
+    return None if data is None else io.BytesIO(data)
 
 
 def publish_per_example(ds_id: str, submission_id: str, path: Path) -> None:
-    """Give the API the per-example holdout values just written at ``path``; a no-op on a shared data dir."""
+    """Give the API the per-example holdout values just written at ``path``, then remove them here: a worker
+    without the shared disk reads the API's copy (``per_example_source``). A no-op on a shared data dir."""
     if _Slot.data_source is not None:
-        _Slot.data_source.publish_per_example(ds_id, submission_id, path)
+        try:
+            _Slot.data_source.publish_per_example(ds_id, submission_id, path)
+        finally:
+            path.unlink(missing_ok=True)
 
 
 def install(ctx: WorkerContext) -> None:

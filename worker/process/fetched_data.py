@@ -11,8 +11,9 @@ checked is hashed again before it is trusted. The sealed holdout is fetched only
 fingerprint check still runs on it, and the job removes it once read (``runtime.sealed_file``), so the
 worker keeps no copy of the sealed rows. A copy left by a work horse killed before it removed its own is
 removed by the next fetch of that dataset's sealed file, once older than the holdout job's timeout. The
-per-example holdout values the holdout job keeps are sent to the API (``publish_per_example``), and jobs
-that read them take the API's copy (``per_example``), so the verdict may run on another worker.
+per-example holdout values the holdout job keeps are sent to the API (``publish_per_example``) and removed
+here, and jobs that read them read the API's copy into memory (``per_example``), so the verdict may run on
+another worker and no worker keeps them.
 """
 
 from __future__ import annotations
@@ -149,14 +150,23 @@ class DataFetcher:
                 if copy.stat().st_mtime < oldest:
                     copy.unlink()
 
-    def per_example(self, ds_id: str, submission_id: str, path: Path) -> None:
-        """Replace ``path`` with the API's copy of a submission's per-example holdout values, or remove it
-        when the API has none: the API's copy is the one written before the stored score."""
-        _private_dirs(self.settings.data_dir, path.parent)
+    def per_example(self, ds_id: str, submission_id: str) -> bytes | None:
+        """Return the API's copy of a submission's per-example holdout values (its sha256 checked), or None
+        when the API has none: the API's copy is the one written before the stored score. Read into memory,
+        never written here: the worker keeps no values derived from the sealed rows."""
+        path = self._per_example_url(ds_id, submission_id)
         try:
-            self._download(self._per_example_url(ds_id, submission_id), path, None, mode=0o600)
+            with self._open(path) as resp:
+                expected = resp.headers.get(SHA256_HEADER)
+                try:
+                    data: bytes = resp.read()
+                except http.client.HTTPException as exc:  # a connection cut mid-body (IncompleteRead)
+                    raise FetchFailed(f"{INTERNAL_PREFIX}{path}: the transfer broke off: {exc!r}") from exc
         except _Absent:
-            path.unlink(missing_ok=True)
+            return None
+        if not expected or hashlib.sha256(data).hexdigest() != expected:
+            raise FetchFailed(f"{INTERNAL_PREFIX}{path}: the bytes received do not match their sha256")
+        return data
 
     def publish_per_example(self, ds_id: str, submission_id: str, path: Path) -> None:
         """Send the per-example values the holdout job just wrote to the API (the verdict may run elsewhere)."""

@@ -189,3 +189,37 @@ def test_a_fetching_worker_with_a_wrong_secret_refuses_to_start(api_with_dataset
     assert done.returncode == 3, done.stderr[-2000:]
     assert "cannot ask the API for its data identity" in done.stderr and "HTTP 401" in done.stderr
     assert not (tmp_path / "cache").exists() or not any((tmp_path / "cache").rglob("*.parquet"))
+
+
+class _Publisher:
+    """A data source whose publishing succeeds, or fails as an unreachable API would."""
+
+    def __init__(self, fails: bool) -> None:
+        self.fails, self.sent = fails, []
+
+    def publish_per_example(self, ds_id: str, submission_id: str, path: Path) -> None:
+        if self.fails:
+            raise FetchFailed("the API did not answer")
+        self.sent.append(path.read_bytes())
+
+
+@pytest.mark.parametrize("fails", [False, True], ids=["published", "publishing failed"])
+def test_per_example_values_leave_no_copy_on_a_fetching_worker(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, fails: bool
+) -> None:
+    written = tmp_path / "sealed" / "ds_x" / "per_example" / "sub_x.npz"
+    written.parent.mkdir(parents=True)
+    written.write_bytes(b"per-example values")
+    publisher = _Publisher(fails)
+    monkeypatch.setattr(runtime._Slot, "data_source", publisher)
+    if fails:
+        with pytest.raises(FetchFailed):  # the holdout job gets the error, as before
+            runtime.publish_per_example("ds_x", "sub_x", written)
+    else:
+        runtime.publish_per_example("ds_x", "sub_x", written)
+        assert publisher.sent == [b"per-example values"]
+    assert not written.exists()
+    monkeypatch.setattr(runtime._Slot, "data_source", None)
+    written.write_bytes(b"per-example values")
+    runtime.publish_per_example("ds_x", "sub_x", written)  # a shared data dir: the file is the one kept
+    assert written.exists() and runtime.per_example_source("ds_x", "sub_x", written) == written
