@@ -29,7 +29,7 @@ from service.cli import embedded, supervisor
 CLIENTS = 4
 # The production API's process model (docker/Dockerfile's CMD): gunicorn's gthread workers keep
 # connections alive, which sync workers would not; 4 processes, so that 4 kept connections rarely all sit
-# in one process while the other core idles (2 x 4 threads: 7 measurements in 24; 4 x 2: 2 in 26).
+# in one process while the other core idles (2 x 4 threads: 6 measurements in 24; 4 x 2: 2 in 24).
 GUNICORN_ARGS = ("--workers", "4", "--threads", "2", "--timeout", "300")
 
 
