@@ -21,6 +21,7 @@ from __future__ import annotations
 import contextlib
 import hashlib
 import http.client
+import io
 import json
 import os
 import tempfile
@@ -29,7 +30,7 @@ import urllib.error
 import urllib.parse
 import urllib.request
 from pathlib import Path
-from typing import Any
+from typing import Any, BinaryIO
 
 from service.settings import Settings
 from service.vault.fingerprint import file_sha256
@@ -132,14 +133,13 @@ class DataFetcher:
         _private_dirs(self.settings.data_dir, folder)
         self._remove_stale_copies(folder)
         handle, name = tempfile.mkstemp(prefix=SEALED_COPY_PREFIX, suffix=".parquet", dir=folder)  # mode 0600
-        os.close(handle)
-        target = Path(name)
         try:
-            self._download(f"/datasets/{urllib.parse.quote(ds_id, safe='')}/sealed", target, None, mode=0o600)
+            with os.fdopen(handle, "wb") as out:
+                self._receive(f"/datasets/{urllib.parse.quote(ds_id, safe='')}/sealed", None, out)
         except BaseException:
-            target.unlink(missing_ok=True)
+            Path(name).unlink(missing_ok=True)
             raise
-        return target
+        return Path(name)
 
     def _remove_stale_copies(self, folder: Path) -> None:
         """Remove copies of the sealed file older than the holdout job's timeout: their job is over (a work
@@ -154,19 +154,12 @@ class DataFetcher:
         """Return the API's copy of a submission's per-example holdout values (its sha256 checked), or None
         when the API has none: the API's copy is the one written before the stored score. Read into memory,
         never written here: the worker keeps no values derived from the sealed rows."""
-        path = self._per_example_url(ds_id, submission_id)
+        received = io.BytesIO()
         try:
-            with self._open(path) as resp:
-                expected = resp.headers.get(SHA256_HEADER)
-                try:
-                    data: bytes = resp.read()
-                except http.client.HTTPException as exc:  # a connection cut mid-body (IncompleteRead)
-                    raise FetchFailed(f"{INTERNAL_PREFIX}{path}: the transfer broke off: {exc!r}") from exc
+            self._receive(self._per_example_url(ds_id, submission_id), None, received)
         except _Absent:
             return None
-        if not expected or hashlib.sha256(data).hexdigest() != expected:
-            raise FetchFailed(f"{INTERNAL_PREFIX}{path}: the bytes received do not match their sha256")
-        return data
+        return received.getvalue()
 
     def publish_per_example(self, ds_id: str, submission_id: str, path: Path) -> None:
         """Send the per-example values the holdout job just wrote to the API (the verdict may run elsewhere)."""
@@ -181,21 +174,26 @@ class DataFetcher:
         return (f"/datasets/{urllib.parse.quote(ds_id, safe='')}/per-example/"
                 f"{urllib.parse.quote(submission_id, safe='')}")
 
-    def _download(self, path: str, target: Path, sha: str | None, *, mode: int) -> None:
+    def _receive(self, path: str, sha: str | None, out: BinaryIO) -> None:
+        """Stream ``path`` into ``out``; raise FetchFailed unless the bytes match ``sha`` (else the API's header)."""
+        digest = hashlib.sha256()
+        with self._open(path) as resp:
+            expected = sha or resp.headers.get(SHA256_HEADER)
+            try:
+                while chunk := resp.read(CHUNK_BYTES):
+                    digest.update(chunk)
+                    out.write(chunk)
+            except http.client.HTTPException as exc:  # a connection cut mid-body (IncompleteRead)
+                raise FetchFailed(f"{INTERNAL_PREFIX}{path}: the transfer broke off: {exc!r}") from exc
+        if not expected or digest.hexdigest() != expected:
+            raise FetchFailed(f"{INTERNAL_PREFIX}{path}: the bytes received do not match their sha256")
+
+    def _download(self, path: str, target: Path, sha: str, *, mode: int) -> None:
         """Stream ``path`` into a temporary file beside ``target``, check its sha256, rename it into place."""
         handle, temporary = tempfile.mkstemp(prefix=f".{target.name}-", dir=target.parent)  # mode 0600
-        digest = hashlib.sha256()
         try:
-            with self._open(path) as resp, os.fdopen(handle, "wb") as out:
-                expected = sha or resp.headers.get(SHA256_HEADER)
-                try:
-                    while chunk := resp.read(CHUNK_BYTES):
-                        digest.update(chunk)
-                        out.write(chunk)
-                except http.client.HTTPException as exc:  # a connection cut mid-body (IncompleteRead)
-                    raise FetchFailed(f"{INTERNAL_PREFIX}{path}: the transfer broke off: {exc!r}") from exc
-            if not expected or digest.hexdigest() != expected:
-                raise FetchFailed(f"{INTERNAL_PREFIX}{path}: the bytes received do not match their sha256")
+            with os.fdopen(handle, "wb") as out:
+                self._receive(path, sha, out)
             os.chmod(temporary, mode)
             os.replace(temporary, target)
         except BaseException:
