@@ -77,8 +77,8 @@ def run_team_ci(burst_size: int, poll_seconds: float, worker_counts: tuple[int, 
                     page = submitter.get(f"/v1/submissions?dataset={dataset_id}&limit=1").json()["submissions"]
                     if not page:
                         page = [_one_submission(submitter, dataset_id)]
-                    base_url = start_gunicorn(sup, stack.env, data_dir / "logs")
-                    result.polling = bench_polling(base_url, submitter_token, page[0]["id"], poll_seconds)
+                    api = start_gunicorn(sup, stack.env, data_dir / "logs")
+                    result.polling = bench_polling(api, submitter_token, page[0]["id"], poll_seconds)
     return result
 
 
