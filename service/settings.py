@@ -41,6 +41,7 @@ _ENV_NAMES: dict[str, str] = {
     "data_source": "SEALFOLD_DATA_SOURCE",
     "api_url": "SEALFOLD_API_URL",
     "worker_secret": "SEALFOLD_WORKER_SECRET",
+    "data_cache_max_mb": "SEALFOLD_DATA_CACHE_MAX_MB",
     "key_cache_seconds": "SEALFOLD_KEY_CACHE_SECONDS",
 }
 DATA_SOURCES = ("shared", "api")
@@ -102,6 +103,10 @@ class Settings:
     # Held by the API and every worker: the internal data endpoint answers only "Bearer <worker_secret>",
     # and is off (404) when the API has none.
     worker_secret: str = ""
+    # With data_source "api": the most the worker's cache of development files may hold, in MiB (0: no cap).
+    # Datasets used longest ago are removed first, never one used within the longest job timeout
+    # (worker.process.cache_prune).
+    data_cache_max_mb: int = 10240
     # How long an API process trusts a key it verified before it reads the key's record again (0: every
     # request reads it). A key revoked elsewhere stops working in every API process within this bound.
     key_cache_seconds: float = 2.0
@@ -146,6 +151,8 @@ class Settings:
                 raise SettingsError(f"data_source 'api' needs {', '.join(missing)} (SEALFOLD_API_URL, "
                                     "SEALFOLD_WORKER_SECRET, DATABASE_URL: the data dir is then a local cache, "
                                     "so the records database cannot live in it)")
+        if self.data_cache_max_mb < 0:
+            raise SettingsError(f"data_cache_max_mb must be 0 (no cap) or positive, got {self.data_cache_max_mb}")
         if not 0 <= self.key_cache_seconds <= 60:
             raise SettingsError(f"key_cache_seconds must be between 0 and 60, got {self.key_cache_seconds}")
         if self.min_rows < 10:
@@ -171,6 +178,11 @@ class Settings:
         if kind == "check":
             return max(30, int(self.check_timeout_seconds) * 3)
         return 600  # summary and verdict: bookkeeping, never a fit
+
+    @property
+    def longest_job_timeout_seconds(self) -> int:
+        """The longest any job may run: what a job that opened a dataset's files may still be reading them."""
+        return max(self.job_timeout_seconds(kind) for kind in ("fold", "holdout", "check", "other"))
 
     @property
     def check_queue_name(self) -> str:

@@ -13,7 +13,8 @@ worker keeps no copy of the sealed rows. A copy left by a work horse killed befo
 removed by the next fetch of that dataset's sealed file, once older than the holdout job's timeout. The
 per-example holdout values the holdout job keeps are sent to the API (``publish_per_example``) and removed
 here, and jobs that read them read the API's copy into memory (``per_example``), so the verdict may run on
-another worker and no worker keeps them.
+another worker and no worker keeps them. After a fetch, the datasets used longest ago are removed until the
+cache is back under ``SEALFOLD_DATA_CACHE_MAX_MB`` (``worker.process.cache_prune``).
 """
 
 from __future__ import annotations
@@ -35,6 +36,7 @@ from typing import Any, BinaryIO
 from service.settings import Settings
 from service.vault.fingerprint import file_sha256
 from service.vault.store import dataset_paths
+from worker.process.cache_prune import mark_used, prune
 
 INTERNAL_PREFIX = "/internal/v1"  # service.api.internal.PREFIX (the worker does not import Flask code)
 SHA256_HEADER = "X-Sealfold-Sha256"
@@ -103,7 +105,7 @@ class DataFetcher:
         paths = dataset_paths(self.settings, ds_id)  # refuses an id that is not one path component
         quoted = urllib.parse.quote(ds_id, safe="")
         listing = self._json(f"/datasets/{quoted}/manifest")
-        paths.root.mkdir(parents=True, exist_ok=True)
+        mark_used(paths.root.parent, ds_id)  # before any file is checked: a prune meanwhile leaves it alone
         record_path = paths.root / RECORD_NAME
         record = _read_record(record_path)
         fetched = []
@@ -119,6 +121,9 @@ class DataFetcher:
             fetched.append(name)
             record[name] = _stamp(target, sha)
         _write_record(record_path, record)
+        if fetched and self.settings.data_cache_max_mb:
+            prune(paths.root.parent, ds_id, self.settings.data_cache_max_mb << 20,
+                  self.settings.longest_job_timeout_seconds + STALE_COPY_MARGIN_SECONDS, time.time())
         return fetched
 
     def sealed(self, ds_id: str) -> Path:

@@ -46,9 +46,10 @@ def api_with_dataset(tmp_path: Path) -> Iterator[tuple[Api, str, str]]:
             yield api, served.url, reply.get_json()["id"]
 
 
-def _fetcher(cache: Path, url: str, secret: str = SECRET) -> DataFetcher:
+def _fetcher(cache: Path, url: str, secret: str = SECRET, **more: Any) -> DataFetcher:
     return DataFetcher(Settings.load({"data_dir": cache, "data_source": "api", "api_url": url,
-                                      "worker_secret": secret, "database_url": "sqlite:///unused"}, environ={}))
+                                      "worker_secret": secret, "database_url": "sqlite:///unused", **more},
+                                     environ={}))
 
 
 def _same_bytes(a: Path, b: Path) -> bool:
@@ -67,6 +68,29 @@ def test_development_files_are_fetched_verified_and_kept(api_with_dataset: tuple
     # Fold jobs only: the sealed file is nowhere in the cache.
     assert not (tmp_path / "cache" / "sealed").exists()
     assert not [p for p in (tmp_path / "cache").rglob("*") if p.name == theirs.sealed_holdout.name]
+
+
+def test_a_fetch_keeps_the_cache_under_its_cap_removing_datasets_no_job_may_still_read(
+    api_with_dataset: tuple[Api, str, str], tmp_path: Path
+) -> None:
+    _api, url, ds_id = api_with_dataset
+    fetcher = _fetcher(tmp_path / "cache", url, data_cache_max_mb=1)
+    datasets = tmp_path / "cache" / "datasets"
+    idle = time.time() - fetcher.settings.longest_job_timeout_seconds - 2 * STALE_COPY_MARGIN_SECONDS
+    for name, used in (("ds-idle", idle), ("ds-busy", time.time() - 60)):  # 1 MiB each, cached earlier
+        (datasets / name).mkdir(parents=True)
+        (datasets / name / "numeric.npy").write_bytes(b"\0" * (1 << 20))
+        os.utime(datasets / name, (used, used))
+    assert fetcher.development(ds_id)  # fetched: the cache is over its 1 MiB
+    assert not (datasets / "ds-idle").exists()  # used longer ago than any job may run
+    assert (datasets / "ds-busy").is_dir()  # a job that asked for it a minute ago may still read it
+    assert _same_bytes(dataset_paths(fetcher.settings, ds_id).numeric,
+                       dataset_paths(_api.settings, ds_id).numeric)
+    # The settings say what the cap is, and 0 turns it off.
+    assert Settings.load(environ={}).data_cache_max_mb == 10240
+    assert Settings.load(environ={"SEALFOLD_DATA_CACHE_MAX_MB": "0"}).data_cache_max_mb == 0
+    with pytest.raises(SettingsError, match="data_cache_max_mb must be 0"):
+        Settings.load({"data_cache_max_mb": -1}, environ={})
 
 
 def test_a_damaged_cached_file_is_fetched_again(api_with_dataset: tuple[Api, str, str], tmp_path: Path) -> None:
