@@ -10,7 +10,8 @@ checked is hashed again before it is trusted. The sealed holdout is fetched only
 (``DataFetcher.sealed``), into a file of that job's own, 0600 in a 0700 ``sealed/`` directory; the job's
 fingerprint check still runs on it, and the job removes it once read (``runtime.sealed_file``), so the
 worker keeps no copy of the sealed rows. A copy left by a work horse killed before it removed its own is
-removed by the next fetch of that dataset's sealed file, once older than the holdout job's timeout. The
+removed by the next fetch of that dataset's sealed file, once older than the holdout job's timeout, and a
+worker starting removes what older versions or killed jobs left under ``sealed/`` (``sweep_sealed``). The
 per-example holdout values the holdout job keeps are sent to the API (``publish_per_example``) and removed
 here, and jobs that read them read the API's copy into memory (``per_example``), so the verdict may run on
 another worker and no worker keeps them. After a fetch, the datasets used longest ago are removed until the
@@ -33,6 +34,7 @@ import urllib.request
 from pathlib import Path
 from typing import Any, BinaryIO
 
+from service.ops.data_identity import read_marker
 from service.settings import Settings
 from service.vault.fingerprint import file_sha256
 from service.vault.store import dataset_paths
@@ -42,6 +44,7 @@ INTERNAL_PREFIX = "/internal/v1"  # service.api.internal.PREFIX (the worker does
 SHA256_HEADER = "X-Sealfold-Sha256"
 RECORD_NAME = ".verified.json"
 SEALED_COPY_PREFIX = ".holdout-"  # a holdout job's own copy of the sealed file (DataFetcher.sealed)
+LEGACY_SEALED_NAME = "holdout.parquet"  # the store's name of the sealed file, where older versions kept a copy
 STALE_COPY_MARGIN_SECONDS = 60.0
 CHUNK_BYTES = 1024 * 1024
 TIMEOUT_SECONDS = 60.0
@@ -121,7 +124,8 @@ class DataFetcher:
             fetched.append(name)
             record[name] = _stamp(target, sha)
         _write_record(record_path, record)
-        if fetched and self.settings.data_cache_max_mb:
+        # Never on a deployment's data volume (it carries the marker; the data check refuses that anyway).
+        if fetched and self.settings.data_cache_max_mb and read_marker(self.settings.data_dir) is None:
             prune(paths.root.parent, ds_id, self.settings.data_cache_max_mb << 20,
                   self.settings.longest_job_timeout_seconds + STALE_COPY_MARGIN_SECONDS, time.time())
         return fetched
@@ -154,6 +158,21 @@ class DataFetcher:
             with contextlib.suppress(OSError):
                 if copy.stat().st_mtime < oldest:
                     copy.unlink()
+
+    def sweep_sealed(self) -> list[Path]:
+        """Remove what is left under this cache's ``sealed/``: the whole sealed file older versions kept as
+        ``holdout.parquet`` (no job writes that name here now), and any other file older than the holdout job's
+        timeout (a copy or per-example values of a job killed before it removed them; a younger one may be
+        another worker's job under way). Return the files removed. Run at start, after the data check has
+        made sure the data dir is this worker's cache, not a deployment's volume."""
+        oldest = time.time() - self.settings.job_timeout_seconds("holdout") - STALE_COPY_MARGIN_SECONDS
+        removed = []
+        for left in (self.settings.data_dir / "sealed").rglob("*"):
+            with contextlib.suppress(OSError):
+                if left.is_file() and (left.name == LEGACY_SEALED_NAME or left.stat().st_mtime < oldest):
+                    left.unlink()
+                    removed.append(left)
+        return removed
 
     def per_example(self, ds_id: str, submission_id: str) -> bytes | None:
         """Return the API's copy of a submission's per-example holdout values (its sha256 checked), or None

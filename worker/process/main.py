@@ -316,6 +316,8 @@ def run_worker(settings: Settings, *, burst: bool = False, name: str | None = No
         engine.dispose()  # nothing open crosses the fold process's fork
     if problem is not None or recorded is None:
         raise data_identity.DataNotShared(problem or "no data identity")
+    if fetcher is not None:
+        fetcher.sweep_sealed()  # no sealed rows left on this worker's disk by older versions or killed jobs
     preload()
     limit_threads()
     runtime.install(runtime.WorkerContext(settings=settings, engine=engine))

@@ -6,6 +6,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import os
+import shutil
 import stat
 import subprocess
 import sys
@@ -18,6 +19,7 @@ from typing import Any
 import pytest
 
 from service.errors import SettingsError
+from service.ops.data_identity import MARKER_NAME
 from service.settings import Settings
 from service.vault.store import dataset_paths
 from tests.support.api import Api, open_api
@@ -188,8 +190,8 @@ def test_data_source_is_shared_or_api() -> None:
 
 
 def _start_fetching_worker(tmp_path: Path, url: str, database_url: str, redis_url: str,
-                           secret: str = SECRET) -> subprocess.CompletedProcess[str]:
-    env = {**os.environ, "SEALFOLD_DATA_DIR": str(tmp_path / "cache"), "SEALFOLD_DATA_SOURCE": "api",
+                           secret: str = SECRET, data_dir: Path | None = None) -> subprocess.CompletedProcess[str]:
+    env = {**os.environ, "SEALFOLD_DATA_DIR": str(data_dir or tmp_path / "cache"), "SEALFOLD_DATA_SOURCE": "api",
            "SEALFOLD_API_URL": url, "SEALFOLD_WORKER_SECRET": secret, "DATABASE_URL": database_url,
            "REDIS_URL": redis_url, "SEALFOLD_QUEUE": f"q{uuid.uuid4().hex[:8]}"}
     return subprocess.run([sys.executable, "-m", "worker", "--burst"], env=env, cwd=ROOT, capture_output=True,
@@ -213,6 +215,49 @@ def test_a_fetching_worker_with_a_wrong_secret_refuses_to_start(api_with_dataset
     assert done.returncode == 3, done.stderr[-2000:]
     assert "cannot ask the API for its data identity" in done.stderr and "HTTP 401" in done.stderr
     assert not (tmp_path / "cache").exists() or not any((tmp_path / "cache").rglob("*.parquet"))
+
+
+def test_a_fetching_worker_on_a_deployments_data_volume_refuses_to_start_and_prunes_nothing(
+    api_with_dataset: tuple[Api, str, str], tmp_path: Path, redis_url: str
+) -> None:
+    api, url, ds_id = api_with_dataset
+    volume = api.settings.data_dir  # carries the deployment's marker
+    done = _start_fetching_worker(tmp_path, url, api.settings.effective_database_url, redis_url, data_dir=volume)
+    assert done.returncode == 3, done.stderr[-2000:]
+    assert "is a deployment's data directory" in done.stderr and "SEALFOLD_DATA_SOURCE=shared" in done.stderr
+    # Even called directly, a fetch into a directory with a marker never prunes the datasets there.
+    marked = tmp_path / "marked"
+    idle = marked / "datasets" / "ds-idle"
+    idle.mkdir(parents=True)
+    (idle / "numeric.npy").write_bytes(b"\0" * (2 << 20))
+    old = time.time() - 30 * 86_400
+    os.utime(idle, (old, old))
+    shutil.copy(volume / MARKER_NAME, marked / MARKER_NAME)
+    assert _fetcher(marked, url, data_cache_max_mb=1).development(ds_id)
+    assert idle.is_dir()
+    (marked / MARKER_NAME).unlink()
+    (marked / "datasets" / ds_id / "numeric.npy").unlink()
+    assert _fetcher(marked, url, data_cache_max_mb=1).development(ds_id) == ["numeric.npy"]
+    assert not idle.exists()  # the same fetch without the marker: a cache, pruned
+
+
+def test_a_fetching_worker_starting_removes_sealed_rows_left_by_older_versions_and_killed_jobs(
+    api_with_dataset: tuple[Api, str, str], tmp_path: Path, redis_url: str
+) -> None:
+    api, url, _ = api_with_dataset
+    folder = tmp_path / "cache" / "sealed" / "ds_a"
+    (folder / "per_example").mkdir(parents=True)
+    legacy, killed = folder / "holdout.parquet", folder / "per_example" / "sub_old.npz"
+    running, copy = folder / "per_example" / "sub_now.npz", folder / ".holdout-abc.parquet"
+    for path in (legacy, killed, running, copy):
+        path.write_bytes(b"sealed-derived bytes")
+    past = time.time() - Settings.load(environ={}).job_timeout_seconds("holdout") - 2 * STALE_COPY_MARGIN_SECONDS
+    os.utime(killed, (past, past))
+    done = _start_fetching_worker(tmp_path, url, api.settings.effective_database_url, redis_url)
+    assert done.returncode == 0, done.stderr[-2000:]
+    assert not legacy.exists()  # the whole sealed file an older version kept, however young
+    assert not killed.exists()  # values of a job killed longer ago than the holdout timeout
+    assert running.exists() and copy.exists()  # may belong to another worker's holdout job under way
 
 
 class _Publisher:
