@@ -12,9 +12,9 @@ timeout. So the cache may stay above its cap while every dataset in it is that r
 
 Processes of one host share the cache: the mark is made under a shared lock of the cache and the pruning
 under an exclusive one (``flock``), so a dataset marked while a prune is deciding is either seen as just used
-or removed before the mark (and then fetched whole again). A dataset is renamed out of the way before its
-files are deleted, so no reader ever finds half of one; a rename left by a pruner that died is deleted by
-the next prune.
+or removed before the mark (and then fetched whole again). A dataset is renamed out of the way under the lock
+and its files deleted after it, so no reader ever finds half of one and no job waits for a deletion; a rename
+left by a pruner that died is deleted by the next prune.
 """
 
 from __future__ import annotations
@@ -70,11 +70,12 @@ def prune(datasets_dir: Path, keep: str, cap_bytes: int, idle_seconds: float, no
     """Remove datasets other than ``keep``, used longest ago first, until the cache holds at most ``cap_bytes``;
     none used within ``idle_seconds`` of ``now``. Return what was removed, in that order."""
     removed: list[Removed] = []
+    doomed = []  # renamed under the lock, deleted after it: marking waits for the decision, not the deletion
     with cache_lock(datasets_dir, exclusive=True):
         entries = []
         for entry in datasets_dir.iterdir():
             if entry.name.startswith(PRUNED_PREFIX):
-                shutil.rmtree(entry, ignore_errors=True)  # left by a pruner that died mid-way
+                doomed.append(entry)  # left by a pruner that died mid-way
             elif entry.is_dir() and not entry.name.startswith("."):
                 entries.append((_last_used(entry), _size(entry), entry))
         total = sum(size for _, size, _ in entries)
@@ -83,13 +84,14 @@ def prune(datasets_dir: Path, keep: str, cap_bytes: int, idle_seconds: float, no
                 break
             if entry.name == keep or last_used > now - idle_seconds:
                 continue
-            doomed = entry.with_name(f"{PRUNED_PREFIX}{entry.name}-{uuid.uuid4().hex[:8]}")
-            os.rename(entry, doomed)
-            shutil.rmtree(doomed, ignore_errors=True)
+            doomed.append(entry.with_name(f"{PRUNED_PREFIX}{entry.name}-{uuid.uuid4().hex[:8]}"))
+            os.rename(entry, doomed[-1])
             total -= size
             removed.append(Removed(entry.name, size, last_used))
             log.info("removed cached dataset %s (%.1f MiB, last used %.0f s ago) to keep the cache under %d MiB",
                      entry.name, size / 2**20, now - last_used, cap_bytes >> 20)
+    for path in doomed:
+        shutil.rmtree(path, ignore_errors=True)
     return removed
 
 
