@@ -31,6 +31,7 @@ import time
 import urllib.error
 import urllib.parse
 import urllib.request
+from collections.abc import Iterable
 from pathlib import Path
 from typing import Any, BinaryIO
 
@@ -140,7 +141,7 @@ class DataFetcher:
         """
         folder = dataset_paths(self.settings, ds_id).sealed_holdout.parent
         _private_dirs(self.settings.data_dir, folder)
-        self._remove_stale_copies(folder)
+        self._remove_left(folder.glob(f"{SEALED_COPY_PREFIX}*"))  # copies of killed work horses, once stale
         handle, name = tempfile.mkstemp(prefix=SEALED_COPY_PREFIX, suffix=".parquet", dir=folder)  # mode 0600
         try:
             with os.fdopen(handle, "wb") as out:
@@ -150,26 +151,21 @@ class DataFetcher:
             raise
         return Path(name)
 
-    def _remove_stale_copies(self, folder: Path) -> None:
-        """Remove copies of the sealed file older than the holdout job's timeout: their job is over (a work
-        horse killed before it removed its copy); a younger one may still be read."""
-        oldest = time.time() - self.settings.job_timeout_seconds("holdout") - STALE_COPY_MARGIN_SECONDS
-        for copy in folder.glob(f"{SEALED_COPY_PREFIX}*"):
-            with contextlib.suppress(OSError):
-                if copy.stat().st_mtime < oldest:
-                    copy.unlink()
-
     def sweep_sealed(self) -> list[Path]:
         """Remove what is left under this cache's ``sealed/``: the whole sealed file older versions kept as
-        ``holdout.parquet`` (no job writes that name here now), and any other file older than the holdout job's
-        timeout (a copy or per-example values of a job killed before it removed them; a younger one may be
-        another worker's job under way). Return the files removed. Run at start, after the data check has
+        ``holdout.parquet`` (no job writes that name here now), and any other file left by a job killed before
+        it removed it (``_remove_left``). Return the files removed. Run at start, after the data check has
         made sure the data dir is this worker's cache, not a deployment's volume."""
+        return self._remove_left((self.settings.data_dir / "sealed").rglob("*"), legacy=True)
+
+    def _remove_left(self, files: Iterable[Path], *, legacy: bool = False) -> list[Path]:
+        """Remove those of ``files`` older than the holdout job's timeout (their job is over; a younger one may
+        be another job's under way) and, with ``legacy``, every ``LEGACY_SEALED_NAME``; return them."""
         oldest = time.time() - self.settings.job_timeout_seconds("holdout") - STALE_COPY_MARGIN_SECONDS
         removed = []
-        for left in (self.settings.data_dir / "sealed").rglob("*"):
+        for left in files:
             with contextlib.suppress(OSError):
-                if left.is_file() and (left.name == LEGACY_SEALED_NAME or left.stat().st_mtime < oldest):
+                if left.is_file() and ((legacy and left.name == LEGACY_SEALED_NAME) or left.stat().st_mtime < oldest):
                     left.unlink()
                     removed.append(left)
         return removed
