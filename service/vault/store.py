@@ -3,7 +3,8 @@
 Layout (``settings.data_dir``):
     datasets/<ds_id>/development.parquet  development rows, ``row_id`` first, then the original columns
     datasets/<ds_id>/numeric.npy          float64 C-order matrix of the numeric columns, for mmap
-    datasets/<ds_id>/manifest.json        column kinds, numeric column names, target, task
+    datasets/<ds_id>/manifest.json        column kinds, numeric column names, target, task, and
+                                          which numeric columns are finite in every row
     datasets/<ds_id>/folds/<scheme>-<k>-<seed>.npy  a fold plan's fold of every row (int8), cached
                                           at registration or by the first job that computes it;
                                           <scheme>.v<N>-<k>-<seed>.npy from version 2 of a scheme's
@@ -42,6 +43,7 @@ from service.vault.fingerprint import fingerprint_frame
 from service.vault.folds import ASSIGNMENT_VERSIONS, FoldPlan
 
 ROW_ID = "row_id"
+FINITE_COLUMNS = "finite_columns"  # manifest key; a manifest written before it knew none finite
 _SAFE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_-]{0,79}$")
 
 
@@ -101,7 +103,10 @@ def write_dataset(
         os.chmod(staging, 0o755)
         _write_parquet(dev_df_with_row_id, staging / paths.development.name)
         numeric_columns = list(manifest["numeric_columns"])
-        np.save(staging / paths.numeric.name, numeric_matrix(dev_df_with_row_id, numeric_columns))
+        matrix = numeric_matrix(dev_df_with_row_id, numeric_columns)
+        np.save(staging / paths.numeric.name, matrix)
+        manifest = {**manifest, FINITE_COLUMNS: finite_columns(matrix, numeric_columns)}
+        del matrix
         (staging / paths.manifest.name).write_text(json.dumps(manifest, indent=2), encoding="utf-8")
 
         sealing = Path(tempfile.mkdtemp(prefix=f".{ds_id}-", dir=sealed_dir.parent))  # mode 0700
@@ -137,6 +142,12 @@ def numeric_matrix(frame: pd.DataFrame, columns: list[str]) -> np.ndarray:
     return matrix
 
 
+def finite_columns(matrix: np.ndarray, columns: list[str]) -> list[str]:
+    """Return the columns of ``matrix`` whose every value is finite (no missing value, no infinity)."""
+    finite = np.isfinite(matrix).all(axis=0) if len(matrix) else np.ones(len(columns), dtype=bool)
+    return [name for name, ok in zip(columns, finite, strict=True) if ok]
+
+
 def load_development_frame(settings: Settings, ds_id: str, columns: list[str] | None = None) -> pd.DataFrame:
     """Read the development partition, or only ``columns`` of it, in stored row order."""
     path = dataset_paths(settings, ds_id).development
@@ -155,14 +166,23 @@ def load_development_frame(settings: Settings, ds_id: str, columns: list[str] | 
     return frame
 
 
-def load_numeric(settings: Settings, ds_id: str) -> tuple[np.memmap[Any, Any], list[str]]:
-    """Memory-map the numeric matrix of the development rows and return it with its column names."""
+@dataclass(frozen=True)
+class NumericMatrix:
+    """The memory-mapped numeric matrix of a dataset's development rows, with what its manifest says of it."""
+
+    matrix: np.memmap[Any, Any]
+    columns: list[str]
+    finite: frozenset[str]  # the columns finite in every row, as the registration found them
+
+
+def load_numeric(settings: Settings, ds_id: str) -> NumericMatrix:
+    """Memory-map the numeric matrix of the development rows; name its columns and the finite ones."""
     paths = dataset_paths(settings, ds_id)
     if not paths.numeric.is_file():
         raise NotFound(f"no numeric matrix for dataset {ds_id!r}")
     manifest = json.loads(paths.manifest.read_text(encoding="utf-8"))
     matrix = np.load(paths.numeric, mmap_mode="r")
-    return matrix, list(manifest["numeric_columns"])
+    return NumericMatrix(matrix, list(manifest["numeric_columns"]), frozenset(manifest.get(FINITE_COLUMNS, ())))
 
 
 def fold_assignment_path(settings: Settings, ds_id: str, plan: FoldPlan, repeat: int) -> Path:

@@ -23,7 +23,14 @@ from worker.jobs.runtime import Skip, WorkerContext, submission_to_work_on
 from worker.learning.calibration import fold_bins
 from worker.learning.curve import curve_points
 from worker.learning.development import DevelopmentData, column_kinds, load_development, split_for
-from worker.learning.pipeline import MODEL_STEP, baseline_estimator, build_pipeline, fit_in_place, output_feature_names
+from worker.learning.pipeline import (
+    MODEL_STEP,
+    baseline_estimator,
+    build_pipeline,
+    fit_in_place,
+    input_checked,
+    output_feature_names,
+)
 from worker.learning.scoring import (
     class_labels,
     predictions,
@@ -97,7 +104,8 @@ def evaluate_fold(
     }
     try:
         started = time.perf_counter()
-        model.fit(X_train, y_train)
+        with input_checked(model, data.finite):
+            model.fit(X_train, y_train)
         fields["fit_seconds"] = time.perf_counter() - started
         started = time.perf_counter()
         # A classifier with probabilities also bins them for the report's reliability curve.

@@ -50,7 +50,7 @@ from worker.jobs.losses import save_per_example, scoring_rows
 from worker.jobs.runtime import Skip, WorkerContext, repeating, submission_to_work_on
 from worker.learning.development import column_kinds, load_development, model_frame, model_matrix, target_values
 from worker.learning.per_row import per_example
-from worker.learning.pipeline import build_pipeline, fit_in_place, uses_frame
+from worker.learning.pipeline import build_pipeline, fit_in_place, input_checked, uses_frame
 from worker.learning.scoring import class_labels, predictions, score_predictions
 from worker.learning.search import build_model, search_keys
 
@@ -185,7 +185,8 @@ def _score(
     pipeline = fit_in_place(build_model(build_pipeline(config.model, kinds), config, classes, inner), config.model)
     try:
         started = time.perf_counter()
-        pipeline.fit(data.copied_features(), data.target_of())
+        with input_checked(pipeline, data.finite):  # the development rows, as the registration checked them
+            pipeline.fit(data.copied_features(), data.target_of())
         fit_seconds = time.perf_counter() - started
     except MemoryError:
         raise

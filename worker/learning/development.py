@@ -79,6 +79,9 @@ class DevelopmentData:
     frame: pd.DataFrame | None  # set when any feature is categorical
     matrix: np.ndarray | None  # the memory map of numeric.npy otherwise
     positions: tuple[int, ...]  # feature positions in the memory map's columns
+    # Every feature and target value is finite, as the registration found when it wrote numeric.npy
+    # (``service.vault.store.finite_columns``); False when nobody checked.
+    finite: bool = False
 
     @property
     def n_rows(self) -> int:
@@ -139,7 +142,8 @@ def load_development(
         frame = store.load_development_frame(settings, dataset["id"], columns=list(dict.fromkeys([*keys, *features])))
         y = target_values(frame[target], str(dataset["task"]))
         return DevelopmentData(tuple(features), y, model_frame(frame, features, kinds), None, ()), frame.loc[:, keys]
-    matrix, names = store.load_numeric(settings, dataset["id"])
+    numeric = store.load_numeric(settings, dataset["id"])
+    matrix, names = numeric.matrix, numeric.columns
     missing = [f for f in features if f not in names]
     if missing:
         raise ValueError(f"features {missing} are not numeric columns of dataset {dataset['id']}; "
@@ -150,12 +154,16 @@ def load_development(
         # kept of its previous fold's memory (``worker.process.fold_process``).
         column = names.index(target)
         y = gather_rows(matrix, None, slice(column, column + 1)).ravel()
-        return DevelopmentData(tuple(features), y, None, matrix, positions), pd.DataFrame({target: y}, copy=False)
+        finite = numeric.finite.issuperset([*features, target])
+        return (DevelopmentData(tuple(features), y, None, matrix, positions, finite),
+                pd.DataFrame({target: y}, copy=False))
     frame = store.load_development_frame(settings, dataset["id"], columns=keys)
     if len(frame) != matrix.shape[0]:
         raise ValueError(f"numeric.npy has {matrix.shape[0]} rows but development.parquet has {len(frame)}")
     y = target_values(frame[target], str(dataset["task"]))
-    return DevelopmentData(tuple(features), y, None, matrix, positions), frame
+    # Labels that are not floats cannot be NaN or infinite; float ones are a numeric column of the manifest.
+    finite = numeric.finite.issuperset(features) and (y.dtype.kind != "f" or target in numeric.finite)
+    return DevelopmentData(tuple(features), y, None, matrix, positions, finite), frame
 
 
 def column_selector(positions: Sequence[int]) -> slice | np.ndarray:

@@ -140,9 +140,31 @@ def test_load_development_frame_and_its_columns(settings: Settings) -> None:
         store.load_development_frame(settings, "ds_missing")
 
 
+def test_manifest_names_the_numeric_columns_finite_in_every_development_row(settings: Settings) -> None:
+    development, holdout, manifest = _parts()
+    development.loc[3, "bmi"] = np.nan  # a missing value
+    development.loc[5, "bp"] = np.inf  # an infinity: as unusable to an estimator as a missing value
+    holdout.loc[0, "age"] = np.nan  # the sealed rows say nothing about the development rows
+    store.write_dataset(settings, DS, development, holdout, manifest)
+    numeric = store.load_numeric(settings, DS)
+    expected = [c for c in manifest["numeric_columns"] if np.isfinite(development[c].astype(float)).all()]
+    assert "bmi" not in numeric.finite and "bp" not in numeric.finite and "age" in numeric.finite
+    assert numeric.finite == frozenset(expected) and len(expected) == len(manifest["numeric_columns"]) - 2
+    assert json.loads(store.dataset_paths(settings, DS).manifest.read_text())["finite_columns"] == expected
+
+
+def test_a_manifest_written_before_finite_columns_knows_none_finite(settings: Settings) -> None:
+    paths, _, _ = _written(settings)
+    manifest = json.loads(paths.manifest.read_text())
+    del manifest["finite_columns"]
+    paths.manifest.write_text(json.dumps(manifest))
+    assert store.load_numeric(settings, DS).finite == frozenset()
+
+
 def test_load_numeric_is_a_read_only_memory_map(settings: Settings) -> None:
     _, development, _ = _written(settings)
-    matrix, names = store.load_numeric(settings, DS)
+    numeric = store.load_numeric(settings, DS)
+    matrix, names = numeric.matrix, numeric.columns
     assert isinstance(matrix, np.memmap) and not matrix.flags["WRITEABLE"]
     assert names[0] == "age" and matrix.shape == (400, len(names))
     assert np.array_equal(matrix[:, names.index("bmi")], development["bmi"].to_numpy())
