@@ -53,7 +53,9 @@ def give_verdict(ctx: WorkerContext, redis: Redis, submission_id: str) -> dict[s
         return work.answer
     sub, dataset = work.submission, work.dataset
     if sub["verdict"] is not None:
-        submissions.transition(engine, submission_id, "succeeded", LIVE_STATES)
+        # A retry after the verdict was stored: finish it at the publication time stored with it.
+        submissions.transition(engine, submission_id, "succeeded", LIVE_STATES,
+                               published_at=as_utc(sub.get("published_at")))
         return {"submission_id": submission_id, "verdict": "already judged"}
     if sub["cv_summary"] is None:
         raise RuntimeError(f"submission {submission_id} has no cross-validation summary yet; "

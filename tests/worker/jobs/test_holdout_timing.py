@@ -21,7 +21,7 @@ import contextlib
 import time
 from collections.abc import Iterator
 from dataclasses import dataclass
-from datetime import datetime
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
@@ -30,12 +30,12 @@ import pandas as pd
 import pytest
 from redis import Redis
 from sklearn.datasets import load_diabetes
-from sqlalchemy import select
+from sqlalchemy import select, update
 
 from service import team_scope
 from service.gate.release import FAILED_NOTE
 from service.gate.review_state import LATE_NOTE
-from service.records import audit, holdout_releases, submission_versions, submissions
+from service.records import audit, holdout_releases, submission_versions, submissions, tables
 from service.records.engine import as_utc
 from service.records.keys import KeyInfo
 from service.records.tables import holdout_claims
@@ -257,3 +257,35 @@ def test_a_cancel_before_publication_answers_as_for_a_running_submission(
     doc = submission_document(ctx.engine, submissions.get(ctx.engine, sub_id) or {})
     assert doc["state"] == "canceled" and doc["result"]["verdict"] is None
     assert doc["result"]["holdout"]["released"] is False and doc["result"]["holdout"]["mode"] is None
+
+
+def test_between_storing_the_verdict_and_the_state_change_the_verdict_is_held_back(
+    padded_1s: WorkerContext, redis_url: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The verdict job stores the verdict, then moves the state in a second transaction: a reader in between
+    # must already find it held back (an end-to-end poll once caught it shown, running, 2 s early).
+    ctx = padded_1s
+    _, sub_id = _cross_validated(ctx)
+    jobs.score_holdout(sub_id)
+    between: list[dict[str, Any]] = []
+    transition = submissions.transition
+
+    def reading_first(engine: Any, sid: str, state: str, *args: Any, **kwargs: Any) -> bool:
+        if state == "succeeded":
+            between.append(submission_document(ctx.engine, submissions.get(ctx.engine, sid) or {}))
+        return transition(engine, sid, state, *args, **kwargs)
+
+    monkeypatch.setattr(submissions, "transition", reading_first)
+    give_verdict(ctx, Redis.from_url(redis_url), sub_id)
+    (doc,) = between
+    assert doc["state"] == "running" and doc["finished_at"] is None and doc["result"]["verdict"] is None
+    # A retried verdict job finishes it at the stored publication time, not at the retry's.
+    stored = submissions.get(ctx.engine, sub_id)
+    assert stored is not None and stored["published_at"] is not None
+    with ctx.engine.begin() as conn:  # as if the job died between its two writes
+        conn.execute(update(tables.submissions).where(tables.submissions.c.id == sub_id)
+                     .values(state="running", finished_at=None))
+    assert give_verdict(ctx, Redis.from_url(redis_url), sub_id)["verdict"] == "already judged"
+    again = submissions.get(ctx.engine, sub_id)
+    assert again is not None and again["state"] == "succeeded"
+    assert as_utc(again["finished_at"]) == as_utc(stored["published_at"]) > as_utc(datetime.now(UTC))
