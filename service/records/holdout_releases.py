@@ -9,7 +9,7 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import Engine, func, select
+from sqlalchemy import Engine, func, select, update
 from sqlalchemy.exc import IntegrityError
 
 from service.records import audit
@@ -18,11 +18,18 @@ from service.records.tables import holdout_releases, submissions
 
 
 def record(engine: Engine, row: dict[str, Any]) -> tuple[dict[str, Any], bool]:
-    """Store what a submission's submitter is shown of the holdout, once; return (row, created)."""
+    """Store what a submission's submitter is shown of the holdout, once; return (row, created).
+
+    The submission is held back until ``released_at`` (its ``published_at``, ``service.gate.timing``) in the
+    same transaction: the verdict and the state change follow in later ones, and a row read in between,
+    running with no publication time, would show the released figure at once.
+    """
     values = {"released_at": utcnow(), **row}
     try:
         with engine.begin() as conn:
             conn.execute(holdout_releases.insert().values(**values))
+            conn.execute(update(submissions).where(submissions.c.id == values["submission_id"])
+                         .values(published_at=values["released_at"]))
             team = conn.execute(
                 select(submissions.c.team).where(submissions.c.id == values["submission_id"])).scalar_one()
             audit.record(conn, "system", team, "holdout.released", values["submission_id"],

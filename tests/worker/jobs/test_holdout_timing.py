@@ -259,11 +259,12 @@ def test_a_cancel_before_publication_answers_as_for_a_running_submission(
     assert doc["result"]["holdout"]["released"] is False and doc["result"]["holdout"]["mode"] is None
 
 
-def test_between_storing_the_verdict_and_the_state_change_the_verdict_is_held_back(
+def test_between_the_verdict_jobs_writes_the_answer_is_held_back(
     padded_1s: WorkerContext, redis_url: str, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    # The verdict job stores the verdict, then moves the state in a second transaction: a reader in between
-    # must already find it held back (an end-to-end poll once caught it shown, running, 2 s early).
+    # The verdict job records the release, stores the verdict, then moves the state, in three transactions: a
+    # reader in between must already find them held back (an end-to-end poll once caught the verdict shown
+    # on a running submission, 2 s before its deadline).
     ctx = padded_1s
     _, sub_id = _cross_validated(ctx)
     jobs.score_holdout(sub_id)
@@ -275,10 +276,20 @@ def test_between_storing_the_verdict_and_the_state_change_the_verdict_is_held_ba
             between.append(submission_document(ctx.engine, submissions.get(ctx.engine, sid) or {}))
         return transition(engine, sid, state, *args, **kwargs)
 
+    store_verdict = submissions.store_verdict
+
+    def reading_before_the_verdict(engine: Any, sid: str, *args: Any, **kwargs: Any) -> None:
+        # The release row is written by now: its figure must not show before the publication either.
+        between.append(submission_document(ctx.engine, submissions.get(ctx.engine, sid) or {}))
+        store_verdict(engine, sid, *args, **kwargs)
+
     monkeypatch.setattr(submissions, "transition", reading_first)
+    monkeypatch.setattr(submissions, "store_verdict", reading_before_the_verdict)
     give_verdict(ctx, Redis.from_url(redis_url), sub_id)
-    (doc,) = between
-    assert doc["state"] == "running" and doc["finished_at"] is None and doc["result"]["verdict"] is None
+    assert holdout_releases.get(ctx.engine, sub_id) is not None and len(between) == 2
+    for doc in between:
+        assert doc["state"] == "running" and doc["finished_at"] is None and doc["result"]["verdict"] is None
+        assert doc["result"]["holdout"]["released"] is False and doc["result"]["holdout"]["mode"] is None
     # A retried verdict job finishes it at the stored publication time, not at the retry's.
     stored = submissions.get(ctx.engine, sub_id)
     assert stored is not None and stored["published_at"] is not None
