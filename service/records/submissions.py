@@ -160,10 +160,8 @@ def store_verdict(
 
     The verdict becomes the submission's current one and is appended to its history (``records.verdicts``)
     in the same transaction; ``holdout_spent`` is the units of the owner's holdout budget it used. ``at``: the
-    time it is recorded under (a verdict on the holdout: its publication time, ``service.gate.timing``), set
-    as the row's ``published_at`` in the same write, so the verdict is held back from the moment it is
-    stored: the state moves to succeeded in a later transaction, and a row read in between, still
-    running and with no publication time, would show the verdict at once.
+    time it is recorded under (a verdict on the holdout: its publication time, ``service.gate.timing``). Such a
+    verdict is held back already: its release record set the row's ``published_at`` (``holdout_releases.record``).
     """
     now, verdict = utcnow(), verdicts.finite(verdict)
     judged_at = now if at is None else at
@@ -173,8 +171,6 @@ def store_verdict(
         changed: dict[str, Any] = {"verdict": verdict, "policy_version": policy_version, "champion_id": champion_id}
         if at is None:  # a verdict shown at once (a re-judge); one held back leaves the row's change time alone
             changed["updated_at"] = now
-        else:
-            changed["published_at"] = at
         conn.execute(update(submissions).where(submissions.c.id == sub_id).values(**changed))
         verdicts.add(conn, {
             "submission_id": sub_id, "dataset_id": owner.dataset_id, "owner_key_id": owner.owner_key_id,

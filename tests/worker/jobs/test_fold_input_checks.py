@@ -14,6 +14,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import sklearn
+from sklearn.calibration import CalibratedClassifierCV
 from sklearn.compose import TransformedTargetRegressor
 from sklearn.ensemble import StackingRegressor
 from sklearn.linear_model import Ridge
@@ -99,3 +100,6 @@ def test_a_meta_estimator_keeps_the_check() -> None:
     assert assumed_in(Ridge())
     assert not assumed_in(StackingRegressor([("ridge", Ridge())]))
     assert not assumed_in(TransformedTargetRegressor(regressor=Ridge(), func=np.log, inverse_func=np.exp))
+    # Nested estimators left at their defaults (a LinearRegression, a linear SVM) are nesting all the same.
+    assert not assumed_in(TransformedTargetRegressor(func=np.log, inverse_func=np.exp))
+    assert not assumed_in(CalibratedClassifierCV())
